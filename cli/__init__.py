@@ -1,0 +1,1 @@
+"""counterbid command line."""

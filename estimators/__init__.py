@@ -1,0 +1,64 @@
+"""Pure estimators for auction-rule experiments (numpy/scipy only; no Airflow, no DuckDB).
+
+Public API
+----------
+estimate_arms
+    Per-arm revenue, welfare, improper average and lift from one experiment's bids.
+load_experiment, load_experiments, parse_experiments
+    Read and validate experiment specs.
+allocation_rule, mixture_rule
+    Allocation rules of position auctions in quantile space.
+simulate_experiment, equilibrium_bid_function, expected_revenue_per_auction
+    Equilibrium simulator (tests, demo).
+"""
+
+from .allocation import AllocationRule, allocation_rule, derivative_ratio, mixture_rule
+from .arms import (
+    BID_COLUMNS,
+    METHOD_VERSION,
+    METRICS,
+    MIXTURE_ARM,
+    RESULT_COLUMNS,
+    PreparedBids,
+    estimate_arms,
+    prepare_bids,
+)
+from .errors import EstimatorWarning, InputError
+from .order_weights import revenue_weights, welfare_weights
+from .simulate import (
+    BidFunction,
+    equilibrium_bid_function,
+    expected_revenue_per_auction,
+    expected_welfare_per_auction,
+    simulate_experiment,
+)
+from .spec import Arm, Experiment, load_experiment, load_experiments, parse_experiments
+
+__all__ = [
+    "AllocationRule",
+    "Arm",
+    "BID_COLUMNS",
+    "BidFunction",
+    "EstimatorWarning",
+    "Experiment",
+    "InputError",
+    "METHOD_VERSION",
+    "METRICS",
+    "MIXTURE_ARM",
+    "PreparedBids",
+    "RESULT_COLUMNS",
+    "allocation_rule",
+    "derivative_ratio",
+    "equilibrium_bid_function",
+    "estimate_arms",
+    "expected_revenue_per_auction",
+    "expected_welfare_per_auction",
+    "load_experiment",
+    "load_experiments",
+    "mixture_rule",
+    "parse_experiments",
+    "prepare_bids",
+    "revenue_weights",
+    "simulate_experiment",
+    "welfare_weights",
+]

@@ -1,0 +1,434 @@
+"""Per-arm revenue and welfare of an auction experiment from the mixture's bids."""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .allocation import AllocationRule, allocation_rule, mixture_rule
+from .errors import EstimatorWarning, InputError
+from .order_weights import CumulativeWeights, revenue_weights, welfare_weights
+from .spec import Experiment
+
+__all__ = [
+    "BID_COLUMNS",
+    "CLUSTERS",
+    "METHOD_VERSION",
+    "METRICS",
+    "MIXTURE_ARM",
+    "PreparedBids",
+    "RESULT_COLUMNS",
+    "estimate_arms",
+    "prepare_bids",
+]
+
+#: Columns of the bids data contract that the estimator reads.
+BID_COLUMNS = ("auction_id", "bidder_id", "arm", "bid", "position")
+#: Metrics in the results, in output order.
+METRICS = ("revenue_per_auction", "welfare_per_auction", "naive_revenue_per_auction", "revenue_lift_vs_control")
+#: Derived row: the mixture that actually ran (estimate vs realized: the sanity identity).
+MIXTURE_ARM = "_mixture"
+#: Written beside every stored estimate; bump when numbers could change for the same bids.
+METHOD_VERSION = "ordstat-1"
+CLUSTERS = ("auction", "bidder")
+RESULT_COLUMNS = ("arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids")
+
+
+@dataclass(frozen=True)
+class PreparedBids:
+    """Validated bids of one experiment as flat arrays (single-bidder auctions removed).
+
+    Attributes
+    ----------
+    bid : ndarray of float64
+    auction : ndarray of int64
+        Auction codes 0..n_auctions-1.
+    bidder : ndarray of int64
+        Bidder codes.
+    arm : ndarray of int64
+        Index into ``experiment.arms`` of the arm the bid's auction ran.
+    position : ndarray of int64
+        1 = top, 0 = not shown.
+    n_bidders : ndarray of int64
+        Bids in the bid's auction.
+    n_excluded_auctions : int
+        Single-bidder auctions left out.
+    n_excluded_bids : int
+    """
+
+    bid: np.ndarray
+    auction: np.ndarray
+    bidder: np.ndarray
+    arm: np.ndarray
+    position: np.ndarray
+    n_bidders: np.ndarray
+    n_auctions: int
+    n_excluded_auctions: int
+    n_excluded_bids: int
+
+
+def _row(rows: np.ndarray, i: int) -> int:
+    return int(rows[i])
+
+
+def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "bids") -> PreparedBids:
+    """Validate a bids frame against the data contract and an experiment spec.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame
+        One row per bid with columns ``auction_id, bidder_id, arm, bid, position``; when it has an
+        ``experiment_id`` column only that experiment's rows are used. Extra columns are ignored.
+    experiment : Experiment
+    source : str
+        Name of the input in error messages (a file path, a partition).
+
+    Returns
+    -------
+    PreparedBids
+
+    Raises
+    ------
+    InputError
+        With one line naming the column and the (0-based) row at fault.
+    """
+    if not isinstance(bids, pd.DataFrame):
+        raise InputError(f"{source}: bids must be a pandas DataFrame")
+    if not isinstance(experiment, Experiment):
+        raise InputError("`experiment` must be an Experiment (see load_experiment)")
+    rows = np.arange(len(bids))
+    if "experiment_id" in bids.columns:
+        keep = (bids["experiment_id"].astype("string") == experiment.id).fillna(False).to_numpy(bool)
+        if not keep.all():
+            bids, rows = bids.loc[keep], rows[keep]
+    if len(bids) == 0:
+        raise InputError(f"{source}: no bids for experiment {experiment.id!r}")
+    missing = [c for c in BID_COLUMNS if c not in bids.columns]
+    if missing:
+        raise InputError(f"{source}: column {missing[0]!r} is missing (required: {', '.join(BID_COLUMNS)})")
+
+    col = bids["bid"]
+    if pd.api.types.is_bool_dtype(col) or not pd.api.types.is_numeric_dtype(col):
+        coerced = pd.to_numeric(col, errors="coerce")
+        bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
+        i = int(bad[0]) if bad.size else 0
+        raise InputError(
+            f"{source}: column 'bid' must be numeric (dtype {col.dtype}); row {_row(rows, i)} holds {col.iloc[i]!r}"
+        )
+    bid = col.to_numpy(dtype=float, na_value=np.nan)
+    for test, what in ((np.isnan, "NaN or null"), (np.isinf, "infinite"), (lambda a: a < 0, "negative")):
+        bad = np.flatnonzero(test(bid))
+        if bad.size:
+            raise InputError(f"{source}: column 'bid' row {_row(rows, int(bad[0]))} is {what} ({bid[bad[0]]!r})")
+
+    for name in ("auction_id", "bidder_id", "arm"):
+        nulls = np.flatnonzero(bids[name].isna().to_numpy())
+        if nulls.size:
+            raise InputError(f"{source}: column {name!r} row {_row(rows, int(nulls[0]))} is null")
+
+    arm_codes, arm_uniques = pd.factorize(bids["arm"].astype("string"), sort=False)
+    spec_index = {name: k for k, name in enumerate(experiment.arm_names)}
+    lookup = np.empty(len(arm_uniques), dtype=np.int64)
+    for k, name in enumerate(arm_uniques):
+        if name not in spec_index:
+            first = int(np.flatnonzero(arm_codes == k)[0])
+            raise InputError(
+                f"{source}: unknown arm {name!r} at row {_row(rows, first)} "
+                f"(experiment {experiment.id!r} has arms: {', '.join(experiment.arm_names)})"
+            )
+        lookup[k] = spec_index[name]
+    arm = lookup[arm_codes]
+
+    pos_col = bids["position"]
+    if pos_col.isna().all():
+        position = np.zeros(len(bids), dtype=np.int64)
+    else:
+        if pd.api.types.is_bool_dtype(pos_col) or not pd.api.types.is_numeric_dtype(pos_col):
+            raise InputError(f"{source}: column 'position' must be an integer (1 = top) or null; dtype is {pos_col.dtype}")
+        pos = pos_col.to_numpy(dtype=float, na_value=np.nan)
+        shown = ~np.isnan(pos)
+        bad = np.flatnonzero(shown & ((pos < 1) | (pos != np.round(pos))))
+        if bad.size:
+            raise InputError(
+                f"{source}: column 'position' row {_row(rows, int(bad[0]))} is {pos[bad[0]]!r}; "
+                "positions are integers >= 1 (null = not shown)"
+            )
+        position = np.where(shown, pos, 0).astype(np.int64)
+
+    auction, _ = pd.factorize(bids["auction_id"], sort=False)
+    n_all = int(auction.max()) + 1
+    first_arm = np.empty(n_all, dtype=np.int64)
+    first_arm[auction[::-1]] = arm[::-1]  # the first bid of each auction wins
+    split = np.flatnonzero(first_arm[auction] != arm)
+    if split.size:
+        i = int(split[0])
+        a = auction[i]
+        j = int(np.flatnonzero(auction == a)[0])
+        raise InputError(
+            f"{source}: auction {bids['auction_id'].iloc[i]!r} has bids under two arms "
+            f"({experiment.arm_names[arm[j]]!r} at row {_row(rows, j)}, "
+            f"{experiment.arm_names[arm[i]]!r} at row {_row(rows, i)})"
+        )
+    counts = np.bincount(auction, minlength=n_all)
+    n_bidders = counts[auction]
+    single = n_bidders < 2
+    n_excluded = int(np.count_nonzero(counts == 1))
+    bidder, _ = pd.factorize(bids["bidder_id"], sort=False)
+    if single.any():
+        keep = ~single
+        auction = pd.factorize(auction[keep], sort=False)[0]
+        bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
+    if bid.size == 0:
+        raise InputError(f"{source}: every auction of experiment {experiment.id!r} has a single bidder; nothing to estimate")
+    return PreparedBids(
+        bid=bid,
+        auction=auction.astype(np.int64),
+        bidder=bidder.astype(np.int64),
+        arm=arm,
+        position=position,
+        n_bidders=n_bidders.astype(np.int64),
+        n_auctions=int(auction.max()) + 1,
+        n_excluded_auctions=n_excluded,
+        n_excluded_bids=int(np.count_nonzero(single)),
+    )
+
+
+def _influence(sorted_bids: np.ndarray, increments: np.ndarray) -> np.ndarray:
+    """Influence function of the L-statistic ``sum_i b_(i) c_i`` at each sorted point.
+
+    ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j`` with gaps ``D_j = b_(j+1) - b_(j)`` and the
+    weight density ``J`` at ``j/N`` (Serfling 1980, section 8.2). O(N) by a reverse cumulative sum.
+    """
+    n = sorted_bids.size
+    density = 0.5 * n * (increments[:-1] + increments[1:])  # J at the gaps j/N, j = 1..N-1
+    a = np.diff(sorted_bids) * density
+    centre = float(a @ (np.arange(1, n) / n))
+    tail = np.zeros(n)
+    tail[:-1] = np.cumsum(a[::-1])[::-1]
+    return centre - tail
+
+
+@dataclass
+class _Accumulator:
+    """Running estimate and per-cluster influence sums of one (arm, metric)."""
+
+    estimate: float
+    cluster_sums: np.ndarray
+
+    def add(self, estimate: float, cluster_sums: np.ndarray) -> None:
+        self.estimate += estimate
+        self.cluster_sums += cluster_sums
+
+
+def _variance(cluster_sums: np.ndarray) -> float:
+    g = cluster_sums.size
+    if g < 2:
+        return np.nan
+    return float(g / (g - 1) * np.dot(cluster_sums, cluster_sums))
+
+
+def _apply(weights: CumulativeWeights, n: int, b: np.ndarray) -> tuple[float, np.ndarray]:
+    inc = n * weights.increments(b.size)
+    est = float(b @ inc) + n * weights.top * float(b[-1]) - n * weights.bottom * float(b[0])
+    return est, _influence(b, inc)
+
+
+def estimate_arms(
+    bids: pd.DataFrame,
+    experiment: Experiment,
+    *,
+    confidence_level: float = 0.95,
+    cluster: str = "auction",
+    source: str = "bids",
+) -> pd.DataFrame:
+    """Revenue and welfare per auction of every arm, from bids placed against the mixture.
+
+    Bidders bid once against the share-weighted mixture of the arms' allocation rules; the arm is
+    drawn per auction afterwards. Inverting the first-order condition of that mixture and
+    integrating by parts turns each arm's expected revenue into a weighted sum of the sorted bids
+    (no density or derivative of the bid distribution is estimated).
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame
+        Bids data contract: ``auction_id, bidder_id, arm, bid, position`` (and optionally
+        ``experiment_id``: only rows of ``experiment`` are used). Auctions with one bidder are
+        excluded and counted.
+    experiment : Experiment
+        Arms, designed shares and position weights (``load_experiment``).
+    confidence_level : float, optional
+        Two-sided level of the normal confidence intervals, in (0, 1). Default 0.95.
+    cluster : {'auction', 'bidder'}, optional
+        Unit of the cluster-robust standard errors. Default ``'auction'``.
+    source : str, optional
+        Name of the input in error messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per arm and metric with columns ``arm, metric, estimate, std_error, ci_low,
+        ci_high, n_auctions, n_bids``. Metrics: ``revenue_per_auction`` and
+        ``welfare_per_auction`` (counterfactual: the arm run in every auction, bidders adapted
+        to it), ``naive_revenue_per_auction`` (the improper average of realized revenue over the
+        arm's own auctions, for comparison) and ``revenue_lift_vs_control`` (relative, non-control
+        arms). Arm ``_mixture`` carries the mixture's estimated and realized revenue, which agree
+        in equilibrium. ``DataFrame.attrs`` holds ``experiment_id``, ``confidence_level``,
+        ``cluster``, ``n_auctions``, ``n_bids``, ``n_excluded_auctions``, ``strata`` (auctions per
+        number of bidders) and ``method_version``.
+
+    Notes
+    -----
+    For target arm ``y`` and mixture ``x`` the per-bidder payment is
+    ``P[y] = int b(q) omega(q) dq - b(0) g(0)`` with ``g = (1-q) y' x / x'``; the estimate is
+    ``n (sum_i b_(i) [Omega(i/N) - Omega((i-1)/N)] - b_(1) g(0))``. Standard errors use the
+    influence function of this L-statistic summed within clusters. With a varying number of
+    bidders each ``n`` is a stratum (bidders know ``n``), weighted by its share of auctions.
+    Assumes symmetric independent private values, bids in equilibrium against the designed
+    shares, and known position weights.
+
+    References
+    ----------
+    .. [1] Myerson, R. (1981). Optimal auction design. Math. Oper. Res. 6(1), 58-73.
+    .. [2] Krishna, V. (2010). Auction Theory, 2nd ed., Academic Press, ch. 2-3.
+    .. [3] Serfling, R. (1980). Approximation Theorems of Mathematical Statistics, Wiley, sec. 8.2.
+
+    Examples
+    --------
+    >>> import scipy.stats as st
+    >>> from counterbid.estimators import parse_experiments, simulate_experiment
+    >>> exp = parse_experiments({"experiments": [{"id": "e", "control_arm": "one", "arms": [
+    ...     {"name": "one", "share": 0.5, "position_weights": [1.0]},
+    ...     {"name": "two", "share": 0.5, "position_weights": [1.0, 1.0]}]}]})["e"]
+    >>> bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=20000, rng=0)
+    >>> out = estimate_arms(bids, exp)
+    >>> rev = out.query("metric == 'revenue_per_auction'").set_index("arm")["estimate"]
+    >>> bool(abs(rev["one"] - 1.0) < 0.05 and abs(rev["two"] - 1.0) < 0.05)
+    True
+    """
+    if not (isinstance(confidence_level, (int, float)) and 0 < confidence_level < 1):
+        raise InputError(f"`confidence_level` must be in (0, 1); got {confidence_level!r}")
+    if cluster not in CLUSTERS:
+        raise InputError(f"`cluster` must be one of {', '.join(CLUSTERS)}; got {cluster!r}")
+    if experiment.payment_rule != "first_price":
+        raise InputError(f"experiment {experiment.id!r}: payment_rule {experiment.payment_rule!r} is not supported")
+    data = prepare_bids(bids, experiment, source=source)
+    return _estimate(data, experiment, confidence_level=float(confidence_level), cluster=cluster)
+
+
+def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: float, cluster: str) -> pd.DataFrame:
+    arms = experiment.arms
+    k_arms = len(arms)
+    clusters = data.auction if cluster == "auction" else pd.factorize(data.bidder, sort=False)[0]
+    n_clusters = int(clusters.max()) + 1
+    shares = np.array(experiment.shares)
+
+    # Auctions per stratum (number of bidders).
+    first_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
+    first_of_auction[data.auction] = data.n_bidders
+    strata, strata_auctions = np.unique(first_of_auction, return_counts=True)
+    total_auctions = int(strata_auctions.sum())
+
+    def zero() -> _Accumulator:
+        return _Accumulator(0.0, np.zeros(n_clusters))
+
+    revenue = [zero() for _ in range(k_arms + 1)]  # last: the mixture
+    welfare = [zero() for _ in range(k_arms)]
+    welfare_identified = True
+
+    for n, a_n in zip(strata.tolist(), strata_auctions.tolist()):
+        pi = a_n / total_auctions
+        sel = np.flatnonzero(data.n_bidders == n) if strata.size > 1 else None
+        b_raw = data.bid if sel is None else data.bid[sel]
+        order = np.argsort(b_raw, kind="stable")
+        b = b_raw[order]
+        cl = (clusters if sel is None else clusters[sel])[order]
+        big_n = b.size
+        rules: list[AllocationRule] = [allocation_rule(a.weights_for(n), n) for a in arms]
+        mix = mixture_rule(rules, shares)
+        for k, target in enumerate(rules + [mix]):
+            est, infl = _apply(revenue_weights(target, mix, big_n), n, b)
+            revenue[k].add(pi * est, np.bincount(cl, weights=infl * (pi / big_n), minlength=n_clusters))
+        for k, target in enumerate(rules):
+            ww = welfare_weights(target, mix, big_n)
+            if not (np.isfinite(ww.top) and np.isfinite(ww.bottom)):
+                welfare_identified = False
+                welfare[k].estimate = np.nan
+                continue
+            est, infl = _apply(ww, n, b)
+            welfare[k].add(pi * est, np.bincount(cl, weights=infl * (pi / big_n), minlength=n_clusters))
+    if not welfare_identified:
+        warnings.warn(
+            "welfare is not identified: the mixture's top two positions weigh the same "
+            "(or its bottom positions do), so values at that end cannot be recovered from bids",
+            EstimatorWarning,
+            stacklevel=3,
+        )
+
+    # Improper per-arm averages of realized revenue (bid x position weight), and the mixture's.
+    pos_weights = np.zeros((k_arms, int(max(data.position.max(), 1)) + 1))
+    for k, a in enumerate(arms):
+        w = np.asarray(a.weights_for(pos_weights.shape[1] - 1))
+        pos_weights[k, 1:] = w
+    realized = data.bid * pos_weights[data.arm, data.position]
+    auctions_of_arm = np.bincount(first_arm_of(data), minlength=k_arms)
+    bids_of_arm = np.bincount(data.arm, minlength=k_arms)
+
+    z = float(stats.norm.ppf(0.5 + confidence_level / 2))
+    rows: list[tuple] = []
+
+    def emit(arm: str, metric: str, est: float, cs: np.ndarray | None, n_auc: int, n_b: int, se: float | None = None) -> None:
+        if se is None:
+            se = np.sqrt(_variance(cs)) if cs is not None and np.isfinite(est) else np.nan
+        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b))
+
+    control = experiment.arm_names.index(experiment.control_arm)
+    total_bids = int(data.bid.size)
+    naive = []
+    for k, a in enumerate(arms):
+        mine = data.arm == k
+        a_k = int(auctions_of_arm[k])
+        if a_k == 0:
+            naive.append((np.nan, None))
+            continue
+        mean = float(realized[mine].sum() / a_k)
+        infl = np.where(mine, (realized - mean / data.n_bidders) / a_k, 0.0)
+        naive.append((mean, np.bincount(clusters, weights=infl, minlength=n_clusters)))
+    for k, a in enumerate(arms):
+        emit(a.name, "revenue_per_auction", revenue[k].estimate, revenue[k].cluster_sums, total_auctions, total_bids)
+        emit(a.name, "welfare_per_auction", welfare[k].estimate, welfare[k].cluster_sums, total_auctions, total_bids)
+        emit(a.name, "naive_revenue_per_auction", naive[k][0], naive[k][1], int(auctions_of_arm[k]), int(bids_of_arm[k]))
+        if k != control:
+            t_a, t_c = revenue[k].estimate, revenue[control].estimate
+            cs = revenue[k].cluster_sums / t_c - t_a * revenue[control].cluster_sums / t_c**2
+            emit(a.name, "revenue_lift_vs_control", t_a / t_c - 1.0, cs, total_auctions, total_bids)
+    emit(MIXTURE_ARM, "revenue_per_auction", revenue[-1].estimate, revenue[-1].cluster_sums, total_auctions, total_bids)
+    mean_all = float(realized.sum() / total_auctions)
+    infl_all = (realized - mean_all / data.n_bidders) / total_auctions
+    emit(MIXTURE_ARM, "naive_revenue_per_auction", mean_all, np.bincount(clusters, weights=infl_all, minlength=n_clusters), total_auctions, total_bids)
+
+    out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
+    out["n_auctions"] = out["n_auctions"].astype("int64")
+    out["n_bids"] = out["n_bids"].astype("int64")
+    out.attrs.update(
+        experiment_id=experiment.id,
+        confidence_level=confidence_level,
+        cluster=cluster,
+        n_auctions=total_auctions,
+        n_bids=total_bids,
+        n_excluded_auctions=data.n_excluded_auctions,
+        strata={int(n): int(c) for n, c in zip(strata, strata_auctions)},
+        method_version=METHOD_VERSION,
+        welfare_identified=welfare_identified,
+    )
+    return out
+
+
+def first_arm_of(data: PreparedBids) -> np.ndarray:
+    """Arm index of each auction (one arm per auction is validated upstream)."""
+    arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
+    arm_of_auction[data.auction] = data.arm
+    return arm_of_auction

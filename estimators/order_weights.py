@@ -1,0 +1,130 @@
+"""Weights of the order-statistic estimator (cumulative form, closed).
+
+For the mixture rule ``x`` that was run and a target rule ``y``, the expected payment of one
+bidder under ``y`` is (Myerson's formula with the first-price inversion integrated by parts)
+
+    P[y] = int_0^1 b(q) omega(q) dq - b(0) g(0),
+    g(q) = (1 - q) y'(q) x(q) / x'(q),   omega = (1 - q) y' - g',
+
+with cumulative weight ``Omega(q) = (1-q) y(q) - y(0) + Y(q) - g(q) + g(0)``. Expected welfare
+per bidder, ``int v(q) y(q) dq``, is in the same form with ``h(q) = y(q) x(q) / x'(q)``:
+
+    W[y] = int_0^1 b(q) psi(q) dq + b(1) h(1) - b(0) h(0),   Psi(q) = Y(q) - h(q) + h(0).
+
+On the empirical bid quantile function these integrals become weighted sums of the sorted bids,
+with weight ``Omega(i/N) - Omega((i-1)/N)`` on the i-th smallest. ``Omega`` and ``Psi`` are
+evaluated exactly on a grid of at most ``GRID_INTERVALS + 1`` points and, for larger samples,
+interpolated by a cubic spline (error below 1e-10 up to n = 60; see the tests).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+
+from .allocation import AllocationRule, derivative_ratio
+
+__all__ = ["CumulativeWeights", "revenue_weights", "welfare_weights", "GRID_INTERVALS"]
+
+#: Exact evaluations of the cumulative weight per stratum before the spline takes over.
+GRID_INTERVALS = 2**14
+
+
+@dataclass(frozen=True)
+class CumulativeWeights:
+    """Cumulative weight function of an order-statistic estimator and its boundary terms.
+
+    The estimate (per bidder) from sorted bids ``b_(1) <= ... <= b_(N)`` is
+    ``sum_i b_(i) [F(i/N) - F((i-1)/N)] + top * b_(N) - bottom * b_(1)``.
+
+    Attributes
+    ----------
+    grid : ndarray
+        Quantiles where ``values`` were computed exactly.
+    values : ndarray
+        Cumulative weight on ``grid`` (0 at q = 0).
+    top, bottom : float
+        Coefficients of the largest and smallest bid (NaN when not identified).
+    """
+
+    grid: np.ndarray
+    values: np.ndarray
+    top: float
+    bottom: float
+
+    def at(self, q: np.ndarray) -> np.ndarray:
+        """Cumulative weight at quantiles ``q`` (exact on the grid, cubic spline between)."""
+        spline = CubicSpline(self.grid, self.values)
+        return spline(q)
+
+    def increments(self, n_bids: int) -> np.ndarray:
+        """Weights ``F(i/N) - F((i-1)/N)`` for i = 1..N."""
+        if n_bids + 1 <= self.grid.size and self.grid.size == n_bids + 1:
+            cum = self.values
+        else:
+            cum = self.at(np.arange(n_bids + 1) / n_bids)
+        return np.diff(cum)
+
+
+def _grid(n_bids: int | None) -> np.ndarray:
+    k = GRID_INTERVALS if n_bids is None else min(GRID_INTERVALS, int(n_bids))
+    return np.arange(k + 1) / k
+
+
+def revenue_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int | None = None) -> CumulativeWeights:
+    """Cumulative weights ``Omega`` of the revenue estimator for ``target`` given bids under ``mixture``.
+
+    Parameters
+    ----------
+    target : AllocationRule
+        The arm ``y`` whose revenue is wanted.
+    mixture : AllocationRule
+        The rule ``x`` the bids answer (share-weighted mixture of all arms).
+    n_bids : int, optional
+        Sample size; when at most ``GRID_INTERVALS`` the grid is exactly ``i / n_bids``.
+
+    Returns
+    -------
+    CumulativeWeights
+        Per-bidder weights; multiply the estimate by ``n`` for revenue per auction.
+    """
+    q = _grid(n_bids)
+    y = target.value(q)
+    big_y = target.integral(q)
+    g = (1.0 - q) * derivative_ratio(target, mixture, q) * mixture.value(q)
+    g[-1] = 0.0  # (1 - q) factor; the ratio stays bounded
+    g0 = float(g[0])
+    omega = (1.0 - q) * y - y[0] + big_y - g + g0
+    omega[0] = 0.0
+    return CumulativeWeights(grid=q, values=omega, top=0.0, bottom=g0)
+
+
+def welfare_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int | None = None) -> CumulativeWeights:
+    """Cumulative weights ``Psi`` of the welfare estimator (expected value of clicks won).
+
+    Values are identified from bids only where the mixture's rule is strictly increasing; at the
+    top that needs ``w_1 > w_2`` in the mixture, at the bottom ``w_n = 0`` or ``w_{n-1} > w_n``.
+    Otherwise the boundary coefficients are NaN and so is the estimate.
+    """
+    q = _grid(n_bids)
+    big_y = target.integral(q)
+    y = target.value(q)
+    d = mixture.derivative_coefficients
+    c = mixture.coefficients
+    if d.size == 0:  # a single bidder: nothing is identified
+        nan = np.full(q.shape, np.nan)
+        return CumulativeWeights(grid=q, values=nan, top=np.nan, bottom=np.nan)
+    # x / x' in log space (both are non-negative Bernstein polynomials).
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.exp(mixture.log_value(q) - mixture.log_derivative(q))
+    h = y * ratio
+    top_ok = d[-1] > 0
+    bottom_ok = c[0] == 0 or d[0] > 0
+    h0 = 0.0 if c[0] == 0 else (float(y[0] * c[0] / (mixture.n_bidders - 1) / d[0]) if bottom_ok else np.nan)
+    h1 = float(y[-1] * c[-1] / ((mixture.n_bidders - 1) * d[-1])) if top_ok else np.nan
+    h[0], h[-1] = h0, h1
+    psi = big_y - h + h0
+    psi[0] = 0.0
+    return CumulativeWeights(grid=q, values=psi, top=h1, bottom=h0)

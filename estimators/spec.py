@@ -1,0 +1,326 @@
+"""Experiment specification: arms, traffic shares, position weights.
+
+A spec file (YAML) holds one or more experiments::
+
+    experiments:
+      - id: homepage-slots
+        payment_rule: first_price
+        control_arm: control
+        start: 2026-03-01          # optional: first day the experiment runs
+        end: 2026-03-28            # optional: last day (inclusive)
+        floor: 0.05                # optional: minimum admissible bid (checked, not modelled)
+        arms:
+          - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
+          - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+        checks: {}                 # optional: thresholds for the data checks
+
+``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
+from the click log before estimating.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .errors import InputError
+
+__all__ = [
+    "Arm",
+    "Experiment",
+    "PAYMENT_RULES",
+    "SHARE_TOLERANCE",
+    "load_experiment",
+    "load_experiments",
+    "parse_experiments",
+]
+
+#: Payment rules the estimator implements.
+PAYMENT_RULES = ("first_price",)
+#: Shares must sum to one within this tolerance.
+SHARE_TOLERANCE = 1e-6
+#: Arm names starting with an underscore are reserved for derived rows (``_mixture``).
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
+
+
+@dataclass(frozen=True)
+class Arm:
+    """One arm of an experiment.
+
+    Attributes
+    ----------
+    name : str
+        Arm name as it appears in the bids' ``arm`` column.
+    share : float
+        Designed share of auctions that run this arm, in (0, 1].
+    position_weights : tuple of float or None
+        Click weight of each position, top first, non-increasing and non-negative; positions
+        past the end weigh 0. ``None`` when ``measured`` is true and not yet filled.
+    measured : bool
+        True when the spec asks for weights measured from the click log.
+    """
+
+    name: str
+    share: float
+    position_weights: tuple[float, ...] | None
+    measured: bool = False
+
+    def weights_for(self, n_bidders: int) -> tuple[float, ...]:
+        """Position weights padded with zeros (or cut) to ``n_bidders`` positions."""
+        if self.position_weights is None:
+            raise InputError(f"arm {self.name!r}: position weights are 'measured' and were not filled")
+        w = tuple(self.position_weights[:n_bidders])
+        return w + (0.0,) * (n_bidders - len(w))
+
+
+@dataclass(frozen=True)
+class Experiment:
+    """An auction-rule experiment: which arms run in which share of auctions.
+
+    Attributes
+    ----------
+    id : str
+    payment_rule : str
+        ``first_price`` (pay your bid per click).
+    control_arm : str
+    arms : tuple of Arm
+    start, end : datetime.date or None
+        First and last day (inclusive) the experiment runs; ``None`` for open-ended.
+    floor : float or None
+        Minimum admissible bid; a data check, not part of the equilibrium model.
+    checks : dict
+        Threshold overrides for the data checks, passed through unchanged.
+    """
+
+    id: str
+    payment_rule: str
+    control_arm: str
+    arms: tuple[Arm, ...]
+    start: _dt.date | None = None
+    end: _dt.date | None = None
+    floor: float | None = None
+    checks: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def arm_names(self) -> tuple[str, ...]:
+        return tuple(a.name for a in self.arms)
+
+    @property
+    def shares(self) -> tuple[float, ...]:
+        return tuple(a.share for a in self.arms)
+
+    def arm(self, name: str) -> Arm:
+        for a in self.arms:
+            if a.name == name:
+                return a
+        raise InputError(f"experiment {self.id!r}: unknown arm {name!r}")
+
+    def is_active(self, day: _dt.date) -> bool:
+        """Whether the experiment runs on ``day`` (start and end inclusive)."""
+        return (self.start is None or self.start <= day) and (self.end is None or day <= self.end)
+
+    def with_position_weights(self, weights: Mapping[str, Sequence[float]]) -> "Experiment":
+        """A copy with the given arms' position weights filled (e.g. measured from clicks)."""
+        arms = []
+        for a in self.arms:
+            if a.name in weights:
+                w = _weights(weights[a.name], f"experiment {self.id!r} arm {a.name!r} position_weights")
+                arms.append(replace(a, position_weights=w))
+            else:
+                arms.append(a)
+        return replace(self, arms=tuple(arms))
+
+
+def _weights(raw: Any, where: str) -> tuple[float, ...]:
+    if isinstance(raw, (str, bytes)) or not isinstance(raw, Sequence) or len(raw) == 0:
+        raise InputError(f"{where}: must be a non-empty list of numbers or 'measured'; got {raw!r}")
+    out = []
+    for k, v in enumerate(raw, start=1):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v < 0:
+            raise InputError(f"{where}: position {k} must be a finite number >= 0; got {v!r}")
+        out.append(float(v))
+    for k in range(1, len(out)):
+        if out[k] > out[k - 1]:
+            raise InputError(
+                f"{where}: weights must be non-increasing; position {k + 1} ({out[k]}) "
+                f"exceeds position {k} ({out[k - 1]})"
+            )
+    if out[0] <= 0:
+        raise InputError(f"{where}: the top position must have a positive weight")
+    return tuple(out)
+
+
+def _date(raw: Any, where: str) -> _dt.date | None:
+    if raw is None:
+        return None
+    if isinstance(raw, _dt.datetime):
+        return raw.date()
+    if isinstance(raw, _dt.date):
+        return raw
+    try:
+        return _dt.date.fromisoformat(str(raw))
+    except ValueError:
+        raise InputError(f"{where}: must be a date YYYY-MM-DD; got {raw!r}") from None
+
+
+def _experiment(raw: Any, where: str) -> Experiment:
+    if not isinstance(raw, Mapping):
+        raise InputError(f"{where}: must be a mapping with keys id, control_arm, arms")
+    known = {"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description"}
+    extra = sorted(set(raw) - known)
+    if extra:
+        raise InputError(f"{where}: unknown key {extra[0]!r} (known: {', '.join(sorted(known))})")
+    exp_id = raw.get("id")
+    if not isinstance(exp_id, (str, int)) or isinstance(exp_id, bool) or str(exp_id) == "":
+        raise InputError(f"{where}: 'id' must be a non-empty string")
+    exp_id = str(exp_id)
+    where = f"{where} (id {exp_id!r})"
+    rule = raw.get("payment_rule", "first_price")
+    if rule not in PAYMENT_RULES:
+        raise InputError(f"{where}: unknown payment_rule {rule!r} (supported: {', '.join(PAYMENT_RULES)})")
+    arms_raw = raw.get("arms")
+    if not isinstance(arms_raw, Sequence) or isinstance(arms_raw, (str, bytes)) or len(arms_raw) < 1:
+        raise InputError(f"{where}: 'arms' must be a non-empty list")
+    arms: list[Arm] = []
+    for i, a in enumerate(arms_raw):
+        aw = f"{where} arms[{i}]"
+        if not isinstance(a, Mapping):
+            raise InputError(f"{aw}: must be a mapping with keys name, share, position_weights")
+        name = a.get("name")
+        if not isinstance(name, str) or not _NAME.match(name):
+            raise InputError(
+                f"{aw}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
+                f"not starting with '_' or '-'; got {name!r}"
+            )
+        if name in {x.name for x in arms}:
+            raise InputError(f"{aw}: duplicate arm name {name!r}")
+        share = a.get("share")
+        if isinstance(share, bool) or not isinstance(share, (int, float)) or not (0 < share <= 1):
+            raise InputError(f"{aw} ({name}): 'share' must be a number in (0, 1]; got {share!r}")
+        pw = a.get("position_weights")
+        if pw == "measured":
+            arms.append(Arm(name, float(share), None, measured=True))
+        else:
+            arms.append(Arm(name, float(share), _weights(pw, f"{aw} ({name}) position_weights")))
+    total = math.fsum(a.share for a in arms)
+    if abs(total - 1.0) > SHARE_TOLERANCE:
+        raise InputError(f"{where}: arm shares must sum to 1 (within {SHARE_TOLERANCE:g}); they sum to {total:.9g}")
+    control = raw.get("control_arm", arms[0].name)
+    if control not in {a.name for a in arms}:
+        raise InputError(f"{where}: control_arm {control!r} is not one of the arms ({', '.join(a.name for a in arms)})")
+    floor = raw.get("floor")
+    if floor is not None and (isinstance(floor, bool) or not isinstance(floor, (int, float)) or not math.isfinite(floor) or floor < 0):
+        raise InputError(f"{where}: 'floor' must be a finite number >= 0; got {floor!r}")
+    start = _date(raw.get("start"), f"{where} start")
+    end = _date(raw.get("end"), f"{where} end")
+    if start and end and end < start:
+        raise InputError(f"{where}: end {end} is before start {start}")
+    checks = raw.get("checks") or {}
+    if not isinstance(checks, Mapping):
+        raise InputError(f"{where}: 'checks' must be a mapping")
+    return Experiment(
+        id=exp_id,
+        payment_rule=rule,
+        control_arm=control,
+        arms=tuple(arms),
+        start=start,
+        end=end,
+        floor=None if floor is None else float(floor),
+        checks=dict(checks),
+    )
+
+
+def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Experiment]:
+    """Validate a parsed spec document and return its experiments keyed by id.
+
+    Parameters
+    ----------
+    document : mapping
+        The parsed YAML: ``{"experiments": [...]}``.
+    source : str
+        Name used in error messages (usually the file path).
+
+    Returns
+    -------
+    dict of str to Experiment
+    """
+    if not isinstance(document, Mapping) or "experiments" not in document:
+        raise InputError(f"{source}: top-level key 'experiments' is missing")
+    items = document["experiments"]
+    if not isinstance(items, Sequence) or isinstance(items, (str, bytes)) or not items:
+        raise InputError(f"{source}: 'experiments' must be a non-empty list")
+    out: dict[str, Experiment] = {}
+    for i, raw in enumerate(items):
+        exp = _experiment(raw, f"{source}: experiments[{i}]")
+        if exp.id in out:
+            raise InputError(f"{source}: experiments[{i}]: duplicate experiment id {exp.id!r}")
+        out[exp.id] = exp
+    return out
+
+
+def load_experiments(path: str | Path) -> dict[str, Experiment]:
+    """Read every experiment in a YAML spec file.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    dict of str to Experiment
+        Keyed by experiment id, in file order.
+
+    Raises
+    ------
+    InputError
+        The file is missing, not YAML, or fails validation; the message names file and key.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read experiment spec ({exc.strerror or exc})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: experiment spec is not UTF-8 text") from None
+    try:
+        document = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        loc = f" at line {mark.line + 1}" if mark is not None else ""
+        raise InputError(f"{path}: not valid YAML{loc}") from None
+    return parse_experiments(document, source=str(path))
+
+
+def load_experiment(path: str | Path, experiment_id: str | None = None) -> Experiment:
+    """Read one experiment from a YAML spec file.
+
+    Parameters
+    ----------
+    path : str or Path
+    experiment_id : str, optional
+        Required when the file holds more than one experiment.
+
+    Returns
+    -------
+    Experiment
+    """
+    experiments = load_experiments(path)
+    if experiment_id is None:
+        if len(experiments) == 1:
+            return next(iter(experiments.values()))
+        raise InputError(
+            f"{path}: holds {len(experiments)} experiments ({', '.join(experiments)}); choose one by id"
+        )
+    try:
+        return experiments[str(experiment_id)]
+    except KeyError:
+        raise InputError(
+            f"{path}: no experiment with id {experiment_id!r} (found: {', '.join(experiments)})"
+        ) from None
