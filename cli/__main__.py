@@ -1,0 +1,5 @@
+import sys
+
+from counterbid.cli import main
+
+sys.exit(main())
