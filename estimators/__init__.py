@@ -23,6 +23,7 @@ from .arms import (
     estimate_arms,
     prepare_bids,
 )
+from .checks import CheckResult, worst_failure
 from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
 from .simulate import (
@@ -39,6 +40,7 @@ __all__ = [
     "Arm",
     "BID_COLUMNS",
     "BidFunction",
+    "CheckResult",
     "EstimatorWarning",
     "Experiment",
     "InputError",
@@ -61,4 +63,5 @@ __all__ = [
     "revenue_weights",
     "simulate_experiment",
     "welfare_weights",
+    "worst_failure",
 ]
