@@ -1,0 +1,254 @@
+"""The results database hook: the only code in counterbid that opens DuckDB connections."""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as dt
+import logging
+import random
+import time
+from collections.abc import Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import pandas as pd
+import pyarrow as pa
+from airflow.sdk import BaseHook
+
+from counterbid.estimators.errors import InputError
+from counterbid.sql import render_sql, validate_identifier
+
+__all__ = ["DEFAULT_CONN_ID", "LOCK_ERROR", "ResultsHook", "is_lock_error", "lake_glob"]
+
+log = logging.getLogger(__name__)
+
+DEFAULT_CONN_ID = "counterbid_results"
+#: Text of DuckDB's error when another process holds the database file.
+LOCK_ERROR = "Could not set lock on file"
+#: DDL run by :meth:`ResultsHook.ensure_tables`, in order (tables before the views over them).
+RESULTS_DDL = (
+    "results_create_schema",
+    "results_create_arm_estimates",
+    "results_create_arm_estimates_to_date",
+    "results_create_position_weights",
+    "results_create_view_cumulative",
+    "results_create_view_arm_lift",
+)
+
+
+def is_lock_error(exc: BaseException) -> bool:
+    """Whether ``exc`` is DuckDB's file-lock conflict (retryable)."""
+    return isinstance(exc, duckdb.Error) and LOCK_ERROR in str(exc)
+
+
+def lake_glob(root: str | Path) -> str:
+    """Glob of every Parquet file under a Hive-partitioned root (local path or object-store URL)."""
+    text = str(root).rstrip("/")
+    if not text:
+        raise InputError("lake root is empty")
+    return f"{text}/**/*.parquet"
+
+
+class ResultsHook(BaseHook):
+    """DuckDB access for counterbid: the results database file and in-memory lake queries.
+
+    Parameters
+    ----------
+    database : str, optional
+        Path of the results DuckDB file. When not given, it comes from the Airflow connection
+        ``counterbid_conn_id`` (extra ``{"path": ...}`` or the connection's host field).
+    counterbid_conn_id : str, optional
+        Connection id, default ``counterbid_results``.
+    schema : str, optional
+        Schema of the results tables, default ``main`` (validated identifier).
+    lock_timeout : float, optional
+        Seconds to keep retrying when another process holds the database file lock.
+
+    Notes
+    -----
+    DuckDB lets one process hold a database file at a time (readers included), so every
+    connection here is short-lived and opening it retries on the lock error with jittered
+    exponential back-off. Lake reads use a private in-memory connection; object-store URLs
+    (``s3://``, ``gs://``, ``https://``) are read through DuckDB's httpfs extension, which
+    DuckDB loads automatically.
+    """
+
+    conn_name_attr = "counterbid_conn_id"
+    default_conn_name = DEFAULT_CONN_ID
+    conn_type = "counterbid_duckdb"
+    hook_name = "counterbid results (DuckDB)"
+
+    def __init__(
+        self,
+        *,
+        database: str | Path | None = None,
+        counterbid_conn_id: str | None = None,
+        schema: str = "main",
+        lock_timeout: float = 120.0,
+    ) -> None:
+        super().__init__()
+        self.counterbid_conn_id = counterbid_conn_id or DEFAULT_CONN_ID
+        self.schema = validate_identifier(schema, what="results schema")
+        if not (isinstance(lock_timeout, (int, float)) and lock_timeout >= 0):
+            raise InputError(f"`lock_timeout` must be a number of seconds >= 0; got {lock_timeout!r}")
+        self.lock_timeout = float(lock_timeout)
+        self._database = str(database) if database not in (None, "") else None
+
+    # -- connections -------------------------------------------------------------------------
+    @property
+    def database(self) -> str:
+        """Path of the results database file (from the argument or the Airflow connection)."""
+        if self._database is None:
+            conn = self.get_connection(self.counterbid_conn_id)
+            path = (conn.extra_dejson or {}).get("path") or conn.host
+            if not path:
+                raise InputError(f"connection {self.counterbid_conn_id!r}: set extra 'path' to the results DuckDB file")
+            self._database = str(path)
+        return self._database
+
+    @contextlib.contextmanager
+    def connect(self, *, read_only: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
+        """A short-lived connection to the results file, retrying while another process holds it."""
+        if not read_only:
+            Path(self.database).parent.mkdir(parents=True, exist_ok=True)
+        con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
+        try:
+            yield con
+        finally:
+            con.close()
+
+    @contextlib.contextmanager
+    def lake(self) -> Iterator[duckdb.DuckDBPyConnection]:
+        """An in-memory connection for reading Parquet (the bid lake, click log, staged files)."""
+        con = duckdb.connect(":memory:")
+        try:
+            yield con
+        finally:
+            con.close()
+
+    def _retry_on_lock(self, action, *, what: str):
+        deadline = time.monotonic() + self.lock_timeout
+        delay = 0.05
+        while True:
+            try:
+                return action()
+            except duckdb.Error as exc:
+                if not is_lock_error(exc) or time.monotonic() >= deadline:
+                    raise
+                log.info("results database %s is locked by another process; retrying %s in %.2fs", self.database, what, delay)
+                time.sleep(delay * (0.5 + random.random()))
+                delay = min(delay * 2, 2.0)
+
+    def sql(self, name: str) -> str:
+        """Statement ``name`` with the results schema filled in (when it has a placeholder)."""
+        from counterbid.sql import load_sql
+
+        return render_sql(name, schema=self.schema) if "{{" in load_sql(name) else load_sql(name)
+
+    # -- results database --------------------------------------------------------------------
+    def ensure_tables(self) -> None:
+        """Create the results schema, tables and views if missing (idempotent)."""
+        with self.connect() as con:
+            for name in RESULTS_DDL:
+                con.execute(self.sql(name))
+
+    def fetch_df(self, name: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
+        """Run a read-only statement against the results file and return a DataFrame."""
+        with self.connect(read_only=True) as con:
+            return con.execute(self.sql(name), dict(params or {})).df()
+
+    def table_exists(self, table: str) -> bool:
+        """Whether ``table`` (or a view of that name) exists in the results schema."""
+        validate_identifier(table, what="table")
+        if not Path(self.database).exists():
+            return False
+        with self.connect(read_only=True) as con:
+            return bool(con.execute(self.sql("results_table_exists"), {"schema": self.schema, "table": table}).fetchone()[0])
+
+    def replace_partition(
+        self,
+        *,
+        experiment_id: str,
+        ds: dt.date,
+        tables: Mapping[str, pa.Table],
+    ) -> dict[str, int]:
+        """Replace every row of one (experiment, day) in one transaction (delete, then insert).
+
+        Parameters
+        ----------
+        experiment_id : str
+        ds : datetime.date
+        tables : mapping of str to pyarrow.Table
+            Keys among ``arm_estimates``, ``arm_estimates_to_date``, ``position_weights``; each
+            table holds that destination's columns. Duplicate keys are dropped in SQL.
+
+        Returns
+        -------
+        dict of str to int
+            Rows in each destination for this (experiment, day) after the commit.
+        """
+        known = {"arm_estimates", "arm_estimates_to_date", "position_weights"}
+        unknown = sorted(set(tables) - known)
+        if unknown:
+            raise InputError(f"replace_partition: unknown destination {unknown[0]!r} (known: {', '.join(sorted(known))})")
+        self.ensure_tables()
+        params = {"experiment_id": experiment_id, "ds": ds}
+
+        def write() -> dict[str, int]:
+            with self.connect() as con:
+                con.execute("begin transaction")
+                try:
+                    counts = {}
+                    for dest, table in tables.items():
+                        con.execute(self.sql(f"results_delete_{dest}"), params)
+                        con.register("incoming", table)  # the connection is closed on failure
+                        con.execute(self.sql(f"results_insert_{dest}"), params)
+                        con.unregister("incoming")
+                        counts[dest] = table.num_rows
+                    con.execute("commit")
+                except BaseException:
+                    con.execute("rollback")
+                    raise
+                return counts
+
+        return self._retry_on_lock(write, what="write")
+
+    # -- lake and staged files ---------------------------------------------------------------
+    def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
+        """Bids of one experiment and day (partition-pruned read of ``lake_root``)."""
+        return self._lake_query("lake_read_partition", {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}, lake_root)
+
+    def read_lake_range(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date) -> pa.Table:
+        """Bids of one experiment on every day ``first_ds..ds`` (partition-pruned)."""
+        params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
+        return self._lake_query("lake_read_range", params, lake_root)
+
+    def clicks_position_weights(
+        self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date
+    ) -> pd.DataFrame:
+        """Clicks, impressions and their ratio per (arm, position) over ``first_ds..ds``."""
+        params = {"clicks_glob": lake_glob(clicks_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
+        return self._lake_query("clicks_position_weights", params, clicks_root).to_pandas()
+
+    def staged_columns(self, path: str | Path) -> dict[str, str]:
+        """Column name -> DuckDB type of a Parquet file (footer only)."""
+        with self.lake() as con:
+            return dict(con.execute(self.sql("staged_columns"), {"path": str(path)}).fetchall())
+
+    def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
+        """Auctions and bids per arm of a staged bids file."""
+        with self.lake() as con:
+            return con.execute(self.sql("staged_arm_counts"), {"path": str(path)}).df()
+
+    def _lake_query(self, name: str, params: Mapping[str, Any], root) -> pa.Table:
+        with self.lake() as con:
+            try:
+                return con.sql(self.sql(name), params=dict(params)).to_arrow_table()
+            except duckdb.IOException as exc:
+                if "No files found" in str(exc):
+                    raise InputError(f"{root}: no Parquet files under this root") from None
+                raise
+            except duckdb.BinderException as exc:
+                first = str(exc).splitlines()[0]
+                raise InputError(f"{root}: cannot read the lake with statement {name!r} ({first})") from None

@@ -1,0 +1,25 @@
+-- Worst data-check outcome per day of one experiment, from the data-checks table:
+-- 'error' or 'warning' when a check of that severity failed, else 'passed'.
+with source as (
+    select ds, severity, passed
+    from {{ schema }}.data_checks
+    where experiment_id = $experiment_id
+),
+
+ranked as (
+    select
+        ds,
+        max(case when passed then 0 when severity = 'error' then 2 else 1 end) as worst,
+        count(*) as n_checks,
+        count(*) filter (where not passed) as n_failed
+    from source
+    group by ds
+)
+
+select
+    ds,
+    case worst when 2 then 'error' when 1 then 'warning' else 'passed' end as worst_status,
+    n_checks,
+    n_failed
+from ranked
+order by ds

@@ -1,0 +1,4 @@
+-- Experiments that have daily estimates.
+select distinct experiment_id
+from {{ schema }}.arm_estimates
+order by experiment_id

@@ -1,0 +1,42 @@
+-- Revenue lift of each non-control arm over control, with its interval, per day ('day') and
+-- experiment-to-date ('to_date'), beside the arm's own revenue per auction.
+create or replace view {{ schema }}.arm_lift as
+with daily as (
+    select 'day' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, status
+    from {{ schema }}.arm_estimates
+),
+
+to_date as (
+    select 'to_date' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, status
+    from {{ schema }}.arm_estimates_to_date
+),
+
+combined as (
+    select * from daily
+    union all
+    select * from to_date
+),
+
+lift as (
+    select * from combined where metric = 'revenue_lift_vs_control'
+),
+
+revenue as (
+    select span, experiment_id, ds, arm, estimate as revenue_per_auction
+    from combined
+    where metric = 'revenue_per_auction'
+)
+
+select
+    lift.span,
+    lift.experiment_id,
+    lift.ds,
+    lift.arm,
+    lift.estimate as lift,
+    lift.std_error,
+    lift.ci_low,
+    lift.ci_high,
+    revenue.revenue_per_auction,
+    lift.status
+from lift
+left join revenue using (span, experiment_id, ds, arm)

@@ -1,0 +1,43 @@
+"""The SQL package: every file loads, holds exactly one statement, and identifiers are guarded."""
+
+from __future__ import annotations
+
+import duckdb
+import pytest
+
+from counterbid.estimators.errors import InputError
+from counterbid.sql import load_sql, quote_identifier, render_sql, sql_names, validate_identifier
+
+
+def test_every_file_is_one_statement():
+    names = sql_names()
+    assert "lake_read_partition" in names and "results_insert_arm_estimates" in names
+    for name in names:
+        text = render_sql(name, schema="main") if "{{" in load_sql(name) else load_sql(name)
+        assert len(duckdb.extract_statements(text)) == 1, name
+
+
+@pytest.mark.parametrize("bad", ["", "1abc", "a;drop table x", 'x"y', "a b", "a" * 64, None, 3])
+def test_bad_identifiers_are_rejected(bad):
+    with pytest.raises(InputError, match="letters, digits"):
+        validate_identifier(bad, what="schema")
+    with pytest.raises(InputError):
+        render_sql("results_create_schema", schema=bad)
+
+
+def test_identifier_is_quoted_so_reserved_words_work():
+    assert quote_identifier("select") == '"select"'
+    con = duckdb.connect()
+    con.execute(render_sql("results_create_schema", schema="select"))
+    assert ("select",) in con.execute("select schema_name from information_schema.schemata").fetchall()
+
+
+def test_placeholders_must_match():
+    with pytest.raises(InputError, match="needs identifier 'schema'"):
+        render_sql("results_create_schema")
+    with pytest.raises(InputError, match="no placeholder 'table'"):
+        render_sql("results_create_schema", schema="main", table="x")
+    with pytest.raises(InputError, match="no SQL statement"):
+        load_sql("no_such_statement")
+    with pytest.raises(InputError, match="lowercase"):
+        load_sql("../etc/passwd")
