@@ -1,18 +1,48 @@
 """Data and equilibrium checks: outcomes as data.
 
 Every check returns a :class:`CheckResult`; a failed ``error`` check stops the estimates of that
-(experiment, day), a failed ``warning`` check marks them. The statistical checks themselves live
-beside this type (pure numpy/scipy); the Great Expectations contract suite and the DuckDB
-aggregates live in ``counterbid.operators``.
+(experiment, day), a failed ``warning`` check marks them. The statistical checks live here (pure
+numpy/scipy); the Great Expectations contract suite and the DuckDB aggregates live in
+``counterbid.operators``.
+
+Thresholds come from :data:`DEFAULT_CHECKS`, overridden by the experiment spec's ``checks:``
+section and then by an explicit ``config`` mapping (see :func:`check_config`).
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+import copy
+import datetime as _dt
+import math
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-__all__ = ["CheckResult", "SEVERITIES", "worst_failure"]
+import numpy as np
+import pandas as pd
+from scipy import interpolate, stats
+
+from .allocation import allocation_rule, mixture_rule
+from .errors import InputError
+from .spec import Experiment
+
+__all__ = [
+    "CheckResult",
+    "DEFAULT_CHECKS",
+    "InferredValues",
+    "SEVERITIES",
+    "STATISTICAL_CHECKS",
+    "check_config",
+    "drift_check",
+    "equilibrium_checks",
+    "inferred_values",
+    "minimum_sample_checks",
+    "monotone_values_check",
+    "sample_ratio_check",
+    "shading_check",
+    "warmup_check",
+    "worst_failure",
+]
 
 #: Severities, mildest first.
 SEVERITIES = ("warning", "error")
@@ -62,3 +92,623 @@ def worst_failure(results: Iterable[CheckResult]) -> str | None:
         if not r.passed and (worst is None or SEVERITIES.index(r.severity) > SEVERITIES.index(worst)):
             worst = r.severity
     return worst
+
+
+# ---------------------------------------------------------------------------------------------
+# Thresholds
+# ---------------------------------------------------------------------------------------------
+
+#: Default severity and thresholds of every check, keyed by check group. The spec's ``checks:``
+#: section overrides any key, e.g. ``checks: {sample_ratio: {alpha: 1.0e-4}, drift: {severity:
+#: error}}``. ``contract`` configures the Great Expectations suite in ``counterbid.operators``.
+DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
+    # Auctions per arm vs designed shares, Pearson chi-square; fail when p < alpha.
+    "sample_ratio": {"severity": "error", "alpha": 1e-3},
+    # Auctions per arm, and per number of bidders (strata smaller than this are not estimated well).
+    "min_auctions_per_arm": {"severity": "error", "min_auctions": 100},
+    "min_auctions_per_stratum": {"severity": "warning", "min_auctions": 50},
+    # v(q) = b + b' x / x' on a least-squares cubic spline of the bid quantile function (per stratum):
+    # fail when v lies below its running maximum by more than `tolerance` x (its range) on more
+    # than `max_falling_share` of the grid on [q_low, q_high].
+    "monotone_values": {
+        "severity": "warning",
+        "max_falling_share": 0.05,
+        "tolerance": 0.03,
+        "knots": 16,
+        "grid": 200,
+        "q_low": 0.05,
+        "q_high": 0.95,
+        "min_bids": 1000,
+    },
+    # Implied value / bid on the same grid: fail when more than `max_outside_share` of it lies
+    # outside [min_ratio, max_ratio] (a value below the bid cannot be a best response).
+    "shading": {"severity": "warning", "min_ratio": 1.0, "max_ratio": 50.0, "max_outside_share": 0.05},
+    # Two-sample Kolmogorov-Smirnov, today's bids vs the trailing days' (per stratum, Bonferroni).
+    "drift": {"severity": "warning", "alpha": 1e-3, "trailing_days": 7, "min_bids": 200},
+    # Days since the experiment started or its shares changed; flagged while < days.
+    "warmup": {"severity": "warning", "days": 3, "changed_on": []},
+    # Great Expectations contract suite (counterbid.operators.contract).
+    "contract": {"severity": "error", "max_bidders": 200, "min_bidders": 2, "tie_tolerance": 1e-9, "sample_rows": 1000},
+}
+
+#: Names of the checks :func:`equilibrium_checks` returns, in order.
+STATISTICAL_CHECKS = (
+    "sample_ratio",
+    "min_auctions_per_arm",
+    "min_auctions_per_stratum",
+    "monotone_values",
+    "shading",
+    "drift",
+    "warmup",
+)
+
+
+def check_config(*layers: Mapping[str, Any] | None, source: str = "checks") -> dict[str, dict[str, Any]]:
+    """Merge threshold overrides onto :data:`DEFAULT_CHECKS` and validate them.
+
+    Parameters
+    ----------
+    *layers : mapping or None
+        Override mappings ``{group: {key: value}}``, applied in order (later wins): typically
+        the experiment's ``checks:`` section, then an operator's ``config``.
+    source : str
+        Name of the configuration in error messages.
+
+    Returns
+    -------
+    dict
+        A full copy of the defaults with the overrides applied.
+
+    Raises
+    ------
+    InputError
+        Unknown group or key, a severity other than ``warning``/``error``, or a value of the
+        wrong type; the message names ``group.key``.
+    """
+    merged = copy.deepcopy({k: dict(v) for k, v in DEFAULT_CHECKS.items()})
+    for layer in layers:
+        if layer is None:
+            continue
+        if not isinstance(layer, Mapping):
+            raise InputError(f"{source}: must be a mapping of check name to settings")
+        for group, settings in layer.items():
+            if group not in merged:
+                raise InputError(f"{source}: unknown check {group!r} (known: {', '.join(merged)})")
+            if not isinstance(settings, Mapping):
+                raise InputError(f"{source}.{group}: must be a mapping of setting to value")
+            for key, value in settings.items():
+                if key not in merged[group]:
+                    raise InputError(
+                        f"{source}.{group}: unknown setting {key!r} (known: {', '.join(merged[group])})"
+                    )
+                merged[group][key] = _setting(value, merged[group][key], f"{source}.{group}.{key}", key)
+    return merged
+
+
+def _setting(value: Any, default: Any, where: str, key: str) -> Any:
+    if key == "severity":
+        if value not in SEVERITIES:
+            raise InputError(f"{where}: must be one of {', '.join(SEVERITIES)}; got {value!r}")
+        return value
+    if key == "changed_on":
+        if isinstance(value, (str, bytes)) or not isinstance(value, Sequence):
+            raise InputError(f"{where}: must be a list of dates YYYY-MM-DD; got {value!r}")
+        return [_as_date(v, where) for v in value]
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise InputError(f"{where}: must be a finite number; got {value!r}")
+    if isinstance(default, int) and not isinstance(default, bool):
+        if int(value) != value or value < 0:
+            raise InputError(f"{where}: must be a whole number >= 0; got {value!r}")
+        return int(value)
+    if value < 0:
+        raise InputError(f"{where}: must be >= 0; got {value!r}")
+    return float(value)
+
+
+def _as_date(value: Any, where: str) -> _dt.date:
+    if isinstance(value, _dt.datetime):
+        return value.date()
+    if isinstance(value, _dt.date):
+        return value
+    try:
+        return _dt.date.fromisoformat(str(value))
+    except ValueError:
+        raise InputError(f"{where}: must be a date YYYY-MM-DD; got {value!r}") from None
+
+
+def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> dict[str, dict[str, Any]]:
+    """Full thresholds: defaults <- experiment.checks <- config (already-merged configs pass)."""
+    if config is not None and set(config) == set(DEFAULT_CHECKS) and all(
+        set(config[g]) == set(DEFAULT_CHECKS[g]) for g in DEFAULT_CHECKS
+    ):
+        return {k: dict(v) for k, v in config.items()}
+    spec = experiment.checks if experiment is not None else None
+    where = f"experiment {experiment.id!r} checks" if experiment is not None else "checks"
+    return check_config(spec, config, source=where)
+
+
+# ---------------------------------------------------------------------------------------------
+# Helpers over validated bids
+# ---------------------------------------------------------------------------------------------
+
+
+def _prepared(bids, experiment: Experiment, source: str):
+    from .arms import PreparedBids, prepare_bids
+
+    if isinstance(bids, PreparedBids):
+        return bids
+    return prepare_bids(bids, experiment, source=source)
+
+
+def _auction_table(data) -> tuple[np.ndarray, np.ndarray]:
+    """Arm index and number of bidders of each auction."""
+    arm = np.zeros(data.n_auctions, dtype=np.int64)
+    arm[data.auction] = data.arm
+    n = np.zeros(data.n_auctions, dtype=np.int64)
+    n[data.auction] = data.n_bidders
+    return arm, n
+
+
+def _result(name: str, cfg: Mapping[str, Any], passed: bool, observed, threshold, **details) -> CheckResult:
+    obs = None if observed is None or not np.isfinite(observed) else float(observed)
+    thr = None if threshold is None else float(threshold)
+    return CheckResult(name, cfg["severity"], bool(passed), obs, thr, _jsonable(details))
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    if isinstance(obj, (_dt.date,)):
+        return obj.isoformat()
+    return obj
+
+
+# ---------------------------------------------------------------------------------------------
+# Experiment checks
+# ---------------------------------------------------------------------------------------------
+
+
+def sample_ratio_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                       source: str = "bids") -> CheckResult:
+    """Sample-ratio mismatch: auctions per arm against the designed shares.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+        The day's bids (data contract) or the output of :func:`prepare_bids`.
+    experiment : Experiment
+    config : mapping, optional
+        Threshold overrides (``{"sample_ratio": {"alpha": ...}}``).
+    source : str
+        Name of the input in error messages.
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the p-value of Pearson's chi-square test (``k - 1`` degrees of freedom),
+        ``threshold`` is ``alpha``; ``details`` holds observed and expected auctions per arm.
+
+    Notes
+    -----
+    The arm is drawn per auction with the designed shares, so auction counts per arm are
+    multinomial; a small p-value means assignment or logging lost auctions of some arm, and
+    every per-arm comparison is then suspect. ``alpha = 0.001`` is common practice for this test.
+
+    References
+    ----------
+    .. [1] Pearson, K. (1900). On the criterion that a given system of deviations ... Phil. Mag. 50.
+    .. [2] ``scipy.stats.chisquare``.
+    """
+    cfg = _config(config, experiment)["sample_ratio"]
+    data = _prepared(bids, experiment, source)
+    arm, _ = _auction_table(data)
+    observed = np.bincount(arm, minlength=len(experiment.arms)).astype(float)
+    shares = np.asarray(experiment.shares, dtype=float)
+    expected = shares / shares.sum() * observed.sum()
+    counts = {a.name: int(c) for a, c in zip(experiment.arms, observed)}
+    exp_counts = {a.name: float(e) for a, e in zip(experiment.arms, expected)}
+    if len(experiment.arms) < 2:
+        return _result("sample_ratio", cfg, True, None, cfg["alpha"], auctions=counts, note="single arm")
+    res = stats.chisquare(observed, expected)
+    p = float(res.pvalue)
+    return _result("sample_ratio", cfg, p >= cfg["alpha"], p, cfg["alpha"],
+                   statistic=float(res.statistic), auctions=counts, expected=exp_counts)
+
+
+def minimum_sample_checks(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                          source: str = "bids") -> list[CheckResult]:
+    """Minimum auctions per arm and per stratum of bidder counts.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    config : mapping, optional
+    source : str
+
+    Returns
+    -------
+    list of CheckResult
+        ``min_auctions_per_arm`` (observed: the smallest arm's auctions) and
+        ``min_auctions_per_stratum`` (observed: the smallest stratum's auctions), each with the
+        counts in ``details``.
+
+    Notes
+    -----
+    The counterfactual estimate of every arm uses all bids, but the improper average, the
+    sample-ratio test and the position-weight measurement use each arm's own auctions; each
+    stratum (number of bidders) is inverted on its own bids. Common practice thresholds.
+    """
+    cfgs = _config(config, experiment)
+    data = _prepared(bids, experiment, source)
+    arm, n = _auction_table(data)
+    per_arm = np.bincount(arm, minlength=len(experiment.arms))
+    arm_cfg = cfgs["min_auctions_per_arm"]
+    smallest = int(per_arm.min())
+    out = [_result("min_auctions_per_arm", arm_cfg, smallest >= arm_cfg["min_auctions"], smallest,
+                   arm_cfg["min_auctions"], auctions={a.name: int(c) for a, c in zip(experiment.arms, per_arm)})]
+    strata, counts = np.unique(n, return_counts=True)
+    st_cfg = cfgs["min_auctions_per_stratum"]
+    low = {int(k): int(c) for k, c in zip(strata, counts) if c < st_cfg["min_auctions"]}
+    out.append(_result("min_auctions_per_stratum", st_cfg, not low, int(counts.min()), st_cfg["min_auctions"],
+                       auctions_by_bidders={int(k): int(c) for k, c in zip(strata, counts)}, below=low))
+    return out
+
+
+def warmup_check(experiment: Experiment, ds, *, config: Mapping[str, Any] | None = None) -> CheckResult:
+    """Flag days inside the warm-up window after the experiment starts or its shares change.
+
+    Parameters
+    ----------
+    experiment : Experiment
+        ``start`` and the ``warmup.changed_on`` dates of its ``checks`` are the change days.
+    ds : date-like
+        The day checked.
+    config : mapping, optional
+        ``{"warmup": {"days": ..., "changed_on": [...]}}``.
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the number of days since the last change on or before ``ds`` (``None``
+        when none is known), ``threshold`` the warm-up length; fails while observed < days.
+
+    Notes
+    -----
+    Bidders learn a new mixture by bidding against it; until they have, the bids are not an
+    equilibrium for the designed shares and the counterfactual estimates are biased. How long
+    that takes depends on the market (common practice: a few days).
+    """
+    cfg = _config(config, experiment)["warmup"]
+    day = _as_date(ds, "ds")
+    changes = sorted({d for d in [experiment.start, *cfg["changed_on"]] if d is not None and d <= day})
+    if not changes:
+        return _result("warmup", cfg, True, None, cfg["days"], note="no start or share change on or before ds")
+    last = changes[-1]
+    since = (day - last).days
+    return _result("warmup", cfg, since >= cfg["days"], since, cfg["days"], last_change=last,
+                   warmup_ends=last + _dt.timedelta(days=int(cfg["days"])))
+
+
+# ---------------------------------------------------------------------------------------------
+# Equilibrium checks
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class InferredValues:
+    """Smoothed bid quantile function and the values it implies, on a quantile grid.
+
+    Attributes
+    ----------
+    n_bidders : int
+    n_bids : int
+    q : ndarray
+        Quantile grid.
+    bid : ndarray
+        Smoothed bid quantile function ``b(q)``.
+    slope : ndarray
+        Its derivative ``b'(q)``.
+    value : ndarray
+        Implied value ``v(q) = b(q) + b'(q) x(q) / x'(q)`` for the mixture ``x``.
+    """
+
+    n_bidders: int
+    n_bids: int
+    q: np.ndarray
+    bid: np.ndarray
+    slope: np.ndarray
+    value: np.ndarray
+
+
+def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: int, *, knots: int = 16,
+                    grid: int = 200, q_low: float = 0.05, q_high: float = 0.95) -> InferredValues:
+    """Invert the first-order condition of the mixture on a smoothed bid quantile function.
+
+    Parameters
+    ----------
+    sorted_bids : ndarray
+        Bids of one stratum (auctions with ``n_bidders`` bids), sorted ascending.
+    experiment : Experiment
+        Arms and designed shares: the mixture ``x`` bidders answer.
+    n_bidders : int
+    knots : int, optional
+        Most interior knots (equally spaced in ``q``) of the least-squares cubic spline fitted to
+        the empirical quantile function; a stratum of ``N`` bids gets ``min(knots, sqrt(N)/5)``
+        (at least 2), so the spline's derivative stays stable on small days.
+    grid : int, optional
+        Grid points on ``[q_low, q_high]``.
+    q_low, q_high : float, optional
+        Trimmed ends: near ``q = 0`` and ``q = 1`` the spline's derivative is poorly determined.
+
+    Returns
+    -------
+    InferredValues
+
+    Notes
+    -----
+    ``b`` is ``scipy.interpolate.make_lsq_spline`` of the sorted bids on plotting positions
+    ``(i - 1/2)/N``; ``b'`` is its derivative; ``v = b + b' x / x'`` (METHOD.md, equilibrium
+    facts). Where the mixture is flat (``x' = 0``) the value is not identified and set to NaN.
+
+    References
+    ----------
+    .. [1] Guerre, E., Perrigne, I., Vuong, Q. (2000). Optimal nonparametric estimation of
+       first-price auctions. Econometrica 68(3), 525-574 (the inversion, with trimmed ends).
+    .. [2] Krishna, V. (2010). Auction Theory, 2nd ed., ch. 2.
+    """
+    b = np.asarray(sorted_bids, dtype=float)
+    big_n = b.size
+    if big_n < 8:
+        raise InputError(f"inferred_values: need at least 8 bids in the stratum of {n_bidders} bidders; got {big_n}")
+    if not 0 <= q_low < q_high <= 1:
+        raise InputError(f"`q_low` and `q_high` must satisfy 0 <= q_low < q_high <= 1; got {q_low}, {q_high}")
+    k_inner = int(max(2, min(int(knots), math.isqrt(big_n) // 5)))
+    pos = (np.arange(big_n) + 0.5) / big_n
+    inner = np.linspace(0.0, 1.0, k_inner + 2)[1:-1]
+    t = np.r_[[0.0] * 4, inner, [1.0] * 4]
+    spline = interpolate.make_lsq_spline(pos, b, t, k=3)
+    q = np.linspace(q_low, q_high, int(grid))
+    bq = spline(q)
+    slope = spline.derivative()(q)
+    rules = [allocation_rule(a.weights_for(n_bidders), n_bidders) for a in experiment.arms]
+    mix = mixture_rule(rules, experiment.shares)
+    x, dx = mix.value(q), mix.derivative(q)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = np.where(dx > 0, bq + slope * x / dx, np.nan)
+    return InferredValues(int(n_bidders), big_n, q, bq, slope, value)
+
+
+def _strata_bids(data) -> dict[int, np.ndarray]:
+    out = {}
+    for n in np.unique(data.n_bidders):
+        out[int(n)] = np.sort(data.bid[data.n_bidders == n], kind="stable")
+    return out
+
+
+def _inversions(data, experiment: Experiment, cfg: Mapping[str, Any]) -> tuple[list[InferredValues], dict[int, int]]:
+    fits, skipped = [], {}
+    for n, b in _strata_bids(data).items():
+        if b.size < cfg["min_bids"]:
+            skipped[n] = int(b.size)
+            continue
+        fits.append(inferred_values(b, experiment, n, knots=cfg["knots"], grid=cfg["grid"],
+                                    q_low=cfg["q_low"], q_high=cfg["q_high"]))
+    return fits, skipped
+
+
+def monotone_values_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                          source: str = "bids") -> CheckResult:
+    """The values implied by the bids must be non-decreasing in the bidder's quantile.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    config : mapping, optional
+        ``{"monotone_values": {"max_falling_share", "tolerance", "knots", "grid", "q_low", "q_high",
+        "min_bids"}}``.
+    source : str
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the largest (over strata) share of the grid where the implied value has
+        fallen: it lies below its running maximum by more than ``tolerance`` times the range of
+        the implied values (so sampling wiggles of the spline do not count); ``threshold`` is
+        ``max_falling_share``. Strata with fewer than ``min_bids`` bids
+        are skipped (listed in ``details``).
+
+    Notes
+    -----
+    Equilibrium bids of symmetric bidders with increasing values invert to an increasing
+    ``v(q) = b + b' x / x'``. A falling stretch means the bids are not such an equilibrium for
+    the designed mixture: bunching at a round bid, a bid cap, or bidders answering another
+    rule. The estimates then rest on a failed assumption.
+
+    References
+    ----------
+    .. [1] Guerre, Perrigne, Vuong (2000), Econometrica 68(3), sec. 3 (monotonicity of the
+       inverse bid function as a testable restriction).
+    """
+    cfg = _config(config, experiment)["monotone_values"]
+    data = _prepared(bids, experiment, source)
+    fits, skipped = _inversions(data, experiment, cfg)
+    if not fits:
+        return _result("monotone_values", cfg, True, None, cfg["max_falling_share"], skipped_strata=skipped,
+                       note="no stratum has enough bids")
+    per, worst_q = {}, {}
+    for f in fits:
+        v = f.value[np.isfinite(f.value)]
+        if v.size < 2:
+            per[f.n_bidders] = 0.0
+            continue
+        # Fallen: below the running maximum by more than `tolerance` of the implied values' range.
+        drop = np.maximum.accumulate(v) - v
+        fallen = drop > cfg["tolerance"] * (v.max() - v.min())
+        per[f.n_bidders] = float(fallen.mean())
+        if fallen.any():
+            worst_q[f.n_bidders] = float(f.q[np.isfinite(f.value)][int(np.argmax(drop))])
+    observed = max(per.values())
+    return _result("monotone_values", cfg, observed <= cfg["max_falling_share"], observed, cfg["max_falling_share"],
+                   falling_share_by_bidders=per, steepest_fall_at_quantile=worst_q, skipped_strata=skipped)
+
+
+def shading_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                  source: str = "bids") -> CheckResult:
+    """Implied value / bid ratios must lie within configured bounds.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    config : mapping, optional
+        ``{"shading": {"min_ratio", "max_ratio", "max_outside_share"}}``; the grid and the
+        smoothing are those of ``monotone_values``.
+    source : str
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the largest (over strata) share of the grid where ``v(q) / b(q)`` lies
+        outside ``[min_ratio, max_ratio]``; ``threshold`` is ``max_outside_share``. ``details``
+        holds the smallest and largest ratio per stratum.
+
+    Notes
+    -----
+    A pay-your-bid bidder never bids above its value (ratio >= 1). Where every bidder is shown
+    (``x(0) > 0``) low bidders shade heavily in equilibrium (ratios of 30 at ``q = 0.05`` with two
+    bidders), hence the loose default upper bound. A larger ratio means the bids barely respond
+    to position (gaps in the bid distribution, position weights that do not
+    match the ones bidders face, or bids in the wrong unit).
+    """
+    cfgs = _config(config, experiment)
+    cfg, inv_cfg = cfgs["shading"], cfgs["monotone_values"]
+    data = _prepared(bids, experiment, source)
+    fits, skipped = _inversions(data, experiment, inv_cfg)
+    if not fits:
+        return _result("shading", cfg, True, None, cfg["max_outside_share"], skipped_strata=skipped,
+                       note="no stratum has enough bids")
+    per, lo, hi = {}, {}, {}
+    for f in fits:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = f.value / f.bid
+        ok = np.isfinite(ratio)
+        if not ok.any():
+            per[f.n_bidders] = 0.0
+            continue
+        r = ratio[ok]
+        per[f.n_bidders] = float(np.mean((r < cfg["min_ratio"]) | (r > cfg["max_ratio"])))
+        lo[f.n_bidders], hi[f.n_bidders] = float(r.min()), float(r.max())
+    observed = max(per.values())
+    return _result("shading", cfg, observed <= cfg["max_outside_share"], observed, cfg["max_outside_share"],
+                   outside_share_by_bidders=per, min_ratio_by_bidders=lo, max_ratio_by_bidders=hi,
+                   bounds=[cfg["min_ratio"], cfg["max_ratio"]], skipped_strata=skipped)
+
+
+def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[str, Any] | None = None,
+                source: str = "bids") -> CheckResult:
+    """Two-sample Kolmogorov-Smirnov test of today's bids against the trailing days' bids.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+        Today's bids.
+    experiment : Experiment
+    history : pandas.DataFrame or PreparedBids, optional
+        Bids of the trailing days (the caller selects the window, ``drift.trailing_days``).
+        Without it the check passes with ``observed = None``.
+    config : mapping, optional
+        ``{"drift": {"alpha", "min_bids"}}``.
+    source : str
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the Bonferroni-adjusted smallest p-value over strata present on both
+        sides with at least ``min_bids`` bids; ``threshold`` is ``alpha``; ``details`` holds the
+        KS distance and p-value per stratum.
+
+    Notes
+    -----
+    The bid distribution depends on the number of bidders, so each stratum is compared with
+    itself. In a settled market the daily bid distribution is stable; a shift flags bidders
+    still adapting (after a launch or a share change) or a change in the market. The test
+    treats bids as independent draws (true of the simulator; real bidders repeat across days,
+    which makes it liberal).
+
+    References
+    ----------
+    .. [1] Smirnov, N. (1948). Table for estimating the goodness of fit of empirical
+       distributions. Ann. Math. Stat. 19(2). ``scipy.stats.ks_2samp``.
+    """
+    cfg = _config(config, experiment)["drift"]
+    if history is None:
+        return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
+    data = _prepared(bids, experiment, source)
+    try:
+        past = _prepared(history, experiment, f"{source} (trailing days)")
+    except InputError as exc:
+        if "no bids for experiment" in str(exc) or "single bidder" in str(exc):
+            return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
+        raise
+    now_s, past_s = _strata_bids(data), _strata_bids(past)
+    tests = {}
+    for n, b in now_s.items():
+        h = past_s.get(n)
+        if h is None or b.size < cfg["min_bids"] or h.size < cfg["min_bids"]:
+            continue
+        r = stats.ks_2samp(b, h)
+        tests[n] = {"statistic": float(r.statistic), "pvalue": float(r.pvalue), "bids": int(b.size),
+                    "trailing_bids": int(h.size)}
+    if not tests:
+        return _result("drift", cfg, True, None, cfg["alpha"], note="no stratum with enough bids on both sides")
+    p = min(1.0, min(t["pvalue"] for t in tests.values()) * len(tests))
+    return _result("drift", cfg, p >= cfg["alpha"], p, cfg["alpha"], by_bidders=tests)
+
+
+def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
+                       config: Mapping[str, Any] | None = None, source: str = "bids") -> list[CheckResult]:
+    """Every statistical check of one (experiment, day), in :data:`STATISTICAL_CHECKS` order.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame
+        The day's bids (data contract; validated by :func:`prepare_bids`, which raises
+        :class:`InputError` on a broken contract).
+    experiment : Experiment
+    ds : date-like, optional
+        The day; needed for ``warmup`` (skipped when ``None``).
+    history : pandas.DataFrame, optional
+        Bids of earlier days for ``drift``; when it has a ``ds`` column and ``ds`` is given, only
+        the ``drift.trailing_days`` days before ``ds`` are used.
+    config : mapping, optional
+        Threshold overrides on top of ``experiment.checks``.
+    source : str
+
+    Returns
+    -------
+    list of CheckResult
+    """
+    cfg = _config(config, experiment)
+    data = _prepared(bids, experiment, source)
+    if isinstance(history, pd.DataFrame) and ds is not None and "ds" in history.columns:
+        day = pd.Timestamp(_as_date(ds, "ds"))
+        hist_days = pd.to_datetime(history["ds"])
+        window = (hist_days < day) & (hist_days >= day - pd.Timedelta(days=int(cfg["drift"]["trailing_days"])))
+        history = history.loc[window.to_numpy()] if window.any() else None
+    out = [sample_ratio_check(data, experiment, config=cfg)]
+    out += minimum_sample_checks(data, experiment, config=cfg)
+    out.append(monotone_values_check(data, experiment, config=cfg))
+    out.append(shading_check(data, experiment, config=cfg))
+    out.append(drift_check(data, experiment, history, config=cfg, source=source))
+    if ds is not None:
+        out.append(warmup_check(experiment, ds, config=cfg))
+    return out
