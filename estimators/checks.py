@@ -35,9 +35,11 @@ __all__ = [
     "check_config",
     "drift_check",
     "equilibrium_checks",
+    "failure_summary",
     "inferred_values",
     "minimum_sample_checks",
     "monotone_values_check",
+    "results_frame",
     "sample_ratio_check",
     "shading_check",
     "warmup_check",
@@ -712,3 +714,34 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))
     return out
+
+
+def failure_summary(results: Iterable[CheckResult], *, experiment_id: str, ds=None) -> str:
+    """Compact text of the failed checks: experiment, day, each failure with observed vs threshold.
+
+    Parameters
+    ----------
+    results : iterable of CheckResult
+    experiment_id : str
+    ds : date-like, optional
+
+    Returns
+    -------
+    str
+        First line ``<experiment> <day>: <k> of <n> checks failed (worst: <severity>)``, then one
+        line per failed check (errors first); ``... all <n> checks passed`` when none failed.
+    """
+    results = list(results)
+    failed = sorted((r for r in results if not r.passed), key=lambda r: (-SEVERITIES.index(r.severity), r.check))
+    day = "" if ds is None else f" {_as_date(ds, 'ds').isoformat()}"
+    if not failed:
+        return f"{experiment_id}{day}: all {len(results)} checks passed"
+    lines = [f"{experiment_id}{day}: {len(failed)} of {len(results)} checks failed (worst: {worst_failure(failed)})"]
+    lines += [f"  {r.describe()}" for r in failed]
+    return "\n".join(lines)
+
+
+def results_frame(results: Iterable[CheckResult]) -> pd.DataFrame:
+    """Check results as a DataFrame with columns ``check, severity, passed, observed, threshold, details``."""
+    rows = [(r.check, r.severity, r.passed, r.observed, r.threshold, dict(r.details)) for r in results]
+    return pd.DataFrame(rows, columns=["check", "severity", "passed", "observed", "threshold", "details"])

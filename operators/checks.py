@@ -1,0 +1,189 @@
+"""Run every data check of one (experiment, day) on a DuckDB relation, and store the outcomes.
+
+Thin shell: the contract suite is :mod:`counterbid.operators.contract`, the statistical checks are
+:func:`counterbid.estimators.checks.equilibrium_checks`; this module fetches frames with the SQL in
+``counterbid.sql`` and writes the ``data_checks`` table in one transaction.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import logging
+from collections.abc import Iterable, Mapping
+from typing import Any
+
+from counterbid.estimators.checks import CheckResult, check_config, equilibrium_checks
+from counterbid.estimators.errors import InputError
+from counterbid.estimators.spec import Experiment
+from counterbid.sql import render_sql, validate_identifier
+
+from .contract import run_contract
+
+__all__ = ["DATA_CHECKS_COLUMNS", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+
+log = logging.getLogger(__name__)
+
+#: Columns of the ``data_checks`` table, in order.
+DATA_CHECKS_COLUMNS = (
+    "experiment_id", "ds", "check", "severity", "passed", "observed", "threshold", "details", "run_id", "checked_at",
+)
+
+
+def _day(ds: Any) -> dt.date:
+    if isinstance(ds, dt.datetime):
+        return ds.date()
+    if isinstance(ds, dt.date):
+        return ds
+    try:
+        return dt.date.fromisoformat(str(ds))
+    except ValueError:
+        raise InputError(f"`ds` must be a date YYYY-MM-DD; got {ds!r}") from None
+
+
+def run_checks(
+    con,
+    relation: str,
+    experiment: Experiment,
+    *,
+    ds,
+    history_relation: str | None = None,
+    config: Mapping[str, Any] | None = None,
+) -> list[CheckResult]:
+    """Every data check of one experiment's day: the contract suite, then the statistical checks.
+
+    Parameters
+    ----------
+    con : duckdb.DuckDBPyConnection
+        Connection holding the day's bids of ``experiment`` as a table or view.
+    relation : str
+        Name of that table or view (plain identifier; validated and quoted).
+    experiment : Experiment
+    ds : date-like
+        The day checked.
+    history_relation : str, optional
+        Table or view (same connection) with earlier days' bids and a ``ds`` column, any
+        experiments; the ``drift.trailing_days`` days before ``ds`` are compared with today.
+    config : mapping, optional
+        Threshold overrides on top of ``experiment.checks`` (see ``DEFAULT_CHECKS``).
+
+    Returns
+    -------
+    list of CheckResult
+        Contract checks first. When a contract check of severity ``error`` fails, the
+        statistical checks are not run (their inputs are not trustworthy).
+
+    Raises
+    ------
+    InputError
+        Bad relation name, bad ``ds`` or bad threshold configuration.
+    """
+    validate_identifier(relation, what="relation")
+    if history_relation is not None:
+        validate_identifier(history_relation, what="history_relation")
+    day = _day(ds)
+    cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
+    results = run_contract(con, relation, experiment, config=cfg)
+    if any(not r.passed and r.severity == "error" for r in results):
+        log.warning("%s %s: contract failed; statistical checks not run", experiment.id, day)
+        return results
+    bids = con.execute(render_sql("check_day_bids", relation=relation)).df()
+    history = None
+    if history_relation is not None:
+        first = day - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
+        history = con.execute(
+            render_sql("check_trailing_bids", relation=history_relation),
+            {"experiment_id": experiment.id, "first_day": first, "ds": day},
+        ).df()
+        if history.empty:
+            history = None
+    try:
+        results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg, source=relation)
+    except InputError as exc:  # a contract check configured as a warning let broken data through
+        results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
+    return results
+
+
+def ensure_data_checks_table(con, *, schema: str = "main") -> None:
+    """Create the schema and the ``data_checks`` table if they do not exist."""
+    con.execute(render_sql("results_create_schema", schema=schema))
+    con.execute(render_sql("data_checks_create", schema=schema))
+
+
+def write_check_results(
+    con,
+    results: Iterable[CheckResult],
+    *,
+    experiment_id: str,
+    ds,
+    run_id: str | None = None,
+    schema: str = "main",
+    checked_at: dt.datetime | None = None,
+) -> int:
+    """Replace the stored outcomes of one (experiment, day) with ``results``, in one transaction.
+
+    Parameters
+    ----------
+    con : duckdb.DuckDBPyConnection
+        Connection to the results database (not inside an open transaction).
+    results : iterable of CheckResult
+    experiment_id : str
+    ds : date-like
+    run_id : str, optional
+        Airflow run id (or any label of the run that produced the outcomes).
+    schema : str, optional
+        Schema of the ``data_checks`` table (validated identifier), default ``main``.
+    checked_at : datetime, optional
+        Defaults to now (UTC).
+
+    Returns
+    -------
+    int
+        Rows written.
+
+    Notes
+    -----
+    Delete-then-insert of the (experiment, day) inside ``begin ... commit``: re-running a day
+    leaves exactly one row per check, and a failure rolls back to the previous rows.
+    """
+    day = _day(ds)
+    stamp = checked_at or dt.datetime.now(dt.timezone.utc)
+    rows = [
+        {
+            "experiment_id": str(experiment_id),
+            "ds": day,
+            "check": r.check,
+            "severity": r.severity,
+            "passed": bool(r.passed),
+            "observed": r.observed,
+            "threshold": r.threshold,
+            "details": json.dumps(dict(r.details), sort_keys=True, default=str),
+            "run_id": run_id,
+            "checked_at": stamp,
+        }
+        for r in results
+    ]
+    names = [row["check"] for row in rows]
+    if len(set(names)) != len(names):
+        dup = next(n for n in names if names.count(n) > 1)
+        raise InputError(f"check results for {experiment_id} {day} name check {dup!r} twice")
+    ensure_data_checks_table(con, schema=schema)
+    delete = render_sql("data_checks_delete", schema=schema)
+    insert = render_sql("data_checks_insert", schema=schema)
+    con.execute("begin transaction")
+    try:
+        con.execute(delete, {"experiment_id": str(experiment_id), "ds": day})
+        for row in rows:
+            con.execute(insert, row)
+        con.execute("commit")
+    except BaseException:
+        con.execute("rollback")
+        raise
+    return len(rows)
+
+
+def read_check_results(con, *, experiment_id: str, ds, schema: str = "main"):
+    """Stored outcomes of one (experiment, day) as a DataFrame (failures first)."""
+    return con.execute(
+        render_sql("data_checks_select", schema=schema), {"experiment_id": str(experiment_id), "ds": _day(ds)}
+    ).df()

@@ -1,0 +1,215 @@
+"""The bids data contract as a Great Expectations suite, validated on frames fetched from DuckDB.
+
+Two small frames are validated, never the raw bids row by row in Python:
+
+* the relation's schema (``describe``), pivoted to one row of column types;
+* one row per auction, aggregated in DuckDB (``sql/check_auction_aggregates.sql``): bids,
+  distinct bidders, distinct arms, null keys, invalid bids and rank-vs-position violations.
+
+GE's SQL datasource returns no rows through the DuckDB SQLAlchemy driver, hence pandas frames.
+The suite is built in code for each experiment (its arms, floor and thresholds), in an ephemeral
+GE context with progress bars and usage statistics switched off.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Mapping
+from typing import Any
+
+import pandas as pd
+
+from counterbid.estimators.checks import CheckResult, check_config
+from counterbid.estimators.spec import Experiment
+from counterbid.sql import render_sql
+
+__all__ = ["CONTRACT_CHECKS", "COLUMN_TYPES", "build_suites", "run_contract"]
+
+log = logging.getLogger(__name__)
+
+_INTEGER = r"(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT)"
+#: Required columns and the DuckDB types (regular expressions) the contract accepts for them.
+COLUMN_TYPES: Mapping[str, str] = {
+    "experiment_id": r"^VARCHAR$",
+    "auction_id": rf"^(VARCHAR|{_INTEGER})$",
+    "bidder_id": rf"^(VARCHAR|{_INTEGER})$",
+    "arm": r"^VARCHAR$",
+    "bid": rf"^(DOUBLE|FLOAT|DECIMAL\(\d+,\s*\d+\)|{_INTEGER})$",
+    "position": rf"^{_INTEGER}$",
+}
+
+#: Check names of the contract, in the order they are reported.
+CONTRACT_CHECKS = (
+    "contract_columns",
+    "contract_types",
+    "contract_auction_id_not_null",
+    "contract_keys_not_null",
+    "contract_bids_valid",
+    "contract_experiment_id",
+    "contract_arm_in_spec",
+    "contract_bidder_unique",
+    "contract_bidders_per_auction",
+    "contract_one_arm",
+    "contract_rank_by_bid",
+)
+
+_RESULT_FORMAT = {"result_format": "SUMMARY", "unexpected_index_column_names": ["auction_id"], "partial_unexpected_count": 5}
+
+
+def _gx():
+    # Usage statistics off before GE is imported (it reads the variable at import).
+    os.environ.setdefault("GX_ANALYTICS_ENABLED", "False")
+    import great_expectations as gx
+
+    return gx
+
+
+def _context():
+    gx = _gx()
+    from great_expectations.data_context.types.base import ProgressBarsConfig
+
+    context = gx.get_context(mode="ephemeral")
+    context.variables.progress_bars = ProgressBarsConfig(globally=False, metric_calculations=False)
+    return context
+
+
+def build_suites(experiment: Experiment, *, config: Mapping[str, Any] | None = None, context=None) -> dict[str, Any]:
+    """The contract's two expectation suites for one experiment.
+
+    Parameters
+    ----------
+    experiment : Experiment
+        Arms (allowed ``arm`` values) and floor (smallest admissible bid).
+    config : mapping, optional
+        Overrides of the ``contract`` thresholds (``max_bidders``, ``min_bidders``,
+        ``tie_tolerance``) on top of ``experiment.checks``.
+    context : great_expectations data context, optional
+        Where the suites are registered; a new ephemeral context when not given.
+
+    Returns
+    -------
+    dict
+        ``{"schema": ExpectationSuite, "auctions": ExpectationSuite}``; every expectation
+        carries its check name in ``meta["check"]``.
+    """
+    gx = _gx()
+    from great_expectations import expectations as gxe
+
+    cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")["contract"]
+    context = _context() if context is None else context
+    schema = context.suites.add(gx.ExpectationSuite(name=f"{experiment.id}.schema"))
+    for column in COLUMN_TYPES:
+        schema.add_expectation(gxe.ExpectColumnToExist(column=column, meta={"check": "contract_columns"}))
+    for column, pattern in COLUMN_TYPES.items():
+        schema.add_expectation(
+            gxe.ExpectColumnValuesToMatchRegex(column=column, regex=pattern, meta={"check": "contract_types"})
+        )
+
+    auctions = context.suites.add(gx.ExpectationSuite(name=f"{experiment.id}.auctions"))
+    zero = {"min_value": 0, "max_value": 0}
+    for exp in (
+        gxe.ExpectColumnValuesToNotBeNull(column="auction_id", meta={"check": "contract_auction_id_not_null"}),
+        gxe.ExpectColumnValuesToBeBetween(column="null_keys", **zero, meta={"check": "contract_keys_not_null"}),
+        gxe.ExpectColumnValuesToBeBetween(column="bad_bids", **zero, meta={"check": "contract_bids_valid"}),
+        gxe.ExpectColumnValuesToBeInSet(column="experiment_id", value_set=[experiment.id],
+                                        meta={"check": "contract_experiment_id"}),
+        gxe.ExpectColumnValuesToBeInSet(column="arm_min", value_set=list(experiment.arm_names),
+                                        meta={"check": "contract_arm_in_spec"}),
+        gxe.ExpectColumnValuesToBeInSet(column="arm_max", value_set=list(experiment.arm_names),
+                                        meta={"check": "contract_arm_in_spec"}),
+        gxe.ExpectColumnPairValuesToBeEqual(column_A="n_bids", column_B="n_bidders",
+                                            meta={"check": "contract_bidder_unique"}),
+        gxe.ExpectColumnValuesToBeBetween(column="n_bids", min_value=cfg["min_bidders"], max_value=cfg["max_bidders"],
+                                          meta={"check": "contract_bidders_per_auction"}),
+        gxe.ExpectColumnValuesToBeBetween(column="n_arms", min_value=1, max_value=1, meta={"check": "contract_one_arm"}),
+        gxe.ExpectColumnValuesToBeBetween(column="rank_violations", **zero, meta={"check": "contract_rank_by_bid"}),
+    ):
+        auctions.add_expectation(exp)
+    return {"schema": schema, "auctions": auctions}
+
+
+def _validate(context, suite, frame: pd.DataFrame, name: str):
+    gx = _gx()
+    source = context.data_sources.add_pandas(f"{name}_source")
+    batch = source.add_dataframe_asset(name).add_batch_definition_whole_dataframe(f"{name}_batch")
+    definition = context.validation_definitions.add(gx.ValidationDefinition(name=f"{name}_validation", data=batch, suite=suite))
+    return definition.run(batch_parameters={"dataframe": frame}, result_format=_RESULT_FORMAT)
+
+
+def _fold(validation, severity: str, *, element: str) -> list[CheckResult]:
+    """One CheckResult per check name: failing elements summed, the first offenders listed."""
+    grouped: dict[str, dict[str, Any]] = {}
+    for r in validation.results:
+        check = r.expectation_config.meta.get("check", r.expectation_config.type)
+        g = grouped.setdefault(check, {"passed": True, "unexpected": 0, "elements": 0, "failures": []})
+        result = r.result or {}
+        g["passed"] = g["passed"] and bool(r.success)
+        g["elements"] = max(g["elements"], int(result.get("element_count") or 0))
+        g["unexpected"] += int(result.get("unexpected_count") or (0 if r.success else 1))
+        if not r.success:
+            failure: dict[str, Any] = {"expectation": r.expectation_config.type}
+            kwargs = r.expectation_config.kwargs
+            if "column" in kwargs:
+                failure["column"] = kwargs["column"]
+            exc = r.exception_info or {}
+            if exc.get("raised_exception"):
+                failure["error"] = str(exc.get("exception_message", "")).splitlines()[0][:200]
+            examples = result.get("partial_unexpected_index_list") or result.get("partial_unexpected_list") or []
+            failure["examples"] = [_plain(x) for x in examples[:5]]
+            g["failures"].append(failure)
+    return [
+        CheckResult(name, severity, g["passed"], float(g["unexpected"]), 0.0,
+                    {"unit": element, "checked": g["elements"], "failures": g["failures"]})
+        for name, g in grouped.items()
+    ]
+
+
+def _plain(x: Any) -> Any:
+    if isinstance(x, dict):
+        return {str(k): _plain(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_plain(v) for v in x]
+    if hasattr(x, "item"):
+        return x.item()
+    return x
+
+
+def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[str, Any] | None = None) -> list[CheckResult]:
+    """Validate the day's bids in a DuckDB relation against the data contract.
+
+    Parameters
+    ----------
+    con : duckdb.DuckDBPyConnection
+        Connection holding the bids as a table or view.
+    relation : str
+        Its name (a plain identifier, validated and quoted).
+    experiment : Experiment
+    config : mapping, optional
+        Overrides of the ``contract`` thresholds.
+
+    Returns
+    -------
+    list of CheckResult
+        One per name in :data:`CONTRACT_CHECKS` (the per-auction checks are skipped when the
+        schema check fails). ``observed`` is the number of failing auctions (or columns),
+        ``threshold`` 0; ``details`` lists up to five offending auction ids per expectation.
+    """
+    cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")["contract"]
+    severity = cfg["severity"]
+    context = _context()
+    suites = build_suites(experiment, config=config, context=context)
+    described = con.execute(render_sql("check_schema", relation=relation)).df()
+    types = pd.DataFrame([dict(zip(described["column_name"], described["column_type"].astype(str)))])
+    results = _fold(_validate(context, suites["schema"], types, "schema"), severity, element="columns")
+    if not all(r.passed for r in results):
+        log.warning("contract: schema of %s fails; per-auction checks skipped", relation)
+        return results
+    params = {"floor": float(experiment.floor or 0.0), "tie_tolerance": float(cfg["tie_tolerance"])}
+    auctions = con.execute(render_sql("check_auction_aggregates", relation=relation), params).df()
+    if auctions.empty:
+        results.append(CheckResult("contract_rows", severity, False, 0.0, 1.0, {"note": f"{relation} holds no bids"}))
+        return results
+    results += _fold(_validate(context, suites["auctions"], auctions, "auctions"), severity, element="auctions")
+    order = {name: i for i, name in enumerate(CONTRACT_CHECKS)}
+    return sorted(results, key=lambda r: order.get(r.check, len(order)))

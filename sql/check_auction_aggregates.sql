@@ -1,0 +1,47 @@
+-- One row per auction of the day's bids: the aggregates the contract suite validates, so a
+-- large partition is checked per auction in DuckDB rather than per bid in Python.
+-- $floor: smallest admissible bid (0 without a floor); $tie_tolerance: bids closer than this
+-- count as tied when checking that a higher bid never gets a worse position.
+with source as (
+    select
+        experiment_id,
+        auction_id,
+        bidder_id,
+        arm,
+        cast(bid as double) as bid,
+        position
+    from {{ relation }}
+),
+
+ranked as (
+    -- Highest bid placed at any worse position of the same auction (unshown bids rank last).
+    select
+        *,
+        max(bid) over (
+            partition by auction_id
+            order by position asc nulls last
+            rows between 1 following and unbounded following
+        ) as best_bid_below
+    from source
+)
+
+select
+    auction_id,
+    min(experiment_id) as experiment_id,
+    -- smallest and largest arm name: both must be arms of the spec
+    min(arm) as arm_min,
+    max(arm) as arm_max,
+    count(distinct arm) as n_arms,
+    count(*) as n_bids,
+    count(distinct bidder_id) as n_bidders,
+    count(*) filter (where experiment_id is null or bidder_id is null or arm is null) as null_keys,
+    count(*) filter (
+        where bid is null or isnan(bid) or isinf(bid) or bid < 0 or bid < $floor
+    ) as bad_bids,
+    -- a shown bid beaten (by more than the tie tolerance) by a bid at a worse position
+    count(*) filter (
+        where position is not null and best_bid_below > bid + $tie_tolerance
+    ) as rank_violations
+from ranked
+group by auction_id
+order by auction_id
