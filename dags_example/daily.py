@@ -1,0 +1,94 @@
+"""Daily per-arm estimates of the auction-rule experiments in a spec file.
+
+For each day: list the experiments active that day, then for each of them (dynamic task
+mapping) load the day's bids from the lake, validate them, estimate every arm, and write the
+results database. Catchup is on, so a new deployment or ``airflow backfill create`` fills past
+days; every write replaces its (experiment, day), so reruns never duplicate rows.
+
+Configuration (environment, read when the DAG is parsed; each is also a run parameter):
+``COUNTERBID_LAKE`` bid lake root, ``COUNTERBID_SPEC`` experiment spec, ``COUNTERBID_RESULTS``
+results DuckDB file (empty: the ``counterbid_results`` connection), ``COUNTERBID_STAGING``
+staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weights),
+``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import logging
+import os
+from pathlib import Path
+
+from airflow.sdk import dag, task, task_group
+
+from counterbid.operators.partition import active_experiment_ids
+from counterbid.operators.pipeline import (
+    EstimateArmsOperator,
+    LoadPartitionOperator,
+    ValidatePartitionOperator,
+    WriteEstimatesOperator,
+)
+
+log = logging.getLogger("counterbid.alerts")
+
+DAG_ID = "counterbid_daily"
+HERE = Path(__file__).resolve().parent
+START = dt.datetime.fromisoformat(os.environ.get("COUNTERBID_START", "2026-03-02")).replace(tzinfo=dt.timezone.utc)
+
+
+def alert_on_failure(context) -> None:
+    """Task failure alert: one line naming the task, the day and the error."""
+    ti = context.get("task_instance") or context.get("ti")
+    log.error(
+        "counterbid alert: %s failed for %s (try %s): %s",
+        getattr(ti, "task_id", "?"),
+        context.get("ds"),
+        getattr(ti, "try_number", "?"),
+        (str(context.get("exception") or "").splitlines() or [""])[0],
+    )
+
+
+@dag(
+    dag_id=DAG_ID,
+    schedule="@daily",
+    start_date=START,
+    catchup=True,
+    max_active_runs=4,
+    default_args={
+        "retries": int(os.environ.get("COUNTERBID_RETRIES", "2")),
+        "retry_delay": dt.timedelta(minutes=5),
+        "on_failure_callback": alert_on_failure,
+    },
+    params={
+        "lake_root": os.environ.get("COUNTERBID_LAKE", "/srv/quillfen/lake/bids"),
+        "spec_path": os.environ.get("COUNTERBID_SPEC", str(HERE / "experiments.yaml")),
+        "results_database": os.environ.get("COUNTERBID_RESULTS", ""),
+        "staging_root": os.environ.get("COUNTERBID_STAGING", "/tmp/counterbid-staging"),
+        "clicks_root": os.environ.get("COUNTERBID_CLICKS", ""),
+    },
+    tags=["counterbid"],
+    doc_md=__doc__,
+)
+def counterbid_daily():
+    @task
+    def active_experiments(params=None, ds=None) -> list[str]:
+        return active_experiment_ids(params["spec_path"], ds)
+
+    @task_group(group_id="experiment")
+    def one_experiment(experiment_id):
+        paths = {
+            "experiment_id": experiment_id,
+            "spec_path": "{{ params.spec_path }}",
+            "staging_root": "{{ params.staging_root }}",
+            "results_database": "{{ params.results_database }}",
+        }
+        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
+        validate = ValidatePartitionOperator(task_id="validate", **paths)
+        estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}", **paths)
+        write = WriteEstimatesOperator(task_id="write", **paths)
+        load >> validate >> estimate >> write
+
+    one_experiment.expand(experiment_id=active_experiments())
+
+
+counterbid_daily()
