@@ -1,0 +1,113 @@
+"""Two-step kernel baseline (Guerre, Perrigne & Vuong 2000, Econometrica 68(3), 525-574).
+
+Reference values: METHOD.md's closed forms (Krishna, Auction Theory, 2nd ed., 2010, ch. 2: with two
+bidders, values U[0, 2] and one slot, bids are U[0, 1] and half the value; revenue equivalence),
+and Myerson's formula by quadrature (``expected_revenue_per_auction``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import (
+    InputError,
+    allocation_rule,
+    estimate_arms,
+    expected_revenue_per_auction,
+    parse_experiments,
+    simulate_experiment,
+)
+from counterbid.estimators.two_step import pseudo_values, two_step_revenue
+
+CONTROL = [0.31, 0.17, 0.06, 0.02]
+TREATED = [0.36, 0.12, 0.05, 0.02]
+
+
+def experiment(arms):
+    doc = {"experiments": [{"id": "ts", "control_arm": arms[0][0],
+                            "arms": [{"name": a, "share": s, "position_weights": w} for a, s, w in arms]}]}
+    return parse_experiments(doc)["ts"]
+
+
+def test_pseudo_values_recover_values_two_bidders_uniform():
+    # Two bidders, U[0, 2] values, one slot: bids are U[0, 1], value = 2 x bid (Krishna ch. 2).
+    # x(q) = q, so the inversion is v = b + G(b)/g(b); on an exact bid grid the pseudo-values
+    # must be close to 2 b away from the (trimmed) boundaries.
+    big_n = 20_000
+    b = (np.arange(big_n) + 0.5) / big_n
+    pv = pseudo_values(b, allocation_rule([1.0], 2))
+    inner = (pv.quantile > 0.2) & (pv.quantile < 0.8)
+    np.testing.assert_allclose(pv.value[inner], 2 * pv.quantile[inner], atol=0.01)
+    assert 0 < pv.n_trimmed < 0.2 * big_n
+
+
+def test_trimming_grows_with_bandwidths_and_zero_keeps_every_bid():
+    b = np.sort(np.random.default_rng(3).random(5000))
+    rule = allocation_rule([1.0], 3)
+    counts = [pseudo_values(b, rule, trim_bandwidths=t).n_trimmed for t in (0.0, 1.0, 2.0)]
+    assert counts[0] == 0
+    assert counts[0] < counts[1] < counts[2]
+
+
+def test_revenue_equivalence_one_vs_two_slots():
+    # Three bidders, U[0, 2]: one slot and two identical slots both earn 1.0 per auction
+    # (METHOD.md; Krishna ch. 3, k(n-k)/(n+1) scaled by 2).
+    exp = experiment([("one", 0.5, [1.0]), ("two", 0.5, [1.0, 1.0])])
+    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=30_000, rng=11)
+    rev = two_step_revenue(bids, exp).set_index("arm")["estimate"]
+    assert rev["one"] == pytest.approx(1.0, abs=0.04)
+    assert rev["two"] == pytest.approx(1.0, abs=0.04)
+
+
+@pytest.mark.parametrize("values", [st.lognorm(0.5, scale=0.8), st.beta(2, 5, scale=3)], ids=["lognormal", "beta"])
+def test_agrees_with_estimator_and_truth_at_large_n(values):
+    # 100 000 bids, five bidders: the kernel step's smoothing and trimming biases are small here;
+    # both methods within 1 % of Myerson's formula (by quadrature) and of each other.
+    exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
+    bids = simulate_experiment(values, exp, n_bidders=5, n_auctions=20_000, rng=5)
+    two = two_step_revenue(bids, exp).set_index("arm")["estimate"]
+    est = estimate_arms(bids, exp).query("metric == 'revenue_per_auction'").set_index("arm")["estimate"]
+    for arm, w in (("control", CONTROL), ("treated", TREATED)):
+        truth = expected_revenue_per_auction(values, w, 5)
+        assert two[arm] == pytest.approx(truth, rel=0.01)
+        assert two[arm] == pytest.approx(est[arm], rel=0.01)
+
+
+def test_several_strata_weighted_by_auctions():
+    exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
+    values = st.lognorm(0.5, scale=0.8)
+    bids = simulate_experiment(values, exp, n_bidders={4: 0.5, 6: 0.5}, n_auctions=30_000, rng=2)
+    rev = two_step_revenue(bids, exp).set_index("arm")["estimate"]
+    truth = expected_revenue_per_auction(values, TREATED, {4: 0.5, 6: 0.5})
+    assert rev["treated"] == pytest.approx(truth, rel=0.02)
+
+
+def test_too_few_bids_give_nan_not_a_crash():
+    exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
+    bids = pd.DataFrame({"auction_id": [1, 1], "bidder_id": [1, 2], "arm": ["control"] * 2,
+                         "bid": [0.3, 0.5], "position": [2, 1]})
+    out = two_step_revenue(bids, exp)
+    assert out["estimate"].isna().all()
+    assert list(out.columns) == ["arm", "metric", "estimate", "n_auctions", "n_bids", "n_trimmed"]
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"trim_bandwidths": -1.0}, "trim_bandwidths"),
+    ({"bw_method": "widest"}, "bw_method"),
+])
+def test_bad_options(kwargs, match):
+    exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
+    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=200, rng=1)
+    with pytest.raises(InputError, match=match):
+        two_step_revenue(bids, exp, **kwargs)
+
+
+def test_bad_bids_are_reported_by_the_data_contract():
+    exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
+    bids = pd.DataFrame({"auction_id": [1, 1], "bidder_id": [1, 2], "arm": ["control"] * 2,
+                         "bid": [0.3, -1.0], "position": [2, 1]})
+    with pytest.raises(InputError, match="row 1 is negative"):
+        two_step_revenue(bids, exp, source="pilot.parquet")
