@@ -2,11 +2,22 @@
 
 from __future__ import annotations
 
+import atexit
 import datetime as dt
+import os
+import shutil
+import tempfile
 
 import pytest
 
+from counterbid.cli.backfill import use_isolated_airflow
 from counterbid.dags_example.lake import write_bid_lake
+
+if "COUNTERBID_TEST_AIRFLOW_HOME" not in os.environ:  # the hook imports Airflow: keep it off ~/airflow
+    _home = tempfile.mkdtemp(prefix="counterbid-test-airflow-")
+    if use_isolated_airflow(_home):
+        os.environ["COUNTERBID_TEST_AIRFLOW_HOME"] = _home
+        atexit.register(shutil.rmtree, _home, True)
 from counterbid.estimators import parse_experiments
 
 START = dt.date(2026, 3, 2)

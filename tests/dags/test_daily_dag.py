@@ -1,0 +1,111 @@
+"""The example daily DAG: import, and dag.test over three days of simulated bids (twice)."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import duckdb
+import pandas as pd
+import pyarrow.dataset as pads
+import pytest
+
+from counterbid.cli.backfill import DAG_ID, dags_folder, run_days
+from counterbid.dags_example.lake import write_bid_lake
+from counterbid.estimators import estimate_arms, load_experiments
+
+from .conftest import SPEC_TEXT, START
+
+DAYS = [START + dt.timedelta(days=k) for k in range(3)]
+VALUES = ["estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids"]
+
+
+@pytest.fixture(scope="module")
+def bag(airflow_db):
+    from airflow.dag_processing.dagbag import DagBag
+
+    return DagBag(dag_folder=str(dags_folder()))
+
+
+def test_dag_imports_without_errors_or_cycles(bag):
+    assert bag.import_errors == {}
+    dag = bag.get_dag(DAG_ID)
+    dag.check_cycle()  # raises on a cycle
+    assert dag.catchup is True
+    assert {"active_experiments", "experiment.load", "experiment.validate", "experiment.estimate", "experiment.write"} <= set(dag.task_dict)
+    write = dag.get_task("experiment.write")
+    assert write.pool == "counterbid_results_writer"
+    assert [a.name for a in write.outlets] == ["counterbid_arm_estimates"]
+    for task in dag.tasks:
+        assert task.on_failure_callback, task.task_id
+    assert dag.get_task("experiment.load").upstream_task_ids == {"active_experiments"}
+    # every task of the mapped group also depends on the list it is mapped over
+    assert dag.get_task("experiment.validate").upstream_task_ids == {"active_experiments", "experiment.load"}
+    assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate"}
+    assert dag.get_task("experiment.write").upstream_task_ids == {"active_experiments", "experiment.estimate"}
+
+
+@pytest.fixture(scope="module")
+def three_days(tmp_path_factory, bag):
+    root = tmp_path_factory.mktemp("e2e")
+    spec = root / "spec.yaml"
+    spec.write_text(SPEC_TEXT)
+    experiments = load_experiments(spec)
+    write_bid_lake(root / "bids", experiments.values(), start=START, days=3, auctions_per_day=3000, n_bidders=5, seed=21)
+    conf = {"lake_root": str(root / "bids"), "spec_path": str(spec), "results_database": str(root / "results.duckdb"),
+            "staging_root": str(root / "staging"), "clicks_root": ""}
+    runs = run_days(DAYS, conf=conf)
+    return root, conf, experiments, runs
+
+
+def _table(path, name):
+    with duckdb.connect(str(path), read_only=True) as con:
+        return con.execute(f"select * from {name} order by experiment_id, ds, arm, metric").df()
+
+
+def _lake(root):
+    df = pads.dataset(str(root / "bids"), format="parquet", partitioning="hive").to_table().to_pandas()
+    df["ds"] = pd.to_datetime(df["ds"]).dt.date
+    return df
+
+
+def test_three_days_match_estimate_arms_exactly(three_days):
+    root, conf, experiments, runs = three_days
+    assert [r.state for r in runs] == ["success"] * 3, [r.line() for r in runs]
+    daily = _table(conf["results_database"], "arm_estimates")
+    to_date = _table(conf["results_database"], "arm_estimates_to_date")
+    lake = _lake(root)
+    for exp in experiments.values():
+        bids = lake[lake["experiment_id"] == exp.id]
+        for k, day in enumerate(DAYS):
+            for table, frame in ((daily, bids[bids["ds"] == day]), (to_date, bids[bids["ds"] <= day])):
+                want = estimate_arms(frame.reset_index(drop=True), exp)
+                got = table[(table["experiment_id"] == exp.id) & (table["ds"] == pd.Timestamp(day))]
+                merged = want.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
+                assert (merged["_merge"] == "both").all() and len(got) == len(want)
+                for col in VALUES:
+                    pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
+                                                   check_dtype=False)
+            assert set(to_date.loc[to_date["experiment_id"] == exp.id, "first_ds"]) == {pd.Timestamp(START)}
+    assert set(daily["status"]) == {"ok"} and daily["run_id"].nunique() == 3
+
+
+def test_rerun_replaces_rows_without_duplicates(three_days):
+    root, conf, _, _ = three_days
+    before = {t: _table(conf["results_database"], t) for t in ("arm_estimates", "arm_estimates_to_date")}
+    runs = run_days(DAYS, conf=conf)
+    assert [r.state for r in runs] == ["success"] * 3
+    for name, old in before.items():
+        new = _table(conf["results_database"], name)
+        assert len(new) == len(old)
+        assert not new.duplicated(["experiment_id", "ds", "arm", "metric"]).any()
+        provenance = ["run_id", "computed_at"]
+        pd.testing.assert_frame_equal(new.drop(columns=provenance), old.drop(columns=provenance), check_exact=True)
+        assert set(new["run_id"]).isdisjoint(old["run_id"])  # really rewritten by the new runs
+    with duckdb.connect(conf["results_database"], read_only=True) as con:
+        lift = con.execute("select span, count(*) from arm_lift group by span order by span").fetchall()
+        cumulative = con.execute("select distinct ds from arm_estimates_cumulative").fetchall()
+        weights = con.execute("select count(*) from arm_position_weights").fetchone()[0]
+    assert lift == [("day", 6), ("to_date", 6)]  # 2 experiments x 1 non-control arm x 3 days
+    assert cumulative == [(DAYS[-1],)]
+    assert weights == 3 * (3 + 3 + 2 + 2)  # days x (positions of each arm)
+    assert not any((root / "staging").rglob("*.parquet"))

@@ -1,0 +1,197 @@
+"""The per-(experiment, day) steps against real Parquet files and a real DuckDB results file."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.dataset as pads
+import pyarrow.parquet as pq
+import pytest
+import scipy.stats as st
+
+from counterbid.dags_example.lake import write_bid_lake
+from counterbid.estimators import estimate_arms, expected_revenue_per_auction, parse_experiments
+from counterbid.estimators.errors import InputError
+from counterbid.operators import partition
+from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.pipeline import failed_checks_message
+
+START = dt.date(2026, 3, 2)
+SPEC = {"experiments": [{
+    "id": "tiles", "control_arm": "plain", "start": "2026-03-02",
+    "arms": [{"name": "plain", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
+             {"name": "bold", "share": 0.3, "position_weights": [0.5, 0.15, 0.05]}]}]}
+
+
+@pytest.fixture(scope="module")
+def experiment():
+    return parse_experiments(SPEC)["tiles"]
+
+
+@pytest.fixture(scope="module")
+def lake(tmp_path_factory, experiment):
+    root = tmp_path_factory.mktemp("lake")
+    write_bid_lake(root / "bids", [experiment], start=START, days=3, auctions_per_day=2000, n_bidders=4, seed=11,
+                   clicks_root=root / "clicks")
+    return root
+
+
+@pytest.fixture
+def hook(tmp_path):
+    return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+
+
+def _lake_day(root, day):
+    df = pads.dataset(str(root), format="parquet", partitioning="hive").to_table().to_pandas()
+    return df[pd.to_datetime(df["ds"]).dt.date == day].reset_index(drop=True)
+
+
+def _stage(hook, lake, experiment, tmp_path, day):
+    return partition.stage_partition(hook, lake_root=lake / "bids", experiment=experiment, ds=day,
+                                     staging_root=tmp_path / "stage")
+
+
+def test_stage_writes_the_day_and_the_experiment_to_date(hook, lake, experiment, tmp_path):
+    day = START + dt.timedelta(days=2)
+    out = _stage(hook, lake, experiment, tmp_path, day)
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    got_day = pq.read_table(staged.day).to_pandas()
+    got_all = pq.read_table(staged.to_date).to_pandas()
+    assert out["day_bids"] == len(got_day) == len(_lake_day(lake / "bids", day))
+    assert out["first_ds"] == str(START)
+    assert sorted(set(got_all["ds"])) == [START + dt.timedelta(days=k) for k in range(3)]
+    assert not any(p.name.endswith(".tmp") for p in staged.folder.iterdir())  # atomic writes leave no temp files
+
+
+def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
+    _stage(hook, lake, experiment, tmp_path, START)
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", START)
+    results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=START)
+    assert results and all(r.passed and r.severity == "error" for r in results)
+    assert partition.record_checks(staged, results) == "ok"
+    assert partition.load_checks(staged) == "ok"
+
+
+def _gate_on(hook, experiment, tmp_path, frame):
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", START)
+    staged.folder.mkdir(parents=True, exist_ok=True)
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), staged.day)
+    return staged, partition.schema_gate(hook, experiment=experiment, staged=staged)
+
+
+def test_schema_gate_lists_every_failing_column(hook, lake, experiment, tmp_path):
+    frame = _lake_day(lake / "bids", START).drop(columns=["bidder_id"])
+    frame["ds"] = pd.to_datetime(frame["ds"]).dt.date
+    frame["bid"] = frame["bid"].astype(str)  # text bids
+    staged, results = _gate_on(hook, experiment, tmp_path, frame)
+    failed = {r.check: r for r in results if not r.passed}
+    assert set(failed) == {"schema_column_bidder_id", "schema_column_bid"}
+    assert failed["schema_column_bid"].details["found"] == "VARCHAR"
+    assert failed["schema_column_bidder_id"].details["found"] == "missing"
+    message = failed_checks_message(results, where="tiles on 2026-03-02")
+    assert message.startswith("2 check(s) failed") and "schema_column_bid " in message and "bidder_id" in message
+    assert "observed 0 vs threshold 1" in message
+    assert partition.record_checks(staged, results) == "error"
+    with pytest.raises(InputError, match="status 'error'"):
+        partition.load_checks(staged)
+    recorded = json.loads(staged.checks.read_text())
+    assert {c["check"] for c in recorded["checks"] if not c["passed"]} == set(failed)
+
+
+def test_schema_gate_counts_unknown_arms_and_empty_days(hook, lake, experiment, tmp_path):
+    frame = _lake_day(lake / "bids", START)
+    frame["ds"] = pd.to_datetime(frame["ds"]).dt.date
+    frame.loc[frame.index[:7], "arm"] = "mystery"
+    _, results = _gate_on(hook, experiment, tmp_path, frame)
+    arms = next(r for r in results if r.check == "schema_known_arms")
+    assert not arms.passed and arms.observed == 7 and arms.details["unknown_arms"] == ["mystery"]
+    _, results = _gate_on(hook, experiment, tmp_path, frame.iloc[:0])
+    rows = next(r for r in results if r.check == "schema_rows")
+    assert not rows.passed and rows.observed == 0
+
+
+def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, experiment, tmp_path):
+    day = START + dt.timedelta(days=1)
+    _stage(hook, lake, experiment, tmp_path, day)
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    partition.record_checks(staged, partition.schema_gate(hook, experiment=experiment, staged=staged))
+    partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
+    want = estimate_arms(_lake_day(lake / "bids", day), experiment)
+    got = pq.read_table(staged.estimates_day).to_pandas()
+    pd.testing.assert_frame_equal(got[list(want.columns)], want, check_exact=True)
+    assert set(got["status"]) == {"ok"} and set(got["run_id"]) == {"t1"}
+    counts = partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage", cleanup=False)
+    assert counts == {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
+    first = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
+    partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
+    pd.testing.assert_frame_equal(hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}), first)
+    assert not staged.folder.exists()  # cleaned up after the commit
+    with pytest.raises(InputError, match="run the 'estimate' step"):
+        partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
+
+
+def test_estimate_refuses_a_partition_that_failed_its_checks(hook, lake, experiment, tmp_path):
+    _stage(hook, lake, experiment, tmp_path, START)
+    with pytest.raises(InputError, match="run the 'validate' step"):
+        partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=tmp_path / "stage", run_id="r")
+
+
+def test_measured_weights_are_monotone_isotonic_fits():
+    exp = parse_experiments({"experiments": [{"id": "m", "control_arm": "a", "arms": [
+        {"name": "a", "share": 0.5, "position_weights": "measured"},
+        {"name": "b", "share": 0.5, "position_weights": [0.3]}]}]})["m"]
+    clicks = pd.DataFrame({"arm": ["a"] * 4, "position": [1, 2, 3, 5], "impressions": [100, 100, 300, 50],
+                           "clicks": [40, 10, 45, 1]})
+    out = partition.measured_position_weights(clicks, exp)["a"]
+    # positions 1..3 (5 follows a gap); 0.10 < 0.15 violates monotonicity: pooled to (10+45)/400
+    assert out["weights"] == pytest.approx([0.4, 55 / 400, 55 / 400])
+    assert out["impressions"] == [100, 100, 300]
+    with pytest.raises(InputError, match="no clicks"):
+        partition.measured_position_weights(clicks.assign(arm="zzz"), exp)
+
+
+def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
+    """Bids simulated with known weights; estimated with weights measured from simulated clicks.
+
+    Reference: the arm's revenue in its own equilibrium (Myerson 1981, Lemma 3), computed by
+    ``expected_revenue_per_auction``; the estimate with measured weights must be within 4 SE.
+    """
+    truth = parse_experiments(SPEC)["tiles"]
+    measured = parse_experiments({"experiments": [dict(SPEC["experiments"][0], arms=[
+        dict(SPEC["experiments"][0]["arms"][0], position_weights="measured"), SPEC["experiments"][0]["arms"][1]])]})["tiles"]
+    values = st.lognorm(0.5, scale=0.8)
+    write_bid_lake(tmp_path / "bids", [truth], start=START, days=2, auctions_per_day=20000, n_bidders=4, seed=5,
+                   values=values, clicks_root=tmp_path / "clicks")
+    hook = ResultsHook(database=tmp_path / "r.duckdb")
+    day = START + dt.timedelta(days=1)
+    partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day, staging_root=tmp_path / "s")
+    staged = partition.StagedPartition.at(tmp_path / "s", "tiles", day)
+    partition.record_checks(staged, partition.schema_gate(hook, experiment=measured, staged=staged))
+    partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r",
+                                 clicks_root=tmp_path / "clicks", click_window_days=2)
+    weights = pq.read_table(staged.weights).to_pandas()
+    plain = weights[weights["arm"] == "plain"]
+    assert set(plain["source"]) == {"measured"} and plain["first_click_ds"].iloc[0] == START
+    assert plain["weight"].to_numpy() == pytest.approx([0.4, 0.2, 0.1], abs=0.01)
+    est = pq.read_table(staged.estimates_to_date).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
+    want = expected_revenue_per_auction(values, [0.4, 0.2, 0.1], 4)
+    assert abs(est.loc["plain", "estimate"] - want) < 4 * est.loc["plain", "std_error"] + 0.01 * want
+    with pytest.raises(InputError, match="needs a click log"):
+        partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r")
+
+
+def test_active_experiments_and_bad_inputs(tmp_path):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text("experiments:\n  - id: a\n    start: 2026-03-05\n    end: 2026-03-06\n    arms:\n"
+                    "      - {name: x, share: 1.0, position_weights: [1.0]}\n  - id: b\n    arms:\n"
+                    "      - {name: x, share: 1.0, position_weights: [1.0]}\n")
+    assert partition.active_experiment_ids(spec, "2026-03-04") == ["b"]
+    assert partition.active_experiment_ids(spec, "2026-03-06T00:00:00+00:00") == ["a", "b"]
+    with pytest.raises(InputError, match="ds: must be a date"):
+        partition.parse_day("yesterday")
+    with pytest.raises(InputError, match="cannot name a staging folder"):
+        partition.StagedPartition.at(tmp_path, "../escape", START)
