@@ -28,14 +28,14 @@ __all__ = ["CONTRACT_CHECKS", "COLUMN_TYPES", "build_suites", "run_contract"]
 
 log = logging.getLogger(__name__)
 
-_INTEGER = r"(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT)"
+_INTEGER = r"(?:TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT)"
 #: Required columns and the DuckDB types (regular expressions) the contract accepts for them.
 COLUMN_TYPES: Mapping[str, str] = {
     "experiment_id": r"^VARCHAR$",
-    "auction_id": rf"^(VARCHAR|{_INTEGER})$",
-    "bidder_id": rf"^(VARCHAR|{_INTEGER})$",
+    "auction_id": rf"^(?:VARCHAR|{_INTEGER})$",
+    "bidder_id": rf"^(?:VARCHAR|{_INTEGER})$",
     "arm": r"^VARCHAR$",
-    "bid": rf"^(DOUBLE|FLOAT|DECIMAL\(\d+,\s*\d+\)|{_INTEGER})$",
+    "bid": rf"^(?:DOUBLE|FLOAT|DECIMAL\(\d+,\s*\d+\)|{_INTEGER})$",
     "position": rf"^{_INTEGER}$",
 }
 

@@ -1,0 +1,138 @@
+"""The Great Expectations contract suite on real DuckDB relations: one broken rule per case."""
+
+from __future__ import annotations
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import parse_experiments, simulate_experiment
+from counterbid.operators.contract import CONTRACT_CHECKS, build_suites, run_contract
+
+SPEC = {
+    "experiments": [
+        {
+            "id": "gallery-premium",
+            "control_arm": "one-premium",
+            "floor": 0.01,
+            "arms": [
+                {"name": "one-premium", "share": 0.5, "position_weights": [0.40, 0.08, 0.04]},
+                {"name": "two-premium", "share": 0.5, "position_weights": [0.30, 0.26, 0.04]},
+            ],
+        }
+    ]
+}
+EXP = parse_experiments(SPEC)["gallery-premium"]
+
+
+@pytest.fixture(scope="module")
+def clean() -> pd.DataFrame:
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), EXP, n_bidders=4, n_auctions=400, rng=3, ds="2026-03-05")
+    bids["bid"] = bids["bid"] + 0.02  # above the floor
+    return bids.drop(columns=["value", "clicks"])
+
+
+def _run(frame: pd.DataFrame, **kw):
+    con = duckdb.connect()
+    con.register("day_bids", frame)
+    return {r.check: r for r in run_contract(con, "day_bids", EXP, **kw)}
+
+
+def _failed(results):
+    return sorted(name for name, r in results.items() if not r.passed)
+
+
+def test_clean_partition_passes_every_expectation(clean):
+    results = _run(clean)
+    assert list(results) == list(CONTRACT_CHECKS)
+    assert _failed(results) == []
+    assert results["contract_rank_by_bid"].details["checked"] == 400
+    assert all(r.severity == "error" for r in results.values())
+
+
+def test_suite_is_built_in_code_with_check_names():
+    suites = build_suites(EXP, config={"contract": {"max_bidders": 12}})
+    auctions = suites["auctions"].expectations
+    names = {e.meta["check"] for e in auctions}
+    assert {"contract_bidders_per_auction", "contract_rank_by_bid", "contract_arm_in_spec"} <= names
+    between = [e for e in auctions if e.meta["check"] == "contract_bidders_per_auction"][0]
+    assert (between.min_value, between.max_value) == (2, 12)
+
+
+def _first_auction(frame):
+    return frame["auction_id"] == frame["auction_id"].iloc[0]
+
+
+@pytest.mark.parametrize(
+    ("mutate", "expected"),
+    [
+        (lambda f: f.assign(bid=np.where(_first_auction(f), np.nan, f["bid"])), "contract_bids_valid"),
+        (lambda f: f.assign(bid=np.where(_first_auction(f), np.inf, f["bid"])), "contract_bids_valid"),
+        (lambda f: f.assign(bid=np.where(_first_auction(f), -1.0, f["bid"])), "contract_bids_valid"),
+        (lambda f: f.assign(bid=np.where(_first_auction(f), 0.005, f["bid"])), "contract_bids_valid"),  # below floor
+        (lambda f: f.assign(bidder_id=f["bidder_id"].astype("Int64").mask(_first_auction(f))), "contract_keys_not_null"),
+        (lambda f: f.assign(arm=np.where(_first_auction(f), "ghost-arm", f["arm"])), "contract_arm_in_spec"),
+        (lambda f: f.assign(experiment_id="other-test"), "contract_experiment_id"),
+    ],
+)
+def test_each_row_rule_fires(clean, mutate, expected):
+    results = _run(mutate(clean.copy()))
+    assert expected in _failed(results)
+    r = results[expected]
+    assert r.observed >= 1 and r.threshold == 0
+    examples = [x for failure in r.details["failures"] for x in failure["examples"]]
+    if expected != "contract_experiment_id":
+        assert examples[0]["auction_id"] == int(clean["auction_id"].iloc[0])
+
+
+def test_duplicate_bidder_in_an_auction(clean):
+    f = clean.copy()
+    f.loc[1, "bidder_id"] = f.loc[0, "bidder_id"]
+    assert "contract_bidder_unique" in _failed(_run(f))
+
+
+def test_bids_per_auction_bounds(clean):
+    single = clean[~((clean["auction_id"] == clean["auction_id"].iloc[0]) & (clean.index % 4 != 0))]
+    assert _failed(_run(single)) == ["contract_bidders_per_auction"]
+    assert _failed(_run(clean, config={"contract": {"max_bidders": 3}})) == ["contract_bidders_per_auction"]
+
+
+def test_one_arm_per_auction(clean):
+    f = clean.copy()
+    first = f.index[_first_auction(f)]
+    other = "two-premium" if f.loc[first[0], "arm"] == "one-premium" else "one-premium"
+    f.loc[first[-1], "arm"] = other
+    assert _failed(_run(f)) == ["contract_one_arm"]
+
+
+def test_rank_by_bid_with_tie_tolerance(clean):
+    f = clean.copy()
+    first = f.index[_first_auction(f)]  # rows of auction 0, sorted by bid (top first)
+    top, second = first[0], first[1]
+    f.loc[second, "bid"] = f.loc[top, "bid"] + 1e-12  # a tie within tolerance: fine
+    assert _failed(_run(f)) == []
+    f.loc[second, "bid"] = f.loc[top, "bid"] + 0.5  # position 2 outbids position 1
+    results = _run(f)
+    assert _failed(results) == ["contract_rank_by_bid"]
+    assert results["contract_rank_by_bid"].observed == 1
+    # an unshown bidder that outbids a shown one
+    g = clean.copy()
+    g.loc[first[0], "position"] = pd.NA
+    assert _failed(_run(g)) == ["contract_rank_by_bid"]
+
+
+def test_schema_failures_stop_before_the_aggregates(clean):
+    results = _run(clean.drop(columns=["position"]))
+    assert _failed(results) == ["contract_columns", "contract_types"]
+    assert "contract_rank_by_bid" not in results
+    typed = _run(clean.assign(bid=clean["bid"].map(lambda b: f"{b:.4f}")))
+    assert _failed(typed) == ["contract_types"]
+    failure = typed["contract_types"].details["failures"][0]
+    assert failure["column"] == "bid"
+
+
+def test_empty_relation(clean):
+    results = _run(clean.iloc[:0])
+    assert _failed(results) == ["contract_rows"]
