@@ -1,0 +1,98 @@
+"""``counterbid check`` on a simulated lake: the table, exit 1 on an error check, exit 2 on bad input."""
+
+from __future__ import annotations
+
+import json
+
+import pandas as pd
+import pytest
+
+from counterbid.cli import main
+
+SPEC = """\
+# Invented Quillfen layouts
+experiments:
+  - id: gallery-premium
+    control_arm: one-premium
+    start: 2026-03-02
+    arms:
+      - {name: one-premium, share: 0.5, position_weights: [0.40, 0.08, 0.04]}
+      - {name: two-premium, share: 0.5, position_weights: [0.30, 0.26, 0.04]}
+  - id: featured-rows
+    control_arm: classic
+    arms:
+      - {name: classic,  share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
+      - {name: wide-top, share: 0.1, position_weights: [0.36, 0.12, 0.05, 0.02]}
+"""
+
+
+@pytest.fixture(scope="module")
+def lake(tmp_path_factory):
+    root = tmp_path_factory.mktemp("cli_check")
+    spec = root / "experiments.yaml"
+    spec.write_text(SPEC)
+    out = root / "lake"
+    code = main(["simulate", "--experiment", str(spec), "--experiment-id", "gallery-premium", "--out", str(out),
+                 "--start", "2026-03-03", "--days", "3", "--auctions-per-day", "1500", "--bidders", "5", "--seed", "3"])
+    assert code == 0
+    return spec, out
+
+
+def test_table_flags_warmup_days_and_exits_zero_on_warnings(lake, capsys):
+    spec, out = lake
+    code = main(["check", "--bids", str(out), "--experiment", str(spec), "--experiment-id", "gallery-premium"])
+    text = capsys.readouterr().out
+    assert code == 0
+    lines = text.splitlines()
+    assert lines[0].startswith("experiment gallery-premium: 3 day(s), 2 failed check(s), worst: warning")
+    warm = [ln.split() for ln in lines if " warmup " in f" {ln} "]
+    assert [(w[0], w[3], w[4]) for w in warm] == [("2026-03-03", "NO", "1"), ("2026-03-04", "NO", "2"),
+                                                  ("2026-03-05", "yes", "3")]
+
+
+def test_json_output_rows(lake, capsys):
+    spec, out = lake
+    assert main(["check", "--bids", str(out), "--experiment", str(spec), "--experiment-id", "gallery-premium",
+                 "--format", "json"]) == 0
+    payload = json.loads(capsys.readouterr().out)
+    assert payload["worst"] == "warning"
+    drift = [r for r in payload["rows"] if r["check"] == "drift"]
+    assert [r["ds"] for r in drift] == ["2026-03-03", "2026-03-04", "2026-03-05"]
+    assert drift[0]["observed"] is None and drift[1]["details"]["by_bidders"]["5"]["trailing_bids"] == 7500
+
+
+def test_error_check_exits_one(lake, tmp_path, capsys):
+    spec, out = lake
+    day = pd.read_parquet(out / "ds=2026-03-04" / "gallery-premium.parquet")
+    day.loc[1, "bidder_id"] = day.loc[0, "bidder_id"]  # a bidder twice in one auction
+    bad = tmp_path / "bad.parquet"
+    day.to_parquet(bad, index=False)
+    code = main(["check", "--bids", str(bad), "--experiment", str(spec), "--experiment-id", "gallery-premium",
+                 "--ds", "2026-03-04", "--format", "csv"])
+    table = pd.read_csv(pd.io.common.StringIO(capsys.readouterr().out))
+    assert code == 1
+    # a failed contract stops the statistical checks: the one failure is the contract rule
+    assert table.loc[~table["passed"], "check"].tolist() == ["contract_bidder_unique"]
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--bids", "{root}/nowhere"], "nowhere: no such file or folder"),
+        (["--bids", "{lake}", "--experiment-id", "nope"], "no experiment with id 'nope'"),
+        (["--bids", "{lake}", "--ds", "2026-3-4x"], None),
+        (["--bids", "{lake}"], "holds 2 experiments"),
+    ],
+)
+def test_bad_input_exits_two_with_one_line(lake, capsys, args, message):
+    spec, out = lake
+    argv = ["check", "--experiment", str(spec)] + [a.format(root=out.parent, lake=out) for a in args]
+    if message is None:  # --ds is only used when the bids carry no ds column; a bad one is still refused
+        day = out / "ds=2026-03-04" / "gallery-premium.parquet"
+        argv = ["check", "--experiment", str(spec), "--experiment-id", "gallery-premium", "--bids", str(day),
+                "--ds", "2026-3-4x"]
+        message = "--ds: must be a date YYYY-MM-DD"
+    code = main(argv)
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and err[0].startswith("counterbid: error: ") and message in err[0]
