@@ -15,11 +15,23 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--experiment", required=True, metavar="PATH", help="experiment spec (YAML)")
     p.add_argument("--experiment-id", metavar="ID", help="which experiment of the spec (needed when it holds several)")
     p.add_argument("--ds", metavar="YYYY-MM-DD",
-                   help="day of the bids when they have no ds column (default: today, UTC)")
+                   help="check this day only (earlier days of the log serve as trailing days); the day of "
+                        "all bids when they have no ds column (default then: today, UTC)")
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 
-def _days(bids, fallback: str | None):
+def _parse_day(text: str | None):
+    from counterbid.estimators.errors import InputError
+
+    if text is None:
+        return None
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"--ds: must be a date YYYY-MM-DD; got {text!r}") from None
+
+
+def _days(bids, fallback: dt.date | None):
     import pandas as pd
 
     from counterbid.estimators.errors import InputError
@@ -32,13 +44,7 @@ def _days(bids, fallback: str | None):
         if days.isna().any():
             raise InputError(f"column 'ds' row {int(days.isna().to_numpy().argmax())} is null")
         return days
-    if fallback is None:
-        day = dt.datetime.now(dt.timezone.utc).date()
-    else:
-        try:
-            day = dt.date.fromisoformat(fallback)
-        except ValueError:
-            raise InputError(f"--ds: must be a date YYYY-MM-DD; got {fallback!r}") from None
+    day = dt.datetime.now(dt.timezone.utc).date() if fallback is None else fallback
     return pd.Series([day] * len(bids), index=bids.index)
 
 
@@ -49,16 +55,16 @@ def run(args: argparse.Namespace) -> int:
     from counterbid.cli.estimate import _choose_experiment
     from counterbid.cli.io import read_bids
     from counterbid.estimators.checks import results_frame, worst_failure
+    from counterbid.estimators.errors import InputError
     from counterbid.operators.checks import run_checks
 
+    only_day = _parse_day(args.ds)
     bids = read_bids(args.bids)
     experiment = _choose_experiment(args.experiment, args.experiment_id, bids)
     if "experiment_id" in bids.columns:
         bids = bids.loc[(bids["experiment_id"].astype("string") == experiment.id).fillna(False).to_numpy(bool)]
-    bids = bids.assign(ds=_days(bids, args.ds)) if len(bids) else bids
+    bids = bids.assign(ds=_days(bids, only_day)) if len(bids) else bids
     if len(bids) == 0:
-        from counterbid.estimators.errors import InputError
-
         raise InputError(f"{args.bids}: no bids for experiment {experiment.id!r}")
     for col in bids.columns:  # Parquet dictionary columns come back as categoricals
         if isinstance(bids[col].dtype, pd.CategoricalDtype):
@@ -67,7 +73,12 @@ def run(args: argparse.Namespace) -> int:
     frames, worst = [], None
     history = bids.drop(columns=[c for c in ("value", "clicks") if c in bids.columns])
     con.register("trailing_bids", history)
-    for day in sorted(bids["ds"].unique()):
+    days = sorted(bids["ds"].unique())
+    if only_day is not None:
+        if only_day not in days:
+            raise InputError(f"{args.bids}: no bids of experiment {experiment.id!r} on {only_day}")
+        days = [only_day]
+    for day in days:
         con.register("day_bids", bids.loc[(bids["ds"] == day).to_numpy()].drop(columns=["ds"]))
         results = run_checks(con, "day_bids", experiment, ds=day, history_relation="trailing_bids")
         con.unregister("day_bids")

@@ -80,19 +80,24 @@ def test_error_check_exits_one(lake, tmp_path, capsys):
     [
         (["--bids", "{root}/nowhere"], "nowhere: no such file or folder"),
         (["--bids", "{lake}", "--experiment-id", "nope"], "no experiment with id 'nope'"),
-        (["--bids", "{lake}", "--ds", "2026-3-4x"], None),
-        (["--bids", "{lake}"], "holds 2 experiments"),
+        (["--bids", "{lake}", "--ds", "2026-3-4x"], "--ds: must be a date YYYY-MM-DD"),
+        (["--bids", "{lake}", "--ds", "2026-04-01"], "no bids of experiment 'gallery-premium' on 2026-04-01"),
+        (["--bids", "{lake}", "--experiment-id", "featured-rows"], "no bids for experiment 'featured-rows'"),
     ],
 )
 def test_bad_input_exits_two_with_one_line(lake, capsys, args, message):
     spec, out = lake
     argv = ["check", "--experiment", str(spec)] + [a.format(root=out.parent, lake=out) for a in args]
-    if message is None:  # --ds is only used when the bids carry no ds column; a bad one is still refused
-        day = out / "ds=2026-03-04" / "gallery-premium.parquet"
-        argv = ["check", "--experiment", str(spec), "--experiment-id", "gallery-premium", "--bids", str(day),
-                "--ds", "2026-3-4x"]
-        message = "--ds: must be a date YYYY-MM-DD"
     code = main(argv)
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len(err) == 1 and err[0].startswith("counterbid: error: ") and message in err[0]
+
+
+def test_one_day_with_the_earlier_days_as_trailing(lake, capsys):
+    spec, out = lake
+    assert main(["check", "--bids", str(out), "--experiment", str(spec), "--ds", "2026-03-05", "--format", "json"]) == 0
+    rows = json.loads(capsys.readouterr().out)["rows"]
+    assert {r["ds"] for r in rows} == {"2026-03-05"}
+    drift = next(r for r in rows if r["check"] == "drift")
+    assert drift["details"]["by_bidders"]["5"]["trailing_bids"] == 15000
