@@ -236,10 +236,33 @@ class ResultsHook(BaseHook):
         with self.lake() as con:
             return dict(con.execute(self.sql("staged_columns"), {"path": str(path)}).fetchall())
 
+    def staged_null_counts(self, path: str | Path) -> dict[str, int]:
+        """Nulls per always-required contract column of a staged bids file."""
+        with self.lake() as con:
+            cur = con.execute(self.sql("staged_null_counts"), {"path": str(path)})
+            names = [d[0] for d in cur.description]
+            return dict(zip(names, (int(v) for v in cur.fetchone())))
+
     def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
         """Auctions and bids per arm of a staged bids file."""
         with self.lake() as con:
             return con.execute(self.sql("staged_arm_counts"), {"path": str(path)}).df()
+
+    @contextlib.contextmanager
+    def staged_relations(self, *, day: str | Path, to_date: str | Path, ds: dt.date) -> Iterator[duckdb.DuckDBPyConnection]:
+        """In-memory connection with temp tables ``staged_day`` and ``staged_history`` (days before ``ds``)."""
+        with self.lake() as con:
+            con.execute(self.sql("staged_create_day"), {"path": str(day)})
+            con.execute(self.sql("staged_create_history"), {"path": str(to_date), "ds": ds})
+            yield con
+
+    def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:
+        """Store check outcomes with ``recorder(con, results, experiment_id=, ds=, run_id=, schema=)``."""
+        def write():
+            with self.connect() as con:
+                return recorder(con, list(results), experiment_id=experiment_id, ds=ds, run_id=run_id, schema=self.schema)
+
+        return self._retry_on_lock(write, what="record checks")
 
     def _lake_query(self, name: str, params: Mapping[str, Any], root) -> pa.Table:
         with self.lake() as con:

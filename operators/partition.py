@@ -42,6 +42,7 @@ __all__ = [
     "record_checks",
     "run_partition_checks",
     "schema_gate",
+    "store_checks",
     "stage_partition",
     "write_partition",
 ]
@@ -148,7 +149,7 @@ def stage_partition(
 
 
 def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
-    """Minimal contract gate of a staged day: rows present, contract columns and types, known arms.
+    """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms.
 
     Every result has severity ``error``: a failure stops this (experiment, day).
     """
@@ -167,6 +168,9 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
     total = int(counts["n_bids"].sum())
     results.append(CheckResult(check="schema_rows", severity="error", passed=total >= 1, observed=float(total),
                                threshold=1.0, details={"experiment_id": experiment.id}))
+    for name, nulls in hook.staged_null_counts(path).items():
+        results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
+                                   observed=float(nulls), threshold=0.0, details={"rows": total}))
     unknown = counts[~counts["arm"].isin(experiment.arm_names)]
     n_unknown = int(unknown["n_bids"].sum())
     results.append(CheckResult(
@@ -176,13 +180,36 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
     return results
 
 
+#: The full data-check runner, ``f(con, relation, experiment, *, ds, history_relation)`` returning
+#: a list of CheckResult, and the function that stores outcomes in the ``data_checks`` table,
+#: ``f(con, results, *, experiment_id, ds, run_id, schema)``. ``None``: only the schema gate runs
+#: and outcomes live in the staging folder only. Plugging in the data-checks issue's runner is the
+#: one line ``from .checks import run_checks as CHECK_RUNNER, write_check_results as CHECK_RECORDER``.
+CHECK_RUNNER = None
+CHECK_RECORDER = None
+
+
 def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition, ds: dt.date) -> list[CheckResult]:
     """Every check run on one staged (experiment, day) before it is estimated.
 
-    The full data-check runner (contract suite, equilibrium checks) plugs in here: it returns
-    more :class:`CheckResult` objects to append to the schema gate's.
+    The schema gate first; when it passes and :data:`CHECK_RUNNER` is set, the runner's checks
+    follow, on temp tables ``staged_day`` and ``staged_history`` (earlier days of the experiment).
     """
-    return schema_gate(hook, experiment=experiment, staged=staged)
+    results = schema_gate(hook, experiment=experiment, staged=staged)
+    if CHECK_RUNNER is None or worst_failure(results) == "error":
+        return results
+    with hook.staged_relations(day=staged.day, to_date=staged.require(staged.to_date, step="load"), ds=ds) as con:
+        return results + list(CHECK_RUNNER(con, "staged_day", experiment, ds=ds, history_relation="staged_history"))
+
+
+def store_checks(hook: ResultsHook, results: list[CheckResult], *, experiment_id: str, ds: dt.date, run_id: str) -> None:
+    """Store outcomes with :data:`CHECK_RECORDER` when set; a failure here is logged, never raised."""
+    if CHECK_RECORDER is None:
+        return
+    try:
+        hook.record_checks(CHECK_RECORDER, results, experiment_id=experiment_id, ds=ds, run_id=run_id)
+    except Exception:  # recording outcomes must never be what fails the task
+        log.exception("could not store the check outcomes of %s on %s", experiment_id, ds)
 
 
 def record_checks(staged: StagedPartition, results: list[CheckResult]) -> str:

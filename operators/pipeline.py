@@ -130,6 +130,7 @@ class ValidatePartitionOperator(_PartitionOperator):
         staged = partition.StagedPartition.at(self.staging_root, experiment.id, day)
         results = partition.run_partition_checks(self.hook(), experiment=experiment, staged=staged, ds=day)
         status = partition.record_checks(staged, results)
+        partition.store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
         for r in results:
             (log.info if r.passed else log.warning)("%s", r.describe())
         message = failed_checks_message(results, where=f"experiment {experiment.id!r} on {day}")

@@ -195,3 +195,31 @@ def test_active_experiments_and_bad_inputs(tmp_path):
         partition.parse_day("yesterday")
     with pytest.raises(InputError, match="cannot name a staging folder"):
         partition.StagedPartition.at(tmp_path, "../escape", START)
+
+
+def test_the_full_check_runner_plugs_into_the_seam(hook, lake, experiment, tmp_path, monkeypatch):
+    """With the data-checks runner plugged in, its outcomes follow the gate's and set the status."""
+    checks = pytest.importorskip("counterbid.operators.checks")
+    monkeypatch.setattr(partition, "CHECK_RUNNER", checks.run_checks)
+    monkeypatch.setattr(partition, "CHECK_RECORDER", checks.write_check_results)
+    day = START + dt.timedelta(days=2)
+    _stage(hook, lake, experiment, tmp_path, day)
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=day)
+    gate = partition.schema_gate(hook, experiment=experiment, staged=staged)
+    assert [r.check for r in results[: len(gate)]] == [r.check for r in gate]
+    assert len(results) > len(gate)  # the runner added its checks
+    partition.store_checks(hook, results, experiment_id="tiles", ds=day, run_id="seam")
+    assert hook.table_exists("data_checks")
+    status = hook.fetch_df("report_day_check_status", {"experiment_id": "tiles"})
+    assert status["n_checks"].tolist() == [len(results)]
+    assert partition.record_checks(staged, results) == (partition.worst_failure(results) or "ok")
+
+
+def test_a_failing_recorder_never_fails_the_step(hook, monkeypatch, caplog):
+    def broken(con, results, **kwargs):
+        raise RuntimeError("disk full")
+
+    monkeypatch.setattr(partition, "CHECK_RECORDER", broken)
+    partition.store_checks(hook, [], experiment_id="tiles", ds=START, run_id="r")
+    assert "could not store the check outcomes" in caplog.text

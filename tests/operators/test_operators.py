@@ -1,0 +1,98 @@
+"""Operators: configuration checked at construction, and executed by a real Airflow run."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+
+import duckdb
+import pandas as pd
+import pytest
+
+from counterbid.cli.backfill import run_days
+from counterbid.dags_example.lake import write_bid_lake
+from counterbid.estimators import load_experiments
+from counterbid.estimators.errors import InputError
+from counterbid.operators.pipeline import (
+    RESULTS_ASSET,
+    WRITER_POOL,
+    EstimateArmsOperator,
+    LoadPartitionOperator,
+    ValidatePartitionOperator,
+    WriteEstimatesOperator,
+)
+
+START = dt.date(2026, 3, 2)
+COMMON = {"experiment_id": "tiles", "spec_path": "spec.yaml", "staging_root": "/tmp/stage"}
+SPEC_TEXT = """
+experiments:
+  - id: tiles
+    control_arm: plain
+    start: 2026-03-02
+    arms:
+      - {name: plain, share: 0.7, position_weights: [0.4, 0.2, 0.1]}
+      - {name: bold,  share: 0.3, position_weights: [0.5, 0.15, 0.05]}
+  - id: banners
+    control_arm: one
+    start: 2026-03-02
+    arms:
+      - {name: one, share: 0.5, position_weights: [0.3, 0.05]}
+      - {name: two, share: 0.5, position_weights: [0.3, 0.25]}
+"""
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    ({"results_schema": "main; drop"}, "results_schema must be"),
+    ({"click_window_days": 0}, "click_window_days"),
+    ({"confidence_level": 1.5}, "confidence_level"),
+    ({"cluster": "session"}, "cluster"),
+    ({"staging_root": ""}, "staging_root"),
+])
+def test_bad_configuration_fails_at_construction(kwargs, message):
+    with pytest.raises(InputError, match=message):
+        EstimateArmsOperator(task_id="estimate", **{**COMMON, **kwargs})
+
+
+def test_templated_fields_and_writer_defaults():
+    load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **COMMON)
+    assert {"ds", "lake_root", "spec_path", "staging_root", "experiment_id"} <= set(load.template_fields)
+    assert load.ds == "{{ ds }}"
+    write = WriteEstimatesOperator(task_id="write", **COMMON)
+    assert write.pool == WRITER_POOL and write.outlets == [RESULTS_ASSET]
+    assert "clicks_root" in EstimateArmsOperator(task_id="e", **COMMON).template_fields
+    assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-1]
+
+
+def test_a_day_with_bad_bids_fails_validation_and_writes_nothing_for_it(airflow_db, tmp_path, capfd, caplog):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SPEC_TEXT)
+    experiments = load_experiments(spec)
+    write_bid_lake(tmp_path / "bids", experiments.values(), start=START, days=1, auctions_per_day=1500, n_bidders=4, seed=2)
+    bad = tmp_path / "bids" / "ds=2026-03-02" / "tiles.parquet"
+    frame = pd.read_parquet(bad)
+    frame.loc[frame.index[:5], "arm"] = "mystery"
+    frame.drop(columns=["bidder_id"]).to_parquet(bad, index=False)
+    conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec), "results_database": str(tmp_path / "r.duckdb"),
+            "staging_root": str(tmp_path / "stage"), "clicks_root": ""}
+    (run,) = run_days([START], conf=conf)
+    states = {(t, i): s for t, i, s, _ in run.tasks}
+    assert run.state == "failed"
+    tiles, banners = sorted({i for (t, i) in states if t == "experiment.validate"})
+    by_exp = {0: "tiles", 1: "banners"}
+    assert by_exp[tiles] == "tiles"
+    assert states[("experiment.validate", tiles)] == "failed"
+    assert states[("experiment.estimate", tiles)] == "upstream_failed"
+    assert states[("experiment.write", banners)] == "success"  # the other experiment is unaffected
+    with duckdb.connect(conf["results_database"], read_only=True) as con:
+        assert con.execute("select distinct experiment_id from arm_estimates").fetchall() == [("banners",)]
+    recorded = json.loads((tmp_path / "stage" / "tiles" / "ds=2026-03-02" / "checks.json").read_text())
+    assert recorded["status"] == "error"
+    # the other experiment's file in the partition has bidder_id, so the lake read fills it with nulls
+    assert {c["check"] for c in recorded["checks"] if not c["passed"]} == {"schema_nulls_bidder_id", "schema_known_arms"}
+    out = capfd.readouterr()
+    text = out.out + out.err
+    assert "2 check(s) failed for experiment 'tiles' on 2026-03-02" in text
+    assert "schema_known_arms [error] FAILED: observed 5 vs threshold 0" in text
+    assert "schema_nulls_bidder_id [error] FAILED: observed" in text
+    alert = "counterbid alert: experiment.validate failed for 2026-03-02"  # the on_failure_callback
+    assert alert in text + caplog.text
