@@ -443,8 +443,9 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
     n_bidders : int
     knots : int, optional
         Most interior knots (equally spaced in ``q``) of the least-squares cubic spline fitted to
-        the empirical quantile function; a stratum of ``N`` bids gets ``min(knots, sqrt(N)/5)``
-        (at least 2), so the spline's derivative stays stable on small days.
+        the empirical quantile function. A stratum of ``N`` bids gets ``min(knots, (N/10)^(1/3))``
+        (at least 2): the variance of the spline's derivative grows like ``k^3 / N`` with ``k``
+        knots, so this keeps it at about a tenth whatever the day's size.
     grid : int, optional
         Grid points on ``[q_low, q_high]``.
     q_low, q_high : float, optional
@@ -472,7 +473,7 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
         raise InputError(f"inferred_values: need at least 8 bids in the stratum of {n_bidders} bidders; got {big_n}")
     if not 0 <= q_low < q_high <= 1:
         raise InputError(f"`q_low` and `q_high` must satisfy 0 <= q_low < q_high <= 1; got {q_low}, {q_high}")
-    k_inner = int(max(2, min(int(knots), math.isqrt(big_n) // 5)))
+    k_inner = int(max(2, min(int(knots), math.floor((0.1 * big_n) ** (1 / 3)))))
     pos = (np.arange(big_n) + 0.5) / big_n
     inner = np.linspace(0.0, 1.0, k_inner + 2)[1:-1]
     t = np.r_[[0.0] * 4, inner, [1.0] * 4]
