@@ -58,8 +58,9 @@ def three_days(tmp_path_factory, bag):
 
 
 def _table(path, name):
+    key = "position" if name == "arm_position_weights" else "metric"
     with duckdb.connect(str(path), read_only=True) as con:
-        return con.execute(f"select * from {name} order by experiment_id, ds, arm, metric").df()
+        return con.execute(f"select * from {name} order by experiment_id, ds, arm, {key}").df()
 
 
 def _lake(root):
@@ -109,3 +110,58 @@ def test_rerun_replaces_rows_without_duplicates(three_days):
     assert cumulative == [(DAYS[-1],)]
     assert weights == 3 * (3 + 3 + 2 + 2)  # days x (positions of each arm)
     assert not any((root / "staging").rglob("*.parquet"))
+
+
+@pytest.mark.slow
+def test_backfill_command_writes_what_the_dag_writes(three_days, tmp_path):
+    """``counterbid backfill`` in its own process (fresh Airflow home) for the first two days."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root, conf, _, _ = three_days
+    results = tmp_path / "backfill.duckdb"
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
+    exe = Path(sys.executable).with_name("counterbid")
+    done = subprocess.run(
+        [str(exe), "backfill", "--lake", conf["lake_root"], "--experiments", conf["spec_path"], "--results", str(results),
+         "--start", str(DAYS[0]), "--end", str(DAYS[1])],
+        env=env, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert f"{DAYS[1]} success" in done.stderr
+    provenance = ["run_id", "computed_at"]
+    for name in ("arm_estimates", "arm_estimates_to_date", "arm_position_weights"):
+        got = _table(results, name).drop(columns=provenance)
+        want = _table(conf["results_database"], name).drop(columns=provenance)
+        want = want[want["ds"] <= pd.Timestamp(DAYS[1])].reset_index(drop=True)
+        pd.testing.assert_frame_equal(got, want, check_exact=True)
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["--start", "2026-03-02", "--end", "someday"], "--end: must be a date"),
+    (["--start", "2026-03-05", "--end", "2026-03-02"], "is before --start"),
+    (["--start", "2026-03-02", "--end", "2026-03-02", "--lake", "/no/such/lake"], "no such folder"),
+])
+def test_backfill_bad_input_is_one_line(argv, message, tmp_path, capsys):
+    from counterbid.cli import main
+
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SPEC_TEXT)
+    base = {"--lake": str(tmp_path), "--experiments": str(spec), "--results": str(tmp_path / "r.duckdb")}
+    flags = dict(zip(argv[::2], argv[1::2]))
+    args = [x for k, v in {**base, **flags}.items() for x in (k, v)]
+    assert main(["backfill", *args]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("counterbid: error:") and message in err[0]
+    assert not (tmp_path / "r.duckdb").exists()  # nothing half-written
+
+
+def test_backfill_rejects_a_broken_spec(tmp_path, capsys):
+    from counterbid.cli import main
+
+    spec = tmp_path / "spec.yaml"
+    spec.write_text("experiments: [{id: x, arms: [{name: a, share: 0.4, position_weights: [1.0]}]}]\n")
+    assert main(["backfill", "--lake", str(tmp_path), "--experiments", str(spec), "--results", str(tmp_path / "r.duckdb"),
+                 "--start", "2026-03-02", "--end", "2026-03-02"]) == 2
+    assert "shares must sum to 1" in capsys.readouterr().err
