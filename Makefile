@@ -16,12 +16,15 @@ $(STAMP): pyproject.toml
 test: $(STAMP)
 	$(PY) -m pytest
 
+# 14 days of the invented Quillfen marketplace through the daily DAG (dag.test per day), then the report.
 demo: $(STAMP)
-	rm -rf demo_output/lake
-	$(VENV)/bin/counterbid simulate --experiment dags_example/experiments.yaml --out demo_output/lake \
-	    --start 2026-03-02 --days 2 --auctions-per-day 40000 --bidders 6 --seed 7
-	$(VENV)/bin/counterbid estimate --bids demo_output/lake --experiment dags_example/experiments.yaml \
-	    --experiment-id featured-rows
+	rm -rf demo_output
+	@mkdir -p demo_output && date +%s > demo_output/.started
+	$(PY) -m counterbid.dags_example.demo lake --out demo_output
+	$(VENV)/bin/counterbid backfill --lake demo_output/lake --experiments dags_example/experiments.yaml \
+	    --results demo_output/results.duckdb --start 2026-03-02 --end 2026-03-15
+	$(PY) -m counterbid.dags_example.demo report --out demo_output
+	@echo "demo wall time: $$(( $$(date +%s) - $$(cat demo_output/.started) ))s"
 
 clean:
 	rm -rf demo_output .pytest_cache

@@ -1,0 +1,255 @@
+"""The results report: HTML with PNG plots of per-arm revenue, the improper average and the lift.
+
+Reads only the results database (through :class:`~counterbid.operators.hooks.ResultsHook`); the
+data-check status per day is shown when the ``data_checks`` table exists.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import math
+import os
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.dates as mdates  # noqa: E402
+import matplotlib.pyplot as plt  # noqa: E402
+import pandas as pd  # noqa: E402
+
+from counterbid.estimators import MIXTURE_ARM  # noqa: E402
+
+from .hooks import ResultsHook  # noqa: E402
+
+__all__ = ["ASSUMPTIONS", "MIXTURE_GAP_SE", "cumulative_table", "format_cumulative", "write_report"]
+
+#: What every number in the report rests on.
+ASSUMPTIONS = (
+    "Symmetric bidders with independent private values.",
+    "Bids in equilibrium against the designed mixture of arms (bidders have adapted to the experiment).",
+    "Position weights known: taken from the spec, or measured from the click log where the spec says so.",
+)
+#: Days whose estimated and realized mixture revenue differ by more than this many standard errors
+#: are flagged: in equilibrium the two agree, so a gap is a sign bidders have not adapted.
+MIXTURE_GAP_SE = 3.0
+_LABELS = {
+    "revenue_per_auction": "revenue / auction",
+    "welfare_per_auction": "welfare / auction",
+    "naive_revenue_per_auction": "realized average (biased)",
+    "revenue_lift_vs_control": "lift vs control",
+}
+
+
+def cumulative_table(hook: ResultsHook) -> pd.DataFrame:
+    """Current experiment-to-date estimates of every experiment (view ``arm_estimates_cumulative``)."""
+    return hook.fetch_df("report_cumulative")
+
+
+def _interval(est, lo, hi, *, pct=False) -> str:
+    if est is None or (isinstance(est, float) and math.isnan(est)):
+        return "n/a"
+    if pct:
+        return f"{est:+.2%} [{lo:+.2%}, {hi:+.2%}]"
+    return f"{est:.4f} [{lo:.4f}, {hi:.4f}]"
+
+
+def _wide(rows: pd.DataFrame) -> pd.DataFrame:
+    """One row per arm, one column per metric, values ``estimate [ci_low, ci_high]``."""
+    out = {}
+    for (arm, metric), r in rows.set_index(["arm", "metric"]).iterrows():
+        pct = metric == "revenue_lift_vs_control"
+        out.setdefault(arm, {})[_LABELS.get(metric, metric)] = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
+    frame = pd.DataFrame.from_dict(out, orient="index")
+    cols = [c for c in _LABELS.values() if c in frame.columns]
+    arms = [a for a in frame.index if a != MIXTURE_ARM] + ([MIXTURE_ARM] if MIXTURE_ARM in frame.index else [])
+    return frame.loc[arms, cols].fillna("")
+
+
+def format_cumulative(table: pd.DataFrame) -> str:
+    """The experiment-to-date table as text, one block per experiment."""
+    blocks = []
+    for exp_id, rows in table.groupby("experiment_id", sort=True):
+        first, last = rows["first_ds"].min(), rows["ds"].max()
+        n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
+        status = ", ".join(sorted(set(rows["status"])))
+        head = f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, status {status}"
+        blocks.append(head + "\n" + _wide(rows).to_string())
+    return "\n\n".join(blocks)
+
+
+def _mixture_days(daily: pd.DataFrame) -> pd.DataFrame:
+    mix = daily[daily["arm"] == MIXTURE_ARM].pivot(index="ds", columns="metric", values=["estimate", "std_error"])
+    out = pd.DataFrame({
+        "estimated": mix[("estimate", "revenue_per_auction")],
+        "realized": mix[("estimate", "naive_revenue_per_auction")],
+    })
+    se = (mix[("std_error", "revenue_per_auction")] ** 2 + mix[("std_error", "naive_revenue_per_auction")] ** 2) ** 0.5
+    out["gap"] = out["estimated"] / out["realized"] - 1.0
+    # the two share the same bids, so this SE ignores a positive covariance: it overstates the
+    # noise and the flag is conservative
+    out["gap_se_units"] = (out["estimated"] - out["realized"]).abs() / se
+    return out
+
+
+def _colours(daily: pd.DataFrame) -> dict[str, str]:
+    """One colour per arm, the same in every plot of an experiment."""
+    arms = [a for a in dict.fromkeys(daily["arm"]) if a != MIXTURE_ARM]
+    return {a: f"C{k}" for k, a in enumerate(arms)}
+
+
+def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
+    fig, ax = plt.subplots(figsize=(9, 4.2))
+    rev = daily[(daily["metric"] == "revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
+    naive = daily[(daily["metric"] == "naive_revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
+    colours = _colours(daily)
+    for arm, rows in rev.groupby("arm", sort=False):
+        colour = colours[arm]
+        x = pd.to_datetime(rows["ds"])
+        ax.plot(x, rows["estimate"], color=colour, lw=2, marker="o", ms=3, label=f"{arm}: if run everywhere")
+        ax.fill_between(x, rows["ci_low"], rows["ci_high"], color=colour, alpha=0.18, lw=0)
+        raw = naive[naive["arm"] == arm]
+        ax.plot(pd.to_datetime(raw["ds"]), raw["estimate"], color=colour, lw=1.3, ls="--",
+                label=f"{arm}: realized average (biased)")
+    ax.set_title(f"{exp_id}: revenue per auction by day (bands: 95% intervals)")
+    ax.set_ylabel("revenue per auction")
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7.5, ncol=2, loc="best")
+    fig.tight_layout()
+    fig.savefig(target, dpi=110)
+    plt.close(fig)
+
+
+def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: Path) -> None:
+    fig, ax = plt.subplots(figsize=(9, 3.6))
+    day = daily[daily["metric"] == "revenue_lift_vs_control"]
+    cum = to_date[to_date["metric"] == "revenue_lift_vs_control"]
+    colours = _colours(daily)
+    for arm, rows in day.groupby("arm", sort=False):
+        colour = colours[arm]
+        x = pd.to_datetime(rows["ds"])
+        ax.errorbar(x, rows["estimate"], yerr=[rows["estimate"] - rows["ci_low"], rows["ci_high"] - rows["estimate"]],
+                    fmt="o", color=colour, ms=3, lw=0.8, capsize=2, alpha=0.6, label=f"{arm}: that day")
+        c = cum[cum["arm"] == arm]
+        xc = pd.to_datetime(c["ds"])
+        ax.plot(xc, c["estimate"], color=colour, lw=2, label=f"{arm}: experiment to date")
+        ax.fill_between(xc, c["ci_low"], c["ci_high"], color=colour, alpha=0.18, lw=0)
+    ax.axhline(0.0, color="0.3", lw=0.8)
+    ax.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
+    ax.set_title(f"{exp_id}: revenue lift over control (95% intervals)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7.5, ncol=2, loc="best")
+    fig.tight_layout()
+    fig.savefig(target, dpi=110)
+    plt.close(fig)
+
+
+def _table_html(frame: pd.DataFrame, *, index=True) -> str:
+    return frame.to_html(index=index, escape=True, border=0, classes="grid", na_rep="")
+
+
+def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auction experiments: per-arm estimates") -> Path:
+    """Write ``out_dir/index.html`` and its PNG plots from the results database.
+
+    Parameters
+    ----------
+    hook : ResultsHook
+    out_dir : path
+        Created if missing; files are replaced.
+    title : str
+
+    Returns
+    -------
+    Path
+        The HTML file.
+    """
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    has_checks = hook.table_exists("data_checks")
+    cumulative = cumulative_table(hook)
+    sections = []
+    for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
+        daily = hook.fetch_df("report_daily_estimates", {"experiment_id": exp_id})
+        to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp_id})
+        weights = hook.fetch_df("report_position_weights", {"experiment_id": exp_id})
+        rev_png, lift_png = f"{exp_id}_revenue.png", f"{exp_id}_lift.png"
+        _plot_revenue(daily, exp_id, out / rev_png)
+        has_lift = (daily["metric"] == "revenue_lift_vs_control").any()
+        if has_lift:
+            _plot_lift(daily, to_date, exp_id, out / lift_png)
+        cum = cumulative[cumulative["experiment_id"] == exp_id]
+        days = _mixture_days(daily)
+        per_day = pd.DataFrame(index=days.index)
+        per_day["estimate status"] = daily.groupby("ds")["status"].agg(lambda s: "warning" if (s == "warning").any() else "ok")
+        if has_checks:
+            checks = hook.fetch_df("report_day_check_status", {"experiment_id": exp_id}).set_index("ds")
+            per_day["data checks"] = [
+                f"{checks.loc[d, 'worst_status']} ({int(checks.loc[d, 'n_failed'])}/{int(checks.loc[d, 'n_checks'])} failed)"
+                if d in checks.index else "not run" for d in per_day.index]
+        per_day["mixture: estimated"] = days["estimated"].map("{:.4f}".format)
+        per_day["mixture: realized"] = days["realized"].map("{:.4f}".format)
+        per_day["gap"] = days["gap"].map("{:+.2%}".format)
+        flagged = days.index[days["gap_se_units"] > MIXTURE_GAP_SE]
+        per_day["adapted?"] = ["no: gap beyond 3 SE" if d in flagged else "consistent" for d in days.index]
+        per_day.index = [pd.Timestamp(d).date().isoformat() for d in per_day.index]
+        notes = []
+        if len(flagged):
+            notes.append(
+                f"On {len(flagged)} day(s) ({', '.join(pd.Timestamp(d).date().isoformat() for d in flagged)}) the mixture's "
+                "estimated revenue disagrees with its realized revenue by more than 3 standard errors: bidders had "
+                "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date pool "
+                "that includes them) violate the equilibrium assumption.")
+        warn_days = [d for d, s in per_day["estimate status"].items() if s == "warning"]
+        if warn_days:
+            notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry status 'warning'.")
+        if has_checks and "data checks" in per_day and per_day["data checks"].str.startswith("error").any():
+            notes.append("Days whose data checks failed with an error have no estimates.")
+        weights_note = ""
+        if not weights.empty:
+            src = weights.groupby("arm")["source"].first()
+            wl = weights.groupby("arm")["weight"].apply(lambda w: ", ".join(f"{x:.3g}" for x in w))
+            weights_note = "<p class='small'>Position weights (top first): " + "; ".join(
+                f"{html.escape(a)} [{html.escape(wl[a])}] ({html.escape(src[a])})" for a in wl.index) + "</p>"
+        first, last = (pd.Timestamp(cum["first_ds"].min()).date(), pd.Timestamp(cum["ds"].max()).date()) if len(cum) else ("", "")
+        n_auc = int(cum.loc[cum["metric"] == "revenue_per_auction", "n_auctions"].max()) if len(cum) else 0
+        sections.append(f"""
+<section>
+<h2>{html.escape(exp_id)}</h2>
+<p>Experiment to date, {first} to {last}: {n_auc:,} auctions pooled and estimated together.</p>
+{_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
+{weights_note}
+{"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
+<img src="{html.escape(rev_png)}" alt="revenue per auction by day, {html.escape(exp_id)}">
+{f'<img src="{html.escape(lift_png)}" alt="lift by day, {html.escape(exp_id)}">' if has_lift else ""}
+<h3>By day</h3>
+{_table_html(per_day)}
+</section>""")
+    generated = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    page = f"""<!doctype html>
+<html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>
+<style>
+body {{ font-family: system-ui, sans-serif; max-width: 1000px; margin: 2em auto; color: #222; }}
+table.grid {{ border-collapse: collapse; font-size: 0.85em; margin: 0.6em 0; }}
+table.grid th, table.grid td {{ padding: 0.25em 0.6em; border-bottom: 1px solid #ddd; text-align: right; }}
+.rests {{ background: #f4f4f0; padding: 0.6em 1em; border-left: 4px solid #888; }}
+.note {{ background: #fff4e0; padding: 0.4em 0.8em; border-left: 4px solid #d08000; }}
+.small {{ font-size: 0.85em; color: #555; }}
+img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
+</style></head><body>
+<h1>{html.escape(title)}</h1>
+<p class="small">Generated {generated} from {html.escape(str(hook.database))}.</p>
+<div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
+Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had
+adapted to it". The realized average is each arm's revenue over its own auctions: it is biased because
+bidders bid against the mixture, and is shown only for comparison. Intervals are 95%, clustered by auction.</div>
+{"".join(sections)}
+</body></html>
+"""
+    target = out / "index.html"
+    tmp = target.with_name(f".index.{os.getpid()}.tmp")
+    tmp.write_text(page, encoding="utf-8")
+    os.replace(tmp, target)
+    return target
