@@ -15,10 +15,10 @@ import sys
 COMMANDS: dict[str, tuple[str, str]] = {
     "estimate": ("counterbid.cli.estimate", "per-arm revenue, welfare and lift from a bid log"),
     "simulate": ("counterbid.cli.simulate", "write an equilibrium bid log for an experiment spec (demo, tests)"),
-    "backfill": ("counterbid.cli.backfill", "run the daily DAG in-process for each day of a range (no scheduler needed)"),
     "check": ("counterbid.cli.check", "data checks of a bid log: contract, sample ratio, equilibrium, drift, warm-up"),
     "backfill": ("counterbid.cli.backfill", "run the daily DAG in-process for each day of a range (no scheduler needed)"),
     "study": ("counterbid.cli.study", "Monte Carlo validation study: CSV, figures and a markdown summary"),
+    "plan": ("counterbid.cli.plan", "predicted interval half-widths per traffic share, and the smallest share that suffices"),
 }
 
 EXIT_INPUT = 2

@@ -82,10 +82,21 @@ def study_experiment(share: float, *, arms: Sequence[str] = ("control", "treated
 # Fast simulation: the same equilibrium as simulate_experiment, straight into PreparedBids.
 
 
-@functools.lru_cache(maxsize=256)
-def _bid_function(values_name: str, belief_weights: tuple[float, ...]) -> BidFunction:
-    n = len(belief_weights)
-    return equilibrium_bid_function(VALUE_DISTRIBUTIONS[values_name], allocation_rule(belief_weights, n))
+_BID_FUNCTIONS: dict[tuple, tuple[object, BidFunction]] = {}
+
+
+def _bid_function(values, belief_weights: tuple[float, ...]) -> BidFunction:
+    """Cached equilibrium bid function per (distribution, mixture weights)."""
+    key = (values if isinstance(values, str) else id(values), belief_weights)
+    hit = _BID_FUNCTIONS.get(key)
+    if hit is not None and (isinstance(values, str) or hit[0] is values):
+        return hit[1]
+    dist = VALUE_DISTRIBUTIONS[values] if isinstance(values, str) else values
+    fn = equilibrium_bid_function(dist, allocation_rule(belief_weights, len(belief_weights)))
+    if len(_BID_FUNCTIONS) > 512:
+        _BID_FUNCTIONS.clear()
+    _BID_FUNCTIONS[key] = (values, fn)  # keeps the distribution alive, so its id stays unique
+    return fn
 
 
 def _belief_weights(experiment: Experiment, n: int, belief_shares: Sequence[float] | None) -> tuple[float, ...]:
@@ -95,7 +106,7 @@ def _belief_weights(experiment: Experiment, n: int, belief_shares: Sequence[floa
 
 
 def simulate_prepared(
-    values_name: str,
+    values,
     experiment: Experiment,
     *,
     n_bidders: int,
@@ -111,8 +122,8 @@ def simulate_prepared(
 
     Parameters
     ----------
-    values_name : str
-        Key of :data:`VALUE_DISTRIBUTIONS`.
+    values : str or scipy.stats frozen continuous distribution
+        A key of :data:`VALUE_DISTRIBUTIONS` or a distribution of values per click.
     experiment : Experiment
     n_bidders : int
         Bidders per auction (>= 2).
@@ -127,12 +138,15 @@ def simulate_prepared(
     PreparedBids
         ``position`` is the rank (1 = top) where the arm shows it, else 0.
     """
-    if values_name not in VALUE_DISTRIBUTIONS:
-        raise InputError(f"`values_name` must be one of {', '.join(VALUE_DISTRIBUTIONS)}; got {values_name!r}")
+    if isinstance(values, str):
+        if values not in VALUE_DISTRIBUTIONS:
+            raise InputError(f"`values` must be one of {', '.join(VALUE_DISTRIBUTIONS)} or a distribution; got {values!r}")
+    elif not (hasattr(values, "ppf") and hasattr(values, "cdf")):
+        raise InputError("`values` must be a frozen scipy.stats continuous distribution (with .ppf)")
     n, a = int(n_bidders), int(n_auctions)
     if n < 2 or a < 1:
         raise InputError(f"`n_bidders` must be >= 2 and `n_auctions` >= 1; got {n_bidders!r}, {n_auctions!r}")
-    bid_fn = _bid_function(values_name, _belief_weights(experiment, n, belief_shares))
+    bid_fn = _bid_function(values, _belief_weights(experiment, n, belief_shares))
     shares = np.asarray(experiment.shares, dtype=float)
     arm_of_auction = rng.choice(shares.size, size=a, p=shares / shares.sum())
     bids = bid_fn(rng.random((a, n)))
@@ -292,7 +306,7 @@ def _check_names(names: Sequence[str]) -> list[str]:
 
 
 def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int, seed: int,
-              two_step: bool = True) -> list[dict]:
+              two_step: bool = True, two_step_reps: int | None = None) -> list[dict]:
     """One (distribution, n, N) cell of :func:`size_study`: summary rows per method and arm."""
     exp = study_experiment(share)
     rules = [allocation_rule(a.weights_for(n), n) for a in exp.arms]
@@ -306,7 +320,7 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
         data = simulate_prepared(values_name, exp, n_bidders=n, n_auctions=n_auctions, rng=rng)
         res = ordstat_revenue(data, rules, mix)
         est[r], se[r] = res.estimate, res.std_error
-        if two_step:
+        if two_step and (two_step_reps is None or r < two_step_reps):
             pv = pseudo_values(np.sort(data.bid), mix)
             ts[r] = [_two_step_revenue(pv, rule, n) for rule in rules]
     rows = []
@@ -318,7 +332,8 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
                 "share": arm.share, "arm": arm.name}
         rows.append({**base, "method": "ordstat", **_summary(est[:, k], truth, se[:, k])})
         if two_step:
-            rows.append({**base, "method": "two_step", **_summary(ts[:, k], truth)})
+            k_ts = reps if two_step_reps is None else min(reps, two_step_reps)
+            rows.append({**base, "method": "two_step", **_summary(ts[:k_ts, k], truth)})
     return rows
 
 
@@ -369,6 +384,7 @@ def size_study(
     reps: int = 200,
     seed: int = 0,
     two_step: bool = True,
+    two_step_reps: int | None = None,
     jobs: int = 1,
 ) -> pd.DataFrame:
     """Bias, RMSE, RMSE x sqrt(N) and 95 % coverage by number of bids ``N``.
@@ -388,6 +404,8 @@ def size_study(
     seed : int
     two_step : bool
         Also run the two-step baseline.
+    two_step_reps : int, optional
+        Run it on the first this many replicates only (default: all; it is the slow part).
     jobs : int
         Worker processes (results do not depend on it).
 
@@ -403,7 +421,10 @@ def size_study(
     ns = _check_grid("bidders", bidders, lo=2, hi=1000, integer=True)
     sz = _check_grid("sizes", sizes, lo=2, hi=1e8, integer=True)
     reps = _check_grid("reps", [reps], lo=2, hi=1e7, integer=True)[0]
-    cells = [(size_cell, (d, n, s), {"share": float(share), "reps": reps, "seed": seed, "two_step": two_step})
+    if two_step_reps is not None:
+        two_step_reps = _check_grid("two_step_reps", [two_step_reps], lo=2, hi=1e7, integer=True)[0]
+    cells = [(size_cell, (d, n, s), {"share": float(share), "reps": reps, "seed": seed, "two_step": two_step,
+                                     "two_step_reps": two_step_reps})
              for d in names for n in ns for s in sz]
     out = pd.DataFrame(_run(cells, jobs))
     out.insert(out.columns.get_loc("rmse") + 1, "rmse_sqrt_n", out["rmse"] * np.sqrt(out["n_bids_used"]))

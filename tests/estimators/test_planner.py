@@ -1,0 +1,145 @@
+"""Traffic-share planner: predicted half-widths against simulated ones (within 20 %).
+
+The simulated half-width is 1.96 x the standard deviation of the estimates over repeated simulated
+experiments (a Monte Carlo check, independent of the estimator's own standard errors); with 200
+replicates its relative error is about 5 % (sd of a sample sd ~ 1/sqrt(2R), common practice).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import InputError, parse_experiments, simulate_experiment
+from counterbid.estimators.planner import plan_shares, simulated_half_width, with_treated_share
+
+VALUES = st.lognorm(0.5, scale=0.8)
+N_BIDDERS = 4
+DAYS, PER_DAY = 2, 1500
+
+
+def two_arms(share=0.5):
+    doc = {"experiments": [{"id": "plan", "control_arm": "control", "arms": [
+        {"name": "control", "share": 1 - share, "position_weights": [0.31, 0.17, 0.06, 0.02]},
+        {"name": "treated", "share": share, "position_weights": [0.36, 0.12, 0.05, 0.02]}]}]}
+    return parse_experiments(doc)["plan"]
+
+
+@pytest.fixture(scope="module")
+def simulated():
+    exp = two_arms()
+    return {s: simulated_half_width(VALUES, with_treated_share(exp, s), n_bidders=N_BIDDERS,
+                                    n_auctions=DAYS * PER_DAY, reps=200, rng=7).set_index(["arm", "metric"])
+            for s in (0.1, 0.5)}
+
+
+def _compare(plan, simulated, share):
+    t = plan.table[plan.table["share"] == share].set_index(["arm", "metric"])
+    sim = simulated[share]
+    for key in sim.index:
+        predicted, actual = t.loc[key, "half_width"], sim.loc[key, "simulated_half_width"]
+        assert predicted == pytest.approx(actual, rel=0.20), (share, key, predicted, actual)
+
+
+@pytest.mark.slow
+def test_assumed_distribution_plan_within_20_percent_of_simulation(simulated):
+    plan = plan_shares(two_arms(), days=DAYS, auctions_per_day=PER_DAY, values=VALUES, n_bidders=N_BIDDERS,
+                       shares=(0.1, 0.5), calibration_auctions=10_000, rng=1)
+    assert plan.basis == "assumed" and plan.n_auctions == DAYS * PER_DAY
+    for share in (0.1, 0.5):
+        _compare(plan, simulated, share)
+
+
+@pytest.mark.slow
+def test_pilot_plan_within_20_percent_of_simulation_at_another_share(simulated):
+    # Pilot of 5000 auctions at share 0.5; the plan for share 0.1 is checked against simulations
+    # with the true value distribution, which the planner never sees.
+    pilot = simulate_experiment(VALUES, two_arms(0.5), n_bidders=N_BIDDERS, n_auctions=5000, rng=3)
+    plan = plan_shares(two_arms(0.5), days=DAYS, auctions_per_day=PER_DAY, bids=pilot, shares=(0.1,),
+                       calibration_auctions=10_000, rng=2)
+    assert plan.basis == "pilot"
+    assert all(0.7 < v < 1.4 for v in plan.pilot_scale.values())
+    _compare(plan, simulated, 0.1)
+
+
+@pytest.mark.slow
+def test_ideal_ab_half_width_matches_a_simulated_one_arm_test():
+    exp = two_arms()
+    plan = plan_shares(exp, days=DAYS, auctions_per_day=PER_DAY, values=VALUES, n_bidders=N_BIDDERS,
+                       shares=(0.1,), calibration_auctions=10_000, rng=4)
+    row = plan.table.set_index(["arm", "metric"]).loc[("treated", "revenue_per_auction")]
+    alone = dataclasses.replace(exp, arms=(dataclasses.replace(exp.arm("treated"), share=1.0),), control_arm="treated")
+    sim = simulated_half_width(VALUES, alone, n_bidders=N_BIDDERS, n_auctions=int(row["auctions_in_arm"]), reps=200,
+                               rng=5).set_index(["arm", "metric"])
+    assert row["ideal_ab_half_width"] == pytest.approx(sim.loc[("treated", "revenue_per_auction"),
+                                                              "simulated_half_width"], rel=0.20)
+    # The estimator on the mixture beats the ideal test at a 10 % share (it uses every auction's bids).
+    assert row["half_width"] < row["ideal_ab_half_width"]
+
+
+def test_recommendation_is_the_smallest_share_meeting_the_target():
+    kwargs = dict(days=1, auctions_per_day=2000, values=VALUES, n_bidders=3, shares=(0.05, 0.2, 0.5),
+                  calibration_auctions=1500, rng=0, target_metric="revenue_per_auction")
+    plan = plan_shares(two_arms(), **kwargs)
+    t = plan.table[(plan.table["arm"] == "treated") & (plan.table["metric"] == "revenue_per_auction")]
+    hw = t.set_index("share")["half_width"]
+    target = float(hw.loc[0.2]) * 1.0001
+    expected = min(s for s in hw.index if hw[s] <= target)
+    plan2 = plan_shares(two_arms(), target_half_width=target, **kwargs)
+    assert plan2.recommended_share == expected
+    plan3 = plan_shares(two_arms(), target_half_width=float(hw.min()) / 10, **kwargs)
+    assert plan3.recommended_share is None
+    # Control takes the rest of the traffic.
+    ctrl = plan.table[plan.table["arm"] == "control"].set_index("share")["auctions_in_arm"]
+    assert ctrl.loc[0.05] == 1900
+
+
+def test_three_arm_experiment_gives_each_non_control_arm_the_share(three_arm_experiment):
+    exp = with_treated_share(three_arm_experiment, 0.2)
+    assert dict(zip(exp.arm_names, exp.shares)) == {"control": pytest.approx(0.6), "wide": 0.2, "single": 0.2}
+    with pytest.raises(InputError, match="leaves control"):
+        with_treated_share(three_arm_experiment, 0.5)
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"days": 0}, "days"),
+    ({"auctions_per_day": 1}, "auctions_per_day"),
+    ({"shares": (0.0,)}, "shares"),
+    ({"target_half_width": -1.0}, "target_half_width"),
+    ({"target_metric": "welfare"}, "target_metric"),
+    ({"values": None}, "values"),
+])
+def test_bad_arguments(kwargs, match):
+    args = dict(days=1, auctions_per_day=100, values=VALUES, n_bidders=3)
+    args.update(kwargs)
+    with pytest.raises(InputError, match=match):
+        plan_shares(two_arms(), **args)
+
+
+def test_pilot_and_assumption_together_are_refused():
+    pilot = simulate_experiment(VALUES, two_arms(), n_bidders=3, n_auctions=500, rng=0)
+    with pytest.raises(InputError, match="either"):
+        plan_shares(two_arms(), days=1, auctions_per_day=100, bids=pilot, values=VALUES, n_bidders=3)
+
+
+def test_tiny_pilot_is_refused_with_its_name():
+    pilot = simulate_experiment(VALUES, two_arms(), n_bidders=3, n_auctions=8, rng=0)
+    with pytest.raises(InputError, match="pilot.parquet: too few usable pilot bids"):
+        plan_shares(two_arms(), days=1, auctions_per_day=100, bids=pilot, source="pilot.parquet")
+
+
+def test_one_arm_experiment_is_refused():
+    exp = parse_experiments({"experiments": [{"id": "solo", "control_arm": "a", "arms": [
+        {"name": "a", "share": 1.0, "position_weights": [1.0]}]}]})["solo"]
+    with pytest.raises(InputError, match="at least one other arm"):
+        plan_shares(exp, days=1, auctions_per_day=100, values=VALUES, n_bidders=3)
+
+
+def test_simulated_half_width_rejects_bad_reps():
+    with pytest.raises(InputError, match="reps"):
+        simulated_half_width(VALUES, two_arms(), n_bidders=3, n_auctions=10, reps=1)
+    assert np.isfinite(simulated_half_width(VALUES, two_arms(), n_bidders=3, n_auctions=50, reps=3, rng=0)
+                       ["simulated_half_width"]).all()
