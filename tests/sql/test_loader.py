@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import duckdb
 import pytest
 
@@ -13,7 +15,8 @@ def test_every_file_is_one_statement():
     names = sql_names()
     assert "lake_read_partition" in names and "results_insert_arm_estimates" in names
     for name in names:
-        text = render_sql(name, schema="main") if "{{" in load_sql(name) else load_sql(name)
+        placeholders = set(re.findall(r"\{\{\s*(\w+)\s*\}\}", load_sql(name)))  # schema, relation
+        text = render_sql(name, **{p: "main" for p in placeholders})
         assert len(duckdb.extract_statements(text)) == 1, name
 
 
