@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import interpolate
+from scipy import interpolate, special
 
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .errors import InputError
@@ -79,26 +79,28 @@ def equilibrium_bid_function(values, rule: AllocationRule, *, grid_intervals: in
 
     Notes
     -----
-    The recursion ``b_k x_k = b_{k-1} x_{k-1} + int_{q_{k-1}}^{q_k} v x'`` is carried out in log
-    space, so it stays exact where ``x`` underflows (many bidders, few slots).
+    The running integral ``int_0^{q_k} v x'`` (16-point Gauss-Legendre per interval) and the
+    division by ``x(q_k)`` are carried out in log space, so they stay exact where ``x``
+    underflows (many bidders, few slots).
 
     References
     ----------
     .. [1] Krishna, V. (2010). Auction Theory, 2nd ed., ch. 2 (first-price equilibrium).
     """
     _check_distribution(values)
+    if float(values.ppf(0.0)) < 0:
+        raise InputError("`values` must be supported on [0, inf): a value per click is never negative")
     q = np.arange(grid_intervals + 1) / grid_intervals
     r, wts = _nodes(q)
-    v = values.ppf(r)
     log_x = rule.log_value(q)
     log_dx = rule.log_derivative(r.ravel()).reshape(r.shape)
+    with np.errstate(divide="ignore"):
+        log_terms = np.log(wts * values.ppf(r)) + log_dx
+    # log of int_{q_{k-1}}^{q_k} v x', then of the running integral, all in log space.
+    log_piece = special.logsumexp(log_terms, axis=1)
+    log_running = np.logaddexp.accumulate(log_piece)
     b = np.empty_like(q)
-    b[0] = 0.0
-    acc = 0.0
-    for k in range(1, q.size):
-        carry = np.exp(log_x[k - 1] - log_x[k]) if np.isfinite(log_x[k - 1]) else 0.0
-        acc = acc * carry + float(np.sum(wts[k - 1] * v[k - 1] * np.exp(log_dx[k - 1] - log_x[k])))
-        b[k] = acc
+    b[1:] = np.exp(log_running - log_x[1:])
     # b(0): 0 when the lowest bidder is shown (x(0) > 0); its value v(0) when x(0) = 0.
     b[0] = 0.0 if rule.coefficients[0] > 0 else float(values.ppf(0.0))
     return BidFunction(grid=q, bids=b)

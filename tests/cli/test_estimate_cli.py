@@ -1,0 +1,152 @@
+"""`counterbid estimate`: output shapes and every bad-input path (one line, exit 2)."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+
+from counterbid.cli import main
+from counterbid.estimators import parse_experiments, simulate_experiment
+
+SPEC = """experiments:
+  - id: cli-exp
+    payment_rule: first_price
+    control_arm: control
+    arms:
+      - {name: control, share: 0.8, position_weights: [0.31, 0.17, 0.06, 0.02]}
+      - {name: wide, share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+      - {name: single, share: 0.1, position_weights: [0.4]}
+"""
+
+
+@pytest.fixture
+def files(tmp_path):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SPEC)
+    exp = parse_experiments(__import__("yaml").safe_load(SPEC))["cli-exp"]
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=4, n_auctions=3000, rng=1)
+    path = tmp_path / "bids.parquet"
+    bids.to_parquet(path, index=False)
+    return spec, path, bids
+
+
+def run(argv, capsys):
+    code = main(argv)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_json_output_has_every_arm_and_metric(files, capsys):
+    spec, path, _ = files
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json"], capsys)
+    assert code == 0, err
+    payload = json.loads(out)
+    assert payload["experiment_id"] == "cli-exp" and payload["n_excluded_auctions"] == 0
+    rows = payload["rows"]
+    assert set(rows[0]) == {"arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids"}
+    seen = {(r["arm"], r["metric"]) for r in rows}
+    for arm in ("control", "wide", "single"):
+        assert (arm, "revenue_per_auction") in seen and (arm, "naive_revenue_per_auction") in seen
+    assert ("wide", "revenue_lift_vs_control") in seen and ("control", "revenue_lift_vs_control") not in seen
+
+
+def test_table_and_csv(files, capsys):
+    spec, path, _ = files
+    code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 0 and "wide" in out and "revenue_lift_vs_control" in out and "Assumes" in out
+    code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv", "--level", "0.9"], capsys)
+    assert code == 0 and out.splitlines()[0] == "arm,metric,estimate,std_error,ci_low,ci_high,n_auctions,n_bids"
+
+
+def test_single_bidder_auctions_reported_not_fatal(files, capsys):
+    spec, path, bids = files
+    lone = pd.DataFrame({"experiment_id": "cli-exp", "auction_id": [10**9, 10**9 + 1], "bidder_id": [1, 2],
+                         "arm": "control", "bid": [0.5, 0.6], "position": pd.array([1, 1], dtype="Int32")})
+    pd.concat([bids, lone]).to_parquet(path, index=False)
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json"], capsys)
+    assert code == 0 and json.loads(out)["n_excluded_auctions"] == 2
+    assert "left out 2 single-bidder auction(s)" in err
+
+
+def corrupt(bids, kind):
+    b = bids.copy()
+    if kind == "missing column":
+        return b.drop(columns=["bid"]), "column 'bid' is missing"
+    if kind == "non-numeric bid":
+        b["bid"] = b["bid"].astype(str)  # a text column, as a CSV export would give
+        b.loc[5, "bid"] = "abc"
+        return b, "column 'bid' must be numeric .* row 5 holds 'abc'"
+    if kind == "negative bid":
+        b.loc[7, "bid"] = -1.0
+        return b, "column 'bid' row 7 is negative"
+    if kind == "NaN bid":
+        b.loc[8, "bid"] = np.nan
+        return b, "column 'bid' row 8 is NaN"
+    if kind == "infinite bid":
+        b.loc[9, "bid"] = np.inf
+        return b, "column 'bid' row 9 is infinite"
+    if kind == "unknown arm":
+        b.loc[11, "arm"] = "mystery"
+        return b, "unknown arm 'mystery' at row 11"
+    if kind == "auction under two arms":
+        first = b.index[b.auction_id == b.auction_id.iloc[0]]
+        b.loc[first[1], "arm"] = "wide" if b.loc[first[0], "arm"] != "wide" else "control"
+        return b, f"auction {b.auction_id.iloc[0]} has bids under two arms .* at row 0, .* at row 1"
+    raise AssertionError(kind)
+
+
+@pytest.mark.parametrize("kind", ["missing column", "non-numeric bid", "negative bid", "NaN bid", "infinite bid",
+                                  "unknown arm", "auction under two arms"])
+def test_bad_bids_one_line_exit_2(files, capsys, kind):
+    spec, path, bids = files
+    bad, pattern = corrupt(bids, kind)
+    bad.to_parquet(path, index=False)
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("counterbid: error: ")
+    assert __import__("re").search(pattern, lines[0]), lines[0]
+
+
+@pytest.mark.parametrize("kind,pattern", [
+    ("shares", "shares must sum to 1"),
+    ("weights", "non-increasing"),
+    ("yaml", "not valid YAML"),
+])
+def test_bad_spec_one_line_exit_2(files, capsys, kind, pattern):
+    spec, path, _ = files
+    text = {"shares": SPEC.replace("share: 0.8", "share: 0.7"),
+            "weights": SPEC.replace("[0.4]", "[0.4, 0.5]"),
+            "yaml": SPEC + "  - {id: [broken\n"}[kind]
+    spec.write_text(text)
+    code, _, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1 and pattern in err
+
+
+def test_unreadable_and_empty_parquet(files, capsys, tmp_path):
+    spec, _, bids = files
+    junk = tmp_path / "junk.parquet"
+    junk.write_bytes(b"this is not parquet")
+    code, _, err = run(["estimate", "--bids", str(junk), "--experiment", str(spec)], capsys)
+    assert code == 2 and "junk.parquet: not a readable Parquet file" in err and len(err.strip().splitlines()) == 1
+    empty = tmp_path / "empty.parquet"
+    bids.iloc[:0].to_parquet(empty, index=False)
+    code, _, err = run(["estimate", "--bids", str(empty), "--experiment", str(spec)], capsys)
+    assert code == 2 and "empty.parquet: holds no bids" in err
+    code, _, err = run(["estimate", "--bids", str(tmp_path / "nope"), "--experiment", str(spec)], capsys)
+    assert code == 2 and "no such file or folder" in err
+
+
+def test_real_process_no_traceback(files):
+    spec, path, bids = files
+    bids.drop(columns=["arm"]).to_parquet(path, index=False)
+    proc = subprocess.run([sys.executable, "-m", "counterbid.cli", "estimate", "--bids", str(path), "--experiment", str(spec)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2 and proc.stdout == ""
+    assert proc.stderr.strip() == f"counterbid: error: {path}: column 'arm' is missing (required: auction_id, bidder_id, arm, bid, position)"

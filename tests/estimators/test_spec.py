@@ -1,0 +1,70 @@
+"""Experiment spec validation: every rule gives one line naming the key."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import pytest
+
+from counterbid.estimators import InputError, load_experiment, load_experiments, parse_experiments
+
+
+def doc(**over):
+    exp = {"id": "e1", "control_arm": "a", "arms": [
+        {"name": "a", "share": 0.6, "position_weights": [0.3, 0.1]},
+        {"name": "b", "share": 0.4, "position_weights": [0.3, 0.2]}]}
+    exp.update(over)
+    return {"experiments": [exp]}
+
+
+def test_valid_spec_round_trip(tmp_path):
+    path = tmp_path / "spec.yaml"
+    path.write_text("experiments:\n  - id: e1\n    control_arm: a\n    start: 2026-03-01\n    arms:\n"
+                    "      - {name: a, share: 0.5, position_weights: [0.3, 0.1]}\n"
+                    "      - {name: b, share: 0.5, position_weights: measured}\n")
+    exp = load_experiment(path)
+    assert exp.arm_names == ("a", "b") and exp.start == dt.date(2026, 3, 1)
+    assert exp.arm("b").measured and exp.arm("b").position_weights is None
+    assert exp.is_active(dt.date(2026, 3, 1)) and not exp.is_active(dt.date(2026, 2, 28))
+    filled = exp.with_position_weights({"b": [0.3, 0.05]})
+    assert filled.arm("b").weights_for(4) == (0.3, 0.05, 0.0, 0.0)
+
+
+@pytest.mark.parametrize("over,message", [
+    ({"arms": [{"name": "a", "share": 0.6, "position_weights": [0.3]},
+               {"name": "b", "share": 0.3, "position_weights": [0.3]}]}, "sum to 1"),
+    ({"arms": [{"name": "a", "share": 1.0, "position_weights": [0.1, 0.3]}]}, "non-increasing; position 2"),
+    ({"payment_rule": "second_price"}, "unknown payment_rule 'second_price'"),
+    ({"control_arm": "zzz"}, "control_arm 'zzz' is not one of the arms"),
+    ({"arms": [{"name": "_x", "share": 1.0, "position_weights": [0.3]}]}, "arms\\[0\\]: 'name'"),
+    ({"arms": [{"name": "a", "share": 1.5, "position_weights": [0.3]}]}, "'share' must be a number in \\(0, 1\\]"),
+    ({"arms": [{"name": "a", "share": 1.0, "position_weights": [-0.1]}]}, "finite number >= 0"),
+    ({"colour": 3}, "unknown key 'colour'"),
+    ({"start": "2026-13-01"}, "must be a date"),
+])
+def test_rejects(over, message):
+    with pytest.raises(InputError, match=message):
+        parse_experiments(doc(**over), source="spec.yaml")
+
+
+def test_duplicate_ids_and_missing_key():
+    with pytest.raises(InputError, match="duplicate experiment id 'e1'"):
+        parse_experiments({"experiments": doc()["experiments"] * 2})
+    with pytest.raises(InputError, match="top-level key 'experiments' is missing"):
+        parse_experiments({"exp": []})
+
+
+def test_file_errors(tmp_path):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("experiments: [unclosed\n")
+    with pytest.raises(InputError, match=r"bad.yaml: not valid YAML at line"):
+        load_experiments(bad)
+    with pytest.raises(InputError, match="cannot read experiment spec"):
+        load_experiments(tmp_path / "missing.yaml")
+    two = tmp_path / "two.yaml"
+    two.write_text("experiments:\n" + "".join(
+        f"  - {{id: {i}, control_arm: a, arms: [{{name: a, share: 1.0, position_weights: [1]}}]}}\n" for i in ("x", "y")))
+    with pytest.raises(InputError, match="holds 2 experiments"):
+        load_experiment(two)
+    with pytest.raises(InputError, match="no experiment with id 'z'"):
+        load_experiment(two, "z")
