@@ -9,7 +9,8 @@ Configuration (environment, read when the DAG is parsed; each is also a run para
 ``COUNTERBID_LAKE`` bid lake root, ``COUNTERBID_SPEC`` experiment spec, ``COUNTERBID_RESULTS``
 results DuckDB file (empty: the ``counterbid_results`` connection), ``COUNTERBID_STAGING``
 staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weights),
-``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries.
+``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries, ``COUNTERBID_CATCHUP``
+(``false`` leaves past days to ``airflow backfill create``).
 """
 
 from __future__ import annotations
@@ -52,7 +53,7 @@ def alert_on_failure(context) -> None:
     dag_id=DAG_ID,
     schedule="@daily",
     start_date=START,
-    catchup=True,
+    catchup=os.environ.get("COUNTERBID_CATCHUP", "true").lower() in ("1", "true", "yes"),
     max_active_runs=4,
     default_args={
         "retries": int(os.environ.get("COUNTERBID_RETRIES", "2")),

@@ -1,0 +1,166 @@
+"""One real scheduler run: api-server, scheduler and dag-processor against a temporary SQLite home
+with the LocalExecutor; a 3-day backfill created with Airflow's own ``airflow backfill create``."""
+
+from __future__ import annotations
+
+import datetime as dt
+import os
+import secrets
+import shutil
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pyarrow.dataset as pads
+import pytest
+
+from counterbid.dags_example.lake import write_bid_lake
+from counterbid.estimators import estimate_arms, load_experiments
+
+from .conftest import SPEC_TEXT, START
+
+pytestmark = pytest.mark.slow
+
+DAYS = [START + dt.timedelta(days=k) for k in range(3)]
+TIMEOUT = 240  # seconds for the whole run once the processes are up
+AIRFLOW = str(Path(sys.executable).with_name("airflow"))
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _query(db: Path, sql: str, args=()) -> list[tuple]:
+    try:
+        with sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5) as con:
+            return con.execute(sql, args).fetchall()
+    except sqlite3.OperationalError:  # locked or table not created yet: ask again later
+        return []
+
+
+def _wait(what: str, predicate, *, deadline: float, procs: dict, logs: Path, every: float = 1.0):
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        for name, proc in procs.items():
+            if proc.poll() is not None:
+                tail = (logs / f"{name}.log").read_text(errors="replace")[-3000:]
+                pytest.fail(f"airflow {name} exited with {proc.returncode} while waiting for {what}:\n{tail}")
+        time.sleep(every)
+    tails = "\n".join(f"--- {n}\n{(logs / f'{n}.log').read_text(errors='replace')[-1500:]}" for n in procs)
+    pytest.fail(f"timed out waiting for {what}\n{tails}")
+
+
+def _stop(procs: dict) -> None:
+    for proc in procs.values():  # each runs in its own session: signal its whole group (workers too)
+        if proc.poll() is None:
+            try:
+                os.killpg(proc.pid, signal.SIGTERM)
+            except ProcessLookupError:
+                pass
+    end = time.monotonic() + 30
+    for proc in procs.values():
+        try:
+            proc.wait(timeout=max(0.1, end - time.monotonic()))
+        except subprocess.TimeoutExpired:
+            try:
+                os.killpg(proc.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            proc.wait(timeout=10)
+
+
+def test_scheduler_runs_a_three_day_backfill(tmp_path):
+    home, dags, logs = tmp_path / "airflow", tmp_path / "dags", tmp_path / "logs"
+    for d in (home, dags, logs):
+        d.mkdir()
+    shutil.copy(Path(__file__).resolve().parents[2] / "dags_example" / "daily.py", dags / "counterbid_daily.py")
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SPEC_TEXT)
+    experiments = load_experiments(spec)
+    write_bid_lake(tmp_path / "bids", experiments.values(), start=START, days=3, auctions_per_day=1500, n_bidders=4, seed=31)
+    port = _free_port()
+    results = tmp_path / "results.duckdb"
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
+    env.update({
+        "AIRFLOW_HOME": str(home),
+        "AIRFLOW__CORE__DAGS_FOLDER": str(dags),
+        "AIRFLOW__CORE__LOAD_EXAMPLES": "False",
+        "AIRFLOW__CORE__EXECUTOR": "LocalExecutor",
+        "AIRFLOW__CORE__PARALLELISM": "4",
+        "AIRFLOW__CORE__DAGS_ARE_PAUSED_AT_CREATION": "False",
+        "AIRFLOW__DATABASE__SQL_ALCHEMY_CONN": f"sqlite:///{home / 'airflow.db'}",
+        "AIRFLOW__CORE__EXECUTION_API_SERVER_URL": f"http://127.0.0.1:{port}/execution/",
+        "AIRFLOW__API_AUTH__JWT_SECRET": secrets.token_hex(16),
+        "AIRFLOW__API__SECRET_KEY": secrets.token_hex(16),
+        "AIRFLOW__DAG_PROCESSOR__REFRESH_INTERVAL": "5",
+        "AIRFLOW__SCHEDULER__SCHEDULER_HEARTBEAT_SEC": "2",
+        "AIRFLOW__LOGGING__BASE_LOG_FOLDER": str(logs / "tasks"),
+        "COUNTERBID_LAKE": str(tmp_path / "bids"),
+        "COUNTERBID_SPEC": str(spec),
+        "COUNTERBID_RESULTS": str(results),
+        "COUNTERBID_STAGING": str(tmp_path / "staging"),
+        "COUNTERBID_START": START.isoformat(),
+        "COUNTERBID_RETRIES": "0",
+        # no catchup: the scheduler itself then creates only the latest interval's run (a day
+        # without bids, which fails its checks); the three days come from the backfill alone
+        "COUNTERBID_CATCHUP": "false",
+    })
+
+    def airflow(*args, timeout=120):
+        done = subprocess.run([AIRFLOW, *args], env=env, capture_output=True, text=True, timeout=timeout)
+        assert done.returncode == 0, f"airflow {' '.join(args)}:\n{done.stdout[-2000:]}\n{done.stderr[-2000:]}"
+        return done.stdout
+
+    airflow("db", "migrate")
+    airflow("pools", "set", "counterbid_results_writer", "1", "serializes writers of the results database")
+    db = home / "airflow.db"
+    procs: dict[str, subprocess.Popen] = {}
+    try:
+        for name, args in (
+            ("api-server", ["api-server", "--host", "127.0.0.1", "--port", str(port), "--apps", "execution", "--workers", "1"]),
+            ("dag-processor", ["dag-processor"]),
+            ("scheduler", ["scheduler"]),
+        ):
+            log = open(logs / f"{name}.log", "w")
+            procs[name] = subprocess.Popen([AIRFLOW, *args], env=env, stdout=log, stderr=subprocess.STDOUT,
+                                           stdin=subprocess.DEVNULL, start_new_session=True)
+        deadline = time.monotonic() + TIMEOUT
+        _wait("the DAG to be serialized", lambda: _query(db, "select 1 from serialized_dag where dag_id = 'counterbid_daily'"),
+              deadline=deadline, procs=procs, logs=logs)
+        airflow("backfill", "create", "--dag-id", "counterbid_daily", "--from-date", DAYS[0].isoformat(),
+                "--to-date", DAYS[-1].isoformat())
+        finished = ("success", "failed")
+
+        def all_done():
+            rows = _query(db, "select state from dag_run where dag_id = 'counterbid_daily' and run_type = 'backfill'")
+            return rows if len(rows) == 3 and all(r[0] in finished for r in rows) else None
+
+        states = _wait("three backfill runs to finish", all_done, deadline=deadline, procs=procs, logs=logs, every=2)
+        failed = _query(db, "select task_id, map_index, state from task_instance where state != 'success'")
+        assert [s for (s,) in states] == ["success"] * 3, failed
+    finally:
+        _stop(procs)
+    assert all(p.poll() is not None for p in procs.values())
+
+    with duckdb.connect(str(results), read_only=True) as con:
+        counts = con.execute("select experiment_id, ds, count(*) from arm_estimates group by all order by all").fetchall()
+        daily = con.execute("select * from arm_estimates").df()
+    assert [(e, d) for e, d, _ in counts] == [(e, d) for e in ("banners", "tiles") for d in DAYS]
+    lake = pads.dataset(str(tmp_path / "bids"), format="parquet", partitioning="hive").to_table().to_pandas()
+    lake["ds"] = pd.to_datetime(lake["ds"]).dt.date
+    exp = experiments["tiles"]
+    want = estimate_arms(lake[(lake["experiment_id"] == "tiles") & (lake["ds"] == DAYS[1])].reset_index(drop=True), exp)
+    got = daily[(daily["experiment_id"] == "tiles") & (daily["ds"] == pd.Timestamp(DAYS[1]))]
+    merged = want.merge(got, on=["arm", "metric"], suffixes=("", "_db"))
+    assert len(merged) == len(want)
+    assert (merged["estimate"] == merged["estimate_db"]).all()
