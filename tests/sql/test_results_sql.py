@@ -164,3 +164,13 @@ def test_lock_error_surfaces_after_the_timeout(tmp_path):
         assert is_lock_error(info.value)
     finally:
         proc.wait(timeout=30)
+
+
+def test_database_path_from_an_airflow_connection(tmp_path, monkeypatch):
+    target = tmp_path / "from-conn.duckdb"
+    monkeypatch.setenv("AIRFLOW_CONN_COUNTERBID_RESULTS",
+                       '{"conn_type": "counterbid_duckdb", "extra": {"path": "%s"}}' % target)
+    hook = ResultsHook()
+    assert hook.database == str(target)
+    hook.ensure_tables()
+    assert hook.table_exists("arm_estimates") and target.exists()
