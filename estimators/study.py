@@ -29,7 +29,7 @@ import pandas as pd
 from scipy import stats
 
 from .allocation import AllocationRule, allocation_rule, mixture_rule
-from .arms import PreparedBids, _influence
+from .arms import PreparedBids
 from .errors import InputError
 from .order_weights import revenue_weights
 from .simulate import BidFunction, equilibrium_bid_function, expected_revenue_per_auction
@@ -190,6 +190,21 @@ class OrdstatResult:
         return self.estimate - z * self.std_error, self.estimate + z * self.std_error
 
 
+def _l_statistic_influence(sorted_bids: np.ndarray, increments: np.ndarray) -> np.ndarray:
+    """Influence function of ``sum_i b_(i) c_i`` at each sorted bid (METHOD.md, standard errors).
+
+    ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j``, gaps ``D_j = b_(j+1) - b_(j)``, weight
+    density ``J`` at ``j/N`` (Serfling 1980, sec. 8.2); the same formula as the estimator's, kept
+    here so the study does not lean on private helpers (the tests check both agree).
+    """
+    big_n = sorted_bids.size
+    a = 0.5 * big_n * (increments[:-1] + increments[1:]) * np.diff(sorted_bids)
+    centre = float(a @ (np.arange(1, big_n) / big_n))
+    out = np.full(big_n, centre)
+    out[:-1] -= np.cumsum(a[::-1])[::-1]
+    return out
+
+
 @functools.lru_cache(maxsize=512)
 def _increments(target: tuple[float, ...], mixture: tuple[float, ...], n_bids: int) -> tuple[np.ndarray, float]:
     w = revenue_weights(AllocationRule(np.array(target)), AllocationRule(np.array(mixture)), n_bids)
@@ -237,7 +252,7 @@ def ordstat_revenue(
         inc, bottom = _increments(tuple(target.position_weights.tolist()), mix_key, big_n)
         inc = n * inc
         est[k] = float(b @ inc) - n * bottom * float(b[0])
-        sums = np.bincount(cl, weights=_influence(b, inc) / big_n, minlength=g)
+        sums = np.bincount(cl, weights=_l_statistic_influence(b, inc) / big_n, minlength=g)
         se[k] = math.sqrt(g / (g - 1) * float(sums @ sums)) if g > 1 else np.nan
     return OrdstatResult(est, se)
 
