@@ -119,6 +119,9 @@ def run_days(days: list[dt.date], *, conf: dict[str, str], progress=None) -> lis
     progress : callable, optional
         Called with one summary line per day.
     """
+    import warnings
+
+    warnings.filterwarnings("ignore", message="Using `httpx` with `starlette.testclient`")
     from airflow.dag_processing.dagbag import DagBag
 
     from counterbid.estimators.errors import InputError

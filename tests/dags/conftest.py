@@ -16,8 +16,8 @@ if "COUNTERBID_TEST_AIRFLOW_HOME" not in os.environ:
     _home = tempfile.mkdtemp(prefix="counterbid-test-airflow-")
     if use_isolated_airflow(_home):
         os.environ["COUNTERBID_TEST_AIRFLOW_HOME"] = _home
-        os.environ.setdefault("COUNTERBID_RETRIES", "0")
         atexit.register(shutil.rmtree, _home, True)
+os.environ.setdefault("COUNTERBID_RETRIES", "0")  # a failing test task must not wait for a retry
 
 START = dt.date(2026, 3, 2)
 SPEC_TEXT = """

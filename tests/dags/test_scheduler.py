@@ -88,6 +88,9 @@ def test_scheduler_runs_a_three_day_backfill(tmp_path):
     spec.write_text(SPEC_TEXT)
     experiments = load_experiments(spec)
     write_bid_lake(tmp_path / "bids", experiments.values(), start=START, days=3, auctions_per_day=1500, n_bidders=4, seed=31)
+    # every Airflow process waits up to 30 s for SQLite's write lock instead of failing after 5 s
+    (tmp_path / "pyconf").mkdir()
+    (tmp_path / "pyconf" / "counterbid_sqlite_args.py").write_text("connect_args = {'timeout': 30}\n")
     port = _free_port()
     results = tmp_path / "results.duckdb"
     env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
@@ -105,6 +108,8 @@ def test_scheduler_runs_a_three_day_backfill(tmp_path):
         "AIRFLOW__DAG_PROCESSOR__REFRESH_INTERVAL": "5",
         "AIRFLOW__SCHEDULER__SCHEDULER_HEARTBEAT_SEC": "2",
         "AIRFLOW__LOGGING__BASE_LOG_FOLDER": str(logs / "tasks"),
+        "AIRFLOW__DATABASE__SQL_ALCHEMY_CONNECT_ARGS": "counterbid_sqlite_args.connect_args",
+        "PYTHONPATH": os.pathsep.join(p for p in (str(tmp_path / "pyconf"), os.environ.get("PYTHONPATH", "")) if p),
         "COUNTERBID_LAKE": str(tmp_path / "bids"),
         "COUNTERBID_SPEC": str(spec),
         "COUNTERBID_RESULTS": str(results),
@@ -116,8 +121,12 @@ def test_scheduler_runs_a_three_day_backfill(tmp_path):
         "COUNTERBID_CATCHUP": "false",
     })
 
-    def airflow(*args, timeout=120):
-        done = subprocess.run([AIRFLOW, *args], env=env, capture_output=True, text=True, timeout=timeout)
+    def airflow(*args, timeout=120, attempts=3):
+        for attempt in range(attempts):  # SQLite is shared by every process: retry a write that lost the lock
+            done = subprocess.run([AIRFLOW, *args], env=env, capture_output=True, text=True, timeout=timeout)
+            if done.returncode == 0 or "database is locked" not in done.stderr + done.stdout:
+                break
+            time.sleep(2)
         assert done.returncode == 0, f"airflow {' '.join(args)}:\n{done.stdout[-2000:]}\n{done.stderr[-2000:]}"
         return done.stdout
 
@@ -126,19 +135,20 @@ def test_scheduler_runs_a_three_day_backfill(tmp_path):
     db = home / "airflow.db"
     procs: dict[str, subprocess.Popen] = {}
     try:
-        for name, args in (
-            ("api-server", ["api-server", "--host", "127.0.0.1", "--port", str(port), "--apps", "execution", "--workers", "1"]),
-            ("dag-processor", ["dag-processor"]),
-            ("scheduler", ["scheduler"]),
-        ):
-            log = open(logs / f"{name}.log", "w")
-            procs[name] = subprocess.Popen([AIRFLOW, *args], env=env, stdout=log, stderr=subprocess.STDOUT,
-                                           stdin=subprocess.DEVNULL, start_new_session=True)
+        def start(name, *args):
+            with open(logs / f"{name}.log", "w") as log:
+                procs[name] = subprocess.Popen([AIRFLOW, name, *args], env=env, stdout=log, stderr=subprocess.STDOUT,
+                                               stdin=subprocess.DEVNULL, start_new_session=True)
+
         deadline = time.monotonic() + TIMEOUT
+        start("dag-processor")
         _wait("the DAG to be serialized", lambda: _query(db, "select 1 from serialized_dag where dag_id = 'counterbid_daily'"),
               deadline=deadline, procs=procs, logs=logs)
+        # queue the runs before the scheduler starts writing to the same SQLite file
         airflow("backfill", "create", "--dag-id", "counterbid_daily", "--from-date", DAYS[0].isoformat(),
                 "--to-date", DAYS[-1].isoformat())
+        start("api-server", "--host", "127.0.0.1", "--port", str(port), "--apps", "execution", "--workers", "1")
+        start("scheduler")
         finished = ("success", "failed")
 
         def all_done():

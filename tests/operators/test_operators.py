@@ -96,3 +96,13 @@ def test_a_day_with_bad_bids_fails_validation_and_writes_nothing_for_it(airflow_
     assert "schema_nulls_bidder_id [error] FAILED: observed" in text
     alert = "counterbid alert: experiment.validate failed for 2026-03-02"  # the on_failure_callback
     assert alert in text + caplog.text
+
+
+def test_airflow_lists_the_provider_and_its_connection_type():
+    from airflow.providers_manager import ProvidersManager
+
+    manager = ProvidersManager()
+    assert "counterbid" in manager.providers
+    assert manager.providers["counterbid"].data["package-name"] == "counterbid"
+    types = {c["connection-type"]: c["hook-class-name"] for c in manager.providers["counterbid"].data["connection-types"]}
+    assert types == {"counterbid_duckdb": "counterbid.operators.hooks.ResultsHook"}

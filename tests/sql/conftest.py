@@ -18,6 +18,7 @@ if "COUNTERBID_TEST_AIRFLOW_HOME" not in os.environ:  # the hook imports Airflow
     if use_isolated_airflow(_home):
         os.environ["COUNTERBID_TEST_AIRFLOW_HOME"] = _home
         atexit.register(shutil.rmtree, _home, True)
+os.environ.setdefault("COUNTERBID_RETRIES", "0")  # a failing test task must not wait for a retry
 from counterbid.estimators import parse_experiments
 
 START = dt.date(2026, 3, 2)
