@@ -193,7 +193,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         per_day["mixture: realized"] = days["realized"].map("{:.4f}".format)
         per_day["gap"] = days["gap"].map("{:+.2%}".format)
         flagged = days.index[days["gap_se_units"] > MIXTURE_GAP_SE]
-        per_day["adapted?"] = ["no: gap beyond 3 SE" if d in flagged else "consistent" for d in days.index]
+        per_day["mixture gap"] = ["beyond 3 SE" if d in flagged else "within 3 SE" for d in days.index]
         per_day.index = [pd.Timestamp(d).date().isoformat() for d in per_day.index]
         notes = []
         if len(flagged):
@@ -226,6 +226,9 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
 {f'<img src="{html.escape(lift_png)}" alt="lift by day, {html.escape(exp_id)}">' if has_lift else ""}
 <h3>By day</h3>
 {_table_html(per_day)}
+<p class="small">The mixture gap compares the estimated revenue of the mix that ran with its realized revenue.
+A gap beyond 3 standard errors is evidence that bidders had not adapted; a gap within them is not proof that
+they had (bids answering one arm only can still match). {"The data-check column gives each day's worst check outcome." if has_checks else "No data-check outcomes are stored for this database, so nothing here tests the equilibrium assumption directly."}</p>
 </section>""")
     generated = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     page = f"""<!doctype html>
