@@ -1,0 +1,3 @@
+-- The benchmark's floor: the bid column of a Parquet bid log, nothing else.
+select bid
+from read_parquet($path)

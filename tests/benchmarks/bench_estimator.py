@@ -1,0 +1,235 @@
+"""Benchmark of the per-arm estimator against the physical floor (``make bench``; not a test).
+
+Simulates 1M, 5M and 10M bids of a three-arm experiment (5 bidders per auction) once per size,
+stores them as Parquet in a temporary folder and measures, each in its own child process:
+
+(a) floor      DuckDB read of the bid column + one ``np.sort``
+(b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
+(b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
+(c) sql_naive  the improper per-arm GROUP BY in DuckDB (``sql/bench_naive_per_arm.sql``)
+(d) pandas     the plain-pandas peer (``naive_pandas.py``)
+
+plus the interpreter baseline (imports only) and one ``counterbid backfill`` day of the daily DAG
+on 1M bids. Wall time is measured by the parent around the child; "work" is the time the child
+spends after its imports; peak RSS is the child's ``ru_maxrss`` from ``os.wait4``. Prints a
+markdown table; ``--out FILE`` also writes it.
+
+Usage: python tests/benchmarks/bench_estimator.py [--sizes 1,5,10] [--data DIR] [--out FILE]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import re
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+SPEC = """
+experiments:
+  - id: bench
+    control_arm: control
+    start: 2026-03-02
+    arms:
+      - {name: control, share: 0.8, position_weights: [0.31, 0.17, 0.06, 0.02]}
+      - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+      - {name: five,    share: 0.1, position_weights: [0.29, 0.19, 0.10, 0.05, 0.02]}
+"""
+N_BIDDERS = 5
+COLUMNS = ["experiment_id", "auction_id", "bidder_id", "arm", "bid", "position"]
+
+
+# -- children ----------------------------------------------------------------------------------
+def child(kind: str, path: str, spec: str) -> dict:
+    out: dict = {}
+    if kind == "baseline":
+        import duckdb  # noqa: F401
+        import pandas  # noqa: F401
+        import pyarrow.dataset  # noqa: F401
+        import scipy.stats  # noqa: F401
+
+        import counterbid.estimators  # noqa: F401
+        return {"work": 0.0}
+    if kind == "simulate":
+        return _simulate(Path(path), spec)
+    if kind == "floor":  # nothing but DuckDB and numpy imported (the SQL file read as text)
+        import duckdb
+        import numpy as np
+
+        statement = (HERE.parents[1] / "sql" / "bench_read_bid_column.sql").read_text()
+        t0 = time.perf_counter()
+        con = duckdb.connect()
+        bid = con.execute(statement, {"path": path}).fetchnumpy()["bid"]
+        t1 = time.perf_counter()
+        np.sort(bid)
+        t2 = time.perf_counter()
+        return {"work": t2 - t0, "read": t1 - t0, "sort": t2 - t1, "n": int(bid.size)}
+    if kind == "sql_naive":
+        import duckdb
+
+        from counterbid.estimators import load_experiment
+        from counterbid.sql import load_sql
+
+        exp = load_experiment(spec)
+        weights = [{"arm": a.name, "position": k, "weight": w}
+                   for a in exp.arms for k, w in enumerate(a.position_weights, start=1)]
+        t0 = time.perf_counter()
+        rows = duckdb.connect().execute(load_sql("bench_naive_per_arm"), {"path": path, "weights": weights}).fetchall()
+        out["rows"] = [list(r) for r in rows]
+        out["work"] = time.perf_counter() - t0
+        return out
+    if kind in ("estimate", "pandas"):
+        from counterbid.cli.io import read_bids
+        from counterbid.estimators import BID_COLUMNS, estimate_arms, load_experiment
+
+        exp = load_experiment(spec)
+        t0 = time.perf_counter()
+        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS])
+        t1 = time.perf_counter()
+        if kind == "estimate":
+            result = estimate_arms(bids, exp)
+        else:
+            sys.path.insert(0, str(HERE))
+            from naive_pandas import naive_estimate
+
+            result = naive_estimate(bids, exp)
+        t2 = time.perf_counter()
+        rev = result[result["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
+        return {"work": t2 - t0, "read": t1 - t0, "estimate": t2 - t1, "revenue": rev.round(6).to_dict()}
+    raise SystemExit(f"unknown child kind {kind!r}")
+
+
+# -- parent ------------------------------------------------------------------------------------
+def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600) -> dict:
+    """Run ``argv`` as a child; wall seconds, peak RSS (MiB) from wait4, and its JSON stdout."""
+    started = time.perf_counter()
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, text=True)
+        _, status, usage = os.wait4(proc.pid, 0)
+        wall = time.perf_counter() - started
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        out.seek(0), err.seek(0)
+        stdout, stderr = out.read(), err.read()
+    if proc.returncode != 0:
+        raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}")
+    result = {"wall": wall, "rss_mib": usage.ru_maxrss / 1024.0, "stderr": stderr}
+    try:
+        result.update(json.loads(stdout.strip().splitlines()[-1]))
+    except (ValueError, IndexError):
+        pass
+    return result
+
+
+def make_data(folder: Path, millions: int, spec_path: Path, me: list[str]) -> Path:
+    """Simulate once per size, in a child, so this parent stays small.
+
+    (A child's ``ru_maxrss`` counts the pages it shares with the parent between fork and exec.)
+    """
+    target = folder / f"bids_{millions}M.parquet"
+    if not target.exists():
+        r = run_child([*me, "--child", "simulate", str(target), str(spec_path)])
+        print(f"simulated {r['n']} bids in {r['work']:.1f}s -> {target}", file=sys.stderr, flush=True)
+    return target
+
+
+def _simulate(target: Path, spec_path: str) -> dict:
+    import scipy.stats as st
+
+    from counterbid.estimators import load_experiment, simulate_experiment
+
+    millions = int(re.search(r"_(\d+)M", target.name).group(1))
+    exp = load_experiment(spec_path)
+    t0 = time.perf_counter()
+    frame = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=N_BIDDERS,
+                                n_auctions=millions * 1_000_000 // N_BIDDERS, rng=millions)
+    frame[COLUMNS].to_parquet(target, index=False)
+    return {"work": time.perf_counter() - t0, "n": len(frame)}
+
+
+def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
+    """One ``counterbid backfill`` day (dag.test) on the 1M-bid file as the day's partition."""
+    lake = folder / "lake" / "ds=2026-03-02"
+    lake.mkdir(parents=True, exist_ok=True)
+    if not (lake / "bench.parquet").exists():
+        os.link(bids_1m, lake / "bench.parquet")
+    results = folder / "dag_results.duckdb"
+    results.unlink(missing_ok=True)
+    exe = Path(sys.executable).with_name("counterbid")
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
+    r = run_child([str(exe), "backfill", "--lake", str(folder / "lake"), "--experiments", str(spec_path),
+                   "--results", str(results), "--start", "2026-03-02", "--end", "2026-03-02"], env=env)
+    m = re.search(r"2026-03-02 (\w+)\s+([\d.]+)s\s+\((.*)\)", r["stderr"])
+    r["state"], r["dag_seconds"], r["steps"] = (m.group(1), float(m.group(2)), m.group(3)) if m else ("?", float("nan"), "")
+    return r
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--sizes", default="1,5,10", help="bid counts in millions (default 1,5,10)")
+    p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
+    p.add_argument("--out", help="also write the markdown table here")
+    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,cli,estimate,sql_naive,pandas,dag)")
+    p.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "SPEC"), help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.child:
+        print(json.dumps(child(*args.child)))
+        return 0
+    skip = set(filter(None, args.skip.split(",")))
+    folder = Path(args.data) if args.data else Path(tempfile.mkdtemp(prefix="counterbid-bench-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    spec_path = folder / "bench.yaml"
+    spec_path.write_text(SPEC)
+    me = [sys.executable, str(Path(__file__).resolve())]
+    exe = str(Path(sys.executable).with_name("counterbid"))
+    lines = ["| bids | row | wall s | work s | peak RSS MiB | wall / (a) | work / (a) | RSS / bid column |",
+             "|---:|---|---:|---:|---:|---:|---:|---:|"]
+    base = run_child([*me, "--child", "baseline", "-", "-"])
+    notes = [f"interpreter + imports (numpy, pandas, scipy, pyarrow, duckdb, counterbid): "
+             f"{base['wall']:.2f} s, {base['rss_mib']:.0f} MiB peak RSS"]
+    first_file = None
+    for millions in [int(s) for s in args.sizes.split(",")]:
+        path = make_data(folder, millions, spec_path, me)
+        first_file = first_file or path
+        column_mib = millions * 1e6 * 8 / 2**20
+        rows = {}
+        for kind in ("floor", "cli", "estimate", "sql_naive", "pandas"):
+            if kind in skip:
+                continue
+            if kind == "cli":
+                argv = [exe, "estimate", "--bids", str(path), "--experiment", str(spec_path), "--format", "json"]
+                r = run_child(argv)
+                r["work"] = float("nan")
+            else:
+                r = run_child([*me, "--child", kind, str(path), str(spec_path)])
+            rows[kind] = r
+            print(f"{millions}M {kind}: wall {r['wall']:.2f}s work {r.get('work', float('nan')):.2f}s "
+                  f"rss {r['rss_mib']:.0f} MiB {({k: v for k, v in r.items() if k in ('read', 'sort', 'estimate')})}",
+                  file=sys.stderr, flush=True)
+        floor = rows.get("floor")
+        labels = {"floor": "(a) floor: DuckDB read bid + np.sort", "cli": "(b) counterbid estimate (CLI process)",
+                  "estimate": "(b') read_bids + estimate_arms", "sql_naive": "(c) per-arm GROUP BY (DuckDB)",
+                  "pandas": "(d) plain-pandas peer"}
+        for kind, r in rows.items():
+            ratio_wall = r["wall"] / floor["wall"] if floor else float("nan")
+            ratio_work = r["work"] / floor["work"] if floor and r["work"] == r["work"] else float("nan")
+            lines.append(f"| {millions}M | {labels[kind]} | {r['wall']:.2f} | {r['work']:.2f} | {r['rss_mib']:.0f} | "
+                         f"{ratio_wall:.2f} | {ratio_work:.2f} | {r['rss_mib'] / column_mib:.1f} |")
+    if "dag" not in skip and first_file is not None and first_file.name == "bids_1M.parquet":
+        d = dag_day(folder, first_file, spec_path)
+        notes.append(f"one-day DAG run (counterbid backfill, dag.test) on 1M bids: {d['state']} in {d['dag_seconds']:.1f} s "
+                     f"({d['steps']}); process wall {d['wall']:.1f} s incl. Airflow metadata migration, "
+                     f"peak RSS {d['rss_mib']:.0f} MiB")
+    text = "\n".join(lines + [""] + [f"* {n}" for n in notes]) + "\n"
+    print(text)
+    if args.out:
+        Path(args.out).write_text(text)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
