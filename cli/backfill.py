@@ -126,7 +126,9 @@ def run_days(days: list[dt.date], *, conf: dict[str, str], progress=None) -> lis
 
     from counterbid.estimators.errors import InputError
 
-    folder = os.environ["AIRFLOW__CORE__DAGS_FOLDER"]
+    from airflow.configuration import conf as airflow_conf
+
+    folder = airflow_conf.get("core", "dags_folder")
     bag = DagBag(dag_folder=folder)
     if bag.import_errors:
         path, err = next(iter(bag.import_errors.items()))
