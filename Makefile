@@ -26,5 +26,9 @@ demo: $(STAMP)
 	$(PY) -m counterbid.dags_example.demo report --out demo_output
 	@echo "demo wall time: $$(( $$(date +%s) - $$(cat demo_output/.started) ))s"
 
+# Benchmark against the physical floor (1M, 5M, 10M bids; several minutes). Not part of `make test`.
+bench: $(STAMP)
+	$(PY) tests/benchmarks/bench_estimator.py --out bench_results.md
+
 clean:
 	rm -rf demo_output .pytest_cache

@@ -96,6 +96,30 @@ def _auction_codes(ids: pd.Series) -> np.ndarray:
     return pd.factorize(ids, sort=False)[0]
 
 
+def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_codes: int, bids: pd.DataFrame,
+                             rows: np.ndarray, source: str) -> None:
+    """Raise when a bidder bids twice in one auction (duplicate rows of the log, say).
+
+    Pairs are packed into one int64 key ``auction * B + bidder``; a duplicate is an equal
+    neighbour after sorting. Logs written auction by auction are nearly sorted by this key, which
+    a stable sort (timsort) handles in close to linear time.
+    """
+    n_auction_codes = int(auction.max()) + 1
+    if n_auction_codes * max(n_bidder_codes, 1) < 2**62:
+        pair = auction.astype(np.int64) * n_bidder_codes + bidder
+    else:  # too many codes to pack: hash the pairs instead
+        pair = pd.factorize(pd.MultiIndex.from_arrays([auction, bidder]))[0]
+    ordered = np.sort(pair, kind="stable")
+    if not (ordered[1:] == ordered[:-1]).any():
+        return
+    i = int(np.flatnonzero(pd.Series(pair).duplicated(keep=False).to_numpy())[0])
+    j = int(np.flatnonzero(pair == pair[i])[1])
+    raise InputError(
+        f"{source}: bidder {_value(bids['bidder_id'].iloc[i])} bids twice in auction "
+        f"{_value(bids['auction_id'].iloc[i])} (rows {_row(rows, i)} and {_row(rows, j)}); duplicate rows?"
+    )
+
+
 def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "bids") -> PreparedBids:
     """Validate a bids frame against the data contract and an experiment spec.
 
@@ -200,7 +224,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     n_bidders = counts[auction]
     single = n_bidders < 2
     n_excluded = int(np.count_nonzero(counts == 1))
-    bidder, _ = pd.factorize(bids["bidder_id"], sort=False)
+    bidder, bidder_uniques = pd.factorize(bids["bidder_id"], sort=False)
+    _refuse_repeated_bidders(auction, bidder, len(bidder_uniques), bids, rows, source)
     if single.any():
         keep = ~single
         auction = pd.factorize(auction[keep], sort=False)[0]
