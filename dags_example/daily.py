@@ -16,12 +16,12 @@ staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weig
 from __future__ import annotations
 
 import datetime as dt
-import logging
 import os
 from pathlib import Path
 
 from airflow.sdk import dag, task, task_group
 
+from counterbid.operators.notify import CheckAlertNotifier
 from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
     EstimateArmsOperator,
@@ -30,23 +30,18 @@ from counterbid.operators.pipeline import (
     WriteEstimatesOperator,
 )
 
-log = logging.getLogger("counterbid.alerts")
-
 DAG_ID = "counterbid_daily"
 HERE = Path(__file__).resolve().parent
 START = dt.datetime.fromisoformat(os.environ.get("COUNTERBID_START", "2026-03-02")).replace(tzinfo=dt.timezone.utc)
 
-
-def alert_on_failure(context) -> None:
-    """Task failure alert: one line naming the task, the day and the error."""
-    ti = context.get("task_instance") or context.get("ti")
-    log.error(
-        "counterbid alert: %s failed for %s (try %s): %s",
-        getattr(ti, "task_id", "?"),
-        context.get("ds"),
-        getattr(ti, "try_number", "?"),
-        (str(context.get("exception") or "").splitlines() or [""])[0],
-    )
+# Alerts: failed data checks (observed vs threshold) or the task's error, to the task log by
+# default. For a webhook or mail, set COUNTERBID_ALERT_TARGET=webhook|smtp and
+# COUNTERBID_ALERT_CONN to an Airflow connection. Task-level callbacks (default_args), so they
+# also run under dag.test().
+ALERTS = CheckAlertNotifier(
+    target=os.environ.get("COUNTERBID_ALERT_TARGET", "log"),
+    conn_id=os.environ.get("COUNTERBID_ALERT_CONN") or None,
+)
 
 
 @dag(
@@ -58,7 +53,7 @@ def alert_on_failure(context) -> None:
     default_args={
         "retries": int(os.environ.get("COUNTERBID_RETRIES", "2")),
         "retry_delay": dt.timedelta(minutes=5),
-        "on_failure_callback": alert_on_failure,
+        "on_failure_callback": ALERTS,
     },
     params={
         "lake_root": os.environ.get("COUNTERBID_LAKE", "/srv/quillfen/lake/bids"),
@@ -84,7 +79,8 @@ def counterbid_daily():
             "results_database": "{{ params.results_database }}",
         }
         load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
-        validate = ValidatePartitionOperator(task_id="validate", **paths)
+        # Warnings pass with status 'warning' and still alert; errors fail the task (and alert).
+        validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
         estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}", **paths)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write

@@ -132,7 +132,10 @@ class CheckAlertNotifier(BaseNotifier):
         ti = context.get("ti") or context.get("task_instance")
         payload = None
         if ti is not None:
-            payload = ti.xcom_pull(task_ids=self.task_id or ti.task_id, key=XCOM_KEY)
+            # Inside a mapped task group, pull this instance's own value (not every index's list).
+            map_index = getattr(ti, "map_index", -1)
+            extra = {"map_indexes": map_index} if isinstance(map_index, int) and map_index >= 0 else {}
+            payload = ti.xcom_pull(task_ids=self.task_id or ti.task_id, key=XCOM_KEY, **extra)
         if payload:
             alert = build_alert(payload)
             return alert if alert["failed"] else None

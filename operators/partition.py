@@ -29,6 +29,7 @@ from counterbid.estimators import CheckResult, Experiment, estimate_arms, load_e
 from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.errors import InputError
 
+from .checks import run_checks, write_check_results
 from .hooks import ResultsHook
 
 __all__ = [
@@ -182,11 +183,10 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
 
 #: The full data-check runner, ``f(con, relation, experiment, *, ds, history_relation)`` returning
 #: a list of CheckResult, and the function that stores outcomes in the ``data_checks`` table,
-#: ``f(con, results, *, experiment_id, ds, run_id, schema)``. ``None``: only the schema gate runs
-#: and outcomes live in the staging folder only. Plugging in the data-checks issue's runner is the
-#: one line ``from .checks import run_checks as CHECK_RUNNER, write_check_results as CHECK_RECORDER``.
-CHECK_RUNNER = None
-CHECK_RECORDER = None
+#: ``f(con, results, *, experiment_id, ds, run_id, schema)``. Set either to ``None`` to run only
+#: the schema gate / keep outcomes in the staging folder only.
+CHECK_RUNNER = run_checks
+CHECK_RECORDER = write_check_results
 
 
 def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition, ds: dt.date) -> list[CheckResult]:

@@ -20,7 +20,7 @@ from counterbid.estimators.arms import CLUSTERS
 from counterbid.estimators.errors import InputError
 from counterbid.sql import validate_identifier
 
-from . import partition
+from . import notify, partition
 from .hooks import DEFAULT_CONN_ID, ResultsHook
 
 __all__ = [
@@ -133,6 +133,8 @@ class ValidatePartitionOperator(_PartitionOperator):
         partition.store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
         for r in results:
             (log.info if r.passed else log.warning)("%s", r.describe())
+        # The alert notifier (task-level callback) reads the outcomes from here.
+        context["ti"].xcom_push(key=notify.XCOM_KEY, value=notify.check_payload(results, experiment_id=experiment.id, ds=day))
         message = failed_checks_message(results, where=f"experiment {experiment.id!r} on {day}")
         if message:
             raise AirflowFailException(message)  # the same data fails the same way: no retry

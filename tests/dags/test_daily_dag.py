@@ -87,7 +87,9 @@ def test_three_days_match_estimate_arms_exactly(three_days):
                     pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
                                                    check_dtype=False)
             assert set(to_date.loc[to_date["experiment_id"] == exp.id, "first_ds"]) == {pd.Timestamp(START)}
-    assert set(daily["status"]) == {"ok"} and daily["run_id"].nunique() == 3
+    # the three days sit inside the experiments' default three-day warm-up: estimates are
+    # written, marked 'warning' (data-checks issue: warnings pass, errors stop the day)
+    assert set(daily["status"]) == {"warning"} and daily["run_id"].nunique() == 3
 
 
 def test_rerun_replaces_rows_without_duplicates(three_days):

@@ -94,8 +94,11 @@ def test_a_day_with_bad_bids_fails_validation_and_writes_nothing_for_it(airflow_
     assert "2 check(s) failed for experiment 'tiles' on 2026-03-02" in text
     assert "schema_known_arms [error] FAILED: observed 5 vs threshold 0" in text
     assert "schema_nulls_bidder_id [error] FAILED: observed" in text
-    alert = "counterbid alert: experiment.validate failed for 2026-03-02"  # the on_failure_callback
-    assert alert in text + caplog.text
+    # the DAG's task-level alert notifier (on_failure_callback) names the experiment, day and checks
+    logged = text + caplog.text
+    assert "counterbid checks alert" in logged
+    alert = logged[logged.index("counterbid checks alert"):]
+    assert "tiles" in alert and "2026-03-02" in alert and "schema_known_arms" in alert
 
 
 def test_airflow_lists_the_provider_and_its_connection_type():
