@@ -1,0 +1,76 @@
+"""A results-database writer in its own process, for the fault tests (``python fault_writer.py ...``).
+
+``write DB EXPERIMENT DAY ROWS RUN_ID [MARKER]``
+    One :meth:`ResultsHook.replace_partition` of ``ROWS`` estimate rows. With ``MARKER``, the file
+    is created the moment the transaction has deleted the old rows and starts inserting.
+``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS``
+    Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pyarrow as pa
+
+from counterbid.operators.hooks import ResultsHook
+
+POSITIONS = 3
+
+
+def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -> dict[str, pa.Table]:
+    """Rows for every results table of one (experiment, day); values derived from the row number."""
+    now = pd.Timestamp.now(tz="UTC")
+    k = pd.RangeIndex(rows)
+    estimates = pd.DataFrame({
+        "experiment_id": experiment_id, "ds": day, "arm": [f"arm{i:07d}" for i in k], "metric": "revenue_per_auction",
+        "estimate": k / 7.0, "std_error": 0.01, "ci_low": k / 7.0 - 0.02, "ci_high": k / 7.0 + 0.02,
+        "n_auctions": 1000, "n_bids": 4000, "status": "ok", "method_version": "ordstat-1", "run_id": run_id,
+        "computed_at": now})
+    to_date = estimates.assign(first_ds=day - dt.timedelta(days=3))
+    weights = pd.DataFrame({
+        "experiment_id": experiment_id, "ds": day, "arm": "arm0000000", "position": range(1, POSITIONS + 1),
+        "weight": [0.4, 0.2, 0.1], "source": "spec", "impressions": None, "clicks": None, "first_click_ds": None,
+        "run_id": run_id, "computed_at": now})
+    weights = weights.astype({"impressions": "Int64", "clicks": "Int64", "first_click_ds": "datetime64[ns]"})
+    return {name: pa.Table.from_pandas(frame, preserve_index=False)
+            for name, frame in (("arm_estimates", estimates), ("arm_estimates_to_date", to_date), ("position_weights", weights))}
+
+
+class _MarkingHook(ResultsHook):
+    """Touches ``marker`` when the first insert statement is fetched: the old rows are deleted."""
+
+    def __init__(self, *, marker: Path, **kwargs) -> None:
+        super().__init__(**kwargs)
+        self.marker = marker
+
+    def sql(self, name: str) -> str:
+        if name.startswith("results_insert_") and not self.marker.exists():
+            self.marker.write_text("inside the transaction\n")
+        return super().sql(name)
+
+
+def main(argv: list[str]) -> int:
+    command, db, experiment_id = argv[:3]
+    if command == "write":
+        day, rows, run_id = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5]
+        hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
+        hook.replace_partition(experiment_id=experiment_id, ds=day, tables=partition_tables(experiment_id, day, rows, run_id))
+        return 0
+    if command == "days":
+        first, n_days, rounds, rows = dt.date.fromisoformat(argv[3]), int(argv[4]), int(argv[5]), int(argv[6])
+        hook = ResultsHook(database=db)
+        for r in range(rounds):
+            for d in range(n_days):
+                day = first + dt.timedelta(days=d)
+                hook.replace_partition(experiment_id=experiment_id, ds=day,
+                                       tables=partition_tables(experiment_id, day, rows, f"round-{r}"))
+        return 0
+    raise SystemExit(f"unknown command {command!r}")
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))
