@@ -15,6 +15,8 @@ import sys
 import time
 from pathlib import Path
 
+import pandas as pd
+
 HERE = Path(__file__).resolve().parent
 START = dt.date(2026, 3, 2)
 
@@ -38,8 +40,15 @@ def make_report(out: Path) -> None:
     from counterbid.operators.report import cumulative_table, format_cumulative, write_report
 
     hook = ResultsHook(database=out / "results.duckdb")
+    table = cumulative_table(hook)
     print("\nExperiment to date (all days pooled and re-estimated; 95% intervals):\n")
-    print(format_cumulative(cumulative_table(hook)))
+    print(format_cumulative(table))
+    print("\nDays flagged by the data checks (estimates of those days carry status 'warning'):")
+    for exp_id in sorted(set(table["experiment_id"])):
+        days = hook.fetch_df("report_day_check_status", {"experiment_id": exp_id})
+        flagged = days[days["worst_status"] != "passed"]
+        listed = ", ".join(f"{pd.Timestamp(d).date()} {s}" for d, s in zip(flagged["ds"], flagged["worst_status"]))
+        print(f"  {exp_id}: {listed or 'none'}")
     page = write_report(hook, out / "report")
     print(f"\nreport: {page}")
 
