@@ -270,21 +270,25 @@ def sort_order(bids: np.ndarray) -> np.ndarray:
     return rough[np.argsort(bids[rough], kind="stable")]
 
 
-def _influence(gaps: np.ndarray, increments: np.ndarray, inner_grid: np.ndarray) -> np.ndarray:
+def _influence(gaps: np.ndarray, increments: np.ndarray, inner_grid: np.ndarray, *,
+               work: np.ndarray | None = None, out: np.ndarray | None = None) -> np.ndarray:
     """Influence function of the L-statistic ``sum_i b_(i) c_i`` at each sorted point.
 
     ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j`` with gaps ``D_j = b_(j+1) - b_(j)`` and the
     weight density ``J`` at ``j/N`` (Serfling 1980, section 8.2). O(N) by a reverse cumulative sum.
     ``gaps`` is ``np.diff`` of the sorted bids and ``inner_grid`` holds ``j/N`` for j = 1..N-1
-    (both shared by every arm and metric of a stratum).
+    (both shared by every arm and metric of a stratum). ``work`` (N-1) and ``out`` (N) are
+    optional buffers, reused across arms so large strata do not fault in fresh pages each time.
     """
     n = increments.size
-    a = np.add(increments[:-1], increments[1:])
+    a = np.add(increments[:-1], increments[1:], out=work)
     a *= 0.5 * n  # J at the gaps j/N, j = 1..N-1
     a *= gaps
     centre = float(a @ inner_grid)
-    out = np.empty(n)
-    np.subtract(centre, np.cumsum(a[::-1])[::-1], out=out[:-1])
+    out = np.empty(n) if out is None else out
+    tail = out[:-1][::-1]
+    np.cumsum(a[::-1], out=tail)  # tail[i] = sum_{j >= i} a_j, written in place
+    np.subtract(centre, out[:-1], out=out[:-1])
     out[-1] = centre  # nothing above the top bid
     return out
 
@@ -310,24 +314,32 @@ def _variance(cluster_sums: np.ndarray) -> float:
 
 @dataclass(frozen=True)
 class _SortedStratum:
-    """The sorted bids of one stratum and what every arm and metric shares: one sort, one grid."""
+    """The sorted bids of one stratum and what every arm and metric shares: one sort, one grid.
+
+    ``work``, ``increments`` and ``influence`` are scratch buffers reused by every arm and metric;
+    the influence array :func:`_apply` returns is only valid until its next call.
+    """
 
     bids: np.ndarray
     gaps: np.ndarray
     grid: np.ndarray  # i/N, i = 0..N
+    work: np.ndarray
+    increments: np.ndarray
+    influence: np.ndarray
 
     @classmethod
     def of(cls, sorted_bids: np.ndarray) -> "_SortedStratum":
         big_n = sorted_bids.size
-        return cls(sorted_bids, np.diff(sorted_bids), np.arange(big_n + 1) / big_n)
+        return cls(sorted_bids, np.diff(sorted_bids), np.arange(big_n + 1) / big_n,
+                   np.empty(max(big_n - 1, 0)), np.empty(big_n), np.empty(big_n))
 
 
 def _apply(weights: CumulativeWeights, n: int, s: _SortedStratum) -> tuple[float, np.ndarray]:
     b = s.bids
-    inc = weights.increments(b.size, grid=s.grid)
+    inc = weights.increments(b.size, grid=s.grid, out=s.increments)
     inc *= n
     est = float(b @ inc) + n * weights.top * float(b[-1]) - n * weights.bottom * float(b[0])
-    return est, _influence(s.gaps, inc, s.grid[1:-1])
+    return est, _influence(s.gaps, inc, s.grid[1:-1], work=s.work, out=s.influence)
 
 
 def estimate_arms(

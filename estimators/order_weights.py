@@ -59,17 +59,18 @@ class CumulativeWeights:
         spline = CubicSpline(self.grid, self.values)
         return spline(q)
 
-    def increments(self, n_bids: int, *, grid: np.ndarray | None = None) -> np.ndarray:
+    def increments(self, n_bids: int, *, grid: np.ndarray | None = None, out: np.ndarray | None = None) -> np.ndarray:
         """Weights ``F(i/N) - F((i-1)/N)`` for i = 1..N.
 
         ``grid``, when given, must be ``np.arange(n_bids + 1) / n_bids`` (callers that need the
-        increments of several weight functions compute it once).
+        increments of several weight functions compute it once); ``out`` is an optional buffer
+        of length N for the result.
         """
         if n_bids + 1 <= self.grid.size and self.grid.size == n_bids + 1:
             cum = self.values
         else:
             cum = self.at(np.arange(n_bids + 1) / n_bids if grid is None else grid)
-        return np.diff(cum)
+        return np.subtract(cum[1:], cum[:-1], out=out)  # np.diff, into ``out``
 
 
 def _grid(n_bids: int | None) -> np.ndarray:
