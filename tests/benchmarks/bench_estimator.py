@@ -217,8 +217,10 @@ def main(argv: list[str] | None = None) -> int:
         for kind, r in rows.items():
             ratio_wall = r["wall"] / floor["wall"] if floor else float("nan")
             ratio_work = r["work"] / floor["work"] if floor and r["work"] == r["work"] else float("nan")
-            lines.append(f"| {millions}M | {labels[kind]} | {r['wall']:.2f} | {r['work']:.2f} | {r['rss_mib']:.0f} | "
-                         f"{ratio_wall:.2f} | {ratio_work:.2f} | {r['rss_mib'] / column_mib:.1f} |")
+            cells = [f"{v:.2f}" if v == v else "–" for v in (r["wall"], r["work"])]
+            ratios = [f"{v:.2f}" if v == v else "–" for v in (ratio_wall, ratio_work)]
+            lines.append(f"| {millions}M | {labels[kind]} | {cells[0]} | {cells[1]} | {r['rss_mib']:.0f} | "
+                         f"{ratios[0]} | {ratios[1]} | {r['rss_mib'] / column_mib:.1f} |")
     if "dag" not in skip and first_file is not None and first_file.name == "bids_1M.parquet":
         d = dag_day(folder, first_file, spec_path)
         notes.append(f"one-day DAG run (counterbid backfill, dag.test) on 1M bids: {d['state']} in {d['dag_seconds']:.1f} s "
