@@ -268,10 +268,11 @@ class ResultsHook(BaseHook):
         with self.lake() as con:
             try:
                 return con.sql(self.sql(name), params=dict(params)).to_arrow_table()
-            except duckdb.IOException as exc:
+            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
                 if "No files found" in str(exc):
                     raise InputError(f"{root}: no Parquet files under this root") from None
-                raise
+                first = str(exc).splitlines()[0]
+                raise InputError(f"{root}: a Parquet file of the lake cannot be read ({first})") from None
             except duckdb.BinderException as exc:
                 first = str(exc).splitlines()[0]
                 raise InputError(f"{root}: cannot read the lake with statement {name!r} ({first})") from None

@@ -129,6 +129,10 @@ def active_experiment_ids(spec_path: str | Path, ds: object) -> list[str]:
     return [e.id for e in load_experiments(spec_path).values() if e.is_active(day)]
 
 
+class MissingPartitionError(RuntimeError):
+    """The day's partition folder does not exist (yet): retryable, unlike bad input."""
+
+
 def stage_partition(
     hook: ResultsHook, *, lake_root: str | Path, experiment: Experiment, ds: dt.date, staging_root: str | Path
 ) -> dict:
@@ -141,6 +145,9 @@ def stage_partition(
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     day = hook.read_lake_partition(lake_root, experiment_id=experiment.id, ds=ds)
+    if day.num_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
+        # Late data looks like this: raised as a retryable failure that names the folder.
+        raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
     _write_parquet(day, staged.day)
     first = experiment.start or EARLIEST_DAY
     to_date = hook.read_lake_range(lake_root, experiment_id=experiment.id, first_ds=first, ds=ds)

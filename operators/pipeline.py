@@ -101,8 +101,11 @@ class LoadPartitionOperator(_PartitionOperator):
         self.lake_root = str(lake_root)
 
     def execute(self, context) -> dict:
-        out = partition.stage_partition(self.hook(), lake_root=self.lake_root, experiment=self.experiment(),
-                                        ds=self.day(), staging_root=self.staging_root)
+        try:
+            out = partition.stage_partition(self.hook(), lake_root=self.lake_root, experiment=self.experiment(),
+                                            ds=self.day(), staging_root=self.staging_root)
+        except InputError as exc:  # the same files fail the same way: no retry
+            raise AirflowFailException(str(exc)) from None
         log.info("staged %s bids of %s on %s (%s experiment-to-date from %s) in %s", out["day_bids"],
                  self.experiment_id, self.ds, out["to_date_bids"], out["first_ds"], out["folder"])
         return out
