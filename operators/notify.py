@@ -21,7 +21,7 @@ from typing import Any
 
 from airflow.sdk import BaseHook, BaseNotifier
 
-from counterbid.estimators.checks import SEVERITIES, CheckResult, failure_summary
+from counterbid.estimators.checks import CheckResult, failure_summary, worst_failure
 from counterbid.estimators.errors import InputError
 
 __all__ = ["CheckAlertNotifier", "TARGETS", "XCOM_KEY", "build_alert", "check_payload"]
@@ -63,10 +63,7 @@ def build_alert(payload: Mapping[str, Any]) -> dict[str, Any]:
     except (KeyError, TypeError, ValueError) as exc:
         raise InputError(f"check payload is malformed ({exc}); expected keys experiment_id, ds, results") from None
     failed = [r for r in results if not r.passed]
-    worst = None
-    for r in failed:
-        if worst is None or SEVERITIES.index(r.severity) > SEVERITIES.index(worst):
-            worst = r.severity
+    worst = worst_failure(results)
     return {
         "text": failure_summary(results, experiment_id=experiment_id, ds=ds),
         "experiment_id": experiment_id,
