@@ -11,7 +11,7 @@ from scipy import stats
 
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .errors import EstimatorWarning, InputError
-from .order_weights import CumulativeWeights, revenue_weights, welfare_weights
+from .order_weights import WeightTable, revenue_weights, welfare_weights
 from .spec import Experiment
 
 __all__ = [
@@ -45,15 +45,17 @@ class PreparedBids:
     Attributes
     ----------
     bid : ndarray of float64
-    auction : ndarray of int64
+        May share memory with the input frame (read only).
+    auction : ndarray of intp
         Auction codes 0..n_auctions-1.
-    bidder : ndarray of int64
-        Bidder codes.
-    arm : ndarray of int64
+    bidder : ndarray of integers
+        Bidder labels: equal label, same bidder (the ids themselves when they are small
+        non-negative integers, else codes).
+    arm : ndarray of int8
         Index into ``experiment.arms`` of the arm the bid's auction ran.
-    position : ndarray of int64
+    position : ndarray of int32
         1 = top, 0 = not shown.
-    n_bidders : ndarray of int64
+    n_bidders : ndarray of int32
         Bids in the bid's auction.
     n_excluded_auctions : int
         Single-bidder auctions left out.
@@ -96,22 +98,58 @@ def _auction_codes(ids: pd.Series) -> np.ndarray:
     return pd.factorize(ids, sort=False)[0]
 
 
-def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_codes: int, bids: pd.DataFrame,
+def _is_plain_integer(col: pd.Series) -> bool:
+    """A numpy-backed integer column (it cannot hold nulls)."""
+    return isinstance(col.dtype, np.dtype) and col.dtype.kind in "iu"
+
+
+def _as_text(col: pd.Series) -> tuple[np.ndarray, list]:
+    """Codes and distinct values of a label column, values as strings (``pd.factorize`` semantics).
+
+    Categorical columns (what the command line reads string columns as) use their codes
+    directly; string columns are factorized as they are; anything else is read as text first.
+    """
+    if isinstance(col.dtype, pd.CategoricalDtype):
+        return col.cat.codes.to_numpy(), [str(c) for c in col.cat.categories]
+    if not pd.api.types.is_string_dtype(col) or col.dtype == object:
+        col = col.astype("string")
+    codes, uniques = pd.factorize(col, sort=False)
+    return codes, list(uniques)
+
+
+def _bidder_labels(ids: pd.Series) -> tuple[np.ndarray, int]:
+    """Integer labels of bidder ids (equal label = same bidder) and an upper bound on them.
+
+    Non-negative integer ids below 2**31 are their own labels (no copy, no hashing); anything else
+    is factorized.
+    """
+    if _is_plain_integer(ids) and len(ids):
+        values = ids.to_numpy()
+        lo, hi = int(values.min()), int(values.max())
+        if lo >= 0 and hi < 2**31:
+            return values, hi + 1
+    codes, uniques = pd.factorize(ids, sort=False)
+    return codes, len(uniques)
+
+
+def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_labels: int, bids: pd.DataFrame,
                              rows: np.ndarray, source: str) -> None:
     """Raise when a bidder bids twice in one auction (duplicate rows of the log, say).
 
     Pairs are packed into one int64 key ``auction * B + bidder``; a duplicate is an equal
-    neighbour after sorting. Logs written auction by auction are nearly sorted by this key, which
-    a stable sort (timsort) handles in close to linear time.
+    neighbour after sorting (``np.sort``; which of two equal keys comes first does not matter).
     """
     n_auction_codes = int(auction.max()) + 1
-    if n_auction_codes * max(n_bidder_codes, 1) < 2**62:
-        pair = auction.astype(np.int64) * n_bidder_codes + bidder
+    if n_auction_codes * max(n_bidder_labels, 1) < 2**62:
+        pair = auction.astype(np.int64)
+        pair *= n_bidder_labels
+        pair += bidder
     else:  # too many codes to pack: hash the pairs instead
         pair = pd.factorize(pd.MultiIndex.from_arrays([auction, bidder]))[0]
-    ordered = np.sort(pair, kind="stable")
+    ordered = np.sort(pair)
     if not (ordered[1:] == ordered[:-1]).any():
         return
+    del ordered
     i = int(np.flatnonzero(pd.Series(pair).duplicated(keep=False).to_numpy())[0])
     j = int(np.flatnonzero(pair == pair[i])[1])
     raise InputError(
@@ -147,7 +185,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         raise InputError("`experiment` must be an Experiment (see load_experiment)")
     rows = np.arange(len(bids))
     if "experiment_id" in bids.columns:
-        keep = (bids["experiment_id"].astype("string") == experiment.id).fillna(False).to_numpy(bool)
+        codes, names = _as_text(bids["experiment_id"])
+        keep = codes == (names.index(experiment.id) if experiment.id in names else -2)
         if not keep.all():
             bids, rows = bids.loc[keep], rows[keep]
     if len(bids) == 0:
@@ -164,7 +203,10 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         raise InputError(
             f"{source}: column 'bid' must be numeric (dtype {col.dtype}); row {_row(rows, i)} holds {_value(col.iloc[i])}"
         )
-    bid = col.to_numpy(dtype=float, na_value=np.nan)
+    if col.dtype == np.float64:
+        bid = col.to_numpy()  # no copy; never written to
+    else:
+        bid = col.to_numpy(dtype=float, na_value=np.nan)
     if not (np.all(bid >= 0) and np.all(bid < np.inf)):  # False for NaN too; the loop names the first fault
         for test, what in ((np.isnan, "NaN or null"), (np.isinf, "infinite"), (lambda a: a < 0, "negative")):
             bad = np.flatnonzero(test(bid))
@@ -172,14 +214,19 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
                 raise InputError(f"{source}: column 'bid' row {_row(rows, int(bad[0]))} is {what} ({bid[bad[0]]!r})")
 
     for name in ("auction_id", "bidder_id", "arm"):
+        if _is_plain_integer(bids[name]):
+            continue
         nulls = np.flatnonzero(bids[name].isna().to_numpy())
         if nulls.size:
             raise InputError(f"{source}: column {name!r} row {_row(rows, int(nulls[0]))} is null")
 
-    arm_codes, arm_uniques = pd.factorize(bids["arm"].astype("string"), sort=False)
+    arm_codes, arm_uniques = _as_text(bids["arm"])
     spec_index = {name: k for k, name in enumerate(experiment.arm_names)}
-    lookup = np.empty(len(arm_uniques), dtype=np.int64)
+    lookup = np.zeros(max(len(arm_uniques), 1), dtype=np.int8 if len(experiment.arms) < 128 else np.int64)
+    present = np.bincount(arm_codes, minlength=len(arm_uniques)) > 0 if len(arm_uniques) else np.zeros(0, bool)
     for k, name in enumerate(arm_uniques):
+        if not present[k]:  # a category no row uses
+            continue
         if name not in spec_index:
             first = int(np.flatnonzero(arm_codes == k)[0])
             raise InputError(
@@ -188,27 +235,13 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             )
         lookup[k] = spec_index[name]
     arm = lookup[arm_codes]
+    del arm_codes
 
-    pos_col = bids["position"]
-    if pos_col.isna().all():
-        position = np.zeros(len(bids), dtype=np.int64)
-    else:
-        if pd.api.types.is_bool_dtype(pos_col) or not pd.api.types.is_numeric_dtype(pos_col):
-            raise InputError(f"{source}: column 'position' must be an integer (1 = top) or null; dtype is {pos_col.dtype}")
-        pos = pos_col.to_numpy(dtype=float, na_value=np.nan)
-        shown = ~np.isnan(pos)
-        integral = pd.api.types.is_integer_dtype(pos_col)  # whole numbers already: skip the rounding test
-        bad = np.flatnonzero(shown & ((pos < 1) if integral else ((pos < 1) | (pos != np.round(pos)))))
-        if bad.size:
-            raise InputError(
-                f"{source}: column 'position' row {_row(rows, int(bad[0]))} is {pos[bad[0]]!r}; "
-                "positions are integers >= 1 (null = not shown)"
-            )
-        position = np.where(shown, pos, 0).astype(np.int64)
+    position = _positions(bids["position"], rows, source)
 
     auction = _auction_codes(bids["auction_id"])
     n_all = int(auction.max()) + 1
-    first_arm = np.empty(n_all, dtype=np.int64)
+    first_arm = np.empty(n_all, dtype=arm.dtype)
     first_arm[auction[::-1]] = arm[::-1]  # the first bid of each auction wins
     split = np.flatnonzero(first_arm[auction] != arm)
     if split.size:
@@ -220,13 +253,16 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             f"({experiment.arm_names[arm[j]]!r} at row {_row(rows, j)}, "
             f"{experiment.arm_names[arm[i]]!r} at row {_row(rows, i)})"
         )
+    del first_arm, split
     counts = np.bincount(auction, minlength=n_all)
-    n_bidders = counts[auction]
-    single = n_bidders < 2
+    n_bidders = counts.astype(np.int32)[auction]
     n_excluded = int(np.count_nonzero(counts == 1))
-    bidder, bidder_uniques = pd.factorize(bids["bidder_id"], sort=False)
-    _refuse_repeated_bidders(auction, bidder, len(bidder_uniques), bids, rows, source)
-    if single.any():
+    del counts
+    bidder, n_bidder_labels = _bidder_labels(bids["bidder_id"])
+    _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source)
+    single = n_bidders < 2
+    n_excluded_bids = int(np.count_nonzero(single))
+    if n_excluded_bids:
         keep = ~single
         auction = pd.factorize(auction[keep], sort=False)[0]
         bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
@@ -234,63 +270,91 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         raise InputError(f"{source}: every auction of experiment {experiment.id!r} has a single bidder; nothing to estimate")
     return PreparedBids(
         bid=bid,
-        auction=auction.astype(np.int64, copy=False),
-        bidder=bidder.astype(np.int64, copy=False),
+        auction=auction.astype(np.intp, copy=False),
+        bidder=bidder,
         arm=arm,
         position=position,
-        n_bidders=n_bidders.astype(np.int64, copy=False),
+        n_bidders=n_bidders,
         n_auctions=int(auction.max()) + 1,
         n_excluded_auctions=n_excluded,
-        n_excluded_bids=int(np.count_nonzero(single)),
+        n_excluded_bids=n_excluded_bids,
     )
 
 
-def sort_order(bids: np.ndarray) -> np.ndarray:
-    """The stable ascending order of non-negative, finite ``bids`` (same as ``argsort(kind="stable")``).
+def _positions(pos_col: pd.Series, rows: np.ndarray, source: str) -> np.ndarray:
+    """Positions as int32, 0 where the bid was not shown (null); 1 = top."""
+    if pos_col.isna().all():
+        return np.zeros(len(pos_col), dtype=np.int32)
+    if pd.api.types.is_bool_dtype(pos_col) or not pd.api.types.is_numeric_dtype(pos_col):
+        raise InputError(f"{source}: column 'position' must be an integer (1 = top) or null; dtype is {pos_col.dtype}")
+    if pd.api.types.is_integer_dtype(pos_col) and int(pos_col.max()) < 2**31:  # whole numbers: no rounding test
+        shown = None if _is_plain_integer(pos_col) else pos_col.notna().to_numpy()
+        position = pos_col.to_numpy(dtype=np.int32, na_value=0)
+        bad = np.flatnonzero(position < 1) if shown is None else np.flatnonzero((position < 1) & shown)
+        if bad.size:
+            raise InputError(
+                f"{source}: column 'position' row {_row(rows, int(bad[0]))} is {float(position[bad[0]])!r}; "
+                "positions are integers >= 1 (null = not shown)"
+            )
+        return position
+    pos = pos_col.to_numpy(dtype=float, na_value=np.nan)
+    shown = ~np.isnan(pos)
+    bad = np.flatnonzero(shown & ((pos < 1) | (pos != np.round(pos)) | (pos >= 2**31)))
+    if bad.size:
+        raise InputError(
+            f"{source}: column 'position' row {_row(rows, int(bad[0]))} is {pos[bad[0]]!r}; "
+            "positions are integers >= 1 (null = not shown)"
+        )
+    return np.where(shown, pos, 0).astype(np.int32)
 
-    ``np.argsort`` of float64 is ~3x slower than ``np.sort``, so large inputs take a detour that
-    is exact by construction. Non-negative IEEE-754 doubles order like their bit patterns read as
-    unsigned 64-bit integers. One ``np.sort`` of a packed key -- the bid's bits with the lowest
-    ``k`` cleared, the row index (k bits) in their place -- puts the rows in bid order up to bids
-    that agree in all but their lowest ``k`` bits (relative differences below ~2**(k-52)), with
-    the row index breaking those near-ties. A stable argsort of the bids in that nearly sorted
-    order (timsort: close to linear on long sorted runs) then repairs the near-ties. The result
-    is a stable sort of the bids: equal bids keep their row order, exactly as the direct argsort.
+
+def sort_order(bids: np.ndarray) -> np.ndarray:
+    """The stable ascending order of non-negative, finite ``bids`` (same as ``argsort(kind="stable")``)."""
+    return sorted_with_order(bids)[0]
+
+
+def sorted_with_order(bids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The stable ascending order of non-negative, finite ``bids`` and the bids in that order.
+
+    ``np.argsort`` of float64 is many times slower than ``np.sort``, so large inputs take a
+    detour that is exact by construction. Non-negative IEEE-754 doubles order like their bit
+    patterns read as unsigned 64-bit integers. One ``np.sort`` of a packed key -- the bid's bits
+    with the lowest ``k`` cleared, the row index (k bits) in their place -- orders the rows by bid
+    and breaks ties by row index, except among bids that agree in all but their lowest ``k`` bits
+    (relative differences below ~2**(k-52)), which it orders by row index alone. Only groups of
+    such near-ties that came out in descending bid order are re-sorted (by bid, then row index).
+    The result equals the stable argsort: equal bids keep their row order.
+
+    Returns
+    -------
+    order : ndarray of intp
+    sorted_bids : ndarray of float64
     """
     n = bids.size
     if n < 2**16:
-        return np.argsort(bids, kind="stable")
-    k = int(n - 1).bit_length()
-    key = (bids + 0.0).view(np.uint64)  # + 0.0 turns -0.0 (sign bit set) into +0.0
-    key = (key >> np.uint64(k)) << np.uint64(k)
-    key |= np.arange(n, dtype=np.uint64)
+        order = np.argsort(bids, kind="stable")
+        return order, bids[order]
+    k = np.uint64(int(n - 1).bit_length())
+    key = np.add(bids, 0.0).view(np.uint64)  # + 0.0 turns -0.0 (sign bit set) into +0.0
+    key >>= k
+    key <<= k
+    for lo in range(0, n, 2**20):  # the row index into the low bits, without an N-long temporary
+        key[lo:lo + 2**20] |= np.arange(lo, min(n, lo + 2**20), dtype=np.uint64)
     key.sort()
-    rough = (key & np.uint64((1 << k) - 1)).astype(np.intp)
-    del key
-    return rough[np.argsort(bids[rough], kind="stable")]
-
-
-def _influence(gaps: np.ndarray, increments: np.ndarray, inner_grid: np.ndarray, *,
-               work: np.ndarray | None = None, out: np.ndarray | None = None) -> np.ndarray:
-    """Influence function of the L-statistic ``sum_i b_(i) c_i`` at each sorted point.
-
-    ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j`` with gaps ``D_j = b_(j+1) - b_(j)`` and the
-    weight density ``J`` at ``j/N`` (Serfling 1980, section 8.2). O(N) by a reverse cumulative sum.
-    ``gaps`` is ``np.diff`` of the sorted bids and ``inner_grid`` holds ``j/N`` for j = 1..N-1
-    (both shared by every arm and metric of a stratum). ``work`` (N-1) and ``out`` (N) are
-    optional buffers, reused across arms so large strata do not fault in fresh pages each time.
-    """
-    n = increments.size
-    a = np.add(increments[:-1], increments[1:], out=work)
-    a *= 0.5 * n  # J at the gaps j/N, j = 1..N-1
-    a *= gaps
-    centre = float(a @ inner_grid)
-    out = np.empty(n) if out is None else out
-    tail = out[:-1][::-1]
-    np.cumsum(a[::-1], out=tail)  # tail[i] = sum_{j >= i} a_j, written in place
-    np.subtract(centre, out[:-1], out=out[:-1])
-    out[-1] = centre  # nothing above the top bid
-    return out
+    order = (key & np.uint64((1 << int(k)) - 1)).astype(np.intp)
+    sorted_bids = bids[order]
+    down = np.flatnonzero(sorted_bids[1:] < sorted_bids[:-1])
+    if down.size:
+        key >>= k  # the high bits alone: equal within a group of near-ties, non-decreasing
+        groups = np.unique(key[down])
+        starts = np.searchsorted(key, groups, side="left")
+        lengths = np.searchsorted(key, groups, side="right") - starts
+        offsets = np.cumsum(lengths) - lengths
+        pos = np.arange(int(lengths.sum())) + np.repeat(starts - offsets, lengths)
+        fix = np.lexsort((order[pos], sorted_bids[pos], np.repeat(np.arange(groups.size), lengths)))
+        order[pos] = order[pos][fix]
+        sorted_bids[pos] = sorted_bids[pos][fix]
+    return order, sorted_bids
 
 
 @dataclass
@@ -312,34 +376,41 @@ def _variance(cluster_sums: np.ndarray) -> float:
     return float(g / (g - 1) * np.dot(cluster_sums, cluster_sums))
 
 
-@dataclass(frozen=True)
-class _SortedStratum:
-    """The sorted bids of one stratum and what every arm and metric shares: one sort, one grid.
+#: Bids per block of the fused weight / influence pass (a few arrays of this length fit in L2).
+_BLOCK = 2**16
 
-    ``work``, ``increments`` and ``influence`` are scratch buffers reused by every arm and metric;
-    the influence array :func:`_apply` returns is only valid until its next call.
+
+def _l_statistic(table: WeightTable, k: int, n: int, sorted_bids: np.ndarray, influence: np.ndarray) -> float:
+    """Estimate of metric ``k`` of ``table`` and, written into ``influence``, its influence function.
+
+    With increments ``c_i = n [F(i/N) - F((i-1)/N)]`` the estimate is ``sum_i b_(i) c_i`` (boundary
+    terms are added by the caller). The influence function of this L-statistic at the i-th
+    smallest bid is ``IF_i = sum_j a_j j/N - sum_{j >= i} a_j`` with ``a_j = D_j J(j/N)``, gaps
+    ``D_j = b_(j+1) - b_(j)`` and weight density ``J`` at the gaps (Serfling 1980, section 8.2).
+    Written as ``IF_i = (sum_j a_j j/N - sum_j a_j) + sum_{j < i} a_j`` it is a forward prefix sum,
+    computed block by block with a running carry, so nothing of length N is allocated here.
     """
-
-    bids: np.ndarray
-    gaps: np.ndarray
-    grid: np.ndarray  # i/N, i = 0..N
-    work: np.ndarray
-    increments: np.ndarray
-    influence: np.ndarray
-
-    @classmethod
-    def of(cls, sorted_bids: np.ndarray) -> "_SortedStratum":
-        big_n = sorted_bids.size
-        return cls(sorted_bids, np.diff(sorted_bids), np.arange(big_n + 1) / big_n,
-                   np.empty(max(big_n - 1, 0)), np.empty(big_n), np.empty(big_n))
-
-
-def _apply(weights: CumulativeWeights, n: int, s: _SortedStratum) -> tuple[float, np.ndarray]:
-    b = s.bids
-    inc = weights.increments(b.size, grid=s.grid, out=s.increments)
-    inc *= n
-    est = float(b @ inc) + n * weights.top * float(b[-1]) - n * weights.bottom * float(b[0])
-    return est, _influence(s.gaps, inc, s.grid[1:-1], work=s.work, out=s.influence)
+    big_n = sorted_bids.size
+    half_n = 0.5 * big_n
+    estimate = centre = carry = 0.0
+    for lo in range(0, big_n, _BLOCK):
+        hi = min(big_n, lo + _BLOCK)  # bids lo..hi-1 of this block
+        last = min(hi + 1, big_n)  # increments lo..last-1: one beyond the block for a_(hi-1)
+        inc = np.diff(table.block(k, lo, last))
+        inc *= n
+        estimate += float(sorted_bids[lo:hi] @ inc[: hi - lo])
+        top = min(hi, big_n - 1)  # gaps a_j, j = lo..top-1 (there are N - 1 in all)
+        a = np.add(inc[: top - lo], inc[1 : top - lo + 1])
+        a *= half_n
+        a *= np.diff(sorted_bids[lo : top + 1])
+        centre += float(a @ np.arange(lo + 1, top + 1)) / big_n
+        block = influence[lo:hi]
+        block[0] = carry
+        np.cumsum(a[: hi - lo - 1], out=block[1:])
+        block[1:] += carry
+        carry += float(a.sum())
+    influence += centre - carry
+    return estimate
 
 
 def estimate_arms(
@@ -452,30 +523,42 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
     welfare = [zero() for _ in range(k_arms)]
     welfare_identified = True
 
+    influence = None  # one buffer of the largest stratum's length, shared by every metric
     for n, a_n in zip(strata.tolist(), strata_auctions.tolist()):
         pi = a_n / total_auctions
         sel = np.flatnonzero(data.n_bidders == n) if strata.size > 1 else None
         b_raw = data.bid if sel is None else data.bid[sel]
-        order = sort_order(b_raw)  # the one sort shared by every arm and metric of the stratum
-        sorted_bids = _SortedStratum.of(b_raw[order])
+        order, sorted_bids = sorted_with_order(b_raw)  # the one sort shared by every arm and metric
         cl = (clusters if sel is None else clusters[sel])[order]
-        del order
-        big_n = sorted_bids.bids.size
+        del order, b_raw, sel
+        big_n = sorted_bids.size
+        if influence is None or influence.size < big_n:
+            influence = np.empty(big_n)
+        infl = influence[:big_n]
         rules: list[AllocationRule] = [allocation_rule(a.weights_for(n), n) for a in arms]
         mix = mixture_rule(rules, shares)
-        for k, target in enumerate(rules + [mix]):
-            est, infl = _apply(revenue_weights(target, mix, big_n), n, sorted_bids)
-            infl *= pi / big_n
-            revenue[k].add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
-        for k, target in enumerate(rules):
-            ww = welfare_weights(target, mix, big_n)
-            if not (np.isfinite(ww.top) and np.isfinite(ww.bottom)):
+        # Revenue and welfare of every arm (the mixture's revenue follows by linearity below).
+        weights = [revenue_weights(r, mix, big_n) for r in rules] + [welfare_weights(r, mix, big_n) for r in rules]
+        identified = [k < k_arms or bool(np.isfinite(ww.top) and np.isfinite(ww.bottom)) for k, ww in enumerate(weights)]
+        table = WeightTable([ww for ww, ok in zip(weights, identified) if ok], big_n)
+        column = np.cumsum(identified) - 1  # metric k's row in the table
+        for k, ww in enumerate(weights):
+            acc = revenue[k] if k < k_arms else welfare[k - k_arms]
+            if not identified[k]:
                 welfare_identified = False
-                welfare[k].estimate = np.nan
+                acc.estimate = np.nan
                 continue
-            est, infl = _apply(ww, n, sorted_bids)
+            est = _l_statistic(table, int(column[k]), n, sorted_bids, infl)
+            est += n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0])
             infl *= pi / big_n
-            welfare[k].add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
+            acc.add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
+        del sorted_bids, cl, table
+    # The estimator is linear in the target rule and the mixture's rule is the share-weighted sum
+    # of the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
+    revenue[-1].estimate = float(sum(s * revenue[k].estimate for k, s in enumerate(shares)))
+    revenue[-1].cluster_sums = sum(s * revenue[k].cluster_sums for k, s in enumerate(shares))
+    del influence
+
     if not welfare_identified:
         warnings.warn(
             "welfare is not identified: the mixture's top two positions weigh the same "

@@ -26,7 +26,7 @@ from scipy.interpolate import CubicSpline
 
 from .allocation import AllocationRule, derivative_ratio
 
-__all__ = ["CumulativeWeights", "revenue_weights", "welfare_weights", "GRID_INTERVALS"]
+__all__ = ["CumulativeWeights", "WeightTable", "revenue_weights", "welfare_weights", "GRID_INTERVALS"]
 
 #: Exact evaluations of the cumulative weight per stratum before the spline takes over.
 GRID_INTERVALS = 2**14
@@ -71,6 +71,74 @@ class CumulativeWeights:
         else:
             cum = self.at(np.arange(n_bids + 1) / n_bids if grid is None else grid)
         return np.subtract(cum[1:], cum[:-1], out=out)  # np.diff, into ``out``
+
+
+class WeightTable:
+    """The cumulative weights of several metrics on one shared grid, evaluated block by block.
+
+    The estimator needs ``F_k(i/N)`` for every metric ``k`` at every ``i = 0..N``. Building one
+    piecewise-cubic interpolant for all metrics (``scipy.interpolate.CubicSpline`` along axis 0,
+    the same spline :meth:`CumulativeWeights.at` builds) and evaluating it on a block of
+    consecutive points keeps the work in cache. The interval of ``i/N`` on the uniform grid
+    ``j/K`` is ``floor(i K / N)``: consecutive points fall into runs of the same interval whose
+    lengths follow from integer arithmetic, so the pieces' coefficients are repeated rather than
+    searched for. Each piece is evaluated in the local variable ``i/N - j/K`` (Horner's rule),
+    as ``scipy.interpolate.PPoly`` does.
+
+    Parameters
+    ----------
+    weights : sequence of CumulativeWeights
+        Weights computed on the same grid (``revenue_weights`` / ``welfare_weights`` with the
+        same ``n_bids``).
+    n_bids : int
+        Sample size ``N`` of the stratum. When the grid is exactly ``i/N`` the exact values are
+        returned; otherwise the spline.
+    """
+
+    def __init__(self, weights, n_bids: int):
+        if len(weights) == 0:
+            raise ValueError("WeightTable needs at least one set of weights")
+        grid = weights[0].grid
+        if any(w.grid.shape != grid.shape or not np.array_equal(w.grid, grid) for w in weights):
+            raise ValueError("WeightTable: all weights must share one grid")
+        self.n_bids = int(n_bids)
+        self.intervals = grid.size - 1
+        values = np.stack([w.values for w in weights])  # (M, K+1)
+        self.exact = grid.size == self.n_bids + 1
+        if self.exact:
+            self.values = values
+            self.coefficients = None
+        else:
+            if not np.array_equal(grid, np.arange(grid.size) / self.intervals):
+                raise ValueError("WeightTable: the spline path needs the uniform grid j/K")
+            spline = CubicSpline(grid, values, axis=1)
+            # PPoly coefficients (4, K, M) -> per metric, per power: (M, 4, K), contiguous rows.
+            self.coefficients = np.ascontiguousarray(np.moveaxis(spline.c, 2, 0))
+            # First point i of interval j: ceil(j N / K); the last interval also holds i = N.
+            j = np.arange(self.intervals + 1, dtype=np.int64)
+            self._starts = (j * self.n_bids + self.intervals - 1) // self.intervals
+            self._starts[-1] = self.n_bids + 1
+            self._left = j[:-1] / self.intervals  # the grid's knots, as PPoly's x
+
+    def block(self, k: int, lo: int, hi: int) -> np.ndarray:
+        """``F_k(i/N)`` for ``i = lo..hi`` (inclusive) of metric ``k``."""
+        if self.exact:
+            return self.values[k, lo:hi + 1]
+        j0, j1 = self._interval(lo), self._interval(hi)
+        edges = np.clip(self._starts[j0:j1 + 2], lo, hi + 1)
+        edges[0], edges[-1] = lo, hi + 1
+        counts = np.diff(edges)
+        t = np.arange(lo, hi + 1) / self.n_bids
+        t -= np.repeat(self._left[j0:j1 + 1], counts)
+        c = self.coefficients[k]
+        out = np.repeat(c[0, j0:j1 + 1], counts)
+        for power in (1, 2, 3):
+            out *= t
+            out += np.repeat(c[power, j0:j1 + 1], counts)
+        return out
+
+    def _interval(self, i: int) -> int:
+        return min(i * self.intervals // self.n_bids, self.intervals - 1)
 
 
 def _grid(n_bids: int | None) -> np.ndarray:
