@@ -29,21 +29,29 @@ def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
     if len(experiments) == 1:
         return next(iter(experiments.values()))
     if "experiment_id" in bids.columns:
-        present = [e for e in bids["experiment_id"].astype("string").dropna().unique() if e in experiments]
+        present = [e for e in _distinct_text(bids["experiment_id"]) if e in experiments]
         if len(present) == 1:
             return experiments[present[0]]
     raise InputError(f"{spec_path}: holds {len(experiments)} experiments ({', '.join(experiments)}); pass --experiment-id")
 
 
+def _distinct_text(col) -> list[str]:
+    if str(col.dtype) == "category":
+        return [str(c) for c in col.cat.remove_unused_categories().cat.categories]
+    return list(col.astype("string").dropna().unique())
+
+
 def run(args: argparse.Namespace) -> int:
     from counterbid.cli.io import read_bids
-    from counterbid.estimators import BID_COLUMNS, EstimatorWarning, estimate_arms
+    from counterbid.estimators import BID_COLUMNS, EstimatorWarning, estimate_arms, prepare_bids
 
     bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS])
     experiment = _choose_experiment(args.experiment, args.experiment_id, bids)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
-        result = estimate_arms(bids, experiment, confidence_level=args.level, cluster=args.cluster, source=str(args.bids))
+        prepared = prepare_bids(bids, experiment, source=str(args.bids))
+        del bids  # the validated arrays are all that is needed from here on
+        result = estimate_arms(prepared, experiment, confidence_level=args.level, cluster=args.cluster, source=str(args.bids))
     for w in caught:
         if issubclass(w.category, EstimatorWarning):
             print(f"counterbid: warning: {w.message}", file=sys.stderr)

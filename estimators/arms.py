@@ -46,16 +46,16 @@ class PreparedBids:
     ----------
     bid : ndarray of float64
         May share memory with the input frame (read only).
-    auction : ndarray of intp
+    auction : ndarray of int32 or intp
         Auction codes 0..n_auctions-1.
     bidder : ndarray of integers
         Bidder labels: equal label, same bidder (the ids themselves when they are small
         non-negative integers, else codes).
     arm : ndarray of int8
         Index into ``experiment.arms`` of the arm the bid's auction ran.
-    position : ndarray of int32
+    position : ndarray of int8, int16 or int32
         1 = top, 0 = not shown.
-    n_bidders : ndarray of int32
+    n_bidders : ndarray of uint8 or int32
         Bids in the bid's auction.
     n_excluded_auctions : int
         Single-bidder auctions left out.
@@ -86,16 +86,22 @@ def _auction_codes(ids: pd.Series) -> np.ndarray:
     """Codes 0..A-1 of the auction ids in order of first appearance (``pd.factorize(sort=False)``).
 
     Bid logs are usually written auction by auction. When integer ids never decrease, the code of
-    a row is the number of id changes before it: the same codes as factorize, without hashing.
+    a row is the number of id changes before it: the same codes as factorize, without hashing
+    (int32 when they fit, else intp).
     """
     if pd.api.types.is_integer_dtype(ids) and not ids.hasnans and len(ids) > 1:
-        values = ids.to_numpy(dtype=np.int64)
-        step = np.diff(values)
-        if np.all(step >= 0):
-            codes = np.zeros(values.size, dtype=np.intp)
-            np.cumsum(step != 0, out=codes[1:])
+        values = ids.to_numpy()
+        if bool(np.all(values[1:] >= values[:-1])):
+            codes = np.empty(values.size, dtype=np.int32 if values.size < 2**31 else np.intp)
+            codes[0] = 0
+            np.not_equal(values[1:], values[:-1], out=codes[1:])
+            np.cumsum(codes[1:], out=codes[1:])
             return codes
     return pd.factorize(ids, sort=False)[0]
+
+
+def _is_sorted(codes: np.ndarray) -> bool:
+    return bool(np.all(codes[1:] >= codes[:-1]))
 
 
 def _is_plain_integer(col: pd.Series) -> bool:
@@ -132,15 +138,39 @@ def _bidder_labels(ids: pd.Series) -> tuple[np.ndarray, int]:
     return codes, len(uniques)
 
 
+#: Rows per block of the duplicate-bidder check on logs written auction by auction.
+_PAIR_BLOCK = 2**20
+
+
 def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_labels: int, bids: pd.DataFrame,
                              rows: np.ndarray, source: str) -> None:
     """Raise when a bidder bids twice in one auction (duplicate rows of the log, say).
 
     Pairs are packed into one int64 key ``auction * B + bidder``; a duplicate is an equal
     neighbour after sorting (``np.sort``; which of two equal keys comes first does not matter).
+    When the auction codes never decrease (a log written auction by auction) a duplicate can
+    only sit inside one run of rows, so the keys are sorted a block of whole auctions at a time.
     """
-    n_auction_codes = int(auction.max()) + 1
-    if n_auction_codes * max(n_bidder_labels, 1) < 2**62:
+    n = auction.size
+    n_auction_codes = int(auction[-1] if _is_sorted(auction) else auction.max()) + 1
+    packable = n_auction_codes * max(n_bidder_labels, 1) < 2**62
+    if packable and _is_sorted(auction):
+        lo = 0
+        while lo < n:
+            hi = min(n, lo + _PAIR_BLOCK)
+            if hi < n:  # cut at an auction boundary
+                cut = int(np.searchsorted(auction, auction[hi], side="left"))
+                hi = cut if cut > lo else int(np.searchsorted(auction, auction[lo], side="right"))
+            pair = auction[lo:hi].astype(np.int64)
+            pair *= n_bidder_labels
+            pair += bidder[lo:hi]
+            pair.sort()
+            if (pair[1:] == pair[:-1]).any():
+                break
+            lo = hi
+        else:
+            return
+    if packable:
         pair = auction.astype(np.int64)
         pair *= n_bidder_labels
         pair += bidder
@@ -207,7 +237,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         bid = col.to_numpy()  # no copy; never written to
     else:
         bid = col.to_numpy(dtype=float, na_value=np.nan)
-    if not (np.all(bid >= 0) and np.all(bid < np.inf)):  # False for NaN too; the loop names the first fault
+    low, high = bid.min(), bid.max()  # NaN propagates into both
+    if not (low >= 0 and high < np.inf):  # False for NaN too; the loop names the first fault
         for test, what in ((np.isnan, "NaN or null"), (np.isinf, "infinite"), (lambda a: a < 0, "negative")):
             bad = np.flatnonzero(test(bid))
             if bad.size:
@@ -222,19 +253,20 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 
     arm_codes, arm_uniques = _as_text(bids["arm"])
     spec_index = {name: k for k, name in enumerate(experiment.arm_names)}
-    lookup = np.zeros(max(len(arm_uniques), 1), dtype=np.int8 if len(experiment.arms) < 128 else np.int64)
-    present = np.bincount(arm_codes, minlength=len(arm_uniques)) > 0 if len(arm_uniques) else np.zeros(0, bool)
     for k, name in enumerate(arm_uniques):
-        if not present[k]:  # a category no row uses
-            continue
         if name not in spec_index:
-            first = int(np.flatnonzero(arm_codes == k)[0])
-            raise InputError(
-                f"{source}: unknown arm {name!r} at row {_row(rows, first)} "
-                f"(experiment {experiment.id!r} has arms: {', '.join(experiment.arm_names)})"
-            )
-        lookup[k] = spec_index[name]
-    arm = lookup[arm_codes]
+            found = np.flatnonzero(arm_codes == k)
+            if found.size:  # a category no row uses does not matter
+                raise InputError(
+                    f"{source}: unknown arm {name!r} at row {_row(rows, int(found[0]))} "
+                    f"(experiment {experiment.id!r} has arms: {', '.join(experiment.arm_names)})"
+                )
+    arm_dtype = np.int8 if len(experiment.arms) < 128 else np.int32
+    lookup = np.array([spec_index.get(name, 0) for name in arm_uniques] or [0], dtype=arm_dtype)
+    if np.array_equal(lookup, np.arange(lookup.size)) and arm_codes.dtype == arm_dtype:
+        arm = arm_codes  # categories already in spec order: the codes are the arm indices
+    else:
+        arm = lookup[arm_codes]
     del arm_codes
 
     position = _positions(bids["position"], rows, source)
@@ -255,22 +287,21 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         )
     del first_arm, split
     counts = np.bincount(auction, minlength=n_all)
-    n_bidders = counts.astype(np.int32)[auction]
+    n_bidders = counts.astype(np.uint8 if counts.max() < 2**8 else np.int32)[auction]
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
     bidder, n_bidder_labels = _bidder_labels(bids["bidder_id"])
     _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source)
-    single = n_bidders < 2
-    n_excluded_bids = int(np.count_nonzero(single))
+    n_excluded_bids = int(np.count_nonzero(n_bidders < 2)) if n_excluded else 0
     if n_excluded_bids:
-        keep = ~single
+        keep = n_bidders >= 2
         auction = pd.factorize(auction[keep], sort=False)[0]
         bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
     if bid.size == 0:
         raise InputError(f"{source}: every auction of experiment {experiment.id!r} has a single bidder; nothing to estimate")
     return PreparedBids(
         bid=bid,
-        auction=auction.astype(np.intp, copy=False),
+        auction=auction,
         bidder=bidder,
         arm=arm,
         position=position,
@@ -282,14 +313,15 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 
 
 def _positions(pos_col: pd.Series, rows: np.ndarray, source: str) -> np.ndarray:
-    """Positions as int32, 0 where the bid was not shown (null); 1 = top."""
+    """Positions as a small integer array, 0 where the bid was not shown (null); 1 = top."""
     if pos_col.isna().all():
         return np.zeros(len(pos_col), dtype=np.int32)
     if pd.api.types.is_bool_dtype(pos_col) or not pd.api.types.is_numeric_dtype(pos_col):
         raise InputError(f"{source}: column 'position' must be an integer (1 = top) or null; dtype is {pos_col.dtype}")
     if pd.api.types.is_integer_dtype(pos_col) and int(pos_col.max()) < 2**31:  # whole numbers: no rounding test
         shown = None if _is_plain_integer(pos_col) else pos_col.notna().to_numpy()
-        position = pos_col.to_numpy(dtype=np.int32, na_value=0)
+        dtype = pos_col.dtype if _is_plain_integer(pos_col) else pos_col.dtype.numpy_dtype
+        position = pos_col.to_numpy(dtype=dtype if np.dtype(dtype).itemsize <= 4 else np.int32, na_value=0)
         bad = np.flatnonzero(position < 1) if shown is None else np.flatnonzero((position < 1) & shown)
         if bad.size:
             raise InputError(
@@ -341,14 +373,19 @@ def sorted_with_order(bids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     for lo in range(0, n, 2**20):  # the row index into the low bits, without an N-long temporary
         key[lo:lo + 2**20] |= np.arange(lo, min(n, lo + 2**20), dtype=np.uint64)
     key.sort()
-    order = (key & np.uint64((1 << int(k)) - 1)).astype(np.intp)
+    key &= np.uint64((1 << int(k)) - 1)
+    order = key.view(np.intp)  # the row indices, in place
     sorted_bids = bids[order]
     down = np.flatnonzero(sorted_bids[1:] < sorted_bids[:-1])
     if down.size:
-        key >>= k  # the high bits alone: equal within a group of near-ties, non-decreasing
-        groups = np.unique(key[down])
-        starts = np.searchsorted(key, groups, side="left")
-        lengths = np.searchsorted(key, groups, side="right") - starts
+        # A group shares the high bits: its bids lie in [low, high], the doubles with those bits.
+        # Groups come in ascending order, so "bid < low" and "bid <= high" are monotone along
+        # the array and a binary search finds each group's extent.
+        groups = np.unique(np.add(sorted_bids[down], 0.0).view(np.uint64) >> k)
+        low = (groups << k).view(np.float64)
+        high = (((groups + np.uint64(1)) << k) - np.uint64(1)).view(np.float64)
+        starts = np.searchsorted(sorted_bids, low, side="left")
+        lengths = np.searchsorted(sorted_bids, high, side="right") - starts
         offsets = np.cumsum(lengths) - lengths
         pos = np.arange(int(lengths.sum())) + np.repeat(starts - offsets, lengths)
         fix = np.lexsort((order[pos], sorted_bids[pos], np.repeat(np.arange(groups.size), lengths)))
@@ -359,14 +396,33 @@ def sorted_with_order(bids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 @dataclass
 class _Accumulator:
-    """Running estimate and per-cluster influence sums of one (arm, metric)."""
+    """Running estimate and per-cluster influence sums of one (arm, metric).
+
+    With ``keep_vector=False`` only the sum of squared cluster sums is kept: enough for the
+    metric's own variance when clusters never span strata (auctions), and 16 bytes instead of
+    one float per cluster.
+    """
 
     estimate: float
-    cluster_sums: np.ndarray
+    keep_vector: bool = True
+    cluster_sums: np.ndarray | None = None  # set by the first add
+    squares: float = 0.0
 
     def add(self, estimate: float, cluster_sums: np.ndarray) -> None:
         self.estimate += estimate
-        self.cluster_sums += cluster_sums
+        if not self.keep_vector:
+            self.squares += float(cluster_sums @ cluster_sums)
+        elif self.cluster_sums is None:
+            self.cluster_sums = cluster_sums
+        else:
+            self.cluster_sums += cluster_sums
+
+    def std_error(self, n_clusters: int) -> float:
+        if not np.isfinite(self.estimate):
+            return np.nan
+        if self.keep_vector:
+            return float(np.sqrt(_variance(self.cluster_sums)))
+        return float(np.sqrt(n_clusters / (n_clusters - 1) * self.squares)) if n_clusters >= 2 else np.nan
 
 
 def _variance(cluster_sums: np.ndarray) -> float:
@@ -414,7 +470,7 @@ def _l_statistic(table: WeightTable, k: int, n: int, sorted_bids: np.ndarray, in
 
 
 def estimate_arms(
-    bids: pd.DataFrame,
+    bids: pd.DataFrame | PreparedBids,
     experiment: Experiment,
     *,
     confidence_level: float = 0.95,
@@ -430,10 +486,11 @@ def estimate_arms(
 
     Parameters
     ----------
-    bids : pandas.DataFrame
+    bids : pandas.DataFrame or PreparedBids
         Bids data contract: ``auction_id, bidder_id, arm, bid, position`` (and optionally
         ``experiment_id``: only rows of ``experiment`` are used). Auctions with one bidder are
-        excluded and counted.
+        excluded and counted. Bids already validated by :func:`prepare_bids` for the same
+        experiment are used as they are (a caller can then drop the frame before estimating).
     experiment : Experiment
         Arms, designed shares and position weights (``load_experiment``).
     confidence_level : float, optional
@@ -499,7 +556,7 @@ def estimate_arms(
         raise InputError(f"`cluster` must be one of {', '.join(CLUSTERS)}; got {cluster!r}")
     if experiment.payment_rule != "first_price":
         raise InputError(f"experiment {experiment.id!r}: payment_rule {experiment.payment_rule!r} is not supported")
-    data = prepare_bids(bids, experiment, source=source)
+    data = bids if isinstance(bids, PreparedBids) else prepare_bids(bids, experiment, source=source)
     return _estimate(data, experiment, confidence_level=float(confidence_level), cluster=cluster)
 
 
@@ -516,11 +573,9 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
     strata, strata_auctions = np.unique(first_of_auction, return_counts=True)
     total_auctions = int(strata_auctions.sum())
 
-    def zero() -> _Accumulator:
-        return _Accumulator(0.0, np.zeros(n_clusters))
-
-    revenue = [zero() for _ in range(k_arms + 1)]  # last: the mixture
-    welfare = [zero() for _ in range(k_arms)]
+    revenue = [_Accumulator(0.0) for _ in range(k_arms + 1)]  # last: the mixture
+    # Welfare needs only its own variance; auctions never span strata, so squares add up.
+    welfare = [_Accumulator(0.0, keep_vector=cluster != "auction") for _ in range(k_arms)]
     welfare_identified = True
 
     influence = None  # one buffer of the largest stratum's length, shared by every metric
@@ -531,6 +586,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         order, sorted_bids = sorted_with_order(b_raw)  # the one sort shared by every arm and metric
         cl = (clusters if sel is None else clusters[sel])[order]
         del order, b_raw, sel
+        cl = cl.astype(np.intp, copy=False)  # what bincount works in (after ``order`` is freed)
         big_n = sorted_bids.size
         if influence is None or influence.size < big_n:
             influence = np.empty(big_n)
@@ -568,13 +624,31 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         )
 
     # Improper per-arm averages of realized revenue (bid x position weight), and the mixture's.
+    # Realized revenue belongs to an auction, so these are averages over auctions of each
+    # auction's revenue R_a, always clustered by auction; the influence of auction a on arm k's
+    # average is (R_a - mean_k) / A_k on k's auctions and 0 elsewhere.
     pos_weights = np.zeros((k_arms, int(max(data.position.max(), 1)) + 1))
     for k, a in enumerate(arms):
-        w = np.asarray(a.weights_for(pos_weights.shape[1] - 1))
-        pos_weights[k, 1:] = w
-    realized = data.bid * pos_weights[data.arm, data.position]
-    auctions_of_arm = np.bincount(first_arm_of(data), minlength=k_arms)
+        pos_weights[k, 1:] = np.asarray(a.weights_for(pos_weights.shape[1] - 1))
+    realized = pos_weights[data.arm, data.position]
+    realized *= data.bid
+    revenue_of_auction = np.bincount(data.auction, weights=realized, minlength=data.n_auctions)
+    del realized
+    arm_of_auction = first_arm_of(data)
+    auctions_of_arm = np.bincount(arm_of_auction, minlength=k_arms)
     bids_of_arm = np.bincount(data.arm, minlength=k_arms)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean_of_arm = np.bincount(arm_of_auction, weights=revenue_of_auction, minlength=k_arms) / auctions_of_arm
+    g = total_auctions  # clusters of the improper averages: every auction (zero outside the arm)
+    scale = g / (g - 1) if g >= 2 else np.nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        squares = np.bincount(arm_of_auction, weights=(revenue_of_auction - mean_of_arm[arm_of_auction]) ** 2,
+                              minlength=k_arms) / auctions_of_arm.astype(float) ** 2
+    naive = [(np.nan, np.nan) if auctions_of_arm[k] == 0 else (float(mean_of_arm[k]), float(np.sqrt(scale * squares[k])))
+             for k in range(k_arms)]
+    mean_all = float(revenue_of_auction.sum() / total_auctions)
+    naive_all_se = float(np.sqrt(scale * np.sum((revenue_of_auction - mean_all) ** 2))) / total_auctions
+    del revenue_of_auction, arm_of_auction
 
     z = float(stats.norm.ppf(0.5 + confidence_level / 2))
     rows: list[tuple] = []
@@ -586,32 +660,18 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
 
     control = experiment.arm_names.index(experiment.control_arm)
     total_bids = int(data.bid.size)
-    # Each auction runs one arm, so one pass over the bids gives every arm's per-auction influence
-    # sums: arm k's vector is the sum over auctions of arm k and 0 elsewhere. (Realized revenue is
-    # a property of the auction: always clustered by auction.)
-    mean_of_arm = np.array([float(realized[data.arm == k].sum() / auctions_of_arm[k]) if auctions_of_arm[k] else np.nan
-                            for k in range(k_arms)])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        infl = realized - mean_of_arm[data.arm] / data.n_bidders
-        infl /= auctions_of_arm[data.arm]
-    naive_sums = np.bincount(data.auction, weights=infl, minlength=data.n_auctions)
-    del infl
-    arm_of_auction = first_arm_of(data)
-    naive = [(np.nan, None) if auctions_of_arm[k] == 0 else
-             (float(mean_of_arm[k]), np.where(arm_of_auction == k, naive_sums, 0.0)) for k in range(k_arms)]
     for k, a in enumerate(arms):
         emit(a.name, "revenue_per_auction", revenue[k].estimate, revenue[k].cluster_sums, total_auctions, total_bids)
-        emit(a.name, "welfare_per_auction", welfare[k].estimate, welfare[k].cluster_sums, total_auctions, total_bids)
-        emit(a.name, "naive_revenue_per_auction", naive[k][0], naive[k][1], int(auctions_of_arm[k]), int(bids_of_arm[k]))
+        emit(a.name, "welfare_per_auction", welfare[k].estimate, None, total_auctions, total_bids,
+             se=welfare[k].std_error(n_clusters))
+        emit(a.name, "naive_revenue_per_auction", naive[k][0], None, int(auctions_of_arm[k]), int(bids_of_arm[k]),
+             se=naive[k][1])
         if k != control:
             t_a, t_c = revenue[k].estimate, revenue[control].estimate
             cs = revenue[k].cluster_sums / t_c - t_a * revenue[control].cluster_sums / t_c**2
             emit(a.name, "revenue_lift_vs_control", t_a / t_c - 1.0, cs, total_auctions, total_bids)
     emit(MIXTURE_ARM, "revenue_per_auction", revenue[-1].estimate, revenue[-1].cluster_sums, total_auctions, total_bids)
-    mean_all = float(realized.sum() / total_auctions)
-    infl_all = (realized - mean_all / data.n_bidders) / total_auctions
-    emit(MIXTURE_ARM, "naive_revenue_per_auction", mean_all,
-         np.bincount(data.auction, weights=infl_all, minlength=data.n_auctions), total_auctions, total_bids)
+    emit(MIXTURE_ARM, "naive_revenue_per_auction", mean_all, None, total_auctions, total_bids, se=naive_all_se)
 
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")

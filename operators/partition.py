@@ -25,6 +25,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from scipy.optimize import isotonic_regression
 
+from counterbid.cli.io import read_bids
 from counterbid.estimators import CheckResult, Experiment, estimate_arms, load_experiments, worst_failure
 from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.errors import InputError
@@ -317,7 +318,7 @@ def estimate_partition(
                 run_id=run_id, computed_at=computed_at))
     summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status}
     for span, path, target in (("day", staged.day, staged.estimates_day), ("to_date", staged.to_date, staged.estimates_to_date)):
-        bids = pq.read_table(staged.require(path, step="load")).to_pandas()
+        bids = read_bids(staged.require(path, step="load"))  # batch by batch; strings as categoricals
         table = estimate_arms(bids, experiment, confidence_level=confidence_level, cluster=cluster, source=f"{path}")
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)

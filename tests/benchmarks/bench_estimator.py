@@ -4,6 +4,7 @@ Simulates 1M, 5M and 10M bids of a three-arm experiment (5 bidders per auction) 
 stores them as Parquet in a temporary folder and measures, each in its own child process:
 
 (a) floor      DuckDB read of the bid column + one ``np.sort``
+(a2) input     DuckDB read of the five columns the estimator reads + one ``np.sort`` of the bids
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
 (c) sql_naive  the improper per-arm GROUP BY in DuckDB (``sql/bench_naive_per_arm.sql``)
@@ -11,10 +12,14 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 
 plus the interpreter baseline (imports only) and one ``counterbid backfill`` day of the daily DAG
 on 1M bids. Wall time is measured by the parent around the child; "work" is the time the child
-spends after its imports; peak RSS is the child's ``ru_maxrss`` from ``os.wait4``. Prints a
-markdown table; ``--out FILE`` also writes it.
+spends after its imports; peak RSS is the child's ``ru_maxrss`` from ``os.wait4``. Each row is
+run ``--repeat`` times and the medians are reported. "RSS - imports" subtracts the peak RSS of a
+child that only imports the same libraries (DuckDB + numpy for the floors, the full stack for
+the rest). The notes also give the machine's cost of touching fresh memory, which on a virtual
+machine can dominate: a child's peak RSS is memory it had to fault in. Prints a markdown table;
+``--out FILE`` also writes it.
 
-Usage: python tests/benchmarks/bench_estimator.py [--sizes 1,5,10] [--data DIR] [--out FILE]
+Usage: python tests/benchmarks/bench_estimator.py [--sizes 1,5,10] [--repeat 3] [--data DIR] [--out FILE]
 """
 
 from __future__ import annotations
@@ -23,6 +28,7 @@ import argparse
 import json
 import os
 import re
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -55,13 +61,24 @@ def child(kind: str, path: str, spec: str) -> dict:
 
         import counterbid.estimators  # noqa: F401
         return {"work": 0.0}
+    if kind == "floor_baseline":
+        import duckdb  # noqa: F401
+        import numpy  # noqa: F401
+        return {"work": 0.0}
+    if kind == "touch":  # the machine's cost of faulting in fresh memory (400 MiB)
+        import numpy as np
+
+        t0 = time.perf_counter()
+        np.ones(400 * 2**20 // 8)
+        return {"work": time.perf_counter() - t0}
     if kind == "simulate":
         return _simulate(Path(path), spec)
-    if kind == "floor":  # nothing but DuckDB and numpy imported (the SQL file read as text)
+    if kind in ("floor", "input"):  # nothing but DuckDB and numpy imported (the SQL file read as text)
         import duckdb
         import numpy as np
 
-        statement = (HERE.parents[1] / "sql" / "bench_read_bid_column.sql").read_text()
+        name = "bench_read_bid_column" if kind == "floor" else "bench_read_contract_columns"
+        statement = (HERE.parents[1] / "sql" / f"{name}.sql").read_text()
         t0 = time.perf_counter()
         con = duckdb.connect()
         bid = con.execute(statement, {"path": path}).fetchnumpy()["bid"]
@@ -85,14 +102,16 @@ def child(kind: str, path: str, spec: str) -> dict:
         return out
     if kind in ("estimate", "pandas"):
         from counterbid.cli.io import read_bids
-        from counterbid.estimators import BID_COLUMNS, estimate_arms, load_experiment
+        from counterbid.estimators import BID_COLUMNS, estimate_arms, load_experiment, prepare_bids
 
         exp = load_experiment(spec)
         t0 = time.perf_counter()
         bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS])
         t1 = time.perf_counter()
-        if kind == "estimate":
-            result = estimate_arms(bids, exp)
+        if kind == "estimate":  # as the command line does it: validate, drop the frame, estimate
+            prepared = prepare_bids(bids, exp)
+            del bids
+            result = estimate_arms(prepared, exp)
         else:
             sys.path.insert(0, str(HERE))
             from naive_pandas import naive_estimate
@@ -168,12 +187,29 @@ def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
     return r
 
 
+def repeated(argv: list[str], times: int) -> dict:
+    """Median wall, work and peak RSS of ``times`` runs of one child (the other fields of the last)."""
+    runs = [run_child(argv) for _ in range(times)]
+    out = dict(runs[-1])
+    for field in ("wall", "work", "rss_mib"):
+        values = [r.get(field, float("nan")) for r in runs]
+        out[field] = statistics.median(values) if all(v == v for v in values) else float("nan")
+    out["walls"] = [round(r["wall"], 2) for r in runs]
+    return out
+
+
+LABELS = {"floor": "(a) floor: DuckDB read bid + np.sort", "input": "(a2) DuckDB read of the 5 columns used + np.sort",
+          "cli": "(b) counterbid estimate (CLI process)", "estimate": "(b') read_bids + estimate_arms",
+          "sql_naive": "(c) per-arm GROUP BY (DuckDB)", "pandas": "(d) plain-pandas peer"}
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", default="1,5,10", help="bid counts in millions (default 1,5,10)")
+    p.add_argument("--repeat", type=int, default=3, help="runs per row; medians are reported (default 3)")
     p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
     p.add_argument("--out", help="also write the markdown table here")
-    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,cli,estimate,sql_naive,pandas,dag)")
+    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,estimate,sql_naive,pandas,dag)")
     p.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "SPEC"), help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
@@ -186,41 +222,48 @@ def main(argv: list[str] | None = None) -> int:
     spec_path.write_text(SPEC)
     me = [sys.executable, str(Path(__file__).resolve())]
     exe = str(Path(sys.executable).with_name("counterbid"))
-    lines = ["| bids | row | wall s | work s | peak RSS MiB | wall / (a) | work / (a) | RSS / bid column |",
-             "|---:|---|---:|---:|---:|---:|---:|---:|"]
-    base = run_child([*me, "--child", "baseline", "-", "-"])
+    lines = ["| bids | row | wall s | work s | peak RSS MiB | wall / (a) | work / (a) | RSS / bid column | "
+             "RSS - imports / bid column |",
+             "|---:|---|---:|---:|---:|---:|---:|---:|---:|"]
+    base = repeated([*me, "--child", "baseline", "-", "-"], args.repeat)
+    floor_base = repeated([*me, "--child", "floor_baseline", "-", "-"], args.repeat)
+    touch = repeated([*me, "--child", "touch", "-", "-"], args.repeat)
     notes = [f"interpreter + imports (numpy, pandas, scipy, pyarrow, duckdb, counterbid): "
-             f"{base['wall']:.2f} s, {base['rss_mib']:.0f} MiB peak RSS"]
+             f"{base['wall']:.2f} s, {base['rss_mib']:.0f} MiB peak RSS; DuckDB + numpy only: "
+             f"{floor_base['wall']:.2f} s, {floor_base['rss_mib']:.0f} MiB",
+             f"faulting in 400 MiB of fresh memory: {touch['work']:.2f} s "
+             f"({touch['work'] / 4:.3f} s per 100 MiB)",
+             f"load average at the start: {os.getloadavg()[0]:.2f}; medians of {args.repeat} runs"]
     first_file = None
     for millions in [int(s) for s in args.sizes.split(",")]:
         path = make_data(folder, millions, spec_path, me)
         first_file = first_file or path
         column_mib = millions * 1e6 * 8 / 2**20
         rows = {}
-        for kind in ("floor", "cli", "estimate", "sql_naive", "pandas"):
+        for kind in ("floor", "input", "cli", "estimate", "sql_naive", "pandas"):
             if kind in skip:
                 continue
             if kind == "cli":
                 argv = [exe, "estimate", "--bids", str(path), "--experiment", str(spec_path), "--format", "json"]
-                r = run_child(argv)
-                r["work"] = float("nan")
             else:
-                r = run_child([*me, "--child", kind, str(path), str(spec_path)])
+                argv = [*me, "--child", kind, str(path), str(spec_path)]
+            r = repeated(argv, 1 if kind == "pandas" else args.repeat)
+            if kind == "cli":
+                r["work"] = float("nan")
             rows[kind] = r
-            print(f"{millions}M {kind}: wall {r['wall']:.2f}s work {r.get('work', float('nan')):.2f}s "
+            print(f"{millions}M {kind}: wall {r['wall']:.2f}s {r['walls']} work {r.get('work', float('nan')):.2f}s "
                   f"rss {r['rss_mib']:.0f} MiB {({k: v for k, v in r.items() if k in ('read', 'sort', 'estimate')})}",
                   file=sys.stderr, flush=True)
         floor = rows.get("floor")
-        labels = {"floor": "(a) floor: DuckDB read bid + np.sort", "cli": "(b) counterbid estimate (CLI process)",
-                  "estimate": "(b') read_bids + estimate_arms", "sql_naive": "(c) per-arm GROUP BY (DuckDB)",
-                  "pandas": "(d) plain-pandas peer"}
         for kind, r in rows.items():
             ratio_wall = r["wall"] / floor["wall"] if floor else float("nan")
             ratio_work = r["work"] / floor["work"] if floor and r["work"] == r["work"] else float("nan")
             cells = [f"{v:.2f}" if v == v else "–" for v in (r["wall"], r["work"])]
             ratios = [f"{v:.2f}" if v == v else "–" for v in (ratio_wall, ratio_work)]
-            lines.append(f"| {millions}M | {labels[kind]} | {cells[0]} | {cells[1]} | {r['rss_mib']:.0f} | "
-                         f"{ratios[0]} | {ratios[1]} | {r['rss_mib'] / column_mib:.1f} |")
+            imports = floor_base if kind in ("floor", "input") else base
+            lines.append(f"| {millions}M | {LABELS[kind]} | {cells[0]} | {cells[1]} | {r['rss_mib']:.0f} | "
+                         f"{ratios[0]} | {ratios[1]} | {r['rss_mib'] / column_mib:.1f} | "
+                         f"{(r['rss_mib'] - imports['rss_mib']) / column_mib:.1f} |")
     if "dag" not in skip and first_file is not None and first_file.name == "bids_1M.parquet":
         d = dag_day(folder, first_file, spec_path)
         notes.append(f"one-day DAG run (counterbid backfill, dag.test) on 1M bids: {d['state']} in {d['dag_seconds']:.1f} s "

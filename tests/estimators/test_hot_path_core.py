@@ -1,0 +1,116 @@
+"""The estimator's blocked hot path against direct, unblocked evaluations of the same formulas.
+
+References: the influence function of an L-statistic, Serfling (1980), *Approximation Theorems of
+Mathematical Statistics*, section 8.2; cubic-spline evaluation, ``scipy.interpolate.CubicSpline``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+from scipy.interpolate import CubicSpline
+
+from counterbid.estimators import (
+    InputError, allocation_rule, estimate_arms, mixture_rule, parse_experiments, prepare_bids, revenue_weights,
+    simulate_experiment, welfare_weights,
+)
+from counterbid.estimators import arms as arms_module
+from counterbid.estimators.order_weights import WeightTable
+
+ARMS = [[0.31, 0.17, 0.06, 0.02], [0.29, 0.22, 0.15, 0.02], [0.29, 0.19, 0.10, 0.05, 0.02]]
+SHARES = [0.8, 0.1, 0.1]
+
+
+def _experiment():
+    return parse_experiments({"experiments": [{"id": "e", "control_arm": "a0", "arms": [
+        {"name": f"a{k}", "share": s, "position_weights": w} for k, (s, w) in enumerate(zip(SHARES, ARMS))]}]})["e"]
+
+
+def _weights(n, big_n):
+    rules = [allocation_rule(w, n) for w in ARMS]
+    mix = mixture_rule(rules, SHARES)
+    return [revenue_weights(r, mix, big_n) for r in rules] + [welfare_weights(r, mix, big_n) for r in rules]
+
+
+@pytest.mark.parametrize("big_n", [16_384, 40_001, 2**20 + 3])
+def test_weight_table_is_scipy_cubic_spline(big_n):
+    ws = _weights(5, big_n)
+    table = WeightTable(ws, big_n)
+    grid = np.arange(big_n + 1) / big_n
+    for k, w in enumerate(ws):
+        reference = CubicSpline(w.grid, w.values)  # what CumulativeWeights.at evaluates
+        for lo, hi in [(0, 999), (big_n // 3, big_n // 3 + 70_000), (big_n - 5, big_n), (17, 17)]:
+            hi = min(hi, big_n)
+            np.testing.assert_allclose(table.block(k, lo, hi), reference(grid[lo:hi + 1]), rtol=0, atol=1e-15)
+
+
+def test_weight_table_uses_exact_values_on_the_exact_grid():
+    ws = _weights(4, 1000)
+    table = WeightTable(ws, 1000)
+    assert table.exact
+    np.testing.assert_array_equal(table.block(2, 10, 20), ws[2].values[10:21])
+
+
+def _direct_influence(sorted_bids, increments):
+    """Serfling (1980) sec. 8.2, written out: IF_i = sum_j a_j j/N - sum_{j >= i} a_j."""
+    big_n = sorted_bids.size
+    a = 0.5 * big_n * (increments[:-1] + increments[1:]) * np.diff(sorted_bids)
+    centre = float(a @ (np.arange(1, big_n) / big_n))
+    tail = np.concatenate([np.cumsum(a[::-1])[::-1], [0.0]])
+    return centre - tail
+
+
+@pytest.mark.parametrize("big_n", [5_000, 20_000, 50_001])
+def test_blocked_l_statistic_matches_the_direct_formula(big_n, monkeypatch):
+    monkeypatch.setattr(arms_module, "_BLOCK", 1_024)  # many blocks, ragged last one
+    rng = np.random.default_rng(big_n)
+    sorted_bids = np.sort(rng.lognormal(-0.3, 0.5, big_n))
+    ws = _weights(5, big_n)
+    table = WeightTable(ws, big_n)
+    grid = np.arange(big_n + 1) / big_n
+    for k, w in enumerate(ws):
+        if not np.isfinite(w.top):
+            continue
+        influence = np.empty(big_n)
+        est = arms_module._l_statistic(table, k, 5, sorted_bids, influence)
+        inc = 5 * np.diff(w.values if table.exact else CubicSpline(w.grid, w.values)(grid))
+        assert est == pytest.approx(float(sorted_bids @ inc), rel=1e-12)
+        np.testing.assert_allclose(influence, _direct_influence(sorted_bids, inc), rtol=1e-9, atol=1e-12)
+
+
+def test_mixture_row_is_the_direct_l_statistic_of_the_mixture_rule():
+    # The _mixture revenue row comes from linearity (shares x arms); compute it head-on instead.
+    exp = _experiment()
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=5, n_auctions=30_000, rng=3)
+    out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+    b = np.sort(bids["bid"].to_numpy())
+    rules = [allocation_rule(w, 5) for w in ARMS]
+    mix = mixture_rule(rules, SHARES)
+    w = revenue_weights(mix, mix, b.size)
+    inc = 5 * np.diff(CubicSpline(w.grid, w.values)(np.arange(b.size + 1) / b.size))
+    direct = float(b @ inc) - 5 * w.bottom * b[0]
+    assert out.loc[("_mixture", "revenue_per_auction"), "estimate"] == pytest.approx(direct, rel=1e-10)
+
+
+def test_prepared_bids_and_categorical_columns_give_the_same_rows():
+    exp = _experiment()
+    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=5_000, rng=5)
+    plain = estimate_arms(bids, exp)
+    categorical = bids.assign(arm=bids["arm"].astype("category"), experiment_id=pd.Categorical(["e"] * len(bids)))
+    pd.testing.assert_frame_equal(estimate_arms(categorical, exp), plain)
+    pd.testing.assert_frame_equal(estimate_arms(prepare_bids(bids, exp), exp), plain)
+    # categories in another order than the spec's, and one category no row uses
+    shuffled = bids.assign(arm=pd.Categorical(bids["arm"], categories=["zz_unused", "a2", "a0", "a1"]))
+    pd.testing.assert_frame_equal(estimate_arms(shuffled, exp), plain)
+
+
+def test_duplicate_bidder_is_found_across_check_blocks(monkeypatch):
+    monkeypatch.setattr(arms_module, "_PAIR_BLOCK", 1_000)
+    exp = _experiment()
+    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=2_000, rng=7)
+    estimate_arms(bids, exp)  # clean: passes block by block
+    dup = pd.concat([bids.iloc[:4_500], bids.iloc[[4_499]], bids.iloc[4_500:]], ignore_index=True)
+    with pytest.raises(InputError, match=r"bids twice in auction .*rows 4499 and 4500"):
+        estimate_arms(dup, exp)
