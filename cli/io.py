@@ -39,8 +39,9 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
 
     Notes
     -----
-    The columns are allocated once, at their final size, and filled batch by batch, so peak
-    memory is the frame plus about one batch -- not an Arrow table and a frame side by side.
+    The columns are allocated once, at their final size, and filled column by column and batch by
+    batch, so peak memory is the frame plus about one batch of one column -- not an Arrow table
+    and a frame side by side.
     """
     path = Path(path)
     if not path.exists():
@@ -58,20 +59,23 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
         n_rows = dataset.count_rows()
         if n_rows == 0:
             raise InputError(f"{path}: holds no bids (0 rows)")
-        filled = {name: _Column(dataset.schema.field(name).type, n_rows) for name in wanted}
-        done = 0
-        # One batch in flight: Arrow's buffers stay about one row group of the needed columns.
-        for batch in dataset.to_batches(columns=wanted, batch_size=BATCH_ROWS, batch_readahead=0,
-                                          fragment_readahead=0, use_threads=False):
-            for name in wanted:
-                filled[name].put(done, batch.column(name))
-            done += batch.num_rows
-        pa.default_memory_pool().release_unused()  # hand the decoding buffers back to the system
+        filled = {}
+        # One column at a time, one batch in flight: Arrow's buffers stay about one row group of
+        # one column (Parquet is columnar, so the file's bytes are still read once in all).
+        for name in wanted:
+            column, done = _Column(dataset.schema.field(name).type, n_rows), 0
+            for batch in dataset.to_batches(columns=[name], batch_size=BATCH_ROWS, batch_readahead=0,
+                                              fragment_readahead=0, use_threads=False):
+                column.put(done, batch.column(0))
+                done += batch.num_rows
+            if done != n_rows:  # the files changed under us
+                raise InputError(f"{path}: read {done} rows of {name!r} where the metadata promised {n_rows}; "
+                                 "was it being written?")
+            filled[name] = column
+            pa.default_memory_pool().release_unused()  # hand the decoding buffers back to the system
     except (pa.ArrowInvalid, pa.ArrowIOError, pa.ArrowTypeError, OSError) as exc:
         detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise InputError(f"{path}: not a readable Parquet file ({detail})") from None
-    if done != n_rows:  # the files changed under us
-        raise InputError(f"{path}: read {done} rows where the metadata promised {n_rows}; was it being written?")
     return pd.DataFrame({name: filled[name].result() for name in wanted}, copy=False)
 
 

@@ -73,8 +73,9 @@ class PreparedBids:
     n_excluded_bids: int
 
 
-def _row(rows: np.ndarray, i: int) -> int:
-    return int(rows[i])
+def _row(rows: np.ndarray | None, i: int) -> int:
+    """Row ``i`` of the validated frame as a row of the caller's frame (``None``: the same)."""
+    return int(i if rows is None else rows[i])
 
 
 def _value(x) -> str:
@@ -213,12 +214,13 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         raise InputError(f"{source}: bids must be a pandas DataFrame")
     if not isinstance(experiment, Experiment):
         raise InputError("`experiment` must be an Experiment (see load_experiment)")
-    rows = np.arange(len(bids))
+    rows = None  # rows of ``bids`` kept; None while that is all of them
     if "experiment_id" in bids.columns:
         codes, names = _as_text(bids["experiment_id"])
         keep = codes == (names.index(experiment.id) if experiment.id in names else -2)
         if not keep.all():
-            bids, rows = bids.loc[keep], rows[keep]
+            bids, rows = bids.loc[keep], np.flatnonzero(keep)
+        del keep, codes
     if len(bids) == 0:
         raise InputError(f"{source}: no bids for experiment {experiment.id!r}")
     missing = [c for c in BID_COLUMNS if c not in bids.columns]
@@ -273,9 +275,18 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 
     auction = _auction_codes(bids["auction_id"])
     n_all = int(auction.max()) + 1
-    first_arm = np.empty(n_all, dtype=arm.dtype)
-    first_arm[auction[::-1]] = arm[::-1]  # the first bid of each auction wins
-    split = np.flatnonzero(first_arm[auction] != arm)
+    if _is_sorted(auction):  # auction by auction: runs of rows, no scatter or gather needed
+        starts = np.flatnonzero(auction[1:] != auction[:-1]) + 1
+        counts = np.diff(starts, prepend=0, append=auction.size)
+        starts = np.concatenate([[0], starts])
+        split = np.flatnonzero(np.repeat(arm[starts], counts) != arm)
+        del starts
+    else:
+        first_arm = np.empty(n_all, dtype=arm.dtype)
+        first_arm[auction[::-1]] = arm[::-1]  # the first bid of each auction wins
+        split = np.flatnonzero(first_arm[auction] != arm)
+        del first_arm
+        counts = np.bincount(auction, minlength=n_all)
     if split.size:
         i = int(split[0])
         a = auction[i]
@@ -285,9 +296,10 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             f"({experiment.arm_names[arm[j]]!r} at row {_row(rows, j)}, "
             f"{experiment.arm_names[arm[i]]!r} at row {_row(rows, i)})"
         )
-    del first_arm, split
-    counts = np.bincount(auction, minlength=n_all)
-    n_bidders = counts.astype(np.uint8 if counts.max() < 2**8 else np.int32)[auction]
+    del split
+    narrow = counts.astype(np.uint8 if counts.max() < 2**8 else np.int32)
+    n_bidders = np.repeat(narrow, counts) if _is_sorted(auction) else narrow[auction]
+    del narrow
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
     bidder, n_bidder_labels = _bidder_labels(bids["bidder_id"])
