@@ -26,7 +26,9 @@ import pyarrow.parquet as pq
 from scipy.optimize import isotonic_regression
 
 from counterbid.cli.io import read_bids
-from counterbid.estimators import CheckResult, Experiment, estimate_arms, load_experiments, worst_failure
+from counterbid.estimators import (
+    CheckResult, Experiment, estimate_arms, load_experiments, prepare_bids, worst_failure,
+)
 from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.errors import InputError
 
@@ -319,11 +321,15 @@ def estimate_partition(
     summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status}
     for span, path, target in (("day", staged.day, staged.estimates_day), ("to_date", staged.to_date, staged.estimates_to_date)):
         bids = read_bids(staged.require(path, step="load"))  # batch by batch; strings as categoricals
-        table = estimate_arms(bids, experiment, confidence_level=confidence_level, cluster=cluster, source=f"{path}")
+        first_ds = pd.to_datetime(bids["ds"]).min().date() if span == "to_date" else None
+        prepared = prepare_bids(bids, experiment, source=f"{path}")
+        del bids  # only the validated arrays from here on: the to-date pool bounds a worker's memory
+        table = estimate_arms(prepared, experiment, confidence_level=confidence_level, cluster=cluster, source=f"{path}")
+        del prepared
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", pd.to_datetime(bids["ds"]).min().date())
+            table.insert(2, "first_ds", first_ds)
         table["status"] = status
         table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
         table["run_id"] = run_id
