@@ -224,6 +224,21 @@ class ResultsHook(BaseHook):
         params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
         return self._lake_query("lake_read_range", params, lake_root)
 
+    @contextlib.contextmanager
+    def lake_range_batches(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date,
+                           batch_rows: int = 2**20) -> Iterator[pa.RecordBatchReader]:
+        """:meth:`read_lake_range` as a stream of record batches (memory: about one batch).
+
+        The connection stays open while the ``with`` block iterates; lake errors raised during
+        the iteration become the same one-line :class:`InputError` as :meth:`read_lake_range`'s.
+        """
+        params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
+        with self.lake() as con:
+            try:
+                yield con.sql(self.sql("lake_read_range"), params=params).to_arrow_reader(batch_rows)
+            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
+                raise _lake_error(exc, lake_root) from None
+
     def clicks_position_weights(
         self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date
     ) -> pd.DataFrame:
@@ -269,10 +284,15 @@ class ResultsHook(BaseHook):
             try:
                 return con.sql(self.sql(name), params=dict(params)).to_arrow_table()
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
-                if "No files found" in str(exc):
-                    raise InputError(f"{root}: no Parquet files under this root") from None
-                first = str(exc).splitlines()[0]
-                raise InputError(f"{root}: a Parquet file of the lake cannot be read ({first})") from None
+                raise _lake_error(exc, root) from None
             except duckdb.BinderException as exc:
                 first = str(exc).splitlines()[0]
                 raise InputError(f"{root}: cannot read the lake with statement {name!r} ({first})") from None
+
+
+def _lake_error(exc: Exception, root) -> InputError:
+    """One line naming the lake root for a DuckDB read error."""
+    if "No files found" in str(exc):
+        return InputError(f"{root}: no Parquet files under this root")
+    first = str(exc).splitlines()[0]
+    return InputError(f"{root}: a Parquet file of the lake cannot be read ({first})")

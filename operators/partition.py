@@ -119,6 +119,27 @@ def _write_parquet(table: pa.Table, target: Path) -> None:
     os.replace(tmp, target)  # readers see the old file or the new one, never half of one
 
 
+def _stream_parquet(batches: pa.RecordBatchReader, target: Path) -> tuple[int, dt.date | None]:
+    """Write a stream of batches to ``target`` atomically; rows written and the earliest ``ds``."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
+    rows, earliest = 0, None
+    has_ds = "ds" in batches.schema.names
+    try:
+        with pq.ParquetWriter(tmp, batches.schema) as writer:
+            for batch in batches:
+                writer.write_batch(batch)
+                rows += batch.num_rows
+                if has_ds and batch.num_rows:
+                    low = pc.min(batch.column("ds")).as_py()
+                    earliest = low if earliest is None or (low is not None and low < earliest) else earliest
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    os.replace(tmp, target)  # readers see the old file or the new one, never half of one
+    return rows, earliest
+
+
 def _write_json(payload, target: Path) -> None:
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
@@ -153,10 +174,11 @@ def stage_partition(
         raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
     _write_parquet(day, staged.day)
     first = experiment.start or EARLIEST_DAY
-    to_date = hook.read_lake_range(lake_root, experiment_id=experiment.id, first_ds=first, ds=ds)
-    _write_parquet(to_date, staged.to_date)
-    first_ds = pc.min(to_date["ds"]).as_py() if to_date.num_rows and "ds" in to_date.column_names else first
-    return {"day_bids": day.num_rows, "to_date_bids": to_date.num_rows, "first_ds": str(first_ds), "folder": str(staged.folder)}
+    # The experiment-to-date pool grows every day: streamed batch by batch into its staged file.
+    with hook.lake_range_batches(lake_root, experiment_id=experiment.id, first_ds=first, ds=ds) as batches:
+        to_date_rows, earliest = _stream_parquet(batches, staged.to_date)
+    first_ds = earliest if earliest is not None else first
+    return {"day_bids": day.num_rows, "to_date_bids": to_date_rows, "first_ds": str(first_ds), "folder": str(staged.folder)}
 
 
 def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
