@@ -430,6 +430,11 @@ class InferredValues:
     value: np.ndarray
 
 
+#: Most order statistics the quantile-function spline is fitted to; a larger stratum is thinned
+#: to every k-th sorted bid (at most 16 interior knots: a million points pin them down).
+_FIT_POINTS = 2**20
+
+
 def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: int, *, knots: int = 16,
                     grid: int = 200, q_low: float = 0.05, q_high: float = 0.95) -> InferredValues:
     """Invert the first-order condition of the mixture on a smoothed bid quantile function.
@@ -458,7 +463,7 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
     Notes
     -----
     ``b`` is ``scipy.interpolate.make_lsq_spline`` of the sorted bids on plotting positions
-    ``(i - 1/2)/N``; ``b'`` is its derivative; ``v = b + b' x / x'`` (METHOD.md, equilibrium
+    ``(i - 1/2)/N`` (beyond ``2**20`` bids, of every k-th of them); ``b'`` is its derivative; ``v = b + b' x / x'`` (METHOD.md, equilibrium
     facts). Where the mixture is flat (``x' = 0``) the value is not identified and set to NaN.
 
     References
@@ -475,6 +480,9 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
         raise InputError(f"`q_low` and `q_high` must satisfy 0 <= q_low < q_high <= 1; got {q_low}, {q_high}")
     k_inner = int(max(2, min(int(knots), math.floor((0.1 * big_n) ** (1 / 3)))))
     pos = (np.arange(big_n) + 0.5) / big_n
+    if big_n > _FIT_POINTS:  # every k-th order statistic: the same quantile function, thinned
+        step = -(-big_n // _FIT_POINTS)
+        pos, b = pos[step // 2::step], b[step // 2::step]
     inner = np.linspace(0.0, 1.0, k_inner + 2)[1:-1]
     t = np.r_[[0.0] * 4, inner, [1.0] * 4]
     spline = interpolate.make_lsq_spline(pos, b, t, k=3)
@@ -492,7 +500,7 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
 def _strata_bids(data) -> dict[int, np.ndarray]:
     out = {}
     for n in np.unique(data.n_bidders):
-        out[int(n)] = np.sort(data.bid[data.n_bidders == n], kind="stable")
+        out[int(n)] = np.sort(data.bid if data.n_bidders.min() == data.n_bidders.max() else data.bid[data.n_bidders == n])
     return out
 
 
@@ -543,7 +551,10 @@ def monotone_values_check(bids, experiment: Experiment, *, config: Mapping[str, 
     """
     cfg = _config(config, experiment)["monotone_values"]
     data = _prepared(bids, experiment, source)
-    fits, skipped = _inversions(data, experiment, cfg)
+    return _monotone_values_result(*_inversions(data, experiment, cfg), cfg)
+
+
+def _monotone_values_result(fits: list[InferredValues], skipped: dict[int, int], cfg: Mapping[str, Any]) -> CheckResult:
     if not fits:
         return _result("monotone_values", cfg, True, None, cfg["max_falling_share"], skipped_strata=skipped,
                        note="no stratum has enough bids")
@@ -593,9 +604,11 @@ def shading_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | N
     match the ones bidders face, or bids in the wrong unit).
     """
     cfgs = _config(config, experiment)
-    cfg, inv_cfg = cfgs["shading"], cfgs["monotone_values"]
     data = _prepared(bids, experiment, source)
-    fits, skipped = _inversions(data, experiment, inv_cfg)
+    return _shading_result(*_inversions(data, experiment, cfgs["monotone_values"]), cfgs["shading"])
+
+
+def _shading_result(fits: list[InferredValues], skipped: dict[int, int], cfg: Mapping[str, Any]) -> CheckResult:
     if not fits:
         return _result("shading", cfg, True, None, cfg["max_outside_share"], skipped_strata=skipped,
                        note="no stratum has enough bids")
@@ -709,8 +722,9 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
         history = history.loc[window.to_numpy()] if window.any() else None
     out = [sample_ratio_check(data, experiment, config=cfg)]
     out += minimum_sample_checks(data, experiment, config=cfg)
-    out.append(monotone_values_check(data, experiment, config=cfg))
-    out.append(shading_check(data, experiment, config=cfg))
+    fits, skipped = _inversions(data, experiment, cfg["monotone_values"])  # shared by both checks
+    out.append(_monotone_values_result(fits, skipped, cfg["monotone_values"]))
+    out.append(_shading_result(fits, skipped, cfg["shading"]))
     out.append(drift_check(data, experiment, history, config=cfg, source=source))
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))

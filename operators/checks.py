@@ -13,6 +13,10 @@ import logging
 from collections.abc import Iterable, Mapping
 from typing import Any
 
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from counterbid.estimators.checks import CheckResult, check_config, equilibrium_checks
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment
@@ -87,14 +91,14 @@ def run_checks(
     if any(not r.passed and r.severity == "error" for r in results):
         log.warning("%s %s: contract failed; statistical checks not run", experiment.id, day)
         return results
-    bids = con.execute(render_sql("check_day_bids", relation=relation)).df()
+    bids = _bids_frame(con, render_sql("check_day_bids", relation=relation))
     history = None
     if history_relation is not None:
         first = day - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
-        history = con.execute(
-            render_sql("check_trailing_bids", relation=history_relation),
+        history = _bids_frame(
+            con, render_sql("check_trailing_bids", relation=history_relation),
             {"experiment_id": experiment.id, "first_day": first, "ds": day},
-        ).df()
+        )
         if history.empty:
             history = None
     try:
@@ -102,6 +106,15 @@ def run_checks(
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
     return results
+
+
+def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
+    """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects)."""
+    table = con.sql(statement, params=dict(params or {})).to_arrow_table()
+    for i, field in enumerate(table.schema):
+        if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
+            table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
+    return table.to_pandas()
 
 
 def ensure_data_checks_table(con, *, schema: str = "main") -> None:

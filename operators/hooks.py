@@ -224,20 +224,29 @@ class ResultsHook(BaseHook):
         params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
         return self._lake_query("lake_read_range", params, lake_root)
 
-    @contextlib.contextmanager
+    def lake_partition_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date,
+                               batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
+        """:meth:`read_lake_partition` as a stream of record batches (see :meth:`lake_range_batches`)."""
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
+        return self._lake_batches("lake_read_partition", params, lake_root, batch_rows)
+
     def lake_range_batches(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date,
-                           batch_rows: int = 2**20) -> Iterator[pa.RecordBatchReader]:
+                           batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
         """:meth:`read_lake_range` as a stream of record batches (memory: about one batch).
 
         The connection stays open while the ``with`` block iterates; lake errors raised during
         the iteration become the same one-line :class:`InputError` as :meth:`read_lake_range`'s.
         """
         params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
+        return self._lake_batches("lake_read_range", params, lake_root, batch_rows)
+
+    @contextlib.contextmanager
+    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int) -> Iterator[pa.RecordBatchReader]:
         with self.lake() as con:
             try:
-                yield con.sql(self.sql("lake_read_range"), params=params).to_arrow_reader(batch_rows)
+                yield con.sql(self.sql(name), params=dict(params)).to_arrow_reader(batch_rows)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
-                raise _lake_error(exc, lake_root) from None
+                raise _lake_error(exc, root) from None
 
     def clicks_position_weights(
         self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date

@@ -168,17 +168,18 @@ def stage_partition(
         ``{"day_bids": int, "to_date_bids": int, "first_ds": str, "folder": str}``.
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
-    day = hook.read_lake_partition(lake_root, experiment_id=experiment.id, ds=ds)
-    if day.num_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
+    # Both spans are streamed batch by batch into their staged files (memory: about one batch).
+    with hook.lake_partition_batches(lake_root, experiment_id=experiment.id, ds=ds) as batches:
+        day_rows, _ = _stream_parquet(batches, staged.day)
+    if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
+        staged.day.unlink(missing_ok=True)
         raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
-    _write_parquet(day, staged.day)
     first = experiment.start or EARLIEST_DAY
-    # The experiment-to-date pool grows every day: streamed batch by batch into its staged file.
     with hook.lake_range_batches(lake_root, experiment_id=experiment.id, first_ds=first, ds=ds) as batches:
         to_date_rows, earliest = _stream_parquet(batches, staged.to_date)
     first_ds = earliest if earliest is not None else first
-    return {"day_bids": day.num_rows, "to_date_bids": to_date_rows, "first_ds": str(first_ds), "folder": str(staged.folder)}
+    return {"day_bids": day_rows, "to_date_bids": to_date_rows, "first_ds": str(first_ds), "folder": str(staged.folder)}
 
 
 def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
