@@ -144,7 +144,7 @@ _PAIR_BLOCK = 2**20
 
 
 def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_labels: int, bids: pd.DataFrame,
-                             rows: np.ndarray, source: str) -> None:
+                             rows: np.ndarray | None, source: str, *, contiguous: bool) -> None:
     """Raise when a bidder bids twice in one auction (duplicate rows of the log, say).
 
     Pairs are packed into one int64 key ``auction * B + bidder``; a duplicate is an equal
@@ -153,9 +153,9 @@ def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_l
     only sit inside one run of rows, so the keys are sorted a block of whole auctions at a time.
     """
     n = auction.size
-    n_auction_codes = int(auction[-1] if _is_sorted(auction) else auction.max()) + 1
+    n_auction_codes = int(auction[-1] if contiguous else auction.max()) + 1
     packable = n_auction_codes * max(n_bidder_labels, 1) < 2**62
-    if packable and _is_sorted(auction):
+    if packable and contiguous:
         lo = 0
         while lo < n:
             hi = min(n, lo + _PAIR_BLOCK)
@@ -275,7 +275,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 
     auction = _auction_codes(bids["auction_id"])
     n_all = int(auction.max()) + 1
-    if _is_sorted(auction):  # auction by auction: runs of rows, no scatter or gather needed
+    contiguous = _is_sorted(auction)  # written auction by auction: runs of rows, no scatter or gather
+    if contiguous:
         starts = np.flatnonzero(auction[1:] != auction[:-1]) + 1
         counts = np.diff(starts, prepend=0, append=auction.size)
         starts = np.concatenate([[0], starts])
@@ -298,12 +299,12 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         )
     del split
     narrow = counts.astype(np.uint8 if counts.max() < 2**8 else np.int32)
-    n_bidders = np.repeat(narrow, counts) if _is_sorted(auction) else narrow[auction]
+    n_bidders = np.repeat(narrow, counts) if contiguous else narrow[auction]
     del narrow
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
     bidder, n_bidder_labels = _bidder_labels(bids["bidder_id"])
-    _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source)
+    _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous)
     n_excluded_bids = int(np.count_nonzero(n_bidders < 2)) if n_excluded else 0
     if n_excluded_bids:
         keep = n_bidders >= 2
@@ -324,7 +325,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     )
 
 
-def _positions(pos_col: pd.Series, rows: np.ndarray, source: str) -> np.ndarray:
+def _positions(pos_col: pd.Series, rows: np.ndarray | None, source: str) -> np.ndarray:
     """Positions as a small integer array, 0 where the bid was not shown (null); 1 = top."""
     if pos_col.isna().all():
         return np.zeros(len(pos_col), dtype=np.int32)
