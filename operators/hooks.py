@@ -217,12 +217,13 @@ class ResultsHook(BaseHook):
     # -- lake and staged files ---------------------------------------------------------------
     def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
         """Bids of one experiment and day (partition-pruned read of ``lake_root``)."""
-        return self._lake_query("lake_read_partition", {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}, lake_root)
+        with self.lake_partition_batches(lake_root, experiment_id=experiment_id, ds=ds) as batches:
+            return batches.read_all()
 
     def read_lake_range(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date) -> pa.Table:
         """Bids of one experiment on every day ``first_ds..ds`` (partition-pruned)."""
-        params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
-        return self._lake_query("lake_read_range", params, lake_root)
+        with self.lake_range_batches(lake_root, experiment_id=experiment_id, first_ds=first_ds, ds=ds) as batches:
+            return batches.read_all()
 
     def lake_partition_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date,
                                batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
