@@ -76,6 +76,6 @@ def run(args: argparse.Namespace) -> int:
             print(f"recommended share: {plan.recommended_share:g} per non-control arm (smallest candidate with "
                   f"{plan.target_metric} half-width <= {plan.target_half_width:g})")
     print("Assumes symmetric bidders in equilibrium against the planned shares, known position weights, and traffic"
-          " and bidders per auction as in the pilot or the assumption; ideal_ab_half_width is an A/B test whose"
+          " and bidders per auction as in the pilot or the assumption; informed_ab_half_width is an A/B test whose"
           " bidders know the arm and which uses only that arm's auctions.")
     return 0

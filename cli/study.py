@@ -92,8 +92,8 @@ def _figures(size, share, coverage, out: Path) -> None:
     for i, d in enumerate(dists):
         for j, n in enumerate(sns):
             ax = axes[i][j]
-            for method, style, label in (("ordstat", "-o", "estimator"), ("ideal_ab", "--s", "ideal A/B"),
-                                         ("improper", ":^", "improper average")):
+            for method, style, label in (("ordstat", "-o", "estimator"), ("informed_ab", "--s", "informed-bidder A/B"),
+                                         ("realized_average", ":^", "realized per-arm average")):
                 t = share.query("distribution == @d and n_bidders == @n and method == @method").sort_values("share")
                 ax.plot(t["share"], t["rmse"], style, ms=3, label=label)
             ax.set_xscale("log")
@@ -139,8 +139,8 @@ def summary_markdown(size, share, coverage, *, settings: dict, seconds: float) -
     cov = coverage[(coverage["design"] == "size") & (coverage["arm"] == "treated")].pivot_table(
         index=["distribution", "n_bidders"], columns="n_bids", values="coverage", sort=False)
     sh = share.pivot_table(index=["distribution", "share", "method"], columns="n_bidders", values="rmse", sort=False)
-    ratio = share[share["method"] != "ideal_ab"].pivot_table(index=["distribution", "share", "method"],
-                                                             columns="n_bidders", values="rmse_vs_ideal", sort=False)
+    ratio = share[share["method"] != "informed_ab"].pivot_table(index=["distribution", "share", "method"],
+                                                             columns="n_bidders", values="rmse_vs_informed", sort=False)
     shcov = coverage[(coverage["design"] == "share") & (coverage["method"] == "ordstat")].pivot_table(
         index=["distribution", "share"], columns="n_bidders", values="coverage", sort=False)
     lines = [
@@ -180,12 +180,12 @@ def summary_markdown(size, share, coverage, *, settings: dict, seconds: float) -
         "## RMSE of the treated arm's revenue per auction as its share falls",
         "",
         f"{settings['share_auctions']} auctions per experiment. `ordstat`: the estimator on all auctions' "
-        "bids; `ideal_ab`: bidders told the arm, only the treated arm's s x A auctions; `improper`: the "
+        "bids; `informed_ab`: bidders told the arm, only the treated arm's s x A auctions; `realized_average`: the "
         "per-arm average of realized revenue (bidders answered the mixture).",
         "",
         _md_table(sh),
         "",
-        "Same, relative to the ideal A/B test's RMSE:",
+        "Same, relative to the informed-bidder A/B test's RMSE:",
         "",
         _md_table(ratio, floatfmt="{:.2f}"),
         "",
@@ -249,12 +249,12 @@ def _findings(size, share, coverage) -> list[str]:
                    f"N = {mid} to {n_max} for: {', '.join(growing) if growing else 'none'}.")
     ratio = share[share["method"] == "ordstat"]
     s_min = float(share["share"].min())
-    lo = ratio[ratio["share"] == s_min]["rmse_vs_ideal"]
-    imp = share[share["method"] == "improper"]
-    out.append(f"* At share {s_min:g} the estimator's RMSE is {lo.min():.2f} to {lo.max():.2f} times the ideal A/B "
+    lo = ratio[ratio["share"] == s_min]["rmse_vs_informed"]
+    imp = share[share["method"] == "realized_average"]
+    out.append(f"* At share {s_min:g} the estimator's RMSE is {lo.min():.2f} to {lo.max():.2f} times the informed-bidder A/B "
                "test's: every auction's bids inform every arm, so its error barely moves with the share while the "
-               f"ideal test's grows like 1/sqrt(s). The improper average's RMSE is {imp['rmse_vs_ideal'].min():.1f} to "
-               f"{imp['rmse_vs_ideal'].max():.1f} times the ideal test's, almost all of it bias.")
+               f"informed-bidder test's grows like 1/sqrt(s). The realized per-arm average's RMSE is {imp['rmse_vs_informed'].min():.1f} to "
+               f"{imp['rmse_vs_informed'].max():.1f} times the informed-bidder test's, almost all of it bias.")
     return out
 
 

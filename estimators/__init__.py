@@ -3,7 +3,7 @@
 Public API
 ----------
 estimate_arms
-    Per-arm revenue, welfare, improper average and lift from one experiment's bids.
+    Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids.
 load_experiment, load_experiments, parse_experiments
     Read and validate experiment specs.
 allocation_rule, mixture_rule

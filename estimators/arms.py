@@ -29,7 +29,7 @@ __all__ = [
 #: Columns of the bids data contract that the estimator reads.
 BID_COLUMNS = ("auction_id", "bidder_id", "arm", "bid", "position")
 #: Metrics in the results, in output order.
-METRICS = ("revenue_per_auction", "welfare_per_auction", "naive_revenue_per_auction", "revenue_lift_vs_control")
+METRICS = ("revenue_per_auction", "welfare_per_auction", "realized_revenue_per_auction", "revenue_lift_vs_control")
 #: Derived row: the mixture that actually ran (estimate vs realized: the sanity identity).
 MIXTURE_ARM = "_mixture"
 #: Written beside every stored estimate; bump when numbers could change for the same bids.
@@ -519,7 +519,7 @@ def estimate_arms(
         One row per arm and metric with columns ``arm, metric, estimate, std_error, ci_low,
         ci_high, n_auctions, n_bids``. Metrics: ``revenue_per_auction`` and
         ``welfare_per_auction`` (counterfactual: the arm run in every auction, bidders adapted
-        to it), ``naive_revenue_per_auction`` (the improper average of realized revenue over the
+        to it), ``realized_revenue_per_auction`` (the realized per-arm average of realized revenue over the
         arm's own auctions, for comparison) and ``revenue_lift_vs_control`` (relative, non-control
         arms). Arm ``_mixture`` carries the mixture's estimated and realized revenue, which agree
         in equilibrium. ``DataFrame.attrs`` holds ``experiment_id``, ``confidence_level``,
@@ -534,7 +534,7 @@ def estimate_arms(
     influence function of this L-statistic summed within clusters. With a varying number of
     bidders each ``n`` is a stratum (bidders know ``n``), weighted by its share of auctions.
     Assumes symmetric independent private values, bids in equilibrium against the designed
-    shares, and known position weights. The improper average is clustered by auction whatever
+    shares, and known position weights. The realized per-arm average is clustered by auction whatever
     ``cluster`` says (realized revenue belongs to an auction).
 
     Welfare weighs the highest bid with a point mass (values at the top are read off the top
@@ -636,7 +636,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
             stacklevel=3,
         )
 
-    # Improper per-arm averages of realized revenue (bid x position weight), and the mixture's.
+    # realized per-arm averages of realized revenue (bid x position weight), and the mixture's.
     # Realized revenue belongs to an auction, so these are averages over auctions of each
     # auction's revenue R_a, always clustered by auction; the influence of auction a on arm k's
     # average is (R_a - mean_k) / A_k on k's auctions and 0 elsewhere.
@@ -652,7 +652,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
     bids_of_arm = np.bincount(data.arm, minlength=k_arms)
     with np.errstate(divide="ignore", invalid="ignore"):
         mean_of_arm = np.bincount(arm_of_auction, weights=revenue_of_auction, minlength=k_arms) / auctions_of_arm
-    g = total_auctions  # clusters of the improper averages: every auction (zero outside the arm)
+    g = total_auctions  # clusters of the realized per-arm averages: every auction (zero outside the arm)
     scale = g / (g - 1) if g >= 2 else np.nan
     with np.errstate(divide="ignore", invalid="ignore"):
         squares = np.bincount(arm_of_auction, weights=(revenue_of_auction - mean_of_arm[arm_of_auction]) ** 2,
@@ -677,14 +677,14 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         emit(a.name, "revenue_per_auction", revenue[k].estimate, revenue[k].cluster_sums, total_auctions, total_bids)
         emit(a.name, "welfare_per_auction", welfare[k].estimate, None, total_auctions, total_bids,
              se=welfare[k].std_error(n_clusters))
-        emit(a.name, "naive_revenue_per_auction", naive[k][0], None, int(auctions_of_arm[k]), int(bids_of_arm[k]),
+        emit(a.name, "realized_revenue_per_auction", naive[k][0], None, int(auctions_of_arm[k]), int(bids_of_arm[k]),
              se=naive[k][1])
         if k != control:
             t_a, t_c = revenue[k].estimate, revenue[control].estimate
             cs = revenue[k].cluster_sums / t_c - t_a * revenue[control].cluster_sums / t_c**2
             emit(a.name, "revenue_lift_vs_control", t_a / t_c - 1.0, cs, total_auctions, total_bids)
     emit(MIXTURE_ARM, "revenue_per_auction", revenue[-1].estimate, revenue[-1].cluster_sums, total_auctions, total_bids)
-    emit(MIXTURE_ARM, "naive_revenue_per_auction", mean_all, None, total_auctions, total_bids, se=naive_all_se)
+    emit(MIXTURE_ARM, "realized_revenue_per_auction", mean_all, None, total_auctions, total_bids, se=naive_all_se)
 
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")

@@ -344,7 +344,7 @@ def minimum_sample_checks(bids, experiment: Experiment, *, config: Mapping[str, 
 
     Notes
     -----
-    The counterfactual estimate of every arm uses all bids, but the improper average, the
+    The counterfactual estimate of every arm uses all bids, but the realized per-arm average, the
     sample-ratio test and the position-weight measurement use each arm's own auctions; each
     stratum (number of bidders) is inverted on its own bids. Common practice thresholds.
     """

@@ -9,7 +9,7 @@ bids (inverted to values with the two-step kernel method of :mod:`.two_step`); w
 prediction is further rescaled by the ratio of the pilot's own standard error to the simulated one
 at the pilot's shares, so the pilot's real spread anchors the plan.
 
-Beside it, the ideal A/B test's half-width: bidders told the arm, the arm's ``s x D x A`` auctions only.
+Beside it, the informed-bidder A/B test's half-width: bidders told the arm, the arm's ``s x D x A`` auctions only.
 """
 
 from __future__ import annotations
@@ -34,7 +34,7 @@ __all__ = ["DEFAULT_SHARES", "PLAN_COLUMNS", "SharePlan", "pilot_values", "plan_
 #: Shares of each non-control arm the planner tries by default.
 DEFAULT_SHARES = (0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.5)
 #: Columns of :attr:`SharePlan.table`.
-PLAN_COLUMNS = ("share", "arm", "metric", "half_width", "ideal_ab_half_width", "auctions_in_arm", "n_auctions")
+PLAN_COLUMNS = ("share", "arm", "metric", "half_width", "informed_ab_half_width", "auctions_in_arm", "n_auctions")
 _METRICS = ("revenue_per_auction", "revenue_lift_vs_control")
 
 
@@ -45,7 +45,7 @@ class SharePlan:
     Attributes
     ----------
     table : pandas.DataFrame
-        Columns ``share, arm, metric, half_width, ideal_ab_half_width, auctions_in_arm,
+        Columns ``share, arm, metric, half_width, informed_ab_half_width, auctions_in_arm,
         n_auctions``: one row per candidate share, non-control arm (and control) and metric
         (``revenue_per_auction``, ``revenue_lift_vs_control``). ``share`` is each non-control
         arm's share; control takes the rest.
@@ -224,7 +224,7 @@ def plan_shares(
     ``half_width(s) = z * sigma(s) / sqrt(D A)`` with ``sigma(s) = SE_M(s) sqrt(M)`` from the
     estimator's influence-function SE on ``M`` simulated auctions at share ``s``. With a pilot of
     ``N_0`` auctions at shares ``s_0``, ``sigma(s)`` is multiplied by
-    ``SE_pilot sqrt(N_0) / sigma_sim(s_0)`` per arm and metric. The ideal A/B test's revenue
+    ``SE_pilot sqrt(N_0) / sigma_sim(s_0)`` per arm and metric. The informed-bidder A/B test's revenue
     half-width is ``z * sigma_1 / sqrt(s D A)`` with ``sigma_1`` from a one-arm experiment
     (bidders told the arm); its lift uses independent arms (delta method). The predictions
     assume the estimator's model (symmetric independent private values, equilibrium against the
@@ -272,7 +272,7 @@ def plan_shares(
             raise InputError("`values` must be a frozen scipy.stats continuous distribution (with .ppf)")
         basis = "assumed"
 
-    # Ideal A/B: each arm alone, bidders told the arm.
+    # Informed-bidder A/B test: each arm alone, bidders told the arm.
     alone = {}
     for a in experiment.arms:
         one = dataclasses.replace(experiment, arms=(dataclasses.replace(a, share=1.0),), control_arm=a.name)

@@ -7,9 +7,9 @@ with a fixed number ``n`` of bidders per auction and values from three distribut
   ``RMSE * sqrt(N)`` (flat in ``N`` for a root-N estimator), mean standard error and coverage of
   the 95 % interval of the order-statistic estimator, and bias/RMSE of the two-step baseline.
 * **share study** (:func:`share_study`): a fixed number of auctions, treated share from 0.5 down to
-  0.01. The treated arm's revenue by the estimator (all auctions' bids), by the **ideal A/B test**
+  0.01. The treated arm's revenue by the estimator (all auctions' bids), by the **informed-bidder A/B test**
   (bidders told the arm: they bid against the treated arm alone and only its ``s * A`` auctions are
-  used, estimated as a one-arm experiment) and by the **improper average** of realized revenue
+  used, estimated as a one-arm experiment) and by the **realized per-arm average** of realized revenue
   over the treated arm's auctions (biased: bidders answered the mixture).
 
 Truth is Myerson's formula by quadrature (:func:`~.simulate.expected_revenue_per_auction`).
@@ -65,7 +65,7 @@ _Z95 = float(stats.norm.ppf(0.975))
 def study_experiment(share: float, *, arms: Sequence[str] = ("control", "treated")) -> Experiment:
     """The study's experiment: ``treated`` in a share ``share`` of auctions, ``control`` in the rest.
 
-    With ``arms=("treated",)`` a one-arm experiment (the ideal A/B test's view of the treated arm).
+    With ``arms=("treated",)`` a one-arm experiment (the informed-bidder A/B test's view of the treated arm).
     """
     if not (isinstance(share, (int, float)) and 0 < share <= 1):
         raise InputError(f"`share` must be in (0, 1]; got {share!r}")
@@ -257,7 +257,7 @@ def ordstat_revenue(
     return OrdstatResult(est, se)
 
 
-def _improper(data: PreparedBids, experiment: Experiment, arm: int) -> float:
+def _realized_average(data: PreparedBids, experiment: Experiment, arm: int) -> float:
     """Realized revenue per auction over the arm's own auctions (bid x position weight)."""
     n = int(data.n_bidders[0])
     w = np.zeros(n + 1)
@@ -361,22 +361,22 @@ def share_cell(values_name: str, n: int, share: float, *, n_auctions: int, reps:
     treated_rule = rules[1]
     ab_auctions = max(2, int(round(share * n_auctions)))
     rng = _rng(seed, (2, list(VALUE_DISTRIBUTIONS).index(values_name), n, int(round(share * 1e6)), n_auctions))
-    out = {m: (np.full(reps, np.nan), np.full(reps, np.nan)) for m in ("ordstat", "ideal_ab", "improper")}
+    out = {m: (np.full(reps, np.nan), np.full(reps, np.nan)) for m in ("ordstat", "informed_ab", "realized_average")}
     for r in range(reps):
         data = simulate_prepared(values_name, exp, n_bidders=n, n_auctions=n_auctions, rng=rng)
         res = ordstat_revenue(data, [treated_rule], mix)
         out["ordstat"][0][r], out["ordstat"][1][r] = res.estimate[0], res.std_error[0]
-        out["improper"][0][r] = _improper(data, exp, 1)
+        out["realized_average"][0][r] = _realized_average(data, exp, 1)
         ab = simulate_prepared(values_name, one, n_bidders=n, n_auctions=ab_auctions, rng=rng)
         res_ab = ordstat_revenue(ab, [treated_rule], treated_rule)
-        out["ideal_ab"][0][r], out["ideal_ab"][1][r] = res_ab.estimate[0], res_ab.std_error[0]
+        out["informed_ab"][0][r], out["informed_ab"][1][r] = res_ab.estimate[0], res_ab.std_error[0]
     truth = expected_revenue_per_auction(VALUE_DISTRIBUTIONS[values_name], TREATED_WEIGHTS, n)
     rows = []
     for method, (e, s) in out.items():
-        used = ab_auctions if method == "ideal_ab" else n_auctions
+        used = ab_auctions if method == "informed_ab" else n_auctions
         rows.append({"distribution": values_name, "n_bidders": n, "share": share, "n_auctions": n_auctions,
-                     "auctions_used": used if method != "improper" else None, "arm": "treated", "method": method,
-                     **_summary(e, truth, None if method == "improper" else s)})
+                     "auctions_used": used if method != "realized_average" else None, "arm": "treated", "method": method,
+                     **_summary(e, truth, None if method == "realized_average" else s)})
     return rows
 
 
@@ -456,7 +456,7 @@ def share_study(
     seed: int = 0,
     jobs: int = 1,
 ) -> pd.DataFrame:
-    """RMSE of the treated arm's revenue as its share falls: estimator, ideal A/B test, improper average.
+    """RMSE of the treated arm's revenue as its share falls: estimator, informed-bidder A/B test, realized per-arm average.
 
     Parameters
     ----------
@@ -465,15 +465,15 @@ def share_study(
     shares : sequence of float
         Treated shares in (0, 1).
     n_auctions : int
-        Auctions per simulated experiment; the ideal A/B test uses ``round(share * n_auctions)``
+        Auctions per simulated experiment; the informed-bidder A/B test uses ``round(share * n_auctions)``
         auctions of bidders who know they face the treated arm.
 
     Returns
     -------
     pandas.DataFrame
         One row per (distribution, n_bidders, share, method) with the columns of
-        :func:`size_study` and ``rmse_vs_ideal`` (RMSE over the ideal A/B test's RMSE);
-        ``method`` is ``ordstat``, ``ideal_ab`` or ``improper``.
+        :func:`size_study` and ``rmse_vs_informed`` (RMSE over the informed-bidder A/B test's RMSE);
+        ``method`` is ``ordstat``, ``informed_ab`` or ``realized_average``.
     """
     names = _check_names(distributions)
     ns = _check_grid("bidders", bidders, lo=2, hi=1000, integer=True)
@@ -483,9 +483,9 @@ def share_study(
     cells = [(share_cell, (d, n, s), {"n_auctions": a, "reps": reps, "seed": seed})
              for d in names for n in ns for s in sh]
     out = pd.DataFrame(_run(cells, jobs))
-    ideal = out[out["method"] == "ideal_ab"].set_index(["distribution", "n_bidders", "share"])["rmse"]
+    ideal = out[out["method"] == "informed_ab"].set_index(["distribution", "n_bidders", "share"])["rmse"]
     key = pd.MultiIndex.from_frame(out[["distribution", "n_bidders", "share"]])
-    out["rmse_vs_ideal"] = out["rmse"].to_numpy() / ideal.reindex(key).to_numpy()
+    out["rmse_vs_informed"] = out["rmse"].to_numpy() / ideal.reindex(key).to_numpy()
     return out
 
 
@@ -497,7 +497,7 @@ def coverage_table(size: pd.DataFrame, share: pd.DataFrame | None = None, *, con
     size : pandas.DataFrame
         From :func:`size_study`.
     share : pandas.DataFrame, optional
-        From :func:`share_study` (its ``ordstat`` and ``ideal_ab`` rows).
+        From :func:`share_study` (its ``ordstat`` and ``informed_ab`` rows).
     confidence_level : float
         Level of the Clopper-Pearson interval around each coverage estimate.
 
@@ -511,7 +511,7 @@ def coverage_table(size: pd.DataFrame, share: pd.DataFrame | None = None, *, con
     s = size[size["method"] == "ordstat"].assign(design="size")
     parts.append(s)
     if share is not None:
-        t = share[share["method"].isin(["ordstat", "ideal_ab"])].assign(design="share")
+        t = share[share["method"].isin(["ordstat", "informed_ab"])].assign(design="share")
         t = t.assign(n_bids=t["n_auctions"] * t["n_bidders"])
         parts.append(t)
     df = pd.concat(parts, ignore_index=True)

@@ -1,4 +1,4 @@
-"""The results report: HTML with PNG plots of per-arm revenue, the improper average and the lift.
+"""The results report: HTML with PNG plots of per-arm revenue, the realized per-arm average and the lift.
 
 Reads only the results database (through :class:`~counterbid.operators.hooks.ResultsHook`); the
 data-check status per day is shown when the ``data_checks`` table exists.
@@ -37,7 +37,7 @@ MIXTURE_GAP_SE = 3.0
 _LABELS = {
     "revenue_per_auction": "revenue / auction",
     "welfare_per_auction": "welfare / auction",
-    "naive_revenue_per_auction": "realized average (biased)",
+    "realized_revenue_per_auction": "realized average (biased)",
     "revenue_lift_vs_control": "lift vs control",
 }
 
@@ -83,9 +83,9 @@ def _mixture_days(daily: pd.DataFrame) -> pd.DataFrame:
     mix = daily[daily["arm"] == MIXTURE_ARM].pivot(index="ds", columns="metric", values=["estimate", "std_error"])
     out = pd.DataFrame({
         "estimated": mix[("estimate", "revenue_per_auction")],
-        "realized": mix[("estimate", "naive_revenue_per_auction")],
+        "realized": mix[("estimate", "realized_revenue_per_auction")],
     })
-    se = (mix[("std_error", "revenue_per_auction")] ** 2 + mix[("std_error", "naive_revenue_per_auction")] ** 2) ** 0.5
+    se = (mix[("std_error", "revenue_per_auction")] ** 2 + mix[("std_error", "realized_revenue_per_auction")] ** 2) ** 0.5
     out["gap"] = out["estimated"] / out["realized"] - 1.0
     # the two share the same bids, so this SE ignores a positive covariance: it overstates the
     # noise and the flag is conservative
@@ -102,7 +102,7 @@ def _colours(daily: pd.DataFrame) -> dict[str, str]:
 def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
     fig, ax = plt.subplots(figsize=(9, 4.2))
     rev = daily[(daily["metric"] == "revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
-    naive = daily[(daily["metric"] == "naive_revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
+    naive = daily[(daily["metric"] == "realized_revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
     colours = _colours(daily)
     for arm, rows in rev.groupby("arm", sort=False):
         colour = colours[arm]

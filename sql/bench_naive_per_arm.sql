@@ -1,4 +1,4 @@
--- The improper per-arm average of realized revenue, as a plain GROUP BY (benchmark peer; biased:
+-- The realized per-arm average of realized revenue, as a plain GROUP BY (benchmark peer; biased:
 -- each arm's own auctions were bid against the mixture, not against that arm).
 -- $path: a Parquet file or glob of bids; $weights: list of {arm, position, weight} structs.
 with source as (

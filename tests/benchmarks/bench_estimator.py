@@ -7,7 +7,7 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 (a2) input     DuckDB read of the five columns the estimator reads + one ``np.sort`` of the bids
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
-(c) sql_naive  the improper per-arm GROUP BY in DuckDB (``sql/bench_naive_per_arm.sql``)
+(c) sql_naive  the realized per-arm GROUP BY in DuckDB (``sql/bench_naive_per_arm.sql``)
 (d) pandas     the plain-pandas peer (``naive_pandas.py``)
 
 plus the interpreter baseline (imports only) and one ``counterbid backfill`` day of the daily DAG

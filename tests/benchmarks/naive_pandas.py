@@ -29,7 +29,7 @@ def _l_statistic(sorted_bids: pd.Series, inc: np.ndarray, top: float, bottom: fl
 
 
 def naive_estimate(bids: pd.DataFrame, experiment: Experiment, *, confidence_level: float = 0.95) -> pd.DataFrame:
-    """Revenue, welfare and improper average per arm (clustered by auction), the slow obvious way."""
+    """Revenue, welfare and realized per-arm average per arm (clustered by auction), the slow obvious way."""
     df = bids[bids["experiment_id"] == experiment.id] if "experiment_id" in bids else bids
     df = df[["auction_id", "arm", "bid", "position"]].copy()
     df["n_bidders"] = df.groupby("auction_id")["bid"].transform("size")
@@ -60,7 +60,7 @@ def naive_estimate(bids: pd.DataFrame, experiment: Experiment, *, confidence_lev
             se = float(np.sqrt(var))
             results[("_mixture" if arm is None else arm.name, metric)] = (estimate, se)
 
-    # Improper average: realized revenue row by row, then one mean per arm over its own auctions.
+    # realized per-arm average: realized revenue row by row, then one mean per arm over its own auctions.
     lookup = {a.name: a.position_weights for a in experiment.arms}
     realized = []
     for arm_name, bid, pos in zip(df["arm"], df["bid"], df["position"]):
@@ -69,7 +69,7 @@ def naive_estimate(bids: pd.DataFrame, experiment: Experiment, *, confidence_lev
     df["realized"] = realized
     per_auction = df.groupby(["arm", "auction_id"])["realized"].sum().reset_index()
     for arm_name, group in per_auction.groupby("arm"):
-        results[(arm_name, "naive_revenue_per_auction")] = (float(group["realized"].mean()),
+        results[(arm_name, "realized_revenue_per_auction")] = (float(group["realized"].mean()),
                                                             float(group["realized"].std(ddof=1) / np.sqrt(len(group))))
     rows = [(arm, metric, est, se, est - z * se, est + z * se) for (arm, metric), (est, se) in results.items()]
     return pd.DataFrame(rows, columns=["arm", "metric", "estimate", "std_error", "ci_low", "ci_high"])

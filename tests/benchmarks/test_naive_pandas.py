@@ -17,11 +17,11 @@ def test_naive_peer_agrees_with_estimate_arms(three_arm_experiment):
     bids = pd.concat([bids, bids.iloc[[0]].assign(auction_id=10**6)], ignore_index=True)  # one single-bidder auction
     want = estimate_arms(bids, exp).set_index(["arm", "metric"])
     got = naive_estimate(bids, exp).set_index(["arm", "metric"])
-    exact = [k for k in got.index if k[1] != "naive_revenue_per_auction"]
+    exact = [k for k in got.index if k[1] != "realized_revenue_per_auction"]
     assert len(exact) == 7
     np.testing.assert_allclose(got.loc[exact, "estimate"], want.loc[exact, "estimate"], rtol=1e-10)
     np.testing.assert_allclose(got.loc[exact, "std_error"], want.loc[exact, "std_error"], rtol=1e-10)
-    naive = [k for k in got.index if k[1] == "naive_revenue_per_auction"]
+    naive = [k for k in got.index if k[1] == "realized_revenue_per_auction"]
     assert len(naive) == 3
     np.testing.assert_allclose(got.loc[naive, "estimate"], want.loc[naive, "estimate"], rtol=1e-12)
     # the peer uses the textbook standard error of a mean (ddof=1 within the arm): close, not equal

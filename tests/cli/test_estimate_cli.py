@@ -52,7 +52,7 @@ def test_json_output_has_every_arm_and_metric(files, capsys):
     assert set(rows[0]) == {"arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids"}
     seen = {(r["arm"], r["metric"]) for r in rows}
     for arm in ("control", "wide", "single"):
-        assert (arm, "revenue_per_auction") in seen and (arm, "naive_revenue_per_auction") in seen
+        assert (arm, "revenue_per_auction") in seen and (arm, "realized_revenue_per_auction") in seen
     assert ("wide", "revenue_lift_vs_control") in seen and ("control", "revenue_lift_vs_control") not in seen
 
 

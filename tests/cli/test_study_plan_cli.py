@@ -26,7 +26,7 @@ def test_study_writes_tables_figures_and_summary(tmp_path, capsys):
     assert sorted(size["n_bids"].unique()) == [20, 200]
     assert set(size["distribution"]) == {"uniform", "beta", "lognormal"}
     share = pd.read_csv(out / "accuracy_by_share.csv")
-    assert set(share["method"]) == {"ordstat", "ideal_ab", "improper"}
+    assert set(share["method"]) == {"ordstat", "informed_ab", "realized_average"}
     for png in out.glob("*.png"):
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     summary = (out / "summary.md").read_text()
@@ -71,7 +71,7 @@ def test_plan_from_pilot_bids_table(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "from pilot bids" in out
     assert "no candidate share reaches half-width 1e-09" in out
-    assert "two-premium" in out and "ideal_ab_half_width" in out
+    assert "two-premium" in out and "informed_ab_half_width" in out
 
 
 @pytest.mark.parametrize("extra, message", [

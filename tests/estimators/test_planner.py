@@ -66,7 +66,7 @@ def test_pilot_plan_within_20_percent_of_simulation_at_another_share(simulated):
 
 
 @pytest.mark.slow
-def test_ideal_ab_half_width_matches_a_simulated_one_arm_test():
+def test_informed_ab_half_width_matches_a_simulated_one_arm_test():
     exp = two_arms()
     plan = plan_shares(exp, days=DAYS, auctions_per_day=PER_DAY, values=VALUES, n_bidders=N_BIDDERS,
                        shares=(0.1,), calibration_auctions=10_000, rng=4)
@@ -74,10 +74,10 @@ def test_ideal_ab_half_width_matches_a_simulated_one_arm_test():
     alone = dataclasses.replace(exp, arms=(dataclasses.replace(exp.arm("treated"), share=1.0),), control_arm="treated")
     sim = simulated_half_width(VALUES, alone, n_bidders=N_BIDDERS, n_auctions=int(row["auctions_in_arm"]), reps=200,
                                rng=5).set_index(["arm", "metric"])
-    assert row["ideal_ab_half_width"] == pytest.approx(sim.loc[("treated", "revenue_per_auction"),
+    assert row["informed_ab_half_width"] == pytest.approx(sim.loc[("treated", "revenue_per_auction"),
                                                               "simulated_half_width"], rel=0.20)
-    # The estimator on the mixture beats the ideal test at a 10 % share (it uses every auction's bids).
-    assert row["half_width"] < row["ideal_ab_half_width"]
+    # The estimator on the mixture beats the informed-bidder test at a 10 % share (it uses every auction's bids).
+    assert row["half_width"] < row["informed_ab_half_width"]
 
 
 def test_recommendation_is_the_smallest_share_meeting_the_target():

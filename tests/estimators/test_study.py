@@ -78,21 +78,21 @@ def test_rmse_sqrt_n_is_flat_in_n():
     assert 0.7 < t[5000] / t[500] < 1.4
 
 
-def test_share_study_estimator_beats_ideal_ab_at_small_share_and_improper_is_biased():
+def test_share_study_estimator_beats_informed_ab_at_small_share_and_realized_average_is_biased():
     out = share_study(distributions=("uniform",), bidders=(3,), shares=(0.5, 0.02), n_auctions=5000, reps=40, seed=4)
     r = out.set_index(["share", "method"])
-    # With 2 % of traffic the ideal test sees 100 auctions; the estimator uses all 5000 auctions' bids.
-    assert r.loc[(0.02, "ordstat"), "rmse"] < 0.5 * r.loc[(0.02, "ideal_ab"), "rmse"]
-    assert r.loc[(0.02, "ideal_ab"), "rmse_vs_ideal"] == pytest.approx(1.0)
-    # Improper average: bidders answered the mixture, so its bias dwarfs its Monte Carlo error.
+    # With 2 % of traffic the informed-bidder test sees 100 auctions; the estimator uses all 5000 auctions' bids.
+    assert r.loc[(0.02, "ordstat"), "rmse"] < 0.5 * r.loc[(0.02, "informed_ab"), "rmse"]
+    assert r.loc[(0.02, "informed_ab"), "rmse_vs_informed"] == pytest.approx(1.0)
+    # realized per-arm average: bidders answered the mixture, so its bias dwarfs its Monte Carlo error.
     for s in (0.5, 0.02):
-        assert abs(r.loc[(s, "improper"), "bias"]) > 5 * r.loc[(s, "improper"), "bias_se"]
+        assert abs(r.loc[(s, "realized_average"), "bias"]) > 5 * r.loc[(s, "realized_average"), "bias_se"]
         assert abs(r.loc[(s, "ordstat"), "bias"]) < 3 * r.loc[(s, "ordstat"), "bias_se"]
-    assert r.loc[(0.02, "ideal_ab"), "auctions_used"] == 100
+    assert r.loc[(0.02, "informed_ab"), "auctions_used"] == 100
     small = size_study(distributions=("uniform",), bidders=(3,), sizes=(300,), reps=5, seed=0, two_step=False)
     cov = coverage_table(small, out)
     assert set(cov["design"]) == {"size", "share"}
-    assert set(cov.loc[cov["design"] == "share", "method"]) == {"ordstat", "ideal_ab"}
+    assert set(cov.loc[cov["design"] == "share", "method"]) == {"ordstat", "informed_ab"}
 
 
 def test_two_step_rows_and_deterministic_seed():
