@@ -75,5 +75,5 @@ def run(args: argparse.Namespace) -> int:
               f"{int(args.level * 100)}% intervals clustered by {args.cluster}")
         print(result.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
         print("Assumes symmetric bidders in equilibrium against the designed shares and known position weights;"
-              " realized_revenue_per_auction is the biased per-arm average, shown for comparison.")
+              " realized_revenue_per_auction is the realized per-arm average (biased), shown for comparison.")
     return 0

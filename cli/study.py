@@ -181,7 +181,7 @@ def summary_markdown(size, share, coverage, *, settings: dict, seconds: float) -
         "",
         f"{settings['share_auctions']} auctions per experiment. `ordstat`: the estimator on all auctions' "
         "bids; `informed_ab`: bidders told the arm, only the treated arm's s x A auctions; `realized_average`: the "
-        "per-arm average of realized revenue (bidders answered the mixture).",
+        "realized per-arm average, realized revenue over the treated arm's own auctions (bidders answered the mixture).",
         "",
         _md_table(sh),
         "",
@@ -250,11 +250,11 @@ def _findings(size, share, coverage) -> list[str]:
     ratio = share[share["method"] == "ordstat"]
     s_min = float(share["share"].min())
     lo = ratio[ratio["share"] == s_min]["rmse_vs_informed"]
-    imp = share[share["method"] == "realized_average"]
+    realized = share[share["method"] == "realized_average"]
     out.append(f"* At share {s_min:g} the estimator's RMSE is {lo.min():.2f} to {lo.max():.2f} times the informed-bidder A/B "
                "test's: every auction's bids inform every arm, so its error barely moves with the share while the "
-               f"informed-bidder test's grows like 1/sqrt(s). The realized per-arm average's RMSE is {imp['rmse_vs_informed'].min():.1f} to "
-               f"{imp['rmse_vs_informed'].max():.1f} times the informed-bidder test's, almost all of it bias.")
+               f"informed-bidder test's grows like 1/sqrt(s). The realized per-arm average's RMSE is {realized['rmse_vs_informed'].min():.1f} to "
+               f"{realized['rmse_vs_informed'].max():.1f} times the informed-bidder test's, almost all of it bias.")
     return out
 
 

@@ -657,10 +657,10 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
     with np.errstate(divide="ignore", invalid="ignore"):
         squares = np.bincount(arm_of_auction, weights=(revenue_of_auction - mean_of_arm[arm_of_auction]) ** 2,
                               minlength=k_arms) / auctions_of_arm.astype(float) ** 2
-    naive = [(np.nan, np.nan) if auctions_of_arm[k] == 0 else (float(mean_of_arm[k]), float(np.sqrt(scale * squares[k])))
+    realized = [(np.nan, np.nan) if auctions_of_arm[k] == 0 else (float(mean_of_arm[k]), float(np.sqrt(scale * squares[k])))
              for k in range(k_arms)]
     mean_all = float(revenue_of_auction.sum() / total_auctions)
-    naive_all_se = float(np.sqrt(scale * np.sum((revenue_of_auction - mean_all) ** 2))) / total_auctions
+    realized_all_se = float(np.sqrt(scale * np.sum((revenue_of_auction - mean_all) ** 2))) / total_auctions
     del revenue_of_auction, arm_of_auction
 
     z = float(stats.norm.ppf(0.5 + confidence_level / 2))
@@ -677,14 +677,14 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         emit(a.name, "revenue_per_auction", revenue[k].estimate, revenue[k].cluster_sums, total_auctions, total_bids)
         emit(a.name, "welfare_per_auction", welfare[k].estimate, None, total_auctions, total_bids,
              se=welfare[k].std_error(n_clusters))
-        emit(a.name, "realized_revenue_per_auction", naive[k][0], None, int(auctions_of_arm[k]), int(bids_of_arm[k]),
-             se=naive[k][1])
+        emit(a.name, "realized_revenue_per_auction", realized[k][0], None, int(auctions_of_arm[k]), int(bids_of_arm[k]),
+             se=realized[k][1])
         if k != control:
             t_a, t_c = revenue[k].estimate, revenue[control].estimate
             cs = revenue[k].cluster_sums / t_c - t_a * revenue[control].cluster_sums / t_c**2
             emit(a.name, "revenue_lift_vs_control", t_a / t_c - 1.0, cs, total_auctions, total_bids)
     emit(MIXTURE_ARM, "revenue_per_auction", revenue[-1].estimate, revenue[-1].cluster_sums, total_auctions, total_bids)
-    emit(MIXTURE_ARM, "realized_revenue_per_auction", mean_all, None, total_auctions, total_bids, se=naive_all_se)
+    emit(MIXTURE_ARM, "realized_revenue_per_auction", mean_all, None, total_auctions, total_bids, se=realized_all_se)
 
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")

@@ -294,12 +294,12 @@ def plan_shares(
                     continue
                 sigma = float(sig.loc[(a.name, metric), "sigma"]) * scale.get((a.name, metric), 1.0)
                 if metric == "revenue_per_auction":
-                    ideal = z * s1_a * scale.get((a.name, metric), 1.0) / np.sqrt(n_arm)
+                    informed = z * s1_a * scale.get((a.name, metric), 1.0) / np.sqrt(n_arm)
                 else:
                     n_c = exp_s.arm(control).share * total
-                    ideal = z * np.sqrt(s1_a**2 / n_arm / t_c**2 + t_a**2 * s1_c**2 / n_c / t_c**4) \
+                    informed = z * np.sqrt(s1_a**2 / n_arm / t_c**2 + t_a**2 * s1_c**2 / n_c / t_c**4) \
                         * scale.get((a.name, metric), 1.0)
-                rows.append((s, a.name, metric, z * sigma / np.sqrt(total), float(ideal), int(round(n_arm)), total))
+                rows.append((s, a.name, metric, z * sigma / np.sqrt(total), float(informed), int(round(n_arm)), total))
     table = pd.DataFrame(rows, columns=list(PLAN_COLUMNS))
 
     recommended = None

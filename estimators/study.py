@@ -9,8 +9,8 @@ with a fixed number ``n`` of bidders per auction and values from three distribut
 * **share study** (:func:`share_study`): a fixed number of auctions, treated share from 0.5 down to
   0.01. The treated arm's revenue by the estimator (all auctions' bids), by the **informed-bidder A/B test**
   (bidders told the arm: they bid against the treated arm alone and only its ``s * A`` auctions are
-  used, estimated as a one-arm experiment) and by the **realized per-arm average** of realized revenue
-  over the treated arm's auctions (biased: bidders answered the mixture).
+  used, estimated as a one-arm experiment) and by the **realized per-arm average**: realized revenue
+  over the treated arm's own auctions (biased: bidders answered the mixture).
 
 Truth is Myerson's formula by quadrature (:func:`~.simulate.expected_revenue_per_auction`).
 Every cell has its own seed (``SeedSequence([seed, cell])``), so results do not depend on the
@@ -483,9 +483,9 @@ def share_study(
     cells = [(share_cell, (d, n, s), {"n_auctions": a, "reps": reps, "seed": seed})
              for d in names for n in ns for s in sh]
     out = pd.DataFrame(_run(cells, jobs))
-    ideal = out[out["method"] == "informed_ab"].set_index(["distribution", "n_bidders", "share"])["rmse"]
+    informed = out[out["method"] == "informed_ab"].set_index(["distribution", "n_bidders", "share"])["rmse"]
     key = pd.MultiIndex.from_frame(out[["distribution", "n_bidders", "share"]])
-    out["rmse_vs_informed"] = out["rmse"].to_numpy() / ideal.reindex(key).to_numpy()
+    out["rmse_vs_informed"] = out["rmse"].to_numpy() / informed.reindex(key).to_numpy()
     return out
 
 

@@ -37,7 +37,7 @@ MIXTURE_GAP_SE = 3.0
 _LABELS = {
     "revenue_per_auction": "revenue / auction",
     "welfare_per_auction": "welfare / auction",
-    "realized_revenue_per_auction": "realized average (biased)",
+    "realized_revenue_per_auction": "realized per-arm average",
     "revenue_lift_vs_control": "lift vs control",
 }
 
@@ -111,7 +111,7 @@ def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
         ax.fill_between(x, rows["ci_low"], rows["ci_high"], color=colour, alpha=0.18, lw=0)
         raw = naive[naive["arm"] == arm]
         ax.plot(pd.to_datetime(raw["ds"]), raw["estimate"], color=colour, lw=1.3, ls="--",
-                label=f"{arm}: realized average (biased)")
+                label=f"{arm}: realized per-arm average")
     ax.set_title(f"{exp_id}: revenue per auction by day (bands: 95% intervals)")
     ax.set_ylabel("revenue per auction")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
@@ -246,7 +246,7 @@ img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
 <p class="small">Generated {generated} from {html.escape(str(hook.database))}.</p>
 <div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
 Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had
-adapted to it". The realized average is each arm's revenue over its own auctions: it is biased because
+adapted to it". The realized per-arm average is each arm's revenue over its own auctions: it is biased because
 bidders bid against the mixture, and is shown only for comparison. Intervals are 95%, clustered by auction.</div>
 {"".join(sections)}
 </body></html>

@@ -7,8 +7,8 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 (a2) input     DuckDB read of the five columns the estimator reads + one ``np.sort`` of the bids
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
-(c) sql_naive  the realized per-arm GROUP BY in DuckDB (``sql/bench_naive_per_arm.sql``)
-(d) pandas     the plain-pandas peer (``naive_pandas.py``)
+(c) sql_realized  the realized per-arm average as a DuckDB GROUP BY (``sql/bench_realized_per_arm.sql``)
+(d) pandas     the plain-pandas peer (``plain_pandas_peer.py``)
 
 plus the interpreter baseline (imports only) and one ``counterbid backfill`` day of the daily DAG
 on 1M bids. Wall time is measured by the parent around the child; "work" is the time the child
@@ -86,7 +86,7 @@ def child(kind: str, path: str, spec: str) -> dict:
         np.sort(bid)
         t2 = time.perf_counter()
         return {"work": t2 - t0, "read": t1 - t0, "sort": t2 - t1, "n": int(bid.size)}
-    if kind == "sql_naive":
+    if kind == "sql_realized":
         import duckdb
 
         from counterbid.estimators import load_experiment
@@ -96,7 +96,7 @@ def child(kind: str, path: str, spec: str) -> dict:
         weights = [{"arm": a.name, "position": k, "weight": w}
                    for a in exp.arms for k, w in enumerate(a.position_weights, start=1)]
         t0 = time.perf_counter()
-        rows = duckdb.connect().execute(load_sql("bench_naive_per_arm"), {"path": path, "weights": weights}).fetchall()
+        rows = duckdb.connect().execute(load_sql("bench_realized_per_arm"), {"path": path, "weights": weights}).fetchall()
         out["rows"] = [list(r) for r in rows]
         out["work"] = time.perf_counter() - t0
         return out
@@ -114,9 +114,9 @@ def child(kind: str, path: str, spec: str) -> dict:
             result = estimate_arms(prepared, exp)
         else:
             sys.path.insert(0, str(HERE))
-            from naive_pandas import naive_estimate
+            from plain_pandas_peer import plain_pandas_estimate
 
-            result = naive_estimate(bids, exp)
+            result = plain_pandas_estimate(bids, exp)
         t2 = time.perf_counter()
         rev = result[result["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         return {"work": t2 - t0, "read": t1 - t0, "estimate": t2 - t1, "revenue": rev.round(6).to_dict()}
@@ -200,7 +200,7 @@ def repeated(argv: list[str], times: int) -> dict:
 
 LABELS = {"floor": "(a) floor: DuckDB read bid + np.sort", "input": "(a2) DuckDB read of the 5 columns used + np.sort",
           "cli": "(b) counterbid estimate (CLI process)", "estimate": "(b') read_bids + estimate_arms",
-          "sql_naive": "(c) per-arm GROUP BY (DuckDB)", "pandas": "(d) plain-pandas peer"}
+          "sql_realized": "(c) realized per-arm average (DuckDB)", "pandas": "(d) plain-pandas peer"}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -209,7 +209,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--repeat", type=int, default=3, help="runs per row; medians are reported (default 3)")
     p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
     p.add_argument("--out", help="also write the markdown table here")
-    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,estimate,sql_naive,pandas,dag)")
+    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,estimate,sql_realized,pandas,dag)")
     p.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "SPEC"), help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
@@ -240,7 +240,7 @@ def main(argv: list[str] | None = None) -> int:
         first_file = first_file or path
         column_mib = millions * 1e6 * 8 / 2**20
         rows = {}
-        for kind in ("floor", "input", "cli", "estimate", "sql_naive", "pandas"):
+        for kind in ("floor", "input", "cli", "estimate", "sql_realized", "pandas"):
             if kind in skip:
                 continue
             if kind == "cli":

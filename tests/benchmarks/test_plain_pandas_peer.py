@@ -8,21 +8,21 @@ import scipy.stats as st
 
 from counterbid.estimators import estimate_arms, simulate_experiment
 
-from .naive_pandas import naive_estimate
+from .plain_pandas_peer import plain_pandas_estimate
 
 
-def test_naive_peer_agrees_with_estimate_arms(three_arm_experiment):
+def test_plain_pandas_peer_agrees_with_estimate_arms(three_arm_experiment):
     exp = three_arm_experiment
     bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders={4: 0.5, 5: 0.5}, n_auctions=3000, rng=7)
     bids = pd.concat([bids, bids.iloc[[0]].assign(auction_id=10**6)], ignore_index=True)  # one single-bidder auction
     want = estimate_arms(bids, exp).set_index(["arm", "metric"])
-    got = naive_estimate(bids, exp).set_index(["arm", "metric"])
+    got = plain_pandas_estimate(bids, exp).set_index(["arm", "metric"])
     exact = [k for k in got.index if k[1] != "realized_revenue_per_auction"]
     assert len(exact) == 7
     np.testing.assert_allclose(got.loc[exact, "estimate"], want.loc[exact, "estimate"], rtol=1e-10)
     np.testing.assert_allclose(got.loc[exact, "std_error"], want.loc[exact, "std_error"], rtol=1e-10)
-    naive = [k for k in got.index if k[1] == "realized_revenue_per_auction"]
-    assert len(naive) == 3
-    np.testing.assert_allclose(got.loc[naive, "estimate"], want.loc[naive, "estimate"], rtol=1e-12)
+    realized = [k for k in got.index if k[1] == "realized_revenue_per_auction"]
+    assert len(realized) == 3
+    np.testing.assert_allclose(got.loc[realized, "estimate"], want.loc[realized, "estimate"], rtol=1e-12)
     # the peer uses the textbook standard error of a mean (ddof=1 within the arm): close, not equal
-    np.testing.assert_allclose(got.loc[naive, "std_error"], want.loc[naive, "std_error"], rtol=2e-3)
+    np.testing.assert_allclose(got.loc[realized, "std_error"], want.loc[realized, "std_error"], rtol=2e-3)

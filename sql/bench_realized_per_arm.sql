@@ -1,5 +1,5 @@
--- The realized per-arm average of realized revenue, as a plain GROUP BY (benchmark peer; biased:
--- each arm's own auctions were bid against the mixture, not against that arm).
+-- The realized per-arm average (realized revenue over each arm's own auctions) as a plain GROUP BY
+-- (benchmark peer; biased: each arm's own auctions were bid against the mixture, not against that arm).
 -- $path: a Parquet file or glob of bids; $weights: list of {arm, position, weight} structs.
 with source as (
     select auction_id, arm, bid, position

@@ -4,7 +4,7 @@ Same math as :func:`counterbid.estimators.estimate_arms` (same weight functions,
 function, same cluster-robust variance), but organised the way a newcomer writes it: the bids are
 sorted again for every arm and metric, realized revenue is a Python loop over rows, the cluster
 sums are a ``groupby`` per (arm, metric) and the variance is a Python sum over clusters. Only the
-benchmark uses it; ``test_naive_pandas.py`` checks that it agrees with ``estimate_arms``.
+benchmark uses it; ``test_plain_pandas_peer.py`` checks that it agrees with ``estimate_arms``.
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ def _l_statistic(sorted_bids: pd.Series, inc: np.ndarray, top: float, bottom: fl
     return est, centre - np.asarray(tail)
 
 
-def naive_estimate(bids: pd.DataFrame, experiment: Experiment, *, confidence_level: float = 0.95) -> pd.DataFrame:
+def plain_pandas_estimate(bids: pd.DataFrame, experiment: Experiment, *, confidence_level: float = 0.95) -> pd.DataFrame:
     """Revenue, welfare and realized per-arm average per arm (clustered by auction), the slow obvious way."""
     df = bids[bids["experiment_id"] == experiment.id] if "experiment_id" in bids else bids
     df = df[["auction_id", "arm", "bid", "position"]].copy()
