@@ -1,8 +1,8 @@
 """Two-step kernel baseline (Guerre, Perrigne & Vuong 2000, Econometrica 68(3), 525-574).
 
-Reference values: METHOD.md's closed forms (Krishna, Auction Theory, 2nd ed., 2010, ch. 2: with two
-bidders, values U[0, 2] and one slot, bids are U[0, 1] and half the value; revenue equivalence),
-and Myerson's formula by quadrature (``expected_revenue_per_auction``).
+Reference values: closed forms for U[0, 1] values (Krishna, Auction Theory, 2nd ed., 2010: ch. 2,
+one slot and n bidders bid (n-1)/n of the value; ch. 3, k identical slots earn k(n-k)/(n+1)), and
+Myerson's formula by quadrature (``expected_revenue_per_auction``).
 """
 
 from __future__ import annotations
@@ -32,15 +32,17 @@ def experiment(arms):
     return parse_experiments(doc)["ts"]
 
 
-def test_pseudo_values_recover_values_two_bidders_uniform():
-    # Two bidders, U[0, 2] values, one slot: bids are U[0, 1], value = 2 x bid (Krishna ch. 2).
-    # x(q) = q, so the inversion is v = b + G(b)/g(b); on an exact bid grid the pseudo-values
-    # must be close to 2 b away from the (trimmed) boundaries.
+def test_pseudo_values_recover_values_four_bidders_uniform():
+    # Four bidders, U[0, 1] values, one slot: b(v) = 3/4 v (Krishna ch. 2), so the bid at quantile
+    # q is 3/4 q and the value there is q. x(q) = q^3, so the inversion v = b + x(G)/(g x'(G))
+    # = b + G/(3 g); on the exact bid grid (no random draws) the pseudo-values must be close to
+    # their quantile away from the (trimmed) boundaries. Measured error 6e-7 in [0.2, 0.8]; the
+    # 0.01 bound leaves room for the kernel's smoothing on other grids.
     big_n = 20_000
-    b = (np.arange(big_n) + 0.5) / big_n
-    pv = pseudo_values(b, allocation_rule([1.0], 2))
+    q = (np.arange(big_n) + 0.5) / big_n
+    pv = pseudo_values(0.75 * q, allocation_rule([1.0], 4))
     inner = (pv.quantile > 0.2) & (pv.quantile < 0.8)
-    np.testing.assert_allclose(pv.value[inner], 2 * pv.quantile[inner], atol=0.01)
+    np.testing.assert_allclose(pv.value[inner], pv.quantile[inner], atol=0.01)
     assert 0 < pv.n_trimmed < 0.2 * big_n
 
 
@@ -52,14 +54,17 @@ def test_trimming_grows_with_bandwidths_and_zero_keeps_every_bid():
     assert counts[0] < counts[1] < counts[2]
 
 
-def test_revenue_equivalence_one_vs_two_slots():
-    # Three bidders, U[0, 2]: one slot and two identical slots both earn 1.0 per auction
-    # (METHOD.md; Krishna ch. 3, k(n-k)/(n+1) scaled by 2).
-    exp = experiment([("one", 0.5, [1.0]), ("two", 0.5, [1.0, 1.0])])
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=30_000, rng=11)
+def test_revenue_equivalence_two_vs_three_slots():
+    # Five bidders, U[0, 1]: two and three identical slots both earn k(n-k)/(n+1) = 1.0 per
+    # auction (Krishna ch. 3). The two-step has no standard error of its own; over seeds 11-16 of
+    # this design it gave 0.979 +- 0.0004 (two slots) and 0.998 +- 0.0012 (three slots), mean +- sd
+    # of the 6 runs: a boundary-trimming bias of about -0.021 (values with a hard upper bound,
+    # DEVELOPERS.md) and little Monte Carlo noise. The bound 0.03 is that bias plus more than 20 sd.
+    exp = experiment([("two", 0.5, [1.0, 1.0]), ("three", 0.5, [1.0, 1.0, 1.0])])
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=5, n_auctions=30_000, rng=11)
     rev = two_step_revenue(bids, exp).set_index("arm")["estimate"]
-    assert rev["one"] == pytest.approx(1.0, abs=0.04)
-    assert rev["two"] == pytest.approx(1.0, abs=0.04)
+    assert rev["two"] == pytest.approx(1.0, abs=0.03)
+    assert rev["three"] == pytest.approx(1.0, abs=0.03)
 
 
 @pytest.mark.parametrize("values", [st.lognorm(0.5, scale=0.8), st.beta(2, 5, scale=3)], ids=["lognormal", "beta"])
@@ -100,7 +105,7 @@ def test_too_few_bids_give_nan_not_a_crash():
 ])
 def test_bad_options(kwargs, match):
     exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=200, rng=1)
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=200, rng=1)
     with pytest.raises(InputError, match=match):
         two_step_revenue(bids, exp, **kwargs)
 
