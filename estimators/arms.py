@@ -658,7 +658,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         squares = np.bincount(arm_of_auction, weights=(revenue_of_auction - mean_of_arm[arm_of_auction]) ** 2,
                               minlength=k_arms) / auctions_of_arm.astype(float) ** 2
     realized = [(np.nan, np.nan) if auctions_of_arm[k] == 0 else (float(mean_of_arm[k]), float(np.sqrt(scale * squares[k])))
-             for k in range(k_arms)]
+                for k in range(k_arms)]
     mean_all = float(revenue_of_auction.sum() / total_auctions)
     realized_all_se = float(np.sqrt(scale * np.sum((revenue_of_auction - mean_all) ** 2))) / total_auctions
     del revenue_of_auction, arm_of_auction

@@ -463,8 +463,9 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
     Notes
     -----
     ``b`` is ``scipy.interpolate.make_lsq_spline`` of the sorted bids on plotting positions
-    ``(i - 1/2)/N`` (beyond ``2**20`` bids, of every k-th of them); ``b'`` is its derivative; ``v = b + b' x / x'`` (METHOD.md, equilibrium
-    facts). Where the mixture is flat (``x' = 0``) the value is not identified and set to NaN.
+    ``(i - 1/2)/N`` (beyond ``2**20`` bids, of every k-th of them); ``b'`` is its derivative;
+    ``v = b + b' x / x'`` (docs/method.md, "Equilibrium under pay-your-bid per click"). Where the
+    mixture is flat (``x' = 0``) the value is not identified and set to NaN.
 
     References
     ----------

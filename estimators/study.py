@@ -191,7 +191,7 @@ class OrdstatResult:
 
 
 def _l_statistic_influence(sorted_bids: np.ndarray, increments: np.ndarray) -> np.ndarray:
-    """Influence function of ``sum_i b_(i) c_i`` at each sorted bid (METHOD.md, standard errors).
+    """Influence function of ``sum_i b_(i) c_i`` at each sorted bid (docs/method.md, "Standard errors").
 
     ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j``, gaps ``D_j = b_(j+1) - b_(j)``, weight
     density ``J`` at ``j/N`` (Serfling 1980, sec. 8.2); the same formula as the estimator's, kept

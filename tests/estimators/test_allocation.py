@@ -25,7 +25,7 @@ def power_form(weights, n):
 @pytest.mark.parametrize("n", [1, 2, 3, 5, 10])
 @pytest.mark.parametrize("weights", [[1.0], [1.0, 1.0], [0.31, 0.17, 0.06, 0.02], [0.5, 0.5, 0.2, 0.2, 0.1]])
 def test_matches_power_form(weights, n):
-    # Definition of the allocation rule (METHOD.md "Model"), expanded independently.
+    # Definition of the allocation rule (docs/method.md, "Model"), expanded independently.
     q = np.linspace(0, 1, 101)
     rule = allocation_rule(weights, n)
     poly = power_form(weights, n)

@@ -25,7 +25,7 @@ def test_spline_matches_exact(n):
 
 
 def test_sanity_identity_weights_reduce_to_mixture():
-    # With y = x_C, omega = x_C: Omega(q) = X_C(q) (METHOD.md, "Sanity identity").
+    # With y = x_C, omega = x_C: Omega(q) = X_C(q) (docs/method.md, "Check: the mixture as its own target").
     n = 6
     mix = mixture_rule([allocation_rule([0.3, 0.1], n), allocation_rule([0.4], n)], [0.7, 0.3])
     w = revenue_weights(mix, mix, GRID_INTERVALS)
