@@ -25,7 +25,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from scipy.optimize import isotonic_regression
 
-from counterbid.cli.io import read_bids
+from counterbid.readers.bid_log import read_bids
 from counterbid.estimators import (
     CheckResult, Experiment, estimate_arms, load_experiments, prepare_bids, worst_failure,
 )

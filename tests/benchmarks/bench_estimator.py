@@ -101,7 +101,7 @@ def child(kind: str, path: str, spec: str) -> dict:
         out["work"] = time.perf_counter() - t0
         return out
     if kind in ("estimate", "pandas"):
-        from counterbid.cli.io import read_bids
+        from counterbid.readers.bid_log import read_bids
         from counterbid.estimators import BID_COLUMNS, estimate_arms, load_experiment, prepare_bids
 
         exp = load_experiment(spec)
