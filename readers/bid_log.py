@@ -84,8 +84,8 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
     Returns
     -------
     pandas.DataFrame
-        String columns come back as categoricals (Arrow's dictionary encoding, unified across
-        batches by Arrow); integer columns in the narrowest signed dtype holding their values,
+        String columns come back as categoricals (Arrow's dictionary encoding of the whole column,
+        or the file's own dictionaries unified by Arrow); integer columns in the narrowest signed dtype holding their values,
         nullable integers when they hold nulls; ``bid`` as float64 whatever its numeric type
         (integer, float32, float64 or decimal). Integer contract columns stored in 128 bits
         (decimal with scale 0) come back as int64 or narrower.
@@ -100,8 +100,10 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
     Notes
     -----
     The columns are allocated once, at their final size, and filled column by column and batch
-    by batch, so peak memory is the frame plus about one batch of one column (and, for a string
-    column, Arrow's dictionaries of its batches) -- not an Arrow table and a frame side by side.
+    by batch, so peak memory is the frame plus about one batch of one column -- not an Arrow table
+    and a frame side by side. A string column is the exception: its Arrow strings are held until
+    Arrow's ``dictionary_encode`` has coded the whole column with one hash table (one column at a
+    time; a file written from categoricals keeps its dictionaries, unified by Arrow instead).
     """
     path = Path(path)
     if not path.exists():
@@ -113,11 +115,8 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
         for name in wanted:
             if name in BID_CONTRACT:
                 _refuse_declared_type(path, BID_CONTRACT[name], schema.field(name).type)
-        text = [f.name for f in schema if f.name in wanted and _is_text(f.type)]
         fmt = pads.ParquetFileFormat(
-            read_options=pads.ParquetReadOptions(dictionary_columns=text),
-            default_fragment_scan_options=pads.ParquetFragmentScanOptions(pre_buffer=False),
-        )
+            default_fragment_scan_options=pads.ParquetFragmentScanOptions(pre_buffer=False))
         dataset = pads.dataset(str(path), format=fmt, partitioning=partitioning)
         n_rows = dataset.count_rows()
         if n_rows == 0:
@@ -162,7 +161,8 @@ class _Column:
     Integers are stored in the narrowest dtype that holds the values seen so far (widened, with
     one copy, if a later batch needs it). A string column keeps each batch's codes into that
     batch's own dictionary; at the end Arrow unifies the dictionaries
-    (``ChunkedArray.unify_dictionaries``) and the codes are remapped in place.
+    (``ChunkedArray.unify_dictionaries``) and the codes are remapped in place. Plain strings are
+    kept as Arrow arrays and dictionary-encoded once, over the whole column.
     """
 
     def __init__(self, name: str, kind: pa.DataType, n_rows: int, *, source: Path):
@@ -232,9 +232,10 @@ class _Column:
                                  "int64 range the bids data contract allows for integers")
             self._room(lo, hi)
             self.values[at:end] = array.to_numpy(zero_copy_only=False)
+        elif self.kind == "codes" and not pa.types.is_dictionary(array.type):
+            self.chunks.append(array)  # plain strings: encoded once, over the whole column, at the end
+            self.segments.append((at, end))
         elif self.kind == "codes":
-            if not pa.types.is_dictionary(array.type):  # e.g. a string partition column
-                array = pc.dictionary_encode(array)
             words = array.dictionary
             self.bound += len(words)
             self._room(-1, self.bound)
@@ -245,8 +246,21 @@ class _Column:
         else:
             self.chunks.append(array)
 
+    def _encoded(self) -> pd.Categorical:
+        """Plain strings: Arrow's ``dictionary_encode`` of the whole column (one hash table, one dictionary)."""
+        encoded = pc.dictionary_encode(pa.chunked_array(self.chunks))
+        self.chunks.clear()
+        words = encoded.chunk(0).dictionary if encoded.num_chunks else pa.array([], pa.string())
+        codes = np.empty(self.n_rows, dtype=_narrowest(-1, len(words)))
+        for (at, end), chunk in zip(self.segments, encoded.chunks):
+            codes[at:end] = chunk.indices.fill_null(-1).to_numpy(zero_copy_only=False)
+        del encoded
+        return _from_unique_codes(codes, pd.Index(words.to_pandas(), copy=False))
+
     def _categorical(self) -> pd.Categorical:
         """Remap every batch's codes onto one dictionary unified by Arrow; the frame's categorical."""
+        if self.chunks:
+            return self._encoded()
         if not self.dictionaries:
             return pd.Categorical.from_codes(np.full(self.n_rows, -1, dtype=np.int8), categories=[])
         # Each batch's own dictionary, coded 0..k-1: after unification its indices are the batch's remap.
