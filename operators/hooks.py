@@ -274,9 +274,7 @@ class ResultsHook(BaseHook):
 
         low, high = INTEGER_RANGE
         with self.lake() as con:
-            # bound as HUGEINT so that the comparison holds for every integer type
-            params = {"path": str(path), "low": duckdb.Value(low, duckdb.typing.HUGEINT),
-                      "high": duckdb.Value(high, duckdb.typing.HUGEINT)}
+            params = {"path": str(path), "low": low, "high": high}
             outside, example = con.execute(render_sql("staged_integer_range", column=column), params).fetchone()
             return int(outside), example
 
