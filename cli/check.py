@@ -53,7 +53,7 @@ def run(args: argparse.Namespace) -> int:
     import pandas as pd
 
     from counterbid.cli.estimate import _choose_experiment
-    from counterbid.cli.io import read_bids
+    from counterbid.readers.bid_log import read_bids
     from counterbid.estimators.checks import results_frame, worst_failure
     from counterbid.estimators.errors import InputError
     from counterbid.operators.checks import run_checks

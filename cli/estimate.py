@@ -42,7 +42,7 @@ def _distinct_text(col) -> list[str]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from counterbid.cli.io import read_bids
+    from counterbid.readers.bid_log import read_bids
     from counterbid.estimators import BID_COLUMNS, EstimatorWarning, estimate_arms, prepare_bids
 
     bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS])

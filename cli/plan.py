@@ -31,7 +31,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from counterbid.cli.estimate import _choose_experiment
-    from counterbid.cli.io import read_bids
+    from counterbid.readers.bid_log import read_bids
     from counterbid.estimators import BID_COLUMNS
     from counterbid.estimators.errors import InputError
     from counterbid.estimators.planner import DEFAULT_SHARES, plan_shares

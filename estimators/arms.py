@@ -10,6 +10,7 @@ import pandas as pd
 from scipy import stats
 
 from .allocation import AllocationRule, allocation_rule, mixture_rule
+from .bid_contract import BID_CONTRACT, INTEGER_RANGE
 from .errors import EstimatorWarning, InputError
 from .order_weights import WeightTable, revenue_weights, welfare_weights
 from .spec import Experiment
@@ -86,12 +87,17 @@ def _value(x) -> str:
 def _auction_codes(ids: pd.Series) -> np.ndarray:
     """Codes 0..A-1 of the auction ids in order of first appearance (``pd.factorize(sort=False)``).
 
-    Bid logs are usually written auction by auction. When integer ids never decrease, the code of
-    a row is the number of id changes before it: the same codes as factorize, without hashing
-    (int32 when they fit, else intp).
+    Bid logs are usually written auction by auction. When integer ids (or a categorical's codes:
+    text ids as the reader returns them) never decrease, the code of a row is the number of id
+    changes before it: the same codes as factorize, without hashing (int32 when they fit, else intp).
     """
-    if pd.api.types.is_integer_dtype(ids) and not ids.hasnans and len(ids) > 1:
+    if isinstance(ids.dtype, pd.CategoricalDtype) and len(ids) > 1:
+        values = ids.cat.codes.to_numpy()  # no nulls here (checked before): codes order like distinct ids
+    elif pd.api.types.is_integer_dtype(ids) and not ids.hasnans and len(ids) > 1:
         values = ids.to_numpy()
+    else:
+        values = None
+    if values is not None:
         if bool(np.all(values[1:] >= values[:-1])):
             codes = np.empty(values.size, dtype=np.int32 if values.size < 2**31 else np.intp)
             codes[0] = 0
@@ -124,12 +130,35 @@ def _as_text(col: pd.Series) -> tuple[np.ndarray, list]:
     return codes, list(uniques)
 
 
+#: The contract's rule for ``bid`` (kind ``numeric``: any numpy/pandas numeric dtype but bool, or
+#: ``decimal.Decimal`` objects, which is how pandas holds Parquet decimals; read as float64).
+_BID = BID_CONTRACT["bid"]
+
+
+def _holds_decimals(col: pd.Series) -> bool:
+    return col.dtype == object and pd.api.types.infer_dtype(col, skipna=True) == "decimal"
+
+
+def _refuse_beyond_int64(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> None:
+    """Python integers (128-bit ids held as objects) must fit in int64, as everywhere in the contract."""
+    if pd.api.types.infer_dtype(col, skipna=True) not in ("integer", "decimal", "mixed-integer"):
+        return
+    low, high = INTEGER_RANGE
+    for i, v in enumerate(col.to_numpy()):
+        if isinstance(v, (int, np.integer)) or (v is not None and hasattr(v, "as_integer_ratio") and not isinstance(v, float)):
+            if not low <= int(v) <= high:
+                raise InputError(f"{source}: column {name!r} row {_row(rows, i)} is {int(v)}, outside the int64 range "
+                                 "the bids data contract allows for integers")
+
+
 def _bidder_labels(ids: pd.Series) -> tuple[np.ndarray, int]:
     """Integer labels of bidder ids (equal label = same bidder) and an upper bound on them.
 
-    Non-negative integer ids below 2**31 are their own labels (no copy, no hashing); anything else
-    is factorized.
+    Non-negative integer ids below 2**31 are their own labels, and so are a categorical's codes
+    (no copy, no hashing); anything else is factorized.
     """
+    if isinstance(ids.dtype, pd.CategoricalDtype):  # text ids as the reader returns them: codes are labels
+        return ids.cat.codes.to_numpy(), max(len(ids.cat.categories), 1)
     if _is_plain_integer(ids) and len(ids):
         values = ids.to_numpy()
         lo, hi = int(values.min()), int(values.max())
@@ -228,6 +257,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         raise InputError(f"{source}: column {missing[0]!r} is missing (required: {', '.join(BID_COLUMNS)})")
 
     col = bids["bid"]
+    if _holds_decimals(col):  # how pandas holds Parquet decimals (money as warehouses export it)
+        col = pd.Series(col.to_numpy(dtype=float, na_value=np.nan), index=col.index)
     if pd.api.types.is_bool_dtype(col) or not pd.api.types.is_numeric_dtype(col):
         coerced = pd.to_numeric(col, errors="coerce")
         bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
@@ -240,8 +271,9 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     else:
         bid = col.to_numpy(dtype=float, na_value=np.nan)
     low, high = bid.min(), bid.max()  # NaN propagates into both
-    if not (low >= 0 and high < np.inf):  # False for NaN too; the loop names the first fault
-        for test, what in ((np.isnan, "NaN or null"), (np.isinf, "infinite"), (lambda a: a < 0, "negative")):
+    floor = _BID.lower_bound
+    if not (low >= floor and high < np.inf):  # False for NaN too; the loop names the first fault
+        for test, what in ((np.isnan, "NaN or null"), (np.isinf, "infinite"), (lambda a: a < floor, "negative")):
             bad = np.flatnonzero(test(bid))
             if bad.size:
                 raise InputError(f"{source}: column 'bid' row {_row(rows, int(bad[0]))} is {what} ({bid[bad[0]]!r})")
@@ -249,9 +281,12 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     for name in ("auction_id", "bidder_id", "arm"):
         if _is_plain_integer(bids[name]):
             continue
-        nulls = np.flatnonzero(bids[name].isna().to_numpy())
-        if nulls.size:
-            raise InputError(f"{source}: column {name!r} row {_row(rows, int(nulls[0]))} is null")
+        if not BID_CONTRACT[name].nullable:
+            nulls = np.flatnonzero(bids[name].isna().to_numpy())
+            if nulls.size:
+                raise InputError(f"{source}: column {name!r} row {_row(rows, int(nulls[0]))} is null")
+        if BID_CONTRACT[name].accepts_integer and bids[name].dtype == object:
+            _refuse_beyond_int64(bids[name], name, rows, source)
 
     arm_codes, arm_uniques = _as_text(bids["arm"])
     spec_index = {name: k for k, name in enumerate(experiment.arm_names)}
@@ -325,6 +360,12 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     )
 
 
+#: The contract's rule for ``position`` (kind ``integer``, nullable: null = not shown). pandas holds
+#: an integer column with nulls as a float one, so whole floats are read as integers here; the
+#: reader refuses a Parquet ``position`` of a floating-point or decimal type before this point.
+_POSITION = BID_CONTRACT["position"]
+
+
 def _positions(pos_col: pd.Series, rows: np.ndarray | None, source: str) -> np.ndarray:
     """Positions as a small integer array, 0 where the bid was not shown (null); 1 = top."""
     if pos_col.isna().all():
@@ -335,7 +376,8 @@ def _positions(pos_col: pd.Series, rows: np.ndarray | None, source: str) -> np.n
         shown = None if _is_plain_integer(pos_col) else pos_col.notna().to_numpy()
         dtype = pos_col.dtype if _is_plain_integer(pos_col) else pos_col.dtype.numpy_dtype
         position = pos_col.to_numpy(dtype=dtype if np.dtype(dtype).itemsize <= 4 else np.int32, na_value=0)
-        bad = np.flatnonzero(position < 1) if shown is None else np.flatnonzero((position < 1) & shown)
+        first = _POSITION.lower_bound
+        bad = np.flatnonzero(position < first) if shown is None else np.flatnonzero((position < first) & shown)
         if bad.size:
             raise InputError(
                 f"{source}: column 'position' row {_row(rows, int(bad[0]))} is {float(position[bad[0]])!r}; "

@@ -20,23 +20,21 @@ from typing import Any
 
 import pandas as pd
 
+from counterbid.estimators.bid_contract import BID_CONTRACT
 from counterbid.estimators.checks import CheckResult, check_config
 from counterbid.estimators.spec import Experiment
 from counterbid.sql import render_sql
+
+from . import duckdb_types
 
 __all__ = ["CONTRACT_CHECKS", "COLUMN_TYPES", "build_suites", "run_contract"]
 
 log = logging.getLogger(__name__)
 
-_INTEGER = r"(?:TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT)"
-#: Required columns and the DuckDB types (regular expressions) the contract accepts for them.
+#: Required columns and the DuckDB types (regular expressions) the contract accepts for them: the
+#: contract's columns but its partition key (``ds``), translated by ``operators/duckdb_types.py``.
 COLUMN_TYPES: Mapping[str, str] = {
-    "experiment_id": r"^VARCHAR$",
-    "auction_id": rf"^(?:VARCHAR|{_INTEGER})$",
-    "bidder_id": rf"^(?:VARCHAR|{_INTEGER})$",
-    "arm": r"^VARCHAR$",
-    "bid": rf"^(?:DOUBLE|FLOAT|DECIMAL\(\d+,\s*\d+\)|{_INTEGER})$",
-    "position": rf"^{_INTEGER}$",
+    name: pattern for name, pattern in duckdb_types.COLUMN_TYPES.items() if not BID_CONTRACT[name].partition_key
 }
 
 #: Check names of the contract, in the order they are reported.

@@ -268,6 +268,16 @@ class ResultsHook(BaseHook):
             names = [d[0] for d in cur.description]
             return dict(zip(names, (int(v) for v in cur.fetchone())))
 
+    def staged_integer_range(self, path: str | Path, column: str) -> tuple[int, str | None]:
+        """Rows of a staged bids file whose integer ``column`` lies outside int64, and the smallest such value."""
+        from counterbid.estimators.bid_contract import INTEGER_RANGE
+
+        low, high = INTEGER_RANGE
+        with self.lake() as con:
+            params = {"path": str(path), "low": low, "high": high}
+            outside, example = con.execute(render_sql("staged_integer_range", column=column), params).fetchone()
+            return int(outside), example
+
     def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
         """Auctions and bids per arm of a staged bids file."""
         with self.lake() as con:

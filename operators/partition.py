@@ -25,13 +25,15 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from scipy.optimize import isotonic_regression
 
-from counterbid.cli.io import read_bids
+from counterbid.estimators.bid_contract import BID_CONTRACT
+from counterbid.readers.bid_log import read_bids
 from counterbid.estimators import (
     CheckResult, Experiment, estimate_arms, load_experiments, prepare_bids, worst_failure,
 )
 from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.errors import InputError
 
+from . import duckdb_types
 from .checks import run_checks, write_check_results
 from .hooks import ResultsHook
 
@@ -56,17 +58,9 @@ log = logging.getLogger(__name__)
 #: Experiments without a ``start`` pool every day of the lake up to the run's day.
 EARLIEST_DAY = dt.date(1970, 1, 1)
 _PATH_SAFE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
-#: Accepted DuckDB types of the bids data contract (README, "Bids data contract").
-_INTEGER = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT"}
-CONTRACT_TYPES: dict[str, set[str]] = {
-    "experiment_id": {"VARCHAR"},
-    "ds": {"DATE"},
-    "auction_id": {"VARCHAR"} | _INTEGER,
-    "bidder_id": {"VARCHAR"} | _INTEGER,
-    "arm": {"VARCHAR"},
-    "bid": {"DOUBLE", "FLOAT"},
-    "position": _INTEGER,
-}
+#: Accepted DuckDB types (regular expressions) of the bids data contract (README, "Bids data contract"),
+#: translated from ``counterbid.estimators.bid_contract`` by ``operators/duckdb_types.py``.
+CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
 
 
 def parse_day(value: object, *, what: str = "ds") -> dt.date:
@@ -192,17 +186,27 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
     results = []
     for name, allowed in CONTRACT_TYPES.items():
         found = columns.get(name)
-        ok = found is not None and found in allowed
+        ok = duckdb_types.accepts(name, found)
         results.append(CheckResult(
             check=f"schema_column_{name}", severity="error", passed=ok, observed=1.0 if ok else 0.0, threshold=1.0,
-            details={"expected": sorted(allowed), "found": found or "missing"}))
+            details={"kind": BID_CONTRACT[name].kind, "expected": allowed, "found": found or "missing"}))
     if not all(r.passed for r in results):
         return results  # counts below need the columns
+    for name, found in columns.items():  # 128-bit (and UBIGINT) integers: accepted when every value fits int64
+        if name in CONTRACT_TYPES and duckdb_types.needs_range_check(name, found):
+            outside, example = hook.staged_integer_range(path, name)
+            results.append(CheckResult(
+                check=f"schema_range_{name}", severity="error", passed=outside == 0, observed=float(outside),
+                threshold=0.0, details={"type": found, "allowed": "int64", "example": example}))
+    if not all(r.passed for r in results):
+        return results
     counts = hook.staged_arm_counts(path)
     total = int(counts["n_bids"].sum())
     results.append(CheckResult(check="schema_rows", severity="error", passed=total >= 1, observed=float(total),
                                threshold=1.0, details={"experiment_id": experiment.id}))
     for name, nulls in hook.staged_null_counts(path).items():
+        if BID_CONTRACT[name].nullable:
+            continue
         results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
                                    observed=float(nulls), threshold=0.0, details={"rows": total}))
     unknown = counts[~counts["arm"].isin(experiment.arm_names)]

@@ -5,7 +5,7 @@ select
     auction_id,
     bidder_id,
     arm,
-    bid,
+    cast(bid as double) as bid,  -- any numeric type of the contract (decimals too)
     position
 from {{ relation }}
 where experiment_id = $experiment_id

@@ -6,6 +6,8 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 (a) floor      DuckDB read of the bid column + one ``np.sort``
 (a2) input     DuckDB read of the five columns the estimator reads + one ``np.sort`` of the bids
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
+(b2) cli_text  the same on a copy of the log whose auction and bidder ids are distinct strings
+               (``qa-<auction>`` and ``qb-<bidder>-<auction mod 1024>``: 2M auctions, 4.4M bidders at 10M)
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
 (c) sql_realized  the realized per-arm average as a DuckDB GROUP BY (``sql/bench_realized_per_arm.sql``)
 (d) pandas     the plain-pandas peer (``plain_pandas_peer.py``)
@@ -101,7 +103,7 @@ def child(kind: str, path: str, spec: str) -> dict:
         out["work"] = time.perf_counter() - t0
         return out
     if kind in ("estimate", "pandas"):
-        from counterbid.cli.io import read_bids
+        from counterbid.readers.bid_log import read_bids
         from counterbid.estimators import BID_COLUMNS, estimate_arms, load_experiment, prepare_bids
 
         exp = load_experiment(spec)
@@ -170,6 +172,25 @@ def _simulate(target: Path, spec_path: str) -> dict:
     return {"work": time.perf_counter() - t0, "n": len(frame)}
 
 
+def text_ids(source: Path) -> Path:
+    """A copy of ``source`` with its auction and bidder ids as distinct strings (many distinct values)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    target = source.with_name(source.stem + "_text.parquet")
+    if not target.exists():
+        table = pq.read_table(source)
+        auction, bidder = table.column("auction_id"), table.column("bidder_id")
+        text = {"auction_id": pc.binary_join_element_wise("qa-", pc.cast(auction, pa.string()), ""),
+                "bidder_id": pc.binary_join_element_wise("qb-", pc.cast(bidder, pa.string()), "-",
+                                                         pc.cast(pc.bit_wise_and(auction, 1023), pa.string()), "")}
+        for name, column in text.items():
+            table = table.set_column(table.schema.get_field_index(name), name, column)
+        pq.write_table(table, target)
+    return target
+
+
 def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
     """One ``counterbid backfill`` day (dag.test) on the 1M-bid file as the day's partition."""
     lake = folder / "lake" / "ds=2026-03-02"
@@ -199,7 +220,8 @@ def repeated(argv: list[str], times: int) -> dict:
 
 
 LABELS = {"floor": "(a) floor: DuckDB read bid + np.sort", "input": "(a2) DuckDB read of the 5 columns used + np.sort",
-          "cli": "(b) counterbid estimate (CLI process)", "estimate": "(b') read_bids + estimate_arms",
+          "cli": "(b) counterbid estimate (CLI process)", "cli_text": "(b2) counterbid estimate, string ids",
+          "estimate": "(b') read_bids + estimate_arms",
           "sql_realized": "(c) realized per-arm average (DuckDB)", "pandas": "(d) plain-pandas peer"}
 
 
@@ -209,7 +231,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--repeat", type=int, default=3, help="runs per row; medians are reported (default 3)")
     p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
     p.add_argument("--out", help="also write the markdown table here")
-    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,estimate,sql_realized,pandas,dag)")
+    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,cli_text,estimate,sql_realized,pandas,dag)")
     p.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "SPEC"), help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
@@ -240,15 +262,16 @@ def main(argv: list[str] | None = None) -> int:
         first_file = first_file or path
         column_mib = millions * 1e6 * 8 / 2**20
         rows = {}
-        for kind in ("floor", "input", "cli", "estimate", "sql_realized", "pandas"):
+        for kind in ("floor", "input", "cli", "cli_text", "estimate", "sql_realized", "pandas"):
             if kind in skip:
                 continue
-            if kind == "cli":
-                argv = [exe, "estimate", "--bids", str(path), "--experiment", str(spec_path), "--format", "json"]
+            if kind in ("cli", "cli_text"):
+                bids = text_ids(path) if kind == "cli_text" else path
+                argv = [exe, "estimate", "--bids", str(bids), "--experiment", str(spec_path), "--format", "json"]
             else:
                 argv = [*me, "--child", kind, str(path), str(spec_path)]
             r = repeated(argv, 1 if kind == "pandas" else args.repeat)
-            if kind == "cli":
+            if kind in ("cli", "cli_text"):
                 r["work"] = float("nan")
             rows[kind] = r
             print(f"{millions}M {kind}: wall {r['wall']:.2f}s {r['walls']} work {r.get('work', float('nan')):.2f}s "

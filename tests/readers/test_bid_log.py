@@ -10,7 +10,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from counterbid.cli import io
+from counterbid.readers import bid_log as io
 from counterbid.estimators import InputError
 
 
