@@ -150,3 +150,20 @@ def test_real_process_no_traceback(files):
                           capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2 and proc.stdout == ""
     assert proc.stderr.strip() == f"counterbid: error: {path}: column 'arm' is missing (required: auction_id, bidder_id, arm, bid, position)"
+
+
+@pytest.mark.parametrize("typo,where,key", [
+    ("{name: single, share: 0.1, position_weights: [0.4], postion_weights: [0.5, 0.1]}",
+     "experiments[0] (id 'cli-exp') arms[2] (single)", "unknown key 'postion_weights'"),
+    ("{name: single, share: 0.1, position_weights: [0.4]}\n    checks: {drift: {trailing_day: 3}}",
+     "experiments[0] (id 'cli-exp') checks.drift", "unknown setting 'trailing_day'"),
+    ("{name: single, share: 0.1, position_weights: [0.4]}\nexperimentz: []", "top level", "unknown key 'experimentz'"),
+])
+def test_spec_typo_one_line_exit_2(files, capsys, typo, where, key):
+    """A misspelt key is an error naming file, experiment and arm, not a silently ignored setting."""
+    spec, path, _ = files
+    spec.write_text(SPEC.replace("{name: single, share: 0.1, position_weights: [0.4]}", typo))
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"counterbid: error: {spec}: {where}: {key} (known: "), lines
