@@ -167,3 +167,21 @@ def test_spec_typo_one_line_exit_2(files, capsys, typo, where, key):
     assert code == 2 and out == ""
     lines = err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"counterbid: error: {spec}: {where}: {key} (known: "), lines
+
+
+@pytest.mark.parametrize("level,cluster,shown", [("0.975", "bidder", "97.5 %"), ("0.95", "auction", "95 %"),
+                                                  ("0.999", "auction", "99.9 %")])
+def test_table_says_the_level_and_clustering_used(files, capsys, level, cluster, shown):
+    spec, path, _ = files
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--level", level,
+                          "--cluster", cluster], capsys)
+    assert code == 0, err
+    head, columns, *rows = out.splitlines()
+    assert head.endswith(f"bids, {shown} intervals clustered by {cluster} (they speak for "
+                         + {"bidder": "a new draw of bidders as well as of auctions)",
+                            "auction": "these same bidders in new auctions)"}[cluster]), head
+    assert columns.split()[:7] == ["arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "cluster"]
+    table = [r.split() for r in rows if r.split() and r.split()[0] in ("control", "wide", "single", "_mixture")]
+    assert len(table) == 13  # 3 arms x 3 metrics + 2 lifts + 2 mixture rows
+    for r in table:  # the realized per-arm average is clustered by auction whatever the option says
+        assert r[6] == ("auction" if r[1] == "realized_revenue_per_auction" else cluster), r
