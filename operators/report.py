@@ -270,7 +270,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         first, last = (pd.Timestamp(cum["first_ds"].min()).date(), pd.Timestamp(cum["ds"].max()).date()) if len(cum) else ("", "")
         n_auc = int(cum.loc[cum["metric"] == "revenue_per_auction", "n_auctions"].max()) if len(cum) else 0
         cum_model = cum[cum["metric"] != "realized_revenue_per_auction"]
-        speaks_for = "; ".join(f"clustered by {cl}, {POPULATION[cl]}" for cl in dict.fromkeys(cum_model["cluster"]))
+        used = list(dict.fromkeys(cum_model["cluster"]))
+        speaks_for = POPULATION[used[0]] if len(used) == 1 else "; ".join(f"by {cl}, {POPULATION[cl]}" for cl in used)
         sections.append(f"""
 <section>
 <h2>{html.escape(exp_id)}</h2>
