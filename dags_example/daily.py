@@ -86,7 +86,7 @@ def counterbid_daily():
             "results_database": "{{ params.results_database }}",
         }
         load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
-        # Warnings pass with status 'warning' and still alert; errors fail the task (and alert).
+        # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
         estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}",
                                         confidence_level="{{ params.confidence_level }}", cluster="{{ params.cluster }}",
