@@ -62,7 +62,7 @@ def run(args: argparse.Namespace) -> int:
         payload = {
             "experiment_id": experiment.id,
             "confidence_level": args.level,
-            "cluster": args.cluster,
+            "cluster": result.attrs["cluster"],  # the clustering used
             "n_excluded_auctions": excluded,
             "method_version": result.attrs["method_version"],
             "rows": json.loads(result.to_json(orient="records")),
@@ -71,9 +71,15 @@ def run(args: argparse.Namespace) -> int:
     elif args.output_format == "csv":
         sys.stdout.write(result.to_csv(index=False))
     else:
+        from counterbid.estimators.intervals import POPULATION, format_level, row_clusters
+
+        cluster = result.attrs["cluster"]  # the clustering the run used (not the option's spelling)
         print(f"experiment {experiment.id}: {result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids, "
-              f"{int(args.level * 100)}% intervals clustered by {args.cluster}")
-        print(result.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
+              f"{format_level(result.attrs['confidence_level'])} intervals clustered by {cluster} "
+              f"(they speak for {POPULATION[cluster]})")
+        shown = result.copy()
+        shown.insert(shown.columns.get_loc("ci_high") + 1, "cluster", row_clusters(result))
+        print(shown.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
         print("Assumes symmetric bidders in equilibrium against the designed shares and known position weights;"
               " realized_revenue_per_auction is the realized per-arm average (biased), shown for comparison.")
     return 0

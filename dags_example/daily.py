@@ -9,8 +9,11 @@ Configuration (environment, read when the DAG is parsed; each is also a run para
 ``COUNTERBID_LAKE`` bid lake root, ``COUNTERBID_SPEC`` experiment spec, ``COUNTERBID_RESULTS``
 results DuckDB file (empty: the ``counterbid_results`` connection), ``COUNTERBID_STAGING``
 staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weights),
-``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries, ``COUNTERBID_CATCHUP``
-(``false`` leaves past days to ``airflow backfill create``).
+``COUNTERBID_LEVEL`` confidence level of the intervals (default 0.95), ``COUNTERBID_CLUSTER``
+clustering of the standard errors (``auction``, ``bidder`` or, where the estimator offers it,
+``auto``; the default), ``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries,
+``COUNTERBID_CATCHUP`` (``false`` leaves past days to ``airflow backfill create``). The level and
+clustering each stored row used are written beside it.
 """
 
 from __future__ import annotations
@@ -24,6 +27,8 @@ from airflow.sdk import dag, task, task_group
 from counterbid.operators.notify import CheckAlertNotifier
 from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
+    DEFAULT_CLUSTER,
+    DEFAULT_CONFIDENCE_LEVEL,
     EstimateArmsOperator,
     LoadPartitionOperator,
     ValidatePartitionOperator,
@@ -61,6 +66,8 @@ ALERTS = CheckAlertNotifier(
         "results_database": os.environ.get("COUNTERBID_RESULTS", ""),
         "staging_root": os.environ.get("COUNTERBID_STAGING", "/tmp/counterbid-staging"),
         "clicks_root": os.environ.get("COUNTERBID_CLICKS", ""),
+        "confidence_level": os.environ.get("COUNTERBID_LEVEL", str(DEFAULT_CONFIDENCE_LEVEL)),
+        "cluster": os.environ.get("COUNTERBID_CLUSTER", DEFAULT_CLUSTER),
     },
     tags=["counterbid"],
     doc_md=__doc__,
@@ -79,9 +86,11 @@ def counterbid_daily():
             "results_database": "{{ params.results_database }}",
         }
         load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
-        # Warnings pass with status 'warning' and still alert; errors fail the task (and alert).
+        # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
-        estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}", **paths)
+        estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}",
+                                        confidence_level="{{ params.confidence_level }}", cluster="{{ params.cluster }}",
+                                        **paths)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
 

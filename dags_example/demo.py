@@ -41,9 +41,10 @@ def make_report(out: Path) -> None:
 
     hook = ResultsHook(database=out / "results.duckdb")
     table = cumulative_table(hook)
-    print("\nExperiment to date (all days pooled and re-estimated; 95% intervals):\n")
+    # each experiment's line of the table states the level and clustering its intervals used
+    print("\nExperiment to date (all days pooled and re-estimated):\n")
     print(format_cumulative(table))
-    print("\nDays flagged by the data checks (estimates of those days carry status 'warning'):")
+    print("\nDays flagged by the data checks (estimates of those days carry the status flag 'warning'):")
     for exp_id in sorted(set(table["experiment_id"])):
         days = hook.fetch_df("report_day_check_status", {"experiment_id": exp_id})
         flagged = days[days["worst_status"] != "passed"]

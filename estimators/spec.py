@@ -15,7 +15,9 @@ A spec file (YAML) holds one or more experiments::
         checks: {}                 # optional: thresholds for the data checks
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
-from the click log before estimating.
+from the click log before estimating. A key the spec does not know, at any level (the top, an
+experiment, an arm, the ``checks`` block and its settings), is refused with a message naming
+the key, the file, the experiment id and the arm.
 """
 
 from __future__ import annotations
@@ -48,6 +50,17 @@ PAYMENT_RULES = ("first_price",)
 SHARE_TOLERANCE = 1e-6
 #: Arm names starting with an underscore are reserved for derived rows (``_mixture``).
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
+#: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
+DOCUMENT_KEYS = frozenset({"experiments", "description"})
+EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description"})
+ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
+
+
+def _refuse_unknown(raw: Mapping, known: frozenset, where: str) -> None:
+    """Raise naming the first unknown key of ``raw`` (sorted) and where it sits."""
+    extra = sorted((str(k) for k in raw if k not in known))
+    if extra:
+        raise InputError(f"{where}: unknown key {extra[0]!r} (known: {', '.join(sorted(known))})")
 
 
 @dataclass(frozen=True)
@@ -173,12 +186,10 @@ def _date(raw: Any, where: str) -> _dt.date | None:
 def _experiment(raw: Any, where: str) -> Experiment:
     if not isinstance(raw, Mapping):
         raise InputError(f"{where}: must be a mapping with keys id, control_arm, arms")
-    known = {"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description"}
-    extra = sorted(set(raw) - known)
-    if extra:
-        raise InputError(f"{where}: unknown key {extra[0]!r} (known: {', '.join(sorted(known))})")
     exp_id = raw.get("id")
-    if not isinstance(exp_id, (str, int)) or isinstance(exp_id, bool) or str(exp_id) == "":
+    valid_id = isinstance(exp_id, (str, int)) and not isinstance(exp_id, bool) and str(exp_id) != ""
+    _refuse_unknown(raw, EXPERIMENT_KEYS, f"{where} (id {str(exp_id)!r})" if valid_id else where)
+    if not valid_id:
         raise InputError(f"{where}: 'id' must be a non-empty string")
     exp_id = str(exp_id)
     where = f"{where} (id {exp_id!r})"
@@ -194,6 +205,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
         if not isinstance(a, Mapping):
             raise InputError(f"{aw}: must be a mapping with keys name, share, position_weights")
         name = a.get("name")
+        _refuse_unknown(a, ARM_KEYS, f"{aw} ({name})" if isinstance(name, str) else aw)
         if not isinstance(name, str) or not _NAME.match(name):
             raise InputError(
                 f"{aw}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
@@ -225,6 +237,9 @@ def _experiment(raw: Any, where: str) -> Experiment:
     checks = raw.get("checks") or {}
     if not isinstance(checks, Mapping):
         raise InputError(f"{where}: 'checks' must be a mapping")
+    from .checks import check_config  # checks.py imports this module
+
+    check_config(checks, source=f"{where} checks")  # unknown check or setting, or a bad value: refused now
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -253,6 +268,7 @@ def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Exper
     """
     if not isinstance(document, Mapping) or "experiments" not in document:
         raise InputError(f"{source}: top-level key 'experiments' is missing")
+    _refuse_unknown(document, DOCUMENT_KEYS, f"{source}: top level")
     items = document["experiments"]
     if not isinstance(items, Sequence) or isinstance(items, (str, bytes)) or not items:
         raise InputError(f"{source}: 'experiments' must be a non-empty list")

@@ -151,7 +151,17 @@ class ResultsHook(BaseHook):
         """Create the results schema, tables and views if missing (idempotent)."""
         with self.connect() as con:
             for name in RESULTS_DDL:
+                if name.startswith("results_create_view"):  # tables first: refuse a file of an older version
+                    self._refuse_missing_columns(con)
                 con.execute(self.sql(name))
+
+    def _refuse_missing_columns(self, con: duckdb.DuckDBPyConnection) -> None:
+        missing = con.execute(self.sql("results_missing_columns"), {"schema": self.schema}).fetchall()
+        if missing:
+            table = missing[0][0]
+            raise InputError(
+                f"{self.database}: table {table} lacks column(s) {', '.join(c for t, c in missing if t == table)} "
+                "(written by an older counterbid); move the file aside and rerun the days to rebuild it")
 
     def fetch_df(self, name: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
         """Run a read-only statement against the results file and return a DataFrame."""

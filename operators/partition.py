@@ -36,6 +36,7 @@ from counterbid.estimators.errors import InputError
 from . import duckdb_types
 from .checks import run_checks, write_check_results
 from .hooks import ResultsHook
+from .stored_rows import with_stored_columns
 
 __all__ = [
     "EARLIEST_DAY",
@@ -357,7 +358,7 @@ def estimate_partition(
         table.insert(1, "ds", ds)
         if span == "to_date":
             table.insert(2, "first_ds", first_ds)
-        table["status"] = status
+        with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
         table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
         table["run_id"] = run_id
         table["computed_at"] = computed_at

@@ -24,6 +24,8 @@ from . import notify, partition
 from .hooks import DEFAULT_CONN_ID, ResultsHook
 
 __all__ = [
+    "DEFAULT_CLUSTER",
+    "DEFAULT_CONFIDENCE_LEVEL",
     "EstimateArmsOperator",
     "LoadPartitionOperator",
     "RESULTS_ASSET",
@@ -39,6 +41,13 @@ log = logging.getLogger(__name__)
 RESULTS_ASSET = Asset(name="counterbid_arm_estimates", uri="counterbid://results/arm_estimates")
 #: Airflow pool (one slot) that serializes writers of the results database file.
 WRITER_POOL = "counterbid_results_writer"
+#: Confidence level of the pipeline's intervals unless the run says otherwise.
+DEFAULT_CONFIDENCE_LEVEL = 0.95
+#: Clustering of the pipeline's standard errors unless the run says otherwise: ``'auto'`` (by
+#: bidder when bidder ids repeat across auctions, else by auction) where the estimator offers it.
+#: Older estimators reject ``'auto'``, so the default falls back to ``'auction'`` there rather
+#: than break every run; the stored rows say which clustering was used either way.
+DEFAULT_CLUSTER = "auto" if "auto" in CLUSTERS else "auction"
 
 
 def _templated(value: object) -> bool:
@@ -153,41 +162,66 @@ class EstimateArmsOperator(_PartitionOperator):
         Root of the click log, needed when an arm's position weights are ``measured``. Templated.
     click_window_days : int
         Trailing days of clicks pooled for measured weights (default 7).
-    confidence_level : float
-    cluster : {'auction', 'bidder'}
+    confidence_level : float or str
+        Level of the intervals, in (0, 1). Templated (e.g. ``"{{ params.confidence_level }}"``);
+        a rendered string is read as a number when the task runs.
+    cluster : str
+        One of ``counterbid.estimators.arms.CLUSTERS``; default :data:`DEFAULT_CLUSTER`. Templated.
     """
 
-    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "clicks_root")
+    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "clicks_root", "confidence_level", "cluster")
 
     def __init__(
         self,
         *,
         clicks_root: str | None = None,
         click_window_days: int = 7,
-        confidence_level: float = 0.95,
-        cluster: str = "auction",
+        confidence_level: float | str = DEFAULT_CONFIDENCE_LEVEL,
+        cluster: str = DEFAULT_CLUSTER,
         **kwargs: Any,
     ) -> None:
         super().__init__(**kwargs)
         if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
             raise InputError(f"{self.task_id}: `click_window_days` must be an integer >= 1; got {click_window_days!r}")
-        if not (isinstance(confidence_level, float) and 0 < confidence_level < 1):
-            raise InputError(f"{self.task_id}: `confidence_level` must be in (0, 1); got {confidence_level!r}")
-        if cluster not in CLUSTERS:
-            raise InputError(f"{self.task_id}: `cluster` must be one of {', '.join(CLUSTERS)}; got {cluster!r}")
+        # Templated values are checked when rendered (execute); literal ones fail the DAG's parse.
+        if not _templated(confidence_level):
+            _level(confidence_level, self.task_id)
+        if not _templated(cluster):
+            _cluster(cluster, self.task_id)
         self.clicks_root = clicks_root
         self.click_window_days = click_window_days
         self.confidence_level = confidence_level
         self.cluster = cluster
 
     def execute(self, context) -> dict:
+        try:
+            level, cluster = _level(self.confidence_level, self.task_id), _cluster(self.cluster, self.task_id)
+        except InputError as exc:  # the same parameters fail the same way: no retry
+            raise AirflowFailException(str(exc)) from None
         out = partition.estimate_partition(
             self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
             run_id=str(context["run_id"]), clicks_root=self.clicks_root or None,
-            click_window_days=self.click_window_days, confidence_level=self.confidence_level, cluster=self.cluster)
+            click_window_days=self.click_window_days, confidence_level=level, cluster=cluster)
         log.info("estimated %s on %s (status %s): day revenue per auction %s", self.experiment_id, self.ds,
                  out["status"], out["day_revenue_per_auction"])
         return out
+
+
+def _level(value: object, task_id: str) -> float:
+    """A confidence level from a number or a rendered template string; must lie in (0, 1)."""
+    try:
+        level = float(value) if isinstance(value, (int, float, str)) and not isinstance(value, bool) else None
+    except ValueError:
+        level = None
+    if level is None or not 0 < level < 1:
+        raise InputError(f"{task_id}: `confidence_level` must be a number in (0, 1); got {value!r}")
+    return level
+
+
+def _cluster(value: object, task_id: str) -> str:
+    if value not in CLUSTERS:
+        raise InputError(f"{task_id}: `cluster` must be one of {', '.join(CLUSTERS)}; got {value!r}")
+    return str(value)
 
 
 class WriteEstimatesOperator(_PartitionOperator):

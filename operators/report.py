@@ -20,10 +20,14 @@ import matplotlib.pyplot as plt  # noqa: E402
 import pandas as pd  # noqa: E402
 
 from counterbid.estimators import MIXTURE_ARM  # noqa: E402
+from counterbid.estimators.intervals import POPULATION, format_level  # noqa: E402
 
 from .hooks import ResultsHook  # noqa: E402
 
-__all__ = ["ASSUMPTIONS", "MIXTURE_GAP_SE", "cumulative_table", "format_cumulative", "write_report"]
+__all__ = [
+    "ASSUMPTIONS", "MIXTURE_GAP_SE", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "write_report",
+]
 
 #: What every number in the report rests on.
 ASSUMPTIONS = (
@@ -55,16 +59,54 @@ def _interval(est, lo, hi, *, pct=False) -> str:
     return f"{est:.4f} [{lo:.4f}, {hi:.4f}]"
 
 
+def _how(rows: pd.DataFrame) -> list[tuple[float, str]]:
+    """Distinct (confidence level, clustering) pairs of some stored rows, in first-seen order."""
+    return list(dict.fromkeys(zip(rows["confidence_level"].astype(float), rows["cluster"].astype(str))))
+
+
+def interval_caption(rows: pd.DataFrame) -> str:
+    """How the intervals of ``rows`` were computed, from the rows themselves.
+
+    ``'97.5 %, clustered by bidder'`` when every row agrees, else each pair with its number of
+    days, e.g. ``'95 %, clustered by auction (3 days); 97.5 %, clustered by bidder (2 days)'``.
+    """
+    pairs = _how(rows)
+    if not pairs:
+        return "no intervals"
+    if len(pairs) == 1:
+        level, cluster = pairs[0]
+        return f"{format_level(level)}, clustered by {cluster}"
+    days = rows.groupby([rows["confidence_level"].astype(float), rows["cluster"].astype(str)])["ds"].nunique()
+    return "; ".join(f"{format_level(lv)}, clustered by {cl} ({days[(lv, cl)]} days)" for lv, cl in pairs)
+
+
 def _wide(rows: pd.DataFrame) -> pd.DataFrame:
-    """One row per arm, one column per metric, values ``estimate [ci_low, ci_high]``."""
+    """One row per arm, one column per metric, values ``estimate [ci_low, ci_high]``.
+
+    Each column's header says the level and clustering of its intervals (read from the rows).
+    """
     out = {}
+    headers = {}
+    for metric, m_rows in rows.groupby("metric", sort=False):
+        how = "; ".join(f"{format_level(lv)}, by {cl}" for lv, cl in _how(m_rows))
+        headers[_LABELS.get(metric, metric)] = f"{_LABELS.get(metric, metric)} ({how})"
     for (arm, metric), r in rows.set_index(["arm", "metric"]).iterrows():
         pct = metric == "revenue_lift_vs_control"
         out.setdefault(arm, {})[_LABELS.get(metric, metric)] = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
     frame = pd.DataFrame.from_dict(out, orient="index")
     cols = [c for c in _LABELS.values() if c in frame.columns]
     arms = [a for a in frame.index if a != MIXTURE_ARM] + ([MIXTURE_ARM] if MIXTURE_ARM in frame.index else [])
-    return frame.loc[arms, cols].fillna("")
+    return frame.loc[arms, cols].fillna("").rename(columns=headers)
+
+
+def _flags(statuses) -> set[str]:
+    """Flags of stored statuses (``'ok'`` or comma-joined flags), without ``ok``."""
+    return {f for s in statuses for f in str(s).split(",") if f and f != "ok"}
+
+
+def day_status(statuses) -> str:
+    """One day's (or table's) status: ``'ok'`` or the sorted flags any of its rows carries."""
+    return ", ".join(sorted(_flags(statuses))) or "ok"
 
 
 def format_cumulative(table: pd.DataFrame) -> str:
@@ -73,8 +115,8 @@ def format_cumulative(table: pd.DataFrame) -> str:
     for exp_id, rows in table.groupby("experiment_id", sort=True):
         first, last = rows["first_ds"].min(), rows["ds"].max()
         n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
-        status = ", ".join(sorted(set(rows["status"])))
-        head = f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, status {status}"
+        head = (f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, "
+                f"status {day_status(rows['status'])}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
         blocks.append(head + "\n" + _wide(rows).to_string())
     return "\n\n".join(blocks)
 
@@ -99,7 +141,8 @@ def _colours(daily: pd.DataFrame) -> dict[str, str]:
     return {a: f"C{k}" for k, a in enumerate(arms)}
 
 
-def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
+def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> str:
+    """Plot revenue per auction by day to ``target``; return the title (it names the intervals)."""
     fig, ax = plt.subplots(figsize=(9, 4.2))
     rev = daily[(daily["metric"] == "revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
     naive = daily[(daily["metric"] == "realized_revenue_per_auction") & (daily["arm"] != MIXTURE_ARM)]
@@ -112,7 +155,8 @@ def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
         raw = naive[naive["arm"] == arm]
         ax.plot(pd.to_datetime(raw["ds"]), raw["estimate"], color=colour, lw=1.3, ls="--",
                 label=f"{arm}: realized per-arm average")
-    ax.set_title(f"{exp_id}: revenue per auction by day (bands: 95% intervals)")
+    title = f"{exp_id}: revenue per auction by day\n(bands: {interval_caption(rev)} intervals)"
+    ax.set_title(title, fontsize=10)
     ax.set_ylabel("revenue per auction")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
     ax.grid(alpha=0.3)
@@ -120,9 +164,11 @@ def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> None:
     fig.tight_layout()
     fig.savefig(target, dpi=110)
     plt.close(fig)
+    return title
 
 
-def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: Path) -> None:
+def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: Path) -> str:
+    """Plot the lift by day and to date to ``target``; return the title (it names the intervals)."""
     fig, ax = plt.subplots(figsize=(9, 3.6))
     day = daily[daily["metric"] == "revenue_lift_vs_control"]
     cum = to_date[to_date["metric"] == "revenue_lift_vs_control"]
@@ -139,12 +185,14 @@ def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: 
     ax.axhline(0.0, color="0.3", lw=0.8)
     ax.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
-    ax.set_title(f"{exp_id}: revenue lift over control (95% intervals)")
+    title = f"{exp_id}: revenue lift over control\n(that day: {interval_caption(day)}; to date: {interval_caption(cum)})"
+    ax.set_title(title, fontsize=10)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7.5, ncol=2, loc="best")
     fig.tight_layout()
     fig.savefig(target, dpi=110)
     plt.close(fig)
+    return title
 
 
 def _table_html(frame: pd.DataFrame, *, index=True) -> str:
@@ -183,7 +231,9 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         cum = cumulative[cumulative["experiment_id"] == exp_id]
         days = _mixture_days(daily)
         per_day = pd.DataFrame(index=days.index)
-        per_day["estimate status"] = daily.groupby("ds")["status"].agg(lambda s: "warning" if (s == "warning").any() else "ok")
+        per_day["estimate status"] = daily.groupby("ds")["status"].agg(day_status)
+        model_rows = daily[daily["metric"] != "realized_revenue_per_auction"]
+        per_day["intervals"] = pd.Series({d: interval_caption(g) for d, g in model_rows.groupby("ds")})
         if has_checks:
             checks = hook.fetch_df("report_day_check_status", {"experiment_id": exp_id}).set_index("ds")
             per_day["data checks"] = [
@@ -202,9 +252,13 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
                 "estimated revenue disagrees with its realized revenue by more than 3 standard errors: bidders had "
                 "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date pool "
                 "that includes them) violate the equilibrium assumption.")
-        warn_days = [d for d, s in per_day["estimate status"].items() if s == "warning"]
+        warn_days = [d for d, s in per_day["estimate status"].items() if "warning" in s.split(", ")]
         if warn_days:
-            notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry status 'warning'.")
+            notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry the flag 'warning'.")
+        flagged_rows = {f for f in _flags(daily["status"]) if f != "warning"}
+        if flagged_rows:
+            notes.append(f"The estimator flagged rows ({', '.join(sorted(flagged_rows))}); the estimate status column "
+                         "lists the flags of each day's rows.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.startswith("error").any():
             notes.append("Days whose data checks failed with an error have no estimates.")
         weights_note = ""
@@ -215,10 +269,15 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
                 f"{html.escape(a)} [{html.escape(wl[a])}] ({html.escape(src[a])})" for a in wl.index) + "</p>"
         first, last = (pd.Timestamp(cum["first_ds"].min()).date(), pd.Timestamp(cum["ds"].max()).date()) if len(cum) else ("", "")
         n_auc = int(cum.loc[cum["metric"] == "revenue_per_auction", "n_auctions"].max()) if len(cum) else 0
+        cum_model = cum[cum["metric"] != "realized_revenue_per_auction"]
+        used = list(dict.fromkeys(cum_model["cluster"]))
+        speaks_for = POPULATION[used[0]] if len(used) == 1 else "; ".join(f"by {cl}, {POPULATION[cl]}" for cl in used)
         sections.append(f"""
 <section>
 <h2>{html.escape(exp_id)}</h2>
-<p>Experiment to date, {first} to {last}: {n_auc:,} auctions pooled and estimated together.</p>
+<p>Experiment to date, {first} to {last}: {n_auc:,} auctions pooled and estimated together.
+Intervals: {html.escape(interval_caption(cum_model)) if len(cum) else "none"}{html.escape(f" (they speak for {speaks_for})") if speaks_for else ""};
+the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
 {weights_note}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
@@ -247,7 +306,9 @@ img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
 <div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
 Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had
 adapted to it". The realized per-arm average is each arm's revenue over its own auctions: it is biased because
-bidders bid against the mixture, and is shown only for comparison. Intervals are 95%, clustered by auction.</div>
+bidders bid against the mixture, and is shown only for comparison. Every interval's level and clustering are printed
+beside it: clustered by bidder, an interval speaks for {POPULATION["bidder"]}; clustered by auction, for
+{POPULATION["auction"]}. The realized per-arm average's intervals are always clustered by auction.</div>
 {"".join(sections)}
 </body></html>
 """

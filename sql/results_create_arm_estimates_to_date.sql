@@ -12,7 +12,11 @@ create table if not exists {{ schema }}.arm_estimates_to_date (
     ci_high double,
     n_auctions bigint not null,
     n_bids bigint not null,
-    status varchar not null check (status in ('ok', 'warning')),
+    -- 'ok', or sorted comma-joined flags: 'warning' (a data check warned) and the estimator's own
+    status varchar not null check (regexp_full_match(status, '[a-z][a-z_]*(,[a-z][a-z_]*)*')),
+    -- the interval's confidence level and the unit its standard errors were clustered on
+    confidence_level double not null check (confidence_level > 0 and confidence_level < 1),
+    cluster varchar not null check (cluster in ('auction', 'bidder')),
     method_version varchar not null,
     run_id varchar not null,
     computed_at timestamptz not null,

@@ -2,12 +2,12 @@
 -- experiment-to-date ('to_date'), beside the arm's own revenue per auction.
 create or replace view {{ schema }}.arm_lift as
 with daily as (
-    select 'day' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, status
+    select 'day' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status
     from {{ schema }}.arm_estimates
 ),
 
 to_date as (
-    select 'to_date' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, status
+    select 'to_date' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status
     from {{ schema }}.arm_estimates_to_date
 ),
 
@@ -36,6 +36,8 @@ select
     lift.std_error,
     lift.ci_low,
     lift.ci_high,
+    lift.confidence_level,
+    lift.cluster,
     revenue.revenue_per_auction,
     lift.status
 from lift

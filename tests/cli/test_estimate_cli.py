@@ -150,3 +150,38 @@ def test_real_process_no_traceback(files):
                           capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2 and proc.stdout == ""
     assert proc.stderr.strip() == f"counterbid: error: {path}: column 'arm' is missing (required: auction_id, bidder_id, arm, bid, position)"
+
+
+@pytest.mark.parametrize("typo,where,key", [
+    ("{name: single, share: 0.1, position_weights: [0.4], postion_weights: [0.5, 0.1]}",
+     "experiments[0] (id 'cli-exp') arms[2] (single)", "unknown key 'postion_weights'"),
+    ("{name: single, share: 0.1, position_weights: [0.4]}\n    checks: {drift: {trailing_day: 3}}",
+     "experiments[0] (id 'cli-exp') checks.drift", "unknown setting 'trailing_day'"),
+    ("{name: single, share: 0.1, position_weights: [0.4]}\nexperimentz: []", "top level", "unknown key 'experimentz'"),
+])
+def test_spec_typo_one_line_exit_2(files, capsys, typo, where, key):
+    """A misspelt key is an error naming file, experiment and arm, not a silently ignored setting."""
+    spec, path, _ = files
+    spec.write_text(SPEC.replace("{name: single, share: 0.1, position_weights: [0.4]}", typo))
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"counterbid: error: {spec}: {where}: {key} (known: "), lines
+
+
+@pytest.mark.parametrize("level,cluster,shown", [("0.975", "bidder", "97.5 %"), ("0.95", "auction", "95 %"),
+                                                  ("0.999", "auction", "99.9 %")])
+def test_table_says_the_level_and_clustering_used(files, capsys, level, cluster, shown):
+    spec, path, _ = files
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--level", level,
+                          "--cluster", cluster], capsys)
+    assert code == 0, err
+    head, columns, *rows = out.splitlines()
+    assert head.endswith(f"bids, {shown} intervals clustered by {cluster} (they speak for "
+                         + {"bidder": "a new draw of bidders as well as of auctions)",
+                            "auction": "these same bidders in new auctions)"}[cluster]), head
+    assert columns.split()[:7] == ["arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "cluster"]
+    table = [r.split() for r in rows if r.split() and r.split()[0] in ("control", "wide", "single", "_mixture")]
+    assert len(table) == 13  # 3 arms x 3 metrics + 2 lifts + 2 mixture rows
+    for r in table:  # the realized per-arm average is clustered by auction whatever the option says
+        assert r[6] == ("auction" if r[1] == "realized_revenue_per_auction" else cluster), r

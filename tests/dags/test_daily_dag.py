@@ -12,6 +12,7 @@ import pytest
 from counterbid.cli.backfill import DAG_ID, dags_folder, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import estimate_arms, load_experiments
+from counterbid.operators.pipeline import DEFAULT_CLUSTER, DEFAULT_CONFIDENCE_LEVEL
 
 from .conftest import SPEC_TEXT, START
 
@@ -79,8 +80,13 @@ def test_three_days_match_estimate_arms_exactly(three_days):
         bids = lake[lake["experiment_id"] == exp.id]
         for k, day in enumerate(DAYS):
             for table, frame in ((daily, bids[bids["ds"] == day]), (to_date, bids[bids["ds"] <= day])):
-                want = estimate_arms(frame.reset_index(drop=True), exp)
+                want = estimate_arms(frame.reset_index(drop=True), exp, cluster=DEFAULT_CLUSTER)
                 got = table[(table["experiment_id"] == exp.id) & (table["ds"] == pd.Timestamp(day))]
+                # the run's defaults are stored beside every row (the realized averages: by auction)
+                assert set(got["confidence_level"]) == {DEFAULT_CONFIDENCE_LEVEL}
+                realized = got["metric"] == "realized_revenue_per_auction"
+                assert set(got.loc[~realized, "cluster"]) == {want.attrs["cluster"]}
+                assert set(got.loc[realized, "cluster"]) == {"auction"}
                 merged = want.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
                 assert (merged["_merge"] == "both").all() and len(got) == len(want)
                 for col in VALUES:
@@ -90,6 +96,24 @@ def test_three_days_match_estimate_arms_exactly(three_days):
     # the three days sit inside the experiments' default three-day warm-up: estimates are
     # written, marked 'warning' (data-checks issue: warnings pass, errors stop the day)
     assert set(daily["status"]) == {"warning"} and daily["run_id"].nunique() == 3
+
+
+def test_level_and_cluster_are_run_parameters(three_days, tmp_path):
+    """A run's conf sets the level and clustering; the stored intervals are those, and say so."""
+    root, conf, experiments, _ = three_days
+    db = tmp_path / "params.duckdb"
+    runs = run_days(DAYS[:1], conf={**conf, "results_database": str(db), "staging_root": str(tmp_path / "stage"),
+                                    "confidence_level": 0.9, "cluster": "bidder"})
+    assert [r.state for r in runs] == ["success"], [r.line() for r in runs]
+    daily = _table(db, "arm_estimates")
+    lake = _lake(root)
+    for exp in experiments.values():
+        bids = lake[(lake["experiment_id"] == exp.id) & (lake["ds"] == DAYS[0])].reset_index(drop=True)
+        want = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder")
+        got = daily[daily["experiment_id"] == exp.id].set_index(["arm", "metric"]).loc[list(zip(want["arm"], want["metric"]))]
+        assert got["ci_low"].tolist() == want["ci_low"].tolist() and got["ci_high"].tolist() == want["ci_high"].tolist()
+        assert set(got["confidence_level"]) == {0.9}
+    assert set(daily.loc[daily["metric"] != "realized_revenue_per_auction", "cluster"]) == {"bidder"}
 
 
 def test_rerun_replaces_rows_without_duplicates(three_days):

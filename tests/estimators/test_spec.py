@@ -68,3 +68,33 @@ def test_file_errors(tmp_path):
         load_experiment(two)
     with pytest.raises(InputError, match="no experiment with id 'z'"):
         load_experiment(two, "z")
+
+
+# A typo at any level of the spec is refused, naming the key, the file, the experiment and the arm.
+@pytest.mark.parametrize("document,message", [
+    ({**doc(), "experiment": []}, r"^spec.yaml: top level: unknown key 'experiment' \(known: description, experiments\)$"),
+    (doc(controlarm="a"), r"^spec.yaml: experiments\[0\] \(id 'e1'\): unknown key 'controlarm'"),
+    ({"experiments": [{"iid": "e1", "arms": []}]}, r"^spec.yaml: experiments\[0\]: unknown key 'iid'"),
+    (doc(arms=[{"name": "a", "share": 0.6, "position_weights": [0.3]},
+               {"name": "b", "share": 0.4, "position_weights": [0.3], "postion_weights": [0.5, 0.1]}]),
+     r"^spec.yaml: experiments\[0\] \(id 'e1'\) arms\[1\] \(b\): unknown key 'postion_weights' "
+     r"\(known: description, name, position_weights, share\)$"),
+    (doc(arms=[{"nmae": "a", "share": 1.0, "position_weights": [0.3]}]),
+     r"^spec.yaml: experiments\[0\] \(id 'e1'\) arms\[0\]: unknown key 'nmae'"),
+    (doc(checks={"sampel_ratio": {"alpha": 0.01}}),
+     r"^spec.yaml: experiments\[0\] \(id 'e1'\) checks: unknown check 'sampel_ratio' \(known: "),
+    (doc(checks={"sample_ratio": {"alpah": 0.01}}),
+     r"^spec.yaml: experiments\[0\] \(id 'e1'\) checks.sample_ratio: unknown setting 'alpah' \(known: severity, alpha\)$"),
+    (doc(checks={"drift": {"severity": "fatal"}}), r"checks.drift.severity: must be one of warning, error; got 'fatal'$"),
+    (doc(checks={"warmup": 3}), r"checks.warmup: must be a mapping of setting to value$"),
+])
+def test_unknown_keys_are_refused_at_every_level(document, message):
+    with pytest.raises(InputError, match=message):
+        parse_experiments(document, source="spec.yaml")
+
+
+def test_known_optional_keys_are_accepted():
+    document = {"description": "demo", **doc(description="layouts", checks={"sample_ratio": {"alpha": 1e-4}}, arms=[
+        {"name": "a", "share": 1.0, "position_weights": [0.3], "description": "the current layout"}])}
+    exp = parse_experiments(document)["e1"]
+    assert exp.checks == {"sample_ratio": {"alpha": 1e-4}} and exp.arm_names == ("a",)

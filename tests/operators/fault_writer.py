@@ -3,20 +3,30 @@
 ``write DB EXPERIMENT DAY ROWS RUN_ID [MARKER]``
     One :meth:`ResultsHook.replace_partition` of ``ROWS`` estimate rows. With ``MARKER``, the file
     is created the moment the transaction has deleted the old rows and starts inserting.
-``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS``
-    Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day.
+``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS [PAUSE]``
+    Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day,
+    ``PAUSE`` seconds apart (default 0; tasks of a real backfill are seconds apart).
+``contend DB EXPERIMENT DAY ROWS RUN_ID GATE``
+    Like ``write``, but first builds its rows, creates ``GATE/EXPERIMENT.ready`` and waits for
+    ``GATE/go``, so that several writers start their transactions together. Prints one JSON line:
+    how many times DuckDB refused it the file lock (``lock_errors``) and the monotonic-clock
+    window of its replace (``started``, ``committed``; one clock for all processes on Linux).
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import json
 import sys
+import time
 from pathlib import Path
+
+import duckdb
 
 import pandas as pd
 import pyarrow as pa
 
-from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.hooks import ResultsHook, is_lock_error
 
 POSITIONS = 3
 
@@ -28,7 +38,8 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
     estimates = pd.DataFrame({
         "experiment_id": experiment_id, "ds": day, "arm": [f"arm{i:07d}" for i in k], "metric": "revenue_per_auction",
         "estimate": k / 7.0, "std_error": 0.01, "ci_low": k / 7.0 - 0.02, "ci_high": k / 7.0 + 0.02,
-        "n_auctions": 1000, "n_bids": 4000, "status": "ok", "method_version": "ordstat-1", "run_id": run_id,
+        "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction",
+        "method_version": "ordstat-1", "run_id": run_id,
         "computed_at": now})
     to_date = estimates.assign(first_ds=day - dt.timedelta(days=3))
     weights = pd.DataFrame({
@@ -53,6 +64,23 @@ class _MarkingHook(ResultsHook):
         return super().sql(name)
 
 
+class _CountingHook(ResultsHook):
+    """Counts every lock error the hook's retry loop absorbs (each one is a refused attempt)."""
+
+    lock_errors = 0
+
+    def _retry_on_lock(self, action, *, what: str):
+        def counted():
+            try:
+                return action()
+            except duckdb.Error as exc:
+                if is_lock_error(exc):
+                    self.lock_errors += 1
+                raise
+
+        return super()._retry_on_lock(counted, what=what)
+
+
 def main(argv: list[str]) -> int:
     command, db, experiment_id = argv[:3]
     if command == "write":
@@ -60,11 +88,28 @@ def main(argv: list[str]) -> int:
         hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
         hook.replace_partition(experiment_id=experiment_id, ds=day, tables=partition_tables(experiment_id, day, rows, run_id))
         return 0
+    if command == "contend":
+        day, rows, run_id, gate = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5], Path(argv[6])
+        hook = _CountingHook(database=db, lock_timeout=240)
+        tables = partition_tables(experiment_id, day, rows, run_id)
+        (gate / f"{experiment_id}.ready").write_text("ready\n")
+        deadline = time.monotonic() + 240
+        while not (gate / "go").exists():
+            if time.monotonic() > deadline:
+                raise SystemExit("no go signal within 240 s")
+            time.sleep(0.002)
+        started = time.monotonic()
+        hook.replace_partition(experiment_id=experiment_id, ds=day, tables=tables)
+        print(json.dumps({"lock_errors": hook.lock_errors, "started": started, "committed": time.monotonic()}))
+        return 0
     if command == "days":
         first, n_days, rounds, rows = dt.date.fromisoformat(argv[3]), int(argv[4]), int(argv[5]), int(argv[6])
+        pause = float(argv[7]) if len(argv) > 7 else 0.0
         hook = ResultsHook(database=db)
         for r in range(rounds):
             for d in range(n_days):
+                if r or d:
+                    time.sleep(pause)
                 day = first + dt.timedelta(days=d)
                 hook.replace_partition(experiment_id=experiment_id, ds=day,
                                        tables=partition_tables(experiment_id, day, rows, f"round-{r}"))

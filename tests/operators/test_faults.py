@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import json
 import os
 import signal
 import subprocess
@@ -65,31 +66,77 @@ def test_kill_9_mid_transaction_leaves_the_previous_rows(tmp_path):
     assert set(_rows(db, "arm_estimates")["run_id"]) == {"after"}
 
 
-def test_four_concurrent_writers_all_land(tmp_path):
+def test_four_concurrent_writers_contend_and_all_land(tmp_path):
+    """Four writers released together: DuckDB refuses some of them the lock, and every row still lands exactly.
+
+    The writers build their rows first and wait at a gate, so all four open the file within a few
+    milliseconds of each other while each holds it for a whole transaction of 20,000 rows; with
+    one process at a time allowed on the file, at least three of them must be refused at least
+    once, however loaded the machine (a slow writer only holds the lock longer).
+    """
     db = tmp_path / "results.duckdb"
-    procs = [subprocess.Popen(_writer("write", db, f"exp-{k}", DAY, 20_000, f"writer-{k}"), stderr=subprocess.PIPE, text=True)
-             for k in range(4)]
+    gate = tmp_path / "gate"
+    gate.mkdir()
+    names = [f"exp-{k}" for k in range(4)]
+    procs = [subprocess.Popen(_writer("contend", db, name, DAY, 20_000, f"writer-{k}", gate),
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for k, name in enumerate(names)]
+    deadline = time.monotonic() + 240
+    while not all((gate / f"{n}.ready").exists() for n in names):
+        assert all(p.poll() is None for p in procs), "a writer ended before the gate opened"
+        assert time.monotonic() < deadline, "the writers never got ready"
+        time.sleep(0.01)
+    (gate / "go").write_text("go\n")
+    reports = []
     for p in procs:
-        _, err = p.communicate(timeout=300)
+        out, err = p.communicate(timeout=300)
         assert p.returncode == 0, err[-2000:]
+        reports.append(json.loads(out.strip().splitlines()[-1]))
+    refused = [r["lock_errors"] for r in reports]
+    # Contention happened: writers were refused the lock and waited (not one after the other by luck).
+    assert sum(1 for n in refused if n > 0) >= 1, refused
+    # The writers' replace windows overlap (one began before another committed), yet they serialize.
+    windows = sorted((r["started"], r["committed"]) for r in reports)
+    assert any(later[0] < earlier[1] for earlier, later in zip(windows, windows[1:])), windows
+    print(f"\nlock refusals per writer: {refused}")
+
     estimates = _rows(db, "arm_estimates")
     counts = estimates.groupby("experiment_id").size().to_dict()
-    assert counts == {f"exp-{k}": 20_000 for k in range(4)}
-    assert {e: set(g) for e, g in estimates.groupby("experiment_id")["run_id"]} == {f"exp-{k}": {f"writer-{k}"} for k in range(4)}
+    assert counts == {name: 20_000 for name in names}
+    assert {e: set(g) for e, g in estimates.groupby("experiment_id")["run_id"]} == {n: {f"writer-{k}"} for k, n in enumerate(names)}
+    # exact contents: every writer's rows as it built them, none lost, altered or mixed up
+    sys.path.insert(0, str(WRITER.parent))
+    try:
+        from fault_writer import partition_tables
+    finally:
+        sys.path.remove(str(WRITER.parent))
+    value_columns = ["experiment_id", "arm", "metric", "estimate", "ci_low", "ci_high", "status", "run_id"]
+    for k, name in enumerate(names):
+        want = partition_tables(name, DAY, 20_000, f"writer-{k}")["arm_estimates"].to_pandas()[value_columns]
+        got = estimates[estimates["experiment_id"] == name][value_columns].reset_index(drop=True)
+        pd.testing.assert_frame_equal(got, want.sort_values("arm").reset_index(drop=True), check_exact=True)
     assert _rows(db, "arm_estimates_to_date").groupby("experiment_id").size().to_dict() == counts
-    assert _rows(db, "arm_position_weights").groupby("experiment_id").size().to_dict() == {f"exp-{k}": 3 for k in range(4)}
+    assert _rows(db, "arm_position_weights").groupby("experiment_id").size().to_dict() == {n: 3 for n in names}
 
 
 def test_polling_reader_never_sees_half_a_day(tmp_path, record_property):
     """A dashboard-style reader polls while a backfill loop rewrites 7 days 3 times over."""
     db = tmp_path / "results.duckdb"
-    n_days, rows = 7, 13
+    n_days, rows, rounds = 7, 13, 3
+    # The state after c committed transactions: round r = c // n_days has rewritten the first
+    # c % n_days days, the rest still hold round r - 1 (absent before the first round ends).
+    after_commits = {}
+    for c in range(rounds * n_days + 1):
+        r, j = divmod(c, n_days)
+        after_commits[tuple(r if d < j else (r - 1 if r else None) for d in range(n_days))] = c
     subprocess.run(_writer("write", db, "warm", DAY, 1, "warm"), check=True, timeout=120)  # tables exist
-    writer = subprocess.Popen(_writer("days", db, "tiles", DAY, n_days, 3, rows), stderr=subprocess.PIPE, text=True)
+    # 200 ms between transactions (a real backfill's are seconds apart) so the reader gets the file
+    # between commits even on a loaded machine, not only before the first and after the last.
+    writer = subprocess.Popen(_writer("days", db, "tiles", DAY, n_days, rounds, rows, 0.2), stderr=subprocess.PIPE,
+                              text=True)
     hook = ResultsHook(database=db, lock_timeout=60)
     lockouts: dict[str, list[float]] = {"hook": [], "tight": []}
     snapshots = 0
-    seen_days: set[int] = set()
+    seen_commits: list[int] = []
     while writer.poll() is None:
         # Alternate the hook's connection (jittered exponential back-off up to 2 s) with a tight
         # 5 ms poll, which measures how long the writer really holds the file.
@@ -107,17 +154,24 @@ def test_polling_reader_never_sees_half_a_day(tmp_path, record_property):
         for ds, n, run_lo, run_hi, n_to_date, n_weights, weights_run in per_day:
             assert (n, n_to_date, n_weights) == (rows, rows, 3), f"half-written day {ds}: {n}, {n_to_date}, {n_weights}"
             assert run_lo == run_hi == weights_run, f"day {ds} mixes runs {run_lo}, {run_hi}, {weights_run}"
-        seen_days.add(len(per_day))
+        rounds_by_day = {(pd.Timestamp(ds).date() - DAY).days: int(run_lo.split("-")[1]) for ds, _, run_lo, *_ in per_day}
+        state = tuple(rounds_by_day.get(d) for d in range(n_days))
+        assert state in after_commits, f"snapshot {state} is no state the writer's commit order can produce"
+        seen_commits.append(after_commits[state])
         time.sleep(0.005)
     _, err = writer.communicate(timeout=60)
     assert writer.returncode == 0, err[-2000:]
-    assert len(lockouts["tight"]) >= 3 and max(seen_days) <= n_days
+    assert len(lockouts["tight"]) >= 3
+    # Snapshots follow the commit order (a later read never shows an earlier state), and the reader
+    # really read while the backfill ran: it saw a state between the first commit and the last.
+    assert seen_commits == sorted(seen_commits), seen_commits
+    assert any(0 < c < rounds * n_days for c in seen_commits), sorted(set(seen_commits))
     final = _rows(db, "arm_estimates")
     assert len(final[final["experiment_id"] == "tiles"]) == n_days * rows
     for how, waits in lockouts.items():
         record_property(f"reader_longest_lockout_{how}_s", round(max(waits), 3))
         print(f"\npolling reader ({how}): {len(waits)} snapshots, longest lock-out {max(waits):.3f} s, "
-              f"median {sorted(waits)[len(waits) // 2]:.4f} s; days seen {sorted(seen_days)}")
+              f"median {sorted(waits)[len(waits) // 2]:.4f} s; commits seen {sorted(set(seen_commits))}")
 
 
 @contextlib.contextmanager

@@ -53,6 +53,23 @@ def test_bad_configuration_fails_at_construction(kwargs, message):
         EstimateArmsOperator(task_id="estimate", **{**COMMON, **kwargs})
 
 
+@pytest.mark.parametrize("level,cluster,message", [
+    ("1.5", "auction", "`confidence_level` must be a number in \\(0, 1\\); got '1.5'"),
+    ("ninety", "auction", "`confidence_level` must be a number in \\(0, 1\\); got 'ninety'"),
+    ("0.9", "session", "`cluster` must be one of .*; got 'session'"),
+])
+def test_templated_level_and_cluster_are_checked_when_rendered(level, cluster, message):
+    """Run parameters arrive as rendered strings: a bad one fails the task without retry, naming it."""
+    from airflow.sdk.exceptions import AirflowFailException
+
+    op = EstimateArmsOperator(task_id="estimate", confidence_level="{{ params.confidence_level }}",
+                              cluster="{{ params.cluster }}", **COMMON)
+    assert {"confidence_level", "cluster"} <= set(op.template_fields)
+    op.confidence_level, op.cluster = level, cluster  # what rendering the templates leaves
+    with pytest.raises(AirflowFailException, match=message):
+        op.execute({"run_id": "r"})
+
+
 def test_templated_fields_and_writer_defaults():
     load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **COMMON)
     assert {"ds", "lake_root", "spec_path", "staging_root", "experiment_id"} <= set(load.template_fields)

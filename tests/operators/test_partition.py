@@ -228,3 +228,38 @@ def test_a_failing_recorder_never_fails_the_step(hook, monkeypatch, caplog):
     monkeypatch.setattr(partition, "CHECK_RECORDER", broken)
     partition.store_checks(hook, [], experiment_id="tiles", ds=START, run_id="r")
     assert "could not store the check outcomes" in caplog.text
+
+
+def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, experiment, tmp_path, monkeypatch):
+    """What the run used reaches every stored row: level, clustering, and check warning plus estimator flags."""
+    from counterbid.estimators import CheckResult
+
+    day = START + dt.timedelta(days=1)
+    _stage(hook, lake, experiment, tmp_path, day)
+    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    warned = CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3, details={})
+    assert partition.record_checks(staged, [*partition.schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
+
+    real = partition.estimate_arms
+
+    def flagging(*args, **kwargs):  # the estimator's per-row status column, as estimate_arms will add it
+        table = real(*args, **kwargs)
+        table["status"] = np.where(table["arm"] == "bold", "no_interval,few_bids", "ok")
+        return table
+
+    monkeypatch.setattr(partition, "estimate_arms", flagging)
+    partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1",
+                                 confidence_level=0.975, cluster="bidder")
+    partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
+    for name in ("report_daily_estimates", "report_to_date_estimates"):
+        rows = hook.fetch_df(name, {"experiment_id": "tiles"})
+        assert set(rows["confidence_level"]) == {0.975}
+        realized = rows["metric"] == "realized_revenue_per_auction"
+        assert set(rows.loc[realized, "cluster"]) == {"auction"} and set(rows.loc[~realized, "cluster"]) == {"bidder"}
+        bold = rows["arm"] == "bold"
+        assert set(rows.loc[bold, "status"]) == {"few_bids,no_interval,warning"}
+        assert set(rows.loc[~bold, "status"]) == {"warning"}
+    # the interval really is the bidder-clustered 97.5 % one
+    want = real(_lake_day(lake / "bids", day), experiment, confidence_level=0.975, cluster="bidder")
+    got = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}).set_index(["arm", "metric"])
+    np.testing.assert_array_equal(got.loc[list(zip(want["arm"], want["metric"])), "ci_high"].to_numpy(), want["ci_high"].to_numpy())

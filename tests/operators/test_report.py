@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import datetime as dt
 
+import numpy as np
 import pytest
 
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import parse_experiments
-from counterbid.operators import partition
+from counterbid.estimators import CheckResult, parse_experiments
+from counterbid.operators import partition, report
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.report import ASSUMPTIONS, cumulative_table, format_cumulative, write_report
 
@@ -19,18 +20,36 @@ SPEC = {"experiments": [{
              {"name": "bold", "share": 0.3, "position_weights": [0.5, 0.15, 0.05]}]}]}
 
 
+#: How each day was run: (confidence level, clustering, a data check warned, estimator flags on arm 'bold').
+RUNS = [(0.95, "auction", False, None), (0.975, "bidder", False, "few_bids"), (0.975, "bidder", True, None)]
+
+
 @pytest.fixture(scope="module")
 def results(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
     exp = parse_experiments(SPEC)["tiles"]
     write_bid_lake(root / "bids", [exp], start=START, days=3, auctions_per_day=1500, n_bidders=4, seed=8)
     hook = ResultsHook(database=root / "results.duckdb")
-    for k in range(3):
+    real = partition.estimate_arms
+    for k, (level, cluster, warned, flag) in enumerate(RUNS):
         day = START + dt.timedelta(days=k)
         partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
         staged = partition.StagedPartition.at(root / "s", exp.id, day)
-        partition.record_checks(staged, partition.schema_gate(hook, experiment=exp, staged=staged))
-        partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}")
+        checks = partition.schema_gate(hook, experiment=exp, staged=staged)
+        if warned:
+            checks.append(CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3))
+        partition.record_checks(staged, checks)
+
+        def flagging(*args, _flag=flag, **kwargs):  # the estimator's per-row status, as estimate_arms will add it
+            table = real(*args, **kwargs)
+            if _flag:
+                table["status"] = np.where(table["arm"] == "bold", _flag, "ok")
+            return table
+
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(partition, "estimate_arms", flagging)
+            partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}",
+                                         confidence_level=level, cluster=cluster)
         partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=root / "s")
     return root, hook
 
@@ -48,6 +67,38 @@ def test_report_has_plots_assumptions_and_days(results):
         assert f"<th>{START + dt.timedelta(days=k)}</th>" in text
     assert "data checks" not in text  # no data_checks table: nothing shown
     assert "4,500 auctions pooled" in text
+
+
+def test_report_says_the_level_clustering_and_status_each_interval_used(results):
+    root, hook = results
+    text = write_report(hook, root / "out").read_text()
+    assert "95%" not in text and "Intervals are 95" not in text  # no fixed level anywhere
+    # the experiment-to-date table (the latest run: 97.5 %, by bidder), its columns and what it speaks for
+    assert "<th>revenue / auction (97.5 %, by bidder)</th>" in text
+    assert "<th>lift vs control (97.5 %, by bidder)</th>" in text
+    assert "<th>realized average (biased) (97.5 %, by auction)</th>" in text
+    assert "Intervals: 97.5 %, clustered by bidder (they speak for a new draw of bidders as well as of auctions)" in text
+    assert "clustered by auction, for\nthese same bidders in new auctions" in text  # the page says what both mean
+    # per day: the interval and the status each day's rows carry
+    by_day = dict(zip([str(START + dt.timedelta(days=k)) for k in range(3)],
+                      [("ok", "95 %, clustered by auction"), ("few_bids", "97.5 %, clustered by bidder"),
+                       ("warning", "97.5 %, clustered by bidder")]))
+    for day, (status, how) in by_day.items():
+        assert f"<th>{day}</th>\n      <td>{status}</td>\n      <td>{how}</td>" in text, day
+    assert "The estimator flagged rows (few_bids)" in text
+
+
+def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
+    _, hook = results
+    daily = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
+    to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
+    title = report._plot_revenue(daily, "tiles", tmp_path / "r.png")
+    assert title.endswith("(bands: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days) intervals)")
+    title = report._plot_lift(daily, to_date, "tiles", tmp_path / "l.png")
+    assert title.endswith("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days); "
+                          "to date: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days))")
+    one_run = daily[daily["ds"] == daily["ds"].max()]
+    assert report.interval_caption(one_run[one_run["metric"] == "revenue_per_auction"]) == "97.5 %, clustered by bidder"
 
 
 def test_report_shows_the_worst_check_status_per_day(results, tmp_path):
@@ -68,5 +119,7 @@ def test_report_shows_the_worst_check_status_per_day(results, tmp_path):
 def test_cumulative_table_text(results):
     _, hook = results
     text = format_cumulative(cumulative_table(hook))
-    assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 4500 auctions, status ok")
+    assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 4500 auctions, status warning; "
+                           "intervals 97.5 %, clustered by bidder\n")
+    assert "revenue / auction (97.5 %, by bidder)" in text and "realized average (biased) (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text

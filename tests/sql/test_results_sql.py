@@ -13,13 +13,15 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
+from counterbid.estimators.errors import InputError
 from counterbid.operators.hooks import ResultsHook, is_lock_error
 
 D1, D2 = dt.date(2026, 3, 2), dt.date(2026, 3, 3)
 NOW = pd.Timestamp("2026-03-04 01:00", tz="UTC")
 
 
-def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False, status="ok"):
+def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False, status="ok", level=0.95,
+          cluster="auction"):
     rows = []
     for arm, metric, est in [
         ("plain", "revenue_per_auction", estimate),
@@ -29,6 +31,7 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False,
     ]:
         row = dict(experiment_id=exp, ds=ds, arm=arm, metric=metric, estimate=est, std_error=0.01,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
+                   confidence_level=level, cluster=cluster,
                    method_version="ordstat-1", run_id=run_id, computed_at=computed_at)
         if to_date:
             row["first_ds"] = D1
@@ -77,12 +80,47 @@ def test_failed_write_rolls_back_everything(hook):
     hook.replace_partition(experiment_id="tiles", ds=D1, tables={
         "arm_estimates": _rows("tiles", D1), "arm_estimates_to_date": _rows("tiles", D1, to_date=True)})
     before_daily, before_cum = _all(hook, "arm_estimates"), _all(hook, "arm_estimates_to_date")
-    bad = _rows("tiles", D1, to_date=True, status="broken")  # violates the status check constraint
+    bad = _rows("tiles", D1, to_date=True, status="")  # violates the status check constraint
     with pytest.raises(duckdb.ConstraintException):
         hook.replace_partition(experiment_id="tiles", ds=D1, tables={
             "arm_estimates": _rows("tiles", D1, estimate=9.0, run_id="r9"), "arm_estimates_to_date": bad})
     pd.testing.assert_frame_equal(_all(hook, "arm_estimates"), before_daily)
     pd.testing.assert_frame_equal(_all(hook, "arm_estimates_to_date"), before_cum)
+
+
+@pytest.mark.parametrize("column,value", [
+    ("status", ""), ("status", "warning, few_bids"), ("status", "Warning"), ("status", "ok,"),
+    ("level", 1.0), ("level", 0.0), ("cluster", "auto"), ("cluster", "arm")])
+def test_stored_status_level_and_cluster_are_constrained(hook, column, value):
+    with pytest.raises(duckdb.ConstraintException):
+        hook.replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1, **{column: value})})
+    assert _all(hook, "arm_estimates").empty
+
+
+def test_flags_level_and_cluster_are_stored_and_reach_the_views(hook):
+    hook.replace_partition(experiment_id="tiles", ds=D1, tables={
+        "arm_estimates": _rows("tiles", D1, status="few_bids,warning", level=0.975, cluster="bidder"),
+        "arm_estimates_to_date": _rows("tiles", D1, to_date=True, status="degenerate", level=0.9, cluster="bidder")})
+    daily = _all(hook, "arm_estimates")
+    assert set(daily["status"]) == {"few_bids,warning"} and set(daily["confidence_level"]) == {0.975}
+    lift = _all(hook, "arm_lift").set_index("span")
+    assert lift.loc["to_date", ["confidence_level", "cluster", "status"]].tolist() == [0.9, "bidder", "degenerate"]
+    assert lift.loc["day", ["confidence_level", "cluster"]].tolist() == [0.975, "bidder"]
+    cum = hook.fetch_df("report_cumulative")
+    assert set(zip(cum["confidence_level"], cum["cluster"])) == {(0.9, "bidder")}
+
+
+def test_a_results_file_of_an_older_version_is_refused_naming_the_columns(tmp_path):
+    path = tmp_path / "old.duckdb"
+    with duckdb.connect(str(path)) as con:  # the table as the previous version created it
+        con.execute("create table arm_estimates (experiment_id varchar not null, ds date not null, arm varchar not null,"
+                    " metric varchar not null, estimate double, std_error double, ci_low double, ci_high double,"
+                    " n_auctions bigint not null, n_bids bigint not null,"
+                    " status varchar not null check (status in ('ok', 'warning')), method_version varchar not null,"
+                    " run_id varchar not null, computed_at timestamptz not null, primary key (experiment_id, ds, arm, metric))")
+    with pytest.raises(InputError, match=r"old.duckdb: table arm_estimates lacks column\(s\) cluster, confidence_level "
+                                         r"\(written by an older counterbid\)"):
+        ResultsHook(database=path).replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
 
 
 def test_cumulative_view_shows_the_latest_day_per_experiment(hook):

@@ -1,0 +1,22 @@
+-- Columns this version writes that an existing results table lacks (a file created by an older
+-- version): the writer refuses such a file rather than fail half-way through an insert.
+with expected as (
+    select *
+    from (values
+        ('arm_estimates', 'confidence_level'),
+        ('arm_estimates', 'cluster'),
+        ('arm_estimates_to_date', 'confidence_level'),
+        ('arm_estimates_to_date', 'cluster')
+    ) as t (table_name, column_name)
+),
+
+present as (
+    select table_name, column_name
+    from information_schema.columns
+    where table_schema = $schema
+)
+
+select expected.table_name, expected.column_name
+from expected
+anti join present using (table_name, column_name)
+order by expected.table_name, expected.column_name

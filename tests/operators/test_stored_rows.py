@@ -1,0 +1,57 @@
+"""The stored status (check warning + estimator flags), level and clustering of each results row."""
+
+from __future__ import annotations
+
+import re
+
+import pandas as pd
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import estimate_arms, parse_experiments, simulate_experiment
+from counterbid.estimators.errors import InputError
+from counterbid.estimators.intervals import format_level, interval_label, row_clusters
+from counterbid.operators.stored_rows import STATUS_PATTERN, stored_status, with_stored_columns
+from counterbid.sql import load_sql
+
+
+@pytest.mark.parametrize("check,own,stored", [
+    ("ok", "ok", "ok"), ("warning", "ok", "warning"), ("ok", None, "ok"), ("ok", float("nan"), "ok"),
+    ("ok", "no_interval,few_bids", "few_bids,no_interval"), ("warning", "degenerate", "degenerate,warning"),
+    ("warning", "few_bids, warning", "few_bids,warning"),
+])
+def test_stored_status_is_ok_or_sorted_flags(check, own, stored):
+    assert stored_status(check, own) == stored
+    assert re.fullmatch(STATUS_PATTERN, stored)
+
+
+@pytest.mark.parametrize("check,own", [("error", "ok"), ("ok", "Few bids"), ("ok", "")])
+def test_stored_status_refuses_what_it_cannot_store(check, own):
+    with pytest.raises(InputError):
+        stored_status(check, own)
+
+
+def test_the_tables_constraint_is_the_same_pattern():
+    for name in ("results_create_arm_estimates", "results_create_arm_estimates_to_date"):
+        assert f"regexp_full_match(status, '{STATUS_PATTERN}')" in load_sql(name)
+
+
+@pytest.mark.parametrize("level,text", [(0.95, "95 %"), (0.975, "97.5 %"), (0.9, "90 %"), (0.999, "99.9 %"),
+                                        (0.6827, "68.27 %"), (0.5, "50 %")])
+def test_levels_are_printed_exactly(level, text):
+    assert format_level(level) == text
+    assert interval_label(level, "bidder") == f"{text}, clustered by bidder"
+
+
+def test_table_without_estimator_status_gets_level_cluster_and_check_status():
+    spec = {"experiments": [{"id": "e", "control_arm": "a", "arms": [
+        {"name": "a", "share": 0.5, "position_weights": [0.4, 0.2]}, {"name": "b", "share": 0.5, "position_weights": [0.5, 0.1]}]}]}
+    exp = parse_experiments(spec)["e"]
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=600, rng=3)
+    table = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder")
+    assert "status" not in table.columns  # today's estimator: no status column, counted as 'ok'
+    out = with_stored_columns(table, check_status="warning")
+    assert set(out["status"]) == {"warning"} and set(out["confidence_level"]) == {0.9}
+    realized = out["metric"] == "realized_revenue_per_auction"
+    assert set(out.loc[realized, "cluster"]) == {"auction"} and set(out.loc[~realized, "cluster"]) == {"bidder"}
+    pd.testing.assert_series_equal(row_clusters(table), out["cluster"])
