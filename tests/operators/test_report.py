@@ -76,7 +76,7 @@ def test_report_says_the_level_clustering_and_status_each_interval_used(results)
     # the experiment-to-date table (the latest run: 97.5 %, by bidder), its columns and what it speaks for
     assert "<th>revenue / auction (97.5 %, by bidder)</th>" in text
     assert "<th>lift vs control (97.5 %, by bidder)</th>" in text
-    assert "<th>realized average (biased) (97.5 %, by auction)</th>" in text
+    assert "<th>realized per-arm average (97.5 %, by auction)</th>" in text
     assert "Intervals: 97.5 %, clustered by bidder (they speak for a new draw of bidders as well as of auctions)" in text
     assert "clustered by auction, for\nthese same bidders in new auctions" in text  # the page says what both mean
     # per day: the interval and the status each day's rows carry
@@ -121,5 +121,5 @@ def test_cumulative_table_text(results):
     text = format_cumulative(cumulative_table(hook))
     assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 4500 auctions, status warning; "
                            "intervals 97.5 %, clustered by bidder\n")
-    assert "revenue / auction (97.5 %, by bidder)" in text and "realized average (biased) (97.5 %, by auction)" in text
+    assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
