@@ -78,10 +78,12 @@ def counterbid_daily():
             "staging_root": "{{ params.staging_root }}",
             "results_database": "{{ params.results_database }}",
         }
-        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
+        # measured position weights come from the click log here, once per (experiment, day)
+        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}",
+                                     clicks_root="{{ params.clicks_root }}", **paths)
         # Warnings pass with status 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
-        estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}", **paths)
+        estimate = EstimateArmsOperator(task_id="estimate", **paths)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
 
