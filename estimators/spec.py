@@ -28,6 +28,7 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import yaml
 
 from .errors import InputError
@@ -163,9 +164,10 @@ def parse_day(value: Any, *, what: str = "ds") -> _dt.date:
 
     Parameters
     ----------
-    value : date, datetime or str
+    value : date, datetime, numpy.datetime64 or str
         ``datetime`` values (``pandas.Timestamp`` included) give their date; texts are
         ``YYYY-MM-DD`` or an ISO date-time such as Airflow's ``2026-03-02T00:00:00+00:00``.
+        Numbers are refused.
     what : str, optional
         What is being parsed (``ds``, ``--start``, a spec key); named in the error message.
 
@@ -187,15 +189,15 @@ def parse_day(value: Any, *, what: str = "ds") -> _dt.date:
         return value.date()
     if isinstance(value, _dt.date):
         return value
-    text = str(value)
+    text = value if isinstance(value, str) else str(value)[:10] if isinstance(value, np.datetime64) else None
     try:
-        return _dt.date.fromisoformat(text)
+        if text is not None and len(text) > 10 and text[10] in "T ":  # a date-time: its date
+            return _dt.datetime.fromisoformat(text).date()
+        if text is not None:
+            return _dt.date.fromisoformat(text)
     except ValueError:
         pass
-    try:
-        return _dt.datetime.fromisoformat(text).date()
-    except ValueError:
-        raise InputError(f"{what}: must be a date YYYY-MM-DD; got {value!r}") from None
+    raise InputError(f"{what}: must be a date YYYY-MM-DD; got {value!r}")
 
 
 def _experiment(raw: Any, where: str) -> Experiment:
