@@ -24,14 +24,9 @@ from counterbid.sql import render_sql, validate_identifier
 
 from .contract import run_contract
 
-__all__ = ["DATA_CHECKS_COLUMNS", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
-
-#: Columns of the ``data_checks`` table, in order.
-DATA_CHECKS_COLUMNS = (
-    "experiment_id", "ds", "check", "severity", "passed", "observed", "threshold", "details", "run_id", "checked_at",
-)
 
 
 def run_checks(

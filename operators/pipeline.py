@@ -42,10 +42,6 @@ RESULTS_ASSET = Asset(name="counterbid_arm_estimates", uri="counterbid://results
 WRITER_POOL = "counterbid_results_writer"
 
 
-def _templated(value: object) -> bool:
-    return isinstance(value, str) and "{{" in value
-
-
 class _PartitionOperator(BaseOperator):
     """Shared arguments of the per-(experiment, day) operators."""
 
