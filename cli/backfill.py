@@ -149,20 +149,11 @@ def run_days(days: list[dt.date], *, conf: dict[str, str], progress=None) -> lis
     return out
 
 
-def _day(text: str, flag: str) -> dt.date:
-    from counterbid.estimators.errors import InputError
-
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"{flag}: must be a date YYYY-MM-DD; got {text!r}") from None
-
-
 def run(args: argparse.Namespace) -> int:
-    from counterbid.estimators import load_experiments
+    from counterbid.estimators import load_experiments, parse_day
     from counterbid.estimators.errors import InputError
 
-    start, end = _day(args.start, "--start"), _day(args.end, "--end")
+    start, end = parse_day(args.start, what="--start"), parse_day(args.end, what="--end")
     if end < start:
         raise InputError(f"--end {end} is before --start {start}")
     load_experiments(args.experiments)  # fail early, with the spec's own message

@@ -20,17 +20,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 
-def _parse_day(text: str | None):
-    from counterbid.estimators.errors import InputError
-
-    if text is None:
-        return None
-    try:
-        return dt.date.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"--ds: must be a date YYYY-MM-DD; got {text!r}") from None
-
-
 def _days(bids, fallback: dt.date | None):
     import pandas as pd
 
@@ -53,12 +42,13 @@ def run(args: argparse.Namespace) -> int:
     import pandas as pd
 
     from counterbid.cli.estimate import _choose_experiment
+    from counterbid.estimators import parse_day
     from counterbid.readers.bid_log import read_bids
     from counterbid.estimators.checks import results_frame, worst_failure
     from counterbid.estimators.errors import InputError
-    from counterbid.operators.checks import run_checks
+    from counterbid.operators.check_runner import run_checks
 
-    only_day = _parse_day(args.ds)
+    only_day = None if args.ds is None else parse_day(args.ds, what="--ds")
     bids = read_bids(args.bids)
     experiment = _choose_experiment(args.experiment, args.experiment_id, bids)
     if "experiment_id" in bids.columns:

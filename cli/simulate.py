@@ -31,7 +31,7 @@ def _distribution(name: str):
 def run(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from counterbid.estimators import load_experiments, simulate_experiment
+    from counterbid.estimators import load_experiments, parse_day, simulate_experiment
     from counterbid.estimators.errors import InputError
 
     experiments = load_experiments(args.experiment)
@@ -39,10 +39,7 @@ def run(args: argparse.Namespace) -> int:
         if args.experiment_id not in experiments:
             raise InputError(f"{args.experiment}: no experiment with id {args.experiment_id!r}")
         experiments = {args.experiment_id: experiments[args.experiment_id]}
-    try:
-        start = dt.date.fromisoformat(args.start)
-    except ValueError:
-        raise InputError(f"--start: must be a date YYYY-MM-DD; got {args.start!r}") from None
+    start = parse_day(args.start, what="--start")
     rng = np.random.default_rng(args.seed)
     values = _distribution(args.values)
     root = Path(args.out)

@@ -85,12 +85,13 @@ def counterbid_daily():
             "staging_root": "{{ params.staging_root }}",
             "results_database": "{{ params.results_database }}",
         }
-        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **paths)
+        # measured position weights come from the click log here, once per (experiment, day)
+        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}",
+                                     clicks_root="{{ params.clicks_root }}", **paths)
         # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
-        estimate = EstimateArmsOperator(task_id="estimate", clicks_root="{{ params.clicks_root }}",
-                                        confidence_level="{{ params.confidence_level }}", cluster="{{ params.cluster }}",
-                                        **paths)
+        estimate = EstimateArmsOperator(task_id="estimate", confidence_level="{{ params.confidence_level }}",
+                                        cluster="{{ params.cluster }}", **paths)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
 

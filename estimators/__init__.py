@@ -4,10 +4,12 @@ Public API
 ----------
 estimate_arms
     Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids.
-load_experiment, load_experiments, parse_experiments
-    Read and validate experiment specs.
+load_experiment, load_experiments, parse_experiments, parse_day
+    Read and validate experiment specs; parse a day.
 allocation_rule, mixture_rule
     Allocation rules of position auctions in quantile space.
+measured_position_weights
+    Position weights of ``measured`` arms from pooled clicks and impressions.
 simulate_experiment, equilibrium_bid_function, expected_revenue_per_auction
     Equilibrium simulator (tests, demo).
 """
@@ -26,6 +28,7 @@ from .arms import (
 from .checks import CheckResult, worst_failure
 from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
+from .position_weights import measured_position_weights
 from .simulate import (
     BidFunction,
     equilibrium_bid_function,
@@ -33,7 +36,7 @@ from .simulate import (
     expected_welfare_per_auction,
     simulate_experiment,
 )
-from .spec import Arm, Experiment, load_experiment, load_experiments, parse_experiments
+from .spec import Arm, Experiment, load_experiment, load_experiments, parse_day, parse_experiments
 
 __all__ = [
     "AllocationRule",
@@ -57,7 +60,9 @@ __all__ = [
     "expected_welfare_per_auction",
     "load_experiment",
     "load_experiments",
+    "measured_position_weights",
     "mixture_rule",
+    "parse_day",
     "parse_experiments",
     "prepare_bids",
     "revenue_weights",

@@ -24,7 +24,7 @@ from scipy import interpolate, stats
 
 from .allocation import allocation_rule, mixture_rule
 from .errors import InputError
-from .spec import Experiment
+from .spec import Experiment, parse_day
 
 __all__ = [
     "CheckResult",
@@ -195,7 +195,7 @@ def _setting(value: Any, default: Any, where: str, key: str) -> Any:
     if key == "changed_on":
         if isinstance(value, (str, bytes)) or not isinstance(value, Sequence):
             raise InputError(f"{where}: must be a list of dates YYYY-MM-DD; got {value!r}")
-        return [_as_date(v, where) for v in value]
+        return [parse_day(v, what=where) for v in value]
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
         raise InputError(f"{where}: must be a finite number; got {value!r}")
     if isinstance(default, int) and not isinstance(default, bool):
@@ -205,17 +205,6 @@ def _setting(value: Any, default: Any, where: str, key: str) -> Any:
     if value < 0:
         raise InputError(f"{where}: must be >= 0; got {value!r}")
     return float(value)
-
-
-def _as_date(value: Any, where: str) -> _dt.date:
-    if isinstance(value, _dt.datetime):
-        return value.date()
-    if isinstance(value, _dt.date):
-        return value
-    try:
-        return _dt.date.fromisoformat(str(value))
-    except ValueError:
-        raise InputError(f"{where}: must be a date YYYY-MM-DD; got {value!r}") from None
 
 
 def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> dict[str, dict[str, Any]]:
@@ -389,7 +378,7 @@ def warmup_check(experiment: Experiment, ds, *, config: Mapping[str, Any] | None
     that takes depends on the market (common practice: a few days).
     """
     cfg = _config(config, experiment)["warmup"]
-    day = _as_date(ds, "ds")
+    day = parse_day(ds)
     changes = sorted({d for d in [experiment.start, *cfg["changed_on"]] if d is not None and d <= day})
     if not changes:
         return _result("warmup", cfg, True, None, cfg["days"], note="no start or share change on or before ds")
@@ -717,7 +706,7 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     cfg = _config(config, experiment)
     data = _prepared(bids, experiment, source)
     if isinstance(history, pd.DataFrame) and ds is not None and "ds" in history.columns:
-        day = pd.Timestamp(_as_date(ds, "ds"))
+        day = pd.Timestamp(parse_day(ds))
         hist_days = pd.to_datetime(history["ds"])
         window = (hist_days < day) & (hist_days >= day - pd.Timedelta(days=int(cfg["drift"]["trailing_days"])))
         history = history.loc[window.to_numpy()] if window.any() else None
@@ -749,7 +738,7 @@ def failure_summary(results: Iterable[CheckResult], *, experiment_id: str, ds=No
     """
     results = list(results)
     failed = sorted((r for r in results if not r.passed), key=lambda r: (-SEVERITIES.index(r.severity), r.check))
-    day = "" if ds is None else f" {_as_date(ds, 'ds').isoformat()}"
+    day = "" if ds is None else f" {parse_day(ds).isoformat()}"
     if not failed:
         return f"{experiment_id}{day}: all {len(results)} checks passed"
     lines = [f"{experiment_id}{day}: {len(failed)} of {len(results)} checks failed (worst: {worst_failure(failed)})"]

@@ -30,6 +30,7 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import yaml
 
 from .errors import InputError
@@ -41,6 +42,7 @@ __all__ = [
     "SHARE_TOLERANCE",
     "load_experiment",
     "load_experiments",
+    "parse_day",
     "parse_experiments",
 ]
 
@@ -170,17 +172,45 @@ def _weights(raw: Any, where: str) -> tuple[float, ...]:
     return tuple(out)
 
 
-def _date(raw: Any, where: str) -> _dt.date | None:
-    if raw is None:
-        return None
-    if isinstance(raw, _dt.datetime):
-        return raw.date()
-    if isinstance(raw, _dt.date):
-        return raw
+def parse_day(value: Any, *, what: str = "ds") -> _dt.date:
+    """A calendar day from a ``date``, a ``datetime`` or an ISO 8601 text.
+
+    Parameters
+    ----------
+    value : date, datetime, numpy.datetime64 or str
+        ``datetime`` values (``pandas.Timestamp`` included) give their date; texts are
+        ``YYYY-MM-DD`` or an ISO date-time such as Airflow's ``2026-03-02T00:00:00+00:00``.
+        Numbers are refused.
+    what : str, optional
+        What is being parsed (``ds``, ``--start``, a spec key); named in the error message.
+
+    Returns
+    -------
+    datetime.date
+
+    Raises
+    ------
+    InputError
+        ``value`` is not a day; the message names ``what`` and shows the value.
+
+    Examples
+    --------
+    >>> parse_day("2026-03-02T00:00:00+00:00")
+    datetime.date(2026, 3, 2)
+    """
+    if isinstance(value, _dt.datetime):
+        return value.date()
+    if isinstance(value, _dt.date):
+        return value
+    text = value if isinstance(value, str) else str(value)[:10] if isinstance(value, np.datetime64) else None
     try:
-        return _dt.date.fromisoformat(str(raw))
+        if text is not None and len(text) > 10 and text[10] in "T ":  # a date-time: its date
+            return _dt.datetime.fromisoformat(text).date()
+        if text is not None:
+            return _dt.date.fromisoformat(text)
     except ValueError:
-        raise InputError(f"{where}: must be a date YYYY-MM-DD; got {raw!r}") from None
+        pass
+    raise InputError(f"{what}: must be a date YYYY-MM-DD; got {value!r}")
 
 
 def _experiment(raw: Any, where: str) -> Experiment:
@@ -230,8 +260,8 @@ def _experiment(raw: Any, where: str) -> Experiment:
     floor = raw.get("floor")
     if floor is not None and (isinstance(floor, bool) or not isinstance(floor, (int, float)) or not math.isfinite(floor) or floor < 0):
         raise InputError(f"{where}: 'floor' must be a finite number >= 0; got {floor!r}")
-    start = _date(raw.get("start"), f"{where} start")
-    end = _date(raw.get("end"), f"{where} end")
+    start = None if raw.get("start") is None else parse_day(raw["start"], what=f"{where} start")
+    end = None if raw.get("end") is None else parse_day(raw["end"], what=f"{where} end")
     if start and end and end < start:
         raise InputError(f"{where}: end {end} is before start {start}")
     checks = raw.get("checks") or {}

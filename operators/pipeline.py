@@ -15,13 +15,14 @@ from typing import Any
 from airflow.sdk import Asset, BaseOperator
 from airflow.sdk.exceptions import AirflowFailException
 
-from counterbid.estimators import CheckResult, load_experiment
+from counterbid.estimators import CheckResult, load_experiment, parse_day
 from counterbid.estimators.arms import CLUSTERS
 from counterbid.estimators.errors import InputError
 from counterbid.sql import validate_identifier
 
 from . import notify, partition
 from .hooks import DEFAULT_CONN_ID, ResultsHook
+from .staging import StagedPartition
 
 __all__ = [
     "DEFAULT_CLUSTER",
@@ -51,6 +52,7 @@ DEFAULT_CLUSTER = "auto" if "auto" in CLUSTERS else "auction"
 
 
 def _templated(value: object) -> bool:
+    """A value Airflow will render (a Jinja template), checked only when the task runs."""
     return isinstance(value, str) and "{{" in value
 
 
@@ -87,7 +89,7 @@ class _PartitionOperator(BaseOperator):
                            schema=self.results_schema)
 
     def day(self):
-        return partition.parse_day(self.ds)
+        return parse_day(self.ds)
 
     def experiment(self):
         return load_experiment(self.spec_path, self.experiment_id)
@@ -96,27 +98,43 @@ class _PartitionOperator(BaseOperator):
 class LoadPartitionOperator(_PartitionOperator):
     """Stage one experiment's bids of one day (and experiment-to-date) from the bid lake.
 
+    Arms whose position weights are ``measured`` get them here, from the click log, once per
+    (experiment, day); the validate and estimate steps read them from staging.
+
     Parameters
     ----------
     lake_root : str
         Root of the Hive-partitioned bid lake (``<root>/ds=YYYY-MM-DD/*.parquet``), a local path
         or an object-store URL. Read with partition pruning. Templated.
+    clicks_root : str, optional
+        Root of the click log, needed when an arm's position weights are ``measured``. Templated.
+    click_window_days : int
+        Trailing days of clicks pooled for measured weights (default 7).
     """
 
-    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "lake_root")
+    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "lake_root", "clicks_root")
 
-    def __init__(self, *, lake_root: str | Path, **kwargs: Any) -> None:
+    def __init__(
+        self, *, lake_root: str | Path, clicks_root: str | None = None, click_window_days: int = 7, **kwargs: Any
+    ) -> None:
         super().__init__(**kwargs)
+        if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
+            raise InputError(f"{self.task_id}: `click_window_days` must be an integer >= 1; got {click_window_days!r}")
         self.lake_root = str(lake_root)
+        self.clicks_root = clicks_root
+        self.click_window_days = click_window_days
 
     def execute(self, context) -> dict:
         try:
             out = partition.stage_partition(self.hook(), lake_root=self.lake_root, experiment=self.experiment(),
-                                            ds=self.day(), staging_root=self.staging_root)
+                                            ds=self.day(), staging_root=self.staging_root,
+                                            clicks_root=self.clicks_root or None, click_window_days=self.click_window_days)
         except InputError as exc:  # the same files fail the same way: no retry
             raise AirflowFailException(str(exc)) from None
         log.info("staged %s bids of %s on %s (%s experiment-to-date from %s) in %s", out["day_bids"],
                  self.experiment_id, self.ds, out["to_date_bids"], out["first_ds"], out["folder"])
+        if out["measured_arms"]:
+            log.info("measured position weights of %s staged", ", ".join(out["measured_arms"]))
         return out
 
 
@@ -139,7 +157,7 @@ class ValidatePartitionOperator(_PartitionOperator):
 
     def execute(self, context) -> dict:
         experiment, day = self.experiment(), self.day()
-        staged = partition.StagedPartition.at(self.staging_root, experiment.id, day)
+        staged = StagedPartition.at(self.staging_root, experiment.id, day)
         results = partition.run_partition_checks(self.hook(), experiment=experiment, staged=staged, ds=day)
         status = partition.record_checks(staged, results)
         partition.store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
@@ -156,12 +174,10 @@ class ValidatePartitionOperator(_PartitionOperator):
 class EstimateArmsOperator(_PartitionOperator):
     """Estimate every arm of one (experiment, day) with ``estimate_arms`` (day and to-date).
 
+    Measured position weights are the ones the load step staged.
+
     Parameters
     ----------
-    clicks_root : str, optional
-        Root of the click log, needed when an arm's position weights are ``measured``. Templated.
-    click_window_days : int
-        Trailing days of clicks pooled for measured weights (default 7).
     confidence_level : float or str
         Level of the intervals, in (0, 1). Templated (e.g. ``"{{ params.confidence_level }}"``);
         a rendered string is read as a number when the task runs.
@@ -169,27 +185,21 @@ class EstimateArmsOperator(_PartitionOperator):
         One of ``counterbid.estimators.arms.CLUSTERS``; default :data:`DEFAULT_CLUSTER`. Templated.
     """
 
-    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "clicks_root", "confidence_level", "cluster")
+    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "confidence_level", "cluster")
 
     def __init__(
         self,
         *,
-        clicks_root: str | None = None,
-        click_window_days: int = 7,
         confidence_level: float | str = DEFAULT_CONFIDENCE_LEVEL,
         cluster: str = DEFAULT_CLUSTER,
         **kwargs: Any,
     ) -> None:
         super().__init__(**kwargs)
-        if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
-            raise InputError(f"{self.task_id}: `click_window_days` must be an integer >= 1; got {click_window_days!r}")
         # Templated values are checked when rendered (execute); literal ones fail the DAG's parse.
         if not _templated(confidence_level):
             _level(confidence_level, self.task_id)
         if not _templated(cluster):
             _cluster(cluster, self.task_id)
-        self.clicks_root = clicks_root
-        self.click_window_days = click_window_days
         self.confidence_level = confidence_level
         self.cluster = cluster
 
@@ -200,8 +210,7 @@ class EstimateArmsOperator(_PartitionOperator):
             raise AirflowFailException(str(exc)) from None
         out = partition.estimate_partition(
             self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
-            run_id=str(context["run_id"]), clicks_root=self.clicks_root or None,
-            click_window_days=self.click_window_days, confidence_level=level, cluster=cluster)
+            run_id=str(context["run_id"]), confidence_level=level, cluster=cluster)
         log.info("estimated %s on %s (status %s): day revenue per auction %s", self.experiment_id, self.ds,
                  out["status"], out["day_revenue_per_auction"])
         return out

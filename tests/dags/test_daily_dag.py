@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 
 import duckdb
+import numpy as np
 import pandas as pd
 import pyarrow.dataset as pads
 import pytest
@@ -191,3 +192,70 @@ def test_backfill_rejects_a_broken_spec(tmp_path, capsys):
     assert main(["backfill", "--lake", str(tmp_path), "--experiments", str(spec), "--results", str(tmp_path / "r.duckdb"),
                  "--start", "2026-03-02", "--end", "2026-03-02"]) == 2
     assert "shares must sum to 1" in capsys.readouterr().err
+
+
+MEASURED_SPEC = """
+experiments:
+  - id: strips
+    control_arm: flat
+    start: 2026-03-02
+    arms:
+      - {name: flat,  share: 0.6, position_weights: measured}
+      - {name: steep, share: 0.4, position_weights: [0.5, 0.15, 0.05]}
+"""
+
+
+def test_measured_position_weights_run_through_validate_estimate_and_write(bag, tmp_path):
+    """An arm with ``position_weights: measured``, a real click log, two days under ``dag.test``.
+
+    The weights the DAG stores must be the weighted isotonic fit of the click log's pooled
+    clicks / impressions (computed here with ``scipy.optimize.isotonic_regression`` directly on
+    the Parquet files), and the stored estimates must be ``estimate_arms`` run with them.
+    """
+    from scipy.optimize import isotonic_regression
+
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(MEASURED_SPEC)
+    measured = load_experiments(spec)["strips"]
+    # the bids are simulated with known weights for the 'measured' arm; the click log follows them
+    truth = measured.with_position_weights({"flat": [0.4, 0.2, 0.1]})
+    write_bid_lake(tmp_path / "bids", [truth], start=START, days=2, auctions_per_day=3000, n_bidders=4, seed=8,
+                   clicks_root=tmp_path / "clicks")
+    conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec),
+            "results_database": str(tmp_path / "results.duckdb"), "staging_root": str(tmp_path / "staging"),
+            "clicks_root": str(tmp_path / "clicks")}
+    runs = run_days(DAYS[:2], conf=conf)
+    assert [r.state for r in runs] == ["success"] * 2, [r.line() for r in runs]
+
+    stored = _table(conf["results_database"], "arm_position_weights")
+    clicks = pads.dataset(str(tmp_path / "clicks"), format="parquet", partitioning="hive").to_table().to_pandas()
+    clicks["ds"] = pd.to_datetime(clicks["ds"]).dt.date
+    lake = _lake(tmp_path)
+    daily = _table(conf["results_database"], "arm_estimates")
+    for day in DAYS[:2]:
+        rows = stored[stored["ds"] == pd.Timestamp(day)]
+        flat = rows[rows["arm"] == "flat"].sort_values("position")
+        assert set(flat["source"]) == {"measured"} and set(rows.loc[rows["arm"] == "steep", "source"]) == {"spec"}
+        # the default window (7 days) reaches back before the first day: every day so far is pooled
+        assert set(flat["first_click_ds"]) == {pd.Timestamp(day - dt.timedelta(days=6))}
+        pooled = (clicks[(clicks["arm"] == "flat") & (clicks["ds"] <= day)]
+                  .groupby("position")[["impressions", "clicks"]].sum().sort_index())
+        want = isotonic_regression((pooled["clicks"] / pooled["impressions"]).to_numpy(),
+                                   weights=pooled["impressions"].to_numpy(float), increasing=False).x
+        assert flat["position"].tolist() == pooled.index.tolist()
+        assert flat["impressions"].tolist() == pooled["impressions"].tolist()
+        assert flat["clicks"].tolist() == pooled["clicks"].tolist()
+        np.testing.assert_allclose(flat["weight"].to_numpy(), want, rtol=1e-12)
+        assert flat["weight"].to_numpy() == pytest.approx([0.4, 0.2, 0.1], abs=0.02)  # the simulated truth
+        filled = measured.with_position_weights({"flat": flat["weight"].tolist()})
+        frame = lake[lake["ds"] == day].reset_index(drop=True)
+        want_est = estimate_arms(frame, filled)
+        got = daily[daily["ds"] == pd.Timestamp(day)]
+        merged = want_est.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
+        assert (merged["_merge"] == "both").all() and len(got) == len(want_est)
+        for col in VALUES:
+            pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
+                                           check_dtype=False)
+    with duckdb.connect(conf["results_database"], read_only=True) as con:
+        stored_checks = con.execute("select count(*), count(distinct ds) from data_checks where experiment_id = 'strips'").fetchone()
+    assert stored_checks[0] > 0 and stored_checks[1] == 2  # the full runner ran on both days

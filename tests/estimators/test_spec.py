@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import datetime as dt
 
+import numpy as np
+import pandas as pd
 import pytest
 
-from counterbid.estimators import InputError, load_experiment, load_experiments, parse_experiments
+from counterbid.estimators import InputError, load_experiment, load_experiments, parse_day, parse_experiments
 
 
 def doc(**over):
@@ -98,3 +100,17 @@ def test_known_optional_keys_are_accepted():
         {"name": "a", "share": 1.0, "position_weights": [0.3], "description": "the current layout"}])}
     exp = parse_experiments(document)["e1"]
     assert exp.checks == {"sample_ratio": {"alpha": 1e-4}} and exp.arm_names == ("a",)
+
+
+@pytest.mark.parametrize("value", [
+    dt.date(2026, 3, 2), dt.datetime(2026, 3, 2, 23, 59), pd.Timestamp("2026-03-02 05:00", tz="UTC"),
+    "2026-03-02", "2026-03-02T00:00:00+00:00", "2026-03-02 00:00:00", np.datetime64("2026-03-02"),
+])
+def test_parse_day_accepts_dates_datetimes_and_iso_text(value):
+    assert parse_day(value) == dt.date(2026, 3, 2)
+
+
+@pytest.mark.parametrize("value", ["yesterday", "2026-13-01", "2026-03-02garbage", "2026-03-02T25:00", None, 20260302.5])
+def test_parse_day_names_what_it_was_parsing(value):
+    with pytest.raises(InputError, match=r"^--start: must be a date YYYY-MM-DD; got "):
+        parse_day(value, what="--start")

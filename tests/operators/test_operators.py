@@ -43,7 +43,6 @@ experiments:
 
 @pytest.mark.parametrize("kwargs, message", [
     ({"results_schema": "main; drop"}, "results_schema must be"),
-    ({"click_window_days": 0}, "click_window_days"),
     ({"confidence_level": 1.5}, "confidence_level"),
     ({"cluster": "session"}, "cluster"),
     ({"staging_root": ""}, "staging_root"),
@@ -70,14 +69,20 @@ def test_templated_level_and_cluster_are_checked_when_rendered(level, cluster, m
         op.execute({"run_id": "r"})
 
 
+@pytest.mark.parametrize("window", [0, True, 2.5])
+def test_bad_click_window_fails_at_construction(window):
+    with pytest.raises(InputError, match="click_window_days"):
+        LoadPartitionOperator(task_id="load", lake_root="/lake", click_window_days=window, **COMMON)
+
+
 def test_templated_fields_and_writer_defaults():
     load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}", **COMMON)
-    assert {"ds", "lake_root", "spec_path", "staging_root", "experiment_id"} <= set(load.template_fields)
+    assert {"ds", "lake_root", "clicks_root", "spec_path", "staging_root", "experiment_id"} <= set(load.template_fields)
     assert load.ds == "{{ ds }}"
     write = WriteEstimatesOperator(task_id="write", **COMMON)
     assert write.pool == WRITER_POOL and write.outlets == [RESULTS_ASSET]
-    assert "clicks_root" in EstimateArmsOperator(task_id="e", **COMMON).template_fields
-    assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-1]
+    assert EstimateArmsOperator(task_id="e", **COMMON).template_fields == load.template_fields[:-2]
+    assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-2]
 
 
 def test_a_day_with_bad_bids_fails_validation_and_writes_nothing_for_it(airflow_db, tmp_path, capfd, caplog):

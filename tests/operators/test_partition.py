@@ -14,11 +14,16 @@ import pytest
 import scipy.stats as st
 
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import estimate_arms, expected_revenue_per_auction, parse_experiments
+from counterbid.estimators import (
+    CheckResult, estimate_arms, expected_revenue_per_auction, parse_day, parse_experiments, worst_failure,
+)
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition
+from counterbid.operators.check_runner import read_check_results
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.pipeline import failed_checks_message
+from counterbid.operators.schema_gate import schema_gate
+from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 3, 2)
 SPEC = {"experiments": [{
@@ -58,7 +63,7 @@ def _stage(hook, lake, experiment, tmp_path, day):
 def test_stage_writes_the_day_and_the_experiment_to_date(hook, lake, experiment, tmp_path):
     day = START + dt.timedelta(days=2)
     out = _stage(hook, lake, experiment, tmp_path, day)
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     got_day = pq.read_table(staged.day).to_pandas()
     got_all = pq.read_table(staged.to_date).to_pandas()
     assert out["day_bids"] == len(got_day) == len(_lake_day(lake / "bids", day))
@@ -69,7 +74,7 @@ def test_stage_writes_the_day_and_the_experiment_to_date(hook, lake, experiment,
 
 def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
     _stage(hook, lake, experiment, tmp_path, START)
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", START)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
     results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=START)
     gate = [r for r in results if r.check.startswith("schema_")]
     assert gate and all(r.passed and r.severity == "error" for r in gate)
@@ -82,10 +87,10 @@ def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
 
 
 def _gate_on(hook, experiment, tmp_path, frame):
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", START)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
     staged.folder.mkdir(parents=True, exist_ok=True)
     pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), staged.day)
-    return staged, partition.schema_gate(hook, experiment=experiment, staged=staged)
+    return staged, schema_gate(hook, experiment=experiment, staged=staged)
 
 
 def test_schema_gate_lists_every_failing_column(hook, lake, experiment, tmp_path):
@@ -122,8 +127,8 @@ def test_schema_gate_counts_unknown_arms_and_empty_days(hook, lake, experiment, 
 def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, experiment, tmp_path):
     day = START + dt.timedelta(days=1)
     _stage(hook, lake, experiment, tmp_path, day)
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
-    partition.record_checks(staged, partition.schema_gate(hook, experiment=experiment, staged=staged))
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
+    partition.record_checks(staged, schema_gate(hook, experiment=experiment, staged=staged))
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
     want = estimate_arms(_lake_day(lake / "bids", day), experiment)
     got = pq.read_table(staged.estimates_day).to_pandas()
@@ -145,25 +150,13 @@ def test_estimate_refuses_a_partition_that_failed_its_checks(hook, lake, experim
         partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=tmp_path / "stage", run_id="r")
 
 
-def test_measured_weights_are_monotone_isotonic_fits():
-    exp = parse_experiments({"experiments": [{"id": "m", "control_arm": "a", "arms": [
-        {"name": "a", "share": 0.5, "position_weights": "measured"},
-        {"name": "b", "share": 0.5, "position_weights": [0.3]}]}]})["m"]
-    clicks = pd.DataFrame({"arm": ["a"] * 4, "position": [1, 2, 3, 5], "impressions": [100, 100, 300, 50],
-                           "clicks": [40, 10, 45, 1]})
-    out = partition.measured_position_weights(clicks, exp)["a"]
-    # positions 1..3 (5 follows a gap); 0.10 < 0.15 violates monotonicity: pooled to (10+45)/400
-    assert out["weights"] == pytest.approx([0.4, 55 / 400, 55 / 400])
-    assert out["impressions"] == [100, 100, 300]
-    with pytest.raises(InputError, match="no clicks"):
-        partition.measured_position_weights(clicks.assign(arm="zzz"), exp)
-
-
 def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     """Bids simulated with known weights; estimated with weights measured from simulated clicks.
 
-    Reference: the arm's revenue in its own equilibrium (Myerson 1981, Lemma 3), computed by
-    ``expected_revenue_per_auction``; the estimate with measured weights must be within 4 SE.
+    The load step measures the weights once and stages them; the full checks and the estimate
+    both use the staged weights. Reference: the arm's revenue in its own equilibrium (Myerson
+    1981, Lemma 3), computed by ``expected_revenue_per_auction``; the estimate with measured
+    weights must be within 4 SE.
     """
     truth = parse_experiments(SPEC)["tiles"]
     measured = parse_experiments({"experiments": [dict(SPEC["experiments"][0], arms=[
@@ -173,11 +166,17 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
                    values=values, clicks_root=tmp_path / "clicks")
     hook = ResultsHook(database=tmp_path / "r.duckdb")
     day = START + dt.timedelta(days=1)
-    partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day, staging_root=tmp_path / "s")
-    staged = partition.StagedPartition.at(tmp_path / "s", "tiles", day)
-    partition.record_checks(staged, partition.schema_gate(hook, experiment=measured, staged=staged))
-    partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r",
-                                 clicks_root=tmp_path / "clicks", click_window_days=2)
+    with pytest.raises(InputError, match="needs a click log"):
+        partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day, staging_root=tmp_path / "s")
+    out = partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day,
+                                    staging_root=tmp_path / "s", clicks_root=tmp_path / "clicks", click_window_days=2)
+    assert out["measured_arms"] == ["plain"]
+    staged = StagedPartition.at(tmp_path / "s", "tiles", day)
+    results = partition.run_partition_checks(hook, experiment=measured, staged=staged, ds=day)
+    assert len(results) > len(schema_gate(hook, experiment=measured, staged=staged))  # the full runner ran
+    assert all(r.passed for r in results if r.severity == "error"), [r.describe() for r in results if not r.passed]
+    partition.record_checks(staged, results)
+    partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r")
     weights = pq.read_table(staged.weights).to_pandas()
     plain = weights[weights["arm"] == "plain"]
     assert set(plain["source"]) == {"measured"} and plain["first_click_ds"].iloc[0] == START
@@ -185,7 +184,8 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     est = pq.read_table(staged.estimates_to_date).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
     want = expected_revenue_per_auction(values, [0.4, 0.2, 0.1], 4)
     assert abs(est.loc["plain", "estimate"] - want) < 4 * est.loc["plain", "std_error"] + 0.01 * want
-    with pytest.raises(InputError, match="needs a click log"):
+    staged.measured_weights.unlink()
+    with pytest.raises(InputError, match="run the 'load' step"):
         partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r")
 
 
@@ -197,37 +197,62 @@ def test_active_experiments_and_bad_inputs(tmp_path):
     assert partition.active_experiment_ids(spec, "2026-03-04") == ["b"]
     assert partition.active_experiment_ids(spec, "2026-03-06T00:00:00+00:00") == ["a", "b"]
     with pytest.raises(InputError, match="ds: must be a date"):
-        partition.parse_day("yesterday")
+        parse_day("yesterday")
     with pytest.raises(InputError, match="cannot name a staging folder"):
-        partition.StagedPartition.at(tmp_path, "../escape", START)
+        StagedPartition.at(tmp_path, "../escape", START)
 
 
-def test_the_full_check_runner_plugs_into_the_seam(hook, lake, experiment, tmp_path, monkeypatch):
-    """With the data-checks runner plugged in, its outcomes follow the gate's and set the status."""
-    checks = pytest.importorskip("counterbid.operators.checks")
-    monkeypatch.setattr(partition, "CHECK_RUNNER", checks.run_checks)
-    monkeypatch.setattr(partition, "CHECK_RECORDER", checks.write_check_results)
+def test_the_full_check_runner_runs_after_the_gate_and_its_outcomes_are_stored(hook, lake, experiment, tmp_path):
     day = START + dt.timedelta(days=2)
     _stage(hook, lake, experiment, tmp_path, day)
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=day)
-    gate = partition.schema_gate(hook, experiment=experiment, staged=staged)
+    gate = schema_gate(hook, experiment=experiment, staged=staged)
     assert [r.check for r in results[: len(gate)]] == [r.check for r in gate]
-    assert len(results) > len(gate)  # the runner added its checks
-    partition.store_checks(hook, results, experiment_id="tiles", ds=day, run_id="seam")
-    assert hook.table_exists("data_checks")
+    later = {r.check for r in results[len(gate):]}
+    assert {"sample_ratio", "warmup"} <= later  # statistical checks of the runner, after its contract suite
+    partition.store_checks(hook, results, experiment_id="tiles", ds=day, run_id="full")
+    with hook.connect(read_only=True) as con:
+        stored = read_check_results(con, experiment_id="tiles", ds=day)
+    assert sorted(stored["check"]) == sorted(r.check for r in results) and set(stored["run_id"]) == {"full"}
     status = hook.fetch_df("report_day_check_status", {"experiment_id": "tiles"})
     assert status["n_checks"].tolist() == [len(results)]
-    assert partition.record_checks(staged, results) == (partition.worst_failure(results) or "ok")
+    assert partition.record_checks(staged, results) == (worst_failure(results) or "ok")
 
 
-def test_a_failing_recorder_never_fails_the_step(hook, monkeypatch, caplog):
-    def broken(con, results, **kwargs):
-        raise RuntimeError("disk full")
+def test_a_results_database_the_recorder_cannot_write_never_fails_the_step(tmp_path, caplog):
+    """A ``data_checks`` table of another shape already in the results file: the insert fails for real."""
+    hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=0)
+    with hook.connect() as con:
+        con.execute("create table data_checks (note varchar)")
+    results = [CheckResult("sample_ratio", "warning", False, 0.001, 0.01)]
+    partition.store_checks(hook, results, experiment_id="tiles", ds=START, run_id="r")  # does not raise
+    assert "could not store the check outcomes of tiles on 2026-03-02" in caplog.text
+    with hook.connect(read_only=True) as con:  # rolled back: the foreign table is untouched
+        assert con.execute("select count(*) from data_checks").fetchone()[0] == 0
 
-    monkeypatch.setattr(partition, "CHECK_RECORDER", broken)
-    partition.store_checks(hook, [], experiment_id="tiles", ds=START, run_id="r")
-    assert "could not store the check outcomes" in caplog.text
+
+def test_a_results_database_locked_by_another_process_never_fails_the_step(tmp_path, caplog):
+    import subprocess
+    import sys
+    import textwrap
+
+    path = tmp_path / "locked.duckdb"
+    code = textwrap.dedent(f"""
+        import duckdb, time
+        con = duckdb.connect({str(path)!r})
+        print("locked", flush=True)
+        time.sleep(3)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout.readline().strip() == "locked"
+        hook = ResultsHook(database=path, lock_timeout=0.2)
+        partition.store_checks(hook, [], experiment_id="tiles", ds=START, run_id="r")  # does not raise
+        assert "could not store the check outcomes" in caplog.text and "Could not set lock" in caplog.text
+    finally:
+        proc.kill()
+        proc.wait(timeout=30)
 
 
 def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, experiment, tmp_path, monkeypatch):
@@ -236,9 +261,9 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
 
     day = START + dt.timedelta(days=1)
     _stage(hook, lake, experiment, tmp_path, day)
-    staged = partition.StagedPartition.at(tmp_path / "stage", "tiles", day)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     warned = CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3, details={})
-    assert partition.record_checks(staged, [*partition.schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
+    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
 
     real = partition.estimate_arms
 

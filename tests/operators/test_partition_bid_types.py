@@ -19,6 +19,7 @@ import scipy.stats as st
 
 from counterbid.estimators import parse_experiments, simulate_experiment
 from counterbid.operators import partition
+from counterbid.operators.staging import StagedPartition
 from counterbid.operators.hooks import ResultsHook
 
 DAY = dt.date(2026, 3, 2)
@@ -60,7 +61,7 @@ def _run(tmp_path, name, exp, table):
     hook = ResultsHook(database=tmp_path / name / "results.duckdb", lock_timeout=5)
     stage = tmp_path / name / "stage"
     partition.stage_partition(hook, lake_root=lake.parent, experiment=exp, ds=DAY, staging_root=stage)
-    staged = partition.StagedPartition.at(stage, "tiles", DAY)
+    staged = StagedPartition.at(stage, "tiles", DAY)
     results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAY)
     if partition.record_checks(staged, results) == "error":
         return results, None

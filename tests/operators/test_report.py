@@ -10,8 +10,11 @@ import pytest
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import CheckResult, parse_experiments
 from counterbid.operators import partition, report
+from counterbid.operators.check_runner import write_check_results
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.report import ASSUMPTIONS, cumulative_table, format_cumulative, write_report
+from counterbid.operators.schema_gate import schema_gate
+from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 3, 2)
 SPEC = {"experiments": [{
@@ -34,8 +37,8 @@ def results(tmp_path_factory):
     for k, (level, cluster, warned, flag) in enumerate(RUNS):
         day = START + dt.timedelta(days=k)
         partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
-        staged = partition.StagedPartition.at(root / "s", exp.id, day)
-        checks = partition.schema_gate(hook, experiment=exp, staged=staged)
+        staged = StagedPartition.at(root / "s", exp.id, day)
+        checks = schema_gate(hook, experiment=exp, staged=staged)
         if warned:
             checks.append(CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3))
         partition.record_checks(staged, checks)
@@ -103,12 +106,10 @@ def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
 
 def test_report_shows_the_worst_check_status_per_day(results, tmp_path):
     root, hook = results
-    with hook.connect() as con:
-        con.execute("create or replace table data_checks (experiment_id varchar, ds date, \"check\" varchar,"
-                    " severity varchar, passed boolean, observed double, threshold double, details varchar,"
-                    " run_id varchar, checked_at timestamptz)")
-        con.execute("insert into data_checks values ('tiles', '2026-03-03', 'sample_ratio', 'warning', false,"
-                    " 0.001, 0.01, '{}', 'r', now()), ('tiles', '2026-03-03', 'rows', 'error', true, 1, 1, '{}', 'r', now())")
+    with hook.connect() as con:  # stored by the pipeline's own writer (it creates the table)
+        write_check_results(con, [CheckResult("sample_ratio", "warning", False, 0.001, 0.01),
+                                  CheckResult("rows", "error", True, 1.0, 1.0)], experiment_id="tiles", ds="2026-03-03",
+                            run_id="r")
     text = write_report(hook, tmp_path).read_text()
     assert "<th>data checks</th>" in text
     assert "warning (1/2 failed)" in text and text.count("not run") == 2

@@ -150,14 +150,15 @@ def test_lift_view_pairs_lift_with_revenue(hook):
 
 def test_day_check_status_view_reports_the_worst(hook):
     hook.ensure_tables()
-    with hook.connect() as con:  # the shape the data-checks table has (built by the checks issue)
-        con.execute("create table data_checks (experiment_id varchar, ds date, \"check\" varchar, severity varchar,"
-                    " passed boolean, observed double, threshold double, details varchar, run_id varchar,"
-                    " checked_at timestamptz)")
-        con.executemany("insert into data_checks values (?, ?, ?, ?, ?, null, null, null, 'r', now())", [
-            ("tiles", D1, "a", "error", True), ("tiles", D1, "b", "warning", True),
-            ("tiles", D2, "a", "error", True), ("tiles", D2, "b", "warning", False),
-            ("banners", D2, "a", "error", False)])
+    with hook.connect() as con:  # the table as the pipeline creates and fills it
+        con.execute(hook.sql("data_checks_create"))
+        for exp, ds, check, severity, passed in [
+                ("tiles", D1, "a", "error", True), ("tiles", D1, "b", "warning", True),
+                ("tiles", D2, "a", "error", True), ("tiles", D2, "b", "warning", False),
+                ("banners", D2, "a", "error", False)]:
+            con.execute(hook.sql("data_checks_insert"), {
+                "experiment_id": exp, "ds": ds, "check": check, "severity": severity, "passed": passed,
+                "observed": None, "threshold": None, "details": None, "run_id": "r", "checked_at": NOW})
     assert hook.table_exists("data_checks") and not hook.table_exists("nothing_here")
     got = hook.fetch_df("report_day_check_status", {"experiment_id": "tiles"})
     assert got["worst_status"].tolist() == ["passed", "warning"]

@@ -19,30 +19,14 @@ import pyarrow.compute as pc
 
 from counterbid.estimators.checks import CheckResult, check_config, equilibrium_checks
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.spec import Experiment
+from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
 
 from .contract import run_contract
 
-__all__ = ["DATA_CHECKS_COLUMNS", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
-
-#: Columns of the ``data_checks`` table, in order.
-DATA_CHECKS_COLUMNS = (
-    "experiment_id", "ds", "check", "severity", "passed", "observed", "threshold", "details", "run_id", "checked_at",
-)
-
-
-def _day(ds: Any) -> dt.date:
-    if isinstance(ds, dt.datetime):
-        return ds.date()
-    if isinstance(ds, dt.date):
-        return ds
-    try:
-        return dt.date.fromisoformat(str(ds))
-    except ValueError:
-        raise InputError(f"`ds` must be a date YYYY-MM-DD; got {ds!r}") from None
 
 
 def run_checks(
@@ -85,7 +69,7 @@ def run_checks(
     validate_identifier(relation, what="relation")
     if history_relation is not None:
         validate_identifier(history_relation, what="history_relation")
-    day = _day(ds)
+    day = parse_day(ds)
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
     results = run_contract(con, relation, experiment, config=cfg)
     if any(not r.passed and r.severity == "error" for r in results):
@@ -159,7 +143,7 @@ def write_check_results(
     Delete-then-insert of the (experiment, day) inside ``begin ... commit``: re-running a day
     leaves exactly one row per check, and a failure rolls back to the previous rows.
     """
-    day = _day(ds)
+    day = parse_day(ds)
     stamp = checked_at or dt.datetime.now(dt.timezone.utc)
     rows = [
         {
@@ -198,5 +182,5 @@ def write_check_results(
 def read_check_results(con, *, experiment_id: str, ds, schema: str = "main"):
     """Stored outcomes of one (experiment, day) as a DataFrame (failures first)."""
     return con.execute(
-        render_sql("data_checks_select", schema=schema), {"experiment_id": str(experiment_id), "ds": _day(ds)}
+        render_sql("data_checks_select", schema=schema), {"experiment_id": str(experiment_id), "ds": parse_day(ds)}
     ).df()

@@ -12,7 +12,7 @@ import scipy.stats as st
 
 from counterbid.estimators import InputError, parse_experiments, simulate_experiment
 from counterbid.estimators.checks import STATISTICAL_CHECKS, CheckResult, worst_failure
-from counterbid.operators.checks import read_check_results, run_checks, write_check_results
+from counterbid.operators.check_runner import read_check_results, run_checks, write_check_results
 from counterbid.operators.contract import CONTRACT_CHECKS
 
 SPEC = {

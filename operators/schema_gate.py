@@ -1,0 +1,65 @@
+"""The schema gate: the minimal bids data contract of a staged day, checked before anything else.
+
+Columns and their DuckDB types, at least one row, no nulls in the required columns, only the
+spec's arms. Every result has severity ``error``; the full data checks
+(:mod:`counterbid.operators.check_runner`) run only when the gate passes.
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+
+from counterbid.estimators import CheckResult, Experiment
+from counterbid.estimators.bid_contract import BID_CONTRACT
+
+from . import duckdb_types
+from .hooks import ResultsHook
+from .staging import StagedPartition
+
+__all__ = ["CONTRACT_TYPES", "schema_gate"]
+
+#: Accepted DuckDB types (regular expressions) of the bids data contract (README, "Bids data contract"),
+#: translated from ``counterbid.estimators.bid_contract`` by ``operators/duckdb_types.py``.
+CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
+
+
+def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
+    """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms.
+
+    Every result has severity ``error``: a failure stops this (experiment, day).
+    """
+    path = staged.require(staged.day, step="load")
+    columns = hook.staged_columns(path)
+    results = []
+    for name, allowed in CONTRACT_TYPES.items():
+        found = columns.get(name)
+        ok = duckdb_types.accepts(name, found)
+        results.append(CheckResult(
+            check=f"schema_column_{name}", severity="error", passed=ok, observed=1.0 if ok else 0.0, threshold=1.0,
+            details={"kind": BID_CONTRACT[name].kind, "expected": allowed, "found": found or "missing"}))
+    if not all(r.passed for r in results):
+        return results  # counts below need the columns
+    for name, found in columns.items():  # 128-bit (and UBIGINT) integers: accepted when every value fits int64
+        if name in CONTRACT_TYPES and duckdb_types.needs_range_check(name, found):
+            outside, example = hook.staged_integer_range(path, name)
+            results.append(CheckResult(
+                check=f"schema_range_{name}", severity="error", passed=outside == 0, observed=float(outside),
+                threshold=0.0, details={"type": found, "allowed": "int64", "example": example}))
+    if not all(r.passed for r in results):
+        return results
+    counts = hook.staged_arm_counts(path)
+    total = int(counts["n_bids"].sum())
+    results.append(CheckResult(check="schema_rows", severity="error", passed=total >= 1, observed=float(total),
+                               threshold=1.0, details={"experiment_id": experiment.id}))
+    for name, nulls in hook.staged_null_counts(path).items():
+        if BID_CONTRACT[name].nullable:
+            continue
+        results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
+                                   observed=float(nulls), threshold=0.0, details={"rows": total}))
+    unknown = counts[~counts["arm"].isin(experiment.arm_names)]
+    n_unknown = int(unknown["n_bids"].sum())
+    results.append(CheckResult(
+        check="schema_known_arms", severity="error", passed=n_unknown == 0, observed=float(n_unknown), threshold=0.0,
+        details={"unknown_arms": [None if pd.isna(a) else str(a) for a in unknown["arm"]][:10],
+                 "spec_arms": list(experiment.arm_names)}))
+    return results

@@ -1,0 +1,99 @@
+"""The staging folder of one (experiment, day): its file names and atomic writes.
+
+Tasks never pass bids through XCom: each step reads the files an earlier step wrote here and
+writes its own. Every file is written to a temporary name and renamed, so a reader sees the old
+file or the new one, never half of one.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from counterbid.estimators.errors import InputError
+
+__all__ = ["StagedPartition", "stream_parquet", "write_json", "write_parquet"]
+
+_PATH_SAFE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
+
+
+@dataclass(frozen=True)
+class StagedPartition:
+    """Files of one (experiment, day) in the staging folder.
+
+    Attributes
+    ----------
+    folder : Path
+        ``<staging_root>/<experiment_id>/ds=YYYY-MM-DD``.
+    """
+
+    folder: Path
+
+    @classmethod
+    def at(cls, staging_root: str | Path, experiment_id: str, ds: dt.date) -> "StagedPartition":
+        if not _PATH_SAFE.match(experiment_id):
+            raise InputError(f"experiment id {experiment_id!r} cannot name a staging folder (letters, digits, '_', '.', '-')")
+        return cls(Path(staging_root) / experiment_id / f"ds={ds.isoformat()}")
+
+    # written by 'load'
+    day = property(lambda self: self.folder / "day.parquet")
+    to_date = property(lambda self: self.folder / "to_date.parquet")
+    measured_weights = property(lambda self: self.folder / "measured_weights.parquet")
+    # written by 'validate'
+    checks = property(lambda self: self.folder / "checks.json")
+    # written by 'estimate'
+    estimates_day = property(lambda self: self.folder / "estimates_day.parquet")
+    estimates_to_date = property(lambda self: self.folder / "estimates_to_date.parquet")
+    weights = property(lambda self: self.folder / "position_weights.parquet")
+
+    def require(self, path: Path, *, step: str) -> Path:
+        if not path.exists():
+            raise InputError(f"{path}: missing; run the {step!r} step of this (experiment, day) first")
+        return path
+
+
+def _temporary(target: Path) -> Path:
+    target.parent.mkdir(parents=True, exist_ok=True)
+    return target.with_name(f".{target.name}.{os.getpid()}.tmp")
+
+
+def write_parquet(table: pa.Table, target: Path) -> None:
+    """Write ``table`` to ``target`` atomically."""
+    tmp = _temporary(target)
+    pq.write_table(table, tmp)
+    os.replace(tmp, target)  # readers see the old file or the new one, never half of one
+
+
+def stream_parquet(batches: pa.RecordBatchReader, target: Path) -> tuple[int, dt.date | None]:
+    """Write a stream of batches to ``target`` atomically; rows written and the earliest ``ds``."""
+    tmp = _temporary(target)
+    rows, earliest = 0, None
+    has_ds = "ds" in batches.schema.names
+    try:
+        with pq.ParquetWriter(tmp, batches.schema) as writer:
+            for batch in batches:
+                writer.write_batch(batch)
+                rows += batch.num_rows
+                if has_ds and batch.num_rows:
+                    low = pc.min(batch.column("ds")).as_py()
+                    earliest = low if earliest is None or (low is not None and low < earliest) else earliest
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    os.replace(tmp, target)  # readers see the old file or the new one, never half of one
+    return rows, earliest
+
+
+def write_json(payload, target: Path) -> None:
+    """Write ``payload`` as JSON to ``target`` atomically (dates and other values as text)."""
+    tmp = _temporary(target)
+    tmp.write_text(json.dumps(payload, indent=1, default=str), encoding="utf-8")
+    os.replace(tmp, target)
