@@ -81,7 +81,7 @@ def test_templated_fields_and_writer_defaults():
     assert load.ds == "{{ ds }}"
     write = WriteEstimatesOperator(task_id="write", **COMMON)
     assert write.pool == WRITER_POOL and write.outlets == [RESULTS_ASSET]
-    assert EstimateArmsOperator(task_id="e", **COMMON).template_fields == load.template_fields[:-2]
+    assert EstimateArmsOperator(task_id="e", **COMMON).template_fields == (*load.template_fields[:-2], "confidence_level", "cluster")
     assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-2]
 
 
