@@ -142,9 +142,9 @@ def equilibrium_bid_function(
         r, qs = (0.0, 0.0) if floor is None else (float(floor), floor_quantile(values, floor))
         q = qs + (1.0 - qs) * (np.arange(grid_intervals + 1) / grid_intervals)
         if payment_rule == "vcg":
-            return BidFunction(grid=q, bids=_values_at(values, q))
+            return _GspBidFunction(grid=q, bids=_values_at(values, q), rest=np.zeros_like(q), values=values)
         if payment_rule == "gsp":
-            return BidFunction(grid=q, bids=_gsp_bids(values, rule, q, r))
+            return _gsp_bid_function(values, rule, q, r)
         return BidFunction(grid=q, bids=_first_price_bids_with_floor(values, rule, q, r))
     q = np.arange(grid_intervals + 1) / grid_intervals
     r, wts = _nodes(q)
@@ -183,39 +183,69 @@ def _first_price_bids_with_floor(values, rule: AllocationRule, q: np.ndarray, r:
     return b
 
 
-def _gsp_bids(values, rule: AllocationRule, q: np.ndarray, r: float) -> np.ndarray:
+def _gsp_log_d(rule: AllocationRule, q: np.ndarray) -> np.ndarray:
+    """``log D(q)``, ``D = sum_{k<n} W_k c_k (n-k) (1-q)^(k-1) q^(n-k-1)`` (q clipped inside (0, 1))."""
+    n = rule.n_bidders
+    w = rule.position_weights
+    qc = np.clip(q, _Q_LO, _Q_HI)[..., None]
+    k = np.arange(1, n)[w[: n - 1] > 0]
+    c = special.comb(n - 1, k - 1)
+    return special.logsumexp(np.log(w[k - 1] * c * (n - k)) + (k - 1) * np.log1p(-qc) + (n - k - 1) * np.log(qc), axis=-1)
+
+
+def _gsp_value_factor(rule: AllocationRule, q: np.ndarray) -> np.ndarray:
+    """``x'(q) / D(q)`` (in [0, 1]): the weight of the bidder's own value in its gsp bid."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.exp(rule.log_derivative(np.clip(q, _Q_LO, _Q_HI)) - _gsp_log_d(rule, q))
+    return np.where(np.isfinite(out), out, 0.0)
+
+
+@dataclass(frozen=True)
+class _GspBidFunction(BidFunction):
+    """``b(q) = v(q) x'(q)/D(q) + S(q)``: the value part exact at any ``q``, the smooth rest ``S``
+    (bounded even when values are not) interpolated on the grid. ``rule=None``: ``b = v`` (vcg)."""
+
+    rest: np.ndarray = None
+    values: object = None
+    rule: AllocationRule = None
+
+    def __call__(self, q) -> np.ndarray:
+        q = np.asarray(q, dtype=float)
+        if self.rule is None:  # vcg: b = v
+            return self.values.ppf(q)
+        rest = interpolate.PchipInterpolator(self.grid, self.rest)(q)
+        return self.values.ppf(q) * _gsp_value_factor(self.rule, q) + rest
+
+
+def _gsp_bid_function(values, rule: AllocationRule, q: np.ndarray, r: float) -> BidFunction:
     """Forward solution of the generalized-second-price Volterra equation on ``q`` (``q[0] = q*``).
 
     State: ``beta_k(q) = B_k(q) / q^m`` (``m = n - k``), a weighted mean of ``b`` below ``q``
     (plus the floor's share), so nothing under- or overflows near ``q = 0``. With
     ``e_k = W_k c_k (k-1) (1-q)^(k-2) q^m / D`` (``sum_k e_k = 1 - x'/D <= 1``) the equation reads
-    ``b = v x'/D + sum_k e_k beta_k``. Over a step ``[q0, q1]`` with ``b`` linear,
-    ``beta_k(q1) = rho^m beta_k(q0) + b0 (1 - rho^m - G_k) + b1 G_k`` (``rho = q0/q1``), which is
-    linear in ``b1``: each step solves one scalar equation.
+    ``b = v x'/D + S``, ``S = sum_k e_k beta_k``. Over a step ``[q0, q1]`` the value part
+    ``v x'/D`` is integrated by 16-point Gauss-Legendre (never at ``q = 1``, where unbounded values
+    are infinite) and ``S`` as a linear function, so
+    ``beta_k(q1) = rho^m beta_k(q0) + m/q1^m int v x'/D s^(m-1) + S0 (1 - rho^m - G_k) + S1 G_k``
+    (``rho = q0/q1``), linear in ``S1``: each step solves one scalar equation.
     """
     n = rule.n_bidders
-    v = _values_at(values, q)
     if n == 1:
-        return v
+        return _GspBidFunction(grid=q, bids=_values_at(values, q), rest=np.zeros_like(q), values=values, rule=rule)
     w = rule.position_weights
-    k = np.arange(1, n + 1)
-    c = special.comb(n - 1, k - 1)
     if not np.any(w[: n - 1] > 0):
         raise InputError("gsp: no position above the last is shown, so no bid is ever priced")
+    k_all = np.arange(1, n + 1)
+    c = special.comb(n - 1, k_all - 1)
     qc = np.clip(q, _Q_LO, _Q_HI)
     lq, l1q = np.log(qc)[:, None], np.log1p(-qc)[:, None]
-    kd = k[: n - 1][w[: n - 1] > 0]
-    log_d = special.logsumexp(np.log(w[kd - 1] * c[kd - 1] * (n - kd)) + (kd - 1) * l1q + (n - kd - 1) * lq, axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.exp(rule.log_derivative(qc) - log_d)  # x'/D
-        v_term = np.where(ratio > 0, v * ratio, 0.0)
+    log_d = _gsp_log_d(rule, q)
     ke = np.arange(2, n + 1)
     with np.errstate(divide="ignore"):
         log_e = np.log(w[ke - 1] * c[ke - 1] * (ke - 1)) + (ke - 2) * l1q + (n - ke) * lq - log_d[:, None]
     e = np.exp(log_e)  # (K+1, n-1), columns k = 2..n
     e_top, e = e[:, -1], e[:, :-1]  # k = n (m = 0: B_n = r) and k = 2..n-1
     m = (n - ke[:-1]).astype(float)
-    # Step quantities, all steps at once: rho^m and G.
     q0, q1 = q[:-1, None], q[1:, None]
     with np.errstate(divide="ignore"):
         log_rho = np.log(q0 / q1)
@@ -223,20 +253,25 @@ def _gsp_bids(values, rule: AllocationRule, q: np.ndarray, r: float) -> np.ndarr
     one_minus_1 = -np.expm1((m + 1) * log_rho)
     g = (q1 * m / (m + 1) * one_minus_1 - q0 * one_minus) / (q1 - q0)
     keep = 1.0 - one_minus  # rho^m
-    b = np.empty_like(q)
-    if q[0] > 0:
+    # m / q1^m int_{q0}^{q1} v x'/D s^(m-1) ds on every step, by Gauss-Legendre.
+    nodes, wts = _nodes(q)  # (K, 16)
+    vr = values.ppf(nodes) * _gsp_value_factor(rule, nodes)
+    scaled = np.exp((m - 1) * np.log(nodes)[..., None] - m * np.log(q1)[..., None])  # (K, 16, n-2)
+    value_part = m * np.einsum("kj,kjm->km", wts * vr, scaled)
+    v_term = _values_at(values, q) * _gsp_value_factor(rule, q)
+    rest = np.empty_like(q)
+    if q[0] > 0:  # floor: B_k(q*) = r q*^m, and b(q*) = r
         state = np.full(m.size, r)
-        b[0] = v_term[0] + e_top[0] * r + e[0] @ state
-    else:
-        b[0] = (v_term[0] + e_top[0] * r) / (1.0 - e[0] @ (1.0 / m)) if m.size else v_term[0] + e_top[0] * r
-        state = b[0] / m
+        rest[0] = e_top[0] * r + e[0] @ state
+    else:  # beta_k(0) = b(0) / m
+        rest[0] = (e_top[0] * r + (e[0] @ (1.0 / m)) * v_term[0]) / (1.0 - e[0] @ (1.0 / m)) if m.size else e_top[0] * r
+        state = (v_term[0] + rest[0]) / m
     for i in range(1, q.size):
-        p = keep[i - 1] * state + b[i - 1] * (one_minus[i - 1] - g[i - 1])
+        p = keep[i - 1] * state + value_part[i - 1] + rest[i - 1] * (one_minus[i - 1] - g[i - 1])
         ei = e[i]
-        b[i] = (v_term[i] + e_top[i] * r + ei @ p) / (1.0 - ei @ g[i - 1])
-        state = p + g[i - 1] * b[i]
-    return b
-
+        rest[i] = (e_top[i] * r + ei @ p) / (1.0 - ei @ g[i - 1])
+        state = p + g[i - 1] * rest[i]
+    return _GspBidFunction(grid=q, bids=v_term + rest, rest=rest, values=values, rule=rule)
 
 def _per_bidder_integral(values, integrand_of_q, grid_intervals: int = _GRID, lower: float = 0.0) -> float:
     q = np.arange(grid_intervals + 1) / grid_intervals
