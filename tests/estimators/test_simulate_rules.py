@@ -128,10 +128,13 @@ def interim_payment(payment_rule, bid_fn, values, mix, q_dev, r, qs):
     return total
 
 
-def max_deviation_gain(payment_rule, floor):
+def max_deviation_gain(payment_rule, floor, bid_fn=None):
+    """Largest gain v(q) x(q') - p(q') - [v(q) x(q) - p(q)] over deviations q' != q (and, above the
+    floor, over bidding below it), at seven quantiles q. <= 0 in equilibrium."""
     values, mix = VALUES, mixture()
     r, qs = (0.0, 0.0) if floor is None else (floor, float(VALUES.cdf(floor)))
-    bid_fn = equilibrium_bid_function(values, mix, payment_rule=payment_rule, floor=floor)
+    if bid_fn is None:
+        bid_fn = equilibrium_bid_function(values, mix, payment_rule=payment_rule, floor=floor)
     truthful = [0.05, 0.2, 0.35, 0.5, 0.65, 0.8, 0.95]
     deviations = np.unique(np.r_[np.linspace(max(qs, 0.005), 0.99, 40), [t for t in truthful if t >= qs]])
     pay = {qd: interim_payment(payment_rule, bid_fn, values, mix, qd, r, qs) for qd in deviations}
@@ -139,16 +142,27 @@ def max_deviation_gain(payment_rule, floor):
     for q in truthful:
         v = float(values.ppf(q))
         own = v * float(mix.value(q)) - pay[q] if q >= qs else 0.0
-        best = max(v * float(mix.value(qd)) - pay[qd] for qd in deviations)
-        gains.append(max(best, 0.0) - own)  # bidding below the floor (utility 0) is always possible
+        options = [v * float(mix.value(qd)) - pay[qd] for qd in deviations if qd != q]
+        if q >= qs:
+            options.append(0.0)  # bid below the floor
+        gains.append(max(options) - own)
     return max(gains)
 
 
 @pytest.mark.parametrize("payment_rule", ["first_price", "gsp", "vcg"])
 @pytest.mark.parametrize("floor", [None, FLOOR])
 def test_no_profitable_deviation(payment_rule, floor):
-    # Gains are zero at q' = q and negative elsewhere; quadrature error is ~1e-9.
+    # The nearest deviations lose ~2e-6 to 6e-6 (second order in q' - q); quadrature error ~1e-9.
     assert max_deviation_gain(payment_rule, floor) <= 1e-7
+
+
+@pytest.mark.parametrize("payment_rule,wrong", [("gsp", "first_price"), ("first_price", "gsp")])
+def test_deviation_check_detects_wrong_bids(payment_rule, wrong):
+    # The check can fail: first-price bids in a next-price auction shade too much (raising the bid
+    # pays), next-price bids in a pay-your-bid auction shade too little (lowering it pays).
+    # (Under vcg the others' prices are their values whatever the bid function, so no such case.)
+    bids = equilibrium_bid_function(VALUES, mixture(), payment_rule=wrong)
+    assert max_deviation_gain(payment_rule, None, bid_fn=bids) > 1e-3
 
 
 def test_sub_floor_bidders_cannot_gain():
