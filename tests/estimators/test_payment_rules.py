@@ -330,3 +330,30 @@ def test_floor_term_is_needed():
     # the Monte Carlo spread.
     est, se, _ = floor_estimates("gsp", floor_q=0.6, reps=300, seed=7, slope_sign=0.0)
     assert se.mean() / est.std(ddof=1) < 0.6
+
+
+def test_gsp_weight_density_is_the_swapped_integral():
+    # omega(s) = h(s) D(s) - sum_{k>=2} W_k c_k (k-1)(n-k) s^(n-k-1) H_k(s), H_k(s) = int_s^1 h (1-q)^(k-2),
+    # with every H_k by scipy.integrate.quad, against the derivative of the cumulative weight.
+    from scipy.interpolate import CubicSpline
+
+    from counterbid.estimators.allocation import derivative_ratio
+
+    n = 5
+    arms, mix = rules(n)
+    y = arms[0]
+    big_w = mix.position_weights
+    c = special.comb(n - 1, np.arange(n))
+
+    def h(q):
+        return (1 - q) * float(derivative_ratio(y, mix, q))
+
+    w = revenue_weights(y, mix, payment_rule="gsp")
+    slope = CubicSpline(w.grid, w.values).derivative()
+    for s in (0.1, 0.35, 0.6, 0.9):
+        d = sum(big_w[k - 1] * c[k - 1] * (n - k) * (1 - s) ** (k - 1) * s ** (n - k - 1) for k in range(1, n))
+        omega = h(s) * d
+        for k in range(2, n):
+            upper = integrate.quad(lambda q: h(q) * (1 - q) ** (k - 2), s, 1, epsabs=1e-13)[0]
+            omega -= big_w[k - 1] * c[k - 1] * (k - 1) * (n - k) * s ** (n - k - 1) * upper
+        assert float(slope(s)) == pytest.approx(omega, abs=1e-9)
