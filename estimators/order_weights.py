@@ -25,8 +25,10 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 
 from .allocation import AllocationRule, derivative_ratio
+from .errors import InputError
+from .payment_rules import Floor, check_payment_rule, floor_terms, gsp_cumulative_weights, vcg_cumulative_weights
 
-__all__ = ["CumulativeWeights", "WeightTable", "revenue_weights", "welfare_weights", "GRID_INTERVALS"]
+__all__ = ["CumulativeWeights", "Floor", "WeightTable", "revenue_weights", "welfare_weights", "GRID_INTERVALS"]
 
 #: Exact evaluations of the cumulative weight per stratum before the spline takes over.
 GRID_INTERVALS = 2**14
@@ -39,6 +41,11 @@ class CumulativeWeights:
     The estimate (per bidder) from sorted bids ``b_(1) <= ... <= b_(N)`` is
     ``sum_i b_(i) [F(i/N) - F((i-1)/N)] + top * b_(N) - bottom * b_(1)``.
 
+    With a floor ``r`` (weights built with ``floor=Floor(r, q*)``) every bid below ``r`` counts
+    as ``r`` in that sum (``b_(i)`` replaced by ``max(b_(i), r)``), ``bottom`` is 0 and
+    ``floor_term`` is added; the influence function of each bid ``b`` gains
+    ``floor_slope * (1{b < r} - q*)`` because ``q*`` is estimated by the share of sub-floor bids.
+
     Attributes
     ----------
     grid : ndarray
@@ -47,12 +54,18 @@ class CumulativeWeights:
         Cumulative weight on ``grid`` (0 at q = 0).
     top, bottom : float
         Coefficients of the largest and smallest bid (NaN when not identified).
+    floor_term : float
+        The floor's boundary term, per bidder (0 without a floor).
+    floor_slope : float
+        Its derivative in the floor's quantile ``q*``, per bidder (0 without a floor).
     """
 
     grid: np.ndarray
     values: np.ndarray
     top: float
     bottom: float
+    floor_term: float = 0.0
+    floor_slope: float = 0.0
 
     def at(self, q: np.ndarray) -> np.ndarray:
         """Cumulative weight at quantiles ``q`` (exact on the grid, cubic spline between)."""
@@ -146,7 +159,20 @@ def _grid(n_bids: int | None) -> np.ndarray:
     return np.arange(k + 1) / k
 
 
-def revenue_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int | None = None) -> CumulativeWeights:
+def _floor_of(floor) -> Floor | None:
+    if floor is None or isinstance(floor, Floor):
+        return floor
+    raise InputError("`floor` must be a Floor(value, quantile) or None")
+
+
+def revenue_weights(
+    target: AllocationRule,
+    mixture: AllocationRule,
+    n_bids: int | None = None,
+    *,
+    payment_rule: str = "first_price",
+    floor: Floor | None = None,
+) -> CumulativeWeights:
     """Cumulative weights ``Omega`` of the revenue estimator for ``target`` given bids under ``mixture``.
 
     Parameters
@@ -157,13 +183,32 @@ def revenue_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int
         The rule ``x`` the bids answer (share-weighted mixture of all arms).
     n_bids : int, optional
         Sample size; when at most ``GRID_INTERVALS`` the grid is exactly ``i / n_bids``.
+    payment_rule : {'first_price', 'gsp', 'vcg'}, optional
+        Payment rule of the auction that ran (it decides how bids map to values); the target's
+        own payment rule does not matter (revenue equivalence).
+    floor : Floor, optional
+        Floor shared by the arms: its value ``r`` and quantile ``q*``. Sub-floor bids then count
+        as ``r`` in the weighted sum, and ``floor_term`` / ``floor_slope`` are set.
 
     Returns
     -------
     CumulativeWeights
         Per-bidder weights; multiply the estimate by ``n`` for revenue per auction.
+
+    References
+    ----------
+    .. [1] Myerson, R. (1981). Optimal auction design. Math. Oper. Res. 6(1), 58-73.
+    .. [2] Gomes, R. and Sweeney, K. (2014). Bayes-Nash equilibria of the generalized second-price
+       auction. Games Econ. Behav. 86, 421-437.
     """
+    check_payment_rule(payment_rule)
+    floor = _floor_of(floor)
     q = _grid(n_bids)
+    if payment_rule == "gsp":
+        omega, beta = gsp_cumulative_weights(target, mixture, q, metric="revenue")
+        return _with_floor(target, q, omega, 0.0, beta, floor, "revenue")
+    if payment_rule == "vcg":
+        return _with_floor(target, q, vcg_cumulative_weights(target, q, metric="revenue"), 0.0, 0.0, floor, "revenue")
     y = target.value(q)
     big_y = target.integral(q)
     g = (1.0 - q) * derivative_ratio(target, mixture, q) * mixture.value(q)
@@ -171,17 +216,46 @@ def revenue_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int
     g0 = float(g[0])
     omega = (1.0 - q) * y - y[0] + big_y - g + g0
     omega[0] = 0.0
+    if floor is not None:
+        return _with_floor(target, q, omega, 0.0, g0, floor, "revenue")
     return CumulativeWeights(grid=q, values=omega, top=0.0, bottom=g0)
 
 
-def welfare_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int | None = None) -> CumulativeWeights:
+def _with_floor(target, q, values, top, beta, floor, metric) -> CumulativeWeights:
+    """Weights of a rule whose bottom coefficient is ``beta``: no floor -> ``bottom``; floor -> terms."""
+    if floor is None:  # gsp and vcg have no bottom term without a floor (NaN: not identified)
+        return CumulativeWeights(grid=q, values=values, top=top, bottom=0.0 if np.isfinite(beta) else np.nan)
+    if not np.isfinite(beta):
+        return CumulativeWeights(grid=q, values=values, top=top, bottom=np.nan, floor_term=np.nan, floor_slope=np.nan)
+    term, slope = floor_terms(target, floor, beta, metric=metric)
+    return CumulativeWeights(grid=q, values=values, top=top, bottom=0.0, floor_term=term, floor_slope=slope)
+
+
+def welfare_weights(
+    target: AllocationRule,
+    mixture: AllocationRule,
+    n_bids: int | None = None,
+    *,
+    payment_rule: str = "first_price",
+    floor: Floor | None = None,
+) -> CumulativeWeights:
     """Cumulative weights ``Psi`` of the welfare estimator (expected value of clicks won).
 
     Values are identified from bids only where the mixture's rule is strictly increasing; at the
     top that needs ``w_1 > w_2`` in the mixture, at the bottom ``w_n = 0`` or ``w_{n-1} > w_n``.
-    Otherwise the boundary coefficients are NaN and so is the estimate.
+    Otherwise the boundary coefficients are NaN and so is the estimate. Under ``vcg`` bids are
+    values and welfare is always identified. ``payment_rule`` and ``floor`` as in
+    :func:`revenue_weights`.
     """
+    check_payment_rule(payment_rule)
+    floor = _floor_of(floor)
     q = _grid(n_bids)
+    if payment_rule == "gsp":
+        psi, beta = gsp_cumulative_weights(target, mixture, q, metric="welfare")
+        top = 0.0 if np.isfinite(beta) else np.nan
+        return _with_floor(target, q, psi, top, beta, floor, "welfare")
+    if payment_rule == "vcg":
+        return _with_floor(target, q, vcg_cumulative_weights(target, q, metric="welfare"), 0.0, 0.0, floor, "welfare")
     big_y = target.integral(q)
     y = target.value(q)
     d = mixture.derivative_coefficients
@@ -200,4 +274,6 @@ def welfare_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int
     h[0], h[-1] = h0, h1
     psi = big_y - h + h0
     psi[0] = 0.0
+    if floor is not None:
+        return _with_floor(target, q, psi, h1, h0, floor, "welfare")
     return CumulativeWeights(grid=q, values=psi, top=h1, bottom=h0)
