@@ -49,7 +49,7 @@ def test_json_output_has_every_arm_and_metric(files, capsys):
     payload = json.loads(out)
     assert payload["experiment_id"] == "cli-exp" and payload["n_excluded_auctions"] == 0
     rows = payload["rows"]
-    assert set(rows[0]) == {"arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids"}
+    assert set(rows[0]) == {"arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status"}
     seen = {(r["arm"], r["metric"]) for r in rows}
     for arm in ("control", "wide", "single"):
         assert (arm, "revenue_per_auction") in seen and (arm, "realized_revenue_per_auction") in seen
