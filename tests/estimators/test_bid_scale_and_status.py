@@ -147,3 +147,15 @@ def test_status_column_follows_n_bids_and_attrs_are_kept(base):
     assert out.attrs["confidence_level"] == 0.95 and out.attrs["cluster"] in ("auction", "bidder")
     known = set(arms_module.STATUS_FLAGS)
     assert all(set(s.split(",")) <= known for s in out["status"])
+
+
+def test_welfare_is_published_without_an_interval(base):
+    exp, bids, _ = base
+    with pytest.warns(EstimatorWarning, match=r"welfare_per_auction is published without an interval"):
+        out = estimate_arms(bids, exp)
+    welfare = out[out["metric"] == "welfare_per_auction"]
+    assert np.isfinite(welfare["estimate"]).all()
+    assert welfare[["std_error", "ci_low", "ci_high"]].isna().all().all()
+    assert (welfare["status"] == "no_interval").all()
+    others = out[out["metric"] != "welfare_per_auction"]
+    assert np.isfinite(others["std_error"]).all() and (others["status"] == "ok").all()
