@@ -559,7 +559,7 @@ def estimate_arms(
         for. ``'bidder'`` sums the influence of each bidder's bids over all its auctions (and
         strata): the interval covers the revenue of the value distribution the bidders are drawn
         from, a new draw of bidders included, and stays honest when a bidder's value persists
-        across its auctions. ``'auction'`` treats auctions as independent: it speaks for new
+        across its auctions [5]_. ``'auction'`` treats auctions as independent: it speaks for new
         auctions of these same bidders and under-covers the population value when values persist.
         ``'auto'`` (default) is ``'bidder'`` whenever some bidder id appears in more than one
         auction, else ``'auction'``; the unit used is in ``attrs['cluster']``.

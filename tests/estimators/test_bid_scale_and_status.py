@@ -68,6 +68,14 @@ def test_results_scale_with_the_bid_unit(base, scale):
     assert out["status"].tolist() == ref["status"].tolist()
 
 
+def test_subnormal_bids_estimate(base):
+    # bids around 1e-310 are subnormal doubles (fewer significant bits): same numbers to 1e-9
+    exp, bids, ref = base
+    out = _estimate(bids.assign(bid=bids["bid"] * 1e-310), exp)
+    revenue = (out["metric"] == "revenue_per_auction").to_numpy()
+    np.testing.assert_allclose(out.loc[revenue, "estimate"] / 1e-310, ref.loc[revenue, "estimate"], rtol=1e-9)
+
+
 def test_one_huge_bid_estimates_instead_of_overflowing(base):
     exp, bids, _ = base
     out = _estimate(bids.assign(bid=np.where(np.arange(len(bids)) == 17, 1e300, bids["bid"])), exp)
