@@ -308,7 +308,7 @@ def estimate_partition(
     clicks_root: str | Path | None = None,
     click_window_days: int = 7,
     confidence_level: float = 0.95,
-    cluster: str = "auction",
+    cluster: str = "auto",
 ) -> dict:
     """Estimate every arm from the staged day and the staged experiment-to-date bids.
 

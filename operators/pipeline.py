@@ -154,7 +154,9 @@ class EstimateArmsOperator(_PartitionOperator):
     click_window_days : int
         Trailing days of clicks pooled for measured weights (default 7).
     confidence_level : float
-    cluster : {'auction', 'bidder'}
+    cluster : {'auto', 'auction', 'bidder'}
+        Unit of the standard errors (default ``'auto'``: bidder when bidder ids repeat across
+        auctions; see ``estimate_arms``).
     """
 
     template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "clicks_root")
@@ -165,7 +167,7 @@ class EstimateArmsOperator(_PartitionOperator):
         clicks_root: str | None = None,
         click_window_days: int = 7,
         confidence_level: float = 0.95,
-        cluster: str = "auction",
+        cluster: str = "auto",
         **kwargs: Any,
     ) -> None:
         super().__init__(**kwargs)
