@@ -13,7 +13,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--experiment", required=True, metavar="PATH", help="experiment spec (YAML)")
     p.add_argument("--experiment-id", metavar="ID", help="which experiment of the spec (needed when it holds several)")
     p.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
-    p.add_argument("--cluster", choices=("auction", "bidder"), default="auction", help="unit of the robust standard errors")
+    p.add_argument("--cluster", choices=("auto", "auction", "bidder"), default="auto",
+                   help="unit of the robust standard errors (default auto: bidder when bidder ids repeat across auctions)")
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 

@@ -15,6 +15,7 @@ Beside it, the informed-bidder A/B test's half-width: bidders told the arm, the 
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from collections.abc import Mapping, Sequence
 
 import numpy as np
@@ -23,7 +24,7 @@ from scipy import stats
 
 from .allocation import allocation_rule, mixture_rule
 from .arms import estimate_arms, prepare_bids
-from .errors import InputError
+from .errors import EstimatorWarning, InputError
 from .simulate import simulate_experiment
 from .spec import Experiment
 from .two_step import pseudo_values
@@ -137,7 +138,9 @@ def pilot_values(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> pd.DataFrame:
     """Per-auction standard deviation ``SE x sqrt(M)`` and estimate, from one simulated experiment."""
     bids = simulate_experiment(values, experiment, n_bidders=n_bidders, n_auctions=n_auctions, rng=rng)
-    return _sigma_of(estimate_arms(bids, experiment), n_auctions)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", EstimatorWarning)  # welfare's missing interval: not planned
+        return _sigma_of(estimate_arms(bids, experiment, cluster="auction"), n_auctions)
 
 
 def _sigma_of(result: pd.DataFrame, n_auctions: int) -> pd.DataFrame:
@@ -229,7 +232,10 @@ def plan_shares(
     (bidders told the arm); its lift uses independent arms (delta method). The predictions
     assume the estimator's model (symmetric independent private values, equilibrium against the
     designed shares, known position weights) and that traffic and bidders per auction stay as in
-    the pilot or the assumption; they ignore day-to-day drift and sample-ratio mismatch.
+    the pilot or the assumption; they ignore day-to-day drift and sample-ratio mismatch. Standard
+    errors are clustered by auction throughout (``sigma`` is a per-auction spread): when bidders'
+    values persist across auctions, the bidder-clustered intervals that :func:`~.arms.estimate_arms`
+    reports by default are wider than planned here and do not shrink like ``1/sqrt(D A)``.
 
     References
     ----------
@@ -259,7 +265,9 @@ def plan_shares(
         if values is not None or n_bidders is not None:
             raise InputError("pass either pilot `bids` or an assumed `values` distribution with `n_bidders`, not both")
         values, n_bidders = pilot_values(bids, experiment, source=source)
-        pilot = estimate_arms(bids, experiment, confidence_level=confidence_level, source=source)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", EstimatorWarning)
+            pilot = estimate_arms(bids, experiment, confidence_level=confidence_level, cluster="auction", source=source)
         observed = _sigma_of(pilot, int(pilot.attrs["n_auctions"]))
         simulated = _sigma(values, experiment, n_bidders, m, rng)
         scale = {key: float(observed.loc[key, "sigma"] / simulated.loc[key, "sigma"])

@@ -28,6 +28,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ._lstatistic import l_statistic
+from ._realized import realized_averages
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .arms import PreparedBids
 from .errors import InputError
@@ -190,21 +192,6 @@ class OrdstatResult:
         return self.estimate - z * self.std_error, self.estimate + z * self.std_error
 
 
-def _l_statistic_influence(sorted_bids: np.ndarray, increments: np.ndarray) -> np.ndarray:
-    """Influence function of ``sum_i b_(i) c_i`` at each sorted bid (docs/method.md, "Standard errors").
-
-    ``IF_i = sum_j D_j J_j j/N - sum_{j >= i} D_j J_j``, gaps ``D_j = b_(j+1) - b_(j)``, weight
-    density ``J`` at ``j/N`` (Serfling 1980, sec. 8.2); the same formula as the estimator's, kept
-    here so the study does not lean on private helpers (the tests check both agree).
-    """
-    big_n = sorted_bids.size
-    a = 0.5 * big_n * (increments[:-1] + increments[1:]) * np.diff(sorted_bids)
-    centre = float(a @ (np.arange(1, big_n) / big_n))
-    out = np.full(big_n, centre)
-    out[:-1] -= np.cumsum(a[::-1])[::-1]
-    return out
-
-
 @functools.lru_cache(maxsize=512)
 def _increments(target: tuple[float, ...], mixture: tuple[float, ...], n_bids: int) -> tuple[np.ndarray, float]:
     w = revenue_weights(AllocationRule(np.array(target)), AllocationRule(np.array(mixture)), n_bids)
@@ -248,23 +235,14 @@ def ordstat_revenue(
     mix_key = tuple(mixture.position_weights.tolist())
     est = np.empty(len(targets))
     se = np.empty(len(targets))
+    influence = np.empty(big_n)
     for k, target in enumerate(targets):
         inc, bottom = _increments(tuple(target.position_weights.tolist()), mix_key, big_n)
-        inc = n * inc
-        est[k] = float(b @ inc) - n * bottom * float(b[0])
-        sums = np.bincount(cl, weights=_l_statistic_influence(b, inc) / big_n, minlength=g)
+        est[k] = l_statistic(lambda lo, hi, inc=inc: n * inc[lo:hi], b, influence) - n * bottom * float(b[0])
+        influence /= big_n
+        sums = np.bincount(cl, weights=influence, minlength=g)
         se[k] = math.sqrt(g / (g - 1) * float(sums @ sums)) if g > 1 else np.nan
     return OrdstatResult(est, se)
-
-
-def _realized_average(data: PreparedBids, experiment: Experiment, arm: int) -> float:
-    """Realized revenue per auction over the arm's own auctions (bid x position weight)."""
-    n = int(data.n_bidders[0])
-    w = np.zeros(n + 1)
-    w[1:] = experiment.arms[arm].weights_for(n)
-    mine = data.arm == arm
-    auctions = np.count_nonzero(mine) // n
-    return float(np.sum(data.bid[mine] * w[data.position[mine]]) / auctions) if auctions else np.nan
 
 
 # --------------------------------------------------------------------------------------------
@@ -366,7 +344,7 @@ def share_cell(values_name: str, n: int, share: float, *, n_auctions: int, reps:
         data = simulate_prepared(values_name, exp, n_bidders=n, n_auctions=n_auctions, rng=rng)
         res = ordstat_revenue(data, [treated_rule], mix)
         out["ordstat"][0][r], out["ordstat"][1][r] = res.estimate[0], res.std_error[0]
-        out["realized_average"][0][r] = _realized_average(data, exp, 1)
+        out["realized_average"][0][r] = realized_averages(data, exp).mean[1]
         ab = simulate_prepared(values_name, one, n_bidders=n, n_auctions=ab_auctions, rng=rng)
         res_ab = ordstat_revenue(ab, [treated_rule], treated_rule)
         out["informed_ab"][0][r], out["informed_ab"][1][r] = res_ab.estimate[0], res_ab.std_error[0]

@@ -215,7 +215,7 @@ def estimate_partition(
     staging_root: str | Path,
     run_id: str,
     confidence_level: float = 0.95,
-    cluster: str = "auction",
+    cluster: str = "auto",
 ) -> dict:
     """Estimate every arm from the staged day and the staged experiment-to-date bids.
 

@@ -78,6 +78,8 @@ def test_blocked_l_statistic_matches_the_direct_formula(big_n, monkeypatch):
         inc = 5 * np.diff(w.values if table.exact else CubicSpline(w.grid, w.values)(grid))
         assert est == pytest.approx(float(sorted_bids @ inc), rel=1e-12)
         np.testing.assert_allclose(influence, _direct_influence(sorted_bids, inc), rtol=1e-9, atol=1e-12)
+        # the estimate-only pass (welfare) gives the same number
+        assert arms_module._l_statistic(table, k, 5, sorted_bids, None) == pytest.approx(est, rel=1e-13)
 
 
 def test_mixture_row_is_the_direct_l_statistic_of_the_mixture_rule():

@@ -1,8 +1,14 @@
-"""Traffic-share planner: predicted half-widths against simulated ones (within 20 %).
+"""Traffic-share planner: predicted half-widths against simulated ones.
 
 The simulated half-width is 1.96 x the standard deviation of the estimates over repeated simulated
-experiments (a Monte Carlo check, independent of the estimator's own standard errors); with 200
-replicates its relative error is about 5 % (sd of a sample sd ~ 1/sqrt(2R), common practice).
+experiments (a Monte Carlo check, independent of the estimator's own standard errors); with R = 200
+replicates its relative error is 1/sqrt(2 (R - 1)) = 5.0 % (sd of a sample sd, normal theory).
+The prediction carries the error of one calibration run's standard error (10,000 auctions:
+about 1-2 % relative, from the spread of influence sums; 2 % is used), and with a pilot also that
+of the pilot's own SE (5,000 auctions) and of the simulated SE at the pilot's shares (2 % each).
+Tolerances are three combined standard deviations: 16 % assumed, 18 % with a pilot. Measured
+ratios predicted / simulated at these seeds: 0.99-1.07 assumed, 1.01-1.03 pilot, 1.12 for the
+informed-bidder A/B test (300 auctions in the arm).
 """
 
 from __future__ import annotations
@@ -19,6 +25,11 @@ from counterbid.estimators.planner import plan_shares, simulated_half_width, wit
 VALUES = st.lognorm(0.5, scale=0.8)
 N_BIDDERS = 4
 DAYS, PER_DAY = 2, 1500
+REPS = 200
+SIMULATED_REL = 1 / np.sqrt(2 * (REPS - 1))
+CALIBRATION_REL = 0.02
+ASSUMED_TOL = 3 * np.hypot(SIMULATED_REL, CALIBRATION_REL)
+PILOT_TOL = 3 * np.sqrt(SIMULATED_REL**2 + 3 * CALIBRATION_REL**2)
 
 
 def two_arms(share=0.5):
@@ -32,37 +43,39 @@ def two_arms(share=0.5):
 def simulated():
     exp = two_arms()
     return {s: simulated_half_width(VALUES, with_treated_share(exp, s), n_bidders=N_BIDDERS,
-                                    n_auctions=DAYS * PER_DAY, reps=200, rng=7).set_index(["arm", "metric"])
+                                    n_auctions=DAYS * PER_DAY, reps=REPS, rng=7).set_index(["arm", "metric"])
             for s in (0.1, 0.5)}
 
 
-def _compare(plan, simulated, share):
+def _compare(plan, simulated, share, tol):
     t = plan.table[plan.table["share"] == share].set_index(["arm", "metric"])
     sim = simulated[share]
     for key in sim.index:
         predicted, actual = t.loc[key, "half_width"], sim.loc[key, "simulated_half_width"]
-        assert predicted == pytest.approx(actual, rel=0.20), (share, key, predicted, actual)
+        assert abs(predicted / actual - 1) <= tol, (share, key, predicted, actual, tol)
 
 
 @pytest.mark.slow
-def test_assumed_distribution_plan_within_20_percent_of_simulation(simulated):
+def test_assumed_distribution_plan_matches_simulation(simulated):
     plan = plan_shares(two_arms(), days=DAYS, auctions_per_day=PER_DAY, values=VALUES, n_bidders=N_BIDDERS,
                        shares=(0.1, 0.5), calibration_auctions=10_000, rng=1)
     assert plan.basis == "assumed" and plan.n_auctions == DAYS * PER_DAY
     for share in (0.1, 0.5):
-        _compare(plan, simulated, share)
+        _compare(plan, simulated, share, ASSUMED_TOL)
 
 
 @pytest.mark.slow
-def test_pilot_plan_within_20_percent_of_simulation_at_another_share(simulated):
+def test_pilot_plan_matches_simulation_at_another_share(simulated):
     # Pilot of 5000 auctions at share 0.5; the plan for share 0.1 is checked against simulations
     # with the true value distribution, which the planner never sees.
     pilot = simulate_experiment(VALUES, two_arms(0.5), n_bidders=N_BIDDERS, n_auctions=5000, rng=3)
     plan = plan_shares(two_arms(0.5), days=DAYS, auctions_per_day=PER_DAY, bids=pilot, shares=(0.1,),
                        calibration_auctions=10_000, rng=2)
     assert plan.basis == "pilot"
-    assert all(0.7 < v < 1.4 for v in plan.pilot_scale.values())
-    _compare(plan, simulated, 0.1)
+    # the pilot's SE over the simulated one at the pilot's shares: 1 up to the two SEs' errors and
+    # the value distribution's reconstruction (measured 1.02-1.08)
+    assert all(abs(v - 1) <= 0.15 for v in plan.pilot_scale.values()), plan.pilot_scale
+    _compare(plan, simulated, 0.1, PILOT_TOL)
 
 
 @pytest.mark.slow
@@ -72,10 +85,10 @@ def test_informed_ab_half_width_matches_a_simulated_one_arm_test():
                        shares=(0.1,), calibration_auctions=10_000, rng=4)
     row = plan.table.set_index(["arm", "metric"]).loc[("treated", "revenue_per_auction")]
     alone = dataclasses.replace(exp, arms=(dataclasses.replace(exp.arm("treated"), share=1.0),), control_arm="treated")
-    sim = simulated_half_width(VALUES, alone, n_bidders=N_BIDDERS, n_auctions=int(row["auctions_in_arm"]), reps=200,
+    sim = simulated_half_width(VALUES, alone, n_bidders=N_BIDDERS, n_auctions=int(row["auctions_in_arm"]), reps=REPS,
                                rng=5).set_index(["arm", "metric"])
-    assert row["informed_ab_half_width"] == pytest.approx(sim.loc[("treated", "revenue_per_auction"),
-                                                              "simulated_half_width"], rel=0.20)
+    ratio = row["informed_ab_half_width"] / sim.loc[("treated", "revenue_per_auction"), "simulated_half_width"]
+    assert abs(ratio - 1) <= ASSUMED_TOL, ratio
     # The estimator on the mixture beats the informed-bidder test at a 10 % share (it uses every auction's bids).
     assert row["half_width"] < row["informed_ab_half_width"]
 

@@ -43,7 +43,7 @@ def test_fast_simulator_matches_simulate_experiment():
 def test_fast_estimator_equals_estimate_arms():
     exp = study_experiment(0.1)
     bids = simulate_experiment(VALUE_DISTRIBUTIONS["beta"], exp, n_bidders=4, n_auctions=3000, rng=4)
-    full = estimate_arms(bids, exp).query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm")
+    full = estimate_arms(bids, exp, cluster="auction").query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm")
     data = prepare_bids(bids, exp)
     rules = [allocation_rule(a.weights_for(4), 4) for a in exp.arms]
     res = ordstat_revenue(data, rules, mixture_rule(rules, exp.shares))

@@ -132,7 +132,9 @@ def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, expe
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
     want = estimate_arms(_lake_day(lake / "bids", day), experiment)
     got = pq.read_table(staged.estimates_day).to_pandas()
-    pd.testing.assert_frame_equal(got[list(want.columns)], want, check_exact=True)
+    # ``status`` is the data checks' here (the estimator's own flags are merged in elsewhere)
+    numbers = [c for c in want.columns if c != "status"]
+    pd.testing.assert_frame_equal(got[numbers], want[numbers], check_exact=True)
     assert set(got["status"]) == {"ok"} and set(got["run_id"]) == {"t1"}
     counts = partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage", cleanup=False)
     assert counts == {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
