@@ -135,7 +135,9 @@ def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, expe
     # ``status`` is the data checks' here (the estimator's own flags are merged in elsewhere)
     numbers = [c for c in want.columns if c != "status"]
     pd.testing.assert_frame_equal(got[numbers], want[numbers], check_exact=True)
-    assert set(got["status"]) == {"ok"} and set(got["run_id"]) == {"t1"}
+    welfare = got["metric"] == "welfare_per_auction"  # published without an interval: the estimator's flag
+    assert set(got.loc[~welfare, "status"]) == {"ok"} and set(got.loc[welfare, "status"]) == {"no_interval"}
+    assert set(got["run_id"]) == {"t1"}
     counts = partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage", cleanup=False)
     assert counts == {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
     first = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
@@ -257,7 +259,7 @@ def test_a_results_database_locked_by_another_process_never_fails_the_step(tmp_p
         proc.wait(timeout=30)
 
 
-def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, experiment, tmp_path, monkeypatch):
+def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, experiment, tmp_path):
     """What the run used reaches every stored row: level, clustering, and check warning plus estimator flags."""
     from counterbid.estimators import CheckResult
 
@@ -267,14 +269,6 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
     warned = CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3, details={})
     assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
 
-    real = partition.estimate_arms
-
-    def flagging(*args, **kwargs):  # the estimator's per-row status column, as estimate_arms will add it
-        table = real(*args, **kwargs)
-        table["status"] = np.where(table["arm"] == "bold", "no_interval,few_bids", "ok")
-        return table
-
-    monkeypatch.setattr(partition, "estimate_arms", flagging)
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1",
                                  confidence_level=0.975, cluster="bidder")
     partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
@@ -283,10 +277,10 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
         assert set(rows["confidence_level"]) == {0.975}
         realized = rows["metric"] == "realized_revenue_per_auction"
         assert set(rows.loc[realized, "cluster"]) == {"auction"} and set(rows.loc[~realized, "cluster"]) == {"bidder"}
-        bold = rows["arm"] == "bold"
-        assert set(rows.loc[bold, "status"]) == {"few_bids,no_interval,warning"}
-        assert set(rows.loc[~bold, "status"]) == {"warning"}
+        welfare = rows["metric"] == "welfare_per_auction"  # the estimator's own flag, merged with the check's
+        assert set(rows.loc[welfare, "status"]) == {"no_interval,warning"}
+        assert set(rows.loc[~welfare, "status"]) == {"warning"}
     # the interval really is the bidder-clustered 97.5 % one
-    want = real(_lake_day(lake / "bids", day), experiment, confidence_level=0.975, cluster="bidder")
+    want = estimate_arms(_lake_day(lake / "bids", day), experiment, confidence_level=0.975, cluster="bidder")
     got = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}).set_index(["arm", "metric"])
     np.testing.assert_array_equal(got.loc[list(zip(want["arm"], want["metric"])), "ci_high"].to_numpy(), want["ci_high"].to_numpy())

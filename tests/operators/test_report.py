@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from counterbid.dags_example.lake import write_bid_lake
@@ -24,7 +25,10 @@ SPEC = {"experiments": [{
 
 
 #: How each day was run: (confidence level, clustering, a data check warned, estimator flags on arm 'bold').
-RUNS = [(0.95, "auction", False, None), (0.975, "bidder", False, "few_bids"), (0.975, "bidder", True, None)]
+#: (level, clustering, a data check warned) per day; the second day keeps only 20 auctions (80 bids),
+#: so the estimator itself flags it ``few_bids`` (below ``MIN_STRATUM_BIDS``).
+RUNS = [(0.95, "auction", False), (0.975, "bidder", False), (0.975, "bidder", True)]
+SMALL_DAY_AUCTIONS = 20
 
 
 @pytest.fixture(scope="module")
@@ -32,9 +36,12 @@ def results(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
     exp = parse_experiments(SPEC)["tiles"]
     write_bid_lake(root / "bids", [exp], start=START, days=3, auctions_per_day=1500, n_bidders=4, seed=8)
+    small = root / "bids" / f"ds={START + dt.timedelta(days=1)}" / "tiles.parquet"
+    frame = pd.read_parquet(small)
+    keep = frame["auction_id"].isin(frame["auction_id"].unique()[:SMALL_DAY_AUCTIONS])
+    frame[keep].to_parquet(small, index=False)
     hook = ResultsHook(database=root / "results.duckdb")
-    real = partition.estimate_arms
-    for k, (level, cluster, warned, flag) in enumerate(RUNS):
+    for k, (level, cluster, warned) in enumerate(RUNS):
         day = START + dt.timedelta(days=k)
         partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
         staged = StagedPartition.at(root / "s", exp.id, day)
@@ -43,16 +50,8 @@ def results(tmp_path_factory):
             checks.append(CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3))
         partition.record_checks(staged, checks)
 
-        def flagging(*args, _flag=flag, **kwargs):  # the estimator's per-row status, as estimate_arms will add it
-            table = real(*args, **kwargs)
-            if _flag:
-                table["status"] = np.where(table["arm"] == "bold", _flag, "ok")
-            return table
-
-        with pytest.MonkeyPatch.context() as mp:
-            mp.setattr(partition, "estimate_arms", flagging)
-            partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}",
-                                         confidence_level=level, cluster=cluster)
+        partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}",
+                                     confidence_level=level, cluster=cluster)
         partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=root / "s")
     return root, hook
 
@@ -69,7 +68,7 @@ def test_report_has_plots_assumptions_and_days(results):
     for k in range(3):
         assert f"<th>{START + dt.timedelta(days=k)}</th>" in text
     assert "data checks" not in text  # no data_checks table: nothing shown
-    assert "4,500 auctions pooled" in text
+    assert "3,020 auctions pooled" in text
 
 
 def test_report_says_the_level_clustering_and_status_each_interval_used(results):
@@ -84,11 +83,11 @@ def test_report_says_the_level_clustering_and_status_each_interval_used(results)
     assert "clustered by auction, for\nthese same bidders in new auctions" in text  # the page says what both mean
     # per day: the interval and the status each day's rows carry
     by_day = dict(zip([str(START + dt.timedelta(days=k)) for k in range(3)],
-                      [("ok", "95 %, clustered by auction"), ("few_bids", "97.5 %, clustered by bidder"),
-                       ("warning", "97.5 %, clustered by bidder")]))
+                      [("no_interval", "95 %, clustered by auction"), ("few_bids, no_interval", "97.5 %, clustered by bidder"),
+                       ("no_interval, warning", "97.5 %, clustered by bidder")]))
     for day, (status, how) in by_day.items():
         assert f"<th>{day}</th>\n      <td>{status}</td>\n      <td>{how}</td>" in text, day
-    assert "The estimator flagged rows (few_bids)" in text
+    assert "The estimator flagged rows (few_bids, no_interval)" in text
 
 
 def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
@@ -120,7 +119,7 @@ def test_report_shows_the_worst_check_status_per_day(results, tmp_path):
 def test_cumulative_table_text(results):
     _, hook = results
     text = format_cumulative(cumulative_table(hook))
-    assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 4500 auctions, status warning; "
+    assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 3020 auctions, status no_interval, warning; "
                            "intervals 97.5 %, clustered by bidder\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
