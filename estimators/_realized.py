@@ -7,6 +7,8 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from .payment_rules import per_click_prices
+
 if TYPE_CHECKING:  # pragma: no cover
     from .arms import PreparedBids
     from .spec import Experiment
@@ -36,8 +38,15 @@ class RealizedAverages:
     mixture_std_error: float
 
 
-def realized_averages(data: PreparedBids, experiment: Experiment) -> RealizedAverages:
-    """Average realized revenue (bid x position weight of the arm that ran) per auction, by arm.
+def realized_averages(data: PreparedBids, experiment: Experiment, *, floor: float | None = None) -> RealizedAverages:
+    """Average realized revenue per auction, by arm, each shown bid priced by the rule that ran.
+
+    A shown bid pays, per click, the price of ``experiment.payment_rule``
+    (:func:`~.payment_rules.per_click_prices`: its own bid, the next-lower eligible bid or the
+    floor, or the VCG externality), in effective-bid units; its expected payment per auction is
+    the position weight of the arm that ran times that price (with quality factors, clicks
+    ``w_k x quality`` times the currency price ``effective price / quality``). ``floor`` (in the
+    units of ``data.bid``; default the experiment's) prices the lowest eligible bidders.
 
     Realized revenue belongs to an auction, so these are averages over auctions of each
     auction's revenue ``R_a``, clustered by auction: the influence of auction ``a`` on arm
@@ -46,11 +55,19 @@ def realized_averages(data: PreparedBids, experiment: Experiment) -> RealizedAve
     """
     arms = experiment.arms
     k_arms = len(arms)
-    pos_weights = np.zeros((k_arms, int(max(data.position.max(), 1)) + 1))
+    floor = float(experiment.floor or 0.0) if floor is None else float(floor)
+    longest = max([len(a.position_weights or ()) for a in arms] + [1])
+    pos_weights = np.zeros((k_arms, int(max(data.position.max(), longest, 1)) + 1))
     for k, a in enumerate(arms):
         pos_weights[k, 1:] = np.asarray(a.weights_for(pos_weights.shape[1] - 1))
     realized = pos_weights[data.arm, data.position]
-    realized *= data.bid
+    if experiment.payment_rule == "first_price":
+        realized *= data.bid  # sub-floor bids are unshown (position weight 0)
+    else:
+        price = per_click_prices(data.auction, data.bid, data.arm, pos_weights[:, 1:],
+                                 payment_rule=experiment.payment_rule, floor=floor)
+        realized *= np.nan_to_num(price, nan=0.0)  # NaN: sub-floor, unshown
+        del price
     revenue_of_auction = np.bincount(data.auction, weights=realized, minlength=data.n_auctions)
     del realized
     arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)

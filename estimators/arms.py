@@ -16,7 +16,8 @@ from ._realized import realized_averages
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
 from .errors import EstimatorWarning, InputError
-from .order_weights import WeightTable, revenue_weights, welfare_weights
+from .order_weights import Floor, WeightTable, revenue_weights, welfare_weights
+from .payment_rules import PAYMENT_RULES
 from .spec import Experiment
 
 __all__ = [
@@ -27,14 +28,17 @@ __all__ = [
     "MIN_STRATUM_BIDS",
     "MIXTURE_ARM",
     "PreparedBids",
+    "REQUIRED_BID_COLUMNS",
     "RESULT_COLUMNS",
     "STATUS_FLAGS",
     "estimate_arms",
     "prepare_bids",
 ]
 
-#: Columns of the bids data contract that the estimator reads.
-BID_COLUMNS = ("auction_id", "bidder_id", "arm", "bid", "position")
+#: Columns of the bids data contract that the estimator reads (``quality`` only when the log has it).
+BID_COLUMNS = ("auction_id", "bidder_id", "arm", "bid", "position", "quality")
+#: Of those, the ones every log must have.
+REQUIRED_BID_COLUMNS = tuple(c for c in BID_COLUMNS if not BID_CONTRACT[c].optional)
 #: Metrics in the results, in output order.
 METRICS = ("revenue_per_auction", "welfare_per_auction", "realized_revenue_per_auction", "revenue_lift_vs_control")
 #: Derived row: the mixture that actually ran (estimate vs realized: the sanity identity).
@@ -42,7 +46,9 @@ MIXTURE_ARM = "_mixture"
 #: Written beside every stored estimate; bump when numbers could change for the same bids.
 #: ordstat-2: default cluster ``auto``, welfare's endpoint terms from the top/bottom spacings and no
 #: welfare interval, NaN for degenerate strata, ``status`` column.
-METHOD_VERSION = "ordstat-2"
+#: ordstat-3: the payment rule that ran (``first_price``, ``gsp``, ``vcg``), the spec's floor (clamped
+#: bids, boundary term, estimated threshold quantile) and quality-weighted (effective) bids.
+METHOD_VERSION = "ordstat-3"
 #: Cluster units of the standard errors; ``auto`` is bidder when bidder ids repeat across auctions.
 CLUSTERS = ("auto", "auction", "bidder")
 #: Strata (number of bidders) with fewer bids than this are flagged ``few_bids``: the normal
@@ -73,7 +79,9 @@ class PreparedBids:
     Attributes
     ----------
     bid : ndarray of float64
-        May share memory with the input frame (read only).
+        The effective bid: ``bid * quality`` when the log has a ``quality`` column, else the bid
+        (then it may share memory with the input frame; read only). Auctions rank by it and the
+        floor applies to it.
     auction : ndarray of int32 or intp
         Auction codes 0..n_auctions-1.
     bidder : ndarray of integers
@@ -88,6 +96,8 @@ class PreparedBids:
     n_excluded_auctions : int
         Single-bidder auctions left out.
     n_excluded_bids : int
+    has_quality : bool
+        Whether the log had a ``quality`` column (``bid`` is then the effective bid).
     """
 
     bid: np.ndarray
@@ -99,6 +109,7 @@ class PreparedBids:
     n_auctions: int
     n_excluded_auctions: int
     n_excluded_bids: int
+    has_quality: bool = False
 
 
 def _row(rows: np.ndarray | None, i: int) -> int:
@@ -279,9 +290,9 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         del keep, codes
     if len(bids) == 0:
         raise InputError(f"{source}: no bids for experiment {experiment.id!r}")
-    missing = [c for c in BID_COLUMNS if c not in bids.columns]
+    missing = [c for c in REQUIRED_BID_COLUMNS if c not in bids.columns]
     if missing:
-        raise InputError(f"{source}: column {missing[0]!r} is missing (required: {', '.join(BID_COLUMNS)})")
+        raise InputError(f"{source}: column {missing[0]!r} is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
 
     col = bids["bid"]
     if _holds_decimals(col):  # how pandas holds Parquet decimals (money as warehouses export it)
@@ -304,6 +315,10 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             bad = np.flatnonzero(test(bid))
             if bad.size:
                 raise InputError(f"{source}: column 'bid' row {_row(rows, int(bad[0]))} is {what} ({bid[bad[0]]!r})")
+
+    has_quality = "quality" in bids.columns
+    if has_quality:  # auctions rank by bid x quality: everything from here on uses the effective bid
+        bid = bid * _qualities(bids["quality"], rows, source)
 
     for name in ("auction_id", "bidder_id", "arm"):
         if _is_plain_integer(bids[name]):
@@ -334,6 +349,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     del arm_codes
 
     position = _positions(bids["position"], rows, source)
+    if experiment.floor:
+        _refuse_bids_against_floor(bid, position, float(experiment.floor), rows, source, has_quality=has_quality)
 
     auction = _auction_codes(bids["auction_id"])
     n_all = int(auction.max()) + 1
@@ -384,7 +401,47 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         n_auctions=int(auction.max()) + 1,
         n_excluded_auctions=n_excluded,
         n_excluded_bids=n_excluded_bids,
+        has_quality=has_quality,
     )
+
+
+#: The contract's rule for ``quality`` (kind ``numeric``, optional; where present every row > 0).
+_QUALITY = BID_CONTRACT["quality"]
+
+
+def _qualities(col: pd.Series, rows: np.ndarray | None, source: str) -> np.ndarray:
+    """The ``quality`` column as float64; one error naming the first row that is null, NaN, infinite or <= 0."""
+    if _holds_decimals(col):
+        col = pd.Series(col.to_numpy(dtype=float, na_value=np.nan), index=col.index)
+    if pd.api.types.is_bool_dtype(col) or not pd.api.types.is_numeric_dtype(col):
+        coerced = pd.to_numeric(col, errors="coerce")
+        bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
+        i = int(bad[0]) if bad.size else 0
+        raise InputError(f"{source}: column 'quality' must be numeric (dtype {col.dtype}); "
+                         f"row {_row(rows, i)} holds {_value(col.iloc[i])}")
+    quality = col.to_numpy(dtype=float, na_value=np.nan)
+    if not (quality.min() > 0 and quality.max() < np.inf):  # False for NaN too
+        for test, what in ((np.isnan, "missing (null or NaN)"), (np.isinf, "infinite"), (lambda a: a <= 0, "not positive")):
+            bad = np.flatnonzero(test(quality))
+            if bad.size:
+                raise InputError(f"{source}: column 'quality' row {_row(rows, int(bad[0]))} is {what} "
+                                 f"({quality[bad[0]]!r}); quality factors must be > 0 wherever the column exists")
+    return quality
+
+
+def _refuse_bids_against_floor(bid: np.ndarray, position: np.ndarray, floor: float, rows: np.ndarray | None,
+                               source: str, *, has_quality: bool) -> None:
+    """A sub-floor bid must be unshown (null position), and some bid must reach the floor."""
+    what = "effective bid (bid x quality)" if has_quality else "bid"
+    below = bid < floor
+    shown = np.flatnonzero(below & (position > 0))
+    if shown.size:
+        i = int(shown[0])
+        raise InputError(f"{source}: row {_row(rows, i)} has {what} {float(bid[i])!r} below the floor {floor!r} but "
+                         f"position {int(position[i])}; sub-floor bids are logged with a null position")
+    if below.all():
+        raise InputError(f"{source}: the floor {floor!r} lies above every {what} (largest {float(bid.max())!r}); "
+                         "nothing is eligible to estimate from")
 
 
 #: The contract's rule for ``position`` (kind ``integer``, nullable: null = not shown). pandas holds
@@ -699,8 +756,9 @@ def estimate_arms(
         raise InputError(f"`confidence_level` must be in (0, 1); got {confidence_level!r}")
     if cluster not in CLUSTERS:
         raise InputError(f"`cluster` must be one of {', '.join(CLUSTERS)}; got {cluster!r}")
-    if experiment.payment_rule != "first_price":
-        raise InputError(f"experiment {experiment.id!r}: payment_rule {experiment.payment_rule!r} is not supported")
+    if experiment.payment_rule not in PAYMENT_RULES:
+        raise InputError(f"experiment {experiment.id!r}: unknown payment_rule {experiment.payment_rule!r} "
+                         f"(supported: {', '.join(PAYMENT_RULES)})")
     data = bids if isinstance(bids, PreparedBids) else prepare_bids(bids, experiment, source=source)
     return _estimate(data, experiment, confidence_level=float(confidence_level), cluster=cluster, source=source)
 
@@ -722,9 +780,12 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
     # no square of an influence sum overflows (or underflows) on the way.
     top_bid = float(data.bid.max())
     exponent = 0
+    floor_value = float(experiment.floor or 0.0)  # per click, in (effective) bid units; 0: no floor
     if top_bid > 0 and not 2.0**-_UNIT_EXPONENT <= top_bid <= 2.0**_UNIT_EXPONENT:
         exponent = math.frexp(top_bid)[1]
         data = dataclasses.replace(data, bid=np.ldexp(data.bid, -exponent))
+        floor_value = math.ldexp(floor_value, -exponent)
+    rule = experiment.payment_rule
 
     # Auctions per stratum (number of bidders).
     first_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
@@ -747,9 +808,19 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         big_n = sorted_bids.size
         if big_n < MIN_STRATUM_BIDS:
             few.append((n, big_n))
+        floor = None
+        n_below = 0
+        if floor_value > 0:
+            # The floor's quantile q* is estimated by the share of sub-floor bids (strict: a bid equal
+            # to the floor is eligible); sub-floor bids then count as the floor (the order is kept).
+            n_below = int(np.searchsorted(sorted_bids, floor_value, side="left"))
+            if n_below < big_n:
+                floor = Floor(floor_value, n_below / big_n)
+            np.maximum(sorted_bids, floor_value, out=sorted_bids)
         if sorted_bids[0] == sorted_bids[-1]:
             degenerate.append(n)
-            _warn(f"{source}: stratum of {n} bidders: all {big_n} bids equal "
+            what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
+            _warn(f"{source}: stratum of {n} bidders: all {big_n} {what} "
                   f"{float(np.ldexp(sorted_bids[0], exponent))!r}; equal bids are no equilibrium of continuous "
                   "values, so revenue, welfare and lift are NaN (status 'degenerate')")
             del order, sorted_bids, b_raw, sel
@@ -763,7 +834,9 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         rules: list[AllocationRule] = [allocation_rule(a.weights_for(n), n) for a in arms]
         mix = mixture_rule(rules, shares)
         # Revenue and welfare of every arm (the mixture's revenue follows by linearity below).
-        weights = [revenue_weights(r, mix, big_n) for r in rules] + [welfare_weights(r, mix, big_n) for r in rules]
+        options = {"payment_rule": rule, "floor": floor}
+        weights = ([revenue_weights(r, mix, big_n, **options) for r in rules]
+                   + [welfare_weights(r, mix, big_n, **options) for r in rules])
         identified = [k < k_arms or bool(np.isfinite(ww.top) and np.isfinite(ww.bottom)) for k, ww in enumerate(weights)]
         table = WeightTable([ww for ww, ok in zip(weights, identified) if ok], big_n)
         column = np.cumsum(identified) - 1  # metric k's row in the table
@@ -775,11 +848,19 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
                     continue
                 top_gap, bottom_gap = _endpoint_gaps(sorted_bids)
                 est = _l_statistic(table, int(column[k]), n, sorted_bids, None)
-                est += n * ww.top * (float(sorted_bids[-1]) + top_gap) - n * ww.bottom * (float(sorted_bids[0]) - bottom_gap)
+                est += n * ww.top * (float(sorted_bids[-1]) + top_gap) + n * ww.floor_term
+                if ww.bottom:  # 0 with a floor (its term replaces the bottom bid's)
+                    est -= n * ww.bottom * (float(sorted_bids[0]) - bottom_gap)
                 welfare[k - k_arms] += pi * est
                 continue
-            boundary = n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0])
+            boundary = n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0]) + n * ww.floor_term
             est = _l_statistic(table, int(column[k]), n, sorted_bids, infl) + boundary
+            if floor is not None:
+                # q* is the share of sub-floor bids: each bid's influence gains slope * (1{b < r} - q*)
+                # (the sub-floor bids are the first n_below sorted ones).
+                slope = n * ww.floor_slope
+                infl[:n_below] += slope * (1.0 - floor.quantile)
+                infl[n_below:] -= slope * floor.quantile
             infl *= pi / big_n
             revenue[k].add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
         del sorted_bids, cl, table
@@ -805,7 +886,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         _warn("welfare is not identified: the mixture's top two positions weigh the same "
               "(or its bottom positions do), so values at that end cannot be recovered from bids")
 
-    realized = realized_averages(data, experiment)
+    realized = realized_averages(data, experiment, floor=floor_value)
 
     z = float(stats.norm.ppf(0.5 + confidence_level / 2))
     stratum_flags = (["few_bids"] if few else []) + (["degenerate"] if degenerate else [])
@@ -866,6 +947,9 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         strata={int(n): int(c) for n, c in zip(strata, strata_auctions)},
         method_version=METHOD_VERSION,
         welfare_identified=welfare_identified,
+        payment_rule=rule,
+        floor=float(experiment.floor or 0.0),
+        quality=bool(data.has_quality),
     )
     return out
 

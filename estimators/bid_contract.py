@@ -36,6 +36,7 @@ __all__ = [
     "ColumnRule",
     "INTEGER_RANGE",
     "KINDS",
+    "REQUIRED_COLUMNS",
     "UNIQUE_KEY",
     "column_rule",
 ]
@@ -63,6 +64,10 @@ class ColumnRule:
         Values must be finite (no NaN, no infinity).
     partition_key : bool
         The lake's partition column: every lake row has it, but a relation of one day need not.
+    optional : bool
+        The column may be absent from a log; where it is present its rules apply to every row.
+    strictly_positive : bool
+        Values must be > 0 (``quality``).
     meaning : str
         What the column holds, for messages and docs.
     """
@@ -73,6 +78,8 @@ class ColumnRule:
     lower_bound: float | None = None
     finite: bool = False
     partition_key: bool = False
+    optional: bool = False
+    strictly_positive: bool = False
     meaning: str = ""
 
     def __post_init__(self):
@@ -98,8 +105,14 @@ BID_CONTRACT: dict[str, ColumnRule] = {r.name: r for r in (
     ColumnRule("arm", "text", nullable=False, meaning="the arm this auction ran"),
     ColumnRule("bid", "numeric", nullable=False, lower_bound=0.0, finite=True, meaning="the bid, per click"),
     ColumnRule("position", "integer", nullable=True, lower_bound=1,
-               meaning="the position the bid was shown at, 1 = top; null = not shown"),
+               meaning="the position the bid was shown at, 1 = top; null = not shown (always null for a bid "
+                       "whose effective bid is below the experiment's floor)"),
+    ColumnRule("quality", "numeric", nullable=False, finite=True, optional=True, strictly_positive=True,
+               meaning="optional quality factor (> 0): auctions rank by bid x quality, the effective bid"),
 )}
+
+#: Contract columns every log must have (``quality`` may be absent).
+REQUIRED_COLUMNS = tuple(name for name, rule in BID_CONTRACT.items() if not rule.optional)
 
 #: A bidder bids at most once per auction.
 UNIQUE_KEY = ("auction_id", "bidder_id")

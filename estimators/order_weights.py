@@ -19,6 +19,7 @@ interpolated by a cubic spline (error below 1e-10 up to n = 60; see the tests).
 
 from __future__ import annotations
 
+from collections import OrderedDict
 from dataclasses import dataclass
 
 import numpy as np
@@ -154,6 +155,27 @@ class WeightTable:
         return min(i * self.intervals // self.n_bids, self.intervals - 1)
 
 
+#: gsp weights cost a quadrature per grid interval (0.3-0.8 s per arm and metric on 2**14 intervals):
+#: the last few are kept, keyed by (target weights, mixture weights, bidders, grid size, metric).
+_GSP_CACHE: OrderedDict = OrderedDict()
+_GSP_CACHE_SIZE = 48
+
+
+def _gsp_weights(target: AllocationRule, mixture: AllocationRule, q: np.ndarray, metric: str):
+    """:func:`gsp_cumulative_weights` on the uniform grid ``q``, cached (the arrays are read-only)."""
+    key = (target.position_weights.tobytes(), mixture.position_weights.tobytes(), mixture.n_bidders, q.size, metric)
+    hit = _GSP_CACHE.get(key)
+    if hit is not None:
+        _GSP_CACHE.move_to_end(key)
+        return hit
+    values, beta = gsp_cumulative_weights(target, mixture, q, metric=metric)
+    values.setflags(write=False)
+    _GSP_CACHE[key] = (values, beta)
+    while len(_GSP_CACHE) > _GSP_CACHE_SIZE:
+        _GSP_CACHE.popitem(last=False)
+    return values, beta
+
+
 def _grid(n_bids: int | None) -> np.ndarray:
     k = GRID_INTERVALS if n_bids is None else min(GRID_INTERVALS, int(n_bids))
     return np.arange(k + 1) / k
@@ -205,7 +227,7 @@ def revenue_weights(
     floor = _floor_of(floor)
     q = _grid(n_bids)
     if payment_rule == "gsp":
-        omega, beta = gsp_cumulative_weights(target, mixture, q, metric="revenue")
+        omega, beta = _gsp_weights(target, mixture, q, "revenue")
         return _with_floor(target, q, omega, 0.0, beta, floor, "revenue")
     if payment_rule == "vcg":
         return _with_floor(target, q, vcg_cumulative_weights(target, q, metric="revenue"), 0.0, 0.0, floor, "revenue")
@@ -251,7 +273,7 @@ def welfare_weights(
     floor = _floor_of(floor)
     q = _grid(n_bids)
     if payment_rule == "gsp":
-        psi, beta = gsp_cumulative_weights(target, mixture, q, metric="welfare")
+        psi, beta = _gsp_weights(target, mixture, q, "welfare")
         top = 0.0 if np.isfinite(beta) else np.nan
         return _with_floor(target, q, psi, top, beta, floor, "welfare")
     if payment_rule == "vcg":

@@ -4,15 +4,21 @@ A spec file (YAML) holds one or more experiments::
 
     experiments:
       - id: homepage-slots
-        payment_rule: first_price
+        payment_rule: gsp          # optional: first_price (default), gsp or vcg -- the rule that ran
         control_arm: control
         start: 2026-03-01          # optional: first day the experiment runs
         end: 2026-03-28            # optional: last day (inclusive)
-        floor: 0.05                # optional: minimum admissible bid (checked, not modelled)
+        floor: 0.05                # optional: floor per click, shared by every arm (effective-bid units)
         arms:
           - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
           - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
         checks: {}                 # optional: thresholds for the data checks
+
+``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
+bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` is one number for
+the whole experiment: bids (effective bids ``bid x quality`` when the log has a ``quality``
+column) below it are ineligible and logged with a null position. Floors that differ by arm are
+not modelled, and the spec has no per-arm ``floor`` key (refused as an unknown key).
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -34,6 +40,7 @@ import numpy as np
 import yaml
 
 from .errors import InputError
+from .payment_rules import PAYMENT_RULES as _PAYMENT_RULES
 
 __all__ = [
     "Arm",
@@ -46,8 +53,8 @@ __all__ = [
     "parse_experiments",
 ]
 
-#: Payment rules the estimator implements.
-PAYMENT_RULES = ("first_price",)
+#: Payment rules the estimator implements (the one list lives with their weights).
+PAYMENT_RULES = _PAYMENT_RULES
 #: Shares must sum to one within this tolerance.
 SHARE_TOLERANCE = 1e-6
 #: Arm names starting with an underscore are reserved for derived rows (``_mixture``).
@@ -103,13 +110,17 @@ class Experiment:
     ----------
     id : str
     payment_rule : str
-        ``first_price`` (pay your bid per click).
+        Per-click prices of the auctions that ran: ``first_price`` (pay your bid), ``gsp`` (the
+        next-lower eligible bid, or the floor) or ``vcg`` (truthful prices). The arms' own revenue
+        does not depend on it (revenue equivalence); how bids map to values does.
     control_arm : str
     arms : tuple of Arm
     start, end : datetime.date or None
         First and last day (inclusive) the experiment runs; ``None`` for open-ended.
     floor : float or None
-        Minimum admissible bid; a data check, not part of the equilibrium model.
+        Floor per click shared by every arm, in bid units (effective-bid units ``bid x quality``
+        when the log has quality factors). Bids below it are ineligible and logged unshown; the
+        estimator models it (``None`` or 0: no floor).
     checks : dict
         Threshold overrides for the data checks, passed through unchanged.
     """
@@ -224,7 +235,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     exp_id = str(exp_id)
     where = f"{where} (id {exp_id!r})"
     rule = raw.get("payment_rule", "first_price")
-    if rule not in PAYMENT_RULES:
+    if not isinstance(rule, str) or rule not in PAYMENT_RULES:
         raise InputError(f"{where}: unknown payment_rule {rule!r} (supported: {', '.join(PAYMENT_RULES)})")
     arms_raw = raw.get("arms")
     if not isinstance(arms_raw, Sequence) or isinstance(arms_raw, (str, bytes)) or len(arms_raw) < 1:
@@ -235,6 +246,9 @@ def _experiment(raw: Any, where: str) -> Experiment:
         if not isinstance(a, Mapping):
             raise InputError(f"{aw}: must be a mapping with keys name, share, position_weights")
         name = a.get("name")
+        if "floor" in a:
+            raise InputError(f"{aw} ({name}): arms with different floors are not modelled (bids would bunch at "
+                             "each arm's floor); set one 'floor' for the whole experiment")
         _refuse_unknown(a, ARM_KEYS, f"{aw} ({name})" if isinstance(name, str) else aw)
         if not isinstance(name, str) or not _NAME.match(name):
             raise InputError(
