@@ -433,15 +433,14 @@ def _refuse_bids_against_floor(bid: np.ndarray, position: np.ndarray, floor: flo
                                source: str, *, has_quality: bool) -> None:
     """A sub-floor bid must be unshown (null position), and some bid must reach the floor."""
     what = "effective bid (bid x quality)" if has_quality else "bid"
-    below = bid < floor
-    shown = np.flatnonzero(below & (position > 0))
+    if not bid.max() >= floor:
+        raise InputError(f"{source}: the floor {floor!r} lies above every {what} (largest {float(bid.max())!r}); "
+                         "nothing is eligible to estimate from")
+    shown = np.flatnonzero((bid < floor) & (position > 0))
     if shown.size:
         i = int(shown[0])
         raise InputError(f"{source}: row {_row(rows, i)} has {what} {float(bid[i])!r} below the floor {floor!r} but "
                          f"position {int(position[i])}; sub-floor bids are logged with a null position")
-    if below.all():
-        raise InputError(f"{source}: the floor {floor!r} lies above every {what} (largest {float(bid.max())!r}); "
-                         "nothing is eligible to estimate from")
 
 
 #: The contract's rule for ``position`` (kind ``integer``, nullable: null = not shown). pandas holds
