@@ -414,11 +414,13 @@ def _qualities(col: pd.Series, rows: np.ndarray | None, source: str) -> np.ndarr
     if _holds_decimals(col):
         col = pd.Series(col.to_numpy(dtype=float, na_value=np.nan), index=col.index)
     if pd.api.types.is_bool_dtype(col) or not pd.api.types.is_numeric_dtype(col):
-        coerced = pd.to_numeric(col, errors="coerce")
-        bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
-        i = int(bad[0]) if bad.size else 0
-        raise InputError(f"{source}: column 'quality' must be numeric (dtype {col.dtype}); "
-                         f"row {_row(rows, i)} holds {_value(col.iloc[i])}")
+        coerced = pd.to_numeric(col, errors="coerce") if not pd.api.types.is_bool_dtype(col) else None
+        bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy()) if coerced is not None else np.r_[0]
+        if bad.size:
+            i = int(bad[0])
+            raise InputError(f"{source}: column 'quality' must be numeric (dtype {col.dtype}); "
+                             f"row {_row(rows, i)} holds {_value(col.iloc[i])}")
+        col = coerced  # numbers held as objects, with nulls
     quality = col.to_numpy(dtype=float, na_value=np.nan)
     if not (quality.min() > 0 and quality.max() < np.inf):  # False for NaN too
         for test, what in ((np.isnan, "missing (null or NaN)"), (np.isinf, "infinite"), (lambda a: a <= 0, "not positive")):
