@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import interpolate, stats
+from scipy import interpolate, special, stats
 
 from .allocation import allocation_rule, mixture_rule
 from .errors import InputError
@@ -408,7 +408,9 @@ class InferredValues:
     slope : ndarray
         Its derivative ``b'(q)``.
     value : ndarray
-        Implied value ``v(q) = b(q) + b'(q) x(q) / x'(q)`` for the mixture ``x``.
+        Implied value ``v = p'/x'`` for the mixture ``x`` by the payment rule that ran:
+        ``b + b' x / x'`` (``first_price``), ``b`` (``vcg``), or ``[b D - sum_k W_k c_k (k-1)
+        (1-q)^(k-2) B_k] / x'`` (``gsp``; docs/method.md, "The three inversions and their weights").
     """
 
     n_bidders: int
@@ -468,23 +470,74 @@ def inferred_values(sorted_bids: np.ndarray, experiment: Experiment, n_bidders: 
         raise InputError(f"inferred_values: need at least 8 bids in the stratum of {n_bidders} bidders; got {big_n}")
     if not 0 <= q_low < q_high <= 1:
         raise InputError(f"`q_low` and `q_high` must satisfy 0 <= q_low < q_high <= 1; got {q_low}, {q_high}")
-    k_inner = int(max(2, min(int(knots), math.floor((0.1 * big_n) ** (1 / 3)))))
+    rule = experiment.payment_rule
+    floor = float(experiment.floor or 0.0)
+    # With a floor only the eligible bids (q > q*) answer the mixture; the sub-floor ones are values.
+    n_below = int(np.searchsorted(b, floor, side="left")) if floor > 0 else 0
+    if big_n - n_below < 8:
+        raise InputError(f"inferred_values: need at least 8 bids at or above the floor in the stratum of "
+                         f"{n_bidders} bidders; got {big_n - n_below}")
+    q_star = n_below / big_n
+    clamped = np.maximum(b, floor) if floor > 0 else b
     pos = (np.arange(big_n) + 0.5) / big_n
-    if big_n > _FIT_POINTS:  # every k-th order statistic: the same quantile function, thinned
-        step = -(-big_n // _FIT_POINTS)
-        pos, b = pos[step // 2::step], b[step // 2::step]
-    inner = np.linspace(0.0, 1.0, k_inner + 2)[1:-1]
-    t = np.r_[[0.0] * 4, inner, [1.0] * 4]
-    spline = interpolate.make_lsq_spline(pos, b, t, k=3)
-    q = np.linspace(q_low, q_high, int(grid))
+    fit_pos, fit_b = pos[n_below:], b[n_below:]
+    k_inner = int(max(2, min(int(knots), math.floor((0.1 * fit_b.size) ** (1 / 3)))))
+    if fit_b.size > _FIT_POINTS:  # every k-th order statistic: the same quantile function, thinned
+        step = -(-fit_b.size // _FIT_POINTS)
+        fit_pos, fit_b = fit_pos[step // 2::step], fit_b[step // 2::step]
+    inner = np.linspace(q_star, 1.0, k_inner + 2)[1:-1]
+    t = np.r_[[q_star] * 4, inner, [1.0] * 4]
+    spline = interpolate.make_lsq_spline(fit_pos, fit_b, t, k=3)
+    span = 1.0 - q_star  # the trimmed ends, as shares of the eligible range
+    q = np.linspace(q_star + span * q_low, q_star + span * q_high, int(grid))
     bq = spline(q)
     slope = spline.derivative()(q)
     rules = [allocation_rule(a.weights_for(n_bidders), n_bidders) for a in experiment.arms]
     mix = mixture_rule(rules, experiment.shares)
     x, dx = mix.value(q), mix.derivative(q)
     with np.errstate(divide="ignore", invalid="ignore"):
-        value = np.where(dx > 0, bq + slope * x / dx, np.nan)
+        if rule == "vcg":  # truthful prices: bids are values (Vickrey 1961)
+            value = bq.copy()
+        elif rule == "gsp":
+            value = np.where(dx > 0, _gsp_marginal_payment(clamped, q, bq, mix, floor) / dx, np.nan)
+        else:
+            value = np.where(dx > 0, bq + slope * x / dx, np.nan)
     return InferredValues(int(n_bidders), big_n, q, bq, slope, value)
+
+
+def _gsp_marginal_payment(clamped: np.ndarray, q: np.ndarray, bq: np.ndarray, mix, floor: float) -> np.ndarray:
+    """``p'(q)`` of the next-price auction from the empirical quantile function of the clamped bids.
+
+    ``p'(q) = b(q) D(q) - sum_{k>=2} W_k c_k (k-1) (1-q)^(k-2) B_k(q)`` with ``D(q) = sum_{k<n} W_k
+    c_k (n-k) (1-q)^(k-1) q^(n-k-1)``, ``B_k(q) = (n-k) int_0^q max(b, r) s^(n-k-1) ds`` (exact on the
+    empirical quantile function, a cumulative sum over the sorted bids) and ``B_n = r``; ``b(q)``
+    is the fitted quantile function ``bq``. No derivative of the bids enters (Gomes & Sweeney 2014
+    payment; docs/method.md).
+    """
+    n = mix.n_bidders
+    big_w = mix.position_weights
+    big_n = clamped.size
+    if big_n > _FIT_POINTS:  # thinned like the fit: every k-th order statistic stands for its block
+        step = -(-big_n // _FIT_POINTS)
+        clamped = clamped[step // 2::step]
+        big_n = clamped.size
+    u = np.arange(big_n + 1) / big_n
+    c = special.comb(n - 1, np.arange(n))
+    d = np.zeros_like(q)
+    lower = np.zeros_like(q)
+    for k in range(1, n + 1):
+        m = n - k
+        if k < n:
+            d += big_w[k - 1] * c[k - 1] * m * (1 - q) ** (k - 1) * q ** (m - 1)
+        if k < 2:
+            continue
+        if m == 0:
+            running = np.full_like(q, floor)
+        else:
+            cells = np.diff(u**m)  # m int s^(m-1) over each bid's quantile cell
+            running = np.interp(q, u, np.r_[0.0, np.cumsum(clamped * cells)])
+        lower += big_w[k - 1] * c[k - 1] * (k - 1) * (1 - q) ** (k - 2) * running
+    return bq * d - lower
 
 
 def _strata_bids(data) -> dict[int, np.ndarray]:
