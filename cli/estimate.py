@@ -66,6 +66,9 @@ def run(args: argparse.Namespace) -> int:
             "cluster": result.attrs["cluster"],  # the clustering used
             "n_excluded_auctions": excluded,
             "method_version": result.attrs["method_version"],
+            "payment_rule": result.attrs["payment_rule"],
+            "floor": result.attrs["floor"],
+            "quality": result.attrs["quality"],
             "rows": json.loads(result.to_json(orient="records")),
         }
         print(json.dumps(payload, indent=2))
@@ -75,12 +78,17 @@ def run(args: argparse.Namespace) -> int:
         from counterbid.estimators.intervals import POPULATION, format_level, row_clusters
 
         cluster = result.attrs["cluster"]  # the clustering the run used (not the option's spelling)
-        print(f"experiment {experiment.id}: {result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids, "
+        floor = result.attrs["floor"]
+        print(f"experiment {experiment.id}: payment rule {result.attrs['payment_rule']}, "
+              f"{'floor ' + format(floor, 'g') if floor else 'no floor'}"
+              f"{', ranked by bid x quality' if result.attrs['quality'] else ''}; "
+              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids, "
               f"{format_level(result.attrs['confidence_level'])} intervals clustered by {cluster} "
               f"(they speak for {POPULATION[cluster]})")
         shown = result.copy()
         shown.insert(shown.columns.get_loc("ci_high") + 1, "cluster", row_clusters(result))
         print(shown.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
-        print("Assumes symmetric bidders in equilibrium against the designed shares and known position weights;"
+        print("Assumes symmetric bidders in equilibrium against the designed shares, known position weights and the"
+              " spec's payment rule and floor (each arm's own payment rule does not enter: revenue equivalence);"
               " realized_revenue_per_auction is the realized per-arm average (biased), shown for comparison.")
     return 0

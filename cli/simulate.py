@@ -20,6 +20,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--bidders", type=int, default=5, help="bidders per auction")
     p.add_argument("--values", choices=DISTRIBUTIONS, default="lognorm", help="value distribution per click")
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--quality", nargs=2, type=float, metavar=("LOW", "HIGH"),
+                   help="draw a quality factor per bid, uniform on [LOW, HIGH] (> 0), and log it in a 'quality' "
+                        "column; auctions then rank by bid x quality. The payment rule and the floor come from the spec")
 
 
 def _distribution(name: str):
@@ -42,6 +45,14 @@ def run(args: argparse.Namespace) -> int:
     start = parse_day(args.start, what="--start")
     rng = np.random.default_rng(args.seed)
     values = _distribution(args.values)
+    quality = None
+    if args.quality is not None:
+        import scipy.stats as st
+
+        low, high = args.quality
+        if not 0 < low <= high:
+            raise InputError(f"--quality must satisfy 0 < LOW <= HIGH; got {low:g} {high:g}")
+        quality = st.uniform(low, high - low)
     root = Path(args.out)
     next_id = 0
     for d in range(args.days):
@@ -50,7 +61,8 @@ def run(args: argparse.Namespace) -> int:
         part.mkdir(parents=True, exist_ok=True)
         for exp in experiments.values():
             frame = simulate_experiment(values, exp, n_bidders=args.bidders, n_auctions=args.auctions_per_day,
-                                        rng=rng, ds=day, first_auction_id=next_id)
+                                        rng=rng, ds=day, first_auction_id=next_id, payment_rule=exp.payment_rule,
+                                        floor=exp.floor or None, quality=quality)
             next_id += args.auctions_per_day
             target = part / f"{exp.id}.parquet"
             tmp = target.with_suffix(".parquet.tmp")

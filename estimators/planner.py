@@ -118,6 +118,10 @@ def pilot_values(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     .. [1] Guerre, E., Perrigne, I. & Vuong, Q. (2000). Optimal nonparametric estimation of
        first-price auctions. Econometrica 68(3), 525-574.
     """
+    if experiment.payment_rule == "gsp" or experiment.floor:
+        raise InputError(f"{source}: pilot values are inferred by the two-step kernel baseline, which covers "
+                         f"first_price (and vcg, whose bids are values) without a floor; experiment {experiment.id!r} "
+                         f"has payment_rule {experiment.payment_rule!r} and floor {experiment.floor!r}: plan without pilot bids")
     data = prepare_bids(bids, experiment, source=source)
     first = np.zeros(data.n_auctions, dtype=np.int64)
     first[data.auction] = data.n_bidders
@@ -125,7 +129,11 @@ def pilot_values(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     pooled = []
     for n in ns.tolist():
         rules = [allocation_rule(a.weights_for(n), n) for a in experiment.arms]
-        pv = pseudo_values(np.sort(data.bid[data.n_bidders == n]), mixture_rule(rules, experiment.shares))
+        sorted_bids = np.sort(data.bid[data.n_bidders == n])
+        if experiment.payment_rule == "vcg":  # truthful prices: bids are values
+            pooled.append(sorted_bids)
+            continue
+        pv = pseudo_values(sorted_bids, mixture_rule(rules, experiment.shares))
         pooled.append(pv.value)
     v = np.concatenate(pooled)
     v = v[np.isfinite(v) & (v >= 0)]
@@ -137,7 +145,10 @@ def pilot_values(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 
 def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> pd.DataFrame:
     """Per-auction standard deviation ``SE x sqrt(M)`` and estimate, from one simulated experiment."""
-    bids = simulate_experiment(values, experiment, n_bidders=n_bidders, n_auctions=n_auctions, rng=rng)
+    # Calibration bids from the auction that runs: its payment rule and floor (quality factors do
+    # not change revenue's sampling in the model, so none are simulated).
+    bids = simulate_experiment(values, experiment, n_bidders=n_bidders, n_auctions=n_auctions, rng=rng,
+                               payment_rule=experiment.payment_rule, floor=experiment.floor or None)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)  # welfare's missing interval: not planned
         return _sigma_of(estimate_arms(bids, experiment, cluster="auction"), n_auctions)

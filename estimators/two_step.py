@@ -186,6 +186,16 @@ def _revenue(pv: PseudoValues, target: AllocationRule, n: int) -> float:
     return float(n * np.sum((1.0 - pv.quantile) * pv.value * slope) / pv.n_bids)
 
 
+def _refuse_other_rules(experiment: Experiment) -> None:
+    """The kernel baseline inverts pay-your-bid bids with no floor; anything else is refused."""
+    if experiment.payment_rule != "first_price":
+        raise InputError(f"experiment {experiment.id!r}: the two-step kernel baseline covers payment_rule 'first_price' "
+                         f"only; got {experiment.payment_rule!r} (use estimate_arms)")
+    if experiment.floor:
+        raise InputError(f"experiment {experiment.id!r}: the two-step kernel baseline does not model a floor; "
+                         f"got floor {experiment.floor!r} (use estimate_arms)")
+
+
 def two_step_from_prepared(
     data: PreparedBids,
     experiment: Experiment,
@@ -194,6 +204,7 @@ def two_step_from_prepared(
     bw_method: str | float | None = None,
 ) -> pd.DataFrame:
     """:func:`two_step_revenue` on bids already validated by :func:`~.arms.prepare_bids`."""
+    _refuse_other_rules(experiment)
     arms = experiment.arms
     shares = np.array(experiment.shares)
     first = np.zeros(data.n_auctions, dtype=np.int64)
@@ -281,7 +292,6 @@ def two_step_revenue(
     """
     if isinstance(trim_bandwidths, bool) or not isinstance(trim_bandwidths, (int, float)) or not trim_bandwidths >= 0:
         raise InputError(f"`trim_bandwidths` must be a number >= 0; got {trim_bandwidths!r}")
-    if experiment.payment_rule != "first_price":
-        raise InputError(f"experiment {experiment.id!r}: payment_rule {experiment.payment_rule!r} is not supported")
+    _refuse_other_rules(experiment)
     data = prepare_bids(bids, experiment, source=source)
     return two_step_from_prepared(data, experiment, trim_bandwidths=float(trim_bandwidths), bw_method=bw_method)

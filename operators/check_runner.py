@@ -22,7 +22,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
 
-from .contract import run_contract
+from .contract import run_contract, with_quality
 
 __all__ = ["ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
 
@@ -72,6 +72,10 @@ def run_checks(
     day = parse_day(ds)
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
     results = run_contract(con, relation, experiment, config=cfg)
+    if not any(r.check == "contract_types" and not r.passed for r in results):  # the columns are there
+        relation = with_quality(con, relation)  # quality 1 when the log has none: every check ranks by bid x quality
+        if history_relation is not None:
+            history_relation = with_quality(con, history_relation)
     if any(not r.passed and r.severity == "error" for r in results):
         log.warning("%s %s: contract failed; statistical checks not run", experiment.id, day)
         return results

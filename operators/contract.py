@@ -27,15 +27,30 @@ from counterbid.sql import render_sql
 
 from . import duckdb_types
 
-__all__ = ["CONTRACT_CHECKS", "COLUMN_TYPES", "build_suites", "run_contract"]
+__all__ = ["CONTRACT_CHECKS", "COLUMN_TYPES", "build_suites", "run_contract", "with_quality"]
 
 log = logging.getLogger(__name__)
 
 #: Required columns and the DuckDB types (regular expressions) the contract accepts for them: the
 #: contract's columns but its partition key (``ds``), translated by ``operators/duckdb_types.py``.
 COLUMN_TYPES: Mapping[str, str] = {
-    name: pattern for name, pattern in duckdb_types.COLUMN_TYPES.items() if not BID_CONTRACT[name].partition_key
+    name: pattern for name, pattern in duckdb_types.COLUMN_TYPES.items()
+    if not BID_CONTRACT[name].partition_key and not BID_CONTRACT[name].optional
 }
+
+
+def with_quality(con, relation: str) -> str:
+    """``relation`` itself when it has a ``quality`` column, else a temp view of it with quality 1.
+
+    The contract aggregates and the statistical checks rank by ``bid x quality``; a log without
+    quality factors ranks by bid (``sql/check_unit_quality.sql``).
+    """
+    described = con.execute(render_sql("check_schema", relation=relation)).df()
+    if "quality" in set(described["column_name"]):
+        return relation
+    view = f"{relation}_unit_quality"
+    con.execute(render_sql("check_unit_quality", view=view, relation=relation))
+    return view
 
 #: Check names of the contract, in the order they are reported.
 CONTRACT_CHECKS = (
@@ -204,6 +219,7 @@ def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[
         log.warning("contract: schema of %s fails; per-auction checks skipped", relation)
         return results
     params = {"floor": float(experiment.floor or 0.0), "tie_tolerance": float(cfg["tie_tolerance"])}
+    relation = with_quality(con, relation)
     auctions = con.execute(render_sql("check_auction_aggregates", relation=relation), params).df()
     if auctions.empty:
         results.append(CheckResult("contract_rows", severity, False, 0.0, 1.0, {"note": f"{relation} holds no bids"}))

@@ -288,6 +288,12 @@ class ResultsHook(BaseHook):
             outside, example = con.execute(render_sql("staged_integer_range", column=column), params).fetchone()
             return int(outside), example
 
+    def staged_quality_faults(self, path: str | Path) -> tuple[int, int | None, str | None, str | None]:
+        """Rows of a staged file whose ``quality`` is missing or not > 0, and the first one (row, auction, value)."""
+        with self.lake() as con:
+            n, row, auction, quality = con.execute(self.sql("staged_quality_faults"), {"path": str(path)}).fetchone()
+            return int(n), None if row is None else int(row), auction, quality
+
     def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
         """Auctions and bids per arm of a staged bids file."""
         with self.lake() as con:

@@ -25,7 +25,7 @@ from counterbid.estimators.intervals import POPULATION, format_level  # noqa: E4
 from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
-    "ASSUMPTIONS", "MIXTURE_GAP_SE", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "ASSUMPTIONS", "MIXTURE_GAP_SE", "auction_caption", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
     "write_report",
 ]
 
@@ -34,7 +34,26 @@ ASSUMPTIONS = (
     "Symmetric bidders with independent private values.",
     "Bids in equilibrium against the designed mixture of arms (bidders have adapted to the experiment).",
     "Position weights known: taken from the spec, or measured from the click log where the spec says so.",
+    "The payment rule and floor of the auction that ran are as the spec states (listed per experiment below); "
+    "bids below the floor are logged unshown, and with quality factors auctions rank by bid x quality. Each arm's "
+    "own payment rule does not enter its revenue (revenue equivalence): only its position weights and the floor do.",
 )
+
+
+def auction_caption(rows: pd.DataFrame) -> str:
+    """The payment rule and floor stored with some rows, e.g. ``'gsp, floor 0.05'`` (several: each with its days)."""
+    if rows.empty or "payment_rule" not in rows:
+        return "not recorded"
+    floors = rows["floor"].astype(float)
+    pairs = list(dict.fromkeys(zip(rows["payment_rule"].astype(str), floors)))
+
+    def one(rule, floor):
+        return f"{rule}, {'floor ' + format(floor, 'g') if floor > 0 else 'no floor'}"
+
+    if len(pairs) == 1:
+        return one(*pairs[0])
+    days = rows.groupby([rows["payment_rule"].astype(str), floors])["ds"].nunique()
+    return "; ".join(f"{one(r, f)} ({days[(r, f)]} days)" for r, f in pairs)
 #: Days whose estimated and realized mixture revenue differ by more than this many standard errors
 #: are flagged: in equilibrium the two agree, so a gap is a sign bidders have not adapted.
 MIXTURE_GAP_SE = 3.0
@@ -219,8 +238,10 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     has_checks = hook.table_exists("data_checks")
     cumulative = cumulative_table(hook)
     sections = []
+    auctions_run = []
     for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
         daily = hook.fetch_df("report_daily_estimates", {"experiment_id": exp_id})
+        auctions_run.append(f"{exp_id}: {auction_caption(daily)}")
         to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp_id})
         weights = hook.fetch_df("report_position_weights", {"experiment_id": exp_id})
         rev_png, lift_png = f"{exp_id}_revenue.png", f"{exp_id}_lift.png"
@@ -304,6 +325,7 @@ img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
 <h1>{html.escape(title)}</h1>
 <p class="small">Generated {generated} from {html.escape(str(hook.database))}.</p>
 <div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
+<p>The auction that ran (payment rule, floor per click): {html.escape("; ".join(auctions_run)) or "no experiments"}.</p>
 Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had
 adapted to it". The realized per-arm average is each arm's revenue over its own auctions: it is biased because
 bidders bid against the mixture, and is shown only for comparison. Every interval's level and clustering are printed

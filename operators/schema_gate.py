@@ -24,7 +24,8 @@ CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
 
 
 def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
-    """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms.
+    """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms,
+    and, when the log has a ``quality`` column, a factor > 0 on every row (``schema_quality_positive``).
 
     Every result has severity ``error``: a failure stops this (experiment, day).
     """
@@ -33,6 +34,8 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
     results = []
     for name, allowed in CONTRACT_TYPES.items():
         found = columns.get(name)
+        if found is None and BID_CONTRACT[name].optional:
+            continue  # ``quality`` may be absent; where present, its type and values are checked
         ok = duckdb_types.accepts(name, found)
         results.append(CheckResult(
             check=f"schema_column_{name}", severity="error", passed=ok, observed=1.0 if ok else 0.0, threshold=1.0,
@@ -56,6 +59,14 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
             continue
         results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
                                    observed=float(nulls), threshold=0.0, details={"rows": total}))
+    if "quality" in columns:  # auctions rank by bid x quality: every row needs a factor > 0
+        n_faults, first_row, first_auction, first_quality = hook.staged_quality_faults(path)
+        results.append(CheckResult(
+            check="schema_quality_positive", severity="error", passed=n_faults == 0, observed=float(n_faults),
+            threshold=0.0, details={"rows": total} | ({} if n_faults == 0 else {
+                "first_row": first_row, "auction_id": first_auction, "quality": first_quality,
+                "error": f"{path}: column 'quality' row {first_row} (auction {first_auction}) is {first_quality}; "
+                         "quality factors must be > 0 wherever the column exists"})))
     unknown = counts[~counts["arm"].isin(experiment.arm_names)]
     n_unknown = int(unknown["n_bids"].sum())
     results.append(CheckResult(

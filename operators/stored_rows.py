@@ -1,10 +1,11 @@
-"""Columns every stored estimate row carries besides the estimate: status, level and clustering.
+"""Columns every stored estimate row carries besides the estimate: status, level, clustering, rule and floor.
 
 ``status`` is ``'ok'`` or the sorted, comma-joined flags of the row: ``warning`` when a data check
 of severity warning failed for the (experiment, day), plus the estimator's own flags from its
 ``status`` column (``few_bids``, ``degenerate``, ``no_interval``, ...; a table without the
 column counts as ``ok``). ``confidence_level`` and ``cluster`` are what the run used
-(``estimate_arms``' ``attrs``; the realized per-arm averages are always clustered by auction).
+(``estimate_arms``' ``attrs``; the realized per-arm averages are always clustered by auction), and so
+are ``payment_rule`` and ``floor``: the auction the bids came from.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ import pandas as pd
 
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.intervals import row_clusters
+from counterbid.estimators.payment_rules import PAYMENT_RULES
 
 __all__ = ["CHECK_STATUS_FLAG", "STATUS_PATTERN", "stored_status", "with_stored_columns"]
 
@@ -53,7 +55,8 @@ def stored_status(check_status: str, estimator_status: object = "ok") -> str:
 
 
 def with_stored_columns(table: pd.DataFrame, *, check_status: str) -> pd.DataFrame:
-    """``table`` (a result of ``estimate_arms``) with ``status``, ``confidence_level`` and ``cluster`` set.
+    """``table`` (a result of ``estimate_arms``) with ``status``, ``confidence_level``, ``cluster``,
+    ``payment_rule`` and ``floor`` (0: none) set.
 
     Parameters
     ----------
@@ -72,4 +75,9 @@ def with_stored_columns(table: pd.DataFrame, *, check_status: str) -> pd.DataFra
     table["status"] = [stored_status(check_status, s) for s in own]
     table["confidence_level"] = float(level)
     table["cluster"] = row_clusters(table)
+    rule = table.attrs.get("payment_rule", "first_price")
+    if rule not in PAYMENT_RULES:
+        raise InputError(f"estimate table: attrs['payment_rule'] must be one of {', '.join(PAYMENT_RULES)}; got {rule!r}")
+    table["payment_rule"] = rule
+    table["floor"] = float(table.attrs.get("floor") or 0.0)
     return table

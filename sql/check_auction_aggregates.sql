@@ -1,7 +1,8 @@
 -- One row per auction of the day's bids: the aggregates the contract suite validates, so a
 -- large partition is checked per auction in DuckDB rather than per bid in Python.
--- $floor: smallest admissible bid (0 without a floor); $tie_tolerance: bids closer than this
--- count as tied when checking that a higher bid never gets a worse position.
+-- $floor: the experiment's floor on effective bids (0 without one): a bid below it must be unshown;
+-- $tie_tolerance: effective bids closer than this count as tied when checking that a higher one
+-- never gets a worse position. Auctions rank by the effective bid, bid x quality.
 with source as (
     select
         experiment_id,
@@ -9,15 +10,17 @@ with source as (
         bidder_id,
         arm,
         cast(bid as double) as bid,
+        cast(quality as double) as quality,
+        cast(bid as double) * cast(quality as double) as effective_bid,
         position
     from {{ relation }}
 ),
 
 ranked as (
-    -- Highest bid placed at any worse position of the same auction (unshown bids rank last).
+    -- Highest effective bid placed at any worse position of the same auction (unshown bids rank last).
     select
         *,
-        max(bid) over (
+        max(effective_bid) over (
             partition by auction_id
             order by position asc nulls last
             rows between 1 following and unbounded following
@@ -35,12 +38,15 @@ select
     count(*) as n_bids,
     count(distinct bidder_id) as n_bidders,
     count(*) filter (where experiment_id is null or bidder_id is null or arm is null) as null_keys,
+    -- invalid bid or quality, or a sub-floor effective bid that was shown
     count(*) filter (
-        where bid is null or isnan(bid) or isinf(bid) or bid < 0 or bid < $floor
+        where bid is null or isnan(bid) or isinf(bid) or bid < 0
+            or quality is null or isnan(quality) or isinf(quality) or quality <= 0
+            or (effective_bid < $floor and position is not null)
     ) as bad_bids,
-    -- a shown bid beaten (by more than the tie tolerance) by a bid at a worse position
+    -- a shown bid beaten (by more than the tie tolerance) by an effective bid at a worse position
     count(*) filter (
-        where position is not null and best_bid_below > bid + $tie_tolerance
+        where position is not null and best_bid_below > effective_bid + $tie_tolerance
     ) as rank_violations
 from ranked
 group by auction_id

@@ -6,7 +6,8 @@ select
     bidder_id,
     arm,
     cast(bid as double) as bid,  -- any numeric type of the contract (decimals too)
-    position
+    position,
+    cast(quality as double) as quality  -- 1 when the log has none (check_unit_quality.sql)
 from {{ relation }}
 where experiment_id = $experiment_id
     and cast(ds as date) >= $first_day

@@ -17,6 +17,9 @@ create table if not exists {{ schema }}.arm_estimates_to_date (
     -- the interval's confidence level and the unit its standard errors were clustered on
     confidence_level double not null check (confidence_level > 0 and confidence_level < 1),
     cluster varchar not null check (cluster in ('auction', 'bidder')),
+    -- the auction the bids came from: its payment rule and floor (0: none) enter the estimate
+    payment_rule varchar not null check (payment_rule in ('first_price', 'gsp', 'vcg')),
+    floor double not null check (floor >= 0),
     method_version varchar not null,
     run_id varchar not null,
     computed_at timestamptz not null,

@@ -3,7 +3,7 @@
 insert into {{ schema }}.arm_estimates by name
 select
     experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
-    n_auctions, n_bids, status, confidence_level, cluster, method_version, run_id, computed_at
+    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at
 from incoming
 where experiment_id = $experiment_id
     and ds = $ds

@@ -5,8 +5,12 @@ with expected as (
     from (values
         ('arm_estimates', 'confidence_level'),
         ('arm_estimates', 'cluster'),
+        ('arm_estimates', 'payment_rule'),
+        ('arm_estimates', 'floor'),
         ('arm_estimates_to_date', 'confidence_level'),
-        ('arm_estimates_to_date', 'cluster')
+        ('arm_estimates_to_date', 'cluster'),
+        ('arm_estimates_to_date', 'payment_rule'),
+        ('arm_estimates_to_date', 'floor')
     ) as t (table_name, column_name)
 ),
 
