@@ -35,8 +35,9 @@ ASSUMPTIONS = (
     "Bids in equilibrium against the designed mixture of arms (bidders have adapted to the experiment).",
     "Position weights known: taken from the spec, or measured from the click log where the spec says so.",
     "The payment rule and floor of the auction that ran are as the spec states (listed per experiment below); "
-    "bids below the floor are logged unshown, and with quality factors auctions rank by bid x quality. Each arm's "
-    "own payment rule does not enter its revenue (revenue equivalence): only its position weights and the floor do.",
+    "bids below the floor are logged unshown, and with quality factors auctions rank by bid x quality. The payment "
+    "rule an arm would use itself does not enter its revenue (revenue equivalence): only its position weights and "
+    "the floor do.",
 )
 
 

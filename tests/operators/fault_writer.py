@@ -38,7 +38,7 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
     estimates = pd.DataFrame({
         "experiment_id": experiment_id, "ds": day, "arm": [f"arm{i:07d}" for i in k], "metric": "revenue_per_auction",
         "estimate": k / 7.0, "std_error": 0.01, "ci_low": k / 7.0 - 0.02, "ci_high": k / 7.0 + 0.02,
-        "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction",
+        "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction", "payment_rule": "first_price", "floor": 0.0,
         "method_version": "ordstat-1", "run_id": run_id,
         "computed_at": now})
     to_date = estimates.assign(first_ds=day - dt.timedelta(days=3))

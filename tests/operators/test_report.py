@@ -62,6 +62,8 @@ def test_report_has_plots_assumptions_and_days(results):
     text = page.read_text()
     for assumption in ASSUMPTIONS:
         assert assumption in text
+    # the auction that ran, per experiment, from the stored rows
+    assert "The auction that ran (payment rule, floor per click): " in text and "first_price, no floor" in text
     for png in ("tiles_revenue.png", "tiles_lift.png"):
         assert f'src="{png}"' in text
         assert (root / "out" / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

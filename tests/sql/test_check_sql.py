@@ -29,6 +29,7 @@ BIDS = pd.DataFrame(
 def con():
     c = duckdb.connect()
     c.register("day_bids", BIDS)
+    c.execute(render_sql("check_unit_quality", view="day_bids_q", relation="day_bids"))  # no quality column: 1
     yield c
     c.close()
 
@@ -41,31 +42,48 @@ def test_check_schema(con):
 
 
 def test_check_auction_aggregates(con):
-    out = con.execute(render_sql("check_auction_aggregates", relation="day_bids"),
+    out = con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"),
                       {"floor": 0.05, "tie_tolerance": 1e-9}).df().set_index("auction_id")
     assert out["n_bids"].tolist() == [3, 3, 3]
     assert out["n_bidders"].tolist() == [3, 2, 2]  # auction 2 repeats a bidder; auction 3 has a null
     assert out["null_keys"].tolist() == [0, 0, 1]
-    assert out["bad_bids"].tolist() == [0, 0, 2]  # NaN and 0.03 < floor
+    assert out["bad_bids"].tolist() == [0, 0, 2]  # NaN, and 0.03 < floor shown at position 2
     # auction 2: position 1 bid 0.4 is beaten by position 2 (0.8); auction 3: position 1 (NaN) never compares,
     # position 2 (0.03) is beaten by the unshown 0.7
     assert out["rank_violations"].tolist() == [0, 1, 1]
     assert out["n_arms"].tolist() == [1, 1, 1]
     assert out["arm_min"].tolist() == ["a", "b", "a"]
-    loose = con.execute(render_sql("check_auction_aggregates", relation="day_bids"),
+    loose = con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"),
                         {"floor": 0.0, "tie_tolerance": 1.0}).df()
     assert loose["rank_violations"].sum() == 0 and loose["bad_bids"].tolist() == [0, 0, 1]
 
 
+def test_check_auction_aggregates_floor_and_quality(con):
+    # Auction 1 of 4 bids ranked by bid x quality: 0.5 x 2 = 1.0 > 0.9 x 1 = 0.9, so the 0.5 bid is on top.
+    # The 0.04 bid is below the floor 0.05 and unshown (allowed); 0.2 x 0.2 = 0.04 is a sub-floor
+    # effective bid shown at position 3 (refused); in auction 2 a quality of 0 and a null one are refused.
+    bids = pd.DataFrame({"experiment_id": "e", "auction_id": [1, 1, 1, 1, 2, 2], "bidder_id": [1, 2, 3, 4, 1, 2],
+                         "arm": "a", "bid": [0.9, 0.5, 0.2, 0.04, 0.6, 0.5],
+                         "quality": [1.0, 2.0, 0.2, 1.0, 0.0, None],
+                         "position": pd.array([2, 1, 3, None, 1, 2], dtype="Int32")})
+    con.register("weighted", bids)
+    out = con.execute(render_sql("check_auction_aggregates", relation="weighted"),
+                      {"floor": 0.05, "tie_tolerance": 1e-9}).df().set_index("auction_id")
+    assert out["bad_bids"].tolist() == [1, 2]
+    assert out["rank_violations"].tolist()[0] == 0  # ranked by bid x quality, not by bid
+    by_bid = con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"), {"floor": 0.0, "tie_tolerance": 1e-9}).df()
+    assert by_bid["rank_violations"].tolist() == [0, 1, 1]  # quality 1: ranked by bid as before
+
+
 def test_check_day_bids(con):
-    out = con.execute(render_sql("check_day_bids", relation="day_bids")).df()
-    assert list(out.columns) == ["auction_id", "bidder_id", "arm", "bid", "position"] and len(out) == 9
+    out = con.execute(render_sql("check_day_bids", relation="day_bids_q")).df()
+    assert list(out.columns) == ["auction_id", "bidder_id", "arm", "bid", "position", "quality"] and len(out) == 9
 
 
 def test_check_trailing_bids_window(con):
     days = [dt.date(2026, 3, d) for d in (1, 2, 3, 4)]
     hist = pd.concat([BIDS.assign(ds=d) for d in days] + [BIDS.assign(ds=days[-1], experiment_id="x")])
-    con.register("hist", hist)
+    con.register("hist", hist.assign(quality=1.0))
     out = con.execute(render_sql("check_trailing_bids", relation="hist"),
                       {"experiment_id": "e", "first_day": dt.date(2026, 3, 2), "ds": dt.date(2026, 3, 4)}).df()
     assert sorted(pd.to_datetime(out["ds"]).dt.date.unique()) == [dt.date(2026, 3, 2), dt.date(2026, 3, 3)]

@@ -21,7 +21,7 @@ NOW = pd.Timestamp("2026-03-04 01:00", tz="UTC")
 
 
 def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False, status="ok", level=0.95,
-          cluster="auction"):
+          cluster="auction", payment_rule="gsp", floor=0.05):
     rows = []
     for arm, metric, est in [
         ("plain", "revenue_per_auction", estimate),
@@ -31,7 +31,7 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False,
     ]:
         row = dict(experiment_id=exp, ds=ds, arm=arm, metric=metric, estimate=est, std_error=0.01,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
-                   confidence_level=level, cluster=cluster,
+                   confidence_level=level, cluster=cluster, payment_rule=payment_rule, floor=floor,
                    method_version="ordstat-1", run_id=run_id, computed_at=computed_at)
         if to_date:
             row["first_ds"] = D1
@@ -90,7 +90,8 @@ def test_failed_write_rolls_back_everything(hook):
 
 @pytest.mark.parametrize("column,value", [
     ("status", ""), ("status", "warning, few_bids"), ("status", "Warning"), ("status", "ok,"),
-    ("level", 1.0), ("level", 0.0), ("cluster", "auto"), ("cluster", "arm")])
+    ("level", 1.0), ("level", 0.0), ("cluster", "auto"), ("cluster", "arm"),
+    ("payment_rule", "english"), ("floor", -0.01)])
 def test_stored_status_level_and_cluster_are_constrained(hook, column, value):
     with pytest.raises(duckdb.ConstraintException):
         hook.replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1, **{column: value})})
@@ -108,6 +109,7 @@ def test_flags_level_and_cluster_are_stored_and_reach_the_views(hook):
     assert lift.loc["day", ["confidence_level", "cluster"]].tolist() == [0.975, "bidder"]
     cum = hook.fetch_df("report_cumulative")
     assert set(zip(cum["confidence_level"], cum["cluster"])) == {(0.9, "bidder")}
+    assert set(zip(daily["payment_rule"], daily["floor"])) == {("gsp", 0.05)}
 
 
 def test_a_results_file_of_an_older_version_is_refused_naming_the_columns(tmp_path):
@@ -118,7 +120,7 @@ def test_a_results_file_of_an_older_version_is_refused_naming_the_columns(tmp_pa
                     " n_auctions bigint not null, n_bids bigint not null,"
                     " status varchar not null check (status in ('ok', 'warning')), method_version varchar not null,"
                     " run_id varchar not null, computed_at timestamptz not null, primary key (experiment_id, ds, arm, metric))")
-    with pytest.raises(InputError, match=r"old.duckdb: table arm_estimates lacks column\(s\) cluster, confidence_level "
+    with pytest.raises(InputError, match=r"old.duckdb: table arm_estimates lacks column\(s\) cluster, confidence_level, floor, payment_rule "
                                          r"\(written by an older counterbid\)"):
         ResultsHook(database=path).replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
 
