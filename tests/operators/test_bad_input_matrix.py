@@ -281,3 +281,16 @@ def test_sql_looking_auction_and_bidder_ids_are_plain_data(tmp_path, capsys, spe
     code, tricked, err = _estimate(tmp_path, capsys, evil, spec_file)
     assert code == 0, err
     assert json.loads(tricked)["rows"] == json.loads(plain)["rows"]
+
+
+def test_non_positive_quality_stops_the_day_naming_the_row(airflow_db, tmp_path, capfd, caplog):
+    def with_bad_quality(day):
+        frame = _bids().assign(quality=1.0)
+        frame.loc[5, "quality"] = 0.0
+        frame.to_parquet(day / "tiles.parquet", index=False)
+
+    run, conf, text = _pipeline(tmp_path, (capfd, caplog), with_bad_quality)
+    _failed(run, "validate")
+    line = _one_line(text, r"^\s*- schema_quality_positive \[error\] FAILED")
+    assert "column 'quality' row 5" in line
+    _nothing_written(conf)
