@@ -342,7 +342,7 @@ def simulate_experiment(
     ds=None,
     first_auction_id: int = 0,
     bidder_pool: int = 5000,
-    payment_rule: str = "first_price",
+    payment_rule: str | None = None,
     floor: float | None = None,
     quality=None,
 ) -> pd.DataFrame:
@@ -367,10 +367,11 @@ def simulate_experiment(
         Auction ids are consecutive from here.
     bidder_pool : int
         Bidder ids are drawn from ``0 .. bidder_pool - 1`` (distinct within an auction).
-    payment_rule : {'first_price', 'gsp', 'vcg'}
-        Payment rule of the auctions (decides the equilibrium bids).
+    payment_rule : {'first_price', 'gsp', 'vcg'}, optional
+        Payment rule of the auctions (decides the equilibrium bids). Default: the experiment's.
     floor : float, optional
-        Floor per click shared by the arms, in effective-bid units. Bidders whose (effective)
+        Floor per click shared by the arms, in effective-bid units (default: the experiment's;
+        ``None`` or 0 there means no floor). Bidders whose (effective)
         value is below it are ineligible: they submit their value, are logged with a null
         position and never priced, so ``n`` still counts every bidder.
     quality : scipy.stats frozen distribution, optional
@@ -396,6 +397,10 @@ def simulate_experiment(
         raise InputError("`n_auctions` must be >= 1")
     shares = np.asarray(experiment.shares)
     beliefs = shares if belief_shares is None else np.asarray(belief_shares, dtype=float)
+    if payment_rule is None:  # the auction the spec says ran (a spec with a floor simulates its floor)
+        payment_rule = experiment.payment_rule
+    if floor is None and experiment.floor:
+        floor = float(experiment.floor)
     check_payment_rule(payment_rule)
     rule_options = {}
     if payment_rule != "first_price":

@@ -235,6 +235,20 @@ def test_log_convention_floor_and_quality():
     assert (log["quality"] > 0).all() and set(log.columns) >= {"value", "clicks", "quality"}
 
 
+def test_the_spec_rule_and_floor_are_the_simulator_defaults():
+    """A spec that says gsp with a floor simulates gsp bids with that floor unless told otherwise."""
+    base = experiment()
+    spec = parse_experiments({"experiments": [{"id": "rules", "control_arm": "deep", "payment_rule": "gsp",
+                                               "floor": FLOOR, "arms": [
+        {"name": a, "share": s, "position_weights": w} for (a, w), s in zip(ARMS.items(), SHARES)]}]})["rules"]
+    from_spec = simulate_experiment(VALUES, spec, n_bidders=N, n_auctions=400, rng=3)
+    explicit = simulate_experiment(VALUES, base, n_bidders=N, n_auctions=400, rng=3, payment_rule="gsp", floor=FLOOR)
+    assert from_spec.equals(explicit)
+    assert from_spec.loc[from_spec["bid"] < FLOOR, "position"].isna().all()
+    plain = simulate_experiment(VALUES, base, n_bidders=N, n_auctions=400, rng=3)  # first price, no floor
+    assert not plain.equals(explicit) and plain["position"].notna().sum() > explicit["position"].notna().sum()
+
+
 def test_vcg_bids_are_values():
     log = simulate_experiment(VALUES, experiment(), n_bidders=N, n_auctions=200, rng=1, payment_rule="vcg")
     np.testing.assert_array_equal(log["bid"], log["value"])
