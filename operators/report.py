@@ -38,6 +38,8 @@ ASSUMPTIONS = (
     "bids below the floor are logged unshown, and with quality factors auctions rank by bid x quality. The payment "
     "rule an arm would use itself does not enter its revenue (revenue equivalence): only its position weights and "
     "the floor do.",
+    "Welfare per auction is published without an interval (status flag no_interval): it weighs the highest bid with a "
+    "point mass, whose spread makes normal intervals under-cover where values are heavy-tailed.",
 )
 
 
@@ -74,6 +76,9 @@ def cumulative_table(hook: ResultsHook) -> pd.DataFrame:
 def _interval(est, lo, hi, *, pct=False) -> str:
     if est is None or (isinstance(est, float) and math.isnan(est)):
         return "n/a"
+    if lo is None or hi is None or (isinstance(lo, float) and math.isnan(lo)) or (isinstance(hi, float) and math.isnan(hi)):
+        # published without an interval (welfare: status 'no_interval'); never print "[nan, nan]"
+        return f"{est:+.2%} (no interval)" if pct else f"{est:.4f} (no interval)"
     if pct:
         return f"{est:+.2%} [{lo:+.2%}, {hi:+.2%}]"
     return f"{est:.4f} [{lo:.4f}, {hi:.4f}]"
