@@ -58,10 +58,10 @@ class _MarkingHook(ResultsHook):
         super().__init__(**kwargs)
         self.marker = marker
 
-    def sql(self, name: str) -> str:
+    def sql(self, name: str, **identifiers: str) -> str:
         if name.startswith("results_insert_") and not self.marker.exists():
             self.marker.write_text("inside the transaction\n")
-        return super().sql(name)
+        return super().sql(name, **identifiers)
 
 
 class _CountingHook(ResultsHook):

@@ -1,0 +1,11 @@
+-- Schema version 2, step 2 of 4 for arm_estimates: copy every version-1 row. Version 1 did not store the
+-- interval's confidence level and clustering; its intervals were 95 % clustered by auction (the
+-- defaults of that version), which the copied rows record.
+insert into {{ schema }}.arm_estimates_next (
+    experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
+    n_auctions, n_bids, status, confidence_level, cluster, method_version, run_id, computed_at
+)
+select
+    experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
+    n_auctions, n_bids, status, 0.95 as confidence_level, 'auction' as cluster, method_version, run_id, computed_at
+from {{ schema }}.arm_estimates
