@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import datetime as dt
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pyarrow as pa
