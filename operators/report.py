@@ -302,7 +302,7 @@ table.grid th, table.grid td {{ padding: 0.25em 0.6em; border-bottom: 1px solid 
 img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
 </style></head><body>
 <h1>{html.escape(title)}</h1>
-<p class="small">Generated {generated} from {html.escape(str(hook.database))}.</p>
+<p class="small">Generated {generated} from {html.escape(str(hook.where))}.</p>
 <div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
 Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had
 adapted to it". The realized per-arm average is each arm's revenue over its own auctions: it is biased because

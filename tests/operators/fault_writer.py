@@ -82,7 +82,7 @@ class _CountingHook(ResultsHook):
 
 
 def main(argv: list[str]) -> int:
-    command, db, experiment_id = argv[:3]
+    command, db, experiment_id = argv[:3]  # db: a DuckDB path or a postgresql:// URL
     if command == "write":
         day, rows, run_id = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5]
         hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
