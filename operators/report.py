@@ -216,7 +216,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    has_checks = hook.table_exists("data_checks")
+    # the table exists in every current schema (migration step 1); show the column when it holds outcomes
+    has_checks = hook.table_exists("data_checks") and bool(hook.fetch_df("report_has_checks")["present"].iloc[0])
     cumulative = cumulative_table(hook)
     sections = []
     for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
