@@ -171,6 +171,7 @@ def write_check_results(
     session = as_session(con, schema=schema)
     migrate(session)
     with session.transaction():
+        session.lock_partition("checks", experiment_id=str(experiment_id), ds=day)
         session.execute("data_checks_delete", {"experiment_id": str(experiment_id), "ds": day})
         for row in rows:
             session.execute("data_checks_insert", row)

@@ -166,9 +166,9 @@ class ResultsHook(BaseHook):
         from airflow.providers.postgres.hooks.postgres import PostgresHook
 
         if self._target is not None and self._target.location.startswith(tuple(f"{s}://" for s in POSTGRES_SCHEMES)):
-            from airflow.models.connection import Connection
+            from airflow.sdk import Connection
 
-            pg = PostgresHook(connection=Connection(conn_id=self.counterbid_conn_id, uri=self._target.location))
+            pg = PostgresHook(connection=Connection.from_uri(self._target.location, conn_id=self.counterbid_conn_id))
         else:
             pg = PostgresHook(postgres_conn_id=self.counterbid_conn_id)
         con = pg.get_conn()
@@ -287,6 +287,7 @@ class ResultsHook(BaseHook):
                 migrate(s)
                 counts = {}
                 with s.transaction():
+                    s.lock_partition("estimates", experiment_id=experiment_id, ds=ds)
                     for dest, table in tables.items():
                         s.execute(f"results_delete_{dest}", params)
                         s.insert_rows(known[dest], table, params)

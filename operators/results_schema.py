@@ -226,6 +226,9 @@ class ResultsSession:
         """Run ``results_insert_<dest>`` over ``rows`` (visible to it as ``incoming``)."""
         raise NotImplementedError
 
+    def lock_partition(self, what: str, *, experiment_id: str, ds) -> None:
+        """Inside a transaction: wait for other writers of the same (``what``, experiment, day)."""
+
 
 def statement_for(name: str, dialect: str, schema: str, **identifiers: str) -> str:
     """:func:`counterbid.sql.statement` with ``schema`` filled in when the file has that placeholder."""
@@ -267,6 +270,11 @@ class PostgresSession(ResultsSession):
     """A session on a psycopg 3 connection (autocommit; :meth:`transaction` opens one)."""
 
     dialect = "postgres"
+
+    def lock_partition(self, what, *, experiment_id, ds):
+        # DuckDB needs no such lock: its file admits one writing process at a time
+        self.execute("results_lock_partition", {"schema": self.schema, "what": what, "experiment_id": str(experiment_id),
+                                                "ds": ds})
 
     def execute(self, name, params=None, **identifiers):
         return self.con.execute(self.sql(name, **identifiers), None if params is None else dict(params))

@@ -256,3 +256,37 @@ def test_polling_reader_on_postgres_is_never_refused_or_blocked(postgres_url, re
     record_property("reader_longest_read_postgres_s", round(max(latencies), 3))
     print(f"\npolling reader (postgres): {len(latencies)} snapshots, longest read {max(latencies):.3f} s, "
           f"median {sorted(latencies)[len(latencies) // 2]:.4f} s; {len(set(seen_rounds))} distinct states seen")
+
+
+@pytest.mark.postgres
+def test_concurrent_writers_of_one_day_on_postgres_all_land_and_leave_one_run(postgres_url, tmp_path):
+    """Four processes rewrite the same (experiment, day) at once (several Celery workers, no pool):
+    each commits, the day ends with exactly one writer's rows, and no writer fails on a duplicate key."""
+    subprocess.run(_writer("write", postgres_url, "warm", DAY, 1, "warm"), check=True, timeout=120)  # tables exist
+    gate = tmp_path / "gate"
+    gate.mkdir()
+    procs = [subprocess.Popen(_writer("contend", postgres_url, "tiles", DAY, 5_000, f"writer-{k}", gate, f"w{k}"),
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for k in range(4)]
+    deadline = time.monotonic() + 240
+    while not all((gate / f"w{k}.ready").exists() for k in range(4)):
+        assert all(p.poll() is None for p in procs), "a writer ended before the gate opened"
+        assert time.monotonic() < deadline
+        time.sleep(0.01)
+    (gate / "go").write_text("go\n")
+    windows = []
+    for p in procs:
+        out, err = p.communicate(timeout=300)
+        assert p.returncode == 0, err[-2000:]
+        report = json.loads(out.strip().splitlines()[-1])
+        windows.append((report["started"], report["committed"]))
+    windows.sort()
+    assert any(later[0] < earlier[1] for earlier, later in zip(windows, windows[1:])), windows  # they overlapped
+    import psycopg
+
+    with psycopg.connect(postgres_url) as con:
+        for table in ("arm_estimates", "arm_estimates_to_date"):
+            n, runs = con.execute(f"select count(*), count(distinct run_id) from main.{table} "
+                                  "where experiment_id = 'tiles'").fetchone()
+            assert (n, runs) == (5_000, 1), table
+        assert con.execute("select count(distinct run_id) from main.arm_position_weights "
+                           "where experiment_id = 'tiles'").fetchone()[0] == 1
