@@ -317,3 +317,15 @@ def test_three_days_into_postgres_match_duckdb_and_rerun_identically(three_days,
         cumulative = con.execute("select distinct ds from main.arm_estimates_cumulative").fetchall()
         checks = con.execute("select count(distinct (experiment_id, ds)) from main.data_checks").fetchone()[0]
     assert lift == [("day", 6), ("to_date", 6)] and cumulative == [(DAYS[-1],)] and checks == 6
+    # the stored check outcomes too (the DuckDB file's are from its own latest run of the same days)
+    check_cols = "experiment_id, ds, \"check\", severity, passed, observed, threshold, cast(details as varchar) as details"
+    order = "order by experiment_id, ds, \"check\""
+    with duckdb.connect(conf["results_database"], read_only=True) as con:
+        want = con.execute(f"select {check_cols} from data_checks {order}").df()
+    with psycopg.connect(postgres_url) as con:
+        cur = con.execute(f"select {check_cols} from main.data_checks {order}")
+        got = pd.DataFrame.from_records(cur.fetchall(), columns=[d.name for d in cur.description])
+    assert len(got) == len(want) > 0
+    pd.testing.assert_frame_equal(_comparable(got.assign(run_id=0, computed_at=0)),
+                                  _comparable(want.assign(run_id=0, computed_at=0)), check_exact=True, check_dtype=False)
+    print(f"data_checks: {len(got)} rows in PostgreSQL, identical to DuckDB's (all columns but run_id, checked_at)")
