@@ -126,13 +126,16 @@ def has_dialect_file(name: str, dialect: str) -> bool:
     return (resources.files(__name__) / f"{name}.{_check_dialect(dialect)}.sql").is_file()
 
 
-def render_sql(name: str, *, _dialect_file: str | None = None, **identifiers: str) -> str:
+def render_sql(name: str, **identifiers: str) -> str:
     """Statement ``name`` with its ``{{ placeholder }}`` identifiers validated and quoted.
 
     Every placeholder in the file must be given and every given identifier must be used, so a
     typo fails loudly instead of producing a different query.
     """
-    text = load_sql(name, _dialect_file)
+    return _render(load_sql(name), name, identifiers)
+
+
+def _render(text: str, name: str, identifiers: dict[str, str]) -> str:
     wanted = set(_PLACEHOLDER.findall(text))
     missing = sorted(wanted - set(identifiers))
     if missing:
@@ -173,7 +176,7 @@ def statement(name: str, *, dialect: str = "duckdb", **identifiers: str) -> str:
 def _statement(name: str, dialect: str, identifiers: tuple[tuple[str, str], ...]) -> str:
     ids = dict(identifiers)
     if has_dialect_file(name, dialect):
-        return render_sql(name, _dialect_file=dialect, **ids)
+        return _render(load_sql(name, dialect), name, ids)
     if dialect == "duckdb":
         return render_sql(name, **ids)
     import sqlglot

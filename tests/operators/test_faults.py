@@ -265,7 +265,7 @@ def test_concurrent_writers_of_one_day_on_postgres_all_land_and_leave_one_run(po
     subprocess.run(_writer("write", postgres_url, "warm", DAY, 1, "warm"), check=True, timeout=120)  # tables exist
     gate = tmp_path / "gate"
     gate.mkdir()
-    procs = [subprocess.Popen(_writer("contend", postgres_url, "tiles", DAY, 5_000, f"writer-{k}", gate, f"w{k}"),
+    procs = [subprocess.Popen(_writer("contend", postgres_url, "tiles", DAY, 2_000, f"writer-{k}", gate, f"w{k}"),
                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for k in range(4)]
     deadline = time.monotonic() + 240
     while not all((gate / f"w{k}.ready").exists() for k in range(4)):
@@ -287,6 +287,6 @@ def test_concurrent_writers_of_one_day_on_postgres_all_land_and_leave_one_run(po
         for table in ("arm_estimates", "arm_estimates_to_date"):
             n, runs = con.execute(f"select count(*), count(distinct run_id) from main.{table} "
                                   "where experiment_id = 'tiles'").fetchone()
-            assert (n, runs) == (5_000, 1), table
+            assert (n, runs) == (2_000, 1), table
         assert con.execute("select count(distinct run_id) from main.arm_position_weights "
                            "where experiment_id = 'tiles'").fetchone()[0] == 1

@@ -13,7 +13,6 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from counterbid.estimators.errors import InputError
 from counterbid.operators.hooks import ResultsHook, is_lock_error
 
 D1, D2 = dt.date(2026, 3, 2), dt.date(2026, 3, 3)
