@@ -7,7 +7,8 @@ days; every write replaces its (experiment, day), so reruns never duplicate rows
 
 Configuration (environment, read when the DAG is parsed; each is also a run parameter):
 ``COUNTERBID_LAKE`` bid lake root, ``COUNTERBID_SPEC`` experiment spec, ``COUNTERBID_RESULTS``
-results DuckDB file (empty: the ``counterbid_results`` connection), ``COUNTERBID_STAGING``
+results DuckDB file or ``postgresql://`` URL (empty: the ``counterbid_results`` connection, of type
+``counterbid_duckdb`` or ``postgres``), ``COUNTERBID_STAGING``
 staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weights),
 ``COUNTERBID_LEVEL`` confidence level of the intervals (default 0.95), ``COUNTERBID_CLUSTER``
 clustering of the standard errors (``auction``, ``bidder`` or, where the estimator offers it,

@@ -35,11 +35,11 @@ def make_lake(out: Path, *, days: int, auctions_per_day: int, bidders: int, seed
     print(f"bid lake written to {out / 'lake'} in {time.perf_counter() - started:.1f}s", file=sys.stderr, flush=True)
 
 
-def make_report(out: Path) -> None:
+def make_report(out: Path, results: str | None = None) -> None:
     from counterbid.operators.hooks import ResultsHook
     from counterbid.operators.report import cumulative_table, format_cumulative, write_report
 
-    hook = ResultsHook(database=out / "results.duckdb")
+    hook = ResultsHook(database=results or out / "results.duckdb")
     table = cumulative_table(hook)
     # each experiment's line of the table states the level and clustering its intervals used
     print("\nExperiment to date (all days pooled and re-estimated):\n")
@@ -58,6 +58,8 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="python -m counterbid.dags_example.demo")
     p.add_argument("step", choices=("lake", "report"))
     p.add_argument("--out", default="demo_output", type=Path)
+    p.add_argument("--results", metavar="DB", help="report step: results DuckDB file or postgresql:// URL "
+                   "(default OUT/results.duckdb)")
     p.add_argument("--days", type=int, default=14)
     p.add_argument("--auctions-per-day", type=int, default=17000)
     p.add_argument("--bidders", type=int, default=6)
@@ -68,7 +70,7 @@ def main(argv: list[str] | None = None) -> int:
         make_lake(args.out, days=args.days, auctions_per_day=args.auctions_per_day, bidders=args.bidders,
                   seed=args.seed, warmup_days=args.warmup_days)
     else:
-        make_report(args.out)
+        make_report(args.out, args.results)
     return 0
 
 

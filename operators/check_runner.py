@@ -23,6 +23,7 @@ from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
 
 from .contract import run_contract, with_quality
+from .results_schema import as_session, migrate
 
 __all__ = ["ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
 
@@ -106,9 +107,11 @@ def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) ->
 
 
 def ensure_data_checks_table(con, *, schema: str = "main") -> None:
-    """Create the schema and the ``data_checks`` table if they do not exist."""
-    con.execute(render_sql("results_create_schema", schema=schema))
-    con.execute(render_sql("data_checks_create", schema=schema))
+    """Bring the results schema (``data_checks`` included) to this version (see ``results_schema.migrate``).
+
+    ``con`` is a :class:`~counterbid.operators.results_schema.ResultsSession` or a DuckDB connection.
+    """
+    migrate(as_session(con, schema=schema))
 
 
 def write_check_results(
@@ -125,8 +128,9 @@ def write_check_results(
 
     Parameters
     ----------
-    con : duckdb.DuckDBPyConnection
-        Connection to the results database (not inside an open transaction).
+    con : ResultsSession or duckdb.DuckDBPyConnection
+        The results database (DuckDB or PostgreSQL session from ``ResultsHook.session``, or a
+        DuckDB connection), not inside an open transaction. The schema is migrated first.
     results : iterable of CheckResult
     experiment_id : str
     ds : date-like
@@ -168,23 +172,17 @@ def write_check_results(
     if len(set(names)) != len(names):
         dup = next(n for n in names if names.count(n) > 1)
         raise InputError(f"check results for {experiment_id} {day} name check {dup!r} twice")
-    ensure_data_checks_table(con, schema=schema)
-    delete = render_sql("data_checks_delete", schema=schema)
-    insert = render_sql("data_checks_insert", schema=schema)
-    con.execute("begin transaction")
-    try:
-        con.execute(delete, {"experiment_id": str(experiment_id), "ds": day})
+    session = as_session(con, schema=schema)
+    migrate(session)
+    with session.transaction():
+        session.lock_partition("checks", experiment_id=str(experiment_id), ds=day)
+        session.execute("data_checks_delete", {"experiment_id": str(experiment_id), "ds": day})
         for row in rows:
-            con.execute(insert, row)
-        con.execute("commit")
-    except BaseException:
-        con.execute("rollback")
-        raise
+            session.execute("data_checks_insert", row)
     return len(rows)
 
 
 def read_check_results(con, *, experiment_id: str, ds, schema: str = "main"):
     """Stored outcomes of one (experiment, day) as a DataFrame (failures first)."""
-    return con.execute(
-        render_sql("data_checks_select", schema=schema), {"experiment_id": str(experiment_id), "ds": parse_day(ds)}
-    ).df()
+    return as_session(con, schema=schema).fetch_df(
+        "data_checks_select", {"experiment_id": str(experiment_id), "ds": parse_day(ds)})

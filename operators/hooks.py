@@ -1,4 +1,9 @@
-"""The results database hook: the only code in counterbid that opens DuckDB connections."""
+"""The results database hook: the only code in counterbid that opens results-database connections.
+
+The results sink is an embedded DuckDB file (connection type ``counterbid_duckdb``, the default) or
+a PostgreSQL database (connection type ``postgres``, through the Airflow Postgres provider's
+``PostgresHook`` and psycopg 3). Lake, click-log and staged-file reads always use in-memory DuckDB.
+"""
 
 from __future__ import annotations
 
@@ -19,22 +24,24 @@ from airflow.sdk import BaseHook
 from counterbid.estimators.errors import InputError
 from counterbid.sql import render_sql, validate_identifier
 
-__all__ = ["DEFAULT_CONN_ID", "LOCK_ERROR", "ResultsHook", "is_lock_error", "lake_glob"]
+from .results_schema import (
+    POSTGRES_SCHEMES, RESULTS_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget, check_readable,
+    migrate, results_target, statement_for,
+)
+
+__all__ = [
+    "DEFAULT_CONN_ID", "LOCK_ERROR", "POSTGRES_CONN_TYPE", "ResultsHook", "ResultsTarget", "is_lock_error",
+    "lake_glob", "results_target",
+]
 
 log = logging.getLogger(__name__)
 
 DEFAULT_CONN_ID = "counterbid_results"
+#: Airflow connection types of the two results sinks.
+DUCKDB_CONN_TYPE = "counterbid_duckdb"
+POSTGRES_CONN_TYPE = "postgres"
 #: Text of DuckDB's error when another process holds the database file.
 LOCK_ERROR = "Could not set lock on file"
-#: DDL run by :meth:`ResultsHook.ensure_tables`, in order (tables before the views over them).
-RESULTS_DDL = (
-    "results_create_schema",
-    "results_create_arm_estimates",
-    "results_create_arm_estimates_to_date",
-    "results_create_position_weights",
-    "results_create_view_cumulative",
-    "results_create_view_arm_lift",
-)
 
 
 def is_lock_error(exc: BaseException) -> bool:
@@ -51,32 +58,41 @@ def lake_glob(root: str | Path) -> str:
 
 
 class ResultsHook(BaseHook):
-    """DuckDB access for counterbid: the results database file and in-memory lake queries.
+    """Access to the results database (DuckDB file or PostgreSQL) and in-memory lake queries.
 
     Parameters
     ----------
     database : str, optional
-        Path of the results DuckDB file. When not given, it comes from the Airflow connection
-        ``counterbid_conn_id`` (extra ``{"path": ...}`` or the connection's host field).
+        A DuckDB file path or a ``postgresql://`` URL (see :func:`results_target`). When not
+        given, the Airflow connection ``counterbid_conn_id`` decides: conn type
+        ``counterbid_duckdb`` (extra ``{"path": ...}`` or the host field holds the file path) or
+        ``postgres`` (host, port, login, password, schema = database name, as for any
+        ``PostgresHook`` connection).
     counterbid_conn_id : str, optional
         Connection id, default ``counterbid_results``.
     schema : str, optional
-        Schema of the results tables, default ``main`` (validated identifier).
+        Schema of the results tables, default ``main`` (validated identifier; in PostgreSQL it is
+        created if missing).
     lock_timeout : float, optional
-        Seconds to keep retrying when another process holds the database file lock.
+        Seconds to keep retrying when another process holds the DuckDB file lock.
 
     Notes
     -----
     DuckDB lets one process hold a database file at a time (readers included), so every
-    connection here is short-lived and opening it retries on the lock error with jittered
-    exponential back-off. Lake reads use a private in-memory connection; object-store URLs
-    (``s3://``, ``gs://``, ``https://``) are read through DuckDB's httpfs extension, which
-    DuckDB loads automatically.
+    connection to a results file is short-lived and opening it retries on the lock error with
+    jittered exponential back-off. PostgreSQL readers see the last committed state and are
+    never locked out by a writer. Lake reads use a private in-memory DuckDB connection;
+    object-store URLs (``s3://``, ``gs://``, ``https://``) are read through DuckDB's httpfs
+    extension, which DuckDB loads automatically.
+
+    Every write first brings the results schema to this code's version
+    (:func:`counterbid.operators.results_schema.migrate`), and every read refuses a schema of
+    another version.
     """
 
     conn_name_attr = "counterbid_conn_id"
     default_conn_name = DEFAULT_CONN_ID
-    conn_type = "counterbid_duckdb"
+    conn_type = DUCKDB_CONN_TYPE
     hook_name = "counterbid results (DuckDB)"
 
     def __init__(
@@ -93,30 +109,78 @@ class ResultsHook(BaseHook):
         if not (isinstance(lock_timeout, (int, float)) and lock_timeout >= 0):
             raise InputError(f"`lock_timeout` must be a number of seconds >= 0; got {lock_timeout!r}")
         self.lock_timeout = float(lock_timeout)
-        self._database = str(database) if database not in (None, "") else None
+        self._target = results_target(database) if database not in (None, "") else None
 
-    # -- connections -------------------------------------------------------------------------
+    # -- where the results go ----------------------------------------------------------------
+    @property
+    def target(self) -> ResultsTarget:
+        """The results sink (from the argument or the Airflow connection)."""
+        if self._target is None:
+            conn = self.get_connection(self.counterbid_conn_id)
+            if conn.conn_type == POSTGRES_CONN_TYPE:
+                self._target = ResultsTarget("postgres", f"airflow connection {self.counterbid_conn_id}")
+            elif conn.conn_type in (DUCKDB_CONN_TYPE, None, ""):
+                path = (conn.extra_dejson or {}).get("path") or conn.host
+                if not path:
+                    raise InputError(f"connection {self.counterbid_conn_id!r}: set extra 'path' to the results DuckDB file")
+                self._target = ResultsTarget("duckdb", str(path))
+            else:
+                raise InputError(f"connection {self.counterbid_conn_id!r}: conn type {conn.conn_type!r} is not a results "
+                                 f"sink; use {DUCKDB_CONN_TYPE!r} or {POSTGRES_CONN_TYPE!r}")
+        return self._target
+
+    @property
+    def dialect(self) -> str:
+        """``'duckdb'`` or ``'postgres'``."""
+        return self.target.dialect
+
     @property
     def database(self) -> str:
-        """Path of the results database file (from the argument or the Airflow connection)."""
-        if self._database is None:
-            conn = self.get_connection(self.counterbid_conn_id)
-            path = (conn.extra_dejson or {}).get("path") or conn.host
-            if not path:
-                raise InputError(f"connection {self.counterbid_conn_id!r}: set extra 'path' to the results DuckDB file")
-            self._database = str(path)
-        return self._database
+        """Path of the results DuckDB file, or the PostgreSQL URL / connection it names."""
+        return self.target.location
 
+    @property
+    def where(self) -> str:
+        """The results database as shown in logs and reports (no password)."""
+        return self.target.shown
+
+    # -- connections -------------------------------------------------------------------------
     @contextlib.contextmanager
-    def connect(self, *, read_only: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
-        """A short-lived connection to the results file, retrying while another process holds it."""
-        if not read_only:
-            Path(self.database).parent.mkdir(parents=True, exist_ok=True)
-        con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
+    def connect(self, *, read_only: bool = False) -> Iterator[Any]:
+        """A short-lived connection: DuckDB (retrying while another process holds the file) or psycopg.
+
+        A psycopg connection is in autocommit mode; use ``con.transaction()`` for a transaction.
+        """
+        if self.dialect == "postgres":
+            con = self._postgres_connection()
+        else:
+            if not read_only:
+                Path(self.database).parent.mkdir(parents=True, exist_ok=True)
+            con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
         try:
             yield con
         finally:
             con.close()
+
+    def _postgres_connection(self):
+        from airflow.providers.postgres.hooks.postgres import PostgresHook
+
+        if self._target is not None and self._target.location.startswith(tuple(f"{s}://" for s in POSTGRES_SCHEMES)):
+            from airflow.sdk import Connection
+
+            pg = PostgresHook(connection=Connection.from_uri(self._target.location, conn_id=self.counterbid_conn_id))
+        else:
+            pg = PostgresHook(postgres_conn_id=self.counterbid_conn_id)
+        con = pg.get_conn()
+        con.autocommit = True  # transactions are explicit (ResultsSession.transaction)
+        return con
+
+    @contextlib.contextmanager
+    def session(self, *, read_only: bool = False) -> Iterator[ResultsSession]:
+        """A :class:`~counterbid.operators.results_schema.ResultsSession` in this sink's dialect."""
+        kind = PostgresSession if self.dialect == "postgres" else DuckDBSession
+        with self.connect(read_only=read_only) as con:
+            yield kind(con, schema=self.schema, sql=self.sql, where=self.where)
 
     @contextlib.contextmanager
     def lake(self) -> Iterator[duckdb.DuckDBPyConnection]:
@@ -140,41 +204,53 @@ class ResultsHook(BaseHook):
                 time.sleep(delay * (0.5 + random.random()))
                 delay = min(delay * 2, 2.0)
 
-    def sql(self, name: str) -> str:
-        """Statement ``name`` with the results schema filled in (when it has a placeholder)."""
-        from counterbid.sql import load_sql
+    def _with_retry(self, action, *, what: str):
+        """``action()``, retried on DuckDB's file lock (PostgreSQL has none to wait for)."""
+        return action() if self.dialect == "postgres" else self._retry_on_lock(action, what=what)
 
-        return render_sql(name, schema=self.schema) if "{{" in load_sql(name) else load_sql(name)
+    def sql(self, name: str, **identifiers: str) -> str:
+        """Statement ``name`` in this sink's dialect, with the results schema filled in (when it has a placeholder)."""
+        return statement_for(name, self.dialect, self.schema, **identifiers)
+
+    def lake_sql(self, name: str, **identifiers: str) -> str:
+        """Statement ``name`` for the in-memory DuckDB lake connection."""
+        return statement_for(name, "duckdb", self.schema, **identifiers)
 
     # -- results database --------------------------------------------------------------------
-    def ensure_tables(self) -> None:
-        """Create the results schema, tables and views if missing (idempotent)."""
-        with self.connect() as con:
-            for name in RESULTS_DDL:
-                if name.startswith("results_create_view"):  # tables first: refuse a file of an older version
-                    self._refuse_missing_columns(con)
-                con.execute(self.sql(name))
+    def ensure_tables(self) -> list[int]:
+        """Create the results schema, tables and views, or upgrade them to this version (idempotent).
 
-    def _refuse_missing_columns(self, con: duckdb.DuckDBPyConnection) -> None:
-        missing = con.execute(self.sql("results_missing_columns"), {"schema": self.schema}).fetchall()
-        if missing:
-            table = missing[0][0]
-            raise InputError(
-                f"{self.database}: table {table} lacks column(s) {', '.join(c for t, c in missing if t == table)} "
-                "(written by an older counterbid); move the file aside and rerun the days to rebuild it")
+        Returns
+        -------
+        list of int
+            Migration versions applied (empty when the schema was current).
+        """
+        def run():
+            with self.session() as s:
+                return migrate(s)
+
+        return self._with_retry(run, what="migrate")
 
     def fetch_df(self, name: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
-        """Run a read-only statement against the results file and return a DataFrame."""
-        with self.connect(read_only=True) as con:
-            return con.execute(self.sql(name), dict(params or {})).df()
+        """Run a read-only statement against the results database and return a DataFrame."""
+        def run():
+            with self.session(read_only=True) as s:
+                check_readable(s)
+                return s.fetch_df(name, params)
+
+        return self._with_retry(run, what="read")
 
     def table_exists(self, table: str) -> bool:
         """Whether ``table`` (or a view of that name) exists in the results schema."""
         validate_identifier(table, what="table")
-        if not Path(self.database).exists():
+        if self.dialect == "duckdb" and not Path(self.database).exists():
             return False
-        with self.connect(read_only=True) as con:
-            return bool(con.execute(self.sql("results_table_exists"), {"schema": self.schema, "table": table}).fetchone()[0])
+
+        def run():
+            with self.session(read_only=True) as s:
+                return bool(s.scalar("results_table_exists", {"schema": self.schema, "table": table}))
+
+        return self._with_retry(run, what="read")
 
     def replace_partition(
         self,
@@ -190,39 +266,35 @@ class ResultsHook(BaseHook):
         experiment_id : str
         ds : datetime.date
         tables : mapping of str to pyarrow.Table
-            Keys among ``arm_estimates``, ``arm_estimates_to_date``, ``position_weights``; each
-            table holds that destination's columns. Duplicate keys are dropped in SQL.
+            Keys among the destinations of
+            :data:`~counterbid.operators.results_schema.RESULTS_TABLES` (``arm_estimates``,
+            ``arm_estimates_to_date``, ``position_weights``); each table holds that
+            destination's columns. Duplicate keys are dropped in SQL.
 
         Returns
         -------
         dict of str to int
-            Rows in each destination for this (experiment, day) after the commit.
+            Rows given for each destination (rows of other partitions are not written).
         """
-        known = {"arm_estimates", "arm_estimates_to_date", "position_weights"}
-        unknown = sorted(set(tables) - known)
+        known = {t.destination: t for t in RESULTS_TABLES}
+        unknown = sorted(set(tables) - set(known))
         if unknown:
             raise InputError(f"replace_partition: unknown destination {unknown[0]!r} (known: {', '.join(sorted(known))})")
-        self.ensure_tables()
         params = {"experiment_id": experiment_id, "ds": ds}
 
         def write() -> dict[str, int]:
-            with self.connect() as con:
-                con.execute("begin transaction")
-                try:
-                    counts = {}
+            with self.session() as s:
+                migrate(s)
+                counts = {}
+                with s.transaction():
+                    s.lock_partition("estimates", experiment_id=experiment_id, ds=ds)
                     for dest, table in tables.items():
-                        con.execute(self.sql(f"results_delete_{dest}"), params)
-                        con.register("incoming", table)  # the connection is closed on failure
-                        con.execute(self.sql(f"results_insert_{dest}"), params)
-                        con.unregister("incoming")
+                        s.execute(f"results_delete_{dest}", params)
+                        s.insert_rows(known[dest], table, params)
                         counts[dest] = table.num_rows
-                    con.execute("commit")
-                except BaseException:
-                    con.execute("rollback")
-                    raise
                 return counts
 
-        return self._retry_on_lock(write, what="write")
+        return self._with_retry(write, what="write")
 
     # -- lake and staged files ---------------------------------------------------------------
     def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
@@ -255,7 +327,7 @@ class ResultsHook(BaseHook):
     def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int) -> Iterator[pa.RecordBatchReader]:
         with self.lake() as con:
             try:
-                yield con.sql(self.sql(name), params=dict(params)).to_arrow_reader(batch_rows)
+                yield con.sql(self.lake_sql(name), params=dict(params)).to_arrow_reader(batch_rows)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
                 raise _lake_error(exc, root) from None
 
@@ -269,12 +341,12 @@ class ResultsHook(BaseHook):
     def staged_columns(self, path: str | Path) -> dict[str, str]:
         """Column name -> DuckDB type of a Parquet file (footer only)."""
         with self.lake() as con:
-            return dict(con.execute(self.sql("staged_columns"), {"path": str(path)}).fetchall())
+            return dict(con.execute(self.lake_sql("staged_columns"), {"path": str(path)}).fetchall())
 
     def staged_null_counts(self, path: str | Path) -> dict[str, int]:
         """Nulls per always-required contract column of a staged bids file."""
         with self.lake() as con:
-            cur = con.execute(self.sql("staged_null_counts"), {"path": str(path)})
+            cur = con.execute(self.lake_sql("staged_null_counts"), {"path": str(path)})
             names = [d[0] for d in cur.description]
             return dict(zip(names, (int(v) for v in cur.fetchone())))
 
@@ -297,28 +369,28 @@ class ResultsHook(BaseHook):
     def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
         """Auctions and bids per arm of a staged bids file."""
         with self.lake() as con:
-            return con.execute(self.sql("staged_arm_counts"), {"path": str(path)}).df()
+            return con.execute(self.lake_sql("staged_arm_counts"), {"path": str(path)}).df()
 
     @contextlib.contextmanager
     def staged_relations(self, *, day: str | Path, to_date: str | Path, ds: dt.date) -> Iterator[duckdb.DuckDBPyConnection]:
         """In-memory connection with temp tables ``staged_day`` and ``staged_history`` (days before ``ds``)."""
         with self.lake() as con:
-            con.execute(self.sql("staged_create_day"), {"path": str(day)})
-            con.execute(self.sql("staged_create_history"), {"path": str(to_date), "ds": ds})
+            con.execute(self.lake_sql("staged_create_day"), {"path": str(day)})
+            con.execute(self.lake_sql("staged_create_history"), {"path": str(to_date), "ds": ds})
             yield con
 
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:
-        """Store check outcomes with ``recorder(con, results, experiment_id=, ds=, run_id=, schema=)``."""
+        """Store check outcomes with ``recorder(session, results, experiment_id=, ds=, run_id=, schema=)``."""
         def write():
-            with self.connect() as con:
-                return recorder(con, list(results), experiment_id=experiment_id, ds=ds, run_id=run_id, schema=self.schema)
+            with self.session() as s:
+                return recorder(s, list(results), experiment_id=experiment_id, ds=ds, run_id=run_id, schema=self.schema)
 
-        return self._retry_on_lock(write, what="record checks")
+        return self._with_retry(write, what="record checks")
 
     def _lake_query(self, name: str, params: Mapping[str, Any], root) -> pa.Table:
         with self.lake() as con:
             try:
-                return con.sql(self.sql(name), params=dict(params)).to_arrow_table()
+                return con.sql(self.lake_sql(name), params=dict(params)).to_arrow_table()
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
                 raise _lake_error(exc, root) from None
             except duckdb.BinderException as exc:

@@ -241,7 +241,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    has_checks = hook.table_exists("data_checks")
+    # the table exists in every current schema (migration step 1); show the column when it holds outcomes
+    has_checks = hook.table_exists("data_checks") and bool(hook.fetch_df("report_has_checks")["present"].iloc[0])
     cumulative = cumulative_table(hook)
     sections = []
     auctions_run = []
@@ -329,7 +330,7 @@ table.grid th, table.grid td {{ padding: 0.25em 0.6em; border-bottom: 1px solid 
 img {{ max-width: 100%; display: block; margin: 0.6em 0; }}
 </style></head><body>
 <h1>{html.escape(title)}</h1>
-<p class="small">Generated {generated} from {html.escape(str(hook.database))}.</p>
+<p class="small">Generated {generated} from {html.escape(str(hook.where))}.</p>
 <div class="rests"><strong>These numbers rest on:</strong><ul>{"".join(f"<li>{html.escape(a)}</li>" for a in ASSUMPTIONS)}</ul>
 <p>The auction that ran (payment rule, floor per click): {html.escape("; ".join(auctions_run)) or "no experiments"}.</p>
 Counterfactual rows answer "what would this arm earn per auction if it ran in every auction and bidders had

@@ -7,7 +7,7 @@ select
     passed,
     observed,
     threshold,
-    details,
+    cast(details as varchar) as details,
     run_id,
     checked_at
 from {{ schema }}.data_checks

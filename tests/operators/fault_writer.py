@@ -6,8 +6,9 @@
 ``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS [PAUSE]``
     Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day,
     ``PAUSE`` seconds apart (default 0; tasks of a real backfill are seconds apart).
-``contend DB EXPERIMENT DAY ROWS RUN_ID GATE``
-    Like ``write``, but first builds its rows, creates ``GATE/EXPERIMENT.ready`` and waits for
+``contend DB EXPERIMENT DAY ROWS RUN_ID GATE [NAME]``
+    Like ``write``, but first builds its rows, creates ``GATE/NAME.ready`` (NAME defaults to
+    EXPERIMENT, so writers of one experiment can share a gate) and waits for
     ``GATE/go``, so that several writers start their transactions together. Prints one JSON line:
     how many times DuckDB refused it the file lock (``lock_errors``) and the monotonic-clock
     window of its replace (``started``, ``committed``; one clock for all processes on Linux).
@@ -58,10 +59,10 @@ class _MarkingHook(ResultsHook):
         super().__init__(**kwargs)
         self.marker = marker
 
-    def sql(self, name: str) -> str:
+    def sql(self, name: str, **identifiers: str) -> str:
         if name.startswith("results_insert_") and not self.marker.exists():
             self.marker.write_text("inside the transaction\n")
-        return super().sql(name)
+        return super().sql(name, **identifiers)
 
 
 class _CountingHook(ResultsHook):
@@ -82,7 +83,7 @@ class _CountingHook(ResultsHook):
 
 
 def main(argv: list[str]) -> int:
-    command, db, experiment_id = argv[:3]
+    command, db, experiment_id = argv[:3]  # db: a DuckDB path or a postgresql:// URL
     if command == "write":
         day, rows, run_id = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5]
         hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
@@ -90,9 +91,10 @@ def main(argv: list[str]) -> int:
         return 0
     if command == "contend":
         day, rows, run_id, gate = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5], Path(argv[6])
+        name = argv[7] if len(argv) > 7 else experiment_id
         hook = _CountingHook(database=db, lock_timeout=240)
         tables = partition_tables(experiment_id, day, rows, run_id)
-        (gate / f"{experiment_id}.ready").write_text("ready\n")
+        (gate / f"{name}.ready").write_text("ready\n")
         deadline = time.monotonic() + 240
         while not (gate / "go").exists():
             if time.monotonic() > deadline:

@@ -38,7 +38,7 @@ def _bids(n_auctions=400, seed=1, first_auction_id=0) -> pd.DataFrame:
 
 
 # -- lake cases: the daily DAG -------------------------------------------------------------------
-def _pipeline(tmp_path: Path, capture, write_day, *, spec=SPEC):
+def _pipeline(tmp_path: Path, capture, write_day, *, spec=SPEC, results=None):
     """Lake with a good previous day and a day written by ``write_day(folder)``; run the DAG on it."""
     (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec))
     lake = tmp_path / "bids"
@@ -49,7 +49,7 @@ def _pipeline(tmp_path: Path, capture, write_day, *, spec=SPEC):
     day.mkdir()
     write_day(day)
     conf = {"lake_root": str(lake), "spec_path": str(tmp_path / "spec.yaml"),
-            "results_database": str(tmp_path / "results.duckdb"), "staging_root": str(tmp_path / "stage"),
+            "results_database": results or str(tmp_path / "results.duckdb"), "staging_root": str(tmp_path / "stage"),
             "clicks_root": ""}
     capfd, caplog = capture
     capfd.readouterr()
@@ -129,6 +129,31 @@ def test_column_of_wrong_type(airflow_db, tmp_path, capfd, caplog):
     line = _one_line(text, r"^\s*- schema_column_position \[error\] FAILED")
     assert "'found': 'VARCHAR'" in line
     _nothing_written(conf)
+
+
+def _corrupt(day):
+    (day / "tiles.parquet").write_bytes(b"PAR1" + b"\x00 not a parquet footer " * 20)
+
+
+@pytest.mark.postgres
+@pytest.mark.parametrize("write_day, step", [
+    (lambda day: day.rmdir(), "load"),
+    (_corrupt, "load"),
+    (lambda day: _bids().drop(columns=["bid"]).to_parquet(day / "tiles.parquet"), "validate"),
+    (lambda day: _bids().iloc[:0].to_parquet(day / "tiles.parquet"), "validate"),
+], ids=["missing-partition", "corrupt-parquet", "column-missing", "empty-partition"])
+def test_lake_cases_leave_no_rows_in_postgres(write_day, step, airflow_db, tmp_path, capfd, caplog, postgres_url):
+    import psycopg
+
+    run, conf, _ = _pipeline(tmp_path, (capfd, caplog), write_day, results=postgres_url)
+    _failed(run, step)
+    with psycopg.connect(postgres_url) as con:
+        present = {r[0] for r in con.execute(
+            "select table_name from information_schema.tables where table_schema = 'main'").fetchall()}
+        if "arm_estimates" in present:  # created by the validate step's check recorder, never filled
+            for table in ("arm_estimates", "arm_estimates_to_date", "arm_position_weights"):
+                n = con.execute(f"select count(*) from main.{table} where ds = %s", [DAY]).fetchone()[0]
+                assert n == 0, table
 
 
 def test_sql_looking_experiment_id_is_data_and_refused_by_name(airflow_db, tmp_path, capfd, caplog):

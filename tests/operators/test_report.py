@@ -125,3 +125,27 @@ def test_cumulative_table_text(results):
                            "intervals 97.5 %, clustered by bidder\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
+
+
+@pytest.mark.postgres
+def test_the_report_from_postgres_is_the_report_from_duckdb(results, postgres_url, tmp_path):
+    """The same rows written to PostgreSQL (one replace per day) give the same console table and HTML page."""
+    import re
+
+    root, duck = results
+    pg = ResultsHook(database=postgres_url)
+    with duck.connect(read_only=True) as con:
+        for k in range(3):
+            day = START + dt.timedelta(days=k)
+            tables = {dest: con.execute(f"select * from {table} where ds = ?", [day]).to_arrow_table()
+                      for dest, table in (("arm_estimates", "arm_estimates"), ("arm_estimates_to_date", "arm_estimates_to_date"),
+                                          ("position_weights", "arm_position_weights"))}
+            pg.replace_partition(experiment_id="tiles", ds=day, tables=tables)
+    assert format_cumulative(cumulative_table(pg)) == format_cumulative(cumulative_table(duck))
+
+    def page(hook, out):
+        text = write_report(hook, out).read_text()
+        return re.sub(r"<p class=\"small\">Generated .*?</p>", "", text)  # the line naming the database and time
+
+    want, got = page(duck, tmp_path / "duck"), page(pg, tmp_path / "pg")
+    assert "tiles" in got and got == want

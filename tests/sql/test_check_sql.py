@@ -93,8 +93,8 @@ def test_check_trailing_bids_window(con):
 def test_data_checks_create_insert_delete_select(tmp_path):
     c = duckdb.connect(str(tmp_path / "results.duckdb"))
     c.execute(render_sql("results_create_schema", schema="cb"))
-    c.execute(render_sql("data_checks_create", schema="cb"))
-    c.execute(render_sql("data_checks_create", schema="cb"))  # idempotent
+    c.execute(render_sql("results_v1_create_data_checks", schema="cb"))
+    c.execute(render_sql("results_v1_create_data_checks", schema="cb"))  # idempotent
     row = {"experiment_id": "e", "ds": dt.date(2026, 3, 2), "check": "drift", "severity": "warning", "passed": False,
            "observed": 1e-6, "threshold": 1e-3, "details": json.dumps({"by_bidders": {"5": {"pvalue": 1e-6}}}),
            "run_id": "manual__1", "checked_at": dt.datetime(2026, 3, 3, 6, tzinfo=dt.timezone.utc)}

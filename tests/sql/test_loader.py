@@ -44,3 +44,38 @@ def test_placeholders_must_match():
         load_sql("no_such_statement")
     with pytest.raises(InputError, match="lowercase"):
         load_sql("../etc/passwd")
+
+
+def _identifiers(name, dialect):
+    from counterbid.sql import has_dialect_file
+
+    text = load_sql(name, dialect) if has_dialect_file(name, dialect) else load_sql(name)
+    return {p: "main" for p in set(re.findall(r"\{\{\s*(\w+)\s*\}\}", text))}
+
+
+def test_every_statement_is_one_statement_in_every_dialect_with_the_same_parameters():
+    import sqlglot
+
+    from counterbid.sql import DIALECTS, has_dialect_file, parameter_names, statement
+
+    for dialect in DIALECTS:
+        names = sql_names(dialect)
+        assert "results_insert_arm_estimates" in names
+        for name in names:
+            text = statement(name, dialect=dialect, **_identifiers(name, dialect))
+            assert len(sqlglot.parse(text, read=dialect)) == 1, (dialect, name)
+            if dialect == "postgres":
+                # every '%' is a psycopg parameter marker (a stray one would break the statement's binding)
+                assert re.sub(r"%\(\w+\)s", "", text).count("%") == 0, name
+                if not has_dialect_file(name, dialect):  # transpiled: the DuckDB source's parameters, renamed
+                    source = statement(name, **_identifiers(name, "duckdb"))
+                    assert parameter_names(text, dialect="postgres") == parameter_names(source), name
+
+
+def test_duckdb_parameters_become_psycopg_parameters():
+    from counterbid.sql import statement
+
+    text = statement("results_delete_arm_estimates", dialect="postgres", schema="main")
+    assert "%(experiment_id)s" in text and "%(ds)s" in text and "$" not in text
+    with pytest.raises(InputError, match="dialect must be one of"):
+        statement("results_delete_arm_estimates", dialect="oracle", schema="main")

@@ -13,7 +13,6 @@ import pandas as pd
 import pyarrow as pa
 import pytest
 
-from counterbid.estimators.errors import InputError
 from counterbid.operators.hooks import ResultsHook, is_lock_error
 
 D1, D2 = dt.date(2026, 3, 2), dt.date(2026, 3, 3)
@@ -112,19 +111,6 @@ def test_flags_level_and_cluster_are_stored_and_reach_the_views(hook):
     assert set(zip(daily["payment_rule"], daily["floor"])) == {("gsp", 0.05)}
 
 
-def test_a_results_file_of_an_older_version_is_refused_naming_the_columns(tmp_path):
-    path = tmp_path / "old.duckdb"
-    with duckdb.connect(str(path)) as con:  # the table as the previous version created it
-        con.execute("create table arm_estimates (experiment_id varchar not null, ds date not null, arm varchar not null,"
-                    " metric varchar not null, estimate double, std_error double, ci_low double, ci_high double,"
-                    " n_auctions bigint not null, n_bids bigint not null,"
-                    " status varchar not null check (status in ('ok', 'warning')), method_version varchar not null,"
-                    " run_id varchar not null, computed_at timestamptz not null, primary key (experiment_id, ds, arm, metric))")
-    with pytest.raises(InputError, match=r"old.duckdb: table arm_estimates lacks column\(s\) cluster, confidence_level, floor, payment_rule "
-                                         r"\(written by an older counterbid\)"):
-        ResultsHook(database=path).replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
-
-
 def test_cumulative_view_shows_the_latest_day_per_experiment(hook):
     for exp in ("tiles", "banners"):
         for ds in (D1, D2):
@@ -152,8 +138,7 @@ def test_lift_view_pairs_lift_with_revenue(hook):
 
 def test_day_check_status_view_reports_the_worst(hook):
     hook.ensure_tables()
-    with hook.connect() as con:  # the table as the pipeline creates and fills it
-        con.execute(hook.sql("data_checks_create"))
+    with hook.connect() as con:  # the table as the pipeline creates (ensure_tables) and fills it
         for exp, ds, check, severity, passed in [
                 ("tiles", D1, "a", "error", True), ("tiles", D1, "b", "warning", True),
                 ("tiles", D2, "a", "error", True), ("tiles", D2, "b", "warning", False),

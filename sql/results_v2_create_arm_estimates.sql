@@ -1,9 +1,10 @@
--- Experiment-to-date estimates: the bids of every day from first_ds through ds pooled and
--- estimated again (not an average of daily estimates). One set of rows per (experiment, ds).
-create table if not exists {{ schema }}.arm_estimates_to_date (
+-- Schema version 2, step 1 of 4 for arm_estimates: the table with the interval's confidence level and
+-- clustering and a status of flags, built beside the version-1 table (DuckDB cannot alter
+-- constraints in place), filled by results_v2_copy_arm_estimates, then swapped in.
+-- Daily per-arm estimates: one row per (experiment, day, arm, metric), from that day's bids.
+create table {{ schema }}.arm_estimates_next (
     experiment_id varchar not null,
     ds date not null,
-    first_ds date not null,
     arm varchar not null,
     metric varchar not null,
     estimate double,
@@ -13,7 +14,7 @@ create table if not exists {{ schema }}.arm_estimates_to_date (
     n_auctions bigint not null,
     n_bids bigint not null,
     -- 'ok', or sorted comma-joined flags: 'warning' (a data check warned) and the estimator's own
-    status varchar not null check (regexp_full_match(status, '[a-z][a-z_]*(,[a-z][a-z_]*)*')),
+    status varchar not null check (regexp_matches(status, '^[a-z][a-z_]*(,[a-z][a-z_]*)*$')),
     -- the interval's confidence level and the unit its standard errors were clustered on
     confidence_level double not null check (confidence_level > 0 and confidence_level < 1),
     cluster varchar not null check (cluster in ('auction', 'bidder')),

@@ -1,0 +1,2 @@
+-- The next destination of the same transaction stages its own rows.
+drop table incoming

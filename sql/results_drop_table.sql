@@ -1,0 +1,2 @@
+-- A migration step: drop a table that the step has copied into its successor.
+drop table {{ schema }}.{{ table }}
