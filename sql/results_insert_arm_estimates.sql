@@ -2,7 +2,7 @@
 -- (duplicate keys inside one batch are dropped here, keeping the most recent computation).
 insert into {{ schema }}.arm_estimates (
     experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
-    n_auctions, n_bids, status, confidence_level, cluster, method_version, run_id, computed_at
+    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at
 )
 select
     experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
