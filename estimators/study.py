@@ -51,6 +51,7 @@ __all__ = [
     "share_study",
     "simulate_prepared",
     "size_study",
+    "check_auction",
     "study_experiment",
     "two_step_applies",
 ]
@@ -354,18 +355,32 @@ def two_step_applies(payment_rule: str, floor: float | None) -> bool:
     return payment_rule == "first_price" and not floor
 
 
-def _check_auction(payment_rule: str, floor: float | None, names: Sequence[str]) -> dict:
-    """The cells' ``payment_rule`` and ``floor`` (``None`` for no floor), validated against the distributions."""
+def check_auction(payment_rule: str, floor: float | None, names: Sequence[str]) -> dict:
+    """The study's ``payment_rule`` and ``floor`` (``None`` for no floor), validated against the distributions.
+
+    Parameters
+    ----------
+    payment_rule : {'first_price', 'gsp', 'vcg'}
+    floor : float or None
+        Per click, value units; 0 or ``None``: no floor. It must lie below the top of each
+        distribution's support (else no bid would be eligible).
+    names : sequence of str
+        Keys of :data:`VALUE_DISTRIBUTIONS`.
+
+    Returns
+    -------
+    dict
+        ``{"payment_rule": ..., "floor": float or None}``, the keyword arguments of the cells.
+    """
     check_payment_rule(payment_rule)
     if floor is None or (not isinstance(floor, bool) and isinstance(floor, (int, float)) and floor == 0):
         return {"payment_rule": payment_rule, "floor": None}
     if isinstance(floor, bool) or not isinstance(floor, (int, float)) or not (math.isfinite(floor) and floor > 0):
         raise InputError(f"`floor` must be a finite number >= 0 (value units); got {floor!r}")
     for d in names:
-        try:
-            floor_quantile(VALUE_DISTRIBUTIONS[d], float(floor))
-        except InputError as exc:
-            raise InputError(f"`floor` {float(floor):g} and the {d} values: {exc}") from None
+        if not VALUE_DISTRIBUTIONS[d].cdf(float(floor)) < 1.0:
+            raise InputError(f"`floor` {float(floor):g} lies above every {d} value (F(floor) = 1): "
+                             "no bid would be eligible")
     return {"payment_rule": payment_rule, "floor": float(floor)}
 
 
@@ -513,7 +528,7 @@ def size_study(
     reps = _check_grid("reps", [reps], lo=2, hi=1e7, integer=True)[0]
     if two_step_reps is not None:
         two_step_reps = _check_grid("two_step_reps", [two_step_reps], lo=2, hi=1e7, integer=True)[0]
-    auction = _check_auction(payment_rule, floor, names)
+    auction = check_auction(payment_rule, floor, names)
     cells = [(size_cell, (d, n, s), {"share": float(share), "reps": reps, "seed": seed, "two_step": two_step,
                                      "two_step_reps": two_step_reps, **auction})
              for d in names for n in ns for s in sz]
@@ -558,7 +573,7 @@ def share_study(
     sh = _check_grid("shares", shares, lo=1e-6, hi=1 - 1e-9)
     a = _check_grid("n_auctions", [n_auctions], lo=2, hi=1e8, integer=True)[0]
     reps = _check_grid("reps", [reps], lo=2, hi=1e7, integer=True)[0]
-    auction = _check_auction(payment_rule, floor, names)
+    auction = check_auction(payment_rule, floor, names)
     cells = [(share_cell, (d, n, s), {"n_auctions": a, "reps": reps, "seed": seed, **auction})
              for d in names for n in ns for s in sh]
     out = pd.DataFrame(_run(cells, jobs))

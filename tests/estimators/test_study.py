@@ -199,7 +199,7 @@ def test_gsp_floor_study_bias_within_monte_carlo_error():
 @pytest.mark.parametrize("kwargs, match", [
     ({"payment_rule": "second_price"}, "payment_rule"),
     ({"floor": -1.0}, "floor"),
-    ({"floor": 2.5, "distributions": ("uniform",)}, "uniform"),
+    ({"floor": 2.5, "distributions": ("uniform",)}, "above every uniform value"),
 ])
 def test_bad_rule_or_floor(kwargs, match):
     with pytest.raises(InputError, match=match):
