@@ -351,7 +351,18 @@ def _check_grid(name: str, values: Sequence, *, lo: float, hi: float, integer: b
 
 
 def two_step_applies(payment_rule: str, floor: float | None) -> bool:
-    """Whether the two-step kernel baseline models this auction (pay-your-bid, no floor)."""
+    """Whether the two-step kernel baseline models this auction (pay-your-bid, no floor).
+
+    Parameters
+    ----------
+    payment_rule : str
+    floor : float or None
+
+    Returns
+    -------
+    bool
+        True for ``first_price`` without a floor (``None`` or 0).
+    """
     return payment_rule == "first_price" and not floor
 
 
