@@ -11,12 +11,13 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ._floor import add_floor_influence, clamp_at_floor
 from ._lstatistic import BLOCK, l_statistic
 from ._realized import realized_averages
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
 from .errors import EstimatorWarning, InputError
-from .order_weights import Floor, WeightTable, revenue_weights, welfare_weights
+from .order_weights import WeightTable, revenue_weights, welfare_weights
 from .payment_rules import PAYMENT_RULES
 from .spec import Experiment
 
@@ -814,10 +815,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
         if floor_value > 0:
             # The floor's quantile q* is estimated by the share of sub-floor bids (strict: a bid equal
             # to the floor is eligible); sub-floor bids then count as the floor (the order is kept).
-            n_below = int(np.searchsorted(sorted_bids, floor_value, side="left"))
-            if n_below < big_n:
-                floor = Floor(floor_value, n_below / big_n)
-            np.maximum(sorted_bids, floor_value, out=sorted_bids)
+            floor, n_below = clamp_at_floor(sorted_bids, floor_value)
         if sorted_bids[0] == sorted_bids[-1]:
             degenerate.append(n)
             what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
@@ -859,9 +857,7 @@ def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: f
             if floor is not None:
                 # q* is the share of sub-floor bids: each bid's influence gains slope * (1{b < r} - q*)
                 # (the sub-floor bids are the first n_below sorted ones).
-                slope = n * ww.floor_slope
-                infl[:n_below] += slope * (1.0 - floor.quantile)
-                infl[n_below:] -= slope * floor.quantile
+                add_floor_influence(infl, n_below, n * ww.floor_slope, floor.quantile)
             infl *= pi / big_n
             revenue[k].add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
         del sorted_bids, cl, table

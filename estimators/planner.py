@@ -344,6 +344,8 @@ def simulated_half_width(
 ) -> pd.DataFrame:
     """Half-width ``z x SD`` of the estimates over ``reps`` simulated experiments (validates a plan).
 
+    The simulated auctions and the estimator follow the experiment's ``payment_rule`` and ``floor``.
+
     Parameters
     ----------
     values : scipy.stats frozen continuous distribution
@@ -378,7 +380,7 @@ def simulated_half_width(
     se = np.empty((int(reps), len(rules)))
     for r in range(int(reps)):
         data = simulate_prepared(values, experiment, n_bidders=n, n_auctions=int(n_auctions), rng=rng)
-        res = ordstat_revenue(data, rules, mix)
+        res = ordstat_revenue(data, rules, mix, payment_rule=experiment.payment_rule, floor=experiment.floor or None)
         est[r], se[r] = res.estimate, res.std_error
     rows = []
     for k, a in enumerate(experiment.arms):

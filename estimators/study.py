@@ -28,13 +28,15 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ._floor import add_floor_influence, clamp_at_floor
 from ._lstatistic import l_statistic
 from ._realized import realized_averages
 from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .arms import PreparedBids
 from .errors import InputError
 from .order_weights import revenue_weights
-from .simulate import BidFunction, equilibrium_bid_function, expected_revenue_per_auction
+from .payment_rules import check_payment_rule
+from .simulate import BidFunction, equilibrium_bid_function, expected_revenue_per_auction, floor_quantile
 from .spec import Experiment, parse_experiments
 from .two_step import _revenue as _two_step_revenue
 from .two_step import pseudo_values
@@ -49,7 +51,9 @@ __all__ = [
     "share_study",
     "simulate_prepared",
     "size_study",
+    "check_auction",
     "study_experiment",
+    "two_step_applies",
 ]
 
 #: Value distributions per click used by the study (frozen scipy.stats objects).
@@ -64,19 +68,23 @@ TREATED_WEIGHTS = (0.36, 0.12, 0.05, 0.02)
 _Z95 = float(stats.norm.ppf(0.975))
 
 
-def study_experiment(share: float, *, arms: Sequence[str] = ("control", "treated")) -> Experiment:
+def study_experiment(share: float, *, arms: Sequence[str] = ("control", "treated"), payment_rule: str = "first_price",
+                     floor: float | None = None) -> Experiment:
     """The study's experiment: ``treated`` in a share ``share`` of auctions, ``control`` in the rest.
 
     With ``arms=("treated",)`` a one-arm experiment (the informed-bidder A/B test's view of the treated arm).
+    ``payment_rule`` and ``floor`` (per click, value units; ``None``: no floor) are the auction's.
     """
     if not (isinstance(share, (int, float)) and 0 < share <= 1):
         raise InputError(f"`share` must be in (0, 1]; got {share!r}")
     spec = {"control": (1.0 - share, CONTROL_WEIGHTS), "treated": (share, TREATED_WEIGHTS)}
     if len(arms) == 1:
         spec = {arms[0]: (1.0, spec[arms[0]][1])}
-    doc = {"experiments": [{"id": "study", "control_arm": arms[0],
+    doc = {"experiments": [{"id": "study", "control_arm": arms[0], "payment_rule": payment_rule,
                             "arms": [{"name": a, "share": s, "position_weights": list(w)}
                                      for a, (s, w) in spec.items()]}]}
+    if floor is not None:
+        doc["experiments"][0]["floor"] = floor
     return parse_experiments(doc)["study"]
 
 
@@ -87,14 +95,16 @@ def study_experiment(share: float, *, arms: Sequence[str] = ("control", "treated
 _BID_FUNCTIONS: dict[tuple, tuple[object, BidFunction]] = {}
 
 
-def _bid_function(values, belief_weights: tuple[float, ...]) -> BidFunction:
-    """Cached equilibrium bid function per (distribution, mixture weights)."""
-    key = (values if isinstance(values, str) else id(values), belief_weights)
+def _bid_function(values, belief_weights: tuple[float, ...], payment_rule: str = "first_price",
+                  floor: float | None = None) -> BidFunction:
+    """Cached equilibrium bid function per (distribution, mixture weights, payment rule, floor)."""
+    key = (values if isinstance(values, str) else id(values), belief_weights, payment_rule, floor)
     hit = _BID_FUNCTIONS.get(key)
     if hit is not None and (isinstance(values, str) or hit[0] is values):
         return hit[1]
     dist = VALUE_DISTRIBUTIONS[values] if isinstance(values, str) else values
-    fn = equilibrium_bid_function(dist, allocation_rule(belief_weights, len(belief_weights)))
+    options = {} if payment_rule == "first_price" and floor is None else {"payment_rule": payment_rule, "floor": floor}
+    fn = equilibrium_bid_function(dist, allocation_rule(belief_weights, len(belief_weights)), **options)
     if len(_BID_FUNCTIONS) > 512:
         _BID_FUNCTIONS.clear()
     _BID_FUNCTIONS[key] = (values, fn)  # keeps the distribution alive, so its id stays unique
@@ -119,8 +129,11 @@ def simulate_prepared(
     """Equilibrium bids of one simulated experiment as :class:`~.arms.PreparedBids` (fast path).
 
     Same model as :func:`~.simulate.simulate_experiment` (bids answer the mixture of the designed
-    shares, or of ``belief_shares``; the arm is drawn per auction), without building a DataFrame;
-    bid functions are cached per distribution and mixture.
+    shares, or of ``belief_shares``; the arm is drawn per auction; the auction is the experiment's
+    ``payment_rule`` and ``floor``), without building a DataFrame; bid functions are cached per
+    distribution, mixture, payment rule and floor. ``vcg`` bids are the values. With a floor,
+    bidders whose value lies below it submit their value and are logged unshown (position 0),
+    as :func:`~.simulate.simulate_experiment` logs them.
 
     Parameters
     ----------
@@ -138,7 +151,8 @@ def simulate_prepared(
     Returns
     -------
     PreparedBids
-        ``position`` is the rank (1 = top) where the arm shows it, else 0.
+        ``position`` is the rank (1 = top) where the arm shows it (an eligible bid at a position
+        of positive weight), else 0.
     """
     if isinstance(values, str):
         if values not in VALUE_DISTRIBUTIONS:
@@ -148,15 +162,29 @@ def simulate_prepared(
     n, a = int(n_bidders), int(n_auctions)
     if n < 2 or a < 1:
         raise InputError(f"`n_bidders` must be >= 2 and `n_auctions` >= 1; got {n_bidders!r}, {n_auctions!r}")
-    bid_fn = _bid_function(values, _belief_weights(experiment, n, belief_shares))
+    rule = experiment.payment_rule
+    floor = float(experiment.floor) if experiment.floor else None
+    bid_fn = _bid_function(values, _belief_weights(experiment, n, belief_shares), rule, floor)
     shares = np.asarray(experiment.shares, dtype=float)
     arm_of_auction = rng.choice(shares.size, size=a, p=shares / shares.sum())
-    bids = bid_fn(rng.random((a, n)))
+    quantile = rng.random((a, n))
+    eligible = None
+    if rule == "first_price" and floor is None:
+        bids = bid_fn(quantile)
+    else:
+        dist = VALUE_DISTRIBUTIONS[values] if isinstance(values, str) else values
+        value = dist.ppf(quantile)
+        bids = value if rule == "vcg" else bid_fn(quantile)
+        if floor is not None:
+            eligible = quantile >= floor_quantile(dist, floor)
+            bids = np.where(eligible, bids, value)  # sub-floor bidders submit their value
     rank = np.empty((a, n), dtype=np.int64)
     np.put_along_axis(rank, np.argsort(-bids, axis=1), np.arange(1, n + 1)[None, :], axis=1)
     weights = np.stack([np.asarray(arm.weights_for(n)) for arm in experiment.arms])
     arm = np.repeat(arm_of_auction, n)
     shown = weights[arm, rank.ravel() - 1] > 0
+    if eligible is not None:
+        shown &= eligible.ravel()
     return PreparedBids(
         bid=bids.ravel(),
         auction=np.repeat(np.arange(a, dtype=np.int64), n),
@@ -193,20 +221,29 @@ class OrdstatResult:
 
 
 @functools.lru_cache(maxsize=512)
-def _increments(target: tuple[float, ...], mixture: tuple[float, ...], n_bids: int) -> tuple[np.ndarray, float]:
-    w = revenue_weights(AllocationRule(np.array(target)), AllocationRule(np.array(mixture)), n_bids)
-    return w.increments(n_bids), float(w.bottom)
+def _increments(target: tuple[float, ...], mixture: tuple[float, ...], n_bids: int,
+                payment_rule: str = "first_price") -> tuple[np.ndarray, float, float]:
+    """Increments, ``top`` and ``bottom`` of the no-floor weights (a floor leaves the increments as they are)."""
+    w = revenue_weights(AllocationRule(np.array(target)), AllocationRule(np.array(mixture)), n_bids,
+                        payment_rule=payment_rule)
+    return w.increments(n_bids), float(w.top), float(w.bottom)
 
 
 def ordstat_revenue(
     data: PreparedBids,
     targets: Sequence[AllocationRule],
     mixture: AllocationRule,
+    *,
+    payment_rule: str = "first_price",
+    floor: float | None = None,
 ) -> OrdstatResult:
     """The weighted order-statistic revenue estimate of each target arm, one stratum.
 
     The same computation as :func:`~.arms.estimate_arms` for a single number of bidders (the
-    tests check they agree), with the weights cached across replicates of equal size.
+    tests check they agree), with the weights cached across replicates of equal size. With a
+    floor, the floor step is the estimator's own (:mod:`._floor`): ``q*`` is the share of
+    sub-floor bids, the sorted bids are clamped at the floor, the floor's boundary term is added
+    and its influence term (``q*`` is estimated) enters the standard error.
 
     Parameters
     ----------
@@ -216,15 +253,24 @@ def ordstat_revenue(
         Arms whose revenue per auction is wanted.
     mixture : AllocationRule
         The rule the bids answered.
+    payment_rule : {'first_price', 'gsp', 'vcg'}
+        Payment rule of the auctions that ran.
+    floor : float, optional
+        Floor per click in bid units (``None`` or 0: no floor).
 
     Returns
     -------
     OrdstatResult
+        NaN for every arm when every bid lies below the floor.
 
     References
     ----------
     .. [1] Serfling, R. (1980). Approximation Theorems of Mathematical Statistics, Wiley, sec. 8.2.
+    .. [2] Myerson, R. (1981). Optimal auction design. Math. Oper. Res. 6(1), 58-73.
     """
+    check_payment_rule(payment_rule)
+    if floor is not None and not (isinstance(floor, (int, float)) and math.isfinite(floor) and floor >= 0):
+        raise InputError(f"`floor` must be a finite number >= 0; got {floor!r}")
     n = mixture.n_bidders
     if np.any(data.n_bidders != n):
         raise InputError(f"every auction must have {n} bidders for ordstat_revenue")
@@ -235,10 +281,24 @@ def ordstat_revenue(
     mix_key = tuple(mixture.position_weights.tolist())
     est = np.empty(len(targets))
     se = np.empty(len(targets))
+    at_floor = None
+    if floor:
+        at_floor, n_below = clamp_at_floor(b, float(floor))
+        if at_floor is None:  # every bid below the floor: a degenerate stratum (as in estimate_arms)
+            return OrdstatResult(np.full(len(targets), np.nan), np.full(len(targets), np.nan))
     influence = np.empty(big_n)
     for k, target in enumerate(targets):
-        inc, bottom = _increments(tuple(target.position_weights.tolist()), mix_key, big_n)
-        est[k] = l_statistic(lambda lo, hi, inc=inc: n * inc[lo:hi], b, influence) - n * bottom * float(b[0])
+        t_key = tuple(target.position_weights.tolist())
+        inc, top, bottom = _increments(t_key, mix_key, big_n, payment_rule)
+        lstat = l_statistic(lambda lo, hi, inc=inc: n * inc[lo:hi], b, influence)
+        if at_floor is None:
+            est[k] = lstat - n * bottom * float(b[0])
+        else:  # the floor's term replaces the bottom bid's
+            ww = revenue_weights(target, mixture, big_n, payment_rule=payment_rule, floor=at_floor)
+            est[k] = lstat + n * ww.floor_term
+            add_floor_influence(influence, n_below, n * ww.floor_slope, at_floor.quantile)
+        if top:
+            est[k] += n * top * float(b[-1])
         influence /= big_n
         sums = np.bincount(cl, weights=influence, minlength=g)
         se[k] = math.sqrt(g / (g - 1) * float(sums @ sums)) if g > 1 else np.nan
@@ -290,6 +350,51 @@ def _check_grid(name: str, values: Sequence, *, lo: float, hi: float, integer: b
     return [int(v) for v in vals] if integer else [float(v) for v in vals]
 
 
+def two_step_applies(payment_rule: str, floor: float | None) -> bool:
+    """Whether the two-step kernel baseline models this auction (pay-your-bid, no floor).
+
+    Parameters
+    ----------
+    payment_rule : str
+    floor : float or None
+
+    Returns
+    -------
+    bool
+        True for ``first_price`` without a floor (``None`` or 0).
+    """
+    return payment_rule == "first_price" and not floor
+
+
+def check_auction(payment_rule: str, floor: float | None, names: Sequence[str]) -> dict:
+    """The study's ``payment_rule`` and ``floor`` (``None`` for no floor), validated against the distributions.
+
+    Parameters
+    ----------
+    payment_rule : {'first_price', 'gsp', 'vcg'}
+    floor : float or None
+        Per click, value units; 0 or ``None``: no floor. It must lie below the top of each
+        distribution's support (else no bid would be eligible).
+    names : sequence of str
+        Keys of :data:`VALUE_DISTRIBUTIONS`.
+
+    Returns
+    -------
+    dict
+        ``{"payment_rule": ..., "floor": float or None}``, the keyword arguments of the cells.
+    """
+    check_payment_rule(payment_rule)
+    if floor is None or (not isinstance(floor, bool) and isinstance(floor, (int, float)) and floor == 0):
+        return {"payment_rule": payment_rule, "floor": None}
+    if isinstance(floor, bool) or not isinstance(floor, (int, float)) or not (math.isfinite(floor) and floor > 0):
+        raise InputError(f"`floor` must be a finite number >= 0 (value units); got {floor!r}")
+    for d in names:
+        if not VALUE_DISTRIBUTIONS[d].cdf(float(floor)) < 1.0:
+            raise InputError(f"`floor` {float(floor):g} lies above every {d} value (F(floor) = 1): "
+                             "no bid would be eligible")
+    return {"payment_rule": payment_rule, "floor": float(floor)}
+
+
 def _check_names(names: Sequence[str]) -> list[str]:
     names = list(names)
     bad = [d for d in names if d not in VALUE_DISTRIBUTIONS]
@@ -299,9 +404,14 @@ def _check_names(names: Sequence[str]) -> list[str]:
 
 
 def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int, seed: int,
-              two_step: bool = True, two_step_reps: int | None = None) -> list[dict]:
-    """One (distribution, n, N) cell of :func:`size_study`: summary rows per method and arm."""
-    exp = study_experiment(share)
+              two_step: bool = True, two_step_reps: int | None = None, payment_rule: str = "first_price",
+              floor: float | None = None) -> list[dict]:
+    """One (distribution, n, N) cell of :func:`size_study`: summary rows per method and arm.
+
+    The two-step baseline is pay-your-bid without a floor: it runs only for that auction.
+    """
+    exp = study_experiment(share, payment_rule=payment_rule, floor=floor)
+    two_step = two_step and two_step_applies(payment_rule, floor)
     rules = [allocation_rule(a.weights_for(n), n) for a in exp.arms]
     mix = mixture_rule(rules, exp.shares)
     n_auctions = max(2, int(n_bids) // n)
@@ -311,7 +421,7 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
     ts = np.full((reps, 2), np.nan)
     for r in range(reps):
         data = simulate_prepared(values_name, exp, n_bidders=n, n_auctions=n_auctions, rng=rng)
-        res = ordstat_revenue(data, rules, mix)
+        res = ordstat_revenue(data, rules, mix, payment_rule=payment_rule, floor=floor)
         est[r], se[r] = res.estimate, res.std_error
         if two_step and (two_step_reps is None or r < two_step_reps):
             pv = pseudo_values(np.sort(data.bid), mix)
@@ -319,7 +429,7 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
     rows = []
     values = VALUE_DISTRIBUTIONS[values_name]
     for k, arm in enumerate(exp.arms):
-        truth = expected_revenue_per_auction(values, arm.position_weights, n)
+        truth = expected_revenue_per_auction(values, arm.position_weights, n, floor=floor)
         base = {"distribution": values_name, "n_bidders": n, "n_bids": int(n_bids), "n_bids_used": n_auctions * n,
                 "n_auctions": n_auctions,
                 "share": arm.share, "arm": arm.name}
@@ -330,10 +440,15 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
     return rows
 
 
-def share_cell(values_name: str, n: int, share: float, *, n_auctions: int, reps: int, seed: int) -> list[dict]:
-    """One (distribution, n, share) cell of :func:`share_study`: rows for the treated arm."""
-    exp = study_experiment(share)
-    one = study_experiment(1.0, arms=("treated",))
+def share_cell(values_name: str, n: int, share: float, *, n_auctions: int, reps: int, seed: int,
+               payment_rule: str = "first_price", floor: float | None = None) -> list[dict]:
+    """One (distribution, n, share) cell of :func:`share_study`: rows for the treated arm.
+
+    The informed-bidder A/B test's auctions run under the same payment rule and floor.
+    """
+    auction = {"payment_rule": payment_rule, "floor": floor}
+    exp = study_experiment(share, **auction)
+    one = study_experiment(1.0, arms=("treated",), **auction)
     rules = [allocation_rule(a.weights_for(n), n) for a in exp.arms]
     mix = mixture_rule(rules, exp.shares)
     treated_rule = rules[1]
@@ -342,13 +457,13 @@ def share_cell(values_name: str, n: int, share: float, *, n_auctions: int, reps:
     out = {m: (np.full(reps, np.nan), np.full(reps, np.nan)) for m in ("ordstat", "informed_ab", "realized_average")}
     for r in range(reps):
         data = simulate_prepared(values_name, exp, n_bidders=n, n_auctions=n_auctions, rng=rng)
-        res = ordstat_revenue(data, [treated_rule], mix)
+        res = ordstat_revenue(data, [treated_rule], mix, **auction)
         out["ordstat"][0][r], out["ordstat"][1][r] = res.estimate[0], res.std_error[0]
         out["realized_average"][0][r] = realized_averages(data, exp).mean[1]
         ab = simulate_prepared(values_name, one, n_bidders=n, n_auctions=ab_auctions, rng=rng)
-        res_ab = ordstat_revenue(ab, [treated_rule], treated_rule)
+        res_ab = ordstat_revenue(ab, [treated_rule], treated_rule, **auction)
         out["informed_ab"][0][r], out["informed_ab"][1][r] = res_ab.estimate[0], res_ab.std_error[0]
-    truth = expected_revenue_per_auction(VALUE_DISTRIBUTIONS[values_name], TREATED_WEIGHTS, n)
+    truth = expected_revenue_per_auction(VALUE_DISTRIBUTIONS[values_name], TREATED_WEIGHTS, n, floor=floor)
     rows = []
     for method, (e, s) in out.items():
         used = ab_auctions if method == "informed_ab" else n_auctions
@@ -379,6 +494,8 @@ def size_study(
     two_step: bool = True,
     two_step_reps: int | None = None,
     jobs: int = 1,
+    payment_rule: str = "first_price",
+    floor: float | None = None,
 ) -> pd.DataFrame:
     """Bias, RMSE, RMSE x sqrt(N) and 95 % coverage by number of bids ``N``.
 
@@ -396,11 +513,17 @@ def size_study(
         Replicates per cell (>= 2).
     seed : int
     two_step : bool
-        Also run the two-step baseline.
+        Also run the two-step baseline (only under ``first_price`` without a floor, the auction it
+        models; see :func:`two_step_applies`).
     two_step_reps : int, optional
         Run it on the first this many replicates only (default: all; it is the slow part).
     jobs : int
         Worker processes (results do not depend on it).
+    payment_rule : {'first_price', 'gsp', 'vcg'}
+        Payment rule of the simulated auctions (equilibrium bids, estimator weights).
+    floor : float, optional
+        Floor per click shared by the arms, in value units (``None`` or 0: no floor); it must lie
+        below the top of every distribution's support. Truth is Myerson's formula with the floor.
 
     Returns
     -------
@@ -416,8 +539,9 @@ def size_study(
     reps = _check_grid("reps", [reps], lo=2, hi=1e7, integer=True)[0]
     if two_step_reps is not None:
         two_step_reps = _check_grid("two_step_reps", [two_step_reps], lo=2, hi=1e7, integer=True)[0]
+    auction = check_auction(payment_rule, floor, names)
     cells = [(size_cell, (d, n, s), {"share": float(share), "reps": reps, "seed": seed, "two_step": two_step,
-                                     "two_step_reps": two_step_reps})
+                                     "two_step_reps": two_step_reps, **auction})
              for d in names for n in ns for s in sz]
     out = pd.DataFrame(_run(cells, jobs))
     out.insert(out.columns.get_loc("rmse") + 1, "rmse_sqrt_n", out["rmse"] * np.sqrt(out["n_bids_used"]))
@@ -433,13 +557,15 @@ def share_study(
     reps: int = 200,
     seed: int = 0,
     jobs: int = 1,
+    payment_rule: str = "first_price",
+    floor: float | None = None,
 ) -> pd.DataFrame:
     """RMSE of the treated arm's revenue as its share falls: estimator, informed-bidder A/B test, realized per-arm average.
 
     Parameters
     ----------
-    distributions, bidders, reps, seed, jobs
-        As for :func:`size_study`.
+    distributions, bidders, reps, seed, jobs, payment_rule, floor
+        As for :func:`size_study` (the informed-bidder A/B test runs the same auction).
     shares : sequence of float
         Treated shares in (0, 1).
     n_auctions : int
@@ -458,7 +584,8 @@ def share_study(
     sh = _check_grid("shares", shares, lo=1e-6, hi=1 - 1e-9)
     a = _check_grid("n_auctions", [n_auctions], lo=2, hi=1e8, integer=True)[0]
     reps = _check_grid("reps", [reps], lo=2, hi=1e7, integer=True)[0]
-    cells = [(share_cell, (d, n, s), {"n_auctions": a, "reps": reps, "seed": seed})
+    auction = check_auction(payment_rule, floor, names)
+    cells = [(share_cell, (d, n, s), {"n_auctions": a, "reps": reps, "seed": seed, **auction})
              for d in names for n in ns for s in sh]
     out = pd.DataFrame(_run(cells, jobs))
     informed = out[out["method"] == "informed_ab"].set_index(["distribution", "n_bidders", "share"])["rmse"]
