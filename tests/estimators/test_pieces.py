@@ -276,7 +276,7 @@ def test_days_combine_as_the_auction_weighted_average_of_each_day():
 
 def _two_day_coverage(reps: int, seed: int):
     exp = study_experiment(0.3)
-    sim = TwoDays(exp, n_bidders=4, auctions=(1000, 1000), pool=100)
+    sim = TwoDays(exp, n_bidders=4, auctions=(1000, 1000), pool=200)
     truth = {a.name: expected_revenue_per_auction(VALUES, a.position_weights, 4) for a in exp.arms}
     truth = {("control", "revenue_per_auction"): truth["control"], ("treated", "revenue_per_auction"): truth["treated"],
              ("treated", "revenue_lift_vs_control"): truth["treated"] / truth["control"] - 1}
