@@ -134,10 +134,11 @@ class StratumPiece:
     bidder_ids : ndarray or None
         The stratum's distinct bidders (the log's ids: int64 or str objects), when bidder
         clustering was asked for; else None.
-    bidder_sums : ndarray or None, shape (len(bidder_ids), L)
-        Per bidder, the summed influence of its bids on ``estimate`` divided by ``n_bids``: not
-        scaled by the stratum's weight, so sums of one bidder add across strata once each is
-        multiplied by ``M_s / M``. Welfare columns are NaN.
+    bidder_sums : ndarray or None, shape (len(bidder_ids), K + 1)
+        Per bidder, the summed influence of its bids on the revenue labels (:attr:`sum_labels`:
+        every arm's revenue, then the mixture's) divided by ``n_bids``: not scaled by the stratum's
+        weight, so sums of one bidder add across strata once each is multiplied by ``M_s / M``.
+        Welfare has no interval and no sums.
     arm_auctions : ndarray of int64, shape (K,)
         Auctions of each arm (the arm's bids are ``n_bidders`` times as many).
     realized_sum, realized_squares : ndarray, shape (K,)
@@ -185,12 +186,17 @@ class StratumPiece:
         return (self.day, self.n_bidders, self.shard)
 
     @property
+    def sum_labels(self) -> tuple[tuple[str, str], ...]:
+        """Labels of the columns of ``bidder_sums``: the revenue labels, in label order."""
+        return tuple(label for label in self.labels if label[1] == REVENUE)
+
+    @property
     def arm_bids(self) -> np.ndarray:
         """Bids of each arm."""
         return self.arm_auctions * self.n_bidders
 
     def equals(self, other: StratumPiece) -> bool:
-        """Exact equality of every stored field (NaN equal to NaN; bidders matched by the text of their ids, in any order)."""
+        """Exact equality of every stored field (NaN equal to NaN; bidders matched by id text, in any order)."""
         if not isinstance(other, StratumPiece):
             return False
         for f in dataclasses.fields(self):
@@ -202,7 +208,8 @@ class StratumPiece:
                     return False
                 if a is not None and f.name == "bidder_sums":  # bidders in any order, matched by id
                     mine, theirs = _as_text(self.bidder_ids), _as_text(other.bidder_ids)
-                    if mine.size != theirs.size or not np.array_equal(np.sort(mine.astype(str)), np.sort(theirs.astype(str))):
+                    if mine.size != theirs.size or not np.array_equal(np.sort(mine.astype(str)),
+                                                                      np.sort(theirs.astype(str))):
                         return False
                     at = pd.Index(theirs).get_indexer(mine)
                     if not np.array_equal(a, b[at], equal_nan=True):
@@ -376,7 +383,9 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
 
 
 def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None, cluster: str,
-                    source: str) -> list[StratumPiece]:
+                    source: str, skip_auction_covariance: bool = False) -> list[StratumPiece]:
+    """The pieces; ``skip_auction_covariance`` (estimate_arms' shortcut, pieces never leave the call):
+    when bidder sums are kept, leave ``covariance`` NaN, saving a gather and a bincount per metric."""
     from .arms import MIN_STRATUM_BIDS, _endpoint_gaps, _l_statistic, sorted_with_order
 
     arms = experiment.arms
@@ -392,8 +401,12 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
         repeats = label_of_code.size < data.bidder.size
         if cluster == "bidder" or repeats:
             bidder_codes = codes
-            bidder_ids_of_code = (label_of_code.astype(np.int64, copy=False) if data.bidder_ids is None
-                                  else data.bidder_ids[label_of_code])
+            if data.bidder_ids is None:
+                bidder_ids_of_code = label_of_code.astype(np.int64, copy=False)
+            elif label_of_code.size == data.bidder_ids.size:  # every label present (sorted): no gather
+                bidder_ids_of_code = data.bidder_ids
+            else:
+                bidder_ids_of_code = data.bidder_ids[label_of_code]
         del codes, label_of_code
     space = object() if bidder_codes is not None else None
     n_codes = 0 if bidder_ids_of_code is None else bidder_ids_of_code.size
@@ -435,10 +448,12 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
         covariance = np.full((n_labels, n_labels), np.nan)
         piece_ids = piece_sums = piece_codes = None
         if bidder_codes is not None:
-            bc = bidder_codes if sel is None else bidder_codes[sel]
-            present = np.flatnonzero(np.bincount(bc, minlength=n_codes))
-            piece_ids, piece_codes = bidder_ids_of_code[present], present
-            piece_sums = np.full((present.size, n_labels), np.nan)
+            if sel is None:  # the whole input is this stratum: every code is present
+                piece_ids, piece_codes = bidder_ids_of_code, np.arange(n_codes)
+            else:
+                present = np.flatnonzero(np.bincount(bidder_codes[sel], minlength=n_codes))
+                piece_ids, piece_codes = bidder_ids_of_code[present], present
+            piece_sums = np.full((piece_codes.size, k_arms + 1), np.nan)
         if sorted_bids[0] == sorted_bids[-1]:
             flags.append("degenerate")
             what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
@@ -448,7 +463,9 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                           stacklevel=4)
             del order, sorted_bids, b_raw
         else:
-            auc = (data.auction if sel is None else data.auction[sel])[order].astype(np.intp, copy=False)
+            auc = None
+            if not (skip_auction_covariance and bidder_codes is not None):
+                auc = (data.auction if sel is None else data.auction[sel])[order].astype(np.intp, copy=False)
             bcs = None
             if bidder_codes is not None:
                 bcs = (bidder_codes if sel is None else bidder_codes[sel])[order].astype(np.intp, copy=False)
@@ -465,8 +482,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                           for k, ww in enumerate(weights)]
             table = WeightTable([ww for ww, ok in zip(weights, identified) if ok], big_n)
             column = np.cumsum(identified) - 1  # metric k's row in the table
-            n_auction_codes = int(auc.max()) + 1
-            auction_sums = np.empty((k_arms, n_auction_codes))
+            n_auction_codes = data.n_auctions
+            auction_sums = None if auc is None else np.empty((k_arms, n_auction_codes))
             for k, ww in enumerate(weights):
                 if k >= k_arms:  # welfare: endpoints of the bid distribution, not the extreme bids
                     if not identified[k]:
@@ -480,7 +497,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                         est -= n * ww.bottom * (float(sorted_bids[0]) - bottom_gap)
                     estimate[k] = est
                     continue
-                boundary = n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0]) + n * ww.floor_term
+                boundary = (n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0])
+                            + n * ww.floor_term)
                 est = _l_statistic(table, int(column[k]), n, sorted_bids, infl) + boundary
                 if floor is not None:
                     # q* is the share of sub-floor bids: each bid's influence gains slope * (1{b < r} - q*)
@@ -490,20 +508,24 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                     infl[n_below:] -= slope * floor.quantile
                 infl *= 1.0 / big_n
                 estimate[k] = est
-                auction_sums[k] = np.bincount(auc, weights=infl, minlength=n_auction_codes)
+                if auction_sums is not None:
+                    auction_sums[k] = np.bincount(auc, weights=infl, minlength=n_auction_codes)
                 if bcs is not None:
-                    piece_sums[:, k] = np.bincount(bcs, weights=infl, minlength=n_codes)[piece_codes]
+                    by_code = np.bincount(bcs, weights=infl, minlength=n_codes)
+                    piece_sums[:, k] = by_code if sel is None else by_code[piece_codes]
+                    del by_code
             # The estimator is linear in the target rule and the mixture's rule is the share-weighted
             # sum of the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
             estimate[-1] = float(shares @ estimate[:k_arms])
-            block = auction_sums @ auction_sums.T  # arms x arms, CR0
-            mix_row = shares @ block
-            covariance[np.ix_(range(k_arms), range(k_arms))] = block
-            covariance[-1, :k_arms] = covariance[:k_arms, -1] = mix_row
-            covariance[-1, -1] = float(mix_row @ shares)
+            if auction_sums is not None:
+                block = auction_sums @ auction_sums.T  # arms x arms, CR0
+                mix_row = shares @ block
+                covariance[np.ix_(range(k_arms), range(k_arms))] = block
+                covariance[-1, :k_arms] = covariance[:k_arms, -1] = mix_row
+                covariance[-1, -1] = float(mix_row @ shares)
             del auction_sums
             if piece_sums is not None:
-                piece_sums[:, -1] = piece_sums[:, :k_arms] @ shares
+                piece_sums[:, k_arms] = piece_sums[:, :k_arms] @ shares
             del sorted_bids, auc, bcs, table
         pieces.append(dict(n=n, a_n=a_n, big_n=big_n, estimate=estimate, covariance=covariance, ids=piece_ids,
                            sums=piece_sums, codes=piece_codes, floor_quantile=floor_quantile, top_bid=top_bid,
@@ -556,8 +578,16 @@ def _cr_factor(g: int) -> float:
     return g / (g - 1) if g >= 2 else np.nan
 
 
-def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray, columns: list[int]) -> np.ndarray:
-    """``S_b = sum_s w_s S_{b,s}`` for every distinct bidder of the pieces (rows) and the given label columns."""
+def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple[np.ndarray, float]:
+    """``S_b = sum_s w_s S_{b,s}`` for every distinct bidder of the pieces (rows), per revenue label (columns).
+
+    Returned as ``(sums, scale)`` with ``S = scale * sums``: one piece holding every bidder of its
+    label space (``estimate_arms`` on one stratum) is used as it is, without a copy.
+    """
+    if len(pieces) == 1 and pieces[0]._bidder_space is not None:
+        c = pieces[0]._bidder_codes
+        if c.size and c.size == int(c[-1]) + 1:  # sorted distinct codes 0..B-1: all of them
+            return pieces[0].bidder_sums, float(weights[0])
     space = pieces[0]._bidder_space
     if space is not None and all(p._bidder_space is space for p in pieces):
         codes = [p._bidder_codes for p in pieces]  # one label space: no hashing of the ids
@@ -572,22 +602,29 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray, columns:
         n_codes = len(uniques)
         bounds = np.cumsum([0] + [i.size for i in ids])
         codes = [flat[lo:hi] for lo, hi in zip(bounds[:-1], bounds[1:])]
-    totals = np.zeros((len(columns), n_codes))
+    n_columns = pieces[0].bidder_sums.shape[1]
+    totals = np.zeros((n_columns, n_codes))
     for p, c, w in zip(pieces, codes, weights):
-        for j, col in enumerate(columns):
-            totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, col], minlength=n_codes)
+        every = p._bidder_codes is c and c.size == n_codes  # sorted distinct codes of the space: all of them
+        for j in range(n_columns):
+            if every:
+                totals[j] += w * p.bidder_sums[:, j]
+            else:
+                totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, j], minlength=n_codes)
     if space is not None and all(p._bidder_space is space for p in pieces):
         seen = np.zeros(n_codes, dtype=bool)
         for c in codes:
             seen[c] = True
-        totals = totals[:, seen]
-    return totals.T
+        if not seen.all():  # codes of the shared space no piece here uses
+            totals = totals[:, seen]
+    return totals.T, 1.0
 
 
 def _distinct_bidders(pieces: Sequence[StratumPiece]) -> int:
     space = pieces[0]._bidder_space
     if space is not None and all(p._bidder_space is space for p in pieces):
-        seen = np.zeros(max(int(p._bidder_codes.max()) + 1 if p._bidder_codes.size else 0 for p in pieces), dtype=bool)
+        size = max(int(p._bidder_codes.max()) + 1 if p._bidder_codes.size else 0 for p in pieces)
+        seen = np.zeros(size, dtype=bool)
         for p in pieces:
             seen[p._bidder_codes] = True
         return int(seen.sum())
@@ -704,9 +741,13 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
 
     degenerate = any("degenerate" in p.flags for p in pieces)
     if cluster == "bidder":
-        totals = _bidder_totals(pieces, w, revenue_cols)  # distinct bidders x revenue labels
+        # distinct bidders x revenue labels (revenue_cols' order); the sums are scale x totals
+        totals, scale = _bidder_totals(pieces, w)
         factor = _cr_factor(totals.shape[0])
-        block = factor * (totals.T @ totals) if totals.shape[0] >= 2 else np.full((len(revenue_cols),) * 2, np.nan)
+        if totals.shape[0] >= 2:
+            block = (factor * scale * scale) * (totals.T @ totals)
+        else:
+            block = np.full((len(revenue_cols),) * 2, np.nan)
     else:
         totals = None
         block = np.zeros((len(revenue_cols), len(revenue_cols)))
@@ -767,7 +808,9 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
                 lift = t_a / t_c - 1.0
                 r = t_a / t_c
                 if totals is not None:
-                    cs = (totals[:, revenue_cols.index(k)] - r * totals[:, revenue_cols.index(control)]) / t_c
+                    cs = totals[:, revenue_cols.index(control)] * -r
+                    cs += totals[:, revenue_cols.index(k)]
+                    cs *= scale / t_c
                     lift_se = float(np.sqrt(_cr_factor(cs.size) * float(cs @ cs))) if cs.size >= 2 else np.nan
                 else:
                     v = variance[k, k] - 2 * r * variance[k, control] + r * r * variance[control, control]
@@ -877,7 +920,7 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
                 **{c: [v] * (b * (k_arms + 1)) for c, v in key.items()},
                 "bidder_id": np.tile(_as_text(p.bidder_ids), k_arms + 1),
                 "arm": np.repeat(np.array(names, dtype=object), b),
-                "value": p.bidder_sums[:, revenue].T.ravel(),
+                "value": p.bidder_sums.T.ravel(),
             }))
     key_types = {"day": object, "n_bidders": np.int64, "shard": np.int64}
     columns = {
@@ -966,12 +1009,12 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
                 raise InputError(f"piece frames: {where} has {int(row['n_distinct_bidders'])} bidders but no rows in "
                                  "'bidder_sums'")
             codes, uniques = pd.factorize(s["bidder_id"].astype(str), sort=False)
-            column = np.array([index.get((a, REVENUE), -1) for a in s["arm"]], dtype=np.intp)
+            column = pd.Index(names).get_indexer(s["arm"])  # the column of sum_labels: arms, then _mixture
             if (column < 0).any():
                 raise InputError(f"piece frames: {where}: bidder_sums names an unknown arm "
                                  f"{s['arm'].to_numpy()[np.flatnonzero(column < 0)[0]]!r}")
             bidder_ids = np.asarray(uniques, dtype=object)
-            bidder_sums = np.full((bidder_ids.size, len(labels)), np.nan)
+            bidder_sums = np.full((bidder_ids.size, k_arms + 1), np.nan)
             bidder_sums[codes, column] = s["value"].to_numpy(dtype=float)
         flags = tuple(f for f in str(row["flags"] if not pd.isna(row["flags"]) else "").split(",") if f)
         pieces.append(StratumPiece(
