@@ -15,6 +15,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     p.add_argument("--cluster", choices=("auto", "auction", "bidder"), default="auto",
                    help="unit of the robust standard errors (default auto: bidder when bidder ids repeat across auctions)")
+    p.add_argument("--max-bids-per-shard", type=int, metavar="N", default=None,
+                   help="estimate a log with more bids in ceil(bids / N) shards by a stable hash of auction_id, one at a "
+                        "time (default: $COUNTERBID_MAX_BIDS_PER_SHARD, else 4000000); memory follows the shard")
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 
@@ -43,16 +46,19 @@ def _distinct_text(col) -> list[str]:
 
 
 def run(args: argparse.Namespace) -> int:
+    from counterbid.estimators import EstimatorWarning
     from counterbid.readers.bid_log import read_bids
-    from counterbid.estimators import BID_COLUMNS, EstimatorWarning, estimate_arms, prepare_bids
+    from counterbid.readers.shards import estimate_bid_log, max_bids_per_shard
 
-    bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS])
-    experiment = _choose_experiment(args.experiment, args.experiment_id, bids)
+    max_bids = max_bids_per_shard(args.max_bids_per_shard, what="--max-bids-per-shard")
+    ids = read_bids(args.bids, columns=["experiment_id"])  # one small column: which experiment
+    experiment = _choose_experiment(args.experiment, args.experiment_id, ids)
+    del ids
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
-        prepared = prepare_bids(bids, experiment, source=str(args.bids))
-        del bids  # the validated arrays are all that is needed from here on
-        result = estimate_arms(prepared, experiment, confidence_level=args.level, cluster=args.cluster, source=str(args.bids))
+        # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)
+        result = estimate_bid_log(args.bids, experiment, max_bids_per_shard=max_bids, confidence_level=args.level,
+                                  cluster=args.cluster)
     for w in caught:
         if issubclass(w.category, EstimatorWarning):
             print(f"counterbid: warning: {w.message}", file=sys.stderr)
@@ -65,6 +71,7 @@ def run(args: argparse.Namespace) -> int:
             "confidence_level": args.level,
             "cluster": result.attrs["cluster"],  # the clustering used
             "n_excluded_auctions": excluded,
+            "shards": result.attrs["shards"],
             "method_version": result.attrs["method_version"],
             "payment_rule": result.attrs["payment_rule"],
             "floor": result.attrs["floor"],
@@ -82,7 +89,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"experiment {experiment.id}: payment rule {result.attrs['payment_rule']}, "
               f"{'floor ' + format(floor, 'g') if floor else 'no floor'}"
               f"{', ranked by bid x quality' if result.attrs['quality'] else ''}; "
-              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids, "
+              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids"
+              f"{' in ' + str(result.attrs['shards']) + ' shards' if result.attrs['shards'] > 1 else ''}, "
               f"{format_level(result.attrs['confidence_level'])} intervals clustered by {cluster} "
               f"(they speak for {POPULATION[cluster]})")
         shown = result.copy()

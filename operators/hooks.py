@@ -32,9 +32,17 @@ RESULTS_DDL = (
     "results_create_arm_estimates",
     "results_create_arm_estimates_to_date",
     "results_create_position_weights",
+    "results_create_stratum_pieces",
+    "results_create_stratum_piece_arms",
+    "results_create_stratum_piece_covariance",
+    "results_create_stratum_piece_bidder_sums",
+    "results_create_bid_quantiles",
     "results_create_view_cumulative",
     "results_create_view_arm_lift",
 )
+
+#: Tables of the stored stratum pieces (one per frame of ``counterbid.estimators.pieces.pieces_to_frames``).
+PIECE_TABLES = ("stratum_pieces", "stratum_piece_arms", "stratum_piece_covariance", "stratum_piece_bidder_sums")
 
 
 def is_lock_error(exc: BaseException) -> bool:
@@ -181,7 +189,7 @@ class ResultsHook(BaseHook):
         *,
         experiment_id: str,
         ds: dt.date,
-        tables: Mapping[str, pa.Table],
+        tables: Mapping[str, pa.Table | None],
     ) -> dict[str, int]:
         """Replace every row of one (experiment, day) in one transaction (delete, then insert).
 
@@ -190,15 +198,17 @@ class ResultsHook(BaseHook):
         experiment_id : str
         ds : datetime.date
         tables : mapping of str to pyarrow.Table
-            Keys among ``arm_estimates``, ``arm_estimates_to_date``, ``position_weights``; each
-            table holds that destination's columns. Duplicate keys are dropped in SQL.
+            Keys among ``arm_estimates``, ``arm_estimates_to_date``, ``position_weights``,
+            ``stratum_pieces``, ``bid_quantiles``; each table holds that destination's columns.
+            Duplicate keys are dropped in SQL. ``None`` deletes the destination's rows of the
+            (experiment, day) and inserts none.
 
         Returns
         -------
         dict of str to int
             Rows in each destination for this (experiment, day) after the commit.
         """
-        known = {"arm_estimates", "arm_estimates_to_date", "position_weights"}
+        known = {"arm_estimates", "arm_estimates_to_date", "position_weights", "bid_quantiles", *PIECE_TABLES}
         unknown = sorted(set(tables) - known)
         if unknown:
             raise InputError(f"replace_partition: unknown destination {unknown[0]!r} (known: {', '.join(sorted(known))})")
@@ -212,6 +222,9 @@ class ResultsHook(BaseHook):
                     counts = {}
                     for dest, table in tables.items():
                         con.execute(self.sql(f"results_delete_{dest}"), params)
+                        if table is None:  # nothing for this destination now: the old rows go
+                            counts[dest] = 0
+                            continue
                         con.register("incoming", table)  # the connection is closed on failure
                         con.execute(self.sql(f"results_insert_{dest}"), params)
                         con.unregister("incoming")
@@ -223,6 +236,42 @@ class ResultsHook(BaseHook):
                 return counts
 
         return self._retry_on_lock(write, what="write")
+
+    def _fetch_if_present(self, table: str, name: str, params: Mapping[str, Any]) -> pd.DataFrame | None:
+        """``fetch_df(name, params)`` when the results file holds ``table``, else ``None``."""
+        if not self.table_exists(table):
+            return None
+        return self.fetch_df(name, params)
+
+    def trailing_bid_quantiles(self, *, experiment_id: str, first_day: dt.date, ds: dt.date) -> pd.DataFrame | None:
+        """Stored bid-quantile summaries of the days ``first_day .. ds - 1`` (``None`` when there are none)."""
+        rows = self._fetch_if_present("bid_quantiles", "bid_quantiles_select_trailing",
+                                      {"experiment_id": experiment_id, "first_day": first_day, "ds": ds})
+        return None if rows is None or rows.empty else rows
+
+    def window_failures(self, *, experiment_id: str, ds: dt.date, checks: list[str]) -> dict[dt.date, list[str]]:
+        """Days before ``ds`` on which a check of ``checks`` failed, with the failed checks (stored outcomes)."""
+        rows = self._fetch_if_present("data_checks", "data_checks_select_window_failures",
+                                      {"experiment_id": experiment_id, "ds": ds, "checks": list(checks)})
+        if rows is None:
+            return {}
+        return {pd.Timestamp(d).date(): str(c).split(",") for d, c in zip(rows["ds"], rows["failed_checks"])}
+
+    def stored_piece_days(self, *, experiment_id: str, ds: dt.date) -> list[dt.date]:
+        """Days before ``ds`` whose stratum pieces are stored."""
+        rows = self._fetch_if_present("stratum_pieces", "stratum_pieces_select_days",
+                                      {"experiment_id": experiment_id, "ds": ds})
+        return [] if rows is None else [pd.Timestamp(d).date() for d in rows["ds"]]
+
+    def stored_piece_frames(self, *, experiment_id: str, days: list[dt.date], tables: list[str]) -> dict[str, pd.DataFrame | None]:
+        """Stored rows of the given days from each stratum-piece table (``<table>_select.sql``)."""
+        out: dict[str, pd.DataFrame | None] = {}
+        for table in tables:
+            validate_identifier(table, what="table")
+            rows = None if not days else self._fetch_if_present(table, f"{table}_select",
+                                                                {"experiment_id": experiment_id, "days": list(days)})
+            out[table] = None if rows is None or rows.empty else rows
+        return out
 
     # -- lake and staged files ---------------------------------------------------------------
     def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
@@ -258,6 +307,22 @@ class ResultsHook(BaseHook):
                 yield con.sql(self.sql(name), params=dict(params)).to_arrow_reader(batch_rows)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
                 raise _lake_error(exc, root) from None
+
+    def lake_count_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> int:
+        """Bids of one experiment and day in the lake (partition-pruned)."""
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
+        return int(self._lake_query("lake_count_partition", params, lake_root).column(0)[0].as_py())
+
+    def stage_lake_shards(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date, n_shards: int,
+                          folder: str | Path) -> None:
+        """Write one experiment's bids of one day into ``folder/shard=K/`` by the stable hash of the auction id."""
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id,
+                  "n_shards": int(n_shards), "folder": str(folder)}
+        with self.lake() as con:
+            try:
+                con.execute(self.sql("lake_stage_partition_shards"), params)
+            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
+                raise _lake_error(exc, lake_root) from None
 
     def clicks_position_weights(
         self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date
@@ -300,11 +365,10 @@ class ResultsHook(BaseHook):
             return con.execute(self.sql("staged_arm_counts"), {"path": str(path)}).df()
 
     @contextlib.contextmanager
-    def staged_relations(self, *, day: str | Path, to_date: str | Path, ds: dt.date) -> Iterator[duckdb.DuckDBPyConnection]:
-        """In-memory connection with temp tables ``staged_day`` and ``staged_history`` (days before ``ds``)."""
+    def staged_relations(self, *, day: str | Path) -> Iterator[duckdb.DuckDBPyConnection]:
+        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards)."""
         with self.lake() as con:
             con.execute(self.sql("staged_create_day"), {"path": str(day)})
-            con.execute(self.sql("staged_create_history"), {"path": str(to_date), "ds": ds})
             yield con
 
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:

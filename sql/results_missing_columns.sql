@@ -10,7 +10,11 @@ with expected as (
         ('arm_estimates_to_date', 'confidence_level'),
         ('arm_estimates_to_date', 'cluster'),
         ('arm_estimates_to_date', 'payment_rule'),
-        ('arm_estimates_to_date', 'floor')
+        ('arm_estimates_to_date', 'floor'),
+        ('arm_estimates_to_date', 'days_used'),
+        ('arm_estimates_to_date', 'days_left_out'),
+        ('arm_estimates_to_date', 'n_days_used'),
+        ('arm_estimates_to_date', 'n_days_left_out')
     ) as t (table_name, column_name)
 ),
 
