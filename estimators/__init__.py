@@ -4,6 +4,10 @@ Public API
 ----------
 estimate_arms
     Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids.
+stratum_pieces, combine_pieces, StratumPiece, pieces_to_frames, pieces_from_frames
+    Strata as the unit of work: estimate each stratum alone, store and combine what it contributes.
+shard_of, n_shards, MAX_BIDS_PER_SHARD
+    The stable hash shard of an auction id and the number of shards of a stratum.
 load_experiment, load_experiments, parse_experiments, parse_day
     Read and validate experiment specs; parse a day.
 allocation_rule, mixture_rule
@@ -31,6 +35,18 @@ from .arms import (
 from .checks import CheckResult, worst_failure
 from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
+from .pieces import (
+    MAX_BIDS_PER_SHARD,
+    PIECE_FRAMES,
+    StratumPiece,
+    combine_pieces,
+    n_shards,
+    piece_labels,
+    pieces_from_frames,
+    pieces_to_frames,
+    shard_of,
+    stratum_pieces,
+)
 from .position_weights import measured_position_weights
 from .simulate import (
     BidFunction,
@@ -51,14 +67,18 @@ __all__ = [
     "EstimatorWarning",
     "Experiment",
     "InputError",
+    "MAX_BIDS_PER_SHARD",
     "METHOD_VERSION",
     "METRICS",
     "MIN_STRATUM_BIDS",
     "MIXTURE_ARM",
+    "PIECE_FRAMES",
     "PreparedBids",
     "RESULT_COLUMNS",
     "STATUS_FLAGS",
+    "StratumPiece",
     "allocation_rule",
+    "combine_pieces",
     "derivative_ratio",
     "equilibrium_bid_function",
     "estimate_arms",
@@ -68,11 +88,17 @@ __all__ = [
     "load_experiments",
     "measured_position_weights",
     "mixture_rule",
+    "n_shards",
     "parse_day",
     "parse_experiments",
+    "piece_labels",
+    "pieces_from_frames",
+    "pieces_to_frames",
     "prepare_bids",
     "revenue_weights",
+    "shard_of",
     "simulate_experiment",
+    "stratum_pieces",
     "welfare_weights",
     "worst_failure",
 ]

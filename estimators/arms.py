@@ -2,21 +2,15 @@
 
 from __future__ import annotations
 
-import dataclasses
-import math
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from ._lstatistic import BLOCK, l_statistic
-from ._realized import realized_averages
-from .allocation import AllocationRule, allocation_rule, mixture_rule
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
-from .errors import EstimatorWarning, InputError
-from .order_weights import Floor, WeightTable, revenue_weights, welfare_weights
+from .errors import InputError
+from .order_weights import WeightTable
 from .payment_rules import PAYMENT_RULES
 from .spec import Experiment
 
@@ -98,6 +92,11 @@ class PreparedBids:
     n_excluded_bids : int
     has_quality : bool
         Whether the log had a ``quality`` column (``bid`` is then the effective bid).
+    bidder_ids : ndarray or None
+        The log's bidder id of each label (``bidder_ids[bidder[i]]`` is bid ``i``'s bidder id:
+        int64 for integer ids, str objects for text), or ``None`` when the labels are the ids
+        themselves (non-negative integer ids). Strata estimated from different logs (days,
+        shards) meet on these ids (:mod:`.pieces`).
     """
 
     bid: np.ndarray
@@ -110,6 +109,7 @@ class PreparedBids:
     n_excluded_auctions: int
     n_excluded_bids: int
     has_quality: bool = False
+    bidder_ids: np.ndarray | None = None
 
 
 def _row(rows: np.ndarray | None, i: int) -> int:
@@ -189,21 +189,34 @@ def _refuse_beyond_int64(col: pd.Series, name: str, rows: np.ndarray | None, sou
                                  "the bids data contract allows for integers")
 
 
-def _bidder_labels(ids: pd.Series) -> tuple[np.ndarray, int]:
-    """Integer labels of bidder ids (equal label = same bidder) and an upper bound on them.
+def _bidder_labels(ids: pd.Series) -> tuple[np.ndarray, int, np.ndarray | None]:
+    """Integer labels of bidder ids (equal label = same bidder), an upper bound on them, and the id of each label.
 
-    Non-negative integer ids below 2**31 are their own labels, and so are a categorical's codes
-    (no copy, no hashing); anything else is factorized.
+    Non-negative integer ids below 2**31 are their own labels (ids ``None``), and so are a
+    categorical's codes (no copy, no hashing; ids its categories); anything else is factorized.
     """
     if isinstance(ids.dtype, pd.CategoricalDtype):  # text ids as the reader returns them: codes are labels
-        return ids.cat.codes.to_numpy(), max(len(ids.cat.categories), 1)
+        return ids.cat.codes.to_numpy(), max(len(ids.cat.categories), 1), _id_array(ids.cat.categories)
     if _is_plain_integer(ids) and len(ids):
         values = ids.to_numpy()
         lo, hi = int(values.min()), int(values.max())
         if lo >= 0 and hi < 2**31:
-            return values, hi + 1
+            return values, hi + 1, None
     codes, uniques = pd.factorize(ids, sort=False)
-    return codes, len(uniques)
+    return codes, len(uniques), _id_array(uniques)
+
+
+def _id_array(values) -> np.ndarray:
+    """Distinct ids as int64 (integer ids) or str objects (anything else, as text)."""
+    values = pd.Index(values)
+    if pd.api.types.is_integer_dtype(values.dtype):
+        return values.to_numpy(dtype=np.int64)
+    kind = pd.api.types.infer_dtype(values, skipna=False)
+    if kind == "integer":
+        return values.to_numpy(dtype=np.int64)
+    if kind == "string":  # already text: no copy of the strings
+        return values.to_numpy(dtype=object)
+    return np.array([str(v) for v in values], dtype=object)
 
 
 #: Rows per block of the duplicate-bidder check on logs written auction by auction.
@@ -382,7 +395,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     del narrow
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
-    bidder, n_bidder_labels = _bidder_labels(bids["bidder_id"])
+    bidder, n_bidder_labels, bidder_ids = _bidder_labels(bids["bidder_id"])
     _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous)
     n_excluded_bids = int(np.count_nonzero(n_bidders < 2)) if n_excluded else 0
     if n_excluded_bids:
@@ -402,6 +415,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         n_excluded_auctions=n_excluded,
         n_excluded_bids=n_excluded_bids,
         has_quality=has_quality,
+        bidder_ids=bidder_ids,
     )
 
 
@@ -534,29 +548,6 @@ def sorted_with_order(bids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return order, sorted_bids
 
 
-@dataclass
-class _Accumulator:
-    """Running estimate and per-cluster influence sums of one (arm, metric)."""
-
-    estimate: float
-    cluster_sums: np.ndarray | None = None  # set by the first add
-
-    def add(self, estimate: float, cluster_sums: np.ndarray) -> None:
-        self.estimate += estimate
-        if self.cluster_sums is None:
-            self.cluster_sums = cluster_sums
-        else:
-            self.cluster_sums += cluster_sums
-
-
-def _variance(cluster_sums: np.ndarray | None) -> float:
-    """Cluster-robust variance ``G / (G - 1) sum_c S_c^2`` from the clusters' influence sums."""
-    if cluster_sums is None or cluster_sums.size < 2:
-        return np.nan
-    g = cluster_sums.size
-    return float(g / (g - 1) * np.dot(cluster_sums, cluster_sums))
-
-
 #: Bids per block of the fused weight / influence pass (see :mod:`._lstatistic`).
 _BLOCK = BLOCK
 
@@ -591,39 +582,6 @@ def _endpoint_gaps(sorted_bids: np.ndarray) -> tuple[float, float]:
     """
     k = min(_ENDPOINT_SPACINGS, sorted_bids.size - 1)
     return (float(sorted_bids[-1] - sorted_bids[-1 - k]) / k, float(sorted_bids[k] - sorted_bids[0]) / k)
-
-
-def _bidder_codes(bidder: np.ndarray) -> tuple[np.ndarray | None, int]:
-    """The number of distinct bidders and, when some bidder bids more than once, codes 0..B-1.
-
-    Small non-negative integer labels (what :func:`prepare_bids` leaves for integer ids) are
-    counted with one ``bincount``; anything else is factorized. Codes are ``None`` when every
-    bid has its own bidder (nobody repeats).
-    """
-    n = bidder.size
-    if bidder.dtype.kind in "iu" and n:
-        lo, hi = int(bidder.min()), int(bidder.max())
-        if lo >= 0 and hi < 4 * n + 1024:
-            present = np.bincount(bidder, minlength=hi + 1) > 0
-            distinct = int(np.count_nonzero(present))
-            if distinct == n:
-                return None, n
-            rank = np.cumsum(present, dtype=np.int64 if distinct >= 2**31 else np.int32) - 1
-            return rank[bidder], distinct
-    codes, uniques = pd.factorize(bidder, sort=False)
-    return (None if len(uniques) == n else codes), len(uniques)
-
-
-def _resolve_cluster(cluster: str, data: PreparedBids) -> tuple[str, np.ndarray]:
-    """The cluster unit actually used and each bid's cluster code (``'auto'`` resolved)."""
-    if cluster == "auction":
-        return "auction", data.auction
-    codes, _ = _bidder_codes(data.bidder)
-    if codes is None:  # no bidder bids twice: bidder clusters are single bids
-        if cluster == "auto":
-            return "auction", data.auction
-        return "bidder", np.arange(data.bid.size, dtype=np.intp)
-    return "bidder", codes
 
 
 def estimate_arms(
@@ -760,199 +718,12 @@ def estimate_arms(
     if experiment.payment_rule not in PAYMENT_RULES:
         raise InputError(f"experiment {experiment.id!r}: unknown payment_rule {experiment.payment_rule!r} "
                          f"(supported: {', '.join(PAYMENT_RULES)})")
+    from .pieces import _stratum_pieces, combine_pieces
+
     data = bids if isinstance(bids, PreparedBids) else prepare_bids(bids, experiment, source=source)
-    return _estimate(data, experiment, confidence_level=float(confidence_level), cluster=cluster, source=source)
-
-
-def _warn(message: str) -> None:
-    warnings.warn(message, EstimatorWarning, stacklevel=4)
-
-
-def _estimate(data: PreparedBids, experiment: Experiment, *, confidence_level: float, cluster: str,
-              source: str = "bids") -> pd.DataFrame:
-    arms = experiment.arms
-    k_arms = len(arms)
-    cluster, clusters = _resolve_cluster(cluster, data)
-    n_clusters = int(clusters.max()) + 1
-    shares = np.array(experiment.shares)
-
-    # Work in a power-of-two unit when the bids are huge or tiny: multiplying by a power of two
-    # is exact, every result is homogeneous in the bids, so the numbers scale back exactly and
-    # no square of an influence sum overflows (or underflows) on the way.
-    top_bid = float(data.bid.max())
-    exponent = 0
-    floor_value = float(experiment.floor or 0.0)  # per click, in (effective) bid units; 0: no floor
-    if top_bid > 0 and not 2.0**-_UNIT_EXPONENT <= top_bid <= 2.0**_UNIT_EXPONENT:
-        exponent = math.frexp(top_bid)[1]
-        data = dataclasses.replace(data, bid=np.ldexp(data.bid, -exponent))
-        floor_value = math.ldexp(floor_value, -exponent)
-    rule = experiment.payment_rule
-
-    # Auctions per stratum (number of bidders).
-    first_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
-    first_of_auction[data.auction] = data.n_bidders
-    strata, strata_auctions = np.unique(first_of_auction, return_counts=True)
-    total_auctions = int(strata_auctions.sum())
-
-    revenue = [_Accumulator(0.0) for _ in range(k_arms + 1)]  # last: the mixture
-    welfare = [0.0] * k_arms  # welfare has no interval (see the docstring): estimates only
-    welfare_identified = True
-    few: list[tuple[int, int]] = []
-    degenerate: list[int] = []
-
-    influence = None  # one buffer of the largest stratum's length, shared by every metric
-    for n, a_n in zip(strata.tolist(), strata_auctions.tolist()):
-        pi = a_n / total_auctions
-        sel = np.flatnonzero(data.n_bidders == n) if strata.size > 1 else None
-        b_raw = data.bid if sel is None else data.bid[sel]
-        order, sorted_bids = sorted_with_order(b_raw)  # the one sort shared by every arm and metric
-        big_n = sorted_bids.size
-        if big_n < MIN_STRATUM_BIDS:
-            few.append((n, big_n))
-        floor = None
-        n_below = 0
-        if floor_value > 0:
-            # The floor's quantile q* is estimated by the share of sub-floor bids (strict: a bid equal
-            # to the floor is eligible); sub-floor bids then count as the floor (the order is kept).
-            n_below = int(np.searchsorted(sorted_bids, floor_value, side="left"))
-            if n_below < big_n:
-                floor = Floor(floor_value, n_below / big_n)
-            np.maximum(sorted_bids, floor_value, out=sorted_bids)
-        if sorted_bids[0] == sorted_bids[-1]:
-            degenerate.append(n)
-            what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
-            _warn(f"{source}: stratum of {n} bidders: all {big_n} {what} "
-                  f"{float(np.ldexp(sorted_bids[0], exponent))!r}; equal bids are no equilibrium of continuous "
-                  "values, so revenue, welfare and lift are NaN (status 'degenerate')")
-            del order, sorted_bids, b_raw, sel
-            continue
-        cl = (clusters if sel is None else clusters[sel])[order]
-        del order, b_raw, sel
-        cl = cl.astype(np.intp, copy=False)  # what bincount works in (after ``order`` is freed)
-        if influence is None or influence.size < big_n:
-            influence = np.empty(big_n)
-        infl = influence[:big_n]
-        rules: list[AllocationRule] = [allocation_rule(a.weights_for(n), n) for a in arms]
-        mix = mixture_rule(rules, shares)
-        # Revenue and welfare of every arm (the mixture's revenue follows by linearity below).
-        options = {"payment_rule": rule, "floor": floor}
-        weights = ([revenue_weights(r, mix, big_n, **options) for r in rules]
-                   + [welfare_weights(r, mix, big_n, **options) for r in rules])
-        identified = [k < k_arms or bool(np.isfinite(ww.top) and np.isfinite(ww.bottom)) for k, ww in enumerate(weights)]
-        table = WeightTable([ww for ww, ok in zip(weights, identified) if ok], big_n)
-        column = np.cumsum(identified) - 1  # metric k's row in the table
-        for k, ww in enumerate(weights):
-            if k >= k_arms:  # welfare: endpoints of the bid distribution, not the extreme bids
-                if not identified[k]:
-                    welfare_identified = False
-                    welfare[k - k_arms] = np.nan
-                    continue
-                top_gap, bottom_gap = _endpoint_gaps(sorted_bids)
-                est = _l_statistic(table, int(column[k]), n, sorted_bids, None)
-                est += n * ww.top * (float(sorted_bids[-1]) + top_gap) + n * ww.floor_term
-                if ww.bottom:  # 0 with a floor (its term replaces the bottom bid's)
-                    est -= n * ww.bottom * (float(sorted_bids[0]) - bottom_gap)
-                welfare[k - k_arms] += pi * est
-                continue
-            boundary = n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0]) + n * ww.floor_term
-            est = _l_statistic(table, int(column[k]), n, sorted_bids, infl) + boundary
-            if floor is not None:
-                # q* is the share of sub-floor bids: each bid's influence gains slope * (1{b < r} - q*)
-                # (the sub-floor bids are the first n_below sorted ones).
-                slope = n * ww.floor_slope
-                infl[:n_below] += slope * (1.0 - floor.quantile)
-                infl[n_below:] -= slope * floor.quantile
-            infl *= pi / big_n
-            revenue[k].add(pi * est, np.bincount(cl, weights=infl, minlength=n_clusters))
-        del sorted_bids, cl, table
-    del influence
-    if degenerate:
-        for acc in revenue:
-            acc.estimate, acc.cluster_sums = np.nan, None
-        welfare = [np.nan] * k_arms
-    else:
-        # The estimator is linear in the target rule and the mixture's rule is the share-weighted
-        # sum of the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
-        revenue[-1].estimate = float(sum(s * revenue[k].estimate for k, s in enumerate(shares)))
-        revenue[-1].cluster_sums = sum(s * revenue[k].cluster_sums for k, s in enumerate(shares))
-
-    if few:
-        listed = ", ".join(f"{n} bidders: {m} bids" for n, m in few)
-        _warn(f"{source}: strata with fewer than {MIN_STRATUM_BIDS} bids ({listed}): their confidence intervals "
-              "under-cover (status 'few_bids'); pool more auctions before reading them")
-    if any(np.isfinite(w) for w in welfare):
-        _warn("welfare_per_auction is published without an interval: the spread of the highest bid, which "
-              "welfare weighs with a point mass, makes normal intervals under-cover (status 'no_interval')")
-    if not welfare_identified:
-        _warn("welfare is not identified: the mixture's top two positions weigh the same "
-              "(or its bottom positions do), so values at that end cannot be recovered from bids")
-
-    realized = realized_averages(data, experiment, floor=floor_value)
-
-    z = float(stats.norm.ppf(0.5 + confidence_level / 2))
-    stratum_flags = (["few_bids"] if few else []) + (["degenerate"] if degenerate else [])
-    rows: list[tuple] = []
-
-    def emit(arm: str, metric: str, est: float, se: float, n_auc: int, n_b: int, *, counterfactual: bool = True,
-             flags: tuple[str, ...] = ()) -> None:
-        status = (list(stratum_flags) if counterfactual else []) + list(flags)
-        if np.isfinite(est) and not np.isfinite(se):
-            status.append("no_interval")
-        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok"))
-
-    def se_of(acc: _Accumulator) -> float:
-        return float(np.sqrt(_variance(acc.cluster_sums))) if np.isfinite(acc.estimate) else np.nan
-
-    control = experiment.arm_names.index(experiment.control_arm)
-    total_bids = int(data.bid.size)
-    t_c = revenue[control].estimate
-    for k, a in enumerate(arms):
-        emit(a.name, "revenue_per_auction", revenue[k].estimate, se_of(revenue[k]), total_auctions, total_bids)
-        emit(a.name, "welfare_per_auction", welfare[k], np.nan, total_auctions, total_bids,
-             flags=() if welfare_identified or degenerate else ("not_identified",))
-        emit(a.name, "realized_revenue_per_auction", float(realized.mean[k]), float(realized.std_error[k]),
-             int(realized.auctions[k]), int(realized.bids[k]), counterfactual=False,
-             flags=() if realized.auctions[k] else ("no_auctions",))
-        if k != control:
-            t_a = revenue[k].estimate
-            lift, lift_se = np.nan, np.nan
-            if np.isfinite(t_a) and np.isfinite(t_c) and t_c > 0:
-                lift = t_a / t_c - 1.0
-                cs = (revenue[k].cluster_sums - (t_a / t_c) * revenue[control].cluster_sums) / t_c
-                lift_se = float(np.sqrt(_variance(cs)))
-            emit(a.name, "revenue_lift_vs_control", lift, lift_se, total_auctions, total_bids)
-    emit(MIXTURE_ARM, "revenue_per_auction", revenue[-1].estimate, se_of(revenue[-1]), total_auctions, total_bids)
-    emit(MIXTURE_ARM, "realized_revenue_per_auction", realized.mixture_mean, realized.mixture_std_error,
-         total_auctions, total_bids, counterfactual=False)
-
-    out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
-    out["n_auctions"] = out["n_auctions"].astype("int64")
-    out["n_bids"] = out["n_bids"].astype("int64")
-    if exponent:
-        in_bid_units = (out["metric"] != "revenue_lift_vs_control").to_numpy()
-        cols = ["estimate", "std_error", "ci_low", "ci_high"]
-        unit = out.loc[in_bid_units, cols].to_numpy()
-        with np.errstate(over="ignore"):
-            scaled = np.ldexp(unit, exponent)
-        if np.any(np.isfinite(unit) & ~np.isfinite(scaled)):
-            raise InputError(f"{source}: bids up to {top_bid!r} give revenue or welfare per auction beyond the largest "
-                             "double (~1.8e308); express the bids in a larger unit")
-        out.loc[in_bid_units, cols] = scaled
-    out.attrs.update(
-        experiment_id=experiment.id,
-        confidence_level=confidence_level,
-        cluster=cluster,
-        n_auctions=total_auctions,
-        n_bids=total_bids,
-        n_excluded_auctions=data.n_excluded_auctions,
-        strata={int(n): int(c) for n, c in zip(strata, strata_auctions)},
-        method_version=METHOD_VERSION,
-        welfare_identified=welfare_identified,
-        payment_rule=rule,
-        floor=float(experiment.floor or 0.0),
-        quality=bool(data.has_quality),
-    )
-    return out
+    pieces = _stratum_pieces(data, experiment, shard=0, day=None, cluster=cluster, source=source)
+    return combine_pieces(pieces, experiment, confidence_level=float(confidence_level), cluster=cluster,
+                          n_excluded_auctions=data.n_excluded_auctions, source=source)
 
 
 def first_arm_of(data: PreparedBids) -> np.ndarray:
