@@ -263,15 +263,19 @@ def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.dat
 
 def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPiece]:
     """Pieces from rows of the results tables (:func:`_stored_frames`' inverse)."""
+    if all(frames.get(table) is None for table in PIECE_TABLES.values()):
+        return []
+    empty = pieces_to_frames([])
     back = {}
     for name, table in PIECE_TABLES.items():
         frame = frames.get(table)
-        if frame is None:
+        if frame is None:  # no rows (e.g. no bidder sums: every piece clustered by auction)
+            back[name] = empty[name]
             continue
         frame = frame.drop(columns=["experiment_id", "run_id", "computed_at"], errors="ignore").rename(columns={"ds": "day"})
         frame["day"] = [parse_day(d).isoformat() for d in frame["day"]]
         back[name] = frame
-    return pieces_from_frames(back) if back else []
+    return pieces_from_frames(back)
 
 
 def estimate_partition(
@@ -325,7 +329,7 @@ def estimate_partition(
     day_table = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
     if day_table.attrs.get("cluster") == "auction":  # bidder sums not used: not stored either
-        pieces = [replace(p, bidder_ids=None, bidder_sums=None) for p in pieces]
+        pieces = [replace(p, bidder_ids=None, bidder_sums=None, _bidder_codes=None, _bidder_space=None) for p in pieces]
     frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
     for table, frame in frames.items():
         write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
