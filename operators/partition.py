@@ -397,7 +397,14 @@ def write_partition(
     # optional: absent when every day so far is left out / when the validate step stopped early
     tables["arm_estimates_to_date"] = (pq.read_table(staged.estimates_to_date) if staged.estimates_to_date.exists()
                                        else None)
-    tables["bid_quantiles"] = pq.read_table(staged.bid_quantiles) if staged.bid_quantiles.exists() else None
+    tables["bid_quantiles"] = None
+    if staged.bid_quantiles.exists():  # staged by 'validate'; stamped with the estimate's provenance
+        quantiles, day = pq.read_table(staged.bid_quantiles), tables["arm_estimates"]
+        for name in ("run_id", "computed_at"):
+            value = day.column(name)[0] if day.num_rows else None
+            quantiles = quantiles.append_column(name, pa.array([value.as_py() if value is not None else None] * quantiles.num_rows,
+                                                               type=day.schema.field(name).type))
+        tables["bid_quantiles"] = quantiles
     counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables)
     if cleanup:
         shutil.rmtree(staged.folder, ignore_errors=True)
