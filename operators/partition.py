@@ -347,8 +347,14 @@ def estimate_partition(
                "days_used": window.days_used, "days_left_out": window.days_left_out}
     tables = {"day": day_table}
     if to_date_pieces:
+        to_date_cluster = cluster
+        if cluster == "bidder" and any(p.bidder_sums is None for p in to_date_pieces):
+            # a day of the window was estimated clustered by auction (no bidder sums stored):
+            # the days can only be combined by auction; the rows say so in their `cluster` column
+            log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
+            to_date_cluster = "auction"
         tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
-                                           cluster=cluster, source=f"{experiment.id} to {ds}")
+                                           cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
     for span, table in tables.items():
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)

@@ -70,6 +70,9 @@ def max_bids_per_shard(value: object = None, *, what: str = "max_bids_per_shard"
     return number
 
 
+_max_bids_setting = max_bids_per_shard  # the keyword argument below shadows the name
+
+
 def shard_folders(folder: str | Path) -> list[tuple[int, Path]]:
     """``(shard, folder)`` of every ``shard=K`` sub-folder of ``folder``, by shard."""
     found = []
@@ -166,8 +169,9 @@ def pieces_by_shard(
     """
     pieces: list[StratumPiece] = []
     excluded = 0
+    shards = list(shards)
     for k, path in shards:
-        where = f"{source or path} (shard {k})" if source else str(path)
+        where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS])
         prepared = prepare_bids(bids, experiment, source=where)
         del bids  # only the validated arrays from here on: one shard bounds the memory
@@ -208,7 +212,7 @@ def estimate_bid_log(
     """
     from counterbid.estimators.pieces import combine_pieces
 
-    shards = n_shards(bid_log_rows(path), max_bids_per_shard(max_bids_per_shard))
+    shards = n_shards(bid_log_rows(path), _max_bids_setting(max_bids_per_shard))
     with staged_bid_log_shards(path, shards) as shard_list:
         found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
     result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
