@@ -6,6 +6,7 @@ import argparse
 import json
 import sys
 import warnings
+from pathlib import Path
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -22,6 +23,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
+    """The spec's experiment to estimate; ``bids`` is a frame or the log's distinct experiment ids (or None)."""
     from counterbid.estimators import load_experiments
     from counterbid.estimators.errors import InputError
 
@@ -32,8 +34,10 @@ def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
         return experiments[experiment_id]
     if len(experiments) == 1:
         return next(iter(experiments.values()))
-    if "experiment_id" in bids.columns:
-        present = [e for e in _distinct_text(bids["experiment_id"]) if e in experiments]
+    ids = (_distinct_text(bids["experiment_id"]) if "experiment_id" in bids.columns else None) \
+        if hasattr(bids, "columns") else bids
+    if ids is not None:
+        present = [e for e in ids if e in experiments]
         if len(present) == 1:
             return experiments[present[0]]
     raise InputError(f"{spec_path}: holds {len(experiments)} experiments ({', '.join(experiments)}); pass --experiment-id")
@@ -47,13 +51,14 @@ def _distinct_text(col) -> list[str]:
 
 def run(args: argparse.Namespace) -> int:
     from counterbid.estimators import EstimatorWarning
-    from counterbid.readers.bid_log import read_bids
-    from counterbid.readers.shards import estimate_bid_log, max_bids_per_shard
+    from counterbid.estimators.errors import InputError
+    from counterbid.readers.shards import distinct_experiment_ids, estimate_bid_log, max_bids_per_shard
 
     max_bids = max_bids_per_shard(args.max_bids_per_shard, what="--max-bids-per-shard")
-    ids = read_bids(args.bids, columns=["experiment_id"])  # one small column: which experiment
-    experiment = _choose_experiment(args.experiment, args.experiment_id, ids)
-    del ids
+    if not Path(args.bids).exists():
+        raise InputError(f"{args.bids}: no such file or folder")
+    # which experiment: the distinct ids only (batch by batch), never the column
+    experiment = _choose_experiment(args.experiment, args.experiment_id, distinct_experiment_ids(args.bids))
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
         # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)

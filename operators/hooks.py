@@ -127,9 +127,12 @@ class ResultsHook(BaseHook):
             con.close()
 
     @contextlib.contextmanager
-    def lake(self) -> Iterator[duckdb.DuckDBPyConnection]:
-        """An in-memory connection for reading Parquet (the bid lake, click log, staged files)."""
-        con = duckdb.connect(":memory:")
+    def lake(self, *, memory_limit: str | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+        """An in-memory connection for reading Parquet (the bid lake, click log, staged files).
+
+        ``memory_limit`` (DuckDB's setting, e.g. ``"256MB"``) makes DuckDB spill to disk beyond it.
+        """
+        con = duckdb.connect(":memory:", config={} if memory_limit is None else {"memory_limit": memory_limit})
         try:
             yield con
         finally:
@@ -318,7 +321,9 @@ class ResultsHook(BaseHook):
         """Write one experiment's bids of one day into ``folder/shard=K/`` by the stable hash of the auction id."""
         params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id,
                   "n_shards": int(n_shards), "folder": str(folder)}
-        with self.lake() as con:
+        from counterbid.readers.shards import SHARD_COPY_MEMORY
+
+        with self.lake(memory_limit=SHARD_COPY_MEMORY) as con:  # spills: the copy's peak does not grow with the day
             try:
                 con.execute(self.sql("lake_stage_partition_shards"), params)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
