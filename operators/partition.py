@@ -179,8 +179,11 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
     the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
     table ``staged_day`` (every shard), with measured position weights filled from staging; the
-    drift check compares the day with the trailing days' bid-quantile summaries stored in the
-    results database. When no error check failed, the day's own summary is staged
+    drift check compares the day with the bid-quantile summaries, stored in the results database,
+    of the trailing days that are in the analysis window (a warm-up day, a drifted day, a burn-in
+    or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
+    with, and a market that stays moved stops being flagged once the old days leave the trailing
+    window). When no error check failed, the day's own summary is staged
     (``bid_quantiles.parquet``) for the write step to store.
     """
     results = schema_gate(hook, experiment=experiment, staged=staged)
@@ -190,6 +193,12 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     cfg = check_config(experiment.checks, source=f"experiment {experiment.id!r} checks")
     first = ds - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
     history = hook.trailing_bid_quantiles(experiment_id=experiment.id, first_day=first, ds=ds)
+    if history is not None:  # compare with the trailing days of the analysis window only
+        history_days = [parse_day(d) for d in history["ds"]]
+        failed = hook.window_failures(experiment_id=experiment.id, ds=ds, checks=list(WINDOW_CHECKS))
+        kept = set(analysis_window(history_days, experiment, failed_checks=failed).used)
+        history = history[[d in kept for d in history_days]]
+        history = None if history.empty else history
     staged.bid_quantiles.unlink(missing_ok=True)
     with hook.staged_relations(day=staged.day_files) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history))

@@ -11,7 +11,7 @@ import pytest
 import scipy.stats as st
 
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import parse_experiments, simulate_experiment
+from counterbid.estimators import expected_revenue_per_auction, parse_experiments, simulate_experiment
 from counterbid.estimators.pieces import combine_pieces, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
@@ -76,11 +76,12 @@ def test_drift_reads_the_stored_summaries_and_the_window_follows_the_spec(lake, 
     exp = _spec(burn_in_days=2, exclude_days=[str(DAYS[3])])
     hook = ResultsHook(database=tmp_path / "r.duckdb")
     runs = [_run_day(hook, lake, exp, tmp_path / "stage", day) for day in DAYS]
-    # drift: no trailing day on the first day; then the stored summaries of every earlier day
-    assert runs[0][0]["drift"].details["note"] == "no trailing days"
-    for k in (1, 2, 3):
-        stratum = runs[k][0]["drift"].details["by_bidders"]["4"]
-        assert stratum["trailing_days"] == k and stratum["trailing_bids"] == k * 6000
+    # drift compares with the stored summaries of the trailing days in the window: days 1-2 are
+    # burn-in (no reference for anyone), so day 3 has none and day 4 has day 3's
+    for k in (0, 1, 2):
+        assert runs[k][0]["drift"].details["note"] == "no trailing days"
+    stratum = runs[3][0]["drift"].details["by_bidders"]["4"]
+    assert stratum["trailing_days"] == 1 and stratum["trailing_bids"] == 6000
     quantiles = hook.fetch_df("bid_quantiles_select_trailing", {"experiment_id": "tiles", "first_day": START, "ds": DAYS[3]})
     assert len(quantiles) == 3 * 257 and set(quantiles["n_bids"]) == {6000}
     # the window: days 1-2 burn-in, day 4 excluded; day 3 alone is combined
@@ -116,9 +117,44 @@ def test_the_default_window_leaves_out_a_day_whose_drift_check_failed(lake, tmp_
     third = to_date[to_date["ds"].dt.date == DAYS[2]]
     assert set(third["days_used"]) == {str(DAYS[1])}
     assert set(third["days_left_out"]) == {f"{DAYS[0]} (warmup),{DAYS[2]} (drift)"}
-    # day 4 is compared with days 1-3, one of them the moved day: the pool differs from day 4 too
-    # (a market that stays moved stops being flagged once the moved days fill the trailing window)
-    assert not runs[3][0]["drift"].passed
+    # day 4 is compared with the window's trailing days only (day 2: day 1 is a warm-up day, day 3 drifted)
+    assert runs[3][0]["drift"].passed and runs[3][0]["drift"].details["by_bidders"]["4"]["trailing_days"] == 1
     last = to_date[to_date["ds"].dt.date == DAYS[3]]
-    assert set(last["days_left_out"]) == {f"{DAYS[0]} (warmup),{DAYS[2]}..{DAYS[3]} (drift)"}
+    assert set(last["days_used"]) == {f"{DAYS[1]},{DAYS[3]}"}
+    assert set(last["days_left_out"]) == {f"{DAYS[0]} (warmup),{DAYS[2]} (drift)"}
     assert not any((tmp_path / "stage").rglob("*.parquet"))  # every folder cleaned after its write
+
+
+@pytest.mark.slow
+def test_the_default_window_leaves_warm_up_days_out_and_lands_on_the_truth(tmp_path):
+    """Six days, the first two with bidders not yet adapted (they bid as if only the control arm
+    ran: ``write_bid_lake(warmup_days=2)``). Truth: each arm's revenue per auction in its own
+    equilibrium (Myerson 1981, Lemma 3; ``expected_revenue_per_auction``, quadrature). The default
+    window leaves the two warm-up days out (their warm-up check fails; the drift check of the
+    adapted days compares them with adapted days only) and every arm lands within 3 SE; the same
+    stored pieces combined with the warm-up days included miss by more than 3 SE on the
+    non-control arm (the estimand then mixes in days whose bids answer another mixture)."""
+    values = st.lognorm(0.5, scale=0.8)
+    exp = _spec(checks={"warmup": {"days": 2}})
+    write_bid_lake(tmp_path / "bids", [exp], start=START, days=6, auctions_per_day=8000, n_bidders=4, seed=17,
+                   values=values, warmup_days=2)
+    hook = ResultsHook(database=tmp_path / "r.duckdb")
+    days = [START + dt.timedelta(days=k) for k in range(6)]
+    runs = [_run_day(hook, tmp_path / "bids", exp, tmp_path / "stage", day) for day in days]
+    assert [r["drift"].passed for r, _ in runs] == [True] * 6  # adapted days are compared with adapted days
+    assert runs[2][0]["drift"].details["note"] == "no trailing days"  # the first adapted day has no reference
+    rows = hook.fetch_df("report_cumulative")
+    default = rows[rows["metric"] == "revenue_per_auction"].set_index("arm")
+    assert set(default["days_left_out"]) == {f"{days[0]}..{days[1]} (warmup)"}
+    assert set(default["days_used"]) == {f"{days[2]}..{days[5]}"}
+    stored = hook.stored_piece_frames(experiment_id="tiles", days=days, tables=list(partition.PIECE_TABLES.values()))
+    included = combine_pieces(partition._pieces_of_rows(stored), exp, cluster="auto")
+    included = included[included["metric"] == "revenue_per_auction"].set_index("arm")
+    misses = {}
+    for arm in exp.arms:
+        truth = expected_revenue_per_auction(values, arm.position_weights, 4)
+        for name, table in (("default", default), ("warm-up included", included)):
+            misses[(name, arm.name)] = (table.loc[arm.name, "estimate"] - truth) / table.loc[arm.name, "std_error"]
+    print("to-date revenue per auction minus truth, in SE:", {k: round(v, 2) for k, v in misses.items()})
+    assert all(abs(misses[("default", a.name)]) < 3 for a in exp.arms), misses
+    assert abs(misses[("warm-up included", "bold")]) > 3, misses
