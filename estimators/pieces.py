@@ -190,16 +190,23 @@ class StratumPiece:
         return self.arm_auctions * self.n_bidders
 
     def equals(self, other: StratumPiece) -> bool:
-        """Exact equality of every stored field (NaN equal to NaN; bidder ids by their text)."""
+        """Exact equality of every stored field (NaN equal to NaN; bidders matched by the text of their ids, in any order)."""
         if not isinstance(other, StratumPiece):
             return False
         for f in dataclasses.fields(self):
             if f.name.startswith("_"):
                 continue
             a, b = getattr(self, f.name), getattr(other, f.name)
-            if f.name == "bidder_ids":
-                if (a is None) != (b is None) or (a is not None and not np.array_equal(_as_text(a), _as_text(b))):
+            if f.name in ("bidder_ids", "bidder_sums"):
+                if (a is None) != (b is None):
                     return False
+                if a is not None and f.name == "bidder_sums":  # bidders in any order, matched by id
+                    mine, theirs = _as_text(self.bidder_ids), _as_text(other.bidder_ids)
+                    if mine.size != theirs.size or not np.array_equal(np.sort(mine.astype(str)), np.sort(theirs.astype(str))):
+                        return False
+                    at = pd.Index(theirs).get_indexer(mine)
+                    if not np.array_equal(a, b[at], equal_nan=True):
+                        return False
             elif isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
                 if (a is None) != (b is None) or (a is not None and not np.array_equal(a, b, equal_nan=True)):
                     return False
@@ -887,7 +894,9 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     out = {}
     for name, types in columns.items():
         frame = pd.concat(parts[name], ignore_index=True) if parts[name] else pd.DataFrame(columns=list(types))
-        out[name] = frame[list(types)].astype(types)
+        frame = frame[list(types)].astype(types)
+        frame["day"] = frame["day"].where(frame["day"].notna(), None)
+        out[name] = frame
     return out
 
 
