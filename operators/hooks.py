@@ -127,12 +127,9 @@ class ResultsHook(BaseHook):
             con.close()
 
     @contextlib.contextmanager
-    def lake(self, *, memory_limit: str | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
-        """An in-memory connection for reading Parquet (the bid lake, click log, staged files).
-
-        ``memory_limit`` (DuckDB's setting, e.g. ``"256MB"``) makes DuckDB spill to disk beyond it.
-        """
-        con = duckdb.connect(":memory:", config={} if memory_limit is None else {"memory_limit": memory_limit})
+    def lake(self, *, config: Mapping[str, Any] | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+        """An in-memory connection for reading Parquet (the bid lake, click log, staged files); ``config``: DuckDB settings."""
+        con = duckdb.connect(":memory:", config=dict(config or {}))
         try:
             yield con
         finally:
@@ -304,8 +301,9 @@ class ResultsHook(BaseHook):
         return self._lake_batches("lake_read_range", params, lake_root, batch_rows)
 
     @contextlib.contextmanager
-    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int) -> Iterator[pa.RecordBatchReader]:
-        with self.lake() as con:
+    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int,
+                      config: Mapping[str, Any] | None = None) -> Iterator[pa.RecordBatchReader]:
+        with self.lake(config=config) as con:
             try:
                 yield con.sql(self.sql(name), params=dict(params)).to_arrow_reader(batch_rows)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
@@ -316,18 +314,13 @@ class ResultsHook(BaseHook):
         params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
         return int(self._lake_query("lake_count_partition", params, lake_root).column(0)[0].as_py())
 
-    def stage_lake_shards(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date, n_shards: int,
-                          folder: str | Path) -> None:
-        """Write one experiment's bids of one day into ``folder/shard=K/`` by the stable hash of the auction id."""
-        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id,
-                  "n_shards": int(n_shards), "folder": str(folder)}
-        from counterbid.readers.shards import SHARD_COPY_MEMORY
+    def lake_partition_shard_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date, n_shards: int,
+                                     batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
+        """:meth:`lake_partition_batches` with a trailing ``shard`` column (stable hash of the auction id)."""
+        from counterbid.readers.shards import SHARD_SCAN_CONFIG
 
-        with self.lake(memory_limit=SHARD_COPY_MEMORY) as con:  # spills: the copy's peak does not grow with the day
-            try:
-                con.execute(self.sql("lake_stage_partition_shards"), params)
-            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
-                raise _lake_error(exc, lake_root) from None
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id, "n_shards": int(n_shards)}
+        return self._lake_batches("lake_read_partition_shards", params, lake_root, batch_rows, config=SHARD_SCAN_CONFIG)
 
     def clicks_position_weights(
         self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date

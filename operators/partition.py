@@ -27,12 +27,12 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
 from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
-from counterbid.readers.shards import pieces_by_shard
+from counterbid.readers.shards import pieces_by_shard, write_shards
 
 from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .schema_gate import schema_gate
-from .staging import StagedPartition, replace_folder, stream_parquet, write_json, write_parquet
+from .staging import StagedPartition, replace_folder, write_json, write_parquet
 from .stored_rows import with_stored_columns
 
 __all__ = [
@@ -82,8 +82,9 @@ def stage_partition(
 
     A day with more bids than ``max_bids_per_shard`` (default
     :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
-    is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, written by
-    DuckDB as it scans (``sql/lake_stage_partition_shards.sql``): ``day/shard=K/*.parquet``. Only
+    is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, computed by
+    DuckDB as it scans (``sql/lake_read_partition_shards.sql``) and streamed into
+    ``day/shard=K/part-0.parquet`` (:func:`counterbid.readers.shards.write_shards`; one batch in memory). Only
     the day is staged: earlier days enter through their stored pieces and bid-quantile summaries.
     When an arm's position weights are ``measured``, they are computed here from the click log,
     once per (experiment, day), and staged for the checks and the estimate
@@ -104,12 +105,9 @@ def stage_partition(
         raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
     shards = n_shards(day_rows, max_bids)
 
-    def fill(folder: Path) -> None:
-        if day_rows == 0:  # no rows to partition: one empty shard with the lake's columns, for the gate
-            with hook.lake_partition_batches(lake_root, experiment_id=experiment.id, ds=ds) as batches:
-                stream_parquet(batches, folder / "shard=0" / "part-0.parquet")
-        else:
-            hook.stage_lake_shards(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards, folder=folder)
+    def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
+        with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
+            write_shards(batches, folder, shards)
 
     replace_folder(fill, staged.day)
     measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,

@@ -16,7 +16,7 @@ from counterbid.estimators import CheckResult
 from counterbid.estimators.pieces import shard_of
 from counterbid.operators.check_runner import write_check_results
 from counterbid.operators.hooks import lake_glob
-from counterbid.readers.shards import shard_folders, staged_bid_log_shards
+from counterbid.readers.shards import shard_folders, staged_bid_log_shards, write_shards
 from counterbid.sql import load_sql
 
 from .conftest import START
@@ -40,26 +40,39 @@ def test_lake_shards_are_the_estimators_shard_of(tmp_path, ids):
     pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), lake / "tiles.parquet")
     con = duckdb.connect()
     params = {"lake_glob": lake_glob(tmp_path / "lake"), "ds": START, "experiment_id": "tiles"}
-    assert con.execute(load_sql("lake_count_partition"), params).fetchone()[0] == len(frame)
-    con.execute(load_sql("lake_stage_partition_shards"), params | {"n_shards": 5, "folder": str(tmp_path / "day")})
+    want_rows = shard_of(frame["auction_id"], 5)
+    assert con.execute(load_sql("lake_count_partition"), params).fetchall() == [(len(frame),)]
+    reader = con.sql(load_sql("lake_read_partition_shards"), params=params | {"n_shards": 5}).to_arrow_reader(700)
+    assert write_shards(reader, tmp_path / "day", 5) == [sum(want_rows == k) for k in range(5)]  # several batches
     members = _shard_members(tmp_path / "day")
+    rows = pq.read_table(next((tmp_path / "day").glob("shard=0/*.parquet")))
+    assert "shard" not in rows.column_names and rows.column_names[:2] == ["experiment_id", "auction_id"]
     assert sorted(members) == [0, 1, 2, 3, 4] and sum(len(v) for v in members.values()) == len(frame)
     want = dict(zip(ids.tolist(), shard_of(pd.Series(ids), 5).tolist()))
     for k, got in members.items():  # every auction whole, in the shard shard_of names
         assert {want[a] for a in got} == {k}
-    # the same rule on the command line's copy of a bid log (sql/bid_log_stage_shards.sql)
+    # the same rule on the command line's copy of a bid log (sql/bid_log_read_shards.sql)
     with staged_bid_log_shards(lake / "tiles.parquet", 5) as shards:
         again = {k: sorted(pads.dataset(str(p), format="parquet").to_table(columns=["auction_id"]).column(0).to_pylist())
                  for k, p in shards}
     assert again == {k: sorted(v) for k, v in members.items()}
 
 
-def test_shard_copy_reads_only_the_day(small_lake):
+def test_an_empty_stream_writes_one_empty_shard_with_the_columns(tmp_path):
+    con = duckdb.connect()
+    reader = con.sql("select 1 as auction_id, 2.0 as bid, 0 as shard where false").to_arrow_reader(10)
+    assert write_shards(reader, tmp_path / "day", 3) == [0, 0, 0]
+    table = pq.read_table(tmp_path / "day" / "shard=0" / "part-0.parquet")
+    assert table.num_rows == 0 and table.column_names == ["auction_id", "bid"]
+
+
+def test_shard_read_reads_only_the_day(small_lake):
     con = duckdb.connect()
     day = START + dt.timedelta(days=1)
     params = {"lake_glob": lake_glob(small_lake / "bids"), "ds": day, "experiment_id": "tiles"}
-    plan = "\n".join(r[1] for r in con.execute("explain analyze " + load_sql("lake_count_partition"), params).fetchall())
-    assert "Scanning Files: 2/10" in plan  # 5 days x 2 experiments: that day's 2 files only
+    for name, extra in (("lake_count_partition", {}), ("lake_read_partition_shards", {"n_shards": 3})):
+        plan = "\n".join(r[1] for r in con.execute("explain analyze " + load_sql(name), params | extra).fetchall())
+        assert "Scanning Files: 2/10" in plan, name  # 5 days x 2 experiments: that day's 2 files only
 
 
 def _summary(ds, n_bidders=4, n_bids=1000, shift=0.0):
