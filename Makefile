@@ -4,7 +4,7 @@ VENV   ?= .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed-stamp
 
-.PHONY: test demo bench clean
+.PHONY: test demo bench bench-strata clean
 
 # Create .venv if missing and install the package (editable) with its test extras.
 $(STAMP): pyproject.toml
@@ -29,6 +29,9 @@ demo: $(STAMP)
 # Benchmark against the physical floor (1M, 5M, 10M bids; several minutes). Not part of `make test`.
 bench: $(STAMP)
 	$(PY) tests/benchmarks/bench_estimator.py --out bench_results.md
+
+bench-strata: $(STAMP)
+	$(PY) tests/benchmarks/bench_strata.py --out bench_strata_results.md
 
 clean:
 	rm -rf demo_output .pytest_cache

@@ -6,6 +6,7 @@ import argparse
 import json
 import sys
 import warnings
+from pathlib import Path
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -15,10 +16,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     p.add_argument("--cluster", choices=("auto", "auction", "bidder"), default="auto",
                    help="unit of the robust standard errors (default auto: bidder when bidder ids repeat across auctions)")
+    p.add_argument("--max-bids-per-shard", type=int, metavar="N", default=None,
+                   help="estimate a log with more bids in ceil(bids / N) shards by a stable hash of auction_id, one at a "
+                        "time (default: $COUNTERBID_MAX_BIDS_PER_SHARD, else 4000000); memory follows the shard")
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 
 def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
+    """The spec's experiment to estimate; ``bids`` is a frame or the log's distinct experiment ids (or None)."""
     from counterbid.estimators import load_experiments
     from counterbid.estimators.errors import InputError
 
@@ -29,8 +34,10 @@ def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
         return experiments[experiment_id]
     if len(experiments) == 1:
         return next(iter(experiments.values()))
-    if "experiment_id" in bids.columns:
-        present = [e for e in _distinct_text(bids["experiment_id"]) if e in experiments]
+    ids = (_distinct_text(bids["experiment_id"]) if "experiment_id" in bids.columns else None) \
+        if hasattr(bids, "columns") else bids
+    if ids is not None:
+        present = [e for e in ids if e in experiments]
         if len(present) == 1:
             return experiments[present[0]]
     raise InputError(f"{spec_path}: holds {len(experiments)} experiments ({', '.join(experiments)}); pass --experiment-id")
@@ -43,16 +50,20 @@ def _distinct_text(col) -> list[str]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from counterbid.readers.bid_log import read_bids
-    from counterbid.estimators import BID_COLUMNS, EstimatorWarning, estimate_arms, prepare_bids
+    from counterbid.estimators import EstimatorWarning
+    from counterbid.estimators.errors import InputError
+    from counterbid.readers.shards import distinct_experiment_ids, estimate_bid_log, max_bids_per_shard
 
-    bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS])
-    experiment = _choose_experiment(args.experiment, args.experiment_id, bids)
+    max_bids = max_bids_per_shard(args.max_bids_per_shard, what="--max-bids-per-shard")
+    if not Path(args.bids).exists():
+        raise InputError(f"{args.bids}: no such file or folder")
+    # which experiment: the distinct ids only (batch by batch), never the column
+    experiment = _choose_experiment(args.experiment, args.experiment_id, distinct_experiment_ids(args.bids))
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
-        prepared = prepare_bids(bids, experiment, source=str(args.bids))
-        del bids  # the validated arrays are all that is needed from here on
-        result = estimate_arms(prepared, experiment, confidence_level=args.level, cluster=args.cluster, source=str(args.bids))
+        # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)
+        result = estimate_bid_log(args.bids, experiment, max_bids_per_shard=max_bids, confidence_level=args.level,
+                                  cluster=args.cluster)
     for w in caught:
         if issubclass(w.category, EstimatorWarning):
             print(f"counterbid: warning: {w.message}", file=sys.stderr)
@@ -65,6 +76,7 @@ def run(args: argparse.Namespace) -> int:
             "confidence_level": args.level,
             "cluster": result.attrs["cluster"],  # the clustering used
             "n_excluded_auctions": excluded,
+            "shards": result.attrs["shards"],
             "method_version": result.attrs["method_version"],
             "payment_rule": result.attrs["payment_rule"],
             "floor": result.attrs["floor"],
@@ -82,7 +94,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"experiment {experiment.id}: payment rule {result.attrs['payment_rule']}, "
               f"{'floor ' + format(floor, 'g') if floor else 'no floor'}"
               f"{', ranked by bid x quality' if result.attrs['quality'] else ''}; "
-              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids, "
+              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids"
+              f"{' in ' + str(result.attrs['shards']) + ' shards' if result.attrs['shards'] > 1 else ''}, "
               f"{format_level(result.attrs['confidence_level'])} intervals clustered by {cluster} "
               f"(they speak for {POPULATION[cluster]})")
         shown = result.copy()

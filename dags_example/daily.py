@@ -13,7 +13,10 @@ staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weig
 ``COUNTERBID_LEVEL`` confidence level of the intervals (default 0.95), ``COUNTERBID_CLUSTER``
 clustering of the standard errors (``auction``, ``bidder`` or, where the estimator offers it,
 ``auto``; the default), ``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries,
-``COUNTERBID_CATCHUP`` (``false`` leaves past days to ``airflow backfill create``). The level and
+``COUNTERBID_CATCHUP`` (``false`` leaves past days to ``airflow backfill create``),
+``COUNTERBID_MAX_BIDS_PER_SHARD`` (a day with more bids is estimated in ``ceil(bids / max)``
+shards; default 4M), ``COUNTERBID_MAX_ACTIVE_RUNS`` (default 1: each day's experiment-to-date rows
+combine the stored pieces of the days before it, so days are written in order). The level and
 clustering each stored row used are written beside it.
 """
 
@@ -55,7 +58,8 @@ ALERTS = CheckAlertNotifier(
     schedule="@daily",
     start_date=START,
     catchup=os.environ.get("COUNTERBID_CATCHUP", "true").lower() in ("1", "true", "yes"),
-    max_active_runs=4,
+    # Each day's to-date rows combine the days already written: one day at a time by default.
+    max_active_runs=int(os.environ.get("COUNTERBID_MAX_ACTIVE_RUNS", "1")),
     default_args={
         "retries": int(os.environ.get("COUNTERBID_RETRIES", "2")),
         "retry_delay": dt.timedelta(minutes=5),
@@ -69,6 +73,7 @@ ALERTS = CheckAlertNotifier(
         "clicks_root": os.environ.get("COUNTERBID_CLICKS", ""),
         "confidence_level": os.environ.get("COUNTERBID_LEVEL", str(DEFAULT_CONFIDENCE_LEVEL)),
         "cluster": os.environ.get("COUNTERBID_CLUSTER", DEFAULT_CLUSTER),
+        "max_bids_per_shard": os.environ.get("COUNTERBID_MAX_BIDS_PER_SHARD", ""),
     },
     tags=["counterbid"],
     doc_md=__doc__,
@@ -88,7 +93,8 @@ def counterbid_daily():
         }
         # measured position weights come from the click log here, once per (experiment, day)
         load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}",
-                                     clicks_root="{{ params.clicks_root }}", **paths)
+                                     clicks_root="{{ params.clicks_root }}",
+                                     max_bids_per_shard="{{ params.max_bids_per_shard }}", **paths)
         # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
         estimate = EstimateArmsOperator(task_id="estimate", confidence_level="{{ params.confidence_level }}",

@@ -30,8 +30,10 @@ __all__ = [
     "CheckResult",
     "DEFAULT_CHECKS",
     "InferredValues",
+    "BID_QUANTILES",
     "SEVERITIES",
     "STATISTICAL_CHECKS",
+    "bid_quantile_summary",
     "check_config",
     "drift_check",
     "equilibrium_checks",
@@ -672,9 +674,87 @@ def _shading_result(fits: list[InferredValues], skipped: dict[int, int], cfg: Ma
                    bounds=[cfg["min_ratio"], cfg["max_ratio"]], skipped_strata=skipped)
 
 
+#: Quantiles per (day, number of bidders) kept for the drift check: probabilities k / 256.
+BID_QUANTILES = 257
+#: Columns of a bid-quantile summary (:func:`bid_quantile_summary`).
+_SUMMARY_COLUMNS = ("n_bidders", "n_bids", "quantile_index", "probability", "bid")
+
+
+def bid_quantile_summary(bids, experiment: Experiment, *, n_quantiles: int = BID_QUANTILES,
+                         source: str = "bids") -> pd.DataFrame:
+    """A compact summary of one day's bids: ``n_quantiles`` quantiles per number of bidders.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+        One day's bids (effective bids ``bid x quality`` when the log has quality factors;
+        single-bidder auctions left out, as in every check).
+    experiment : Experiment
+    n_quantiles : int, optional
+        Quantiles at probabilities ``k / (n_quantiles - 1)``, ``k = 0 .. n_quantiles - 1``
+        (minimum and maximum included); default :data:`BID_QUANTILES`.
+    source : str
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (``n_bidders``, ``quantile_index``) with ``n_bids`` (the stratum's bids),
+        ``probability`` and ``bid`` (numpy's default linear interpolation between order
+        statistics, Hyndman & Fan's type 7).
+
+    Notes
+    -----
+    The drift check compares a day's bids with the trailing days' summaries
+    (:func:`drift_check`), so the pipeline keeps this per day instead of the bids themselves.
+
+    References
+    ----------
+    .. [1] Hyndman, R. J. and Fan, Y. (1996). Sample quantiles in statistical packages.
+       The American Statistician 50(4), 361-365.
+    """
+    if isinstance(n_quantiles, bool) or not isinstance(n_quantiles, (int, np.integer)) or n_quantiles < 2:
+        raise InputError(f"`n_quantiles` must be an integer >= 2; got {n_quantiles!r}")
+    data = _prepared(bids, experiment, source)
+    probs = np.linspace(0.0, 1.0, int(n_quantiles))
+    frames = []
+    for n, b in _strata_bids(data).items():
+        frames.append(pd.DataFrame({
+            "n_bidders": np.full(probs.size, n, dtype=np.int64), "n_bids": np.full(probs.size, b.size, dtype=np.int64),
+            "quantile_index": np.arange(probs.size, dtype=np.int64), "probability": probs,
+            "bid": np.quantile(b, probs)}))
+    if not frames:
+        return pd.DataFrame({c: pd.Series(dtype="int64" if c in ("n_bidders", "n_bids", "quantile_index") else "float64")
+                             for c in _SUMMARY_COLUMNS})
+    return pd.concat(frames, ignore_index=True)
+
+
+def _summary_strata(summary: pd.DataFrame, source: str) -> dict[int, list[tuple[int, np.ndarray, np.ndarray]]]:
+    """(bids, quantile probabilities, quantile bids) per day of each stratum of a summary frame."""
+    missing = [c for c in ("n_bidders", "n_bids", "probability", "bid") if c not in summary.columns]
+    if missing:
+        raise InputError(f"{source}: bid-quantile summary lacks column {missing[0]!r}")
+    keys = ["n_bidders"] + (["ds"] if "ds" in summary.columns else [])
+    out: dict[int, list] = {}
+    for key, rows in summary.groupby(keys, sort=True):
+        n = int(key[0] if isinstance(key, tuple) else key)
+        rows = rows.sort_values("probability")
+        out.setdefault(n, []).append((int(rows["n_bids"].iloc[0]), rows["probability"].to_numpy(float),
+                                      rows["bid"].to_numpy(float)))
+    return out
+
+
+def _pooled_cdf(days: list[tuple[int, np.ndarray, np.ndarray]], x: np.ndarray) -> np.ndarray:
+    """Bid-weighted mixture of the days' distribution functions, each linear between its quantiles."""
+    total = sum(m for m, _, _ in days)
+    out = np.zeros(x.size)
+    for m, probs, q in days:
+        out += (m / total) * np.interp(x, q, probs, left=0.0, right=1.0)
+    return out
+
+
 def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[str, Any] | None = None,
                 source: str = "bids") -> CheckResult:
-    """Two-sample Kolmogorov-Smirnov test of today's bids against the trailing days' bids.
+    """Kolmogorov-Smirnov test of today's bids against the trailing days' bid-quantile summaries.
 
     Parameters
     ----------
@@ -682,7 +762,9 @@ def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[s
         Today's bids.
     experiment : Experiment
     history : pandas.DataFrame or PreparedBids, optional
-        Bids of the trailing days (the caller selects the window, ``drift.trailing_days``).
+        The trailing days (the caller selects the window, ``drift.trailing_days``): either their
+        bid-quantile summaries (:func:`bid_quantile_summary` rows, with a ``ds`` column when they
+        span several days; what the pipeline stores) or their bids, which are summarised first.
         Without it the check passes with ``observed = None``.
     config : mapping, optional
         ``{"drift": {"alpha", "min_bids"}}``.
@@ -699,34 +781,51 @@ def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[s
     -----
     The bid distribution depends on the number of bidders, so each stratum is compared with
     itself. In a settled market the daily bid distribution is stable; a shift flags bidders
-    still adapting (after a launch or a share change) or a change in the market. The test
-    treats bids as independent draws (true of the simulator; real bidders repeat across days,
-    which makes it liberal).
+    still adapting (after a launch or a share change) or a change in the market.
+
+    The trailing days' distribution function is the bid-weighted mixture of each day's
+    summary, linear between its 257 quantiles: within ``1 / 256`` of the pooled empirical
+    distribution function of those days' bids. The distance ``D`` is the largest gap between it
+    and today's empirical distribution function, and its p-value the two-sample Kolmogorov
+    distribution at the effective size ``n m / (n + m)`` (``scipy.stats.kstwo``, as
+    ``scipy.stats.ks_2samp``'s asymptotic method), ``n`` today's bids and ``m`` the trailing
+    days'. The test treats bids as independent draws (true of the simulator; real bidders
+    repeat across days, which makes it liberal).
 
     References
     ----------
     .. [1] Smirnov, N. (1948). Table for estimating the goodness of fit of empirical
-       distributions. Ann. Math. Stat. 19(2). ``scipy.stats.ks_2samp``.
+       distributions. Ann. Math. Stat. 19(2). ``scipy.stats.kstwo``.
     """
     cfg = _config(config, experiment)["drift"]
     if history is None:
         return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
     data = _prepared(bids, experiment, source)
-    try:
-        past = _prepared(history, experiment, f"{source} (trailing days)")
-    except InputError as exc:
-        if "no bids for experiment" in str(exc) or "single bidder" in str(exc):
-            return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
-        raise
-    now_s, past_s = _strata_bids(data), _strata_bids(past)
+    if not (isinstance(history, pd.DataFrame) and "probability" in history.columns):
+        try:
+            past = _prepared(history, experiment, f"{source} (trailing days)")
+        except InputError as exc:
+            if "no bids for experiment" in str(exc) or "single bidder" in str(exc):
+                return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
+            raise
+        history = bid_quantile_summary(past, experiment)
+    if history.empty:
+        return _result("drift", cfg, True, None, cfg["alpha"], note="no trailing days")
+    now_s, past_s = _strata_bids(data), _summary_strata(history, f"{source} (trailing days)")
     tests = {}
     for n, b in now_s.items():
-        h = past_s.get(n)
-        if h is None or b.size < cfg["min_bids"] or h.size < cfg["min_bids"]:
+        days = past_s.get(n)
+        m = 0 if days is None else sum(k for k, _, _ in days)
+        if days is None or b.size < cfg["min_bids"] or m < cfg["min_bids"]:
             continue
-        r = stats.ks_2samp(b, h)
-        tests[n] = {"statistic": float(r.statistic), "pvalue": float(r.pvalue), "bids": int(b.size),
-                    "trailing_bids": int(h.size)}
+        past_cdf = _pooled_cdf(days, b)  # b is sorted
+        above = np.searchsorted(b, b, side="right") / b.size  # today's distribution function at b
+        below = np.searchsorted(b, b, side="left") / b.size  # ... just below b
+        d = float(max(np.max(above - past_cdf), np.max(past_cdf - below), 0.0))
+        effective = b.size * m / (b.size + m)
+        p = float(stats.kstwo.sf(d, max(1, round(effective))))
+        tests[n] = {"statistic": d, "pvalue": p, "bids": int(b.size), "trailing_bids": int(m),
+                    "trailing_days": len(days)}
     if not tests:
         return _result("drift", cfg, True, None, cfg["alpha"], note="no stratum with enough bids on both sides")
     p = min(1.0, min(t["pvalue"] for t in tests.values()) * len(tests))
@@ -746,8 +845,9 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     ds : date-like, optional
         The day; needed for ``warmup`` (skipped when ``None``).
     history : pandas.DataFrame, optional
-        Bids of earlier days for ``drift``; when it has a ``ds`` column and ``ds`` is given, only
-        the ``drift.trailing_days`` days before ``ds`` are used.
+        Earlier days for ``drift``: their bid-quantile summaries (:func:`bid_quantile_summary`
+        rows with a ``ds`` column) or their bids; when it has a ``ds`` column and ``ds`` is given,
+        only the ``drift.trailing_days`` days before ``ds`` are used.
     config : mapping, optional
         Threshold overrides on top of ``experiment.checks``.
     source : str

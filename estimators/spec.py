@@ -13,12 +13,18 @@ A spec file (YAML) holds one or more experiments::
           - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
           - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
         checks: {}                 # optional: thresholds for the data checks
+        burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
+        exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
 
 ``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
 bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` is one number for
 the whole experiment: bids (effective bids ``bid x quality`` when the log has a ``quality``
 column) below it are ineligible and logged with a null position. Floors that differ by arm are
 not modelled, and the spec has no per-arm ``floor`` key (refused as an unknown key).
+
+``burn_in_days`` and ``exclude_days`` shape the analysis window of the experiment-to-date numbers:
+the first ``burn_in_days`` days from ``start`` and every listed day are left out, besides the days
+whose warm-up or drift check failed (the pipeline's default).
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -61,7 +67,8 @@ SHARE_TOLERANCE = 1e-6
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
-EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description"})
+EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
+                             "burn_in_days", "exclude_days"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 
 
@@ -123,6 +130,10 @@ class Experiment:
         estimator models it (``None`` or 0: no floor).
     checks : dict
         Threshold overrides for the data checks, passed through unchanged.
+    burn_in_days : int
+        Days from ``start`` left out of the experiment-to-date numbers (0: none).
+    exclude_days : tuple of datetime.date
+        Days left out of the experiment-to-date numbers, sorted.
     """
 
     id: str
@@ -133,6 +144,8 @@ class Experiment:
     end: _dt.date | None = None
     floor: float | None = None
     checks: Mapping[str, Any] = field(default_factory=dict)
+    burn_in_days: int = 0
+    exclude_days: tuple[_dt.date, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
@@ -284,6 +297,13 @@ def _experiment(raw: Any, where: str) -> Experiment:
     from .checks import check_config  # checks.py imports this module
 
     check_config(checks, source=f"{where} checks")  # unknown check or setting, or a bad value: refused now
+    burn_in = raw.get("burn_in_days", 0)
+    if isinstance(burn_in, bool) or not isinstance(burn_in, int) or burn_in < 0:
+        raise InputError(f"{where}: 'burn_in_days' must be a whole number >= 0; got {burn_in!r}")
+    excluded_raw = raw.get("exclude_days") or []
+    if isinstance(excluded_raw, (str, bytes)) or not isinstance(excluded_raw, Sequence):
+        raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
+    excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -293,6 +313,8 @@ def _experiment(raw: Any, where: str) -> Experiment:
         end=end,
         floor=None if floor is None else float(floor),
         checks=dict(checks),
+        burn_in_days=int(burn_in),
+        exclude_days=excluded,
     )
 
 

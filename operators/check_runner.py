@@ -17,7 +17,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from counterbid.estimators.checks import CheckResult, check_config, equilibrium_checks
+from counterbid.estimators.checks import CheckResult, bid_quantile_summary, check_config, equilibrium_checks
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
@@ -25,7 +25,7 @@ from counterbid.sql import render_sql, validate_identifier
 from .contract import run_contract, with_quality
 from .results_schema import as_session, migrate
 
-__all__ = ["ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["day_bid_quantiles", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
 
@@ -37,6 +37,7 @@ def run_checks(
     *,
     ds,
     history_relation: str | None = None,
+    history_quantiles: pd.DataFrame | None = None,
     config: Mapping[str, Any] | None = None,
 ) -> list[CheckResult]:
     """Every data check of one experiment's day: the contract suite, then the statistical checks.
@@ -53,6 +54,11 @@ def run_checks(
     history_relation : str, optional
         Table or view (same connection) with earlier days' bids and a ``ds`` column, any
         experiments; the ``drift.trailing_days`` days before ``ds`` are compared with today.
+    history_quantiles : pandas.DataFrame, optional
+        The trailing days' stored bid-quantile summaries instead (rows of
+        :func:`counterbid.estimators.checks.bid_quantile_summary` with a ``ds`` column; what the
+        pipeline keeps, so that no step re-reads an earlier day's bids). Used when
+        ``history_relation`` is not given.
     config : mapping, optional
         Threshold overrides on top of ``experiment.checks`` (see ``DEFAULT_CHECKS``).
 
@@ -90,11 +96,25 @@ def run_checks(
         )
         if history.empty:
             history = None
+    elif history_quantiles is not None and not history_quantiles.empty:
+        history = history_quantiles
     try:
         results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg, source=relation)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
     return results
+
+
+def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFrame:
+    """The day's bid-quantile summary (:func:`~counterbid.estimators.checks.bid_quantile_summary`) of a relation.
+
+    Run after :func:`run_checks` passed the contract: the bids are read again from the DuckDB
+    relation (the checks' frame is gone by then, so the peak is one frame).
+    """
+    validate_identifier(relation, what="relation")
+    relation = with_quality(con, relation)
+    bids = _bids_frame(con, render_sql("check_day_bids", relation=relation))
+    return bid_quantile_summary(bids, experiment, source=relation)
 
 
 def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:

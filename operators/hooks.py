@@ -43,6 +43,9 @@ POSTGRES_CONN_TYPE = "postgres"
 #: Text of DuckDB's error when another process holds the database file.
 LOCK_ERROR = "Could not set lock on file"
 
+#: Tables of the stored stratum pieces (one per frame of ``counterbid.estimators.pieces.pieces_to_frames``).
+PIECE_TABLES = ("stratum_pieces", "stratum_piece_arms", "stratum_piece_covariance", "stratum_piece_bidder_sums")
+
 
 def is_lock_error(exc: BaseException) -> bool:
     """Whether ``exc`` is DuckDB's file-lock conflict (retryable)."""
@@ -183,9 +186,9 @@ class ResultsHook(BaseHook):
             yield kind(con, schema=self.schema, sql=self.sql, where=self.where)
 
     @contextlib.contextmanager
-    def lake(self) -> Iterator[duckdb.DuckDBPyConnection]:
-        """An in-memory connection for reading Parquet (the bid lake, click log, staged files)."""
-        con = duckdb.connect(":memory:")
+    def lake(self, *, config: Mapping[str, Any] | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+        """An in-memory connection for reading Parquet (the bid lake, click log, staged files); ``config``: DuckDB settings."""
+        con = duckdb.connect(":memory:", config=dict(config or {}))
         try:
             yield con
         finally:
@@ -257,7 +260,7 @@ class ResultsHook(BaseHook):
         *,
         experiment_id: str,
         ds: dt.date,
-        tables: Mapping[str, pa.Table],
+        tables: Mapping[str, pa.Table | None],
     ) -> dict[str, int]:
         """Replace every row of one (experiment, day) in one transaction (delete, then insert).
 
@@ -268,8 +271,9 @@ class ResultsHook(BaseHook):
         tables : mapping of str to pyarrow.Table
             Keys among the destinations of
             :data:`~counterbid.operators.results_schema.RESULTS_TABLES` (``arm_estimates``,
-            ``arm_estimates_to_date``, ``position_weights``); each table holds that
-            destination's columns. Duplicate keys are dropped in SQL.
+            ``arm_estimates_to_date``, ``position_weights``, the stratum-piece tables, ``bid_quantiles``);
+            each table holds that destination's columns. Duplicate keys are dropped in SQL. ``None``
+            deletes the destination's rows of the (experiment, day) and inserts none.
 
         Returns
         -------
@@ -290,11 +294,50 @@ class ResultsHook(BaseHook):
                     s.lock_partition("estimates", experiment_id=experiment_id, ds=ds)
                     for dest, table in tables.items():
                         s.execute(f"results_delete_{dest}", params)
+                        if table is None:  # nothing for this destination now: the old rows go
+                            counts[dest] = 0
+                            continue
                         s.insert_rows(known[dest], table, params)
                         counts[dest] = table.num_rows
                 return counts
 
         return self._with_retry(write, what="write")
+
+    def _fetch_if_present(self, table: str, name: str, params: Mapping[str, Any]) -> pd.DataFrame | None:
+        """``fetch_df(name, params)`` when the results file holds ``table``, else ``None``."""
+        if not self.table_exists(table):
+            return None
+        return self.fetch_df(name, params)
+
+    def trailing_bid_quantiles(self, *, experiment_id: str, first_day: dt.date, ds: dt.date) -> pd.DataFrame | None:
+        """Stored bid-quantile summaries of the days ``first_day .. ds - 1`` (``None`` when there are none)."""
+        rows = self._fetch_if_present("bid_quantiles", "bid_quantiles_select_trailing",
+                                      {"experiment_id": experiment_id, "first_day": first_day, "ds": ds})
+        return None if rows is None or rows.empty else rows
+
+    def window_failures(self, *, experiment_id: str, ds: dt.date, checks: list[str]) -> dict[dt.date, list[str]]:
+        """Days before ``ds`` on which a check of ``checks`` failed, with the failed checks (stored outcomes)."""
+        rows = self._fetch_if_present("data_checks", "data_checks_select_window_failures",
+                                      {"experiment_id": experiment_id, "ds": ds, "checks": list(checks)})
+        if rows is None:
+            return {}
+        return {pd.Timestamp(d).date(): str(c).split(",") for d, c in zip(rows["ds"], rows["failed_checks"])}
+
+    def stored_piece_days(self, *, experiment_id: str, ds: dt.date) -> list[dt.date]:
+        """Days before ``ds`` whose stratum pieces are stored."""
+        rows = self._fetch_if_present("stratum_pieces", "stratum_pieces_select_days",
+                                      {"experiment_id": experiment_id, "ds": ds})
+        return [] if rows is None else [pd.Timestamp(d).date() for d in rows["ds"]]
+
+    def stored_piece_frames(self, *, experiment_id: str, days: list[dt.date], tables: list[str]) -> dict[str, pd.DataFrame | None]:
+        """Stored rows of the given days from each stratum-piece table (``<table>_select.sql``)."""
+        out: dict[str, pd.DataFrame | None] = {}
+        for table in tables:
+            validate_identifier(table, what="table")
+            rows = None if not days else self._fetch_if_present(table, f"{table}_select",
+                                                                {"experiment_id": experiment_id, "days": list(days)})
+            out[table] = None if rows is None or rows.empty else rows
+        return out
 
     # -- lake and staged files ---------------------------------------------------------------
     def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
@@ -324,12 +367,26 @@ class ResultsHook(BaseHook):
         return self._lake_batches("lake_read_range", params, lake_root, batch_rows)
 
     @contextlib.contextmanager
-    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int) -> Iterator[pa.RecordBatchReader]:
-        with self.lake() as con:
+    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int,
+                      config: Mapping[str, Any] | None = None) -> Iterator[pa.RecordBatchReader]:
+        with self.lake(config=config) as con:
             try:
                 yield con.sql(self.lake_sql(name), params=dict(params)).to_arrow_reader(batch_rows)
             except (duckdb.IOException, duckdb.InvalidInputException) as exc:
                 raise _lake_error(exc, root) from None
+
+    def lake_count_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> int:
+        """Bids of one experiment and day in the lake (partition-pruned)."""
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
+        return int(self._lake_query("lake_count_partition", params, lake_root).column(0)[0].as_py())
+
+    def lake_partition_shard_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date, n_shards: int,
+                                     batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
+        """:meth:`lake_partition_batches` with a trailing ``shard`` column (stable hash of the auction id)."""
+        from counterbid.readers.shards import SHARD_SCAN_CONFIG
+
+        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id, "n_shards": int(n_shards)}
+        return self._lake_batches("lake_read_partition_shards", params, lake_root, batch_rows, config=SHARD_SCAN_CONFIG)
 
     def clicks_position_weights(
         self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date
@@ -372,11 +429,10 @@ class ResultsHook(BaseHook):
             return con.execute(self.lake_sql("staged_arm_counts"), {"path": str(path)}).df()
 
     @contextlib.contextmanager
-    def staged_relations(self, *, day: str | Path, to_date: str | Path, ds: dt.date) -> Iterator[duckdb.DuckDBPyConnection]:
-        """In-memory connection with temp tables ``staged_day`` and ``staged_history`` (days before ``ds``)."""
+    def staged_relations(self, *, day: str | Path) -> Iterator[duckdb.DuckDBPyConnection]:
+        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards)."""
         with self.lake() as con:
             con.execute(self.lake_sql("staged_create_day"), {"path": str(day)})
-            con.execute(self.lake_sql("staged_create_history"), {"path": str(to_date), "ds": ds})
             yield con
 
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:

@@ -13,30 +13,32 @@ import json
 import logging
 import shutil
 from collections.abc import Mapping
-from dataclasses import asdict
+from dataclasses import asdict, replace
 from pathlib import Path
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from counterbid.readers.bid_log import read_bids
-from counterbid.estimators import (
-    CheckResult, Experiment, estimate_arms, load_experiments, measured_position_weights, parse_day, prepare_bids,
-    worst_failure,
-)
+from counterbid.estimators import CheckResult, Experiment, load_experiments, measured_position_weights, parse_day, worst_failure
 from counterbid.estimators.arms import METHOD_VERSION
+from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
+from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
+from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
+from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
+from counterbid.readers.shards import pieces_by_shard, write_shards
 
-from .check_runner import run_checks, write_check_results
+from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .schema_gate import schema_gate
-from .staging import StagedPartition, stream_parquet, write_json, write_parquet
+from .staging import StagedPartition, replace_folder, write_json, write_parquet
 from .stored_rows import with_stored_columns
 
 __all__ = [
     "EARLIEST_DAY",
     "MissingPartitionError",
+    "PIECE_TABLES",
     "active_experiment_ids",
     "estimate_partition",
     "load_checks",
@@ -74,9 +76,16 @@ def stage_partition(
     staging_root: str | Path,
     clicks_root: str | Path | None = None,
     click_window_days: int = 7,
+    max_bids_per_shard: int | str | None = None,
 ) -> dict:
-    """Copy the day's bids and the experiment-to-date bids of one experiment into staging.
+    """Copy the day's bids of one experiment into staging, split into shards.
 
+    A day with more bids than ``max_bids_per_shard`` (default
+    :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
+    is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, computed by
+    DuckDB as it scans (``sql/lake_read_partition_shards.sql``) and streamed into
+    ``day/shard=K/part-0.parquet`` (:func:`counterbid.readers.shards.write_shards`; one batch in memory). Only
+    the day is staged: earlier days enter through their stored pieces and bid-quantile summaries.
     When an arm's position weights are ``measured``, they are computed here from the click log,
     once per (experiment, day), and staged for the checks and the estimate
     (:func:`stage_measured_weights`).
@@ -84,24 +93,26 @@ def stage_partition(
     Returns
     -------
     dict
-        ``{"day_bids": int, "to_date_bids": int, "first_ds": str, "folder": str,
+        ``{"day_bids": int, "shards": int, "max_bids_per_shard": int, "folder": str,
         "measured_arms": list}``.
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
-    # Both spans are streamed batch by batch into their staged files (memory: about one batch).
-    with hook.lake_partition_batches(lake_root, experiment_id=experiment.id, ds=ds) as batches:
-        day_rows, _ = stream_parquet(batches, staged.day)
+    max_bids = max_bids_per_shard_setting(max_bids_per_shard)
+    day_rows = hook.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
     if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
-        staged.day.unlink(missing_ok=True)
+        shutil.rmtree(staged.day, ignore_errors=True)
         raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
-    first = experiment.start or EARLIEST_DAY
-    with hook.lake_range_batches(lake_root, experiment_id=experiment.id, first_ds=first, ds=ds) as batches:
-        to_date_rows, earliest = stream_parquet(batches, staged.to_date)
-    first_ds = earliest if earliest is not None else first
+    shards = n_shards(day_rows, max_bids)
+
+    def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
+        with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
+            write_shards(batches, folder, shards)
+
+    replace_folder(fill, staged.day)
     measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
                                       click_window_days=click_window_days)
-    return {"day_bids": day_rows, "to_date_bids": to_date_rows, "first_ds": str(first_ds), "folder": str(staged.folder),
+    return {"day_bids": day_rows, "shards": shards, "max_bids_per_shard": max_bids, "folder": str(staged.folder),
             "measured_arms": [] if measured is None else list(dict.fromkeys(measured["arm"]))}
 
 
@@ -164,16 +175,37 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
-    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on temp
-    tables ``staged_day`` and ``staged_history`` (earlier days of the experiment), with measured
-    position weights filled from staging.
+    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
+    table ``staged_day`` (every shard), with measured position weights filled from staging; the
+    drift check compares the day with the bid-quantile summaries, stored in the results database,
+    of the trailing days that are in the analysis window (a warm-up day, a drifted day, a burn-in
+    or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
+    with, and a market that stays moved stops being flagged once the old days leave the trailing
+    window). When no error check failed, the day's own summary is staged
+    (``bid_quantiles.parquet``) for the write step to store.
     """
     results = schema_gate(hook, experiment=experiment, staged=staged)
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
-    with hook.staged_relations(day=staged.day, to_date=staged.require(staged.to_date, step="load"), ds=ds) as con:
-        return results + list(run_checks(con, "staged_day", experiment, ds=ds, history_relation="staged_history"))
+    cfg = check_config(experiment.checks, source=f"experiment {experiment.id!r} checks")
+    first = ds - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
+    history = hook.trailing_bid_quantiles(experiment_id=experiment.id, first_day=first, ds=ds)
+    if history is not None:  # compare with the trailing days of the analysis window only
+        history_days = [parse_day(d) for d in history["ds"]]
+        failed = hook.window_failures(experiment_id=experiment.id, ds=ds, checks=list(WINDOW_CHECKS))
+        kept = set(analysis_window(history_days, experiment, failed_checks=failed).used)
+        history = history[[d in kept for d in history_days]]
+        history = None if history.empty else history
+    staged.bid_quantiles.unlink(missing_ok=True)
+    with hook.staged_relations(day=staged.day_files) as con:
+        results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history))
+        if worst_failure(results) != "error":
+            summary = day_bid_quantiles(con, "staged_day", experiment)
+            summary.insert(0, "experiment_id", experiment.id)
+            summary.insert(1, "ds", ds)
+            write_parquet(pa.Table.from_pandas(summary, preserve_index=False), staged.bid_quantiles)
+    return results
 
 
 def store_checks(hook: ResultsHook, results: list[CheckResult], *, experiment_id: str, ds: dt.date, run_id: str) -> None:
@@ -207,6 +239,52 @@ def load_checks(staged: StagedPartition) -> str:
     return status
 
 
+#: Results table of each frame of :func:`counterbid.estimators.pieces.pieces_to_frames`.
+PIECE_TABLES = {
+    "strata": "stratum_pieces",
+    "arms": "stratum_piece_arms",
+    "covariance": "stratum_piece_covariance",
+    "bidder_sums": "stratum_piece_bidder_sums",
+}
+
+
+def _failed_today(staged: StagedPartition) -> list[str]:
+    """Checks that failed on the staged day (``checks.json`` of the validate step)."""
+    payload = json.loads(staged.require(staged.checks, step="validate").read_text(encoding="utf-8"))
+    return sorted({c["check"] for c in payload.get("checks", []) if not c.get("passed", True)})
+
+
+def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.date, run_id: str,
+                   computed_at) -> dict[str, pd.DataFrame]:
+    """The pieces as rows of the results tables, keyed by (experiment, ds, n_bidders, shard)."""
+    out = {}
+    for name, frame in pieces_to_frames(pieces).items():
+        frame = frame.drop(columns=["day"], errors="ignore")
+        frame.insert(0, "experiment_id", experiment_id)
+        frame.insert(1, "ds", ds)
+        frame["run_id"] = run_id
+        frame["computed_at"] = computed_at
+        out[PIECE_TABLES[name]] = frame
+    return out
+
+
+def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPiece]:
+    """Pieces from rows of the results tables (:func:`_stored_frames`' inverse)."""
+    if all(frames.get(table) is None for table in PIECE_TABLES.values()):
+        return []
+    empty = pieces_to_frames([])
+    back = {}
+    for name, table in PIECE_TABLES.items():
+        frame = frames.get(table)
+        if frame is None:  # no rows (e.g. no bidder sums: every piece clustered by auction)
+            back[name] = empty[name]
+            continue
+        frame = frame.drop(columns=["experiment_id", "run_id", "computed_at"], errors="ignore").rename(columns={"ds": "day"})
+        frame["day"] = [parse_day(d).isoformat() for d in frame["day"]]
+        back[name] = frame
+    return pieces_from_frames(back)
+
+
 def estimate_partition(
     hook: ResultsHook,
     *,
@@ -217,19 +295,27 @@ def estimate_partition(
     confidence_level: float = 0.95,
     cluster: str = "auto",
 ) -> dict:
-    """Estimate every arm from the staged day and the staged experiment-to-date bids.
+    """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
-    Calls :func:`counterbid.estimators.estimate_arms` once per span, with measured position
-    weights as the load step staged them, and writes its rows, with the partition keys, status
-    and provenance, to the staging folder, with the position weights used.
+    Each staged shard is read, validated and estimated alone
+    (:func:`counterbid.readers.shards.pieces_by_shard`), keeping only its stratum pieces. The day's
+    rows combine the day's pieces (:func:`counterbid.estimators.pieces.combine_pieces`); the
+    experiment-to-date rows combine the stored pieces of the earlier days in the analysis window
+    (:func:`counterbid.estimators.window.analysis_window`: by default without the days whose
+    warm-up or drift check failed, and the spec's ``burn_in_days`` and ``exclude_days``) with
+    today's, read from the results database -- never bids. Writes the pieces, both sets of rows
+    (with the partition keys, status, provenance, and the days used and left out) and the
+    position weights used to the staging folder.
 
     Returns
     -------
     dict
-        Sample sizes and the revenue estimate per arm (small; logged and returned to XCom).
+        Sample sizes, shards, the window and the revenue estimate per arm (small; logged and
+        returned to XCom).
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
+    failed_today = _failed_today(staged)
     computed_at = pd.Timestamp.now(tz="UTC")
     experiment, measured = staged_experiment(experiment, staged)
     weights_rows = []
@@ -243,26 +329,60 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status}
-    for span, path, target in (("day", staged.day, staged.estimates_day), ("to_date", staged.to_date, staged.estimates_to_date)):
-        bids = read_bids(staged.require(path, step="load"))  # batch by batch; strings as categoricals
-        first_ds = pd.to_datetime(bids["ds"]).min().date() if span == "to_date" else None
-        prepared = prepare_bids(bids, experiment, source=f"{path}")
-        del bids  # only the validated arrays from here on: the to-date pool bounds a worker's memory
-        table = estimate_arms(prepared, experiment, confidence_level=confidence_level, cluster=cluster, source=f"{path}")
-        del prepared
+    staged.require(staged.day, step="load")
+    shard_list = [(k, staged.shard(k)) for k in staged.shards()]
+    found = pieces_by_shard(shard_list, experiment, cluster=cluster, day=ds, source=str(staged.day))
+    pieces = found.pieces
+    day_table = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
+                               n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
+    if day_table.attrs.get("cluster") == "auction":  # bidder sums not used: not stored either
+        pieces = [replace(p, bidder_ids=None, bidder_sums=None, _bidder_codes=None, _bidder_space=None) for p in pieces]
+    frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
+    for table, frame in frames.items():
+        write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
+
+    # The analysis window: earlier days with stored pieces, minus burn-in, excluded and failed days.
+    earlier = hook.stored_piece_days(experiment_id=experiment.id, ds=ds)
+    failed = hook.window_failures(experiment_id=experiment.id, ds=ds, checks=list(WINDOW_CHECKS))
+    failed[ds] = failed_today
+    window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
+    used_before = [d for d in window.used if d != ds]
+    stored = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
+    to_date_pieces = _pieces_of_rows(stored) + (pieces if ds in window.used else [])
+
+    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": len(shard_list),
+               "days_used": window.days_used, "days_left_out": window.days_left_out}
+    tables = {"day": day_table}
+    if to_date_pieces:
+        to_date_cluster = cluster
+        if cluster == "bidder" and any(p.bidder_sums is None for p in to_date_pieces):
+            # a day of the window was estimated clustered by auction (no bidder sums stored):
+            # the days can only be combined by auction; the rows say so in their `cluster` column
+            log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
+            to_date_cluster = "auction"
+        tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
+                                           cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
+    for span, table in tables.items():
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", first_ds)
+            table.insert(2, "first_ds", window.used[0])
+            table["days_used"] = window.days_used
+            table["days_left_out"] = window.days_left_out
+            table["n_days_used"] = len(window.used)
+            table["n_days_left_out"] = len(window.left_out)
         with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
         table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
         table["run_id"] = run_id
         table["computed_at"] = computed_at
-        write_parquet(pa.Table.from_pandas(table, preserve_index=False), target)
         summary[f"{span}_bids"] = int(table.attrs["n_bids"])
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
+    write_parquet(pa.Table.from_pandas(day_table, preserve_index=False), staged.estimates_day)
+    if "to_date" in tables:
+        write_parquet(pa.Table.from_pandas(tables["to_date"], preserve_index=False), staged.estimates_to_date)
+    else:  # every day so far is left out: no experiment-to-date rows for this day
+        staged.estimates_to_date.unlink(missing_ok=True)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
 
@@ -272,17 +392,32 @@ def write_partition(
 ) -> dict[str, int]:
     """Replace the (experiment, day)'s rows of every results table in one transaction.
 
+    The day's estimates, its experiment-to-date estimates (none when every day so far is left
+    out of the window), position weights, stratum pieces and bid-quantile summary.
+
     Returns
     -------
     dict of str to int
         Rows written per table.
     """
     staged = StagedPartition.at(staging_root, experiment_id, ds)
-    tables: Mapping[str, pa.Table] = {
+    tables: dict[str, pa.Table] = {
         "arm_estimates": pq.read_table(staged.require(staged.estimates_day, step="estimate")),
-        "arm_estimates_to_date": pq.read_table(staged.require(staged.estimates_to_date, step="estimate")),
         "position_weights": pq.read_table(staged.require(staged.weights, step="estimate")),
     }
+    for table in PIECE_TABLES.values():
+        tables[table] = pq.read_table(staged.require(staged.folder / f"{table}.parquet", step="estimate"))
+    # optional: absent when every day so far is left out / when the validate step stopped early
+    tables["arm_estimates_to_date"] = (pq.read_table(staged.estimates_to_date) if staged.estimates_to_date.exists()
+                                       else None)
+    tables["bid_quantiles"] = None
+    if staged.bid_quantiles.exists():  # staged by 'validate'; stamped with the estimate's provenance
+        quantiles, day = pq.read_table(staged.bid_quantiles), tables["arm_estimates"]
+        for name in ("run_id", "computed_at"):
+            value = day.column(name)[0] if day.num_rows else None
+            quantiles = quantiles.append_column(name, pa.array([value.as_py() if value is not None else None] * quantiles.num_rows,
+                                                               type=day.schema.field(name).type))
+        tables["bid_quantiles"] = quantiles
     counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables)
     if cleanup:
         shutil.rmtree(staged.folder, ignore_errors=True)

@@ -18,6 +18,7 @@ from airflow.sdk.exceptions import AirflowFailException
 from counterbid.estimators import CheckResult, load_experiment, parse_day
 from counterbid.estimators.arms import CLUSTERS
 from counterbid.estimators.errors import InputError
+from counterbid.readers.shards import max_bids_per_shard as max_bids_setting
 from counterbid.sql import validate_identifier
 
 from . import notify, partition
@@ -96,7 +97,7 @@ class _PartitionOperator(BaseOperator):
 
 
 class LoadPartitionOperator(_PartitionOperator):
-    """Stage one experiment's bids of one day (and experiment-to-date) from the bid lake.
+    """Stage one experiment's bids of one day from the bid lake, split into shards.
 
     Arms whose position weights are ``measured`` get them here, from the click log, once per
     (experiment, day); the validate and estimate steps read them from staging.
@@ -110,14 +111,24 @@ class LoadPartitionOperator(_PartitionOperator):
         Root of the click log, needed when an arm's position weights are ``measured``. Templated.
     click_window_days : int
         Trailing days of clicks pooled for measured weights (default 7).
+    max_bids_per_shard : int or str, optional
+        A day with more bids is split into ``ceil(bids / max)`` shards by the stable hash of the
+        auction id (default: ``$COUNTERBID_MAX_BIDS_PER_SHARD``, else
+        :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`). Templated; an empty rendered
+        value means the default.
     """
 
-    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "lake_root", "clicks_root")
+    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "lake_root", "clicks_root",
+                                      "max_bids_per_shard")
 
     def __init__(
-        self, *, lake_root: str | Path, clicks_root: str | None = None, click_window_days: int = 7, **kwargs: Any
+        self, *, lake_root: str | Path, clicks_root: str | None = None, click_window_days: int = 7,
+        max_bids_per_shard: int | str | None = None, **kwargs: Any
     ) -> None:
         super().__init__(**kwargs)
+        if not _templated(max_bids_per_shard):
+            max_bids_setting(max_bids_per_shard, what=f"{self.task_id}: `max_bids_per_shard`")
+        self.max_bids_per_shard = max_bids_per_shard
         if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
             raise InputError(f"{self.task_id}: `click_window_days` must be an integer >= 1; got {click_window_days!r}")
         self.lake_root = str(lake_root)
@@ -128,11 +139,12 @@ class LoadPartitionOperator(_PartitionOperator):
         try:
             out = partition.stage_partition(self.hook(), lake_root=self.lake_root, experiment=self.experiment(),
                                             ds=self.day(), staging_root=self.staging_root,
-                                            clicks_root=self.clicks_root or None, click_window_days=self.click_window_days)
+                                            clicks_root=self.clicks_root or None, click_window_days=self.click_window_days,
+                                            max_bids_per_shard=self.max_bids_per_shard)
         except InputError as exc:  # the same files fail the same way: no retry
             raise AirflowFailException(str(exc)) from None
-        log.info("staged %s bids of %s on %s (%s experiment-to-date from %s) in %s", out["day_bids"],
-                 self.experiment_id, self.ds, out["to_date_bids"], out["first_ds"], out["folder"])
+        log.info("staged %s bids of %s on %s in %s shard(s) of at most %s bids in %s", out["day_bids"],
+                 self.experiment_id, self.ds, out["shards"], out["max_bids_per_shard"], out["folder"])
         if out["measured_arms"]:
             log.info("measured position weights of %s staged", ", ".join(out["measured_arms"]))
         return out
@@ -172,9 +184,10 @@ class ValidatePartitionOperator(_PartitionOperator):
 
 
 class EstimateArmsOperator(_PartitionOperator):
-    """Estimate every arm of one (experiment, day) with ``estimate_arms`` (day and to-date).
+    """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
-    Measured position weights are the ones the load step staged.
+    Measured position weights are the ones the load step staged; the experiment-to-date rows
+    combine the stored pieces of the earlier days in the analysis window with the day's.
 
     Parameters
     ----------
@@ -211,8 +224,9 @@ class EstimateArmsOperator(_PartitionOperator):
         out = partition.estimate_partition(
             self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
             run_id=str(context["run_id"]), confidence_level=level, cluster=cluster)
-        log.info("estimated %s on %s (status %s): day revenue per auction %s", self.experiment_id, self.ds,
-                 out["status"], out["day_revenue_per_auction"])
+        log.info("estimated %s on %s (status %s, %s shard(s)): day revenue per auction %s; to date over %s "
+                 "(left out: %s)", self.experiment_id, self.ds, out["status"], out["shards"],
+                 out["day_revenue_per_auction"], out["days_used"] or "no day", out["days_left_out"] or "none")
         return out
 
 

@@ -26,6 +26,7 @@ from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
     "ASSUMPTIONS", "MIXTURE_GAP_SE", "auction_caption", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "window_caption",
     "write_report",
 ]
 
@@ -142,8 +143,17 @@ def format_cumulative(table: pd.DataFrame) -> str:
         n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
         head = (f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, "
                 f"status {day_status(rows['status'])}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
-        blocks.append(head + "\n" + _wide(rows).to_string())
+        blocks.append(head + "\n" + window_caption(rows) + "\n" + _wide(rows).to_string())
     return "\n\n".join(blocks)
+
+
+def window_caption(rows: pd.DataFrame) -> str:
+    """Which days the experiment-to-date rows combine and which they leave out (with the reason)."""
+    if "days_used" not in rows.columns or rows.empty:
+        return "days used: not recorded"
+    used, left = str(rows["days_used"].iloc[0]), str(rows["days_left_out"].iloc[0] or "")
+    n_used, n_left = int(rows["n_days_used"].iloc[0]), int(rows["n_days_left_out"].iloc[0])
+    return (f"days used ({n_used}): {used}; left out ({n_left}): {left or 'none'}")
 
 
 def _mixture_days(daily: pd.DataFrame) -> pd.DataFrame:
@@ -278,8 +288,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
             notes.append(
                 f"On {len(flagged)} day(s) ({', '.join(pd.Timestamp(d).date().isoformat() for d in flagged)}) the mixture's "
                 "estimated revenue disagrees with its realized revenue by more than 3 standard errors: bidders had "
-                "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date pool "
-                "that includes them) violate the equilibrium assumption.")
+                "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date numbers, "
+                "when the window includes them) violate the equilibrium assumption.")
         warn_days = [d for d, s in per_day["estimate status"].items() if "warning" in s.split(", ")]
         if warn_days:
             notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry the flag 'warning'.")
@@ -303,7 +313,11 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         sections.append(f"""
 <section>
 <h2>{html.escape(exp_id)}</h2>
-<p>Experiment to date, {first} to {last}: {n_auc:,} auctions pooled and estimated together.
+<p>Experiment to date, {first} to {last}: {n_auc:,} auctions, each day estimated alone and the days combined by
+their auctions (the auction-weighted average of each day's counterfactual).</p>
+<p><strong>{html.escape(window_caption(cum)) if len(cum) else ""}</strong>. By default a day whose warm-up or drift
+check failed is left out, as are the spec's burn-in and excluded days.</p>
+<p>
 Intervals: {html.escape(interval_caption(cum_model)) if len(cum) else "none"}{html.escape(f" (they speak for {speaks_for})") if speaks_for else ""};
 the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}

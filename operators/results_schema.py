@@ -58,6 +58,11 @@ RESULTS_TABLES = (
     ResultsTable("arm_estimates", "arm_estimates"),
     ResultsTable("arm_estimates_to_date", "arm_estimates_to_date"),
     ResultsTable("position_weights", "arm_position_weights"),
+    ResultsTable("stratum_pieces", "stratum_pieces"),
+    ResultsTable("stratum_piece_arms", "stratum_piece_arms"),
+    ResultsTable("stratum_piece_covariance", "stratum_piece_covariance"),
+    ResultsTable("stratum_piece_bidder_sums", "stratum_piece_bidder_sums"),
+    ResultsTable("bid_quantiles", "bid_quantiles"),
 )
 #: Views over the tables, in creation order: (view name, create statement).
 RESULTS_VIEWS = (
@@ -107,8 +112,16 @@ MIGRATIONS = (
         Statement("results_v1_create_position_weights"),
         Statement("results_v1_create_data_checks"),
     )),
-    Migration(2, "estimates store the interval's confidence level and clustering, the payment rule and floor; status holds flags",
-              _rebuild(2, "arm_estimates") + _rebuild(2, "arm_estimates_to_date")),
+    Migration(2, "estimates store the interval's confidence level and clustering, the payment rule and floor; status "
+                 "holds flags; to-date rows name the days of their analysis window; stratum pieces and bid-quantile "
+                 "summaries are stored",
+              _rebuild(2, "arm_estimates") + _rebuild(2, "arm_estimates_to_date") + (
+                  Statement("results_create_stratum_pieces"),
+                  Statement("results_create_stratum_piece_arms"),
+                  Statement("results_create_stratum_piece_covariance"),
+                  Statement("results_create_stratum_piece_bidder_sums"),
+                  Statement("results_create_bid_quantiles"),
+              )),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

@@ -11,6 +11,7 @@ import datetime as dt
 import json
 import os
 import re
+import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -20,7 +21,7 @@ import pyarrow.parquet as pq
 
 from counterbid.estimators.errors import InputError
 
-__all__ = ["StagedPartition", "stream_parquet", "write_json", "write_parquet"]
+__all__ = ["StagedPartition", "replace_folder", "stream_parquet", "write_json", "write_parquet"]
 
 _PATH_SAFE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 
@@ -43,16 +44,33 @@ class StagedPartition:
             raise InputError(f"experiment id {experiment_id!r} cannot name a staging folder (letters, digits, '_', '.', '-')")
         return cls(Path(staging_root) / experiment_id / f"ds={ds.isoformat()}")
 
-    # written by 'load'
-    day = property(lambda self: self.folder / "day.parquet")
-    to_date = property(lambda self: self.folder / "to_date.parquet")
+    # written by 'load': the day's bids, one folder per shard (``day/shard=K/*.parquet``)
+    day = property(lambda self: self.folder / "day")
     measured_weights = property(lambda self: self.folder / "measured_weights.parquet")
     # written by 'validate'
     checks = property(lambda self: self.folder / "checks.json")
+    bid_quantiles = property(lambda self: self.folder / "bid_quantiles.parquet")
     # written by 'estimate'
+    pieces = property(lambda self: self.folder / "stratum_pieces.parquet")
     estimates_day = property(lambda self: self.folder / "estimates_day.parquet")
     estimates_to_date = property(lambda self: self.folder / "estimates_to_date.parquet")
     weights = property(lambda self: self.folder / "position_weights.parquet")
+
+    @property
+    def day_files(self) -> str:
+        """Glob of every staged Parquet file of the day, all shards (what DuckDB reads)."""
+        return str(self.day / "shard=*" / "*.parquet")
+
+    def shard(self, k: int) -> Path:
+        """Folder of shard ``k`` of the staged day (what :func:`counterbid.readers.bid_log.read_bids` reads)."""
+        return self.day / f"shard={int(k)}"
+
+    def shards(self) -> list[int]:
+        """Shards staged for the day, ascending (empty before the load step ran)."""
+        if not self.day.is_dir():
+            return []
+        found = [p.name.split("=", 1)[1] for p in self.day.iterdir() if p.is_dir() and p.name.startswith("shard=")]
+        return sorted(int(k) for k in found if k.isdigit())
 
     def require(self, path: Path, *, step: str) -> Path:
         if not path.exists():
@@ -90,6 +108,27 @@ def stream_parquet(batches: pa.RecordBatchReader, target: Path) -> tuple[int, dt
         raise
     os.replace(tmp, target)  # readers see the old file or the new one, never half of one
     return rows, earliest
+
+
+def replace_folder(fill, target: Path) -> None:
+    """Fill a fresh temporary folder with ``fill(folder)``, then move it to ``target``.
+
+    A reader sees the old folder or the complete new one (a rerun replaces the whole folder).
+    """
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
+    old = target.with_name(f".{target.name}.{os.getpid()}.old")
+    for leftover in (tmp, old):
+        shutil.rmtree(leftover, ignore_errors=True)
+    try:
+        fill(tmp)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    if target.exists():
+        os.replace(target, old)
+    os.replace(tmp, target)
+    shutil.rmtree(old, ignore_errors=True)
 
 
 def write_json(payload, target: Path) -> None:

@@ -1,8 +1,10 @@
 -- Schema version 2, step 1 of 4 for arm_estimates_to_date: the table with the interval's confidence level and
 -- clustering and a status of flags, built beside the version-1 table (DuckDB cannot alter
 -- constraints in place), filled by results_v2_copy_arm_estimates_to_date, then swapped in.
--- Experiment-to-date estimates: the bids of every day from first_ds through ds pooled and
--- estimated again (not an average of daily estimates). One set of rows per (experiment, ds).
+-- Experiment-to-date estimates: the stored stratum pieces of the days in the analysis window
+-- through ds, combined by auction counts (the auction-weighted average over days of each day's
+-- counterfactual; no bids re-read). One set of rows per (experiment, ds); first_ds is the first
+-- day used, and the rows name the days used and the days left out (with the reason).
 create table {{ schema }}.arm_estimates_to_date_next (
     experiment_id varchar not null,
     ds date not null,
@@ -26,5 +28,11 @@ create table {{ schema }}.arm_estimates_to_date_next (
     method_version varchar not null,
     run_id varchar not null,
     computed_at timestamptz not null,
+    -- the analysis window: runs of days as text ('2026-03-04..2026-03-09,2026-03-12'); left-out
+    -- runs carry their reason ('2026-03-02..2026-03-03 (warmup)'; burn_in, excluded, drift, warmup)
+    days_used varchar not null,
+    days_left_out varchar not null,
+    n_days_used integer not null check (n_days_used >= 1),
+    n_days_left_out integer not null check (n_days_left_out >= 0),
     primary key (experiment_id, ds, arm, metric)
 )

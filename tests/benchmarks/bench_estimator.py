@@ -139,10 +139,13 @@ def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600
     if proc.returncode != 0:
         raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}")
     result = {"wall": wall, "rss_mib": usage.ru_maxrss / 1024.0, "stderr": stderr}
-    try:
+    try:  # a child's one JSON line, or a command's whole JSON output
         result.update(json.loads(stdout.strip().splitlines()[-1]))
     except (ValueError, IndexError):
-        pass
+        try:
+            result.update(json.loads(stdout))
+        except ValueError:
+            pass
     return result
 
 

@@ -13,6 +13,7 @@ import pytest
 from counterbid.cli.backfill import DAG_ID, dags_folder, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import estimate_arms, load_experiments
+from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators.pipeline import DEFAULT_CLUSTER, DEFAULT_CONFIDENCE_LEVEL
 
 from .conftest import SPEC_TEXT, START
@@ -71,7 +72,17 @@ def _lake(root):
     return df
 
 
-def test_three_days_match_estimate_arms_exactly(three_days):
+def _assert_rows_equal(got, want):
+    merged = want.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
+    assert (merged["_merge"] == "both").all() and len(got) == len(want)
+    for col in VALUES:
+        pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
+                                       check_dtype=False)
+
+
+def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days):
+    """Daily rows: ``estimate_arms`` of the day, exactly. To-date rows: ``combine_pieces`` of the
+    days in the window (the first day is a warm-up day, left out), computed here from the lake."""
     root, conf, experiments, runs = three_days
     assert [r.state for r in runs] == ["success"] * 3, [r.line() for r in runs]
     daily = _table(conf["results_database"], "arm_estimates")
@@ -79,28 +90,71 @@ def test_three_days_match_estimate_arms_exactly(three_days):
     lake = _lake(root)
     for exp in experiments.values():
         bids = lake[lake["experiment_id"] == exp.id]
+        pieces = {day: stratum_pieces(bids[bids["ds"] == day].reset_index(drop=True), exp, day=day, cluster=DEFAULT_CLUSTER)
+                  for day in DAYS}
         for k, day in enumerate(DAYS):
-            for table, frame in ((daily, bids[bids["ds"] == day]), (to_date, bids[bids["ds"] <= day])):
-                want = estimate_arms(frame.reset_index(drop=True), exp, cluster=DEFAULT_CLUSTER)
-                got = table[(table["experiment_id"] == exp.id) & (table["ds"] == pd.Timestamp(day))]
-                # the run's defaults are stored beside every row (the realized averages: by auction)
-                assert set(got["confidence_level"]) == {DEFAULT_CONFIDENCE_LEVEL}
-                realized = got["metric"] == "realized_revenue_per_auction"
-                assert set(got.loc[~realized, "cluster"]) == {want.attrs["cluster"]}
-                assert set(got.loc[realized, "cluster"]) == {"auction"}
-                merged = want.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
-                assert (merged["_merge"] == "both").all() and len(got) == len(want)
-                for col in VALUES:
-                    pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
-                                                   check_dtype=False)
-            assert set(to_date.loc[to_date["experiment_id"] == exp.id, "first_ds"]) == {pd.Timestamp(START)}
-    # the three days sit inside the experiments' default three-day warm-up: estimates are
-    # written, marked 'warning' (data-checks issue: warnings pass, errors stop the day)
-    # marked 'warning' (data-checks issue: warnings pass, errors stop the day); welfare rows carry
-    # the estimator's own flag beside it (published without an interval)
+            want = estimate_arms(bids[bids["ds"] == day].reset_index(drop=True), exp, cluster=DEFAULT_CLUSTER)
+            got = daily[(daily["experiment_id"] == exp.id) & (daily["ds"] == pd.Timestamp(day))]
+            # the run's defaults are stored beside every row (the realized averages: by auction)
+            assert set(got["confidence_level"]) == {DEFAULT_CONFIDENCE_LEVEL}
+            realized = got["metric"] == "realized_revenue_per_auction"
+            assert set(got.loc[~realized, "cluster"]) == {want.attrs["cluster"]}
+            assert set(got.loc[realized, "cluster"]) == {"auction"}
+            _assert_rows_equal(got, want)
+            mine = to_date[(to_date["experiment_id"] == exp.id) & (to_date["ds"] == pd.Timestamp(day))]
+            if k == 0:  # the only day so far is a warm-up day: no experiment-to-date rows yet
+                assert mine.empty
+                continue
+            window = DAYS[1:k + 1]
+            want = combine_pieces([p for d in window for p in pieces[d]], exp, cluster=DEFAULT_CLUSTER)
+            _assert_rows_equal(mine, want)
+            assert set(mine["first_ds"]) == {pd.Timestamp(DAYS[1])}
+            assert set(mine["days_used"]) == {str(DAYS[1]) if k == 1 else f"{DAYS[1]}..{DAYS[k]}"}
+            assert set(mine["days_left_out"]) == {f"{DAYS[0]} (warmup)"}
+            assert set(mine["n_days_used"]) == {k} and set(mine["n_days_left_out"]) == {1}
+    # the first day is inside the experiments' one-day warm-up: its rows are written, marked
+    # 'warning' (warnings pass, errors stop the day); welfare rows carry the estimator's own flag
+    first = daily["ds"] == pd.Timestamp(DAYS[0])
     welfare = daily["metric"] == "welfare_per_auction"
-    assert set(daily.loc[~welfare, "status"]) == {"warning"} and set(daily.loc[welfare, "status"]) == {"no_interval,warning"}
+    assert set(daily.loc[first & ~welfare, "status"]) == {"warning"}
+    assert set(daily.loc[first & welfare, "status"]) == {"no_interval,warning"}
     assert daily["run_id"].nunique() == 3
+    # the stored pieces: one per (experiment, day, number of bidders, shard); one shard a day here
+    with duckdb.connect(conf["results_database"], read_only=True) as con:
+        pieces_per_day = con.execute("select experiment_id, ds, count(*), max(shard) from stratum_pieces "
+                                     "group by all order by all").fetchall()
+        quantile_days = con.execute("select count(distinct ds) from bid_quantiles").fetchone()[0]
+    assert [(e, n, s) for e, _, n, s in pieces_per_day] == [(e, 1, 0) for e in ("banners", "tiles") for _ in DAYS]
+    assert quantile_days == 3
+
+
+def test_a_day_split_into_shards_combines_its_shards_and_the_days(three_days, tmp_path):
+    """A tiny ``max_bids_per_shard`` (15 000 bids a day -> 4 shards): the daily rows combine the
+    shards' pieces (each shard estimated from its own auctions, chosen by ``shard_of``) and the
+    to-date rows combine the stored pieces of the window's days."""
+    root, conf, experiments, _ = three_days
+    db = tmp_path / "sharded.duckdb"
+    runs = run_days(DAYS, conf={**conf, "results_database": str(db), "staging_root": str(tmp_path / "stage"),
+                                "max_bids_per_shard": "4000"})
+    assert [r.state for r in runs] == ["success"] * 3, [r.line() for r in runs]
+    daily, to_date = _table(db, "arm_estimates"), _table(db, "arm_estimates_to_date")
+    lake = _lake(root)
+    exp = experiments["tiles"]
+    pieces = {}
+    for day in DAYS:
+        frame = lake[(lake["experiment_id"] == "tiles") & (lake["ds"] == day)].reset_index(drop=True)
+        shard = shard_of(frame["auction_id"], 4)
+        pieces[day] = [p for k in range(4) for p in stratum_pieces(frame[shard == k].reset_index(drop=True), exp,
+                                                                      shard=k, day=day, cluster=DEFAULT_CLUSTER)]
+        got = daily[(daily["experiment_id"] == "tiles") & (daily["ds"] == pd.Timestamp(day))]
+        _assert_rows_equal(got, combine_pieces(pieces[day], exp, cluster=DEFAULT_CLUSTER))
+        assert set(got.loc[got["metric"] == "revenue_per_auction", "n_auctions"]) == {frame["auction_id"].nunique()}
+    last = to_date[(to_date["experiment_id"] == "tiles") & (to_date["ds"] == pd.Timestamp(DAYS[2]))]
+    _assert_rows_equal(last, combine_pieces(pieces[DAYS[1]] + pieces[DAYS[2]], exp, cluster=DEFAULT_CLUSTER))
+    with duckdb.connect(str(db), read_only=True) as con:
+        shards = con.execute("select ds, count(distinct shard) from stratum_pieces where experiment_id = 'tiles' "
+                             "group by ds order by ds").fetchall()
+    assert [n for _, n in shards] == [4, 4, 4]
 
 
 def test_level_and_cluster_are_run_parameters(three_days, tmp_path):
@@ -138,7 +192,7 @@ def test_rerun_replaces_rows_without_duplicates(three_days):
         lift = con.execute("select span, count(*) from arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from arm_estimates_cumulative").fetchall()
         weights = con.execute("select count(*) from arm_position_weights").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 6)]  # 2 experiments x 1 non-control arm x 3 days
+    assert lift == [("day", 6), ("to_date", 4)]  # 2 experiments x 1 non-control arm x 3 days (2 to date: day 1 is left out)
     assert cumulative == [(DAYS[-1],)]
     assert weights == 3 * (3 + 3 + 2 + 2)  # days x (positions of each arm)
     assert not any((root / "staging").rglob("*.parquet"))

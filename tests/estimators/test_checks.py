@@ -12,9 +12,11 @@ import scipy.stats as st
 
 from counterbid.estimators import InputError, parse_experiments, prepare_bids, simulate_experiment
 from counterbid.estimators.checks import (
+    BID_QUANTILES,
     DEFAULT_CHECKS,
     STATISTICAL_CHECKS,
     CheckResult,
+    bid_quantile_summary,
     check_config,
     drift_check,
     equilibrium_checks,
@@ -232,7 +234,9 @@ def test_drift_quiet_on_a_settled_market_and_fires_on_unadapted_bidders():
     unadapted = drift_check(_sim(n_auctions=1500, seed=101, belief_shares=[1.0, 0.0]), exp, history)
     assert not unadapted.passed and unadapted.observed < 1e-3
     ks = st.ks_2samp(_sim(n_auctions=1500, seed=101, belief_shares=[1.0, 0.0])["bid"], history["bid"])
-    assert unadapted.details["by_bidders"]["5"]["statistic"] == pytest.approx(ks.statistic)
+    # the trailing side is its 257-quantile summary, linear in between: within 1/256 of scipy's
+    # two-sample distance on the raw bids (plus the empirical step of 1/m at the knots)
+    assert unadapted.details["by_bidders"]["5"]["statistic"] == pytest.approx(ks.statistic, abs=1 / 256 + 1 / len(history))
 
 
 def test_drift_compares_strata_separately_with_bonferroni():
@@ -246,6 +250,46 @@ def test_drift_compares_strata_separately_with_bonferroni():
     moved = drift_check(_sim(n_auctions=1500, seed=1, n_bidders={3: 0.1, 6: 0.9}), exp,
                         _sim(n_auctions=3000, seed=2, n_bidders=mix))
     assert moved.passed
+
+
+def test_bid_quantile_summary_is_numpy_quantiles_of_each_stratum():
+    exp = EXPERIMENTS["gallery-premium"]
+    bids = _sim(n_auctions=800, seed=7, n_bidders={3: 0.5, 6: 0.5})
+    summary = bid_quantile_summary(bids, exp)
+    assert len(summary) == 2 * BID_QUANTILES and set(summary["n_bidders"]) == {3, 6}
+    counts = bids.groupby("auction_id")["bid"].transform("size")
+    for n in (3, 6):
+        rows = summary[summary["n_bidders"] == n]
+        mine = bids.loc[counts == n, "bid"].to_numpy()
+        assert (rows["n_bids"] == mine.size).all()
+        np.testing.assert_allclose(rows["bid"], np.quantile(mine, np.arange(BID_QUANTILES) / 256), rtol=1e-12)
+    assert rows["bid"].iloc[0] == mine.min() and rows["bid"].iloc[-1] == mine.max()
+
+
+def test_drift_from_stored_summaries_equals_drift_from_the_bids_they_summarise():
+    exp = EXPERIMENTS["gallery-premium"]
+    history = _sim(n_auctions=3000, seed=30)
+    today = _sim(n_auctions=1500, seed=31, belief_shares=[1.0, 0.0])
+    from_bids = drift_check(today, exp, history)
+    from_summary = drift_check(today, exp, bid_quantile_summary(history, exp))
+    assert from_summary == from_bids and not from_bids.passed
+
+
+def test_drift_pools_several_days_of_summaries_by_their_bids():
+    # Two trailing days of different sizes: the pooled distribution is their bid-weighted mixture,
+    # so the distance is close to scipy's two-sample distance against the two days' bids pooled.
+    exp = EXPERIMENTS["gallery-premium"]
+    day1, day2 = _sim(n_auctions=1000, seed=40), _sim(n_auctions=3000, seed=41, belief_shares=[1.0, 0.0])
+    summaries = pd.concat([bid_quantile_summary(day1, exp).assign(ds=dt.date(2026, 3, 1)),
+                           bid_quantile_summary(day2, exp).assign(ds=dt.date(2026, 3, 2))], ignore_index=True)
+    today = _sim(n_auctions=1500, seed=42)
+    got = drift_check(today, exp, summaries).details["by_bidders"]["5"]
+    pooled = pd.concat([day1["bid"], day2["bid"]])
+    ks = st.ks_2samp(today["bid"], pooled)
+    assert got["trailing_bids"] == len(pooled) and got["trailing_days"] == 2
+    # each day's summary is within 1/256 (+ one step 1/m_d) of its empirical distribution function
+    assert got["statistic"] == pytest.approx(ks.statistic, abs=1 / 256 + 1 / len(day1))
+    assert got["pvalue"] == pytest.approx(ks.pvalue, rel=0.5)  # same distance scale: same order of p
 
 
 def test_drift_without_history_passes_and_says_so():

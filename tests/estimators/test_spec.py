@@ -114,3 +114,27 @@ def test_parse_day_accepts_dates_datetimes_and_iso_text(value):
 def test_parse_day_names_what_it_was_parsing(value):
     with pytest.raises(InputError, match=r"^--start: must be a date YYYY-MM-DD; got "):
         parse_day(value, what="--start")
+
+
+def test_analysis_window_keys_burn_in_and_excluded_days(tmp_path):
+    path = tmp_path / "spec.yaml"
+    path.write_text("experiments:\n  - id: e1\n    start: 2026-03-01\n    burn_in_days: 2\n"
+                    "    exclude_days: [2026-03-09, '2026-03-05', 2026-03-09]\n"
+                    "    arms:\n      - {name: a, share: 1.0, position_weights: [0.3, 0.1]}\n")
+    exp = load_experiment(path)
+    assert exp.burn_in_days == 2
+    assert exp.exclude_days == (dt.date(2026, 3, 5), dt.date(2026, 3, 9))  # sorted, once each
+    plain = parse_experiments(doc())["e1"]
+    assert plain.burn_in_days == 0 and plain.exclude_days == ()
+
+
+@pytest.mark.parametrize("over,message", [
+    ({"burn_in_days": -1}, r"\(id 'e1'\): 'burn_in_days' must be a whole number >= 0; got -1$"),
+    ({"burn_in_days": 1.5}, r"'burn_in_days' must be a whole number >= 0; got 1.5$"),
+    ({"burn_in_days": True}, r"'burn_in_days' must be a whole number >= 0; got True$"),
+    ({"exclude_days": "2026-03-02"}, r"'exclude_days' must be a list of dates YYYY-MM-DD"),
+    ({"exclude_days": ["2026-03-02", "March 3"]}, r"exclude_days\[1\]: must be a date YYYY-MM-DD; got 'March 3'$"),
+])
+def test_analysis_window_keys_refuse_bad_values(over, message):
+    with pytest.raises(InputError, match=message):
+        parse_experiments(doc(**over), source="spec.yaml")

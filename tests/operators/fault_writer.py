@@ -42,7 +42,8 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
         "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction", "payment_rule": "first_price", "floor": 0.0,
         "method_version": "ordstat-1", "run_id": run_id,
         "computed_at": now})
-    to_date = estimates.assign(first_ds=day - dt.timedelta(days=3))
+    to_date = estimates.assign(first_ds=day - dt.timedelta(days=3), days_used=f"{day - dt.timedelta(days=3)}..{day}",
+                               days_left_out="", n_days_used=4, n_days_left_out=0)
     weights = pd.DataFrame({
         "experiment_id": experiment_id, "ds": day, "arm": "arm0000000", "position": range(1, POSITIONS + 1),
         "weight": [0.4, 0.2, 0.1], "source": "spec", "impressions": None, "clicks": None, "first_click_ds": None,

@@ -81,8 +81,11 @@ def test_templated_fields_and_writer_defaults():
     assert load.ds == "{{ ds }}"
     write = WriteEstimatesOperator(task_id="write", **COMMON)
     assert write.pool == WRITER_POOL and write.outlets == [RESULTS_ASSET]
-    assert EstimateArmsOperator(task_id="e", **COMMON).template_fields == (*load.template_fields[:-2], "confidence_level", "cluster")
-    assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-2]
+    assert load.template_fields[-3:] == ("lake_root", "clicks_root", "max_bids_per_shard")
+    assert EstimateArmsOperator(task_id="e", **COMMON).template_fields == (*load.template_fields[:-3], "confidence_level", "cluster")
+    assert ValidatePartitionOperator(task_id="v", **COMMON).template_fields == load.template_fields[:-3]
+    with pytest.raises(InputError, match=r"load: `max_bids_per_shard` must be a whole number of bids >= 1; got 0"):
+        LoadPartitionOperator(task_id="load", lake_root="/lake", max_bids_per_shard=0, **COMMON)
 
 
 def test_a_day_with_bad_bids_fails_validation_and_writes_nothing_for_it(airflow_db, tmp_path, capfd, caplog):

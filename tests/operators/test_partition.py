@@ -18,6 +18,7 @@ from counterbid.estimators import (
     CheckResult, estimate_arms, expected_revenue_per_auction, parse_day, parse_experiments, worst_failure,
 )
 from counterbid.estimators.errors import InputError
+from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results
 from counterbid.operators.hooks import ResultsHook
@@ -55,21 +56,31 @@ def _lake_day(root, day):
     return df[pd.to_datetime(df["ds"]).dt.date == day].reset_index(drop=True)
 
 
-def _stage(hook, lake, experiment, tmp_path, day):
+def _stage(hook, lake, experiment, tmp_path, day, **kw):
     return partition.stage_partition(hook, lake_root=lake / "bids", experiment=experiment, ds=day,
-                                     staging_root=tmp_path / "stage")
+                                     staging_root=tmp_path / "stage", **kw)
 
 
-def test_stage_writes_the_day_and_the_experiment_to_date(hook, lake, experiment, tmp_path):
+def _shard_frame(staged, k):
+    return pads.dataset(str(staged.shard(k)), format="parquet").to_table().to_pandas()
+
+
+def test_stage_writes_only_the_day_split_into_shards_by_auction(hook, lake, experiment, tmp_path):
     day = START + dt.timedelta(days=2)
-    out = _stage(hook, lake, experiment, tmp_path, day)
+    lake_day = _lake_day(lake / "bids", day)
+    out = _stage(hook, lake, experiment, tmp_path, day, max_bids_per_shard=2500)  # 8000 bids: 4 shards
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
-    got_day = pq.read_table(staged.day).to_pandas()
-    got_all = pq.read_table(staged.to_date).to_pandas()
-    assert out["day_bids"] == len(got_day) == len(_lake_day(lake / "bids", day))
-    assert out["first_ds"] == str(START)
-    assert sorted(set(got_all["ds"])) == [START + dt.timedelta(days=k) for k in range(3)]
-    assert not any(p.name.endswith(".tmp") for p in staged.folder.iterdir())  # atomic writes leave no temp files
+    assert out["day_bids"] == len(lake_day) == 8000 and out["shards"] == 4 == len(staged.shards())
+    frames = {k: _shard_frame(staged, k) for k in staged.shards()}
+    assert sum(len(f) for f in frames.values()) == len(lake_day)
+    want = dict(zip(lake_day["auction_id"], shard_of(lake_day["auction_id"], 4)))
+    for k, f in frames.items():  # whole auctions, each in the shard the estimators' shard_of names
+        assert {want[a] for a in f["auction_id"]} == {k}
+        assert set(pd.to_datetime(f["ds"]).dt.date) == {day}  # the day only: nothing of earlier days is staged
+    assert sorted(p.name for p in staged.folder.iterdir()) == ["day"]  # no to-date copy, no temp files left
+    # a rerun with the default shard size replaces the whole folder (one shard now)
+    assert _stage(hook, lake, experiment, tmp_path, day)["shards"] == 1 and staged.shards() == [0]
+    assert len(_shard_frame(staged, 0)) == len(lake_day)
 
 
 def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
@@ -88,8 +99,8 @@ def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
 
 def _gate_on(hook, experiment, tmp_path, frame):
     staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
-    staged.folder.mkdir(parents=True, exist_ok=True)
-    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), staged.day)
+    staged.shard(0).mkdir(parents=True, exist_ok=True)
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), staged.shard(0) / "part-0.parquet")
     return staged, schema_gate(hook, experiment=experiment, staged=staged)
 
 
@@ -139,7 +150,10 @@ def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, expe
     assert set(got.loc[~welfare, "status"]) == {"ok"} and set(got.loc[welfare, "status"]) == {"no_interval"}
     assert set(got["run_id"]) == {"t1"}
     counts = partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage", cleanup=False)
-    assert counts == {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
+    assert {k: counts[k] for k in ("arm_estimates", "arm_estimates_to_date", "position_weights")} == \
+        {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
+    assert counts["stratum_pieces"] == 1  # one stratum (4 bidders), one shard
+    assert counts["bid_quantiles"] == 0  # the validate step did not run here: no summary to store
     first = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
     partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
     pd.testing.assert_frame_equal(hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}), first)
@@ -185,7 +199,9 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     plain = weights[weights["arm"] == "plain"]
     assert set(plain["source"]) == {"measured"} and plain["first_click_ds"].iloc[0] == START
     assert plain["weight"].to_numpy() == pytest.approx([0.4, 0.2, 0.1], abs=0.01)
-    est = pq.read_table(staged.estimates_to_date).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
+    # the day's rows (the experiment-to-date has none: both days are inside the default warm-up)
+    assert not staged.estimates_to_date.exists()
+    est = pq.read_table(staged.estimates_day).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
     want = expected_revenue_per_auction(values, [0.4, 0.2, 0.1], 4)
     assert abs(est.loc["plain", "estimate"] - want) < 4 * est.loc["plain", "std_error"] + 0.01 * want
     staged.measured_weights.unlink()
@@ -266,7 +282,8 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
     day = START + dt.timedelta(days=1)
     _stage(hook, lake, experiment, tmp_path, day)
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
-    warned = CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3, details={})
+    # a warning that does not leave the day out of the window (warm-up and drift would)
+    warned = CheckResult(check="shading", severity="warning", passed=False, observed=0.2, threshold=0.05, details={})
     assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
 
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1",

@@ -19,7 +19,8 @@ from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 3, 2)
 SPEC = {"experiments": [{
-    "id": "tiles", "control_arm": "plain", "start": "2026-03-02",
+    # the first day (clustered by auction) is left out of the experiment to date by the spec
+    "id": "tiles", "control_arm": "plain", "start": "2026-03-02", "exclude_days": ["2026-03-02"],
     "arms": [{"name": "plain", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
              {"name": "bold", "share": 0.3, "position_weights": [0.5, 0.15, 0.05]}]}]}
 
@@ -47,7 +48,8 @@ def results(tmp_path_factory):
         staged = StagedPartition.at(root / "s", exp.id, day)
         checks = schema_gate(hook, experiment=exp, staged=staged)
         if warned:
-            checks.append(CheckResult(check="drift", severity="warning", passed=False, observed=1e-5, threshold=1e-3))
+            # a warning that keeps the day in the window (a failed drift or warm-up check would not)
+            checks.append(CheckResult(check="shading", severity="warning", passed=False, observed=0.2, threshold=0.05))
         partition.record_checks(staged, checks)
 
         partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}",
@@ -70,7 +72,9 @@ def test_report_has_plots_assumptions_and_days(results):
     for k in range(3):
         assert f"<th>{START + dt.timedelta(days=k)}</th>" in text
     assert "data checks" not in text  # no data_checks table: nothing shown
-    assert "3,020 auctions pooled" in text
+    # the experiment to date combines the two days the spec leaves in, and says which days it used
+    assert f"{1500 + SMALL_DAY_AUCTIONS:,} auctions, each day estimated alone" in text
+    assert "days used (2): 2026-03-03..2026-03-04; left out (1): 2026-03-02 (excluded)" in text
 
 
 def test_report_says_the_level_clustering_and_status_each_interval_used(results):
@@ -100,7 +104,7 @@ def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
     assert title.endswith("(bands: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days) intervals)")
     title = report._plot_lift(daily, to_date, "tiles", tmp_path / "l.png")
     assert title.endswith("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days); "
-                          "to date: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days))")
+                          "to date: 97.5 %, clustered by bidder)")  # one kind: no day counts
     one_run = daily[daily["ds"] == daily["ds"].max()]
     assert report.interval_caption(one_run[one_run["metric"] == "revenue_per_auction"]) == "97.5 %, clustered by bidder"
 
@@ -121,8 +125,10 @@ def test_report_shows_the_worst_check_status_per_day(results, tmp_path):
 def test_cumulative_table_text(results):
     _, hook = results
     text = format_cumulative(cumulative_table(hook))
-    assert text.startswith("tiles: 2026-03-02 .. 2026-03-04, 3020 auctions, status no_interval, warning; "
-                           "intervals 97.5 %, clustered by bidder\n")
+    # the second day's 20 auctions are below the estimator's minimum stratum: its flag reaches the to-date rows
+    assert text.startswith(f"tiles: 2026-03-03 .. 2026-03-04, {1500 + SMALL_DAY_AUCTIONS} auctions, status few_bids, "
+                           "no_interval, warning; intervals 97.5 %, clustered by bidder\n"
+                           "days used (2): 2026-03-03..2026-03-04; left out (1): 2026-03-02 (excluded)\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
 
