@@ -872,7 +872,8 @@ def _warn(message: str) -> None:
 def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     """Pieces as four plain frames (text, integer, float and bool columns) for a results table.
 
-    Every frame starts with the key columns ``day`` (ISO text or null), ``n_bidders``, ``shard``.
+    Text columns have pandas' string dtype (``str``). Every frame starts with the key columns
+    ``day`` (ISO text, missing when the pieces have no day), ``n_bidders``, ``shard``.
 
     * ``strata``: one row per piece: ``n_auctions, n_bids, max_bid, bid_exponent,
       floor_quantile, has_quality, flags`` (comma-joined, ``''`` for none) and
@@ -926,30 +927,32 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
         }))
         if p.bidder_ids is not None:
             b = p.bidder_ids.size
+            rows = b * (k_arms + 1)
+            # text columns built once per distinct value and repeated by ``take`` (no per-row conversion)
             sums.append(pd.DataFrame({
-                **{c: [v] * (b * (k_arms + 1)) for c, v in key.items()},
-                "bidder_id": np.tile(_as_text(p.bidder_ids), k_arms + 1),
-                "arm": np.repeat(np.array(names, dtype=object), b),
+                "day": pd.array([p.day], dtype="str").take(np.zeros(rows, dtype=np.intp)),
+                "n_bidders": np.full(rows, p.n_bidders, dtype=np.int64),
+                "shard": np.full(rows, p.shard, dtype=np.int64),
+                "bidder_id": pd.array(_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_arms + 1)),
+                "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_arms + 1), b)),
                 "value": p.bidder_sums.T.ravel(),
             }))
-    key_types = {"day": object, "n_bidders": np.int64, "shard": np.int64}
+    key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64}
     columns = {
         "strata": {**key_types, "n_auctions": np.int64, "n_bids": np.int64, "max_bid": float, "bid_exponent": np.int64,
-                   "floor_quantile": float, "has_quality": bool, "flags": object, "n_distinct_bidders": np.int64},
-        "arms": {**key_types, "arm_index": np.int64, "arm": object, "revenue_per_auction": float,
+                   "floor_quantile": float, "has_quality": bool, "flags": "str", "n_distinct_bidders": np.int64},
+        "arms": {**key_types, "arm_index": np.int64, "arm": "str", "revenue_per_auction": float,
                  "welfare_per_auction": float, "n_auctions": np.int64, "realized_revenue_sum": float,
                  "realized_revenue_squares": float},
-        "covariance": {**key_types, "arm_i": object, "metric_i": object, "arm_j": object, "metric_j": object,
+        "covariance": {**key_types, "arm_i": "str", "metric_i": "str", "arm_j": "str", "metric_j": "str",
                        "value": float},
-        "bidder_sums": {**key_types, "bidder_id": object, "arm": object, "value": float},
+        "bidder_sums": {**key_types, "bidder_id": "str", "arm": "str", "value": float},
     }
     parts = {"strata": [pd.DataFrame(strata)] if strata else [], "arms": arms, "covariance": cov, "bidder_sums": sums}
     out = {}
     for name, types in columns.items():
         frame = pd.concat(parts[name], ignore_index=True) if parts[name] else pd.DataFrame(columns=list(types))
-        frame = frame[list(types)].astype(types)
-        frame["day"] = frame["day"].where(frame["day"].notna(), None)
-        out[name] = frame
+        out[name] = frame[list(types)].astype(types)
     return out
 
 
