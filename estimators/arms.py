@@ -721,7 +721,9 @@ def estimate_arms(
     from .pieces import _stratum_pieces, combine_pieces
 
     data = bids if isinstance(bids, PreparedBids) else prepare_bids(bids, experiment, source=source)
-    pieces = _stratum_pieces(data, experiment, shard=0, day=None, cluster=cluster, source=source)
+    # The pieces stay inside this call, so with bidder clustering their auction covariance is skipped.
+    pieces = _stratum_pieces(data, experiment, shard=0, day=None, cluster=cluster, source=source,
+                             skip_auction_covariance=True)
     return combine_pieces(pieces, experiment, confidence_level=float(confidence_level), cluster=cluster,
                           n_excluded_auctions=data.n_excluded_auctions, source=source)
 

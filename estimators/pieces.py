@@ -134,10 +134,11 @@ class StratumPiece:
     bidder_ids : ndarray or None
         The stratum's distinct bidders (the log's ids: int64 or str objects), when bidder
         clustering was asked for; else None.
-    bidder_sums : ndarray or None, shape (len(bidder_ids), L)
-        Per bidder, the summed influence of its bids on ``estimate`` divided by ``n_bids``: not
-        scaled by the stratum's weight, so sums of one bidder add across strata once each is
-        multiplied by ``M_s / M``. Welfare columns are NaN.
+    bidder_sums : ndarray or None, shape (len(bidder_ids), K + 1)
+        Per bidder, the summed influence of its bids on the revenue labels (:attr:`sum_labels`:
+        every arm's revenue, then the mixture's) divided by ``n_bids``: not scaled by the stratum's
+        weight, so sums of one bidder add across strata once each is multiplied by ``M_s / M``.
+        Welfare has no interval and no sums.
     arm_auctions : ndarray of int64, shape (K,)
         Auctions of each arm (the arm's bids are ``n_bidders`` times as many).
     realized_sum, realized_squares : ndarray, shape (K,)
@@ -175,7 +176,8 @@ class StratumPiece:
     has_quality: bool
     flags: tuple[str, ...]
     # In-process shortcut: bidder codes in a label space shared by the pieces of one call of
-    # stratum_pieces, so combine_pieces needs no hashing of the ids. Not stored.
+    # stratum_pieces, so combine_pieces needs no hashing of the ids (codes None with a space: the
+    # piece holds every code of the space, in order). Not stored.
     _bidder_codes: np.ndarray | None = field(default=None, repr=False, compare=False)
     _bidder_space: object = field(default=None, repr=False, compare=False)
 
@@ -185,12 +187,17 @@ class StratumPiece:
         return (self.day, self.n_bidders, self.shard)
 
     @property
+    def sum_labels(self) -> tuple[tuple[str, str], ...]:
+        """Labels of the columns of ``bidder_sums``: the revenue labels, in label order."""
+        return tuple(label for label in self.labels if label[1] == REVENUE)
+
+    @property
     def arm_bids(self) -> np.ndarray:
         """Bids of each arm."""
         return self.arm_auctions * self.n_bidders
 
     def equals(self, other: StratumPiece) -> bool:
-        """Exact equality of every stored field (NaN equal to NaN; bidders matched by the text of their ids, in any order)."""
+        """Exact equality of every stored field (NaN equal to NaN; bidders matched by id text, in any order)."""
         if not isinstance(other, StratumPiece):
             return False
         for f in dataclasses.fields(self):
@@ -202,7 +209,8 @@ class StratumPiece:
                     return False
                 if a is not None and f.name == "bidder_sums":  # bidders in any order, matched by id
                     mine, theirs = _as_text(self.bidder_ids), _as_text(other.bidder_ids)
-                    if mine.size != theirs.size or not np.array_equal(np.sort(mine.astype(str)), np.sort(theirs.astype(str))):
+                    if mine.size != theirs.size or not np.array_equal(np.sort(mine.astype(str)),
+                                                                      np.sort(theirs.astype(str))):
                         return False
                     at = pd.Index(theirs).get_indexer(mine)
                     if not np.array_equal(a, b[at], equal_nan=True):
@@ -376,7 +384,9 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
 
 
 def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None, cluster: str,
-                    source: str) -> list[StratumPiece]:
+                    source: str, skip_auction_covariance: bool = False) -> list[StratumPiece]:
+    """The pieces; ``skip_auction_covariance`` (estimate_arms' shortcut, pieces never leave the call):
+    when bidder sums are kept, leave ``covariance`` NaN, saving a gather and a bincount per metric."""
     from .arms import MIN_STRATUM_BIDS, _endpoint_gaps, _l_statistic, sorted_with_order
 
     arms = experiment.arms
@@ -392,8 +402,12 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
         repeats = label_of_code.size < data.bidder.size
         if cluster == "bidder" or repeats:
             bidder_codes = codes
-            bidder_ids_of_code = (label_of_code.astype(np.int64, copy=False) if data.bidder_ids is None
-                                  else data.bidder_ids[label_of_code])
+            if data.bidder_ids is None:
+                bidder_ids_of_code = label_of_code.astype(np.int64, copy=False)
+            elif label_of_code.size == data.bidder_ids.size:  # every label present (sorted): no gather
+                bidder_ids_of_code = data.bidder_ids
+            else:
+                bidder_ids_of_code = data.bidder_ids[label_of_code]
         del codes, label_of_code
     space = object() if bidder_codes is not None else None
     n_codes = 0 if bidder_ids_of_code is None else bidder_ids_of_code.size
@@ -402,8 +416,6 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
     n_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
     n_of_auction[data.auction] = data.n_bidders
     strata, strata_auctions = np.unique(n_of_auction, return_counts=True)
-    arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
-    arm_of_auction[data.auction] = data.arm
     rule = experiment.payment_rule
     floor_bid = float(experiment.floor or 0.0)  # per click, (effective) bid units
 
@@ -435,10 +447,11 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
         covariance = np.full((n_labels, n_labels), np.nan)
         piece_ids = piece_sums = piece_codes = None
         if bidder_codes is not None:
-            bc = bidder_codes if sel is None else bidder_codes[sel]
-            present = np.flatnonzero(np.bincount(bc, minlength=n_codes))
-            piece_ids, piece_codes = bidder_ids_of_code[present], present
-            piece_sums = np.full((present.size, n_labels), np.nan)
+            if sel is None:  # the whole input is this stratum: every code is present
+                piece_ids = bidder_ids_of_code  # codes: all of them (None)
+            else:
+                present = np.flatnonzero(np.bincount(bidder_codes[sel], minlength=n_codes))
+                piece_ids, piece_codes = bidder_ids_of_code[present], present
         if sorted_bids[0] == sorted_bids[-1]:
             flags.append("degenerate")
             what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
@@ -447,12 +460,18 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                           "values, so revenue, welfare and lift are NaN (status 'degenerate')", EstimatorWarning,
                           stacklevel=4)
             del order, sorted_bids, b_raw
+            if piece_ids is not None:
+                piece_sums = np.full((piece_ids.size, k_arms + 1), np.nan)
         else:
-            auc = (data.auction if sel is None else data.auction[sel])[order].astype(np.intp, copy=False)
+            auc = None
+            if not (skip_auction_covariance and bidder_codes is not None):
+                auc = (data.auction if sel is None else data.auction[sel])[order].astype(np.intp, copy=False)
             bcs = None
             if bidder_codes is not None:
                 bcs = (bidder_codes if sel is None else bidder_codes[sel])[order].astype(np.intp, copy=False)
             del order, b_raw
+            if piece_ids is not None:  # allocated after the sort's temporaries are gone
+                piece_sums = np.empty((piece_ids.size, k_arms + 1))
             if influence is None or influence.size < big_n:
                 influence = np.empty(big_n)
             infl = influence[:big_n]
@@ -465,8 +484,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                           for k, ww in enumerate(weights)]
             table = WeightTable([ww for ww, ok in zip(weights, identified) if ok], big_n)
             column = np.cumsum(identified) - 1  # metric k's row in the table
-            n_auction_codes = int(auc.max()) + 1
-            auction_sums = np.empty((k_arms, n_auction_codes))
+            n_auction_codes = data.n_auctions
+            auction_sums = None if auc is None else np.empty((k_arms, n_auction_codes))
             for k, ww in enumerate(weights):
                 if k >= k_arms:  # welfare: endpoints of the bid distribution, not the extreme bids
                     if not identified[k]:
@@ -480,7 +499,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                         est -= n * ww.bottom * (float(sorted_bids[0]) - bottom_gap)
                     estimate[k] = est
                     continue
-                boundary = n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0]) + n * ww.floor_term
+                boundary = (n * ww.top * float(sorted_bids[-1]) - n * ww.bottom * float(sorted_bids[0])
+                            + n * ww.floor_term)
                 est = _l_statistic(table, int(column[k]), n, sorted_bids, infl) + boundary
                 if floor is not None:
                     # q* is the share of sub-floor bids: each bid's influence gains slope * (1{b < r} - q*)
@@ -490,20 +510,24 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                     infl[n_below:] -= slope * floor.quantile
                 infl *= 1.0 / big_n
                 estimate[k] = est
-                auction_sums[k] = np.bincount(auc, weights=infl, minlength=n_auction_codes)
+                if auction_sums is not None:
+                    auction_sums[k] = np.bincount(auc, weights=infl, minlength=n_auction_codes)
                 if bcs is not None:
-                    piece_sums[:, k] = np.bincount(bcs, weights=infl, minlength=n_codes)[piece_codes]
+                    by_code = np.bincount(bcs, weights=infl, minlength=n_codes)
+                    piece_sums[:, k] = by_code if piece_codes is None else by_code[piece_codes]
+                    del by_code
             # The estimator is linear in the target rule and the mixture's rule is the share-weighted
             # sum of the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
             estimate[-1] = float(shares @ estimate[:k_arms])
-            block = auction_sums @ auction_sums.T  # arms x arms, CR0
-            mix_row = shares @ block
-            covariance[np.ix_(range(k_arms), range(k_arms))] = block
-            covariance[-1, :k_arms] = covariance[:k_arms, -1] = mix_row
-            covariance[-1, -1] = float(mix_row @ shares)
+            if auction_sums is not None:
+                block = auction_sums @ auction_sums.T  # arms x arms, CR0
+                mix_row = shares @ block
+                covariance[np.ix_(range(k_arms), range(k_arms))] = block
+                covariance[-1, :k_arms] = covariance[:k_arms, -1] = mix_row
+                covariance[-1, -1] = float(mix_row @ shares)
             del auction_sums
             if piece_sums is not None:
-                piece_sums[:, -1] = piece_sums[:, :k_arms] @ shares
+                piece_sums[:, k_arms] = piece_sums[:, :k_arms] @ shares
             del sorted_bids, auc, bcs, table
         pieces.append(dict(n=n, a_n=a_n, big_n=big_n, estimate=estimate, covariance=covariance, ids=piece_ids,
                            sums=piece_sums, codes=piece_codes, floor_quantile=floor_quantile, top_bid=top_bid,
@@ -511,6 +535,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
     del influence
 
     # Realized per-arm sums per stratum, from each auction's realized revenue (its own bids only).
+    arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
+    arm_of_auction[data.auction] = data.arm
     # Computed in the unit of the largest bid (as the pieces' units, a power of two: exact), then
     # brought to each piece's own unit.
     top_exponent = _unit_exponent(float(data.bid.max()))
@@ -534,7 +560,7 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
             arm_auctions=counts, realized_sum=sums, realized_squares=squares,
             floor_quantile=float(p["floor_quantile"]), max_bid=p["top_bid"], bid_exponent=int(p["exponent"]),
             has_quality=bool(data.has_quality), flags=p["flags"],
-            _bidder_codes=p["codes"], _bidder_space=space if p["codes"] is not None else None))
+            _bidder_codes=p["codes"], _bidder_space=space if p["ids"] is not None else None))
     return out
 
 
@@ -556,11 +582,23 @@ def _cr_factor(g: int) -> float:
     return g / (g - 1) if g >= 2 else np.nan
 
 
-def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray, columns: list[int]) -> np.ndarray:
-    """``S_b = sum_s w_s S_{b,s}`` for every distinct bidder of the pieces (rows) and the given label columns."""
+def _codes_of(p: StratumPiece) -> np.ndarray:
+    """A piece's codes in its label space (``None`` stands for every code 0..B-1)."""
+    return np.arange(p.bidder_ids.size) if p._bidder_codes is None else p._bidder_codes
+
+
+def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple[np.ndarray, float]:
+    """``S_b = sum_s w_s S_{b,s}`` for every distinct bidder of the pieces (rows), per revenue label (columns).
+
+    Returned as ``(sums, scale)`` with ``S = scale * sums``: one piece holding every bidder of its
+    label space (``estimate_arms`` on one stratum) is used as it is, without a copy.
+    """
+    if len(pieces) == 1 and pieces[0]._bidder_space is not None and pieces[0]._bidder_codes is None:
+        return pieces[0].bidder_sums, float(weights[0])  # every code of the space, in order
     space = pieces[0]._bidder_space
-    if space is not None and all(p._bidder_space is space for p in pieces):
-        codes = [p._bidder_codes for p in pieces]  # one label space: no hashing of the ids
+    shared = space is not None and all(p._bidder_space is space for p in pieces)
+    if shared:
+        codes = [_codes_of(p) for p in pieces]  # one label space: no hashing of the ids
         n_codes = int(max(int(c.max()) + 1 if c.size else 0 for c in codes))
     else:
         ids = [p.bidder_ids for p in pieces]
@@ -572,22 +610,31 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray, columns:
         n_codes = len(uniques)
         bounds = np.cumsum([0] + [i.size for i in ids])
         codes = [flat[lo:hi] for lo, hi in zip(bounds[:-1], bounds[1:])]
-    totals = np.zeros((len(columns), n_codes))
+    n_columns = pieces[0].bidder_sums.shape[1]
+    totals = np.zeros((n_columns, n_codes))
     for p, c, w in zip(pieces, codes, weights):
-        for j, col in enumerate(columns):
-            totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, col], minlength=n_codes)
-    if space is not None and all(p._bidder_space is space for p in pieces):
+        every = shared and p._bidder_codes is None and c.size == n_codes  # every code of the space, in order
+        for j in range(n_columns):
+            if every:
+                totals[j] += w * p.bidder_sums[:, j]
+            else:
+                totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, j], minlength=n_codes)
+    if shared:
         seen = np.zeros(n_codes, dtype=bool)
         for c in codes:
             seen[c] = True
-        totals = totals[:, seen]
-    return totals.T
+        if not seen.all():  # codes of the shared space no piece here uses
+            totals = totals[:, seen]
+    return totals.T, 1.0
 
 
 def _distinct_bidders(pieces: Sequence[StratumPiece]) -> int:
     space = pieces[0]._bidder_space
     if space is not None and all(p._bidder_space is space for p in pieces):
-        seen = np.zeros(max(int(p._bidder_codes.max()) + 1 if p._bidder_codes.size else 0 for p in pieces), dtype=bool)
+        if any(p._bidder_codes is None for p in pieces):  # a piece with every code of the space
+            return int(max(p.bidder_ids.size for p in pieces if p._bidder_codes is None))
+        size = max(int(p._bidder_codes.max()) + 1 if p._bidder_codes.size else 0 for p in pieces)
+        seen = np.zeros(size, dtype=bool)
         for p in pieces:
             seen[p._bidder_codes] = True
         return int(seen.sum())
@@ -704,9 +751,13 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
 
     degenerate = any("degenerate" in p.flags for p in pieces)
     if cluster == "bidder":
-        totals = _bidder_totals(pieces, w, revenue_cols)  # distinct bidders x revenue labels
+        # distinct bidders x revenue labels (revenue_cols' order); the sums are scale x totals
+        totals, scale = _bidder_totals(pieces, w)
         factor = _cr_factor(totals.shape[0])
-        block = factor * (totals.T @ totals) if totals.shape[0] >= 2 else np.full((len(revenue_cols),) * 2, np.nan)
+        if totals.shape[0] >= 2:
+            block = (factor * scale * scale) * (totals.T @ totals)
+        else:
+            block = np.full((len(revenue_cols),) * 2, np.nan)
     else:
         totals = None
         block = np.zeros((len(revenue_cols), len(revenue_cols)))
@@ -767,7 +818,9 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
                 lift = t_a / t_c - 1.0
                 r = t_a / t_c
                 if totals is not None:
-                    cs = (totals[:, revenue_cols.index(k)] - r * totals[:, revenue_cols.index(control)]) / t_c
+                    cs = totals[:, revenue_cols.index(control)] * -r
+                    cs += totals[:, revenue_cols.index(k)]
+                    cs *= scale / t_c
                     lift_se = float(np.sqrt(_cr_factor(cs.size) * float(cs @ cs))) if cs.size >= 2 else np.nan
                 else:
                     v = variance[k, k] - 2 * r * variance[k, control] + r * r * variance[control, control]
@@ -819,7 +872,8 @@ def _warn(message: str) -> None:
 def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     """Pieces as four plain frames (text, integer, float and bool columns) for a results table.
 
-    Every frame starts with the key columns ``day`` (ISO text or null), ``n_bidders``, ``shard``.
+    Text columns have pandas' string dtype (``str``). Every frame starts with the key columns
+    ``day`` (ISO text, missing when the pieces have no day), ``n_bidders``, ``shard``.
 
     * ``strata``: one row per piece: ``n_auctions, n_bids, max_bid, bid_exponent,
       floor_quantile, has_quality, flags`` (comma-joined, ``''`` for none) and
@@ -873,30 +927,32 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
         }))
         if p.bidder_ids is not None:
             b = p.bidder_ids.size
+            rows = b * (k_arms + 1)
+            # text columns built once per distinct value and repeated by ``take`` (no per-row conversion)
             sums.append(pd.DataFrame({
-                **{c: [v] * (b * (k_arms + 1)) for c, v in key.items()},
-                "bidder_id": np.tile(_as_text(p.bidder_ids), k_arms + 1),
-                "arm": np.repeat(np.array(names, dtype=object), b),
-                "value": p.bidder_sums[:, revenue].T.ravel(),
+                "day": pd.array([p.day], dtype="str").take(np.zeros(rows, dtype=np.intp)),
+                "n_bidders": np.full(rows, p.n_bidders, dtype=np.int64),
+                "shard": np.full(rows, p.shard, dtype=np.int64),
+                "bidder_id": pd.array(_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_arms + 1)),
+                "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_arms + 1), b)),
+                "value": p.bidder_sums.T.ravel(),
             }))
-    key_types = {"day": object, "n_bidders": np.int64, "shard": np.int64}
+    key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64}
     columns = {
         "strata": {**key_types, "n_auctions": np.int64, "n_bids": np.int64, "max_bid": float, "bid_exponent": np.int64,
-                   "floor_quantile": float, "has_quality": bool, "flags": object, "n_distinct_bidders": np.int64},
-        "arms": {**key_types, "arm_index": np.int64, "arm": object, "revenue_per_auction": float,
+                   "floor_quantile": float, "has_quality": bool, "flags": "str", "n_distinct_bidders": np.int64},
+        "arms": {**key_types, "arm_index": np.int64, "arm": "str", "revenue_per_auction": float,
                  "welfare_per_auction": float, "n_auctions": np.int64, "realized_revenue_sum": float,
                  "realized_revenue_squares": float},
-        "covariance": {**key_types, "arm_i": object, "metric_i": object, "arm_j": object, "metric_j": object,
+        "covariance": {**key_types, "arm_i": "str", "metric_i": "str", "arm_j": "str", "metric_j": "str",
                        "value": float},
-        "bidder_sums": {**key_types, "bidder_id": object, "arm": object, "value": float},
+        "bidder_sums": {**key_types, "bidder_id": "str", "arm": "str", "value": float},
     }
     parts = {"strata": [pd.DataFrame(strata)] if strata else [], "arms": arms, "covariance": cov, "bidder_sums": sums}
     out = {}
     for name, types in columns.items():
         frame = pd.concat(parts[name], ignore_index=True) if parts[name] else pd.DataFrame(columns=list(types))
-        frame = frame[list(types)].astype(types)
-        frame["day"] = frame["day"].where(frame["day"].notna(), None)
-        out[name] = frame
+        out[name] = frame[list(types)].astype(types)
     return out
 
 
@@ -966,12 +1022,12 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
                 raise InputError(f"piece frames: {where} has {int(row['n_distinct_bidders'])} bidders but no rows in "
                                  "'bidder_sums'")
             codes, uniques = pd.factorize(s["bidder_id"].astype(str), sort=False)
-            column = np.array([index.get((a, REVENUE), -1) for a in s["arm"]], dtype=np.intp)
+            column = pd.Index(names).get_indexer(s["arm"])  # the column of sum_labels: arms, then _mixture
             if (column < 0).any():
                 raise InputError(f"piece frames: {where}: bidder_sums names an unknown arm "
                                  f"{s['arm'].to_numpy()[np.flatnonzero(column < 0)[0]]!r}")
             bidder_ids = np.asarray(uniques, dtype=object)
-            bidder_sums = np.full((bidder_ids.size, len(labels)), np.nan)
+            bidder_sums = np.full((bidder_ids.size, k_arms + 1), np.nan)
             bidder_sums[codes, column] = s["value"].to_numpy(dtype=float)
         flags = tuple(f for f in str(row["flags"] if not pd.isna(row["flags"]) else "").split(",") if f)
         pieces.append(StratumPiece(
