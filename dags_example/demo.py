@@ -42,7 +42,7 @@ def make_report(out: Path, results: str | None = None) -> None:
     hook = ResultsHook(database=results or out / "results.duckdb")
     table = cumulative_table(hook)
     # each experiment's line of the table states the level and clustering its intervals used
-    print("\nExperiment to date (all days pooled and re-estimated):\n")
+    print("\nExperiment to date (the days of the analysis window, each estimated alone, combined by auctions):\n")
     print(format_cumulative(table))
     print("\nDays flagged by the data checks (estimates of those days carry the status flag 'warning'):")
     for exp_id in sorted(set(table["experiment_id"])):

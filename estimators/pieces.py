@@ -177,7 +177,8 @@ class StratumPiece:
     has_quality: bool
     flags: tuple[str, ...]
     # In-process shortcut: bidder codes in a label space shared by the pieces of one call of
-    # stratum_pieces, so combine_pieces needs no hashing of the ids. Not stored.
+    # stratum_pieces, so combine_pieces needs no hashing of the ids (codes None with a space: the
+    # piece holds every code of the space, in order). Not stored.
     _bidder_codes: np.ndarray | None = field(default=None, repr=False, compare=False)
     _bidder_space: object = field(default=None, repr=False, compare=False)
 
@@ -416,8 +417,6 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
     n_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
     n_of_auction[data.auction] = data.n_bidders
     strata, strata_auctions = np.unique(n_of_auction, return_counts=True)
-    arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
-    arm_of_auction[data.auction] = data.arm
     rule = experiment.payment_rule
     floor_bid = float(experiment.floor or 0.0)  # per click, (effective) bid units
 
@@ -448,11 +447,10 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
         piece_ids = piece_sums = piece_codes = None
         if bidder_codes is not None:
             if sel is None:  # the whole input is this stratum: every code is present
-                piece_ids, piece_codes = bidder_ids_of_code, np.arange(n_codes)
+                piece_ids = bidder_ids_of_code  # codes: all of them (None)
             else:
                 present = np.flatnonzero(np.bincount(bidder_codes[sel], minlength=n_codes))
                 piece_ids, piece_codes = bidder_ids_of_code[present], present
-            piece_sums = np.full((piece_codes.size, k_arms + 1), np.nan)
         if sorted_bids[0] == sorted_bids[-1]:
             flags.append("degenerate")
             what = "bids equal" if floor is None and floor_value == 0 else "bids, counted at the floor, equal"
@@ -461,6 +459,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                           "values, so revenue, welfare and lift are NaN (status 'degenerate')", EstimatorWarning,
                           stacklevel=4)
             del order, sorted_bids, b_raw
+            if piece_ids is not None:
+                piece_sums = np.full((piece_ids.size, k_arms + 1), np.nan)
         else:
             auc = None
             if not (skip_auction_covariance and bidder_codes is not None):
@@ -469,6 +469,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
             if bidder_codes is not None:
                 bcs = (bidder_codes if sel is None else bidder_codes[sel])[order].astype(np.intp, copy=False)
             del order, b_raw
+            if piece_ids is not None:  # allocated after the sort's temporaries are gone
+                piece_sums = np.empty((piece_ids.size, k_arms + 1))
             if influence is None or influence.size < big_n:
                 influence = np.empty(big_n)
             infl = influence[:big_n]
@@ -509,7 +511,7 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
                     auction_sums[k] = np.bincount(auc, weights=infl, minlength=n_auction_codes)
                 if bcs is not None:
                     by_code = np.bincount(bcs, weights=infl, minlength=n_codes)
-                    piece_sums[:, k] = by_code if sel is None else by_code[piece_codes]
+                    piece_sums[:, k] = by_code if piece_codes is None else by_code[piece_codes]
                     del by_code
             # The estimator is linear in the target rule and the mixture's rule is the share-weighted
             # sum of the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
@@ -530,6 +532,8 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
     del influence
 
     # Realized per-arm sums per stratum, from each auction's realized revenue (its own bids only).
+    arm_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
+    arm_of_auction[data.auction] = data.arm
     # Computed in the unit of the largest bid (as the pieces' units, a power of two: exact), then
     # brought to each piece's own unit.
     top_exponent = _unit_exponent(float(data.bid.max()))
@@ -553,7 +557,7 @@ def _stratum_pieces(data, experiment: Experiment, *, shard: int, day: str | None
             arm_auctions=counts, realized_sum=sums, realized_squares=squares,
             floor_quantile=float(p["floor_quantile"]), max_bid=p["top_bid"], bid_exponent=int(p["exponent"]),
             has_quality=bool(data.has_quality), flags=p["flags"],
-            _bidder_codes=p["codes"], _bidder_space=space if p["codes"] is not None else None))
+            _bidder_codes=p["codes"], _bidder_space=space if p["ids"] is not None else None))
     return out
 
 
@@ -575,19 +579,23 @@ def _cr_factor(g: int) -> float:
     return g / (g - 1) if g >= 2 else np.nan
 
 
+def _codes_of(p: StratumPiece) -> np.ndarray:
+    """A piece's codes in its label space (``None`` stands for every code 0..B-1)."""
+    return np.arange(p.bidder_ids.size) if p._bidder_codes is None else p._bidder_codes
+
+
 def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple[np.ndarray, float]:
     """``S_b = sum_s w_s S_{b,s}`` for every distinct bidder of the pieces (rows), per revenue label (columns).
 
     Returned as ``(sums, scale)`` with ``S = scale * sums``: one piece holding every bidder of its
     label space (``estimate_arms`` on one stratum) is used as it is, without a copy.
     """
-    if len(pieces) == 1 and pieces[0]._bidder_space is not None:
-        c = pieces[0]._bidder_codes
-        if c.size and c.size == int(c[-1]) + 1:  # sorted distinct codes 0..B-1: all of them
-            return pieces[0].bidder_sums, float(weights[0])
+    if len(pieces) == 1 and pieces[0]._bidder_space is not None and pieces[0]._bidder_codes is None:
+        return pieces[0].bidder_sums, float(weights[0])  # every code of the space, in order
     space = pieces[0]._bidder_space
-    if space is not None and all(p._bidder_space is space for p in pieces):
-        codes = [p._bidder_codes for p in pieces]  # one label space: no hashing of the ids
+    shared = space is not None and all(p._bidder_space is space for p in pieces)
+    if shared:
+        codes = [_codes_of(p) for p in pieces]  # one label space: no hashing of the ids
         n_codes = int(max(int(c.max()) + 1 if c.size else 0 for c in codes))
     else:
         ids = [p.bidder_ids for p in pieces]
@@ -602,13 +610,13 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple
     n_columns = pieces[0].bidder_sums.shape[1]
     totals = np.zeros((n_columns, n_codes))
     for p, c, w in zip(pieces, codes, weights):
-        every = p._bidder_codes is c and c.size == n_codes  # sorted distinct codes of the space: all of them
+        every = shared and p._bidder_codes is None and c.size == n_codes  # every code of the space, in order
         for j in range(n_columns):
             if every:
                 totals[j] += w * p.bidder_sums[:, j]
             else:
                 totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, j], minlength=n_codes)
-    if space is not None and all(p._bidder_space is space for p in pieces):
+    if shared:
         seen = np.zeros(n_codes, dtype=bool)
         for c in codes:
             seen[c] = True
@@ -620,6 +628,8 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple
 def _distinct_bidders(pieces: Sequence[StratumPiece]) -> int:
     space = pieces[0]._bidder_space
     if space is not None and all(p._bidder_space is space for p in pieces):
+        if any(p._bidder_codes is None for p in pieces):  # a piece with every code of the space
+            return int(max(p.bidder_ids.size for p in pieces if p._bidder_codes is None))
         size = max(int(p._bidder_codes.max()) + 1 if p._bidder_codes.size else 0 for p in pieces)
         seen = np.zeros(size, dtype=bool)
         for p in pieces:
@@ -859,7 +869,8 @@ def _warn(message: str) -> None:
 def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     """Pieces as four plain frames (text, integer, float and bool columns) for a results table.
 
-    Every frame starts with the key columns ``day`` (ISO text or null), ``n_bidders``, ``shard``.
+    Text columns have pandas' string dtype (``str``). Every frame starts with the key columns
+    ``day`` (ISO text, missing when the pieces have no day), ``n_bidders``, ``shard``.
 
     * ``strata``: one row per piece: ``n_auctions, n_bids, max_bid, bid_exponent,
       floor_quantile, has_quality, flags`` (comma-joined, ``''`` for none) and
@@ -913,30 +924,32 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
         }))
         if p.bidder_ids is not None:
             b = p.bidder_ids.size
+            rows = b * (k_arms + 1)
+            # text columns built once per distinct value and repeated by ``take`` (no per-row conversion)
             sums.append(pd.DataFrame({
-                **{c: [v] * (b * (k_arms + 1)) for c, v in key.items()},
-                "bidder_id": np.tile(_as_text(p.bidder_ids), k_arms + 1),
-                "arm": np.repeat(np.array(names, dtype=object), b),
+                "day": pd.array([p.day], dtype="str").take(np.zeros(rows, dtype=np.intp)),
+                "n_bidders": np.full(rows, p.n_bidders, dtype=np.int64),
+                "shard": np.full(rows, p.shard, dtype=np.int64),
+                "bidder_id": pd.array(_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_arms + 1)),
+                "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_arms + 1), b)),
                 "value": p.bidder_sums.T.ravel(),
             }))
-    key_types = {"day": object, "n_bidders": np.int64, "shard": np.int64}
+    key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64}
     columns = {
         "strata": {**key_types, "n_auctions": np.int64, "n_bids": np.int64, "max_bid": float, "bid_exponent": np.int64,
-                   "floor_quantile": float, "has_quality": bool, "flags": object, "n_distinct_bidders": np.int64},
-        "arms": {**key_types, "arm_index": np.int64, "arm": object, "revenue_per_auction": float,
+                   "floor_quantile": float, "has_quality": bool, "flags": "str", "n_distinct_bidders": np.int64},
+        "arms": {**key_types, "arm_index": np.int64, "arm": "str", "revenue_per_auction": float,
                  "welfare_per_auction": float, "n_auctions": np.int64, "realized_revenue_sum": float,
                  "realized_revenue_squares": float},
-        "covariance": {**key_types, "arm_i": object, "metric_i": object, "arm_j": object, "metric_j": object,
+        "covariance": {**key_types, "arm_i": "str", "metric_i": "str", "arm_j": "str", "metric_j": "str",
                        "value": float},
-        "bidder_sums": {**key_types, "bidder_id": object, "arm": object, "value": float},
+        "bidder_sums": {**key_types, "bidder_id": "str", "arm": "str", "value": float},
     }
     parts = {"strata": [pd.DataFrame(strata)] if strata else [], "arms": arms, "covariance": cov, "bidder_sums": sums}
     out = {}
     for name, types in columns.items():
         frame = pd.concat(parts[name], ignore_index=True) if parts[name] else pd.DataFrame(columns=list(types))
-        frame = frame[list(types)].astype(types)
-        frame["day"] = frame["day"].where(frame["day"].notna(), None)
-        out[name] = frame
+        out[name] = frame[list(types)].astype(types)
     return out
 
 

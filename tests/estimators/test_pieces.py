@@ -339,7 +339,7 @@ def test_pieces_round_trip_through_plain_frames_exactly():
     assert tuple(frames) == PIECE_FRAMES
     for frame in frames.values():
         for column, dtype in frame.dtypes.items():
-            assert dtype.kind in "ifb" or (dtype == object and frame[column].map(lambda v: v is None or isinstance(v, str)).all()), column
+            assert dtype.kind in "ifb" or pd.api.types.is_string_dtype(dtype), (column, dtype)
     back = pieces_from_frames({k: v.sample(frac=1.0, random_state=0) if k != "strata" else v for k, v in frames.items()})
     assert len(back) == len(pieces)
     for a, b in zip(pieces, back):

@@ -213,7 +213,8 @@ def test_three_reruns_of_a_seven_day_backfill_are_identical(airflow_db, tmp_path
         snapshots.append({t: _rows(tmp_path / "r.duckdb", t) for t in TABLES})
     for table in TABLES:
         first = snapshots[0][table]
-        assert first["ds"].nunique() == 7
+        # the first three days sit in the default three-day warm-up: left out of the experiment to date
+        assert first["ds"].nunique() == (4 if table == "arm_estimates_to_date" else 7)
         for later in snapshots[1:]:
             pd.testing.assert_frame_equal(later[table].drop(columns=provenance), first.drop(columns=provenance), check_exact=True)
         run_ids = [set(s[table]["run_id"]) for s in snapshots]

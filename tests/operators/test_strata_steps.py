@@ -6,7 +6,6 @@ import datetime as dt
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 import pytest
 import scipy.stats as st
 
