@@ -32,7 +32,7 @@ import scipy.stats as st
 from counterbid.estimators import (
     MAX_BIDS_PER_SHARD, PIECE_FRAMES, EstimatorWarning, InputError, PreparedBids, allocation_rule, combine_pieces,
     equilibrium_bid_function, estimate_arms, expected_revenue_per_auction, mixture_rule, n_shards, parse_experiments,
-    pieces_from_frames, pieces_to_frames, prepare_bids, shard_of, simulate_experiment, stratum_pieces,
+    pieces_from_frames, pieces_to_frames, shard_of, simulate_experiment, stratum_pieces,
 )
 from counterbid.estimators.study import simulate_prepared, study_experiment
 
