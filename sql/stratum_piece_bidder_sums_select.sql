@@ -1,9 +1,9 @@
--- Bidder sums of the stored stratum pieces of one experiment on the days $days (a list), each
--- piece's rows in the order they were written (rowid), so that a combination sums them in the
--- same order as the day it was computed on.
+-- Bidder sums of the stored stratum pieces of one experiment on the days $days (a list), in one
+-- order every engine gives (by day, stratum, shard, bidder and arm), so that a combination
+-- read back from any sink adds them in the same order.
 select
     experiment_id, ds, n_bidders, shard, bidder_id, arm, value
 from {{ schema }}.stratum_piece_bidder_sums
 where experiment_id = $experiment_id
     and list_contains($days, ds)
-order by ds, n_bidders, shard, rowid
+order by ds, n_bidders, shard, bidder_id, arm

@@ -58,8 +58,11 @@ def test_every_statement_is_one_statement_in_every_dialect_with_the_same_paramet
 
     from counterbid.sql import DIALECTS, has_dialect_file, parameter_names, statement
 
+    # Lake, staging and check statements (lake_, bid_log_, staged_, check_, clicks_, bench_) run on an
+    # in-memory DuckDB connection only; the rest are what a results sink runs, in every dialect.
+    duckdb_only = ("lake_", "bid_log_", "staged_", "check_", "clicks_", "bench_")
     for dialect in DIALECTS:
-        names = sql_names(dialect)
+        names = [n for n in sql_names(dialect) if dialect == "duckdb" or not n.startswith(duckdb_only)]
         assert "results_insert_arm_estimates" in names
         for name in names:
             text = statement(name, dialect=dialect, **_identifiers(name, dialect))

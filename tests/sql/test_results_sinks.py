@@ -31,7 +31,8 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", to_date=False, status="ok", lev
                    confidence_level=level, cluster=cluster, payment_rule="first_price", floor=0.0,
                    method_version="ordstat-1", run_id=run_id, computed_at=NOW)
         if to_date:
-            row["first_ds"] = D1
+            row.update(first_ds=D1, days_used=f"{D1}..{ds}", days_left_out="", n_days_used=(ds - D1).days + 1,
+                       n_days_left_out=0)
         rows.append(row)
     return pa.Table.from_pandas(pd.DataFrame(rows), preserve_index=False)
 
