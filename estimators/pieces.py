@@ -1033,6 +1033,11 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
             arm_auctions=arms["n_auctions"].to_numpy(dtype=np.int64)[:k_arms],
             realized_sum=arms["realized_revenue_sum"].to_numpy(dtype=float)[:k_arms],
             realized_squares=arms["realized_revenue_squares"].to_numpy(dtype=float)[:k_arms],
-            floor_quantile=float(row["floor_quantile"]), max_bid=float(row["max_bid"]),
+            floor_quantile=_number(row["floor_quantile"]), max_bid=_number(row["max_bid"]),
             bid_exponent=int(row["bid_exponent"]), has_quality=bool(row["has_quality"]), flags=flags))
     return pieces
+
+
+def _number(value) -> float:
+    """A stored float, NaN where the sink gave back a null (PostgreSQL stores NaN written by COPY as null)."""
+    return np.nan if value is None or pd.isna(value) else float(value)
