@@ -13,8 +13,13 @@ $(STAMP): pyproject.toml
 	$(PY) -m pip install --quiet --disable-pip-version-check -e '.[test]'
 	touch $(STAMP)
 
-test: $(STAMP)
-	$(PY) -m pytest
+# A Java 17/21 runtime for Spark in local mode (.ci/java-home finds one, or installs Debian's as root).
+JAVA_HOME_FILE := $(VENV)/java-home
+$(JAVA_HOME_FILE): .ci/java-home | $(STAMP)
+	.ci/java-home > $@.tmp && mv $@.tmp $@
+
+test: $(STAMP) $(JAVA_HOME_FILE)
+	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) -m pytest
 
 # 14 days of the invented Quillfen marketplace through the daily DAG (dag.test per day), then the report.
 demo: $(STAMP)
@@ -27,8 +32,8 @@ demo: $(STAMP)
 	@echo "demo wall time: $$(( $$(date +%s) - $$(cat demo_output/.started) ))s"
 
 # Benchmark against the physical floor (1M, 5M, 10M bids; several minutes). Not part of `make test`.
-bench: $(STAMP)
-	$(PY) tests/benchmarks/bench_estimator.py --out bench_results.md
+bench: $(STAMP) $(JAVA_HOME_FILE)
+	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) tests/benchmarks/bench_estimator.py --out bench_results.md
 
 bench-strata: $(STAMP)
 	$(PY) tests/benchmarks/bench_strata.py --out bench_strata_results.md

@@ -19,6 +19,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--max-bids-per-shard", type=int, metavar="N", default=None,
                    help="estimate a log with more bids in ceil(bids / N) shards by a stable hash of auction_id, one at a "
                         "time (default: $COUNTERBID_MAX_BIDS_PER_SHARD, else 4000000); memory follows the shard")
+    p.add_argument("--engine", choices=("local", "spark"), default="local",
+                   help="local: shard by shard in this process (default); spark: Spark reads the log and estimates the "
+                        "shards in parallel (needs the spark extra and a Java 17/21 runtime)")
+    p.add_argument("--spark-master", metavar="URL", default=None,
+                   help="master of the Spark session --engine spark starts (default: $COUNTERBID_SPARK_MASTER, else "
+                        "local[*]); settings in $SPARK_CONF_DIR/spark-defaults.conf apply as usual")
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
 
@@ -55,15 +61,28 @@ def run(args: argparse.Namespace) -> int:
     from counterbid.readers.shards import distinct_experiment_ids, estimate_bid_log, max_bids_per_shard
 
     max_bids = max_bids_per_shard(args.max_bids_per_shard, what="--max-bids-per-shard")
-    if not Path(args.bids).exists():
+    if args.engine == "spark":
+        from counterbid.readers.spark_shards import require_pyspark
+
+        require_pyspark()  # before anything is read: one line saying what to install
+    local_path = "://" not in args.bids  # Spark also reads object-store URLs
+    if local_path and not Path(args.bids).exists():
         raise InputError(f"{args.bids}: no such file or folder")
     # which experiment: the distinct ids only (batch by batch), never the column
-    experiment = _choose_experiment(args.experiment, args.experiment_id, distinct_experiment_ids(args.bids))
+    ids = distinct_experiment_ids(args.bids) if local_path else None
+    experiment = _choose_experiment(args.experiment, args.experiment_id, ids)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
-        # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)
-        result = estimate_bid_log(args.bids, experiment, max_bids_per_shard=max_bids, confidence_level=args.level,
-                                  cluster=args.cluster)
+        if args.engine == "spark":
+            from counterbid.readers.spark_shards import estimate_bid_log_on_spark, spark_session
+
+            result = estimate_bid_log_on_spark(args.bids, experiment, spark=spark_session(args.spark_master),
+                                               max_bids_per_shard=max_bids, confidence_level=args.level,
+                                               cluster=args.cluster)
+        else:
+            # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)
+            result = estimate_bid_log(args.bids, experiment, max_bids_per_shard=max_bids,
+                                      confidence_level=args.level, cluster=args.cluster)
     for w in caught:
         if issubclass(w.category, EstimatorWarning):
             print(f"counterbid: warning: {w.message}", file=sys.stderr)
@@ -77,6 +96,7 @@ def run(args: argparse.Namespace) -> int:
             "cluster": result.attrs["cluster"],  # the clustering used
             "n_excluded_auctions": excluded,
             "shards": result.attrs["shards"],
+            "engine": args.engine,
             "method_version": result.attrs["method_version"],
             "payment_rule": result.attrs["payment_rule"],
             "floor": result.attrs["floor"],

@@ -21,7 +21,7 @@ import pyarrow.dataset as pads
 from counterbid.estimators.bid_contract import BID_CONTRACT, INTEGER_RANGE, ColumnRule
 from counterbid.estimators.errors import InputError
 
-__all__ = ["BATCH_ROWS", "arrow_kind", "read_bids"]
+__all__ = ["BATCH_ROWS", "arrow_kind", "bids_from_arrow", "read_bids"]
 
 #: Rows converted at a time; the frame's columns are filled in place, batch by batch.
 BATCH_ROWS = 2**20
@@ -62,7 +62,7 @@ _ACCEPTS = {
 }
 
 
-def _refuse_declared_type(path: Path, rule: ColumnRule, t: pa.DataType) -> None:
+def _refuse_declared_type(path: Path | str, rule: ColumnRule, t: pa.DataType) -> None:
     if rule.kind == "integer" and arrow_kind(t) not in _ACCEPTS["integer"]:
         raise InputError(f"{path}: column {rule.name!r} has type {t}; the bids data contract needs an integer type "
                          f"({rule.meaning})")
@@ -71,7 +71,7 @@ def _refuse_declared_type(path: Path, rule: ColumnRule, t: pa.DataType) -> None:
                          "integer type (a decimal only with scale 0)")
 
 
-def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
+def read_bids(path: str | Path, columns: list[str] | None = None, *, source: str | None = None) -> pd.DataFrame:
     """Read a bid log from a Parquet file or a (Hive-partitioned) folder of Parquet files.
 
     Parameters
@@ -80,6 +80,9 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
         A Parquet file, or a folder of them (``key=value`` sub-folders become columns).
     columns : list of str, optional
         Columns to read; names the log does not have are skipped. Default: all.
+    source : str, optional
+        Name of the input in error messages (default: ``path``); a shard names the log it came
+        from, not its temporary folder.
 
     Returns
     -------
@@ -106,39 +109,85 @@ def read_bids(path: str | Path, columns: list[str] | None = None) -> pd.DataFram
     time; a file written from categoricals keeps its dictionaries, unified by Arrow instead).
     """
     path = Path(path)
+    where = path if source is None else source
     if not path.exists():
-        raise InputError(f"{path}: no such file or folder")
+        raise InputError(f"{where}: no such file or folder")
     try:
         partitioning = "hive" if path.is_dir() else None  # key=value folders name columns only below `path`
         schema = pads.dataset(str(path), format="parquet", partitioning=partitioning).schema
-        wanted = schema.names if columns is None else [c for c in columns if c in schema.names]
-        for name in wanted:
-            if name in BID_CONTRACT:
-                _refuse_declared_type(path, BID_CONTRACT[name], schema.field(name).type)
+        wanted = _refuse_declared_types(schema, columns, where)
         fmt = pads.ParquetFileFormat(
             default_fragment_scan_options=pads.ParquetFragmentScanOptions(pre_buffer=False))
         dataset = pads.dataset(str(path), format=fmt, partitioning=partitioning)
         n_rows = dataset.count_rows()
         if n_rows == 0:
-            raise InputError(f"{path}: holds no bids (0 rows)")
+            raise InputError(f"{where}: holds no bids (0 rows)")
         filled = {}
         # One column at a time, one batch in flight: Arrow's buffers stay about one row group of
         # one column (Parquet is columnar, so the file's bytes are still read once in all).
         for name in wanted:
-            column, done = _Column(name, dataset.schema.field(name).type, n_rows, source=path), 0
+            column, done = _Column(name, dataset.schema.field(name).type, n_rows, source=where), 0
             for batch in dataset.to_batches(columns=[name], batch_size=BATCH_ROWS, batch_readahead=0,
                                               fragment_readahead=0, use_threads=False):
                 column.put(done, batch.column(0))
                 done += batch.num_rows
             if done != n_rows:  # the files changed under us
-                raise InputError(f"{path}: read {done} rows of {name!r} where the metadata promised {n_rows}; "
+                raise InputError(f"{where}: read {done} rows of {name!r} where the metadata promised {n_rows}; "
                                  "was it being written?")
             filled[name] = column.result()
             del column
             pa.default_memory_pool().release_unused()  # hand the decoding buffers back to the system
     except (pa.ArrowInvalid, pa.ArrowIOError, pa.ArrowTypeError, OSError) as exc:
         detail = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(f"{path}: not a readable Parquet file ({detail})") from None
+        raise InputError(f"{where}: not a readable Parquet file ({detail})") from None
+    return pd.DataFrame(filled, copy=False)
+
+
+def _refuse_declared_types(schema: pa.Schema, columns: list[str] | None, where) -> list[str]:
+    """The columns to read (``columns`` the schema has, else all); refuses contract columns of a wrong type."""
+    wanted = schema.names if columns is None else [c for c in columns if c in schema.names]
+    for name in wanted:
+        if name in BID_CONTRACT:
+            _refuse_declared_type(where, BID_CONTRACT[name], schema.field(name).type)
+    return wanted
+
+
+def bids_from_arrow(table: pa.Table, columns: list[str] | None = None, *, source: str = "bids") -> pd.DataFrame:
+    """The frame :func:`read_bids` returns, from an Arrow table already in memory.
+
+    The same translation of the bids data contract (the same refusals, the same dtypes), for
+    bids that arrive as Arrow rather than as a file: a Spark shard
+    (:mod:`counterbid.readers.spark_shards`).
+
+    Parameters
+    ----------
+    table : pyarrow.Table
+    columns : list of str, optional
+        Columns to keep; names the table does not have are skipped. Default: all.
+    source : str
+        Name of the input in error messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        As :func:`read_bids`.
+
+    Raises
+    ------
+    InputError
+        As :func:`read_bids`: no rows, a contract column of a refused type, an integer outside int64.
+    """
+    wanted = _refuse_declared_types(table.schema, columns, source)
+    if table.num_rows == 0:
+        raise InputError(f"{source}: holds no bids (0 rows)")
+    filled = {}
+    for name in wanted:
+        column, done = _Column(name, table.schema.field(name).type, table.num_rows, source=source), 0
+        for chunk in table.column(name).chunks:
+            column.put(done, chunk)
+            done += len(chunk)
+        filled[name] = column.result()
+        del column
     return pd.DataFrame(filled, copy=False)
 
 
@@ -165,7 +214,7 @@ class _Column:
     kept as Arrow arrays and dictionary-encoded once, over the whole column.
     """
 
-    def __init__(self, name: str, kind: pa.DataType, n_rows: int, *, source: Path):
+    def __init__(self, name: str, kind: pa.DataType, n_rows: int, *, source: Path | str):
         self.name, self.n_rows, self.source = name, n_rows, source
         self.rule = BID_CONTRACT.get(name)
         arrow = arrow_kind(kind)

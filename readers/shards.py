@@ -269,7 +269,7 @@ def pieces_by_shard(
     shards = list(shards)
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
-        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS])
+        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS], source=where)
         prepared = prepare_bids(bids, experiment, source=where)
         del bids  # only the validated arrays from here on: one shard bounds the memory
         excluded += int(prepared.n_excluded_auctions)

@@ -9,7 +9,9 @@ dialect (:data:`DIALECTS`) :func:`statement` transpiles it with sqlglot, which a
 DuckDB named parameters ``$name`` into psycopg's ``%(name)s``. Where a statement cannot be shared
 it has an explicit per-dialect file ``name.<dialect>.sql``, written in that dialect (with
 psycopg's ``%(name)s`` for PostgreSQL), which then takes precedence; a statement that only one
-dialect needs has only that file.
+dialect needs has only that file. The Spark engine's statements (:data:`ENGINE_DIALECTS`) are
+only such files, ``name.spark.sql`` in Spark SQL with Spark's ``:name`` parameters; nothing is
+transpiled to them.
 """
 
 from __future__ import annotations
@@ -21,12 +23,14 @@ from importlib import resources
 from counterbid.estimators.errors import InputError
 
 __all__ = [
-    "DIALECTS", "IDENTIFIER", "dialect_files", "has_dialect_file", "load_sql", "parameter_names", "quote_identifier", "render_sql", "sql_names",
+    "DIALECTS", "ENGINE_DIALECTS", "IDENTIFIER", "dialect_files", "has_dialect_file", "load_sql", "parameter_names", "quote_identifier", "render_sql", "sql_names",
     "statement", "validate_identifier",
 ]
 
 #: SQL dialects a statement can be produced for (sqlglot's dialect names). The sources are DuckDB.
 DIALECTS = ("duckdb", "postgres")
+#: Dialects of an engine's own statements: ``name.<dialect>.sql`` files only, never transpiled.
+ENGINE_DIALECTS = ("spark",)
 
 #: Identifiers taken from configuration: a letter or underscore, then letters, digits, underscores.
 IDENTIFIER = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,62}$")
@@ -73,7 +77,7 @@ def sql_names(dialect: str | None = None) -> list[str]:
         return sorted(shared)
     _check_dialect(dialect)
     own = {m.group(1) for p in root.iterdir() if (m := _DIALECT_FILE.match(p.name)) and m.group(2) == dialect}
-    return sorted(shared | own)
+    return sorted(own if dialect in ENGINE_DIALECTS else shared | own)
 
 
 def dialect_files() -> dict[str, list[str]]:
@@ -86,8 +90,8 @@ def dialect_files() -> dict[str, list[str]]:
 
 
 def _check_dialect(dialect: str) -> str:
-    if dialect not in DIALECTS:
-        raise InputError(f"SQL dialect must be one of {', '.join(DIALECTS)}; got {dialect!r}")
+    if dialect not in DIALECTS + ENGINE_DIALECTS:
+        raise InputError(f"SQL dialect must be one of {', '.join(DIALECTS + ENGINE_DIALECTS)}; got {dialect!r}")
     return dialect
 
 
@@ -179,6 +183,8 @@ def _statement(name: str, dialect: str, identifiers: tuple[tuple[str, str], ...]
         return _render(load_sql(name, dialect), name, ids)
     if dialect == "duckdb":
         return render_sql(name, **ids)
+    if dialect in ENGINE_DIALECTS:
+        raise InputError(f"no SQL statement {name!r} for dialect {dialect!r} in counterbid.sql")
     import sqlglot
 
     source = render_sql(name, **ids)

