@@ -772,9 +772,9 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
               "under-cover (status 'few_bids'); pool more auctions before reading them")
     welfare = estimate[k_arms:2 * k_arms]
     welfare_identified = not any("not_identified" in p.flags for p in pieces)
-    if any(np.isfinite(welfare)):
-        _warn("welfare_per_auction is published without an interval: the spread of the highest bid, which "
-              "welfare weighs with a point mass, makes normal intervals under-cover (status 'no_interval')")
+    # Welfare is always published without an interval (the spread of the highest bid, which welfare
+    # weighs with a point mass, makes normal intervals under-cover): a fixed property, carried by
+    # the status flag 'no_interval' and the report's assumptions, not a warning on every run.
     if not welfare_identified:
         _warn("welfare is not identified: the mixture's top two positions weigh the same "
               "(or its bottom positions do), so values at that end cannot be recovered from bids")

@@ -159,8 +159,11 @@ def test_status_column_follows_n_bids_and_attrs_are_kept(base):
 
 def test_welfare_is_published_without_an_interval(base):
     exp, bids, _ = base
-    with pytest.warns(EstimatorWarning, match=r"welfare_per_auction is published without an interval"):
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
         out = estimate_arms(bids, exp)
+    # a fixed property of the metric, said by its status flag: no warning on every run (task logs stay readable)
+    assert not [w for w in caught if issubclass(w.category, EstimatorWarning)]
     welfare = out[out["metric"] == "welfare_per_auction"]
     assert np.isfinite(welfare["estimate"]).all()
     assert welfare[["std_error", "ci_low", "ci_high"]].isna().all().all()

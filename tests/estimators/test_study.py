@@ -128,7 +128,6 @@ def test_bad_share():
 STUDY_FLOOR = 0.6
 
 
-@pytest.mark.filterwarnings("ignore:welfare_per_auction is published without an interval")
 @pytest.mark.parametrize("payment_rule", ["gsp", "vcg"])
 @pytest.mark.parametrize("floor", [None, STUDY_FLOOR])
 def test_fast_estimator_equals_estimate_arms_for_rule_and_floor(payment_rule, floor):
