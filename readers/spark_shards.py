@@ -28,6 +28,7 @@ import re
 import sys
 import warnings
 from collections.abc import Mapping
+from contextlib import contextmanager
 
 import pyarrow as pa
 
@@ -42,6 +43,7 @@ __all__ = [
     "ENGINES",
     "SPARK_EXTRA",
     "SPARK_MASTER_ENV",
+    "STATEMENT_PARAMETERS",
     "estimate_bid_log_on_spark",
     "lake_partition_pieces_on_spark",
     "require_pyspark",
@@ -60,6 +62,8 @@ _BIDS_VIEW = "counterbid_bids"
 _FILES_VIEW = "counterbid_bid_files"
 #: Bits of the in-file row index in a bid's read-order key (file rank in the bits above).
 _ROW_BITS = 40
+#: Session setting under which Spark reads Parquet's nanosecond timestamps (pandas' datetimes) as integers.
+_NANOS_AS_LONG = "spark.sql.legacy.parquet.nanosAsLong"
 #: Columns of each shard's answer.
 _ANSWER = "shard long, n_bids long, n_excluded long, error string, warnings array<string>, pieces binary"
 
@@ -109,8 +113,11 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     for key, value in (config or {}).items():
         builder = builder.config(key, value)
     try:
-        session = builder.getOrCreate()
-        session.sparkContext.setLogLevel("ERROR")  # Spark's own warnings would bury counterbid's on stderr
+        with _quiet_pyspark():
+            session = builder.getOrCreate()
+        # Spark's own warnings and error logs (a failed task's Java stack) would bury counterbid's
+        # one line on stderr; what went wrong reaches the caller as an exception
+        session.sparkContext.setLogLevel("FATAL")
         return session
     except Exception as exc:  # py4j and pyspark raise their own types; Java missing is the usual cause
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
@@ -118,23 +125,53 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
                          "to one") from None
 
 
-#: Spark's error classes of an input it cannot read (raised when a job runs, not when it is planned).
-_READ_FAILURES = re.compile(r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file")
+#: Spark's error classes of an input it cannot read (on planning, when footers are read, or when a job runs).
+_READ_FAILURES = re.compile(r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file|PARQUET_TYPE_ILLEGAL")
+#: The line of a Spark error that names its class (``[FAILED_READ_FILE.CANNOT_READ_FILE_FOOTER] ...``).
+_ERROR_CLASS_LINE = re.compile(r"(\[[A-Z][A-Z_.]*\][^\n]*)")
+
+
+def _is_read_failure(exc: Exception) -> bool:
+    """Whether ``exc`` (an ``AnalysisException`` or py4j's wrapper of a ``SparkException``) is about the input files."""
+    from pyspark.sql.utils import AnalysisException
+
+    return isinstance(exc, AnalysisException) or bool(_READ_FAILURES.search(str(exc)))
 
 
 def _analysis_error(exc: Exception, source: str) -> InputError:
-    """One line for Spark's error on reading ``source``."""
+    """One line for Spark's error on reading ``source``: Spark's own classed line, without the Java stack."""
     text = str(exc).strip()
-    first = text.splitlines()[0] if text else type(exc).__name__
     if "PATH_NOT_FOUND" in text or "Path does not exist" in text:
         return InputError(f"{source}: no such file or folder")
+    found = _ERROR_CLASS_LINE.search(text)
+    first = found.group(1).strip() if found else (text.splitlines()[0] if text else type(exc).__name__)
     return InputError(f"{source}: not a readable Parquet file ({first})")
 
 
-def _statement(name: str) -> str:
+@contextmanager
+def _quiet_pyspark():
+    """PySpark's notice that it does not support this pandas yet (counterbid hands Spark Arrow, never pandas) is not shown."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
+        yield
+
+
+#: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
+STATEMENT_PARAMETERS = {
+    "spark_bid_files": frozenset(),
+    "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
+    "spark_lake_partition": frozenset({"ds", "experiment_id"}),
+}
+
+
+def _run_sql(spark, name: str, **args):
+    """Spark's frame of the statement ``sql/<name>.spark.sql`` with ``args`` bound (exactly its parameters)."""
     from counterbid.sql import statement
 
-    return statement(name, dialect="spark")
+    if set(args) != STATEMENT_PARAMETERS[name]:  # a programming error, not an input's
+        raise ValueError(f"statement {name!r} binds {sorted(STATEMENT_PARAMETERS[name])}; got {sorted(args)}")
+    text = statement(name, dialect="spark")
+    return spark.sql(text, args=args) if args else spark.sql(text)
 
 
 def _with_shards(spark, bids, *, shards: int, source: str):
@@ -148,13 +185,23 @@ def _with_shards(spark, bids, *, shards: int, source: str):
 
     try:
         bids.createOrReplaceTempView(_BIDS_VIEW)
-        files = sorted(r[0] for r in spark.sql(_statement("spark_bid_files")).collect())
+        files = sorted(r[0] for r in _run_sql(spark, "spark_bid_files").collect())
         spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
             .createOrReplaceTempView(_FILES_VIEW)
-        sharded = spark.sql(_statement("spark_bids_with_shard"), args={"n_shards": int(shards), "row_bits": _ROW_BITS})
+        sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
     except AnalysisException as exc:
         raise _analysis_error(exc, source) from None
+
+
+#: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
+_SHARD_MARK = "\x1f"
+_MARKED_SHARD = re.compile(f"{_SHARD_MARK}([0-9]+){_SHARD_MARK}")
+
+
+def _shard_names(several: bool):
+    """A worker's message as the local engine words it: ``<source> (shard K)`` when several shards hold bids, else ``<source>``."""
+    return lambda text: _MARKED_SHARD.sub(r" (shard \1)" if several else "", text)
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
@@ -165,7 +212,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     from .bid_log import bids_from_arrow
 
     shard = int(table.column("shard")[0].as_py())
-    where = f"{source} (shard {shard})" if multi else source
+    where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
     table = table.take(pc.sort_indices(table.column("bid_order")))
     n_bids = table.num_rows
     error, pieces, excluded, caught_messages = None, [], 0, []
@@ -232,19 +279,22 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
         grouped = sharded.repartition(int(shards), "shard").groupBy("shard")
-        answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
+        with _quiet_pyspark():
+            answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
         raise
+    # as locally, a shard is named only when more than one shard holds bids (which only the answers tell)
+    named = _shard_names(len(answers) > 1)
     for answer in answers:
         if answer["error"] is not None:
-            raise InputError(answer["error"])
+            raise InputError(named(answer["error"]))
     pieces: list[StratumPiece] = []
     excluded = 0
     for answer in answers:
         for message in answer["warnings"] or []:
-            warnings.warn(message, EstimatorWarning, stacklevel=2)
+            warnings.warn(named(message), EstimatorWarning, stacklevel=2)
         excluded += int(answer["n_excluded"])
         pieces += pickle.loads(answer["pieces"])
     if not pieces:
@@ -259,14 +309,17 @@ def _read_parquet(spark, path: str, *, source: str, view: str):
     (Spark's ``_metadata`` of a file source, which a view no longer exposes): the read order the
     local engine sees.
     """
-    from pyspark.sql.utils import AnalysisException
-
+    # pandas writes datetimes as nanosecond timestamps, which Spark refuses to read at all; as
+    # integers they read (the estimate never reads such a column: the local reader skips it too)
+    spark.conf.set(_NANOS_AS_LONG, "true")
     try:
         frame = spark.read.option("mergeSchema", "true").parquet(path)
         frame = frame.select("*", frame["_metadata.file_path"].alias("bid_file"),
                              frame["_metadata.row_index"].alias("bid_row"))
-    except AnalysisException as exc:
-        raise _analysis_error(exc, source) from None
+    except Exception as exc:  # AnalysisException, or py4j's wrapper of Spark's error reading a footer
+        if _is_read_failure(exc):
+            raise _analysis_error(exc, source) from None
+        raise
     frame.createOrReplaceTempView(view)
     return frame
 
@@ -305,7 +358,12 @@ def estimate_bid_log_on_spark(
     spark = spark or spark_session()
     source = str(path)
     bids = _read_parquet(spark, source, source=source, view="counterbid_bid_log")
-    rows = bids.count()
+    try:
+        rows = bids.count()
+    except Exception as exc:  # a footer Spark could list but not read
+        if _READ_FAILURES.search(str(exc)):
+            raise _analysis_error(exc, source) from None
+        raise
     if rows == 0:
         raise InputError(f"{source}: holds no bids (0 rows)")
     shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
@@ -349,7 +407,7 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     if "ds" not in lake.columns or "experiment_id" not in lake.columns:
         raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
     try:
-        day = spark.sql(_statement("spark_lake_partition"), args={"ds": ds, "experiment_id": experiment.id})
+        day = _run_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id)
     except AnalysisException as exc:
         raise _analysis_error(exc, source) from None
     return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source)
