@@ -33,6 +33,7 @@ from contextlib import contextmanager
 import pyarrow as pa
 
 from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, prepare_bids
+from counterbid.estimators.arms import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.pieces import StratumPiece, n_shards, stratum_pieces
 
@@ -148,6 +149,19 @@ def _analysis_error(exc: Exception, source: str) -> InputError:
     return InputError(f"{source}: not a readable Parquet file ({first})")
 
 
+def _quiet_query_loggers() -> None:
+    """PySpark's loggers that print every SQL error with its Java stack as JSON on stderr, silenced.
+
+    The error itself still reaches counterbid, which turns the ones about the input into one line.
+    """
+    import logging
+
+    from pyspark.logger import PySparkLogger
+
+    for name in ("SQLQueryContextLogger", "DataFrameQueryContextLogger"):
+        PySparkLogger.getLogger(name).setLevel(logging.CRITICAL)
+
+
 @contextmanager
 def _quiet_pyspark():
     """PySpark's notice that it does not support this pandas yet (counterbid hands Spark Arrow, never pandas) is not shown."""
@@ -184,7 +198,7 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     from pyspark.sql.utils import AnalysisException
 
     try:
-        bids.createOrReplaceTempView(_BIDS_VIEW)
+        bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)  # a staged day's shard=K folders: recomputed
         files = sorted(r[0] for r in _run_sql(spark, "spark_bid_files").collect())
         spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
             .createOrReplaceTempView(_FILES_VIEW)
@@ -269,6 +283,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         The first shard's error (by shard number), the line the local engine gives for that shard.
     """
     columns = [c for c in ["experiment_id", *BID_COLUMNS] if c in bids.columns]
+    if "auction_id" not in columns:  # the shards need it: prepare_bids's line, before any statement names it
+        raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
 
@@ -309,6 +325,7 @@ def _read_parquet(spark, path: str, *, source: str, view: str):
     (Spark's ``_metadata`` of a file source, which a view no longer exposes): the read order the
     local engine sees.
     """
+    _quiet_query_loggers()
     # pandas writes datetimes as nanosecond timestamps, which Spark refuses to read at all; as
     # integers they read (the estimate never reads such a column: the local reader skips it too)
     spark.conf.set(_NANOS_AS_LONG, "true")

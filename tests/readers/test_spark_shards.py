@@ -224,3 +224,27 @@ def test_unreadable_inputs(spark, tmp_path):
     prefix = f"{text}: not a readable Parquet file ("
     assert local.startswith(prefix) and on_spark.startswith(prefix)
     assert "\n" not in on_spark and on_spark.endswith(")") and "CANNOT_READ_FILE_FOOTER" in on_spark
+
+
+def test_missing_or_null_auction_ids(spark, tmp_path):
+    bids = _log(800, rng=6)
+    without = tmp_path / "no_auction_id.parquet"
+    bids.drop(columns=["auction_id"]).to_parquet(without, index=False)
+    local, on_spark = _local_and_spark_errors(spark, without)
+    assert on_spark == local and on_spark.startswith(f"{without}: column 'auction_id' is missing (required: ")
+    # in shards Spark still says what is missing (the local engine's DuckDB split names its own binder error)
+    on_spark_sharded = _local_and_spark_errors(spark, without, max_bids_per_shard=1000)[1]
+    assert on_spark_sharded == on_spark
+
+    nulls = tmp_path / "null_auction_id.parquet"
+    ids = bids["auction_id"].astype("Int64")
+    ids[700] = pd.NA
+    bids.assign(auction_id=ids).to_parquet(nulls, index=False)
+    local, on_spark = _local_and_spark_errors(spark, nulls)
+    assert on_spark == local == f"{nulls}: column 'auction_id' row 700 is null"
+    # in shards the bid without an auction goes to shard 0, which refuses it by its row there
+    with pytest.raises(InputError) as sharded:
+        estimate_bid_log_on_spark(str(nulls), EXPERIMENTS["racks"], spark=spark, max_bids_per_shard=1000)
+    shard = shard_of(bids["auction_id"], 3)
+    row_in_shard_0 = int(((shard == 0) & (bids.index < 700)).sum())
+    assert str(sharded.value) == f"{nulls} (shard 0): column 'auction_id' row {row_in_shard_0} is null"
