@@ -12,8 +12,17 @@ which combines them (:func:`~counterbid.estimators.pieces.combine_pieces`). Insi
 rows keep the order the local engine reads them in (files by path, rows by position), so the
 pieces, the numbers and the row named by an error are the local engine's.
 
-Memory: a Python worker holds one shard (set by ``max_bids_per_shard``); the driver holds the
-pieces (a few numbers per stratum, plus per-bidder sums when clustering by bidder).
+Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
+only, which Spark hands it already in read order (the sort that groups the shard, one key longer);
+the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
+bidder).
+
+Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
+a shard is named only when several hold bids; a bid without an auction id is refused by shard 0's
+worker (its hash is null); columns of nanosecond timestamps (pandas' datetimes, which Spark
+otherwise refuses to read) are read as integers (``spark.sql.legacy.parquet.nanosAsLong`` is set
+on the session). Spark's and PySpark's logs of a failed task or query are silenced on the
+session: the error itself reaches the caller, as one line when it is about the input.
 
 Needs the ``spark`` extra (``pip install 'counterbid[spark]'``) and a Java runtime Spark supports
 (17 or 21) on every machine that runs Spark; workers need counterbid installed in the Python
@@ -227,7 +236,10 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
 
     shard = int(table.column("shard")[0].as_py())
     where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
-    table = table.take(pc.sort_indices(table.column("bid_order")))
+    order = table.column("bid_order").to_numpy()
+    if (order[1:] < order[:-1]).any():  # Spark sorts the shard's rows by it already; a copy only if it did not
+        table = table.take(pc.sort_indices(table.column("bid_order")))
+    del order
     n_bids = table.num_rows
     error, pieces, excluded, caught_messages = None, [], 0, []
     try:
@@ -294,7 +306,10 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
-        grouped = sharded.repartition(int(shards), "shard").groupBy("shard")
+        # rows of a shard in read order: the sort Spark needs for the groups anyway, one key longer
+        # only the columns the estimate reads travel (as the local reader reads only those)
+        grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
+                   .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
         with _quiet_pyspark():
             answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
