@@ -38,6 +38,7 @@ import sys
 import warnings
 from collections.abc import Mapping
 from contextlib import contextmanager
+from urllib.parse import unquote
 
 import pyarrow as pa
 
@@ -202,13 +203,16 @@ def _with_shards(spark, bids, *, shards: int, source: str):
 
     ``bids`` carries ``bid_file`` and ``bid_row`` (Spark's file metadata, added where the files
     are read). The read-order key ranks each row by its file's path, then by its row in the file:
-    the order in which the local engine reads the same input (DuckDB and Arrow list files by path).
+    the order in which the local engine reads the same input (Arrow lists a folder's files by their
+    whole path; DuckDB's glob of a split log does too while the files sit at one depth under
+    folders whose names sort alike either way, the usual ``key=value/part-N`` layout).
     """
     from pyspark.sql.utils import AnalysisException
 
     try:
         bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)  # a staged day's shard=K folders: recomputed
-        files = sorted(r[0] for r in _run_sql(spark, "spark_bid_files").collect())
+        # by the path itself, as Arrow lists a folder: Spark's file names are URIs (a space is %20)
+        files = sorted((r[0] for r in _run_sql(spark, "spark_bid_files").collect()), key=unquote)
         spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
             .createOrReplaceTempView(_FILES_VIEW)
         sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)

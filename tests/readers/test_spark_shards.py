@@ -15,6 +15,7 @@ import warnings
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 import pytest
 import scipy.stats as st
@@ -248,3 +249,20 @@ def test_missing_or_null_auction_ids(spark, tmp_path):
     shard = shard_of(bids["auction_id"], 3)
     row_in_shard_0 = int(((shard == 0) & (bids.index < 700)).sum())
     assert str(sharded.value) == f"{nulls} (shard 0): column 'auction_id' row {row_in_shard_0} is null"
+
+
+def test_read_order_is_the_order_of_the_paths(spark, tmp_path):
+    # folder names that sort differently as paths and as URIs ('a b' is 'a%20b' to Spark; '!' sorts between)
+    folder = tmp_path / "odd names"
+    labels = ["a b", "a!b", "a-b", "a", "b"]
+    for i, label in enumerate(labels):
+        (folder / f"lane={label}").mkdir(parents=True)
+        pq.write_table(pa.table({"auction_id": pa.array([i] * (i + 2), pa.int64())}),
+                       folder / f"lane={label}" / "part-0.parquet")
+    arrow_order = pads.dataset(str(folder), format="parquet", partitioning="hive").to_table().column("auction_id")
+    read = _read_parquet(spark, str(folder), source=str(folder), view="counterbid_test_order")
+    got = _with_shards(spark, read, shards=1, source=str(folder)).select("auction_id", "bid_order").toArrow()
+    got = got.sort_by("bid_order")
+    assert got.column("auction_id").to_pylist() == arrow_order.to_pylist()
+    # as paths 'a b' < 'a!b' < 'a-b' < 'a/' < 'b/' (the order written); as URIs 'a!b' would come first
+    assert arrow_order.to_pylist() == [k for k in range(5) for _ in range(k + 2)]
