@@ -266,3 +266,32 @@ def test_read_order_is_the_order_of_the_paths(spark, tmp_path):
     assert got.column("auction_id").to_pylist() == arrow_order.to_pylist()
     # as paths 'a b' < 'a!b' < 'a-b' < 'a/' < 'b/' (the order written); as URIs 'a!b' would come first
     assert arrow_order.to_pylist() == [k for k in range(5) for _ in range(k + 2)]
+
+
+def test_a_lake_day_gives_the_pieces_the_local_staging_gives(spark, tmp_path):
+    import datetime as dt
+
+    import duckdb
+
+    from counterbid.dags_example.lake import write_bid_lake
+    from counterbid.readers.shards import pieces_by_shard, shard_folders, write_shards
+    from counterbid.readers.spark_shards import lake_partition_pieces_on_spark
+    from counterbid.sql import load_sql
+
+    spec = {"experiments": [{**e, "start": "2026-03-02"} for e in SPEC["experiments"]]}
+    experiments = parse_experiments(spec)
+    lake = tmp_path / "lake"
+    write_bid_lake(lake, experiments.values(), start=dt.date(2026, 3, 2), days=2, auctions_per_day=600,
+                   n_bidders={3: 0.5, 4: 0.5}, seed=1)
+    day, exp = dt.date(2026, 3, 3), experiments["racks"]
+    # the local load step: DuckDB's shard of every row of the day, streamed into shard folders
+    with duckdb.connect() as con:
+        rows = con.sql(load_sql("lake_read_partition_shards"), params={
+            "lake_glob": f"{lake}/**/*.parquet", "ds": day, "experiment_id": exp.id, "n_shards": 3}).to_arrow_reader(2**20)
+        write_shards(rows, tmp_path / "day", 3)
+    local = pieces_by_shard(shard_folders(tmp_path / "day"), exp, day=day, source="day")
+    on_spark = lake_partition_pieces_on_spark(spark, str(lake), experiment=exp, ds=day, shards=3, source="day")
+    assert [p.key for p in on_spark.pieces] == [p.key for p in local.pieces]
+    assert len({p.shard for p in local.pieces}) == 3 and {p.day for p in local.pieces} == {"2026-03-03"}
+    assert all(mine.equals(theirs) for mine, theirs in zip(on_spark.pieces, local.pieces, strict=True))
+    assert on_spark.n_excluded_auctions == local.n_excluded_auctions
