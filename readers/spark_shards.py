@@ -116,6 +116,7 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     active = SparkSession.getActiveSession()
     if active is not None:
         return active
+    _require_java()
     # local workers run this interpreter (which has counterbid), not whatever `python3` is first on PATH
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     builder = (SparkSession.builder.master(master or os.environ.get(SPARK_MASTER_ENV) or "local[*]")
@@ -134,6 +135,20 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"could not start Spark ({first}); Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
                          "to one") from None
+
+
+def _require_java() -> None:
+    """One line when there is no ``java`` to start Spark's driver with (before Spark's launch script says it its way)."""
+    import shutil
+
+    home = os.environ.get("JAVA_HOME")
+    if home:
+        if not os.access(os.path.join(home, "bin", "java"), os.X_OK):
+            raise InputError(f"JAVA_HOME={home} holds no bin/java; Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
+                             "to one")
+    elif shutil.which("java") is None:
+        raise InputError("no Java runtime (JAVA_HOME is unset and no java on PATH); Spark needs a Java 17 or 21 "
+                         "runtime: set JAVA_HOME to one")
 
 
 #: Spark's error classes of an input it cannot read (on planning, when footers are read, or when a job runs).

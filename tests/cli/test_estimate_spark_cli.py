@@ -139,3 +139,13 @@ def test_without_pyspark_one_line_naming_the_extra(files, java_home):
     done = _counterbid(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv"], java_home,
                        code=BLOCK_PYSPARK)
     assert done.returncode == 0, done.stderr
+
+
+def test_without_java_one_line(files, tmp_path):
+    spec, path, _ = files
+    nowhere = tmp_path / "no-jdk"
+    done = _counterbid(["estimate", "--bids", str(path), "--experiment", str(spec), "--engine", "spark"], str(nowhere))
+    assert done.returncode == 2 and done.stdout == ""
+    assert done.stderr.splitlines() == [
+        f"counterbid: error: JAVA_HOME={nowhere} holds no bin/java; Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
+        "to one"]
