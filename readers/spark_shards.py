@@ -352,8 +352,11 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     return ShardPieces(pieces, excluded)
 
 
-def _read_parquet(spark, path: str, *, source: str, view: str):
+def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):
     """Spark's frame of the Parquet files under ``path``, registered as the temporary view ``view``.
+
+    With ``base_path`` (a folder above ``path``), the ``key=value`` folders between the two are
+    columns too, and only the files under ``path`` are listed and their footers read.
 
     Each row carries ``bid_file`` and ``bid_row``, the file it came from and its row in that file
     (Spark's ``_metadata`` of a file source, which a view no longer exposes): the read order the
@@ -364,7 +367,8 @@ def _read_parquet(spark, path: str, *, source: str, view: str):
     # integers they read (the estimate never reads such a column: the local reader skips it too)
     spark.conf.set(_NANOS_AS_LONG, "true")
     try:
-        frame = spark.read.option("mergeSchema", "true").parquet(path)
+        reader = spark.read.option("mergeSchema", "true")
+        frame = (reader if base_path is None else reader.option("basePath", base_path)).parquet(path)
         frame = frame.select("*", frame["_metadata.file_path"].alias("bid_file"),
                              frame["_metadata.row_index"].alias("bid_row"))
     except Exception as exc:  # AnalysisException, or py4j's wrapper of Spark's error reading a footer
@@ -430,8 +434,8 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
                                    cluster: str = "auto", source: str | None = None) -> ShardPieces:
     """The pieces of one (experiment, day) of the Hive-partitioned bid lake, estimated on Spark.
 
-    Spark reads the day's files under ``lake_root`` itself (partition pruning on ``ds``) and
-    keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``), in the shards the load step
+    Spark reads the day's files under ``lake_root`` itself (only the ``ds=<day>`` folder is listed)
+    and keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``), in the shards the load step
     split the day into.
 
     Parameters
@@ -454,7 +458,13 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     from pyspark.sql.utils import AnalysisException
 
     source = source or f"{lake_root} ds={ds}"
-    lake = _read_parquet(spark, str(lake_root), source=str(lake_root), view="counterbid_lake")
+    root = str(lake_root).rstrip("/")
+    try:  # the day's folder only: a lake of many days is neither listed nor its footers read
+        lake = _read_parquet(spark, f"{root}/ds={ds}", base_path=root, source=source, view="counterbid_lake")
+    except InputError as exc:
+        if str(exc).endswith(": no such file or folder"):
+            raise InputError(f"{lake_root}: partition ds={ds} is missing (no such folder)") from None
+        raise
     if "ds" not in lake.columns or "experiment_id" not in lake.columns:
         raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
     try:

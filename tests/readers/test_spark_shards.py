@@ -290,8 +290,12 @@ def test_a_lake_day_gives_the_pieces_the_local_staging_gives(spark, tmp_path):
             "lake_glob": f"{lake}/**/*.parquet", "ds": day, "experiment_id": exp.id, "n_shards": 3}).to_arrow_reader(2**20)
         write_shards(rows, tmp_path / "day", 3)
     local = pieces_by_shard(shard_folders(tmp_path / "day"), exp, day=day, source="day")
+    (lake / "ds=2026-03-02" / "notes.parquet").write_text("not bids")  # another day's folder is not read
     on_spark = lake_partition_pieces_on_spark(spark, str(lake), experiment=exp, ds=day, shards=3, source="day")
     assert [p.key for p in on_spark.pieces] == [p.key for p in local.pieces]
     assert len({p.shard for p in local.pieces}) == 3 and {p.day for p in local.pieces} == {"2026-03-03"}
     assert all(mine.equals(theirs) for mine, theirs in zip(on_spark.pieces, local.pieces, strict=True))
     assert on_spark.n_excluded_auctions == local.n_excluded_auctions
+    with pytest.raises(InputError) as missing:
+        lake_partition_pieces_on_spark(spark, str(lake), experiment=exp, ds=dt.date(2026, 3, 9), shards=1)
+    assert str(missing.value) == f"{lake}: partition ds=2026-03-09 is missing (no such folder)"
