@@ -138,7 +138,7 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
 
 
 def _require_java() -> None:
-    """One line when there is no ``java`` to start Spark's driver with (before Spark's launch script says it its way)."""
+    """One line when there is no ``java`` to start Spark's driver with (before Spark's launch script complains)."""
     import shutil
 
     home = os.environ.get("JAVA_HOME")
@@ -152,7 +152,8 @@ def _require_java() -> None:
 
 
 #: Spark's error classes of an input it cannot read (on planning, when footers are read, or when a job runs).
-_READ_FAILURES = re.compile(r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file|PARQUET_TYPE_ILLEGAL")
+_READ_FAILURES = re.compile(
+    r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file|PARQUET_TYPE_ILLEGAL")
 #: The line of a Spark error that names its class (``[FAILED_READ_FILE.CANNOT_READ_FILE_FOOTER] ...``).
 _ERROR_CLASS_LINE = re.compile(r"(\[[A-Z][A-Z_.]*\][^\n]*)")
 
@@ -189,7 +190,7 @@ def _quiet_query_loggers() -> None:
 
 @contextmanager
 def _quiet_pyspark():
-    """PySpark's notice that it does not support this pandas yet (counterbid hands Spark Arrow, never pandas) is not shown."""
+    """PySpark's notice that it does not support this pandas yet, not shown (counterbid hands Spark Arrow, not pandas)."""
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
         yield
@@ -222,18 +223,19 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     whole path; DuckDB's glob of a split log does too while the files sit at one depth under
     folders whose names sort alike either way, the usual ``key=value/part-N`` layout).
     """
-    from pyspark.sql.utils import AnalysisException
-
     try:
-        bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)  # a staged day's shard=K folders: recomputed
+        # a staged day's shard=K folders give a `shard` column: recomputed here
+        bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)
         # by the path itself, as Arrow lists a folder: Spark's file names are URIs (a space is %20)
         files = sorted((r[0] for r in _run_sql(spark, "spark_bid_files").collect()), key=unquote)
         spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
             .createOrReplaceTempView(_FILES_VIEW)
         sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
-    except AnalysisException as exc:
-        raise _analysis_error(exc, source) from None
+    except Exception as exc:  # listing the files runs a job: a file Spark cannot read shows up here too
+        if _is_read_failure(exc):
+            raise _analysis_error(exc, source) from None
+        raise
 
 
 #: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
@@ -242,7 +244,10 @@ _MARKED_SHARD = re.compile(f"{_SHARD_MARK}([0-9]+){_SHARD_MARK}")
 
 
 def _shard_names(several: bool):
-    """A worker's message as the local engine words it: ``<source> (shard K)`` when several shards hold bids, else ``<source>``."""
+    """A worker's message as the local engine words it.
+
+    ``<source> (shard K)`` when several shards hold bids, else ``<source>``.
+    """
     return lambda text: _MARKED_SHARD.sub(r" (shard \1)" if several else "", text)
 
 
