@@ -12,8 +12,17 @@ which combines them (:func:`~counterbid.estimators.pieces.combine_pieces`). Insi
 rows keep the order the local engine reads them in (files by path, rows by position), so the
 pieces, the numbers and the row named by an error are the local engine's.
 
-Memory: a Python worker holds one shard (set by ``max_bids_per_shard``); the driver holds the
-pieces (a few numbers per stratum, plus per-bidder sums when clustering by bidder).
+Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
+only, which Spark hands it already in read order (the sort that groups the shard, one key longer);
+the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
+bidder).
+
+Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
+a shard is named only when several hold bids; a bid without an auction id is refused by shard 0's
+worker (its hash is null); columns of nanosecond timestamps (pandas' datetimes, which Spark
+otherwise refuses to read) are read as integers (``spark.sql.legacy.parquet.nanosAsLong`` is set
+on the session). Spark's and PySpark's logs of a failed task or query are silenced on the
+session: the error itself reaches the caller, as one line when it is about the input.
 
 Needs the ``spark`` extra (``pip install 'counterbid[spark]'``) and a Java runtime Spark supports
 (17 or 21) on every machine that runs Spark; workers need counterbid installed in the Python
@@ -28,10 +37,13 @@ import re
 import sys
 import warnings
 from collections.abc import Mapping
+from contextlib import contextmanager
+from urllib.parse import unquote
 
 import pyarrow as pa
 
 from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, prepare_bids
+from counterbid.estimators.arms import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.pieces import StratumPiece, n_shards, stratum_pieces
 
@@ -42,6 +54,7 @@ __all__ = [
     "ENGINES",
     "SPARK_EXTRA",
     "SPARK_MASTER_ENV",
+    "STATEMENT_PARAMETERS",
     "estimate_bid_log_on_spark",
     "lake_partition_pieces_on_spark",
     "require_pyspark",
@@ -60,6 +73,8 @@ _BIDS_VIEW = "counterbid_bids"
 _FILES_VIEW = "counterbid_bid_files"
 #: Bits of the in-file row index in a bid's read-order key (file rank in the bits above).
 _ROW_BITS = 40
+#: Session setting under which Spark reads Parquet's nanosecond timestamps (pandas' datetimes) as integers.
+_NANOS_AS_LONG = "spark.sql.legacy.parquet.nanosAsLong"
 #: Columns of each shard's answer.
 _ANSWER = "shard long, n_bids long, n_excluded long, error string, warnings array<string>, pieces binary"
 
@@ -101,6 +116,7 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     active = SparkSession.getActiveSession()
     if active is not None:
         return active
+    _require_java()
     # local workers run this interpreter (which has counterbid), not whatever `python3` is first on PATH
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     builder = (SparkSession.builder.master(master or os.environ.get(SPARK_MASTER_ENV) or "local[*]")
@@ -109,8 +125,11 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     for key, value in (config or {}).items():
         builder = builder.config(key, value)
     try:
-        session = builder.getOrCreate()
-        session.sparkContext.setLogLevel("ERROR")  # Spark's own warnings would bury counterbid's on stderr
+        with _quiet_pyspark():
+            session = builder.getOrCreate()
+        # Spark's own warnings and error logs (a failed task's Java stack) would bury counterbid's
+        # one line on stderr; what went wrong reaches the caller as an exception
+        session.sparkContext.setLogLevel("FATAL")
         return session
     except Exception as exc:  # py4j and pyspark raise their own types; Java missing is the usual cause
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
@@ -118,23 +137,81 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
                          "to one") from None
 
 
-#: Spark's error classes of an input it cannot read (raised when a job runs, not when it is planned).
-_READ_FAILURES = re.compile(r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file")
+def _require_java() -> None:
+    """One line when there is no ``java`` to start Spark's driver with (before Spark's launch script complains)."""
+    import shutil
+
+    home = os.environ.get("JAVA_HOME")
+    if home:
+        if not os.access(os.path.join(home, "bin", "java"), os.X_OK):
+            raise InputError(f"JAVA_HOME={home} holds no bin/java; Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
+                             "to one")
+    elif shutil.which("java") is None:
+        raise InputError("no Java runtime (JAVA_HOME is unset and no java on PATH); Spark needs a Java 17 or 21 "
+                         "runtime: set JAVA_HOME to one")
+
+
+#: Spark's error classes of an input it cannot read (on planning, when footers are read, or when a job runs).
+_READ_FAILURES = re.compile(
+    r"FAILED_READ_FILE|PATH_NOT_FOUND|CANNOT_READ_FILE_FOOTER|not a Parquet file|PARQUET_TYPE_ILLEGAL")
+#: The line of a Spark error that names its class (``[FAILED_READ_FILE.CANNOT_READ_FILE_FOOTER] ...``).
+_ERROR_CLASS_LINE = re.compile(r"(\[[A-Z][A-Z_.]*\][^\n]*)")
+
+
+def _is_read_failure(exc: Exception) -> bool:
+    """Whether ``exc`` (an ``AnalysisException`` or py4j's wrapper of a ``SparkException``) is about the input files."""
+    from pyspark.sql.utils import AnalysisException
+
+    return isinstance(exc, AnalysisException) or bool(_READ_FAILURES.search(str(exc)))
 
 
 def _analysis_error(exc: Exception, source: str) -> InputError:
-    """One line for Spark's error on reading ``source``."""
+    """One line for Spark's error on reading ``source``: Spark's own classed line, without the Java stack."""
     text = str(exc).strip()
-    first = text.splitlines()[0] if text else type(exc).__name__
     if "PATH_NOT_FOUND" in text or "Path does not exist" in text:
         return InputError(f"{source}: no such file or folder")
+    found = _ERROR_CLASS_LINE.search(text)
+    first = found.group(1).strip() if found else (text.splitlines()[0] if text else type(exc).__name__)
     return InputError(f"{source}: not a readable Parquet file ({first})")
 
 
-def _statement(name: str) -> str:
+def _quiet_query_loggers() -> None:
+    """PySpark's loggers that print every SQL error with its Java stack as JSON on stderr, silenced.
+
+    The error itself still reaches counterbid, which turns the ones about the input into one line.
+    """
+    import logging
+
+    from pyspark.logger import PySparkLogger
+
+    for name in ("SQLQueryContextLogger", "DataFrameQueryContextLogger"):
+        PySparkLogger.getLogger(name).setLevel(logging.CRITICAL)
+
+
+@contextmanager
+def _quiet_pyspark():
+    """PySpark's notice that it does not support this pandas yet, not shown (counterbid hands Spark Arrow, not pandas)."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas", category=FutureWarning)
+        yield
+
+
+#: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
+STATEMENT_PARAMETERS = {
+    "spark_bid_files": frozenset(),
+    "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
+    "spark_lake_partition": frozenset({"ds", "experiment_id"}),
+}
+
+
+def _run_sql(spark, name: str, **args):
+    """Spark's frame of the statement ``sql/<name>.spark.sql`` with ``args`` bound (exactly its parameters)."""
     from counterbid.sql import statement
 
-    return statement(name, dialect="spark")
+    if set(args) != STATEMENT_PARAMETERS[name]:  # a programming error, not an input's
+        raise ValueError(f"statement {name!r} binds {sorted(STATEMENT_PARAMETERS[name])}; got {sorted(args)}")
+    text = statement(name, dialect="spark")
+    return spark.sql(text, args=args) if args else spark.sql(text)
 
 
 def _with_shards(spark, bids, *, shards: int, source: str):
@@ -142,19 +219,36 @@ def _with_shards(spark, bids, *, shards: int, source: str):
 
     ``bids`` carries ``bid_file`` and ``bid_row`` (Spark's file metadata, added where the files
     are read). The read-order key ranks each row by its file's path, then by its row in the file:
-    the order in which the local engine reads the same input (DuckDB and Arrow list files by path).
+    the order in which the local engine reads the same input (Arrow lists a folder's files by their
+    whole path; DuckDB's glob of a split log does too while the files sit at one depth under
+    folders whose names sort alike either way, the usual ``key=value/part-N`` layout).
     """
-    from pyspark.sql.utils import AnalysisException
-
     try:
-        bids.createOrReplaceTempView(_BIDS_VIEW)
-        files = sorted(r[0] for r in spark.sql(_statement("spark_bid_files")).collect())
+        # a staged day's shard=K folders give a `shard` column: recomputed here
+        bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)
+        # by the path itself, as Arrow lists a folder: Spark's file names are URIs (a space is %20)
+        files = sorted((r[0] for r in _run_sql(spark, "spark_bid_files").collect()), key=unquote)
         spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
             .createOrReplaceTempView(_FILES_VIEW)
-        sharded = spark.sql(_statement("spark_bids_with_shard"), args={"n_shards": int(shards), "row_bits": _ROW_BITS})
+        sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
-    except AnalysisException as exc:
-        raise _analysis_error(exc, source) from None
+    except Exception as exc:  # listing the files runs a job: a file Spark cannot read shows up here too
+        if _is_read_failure(exc):
+            raise _analysis_error(exc, source) from None
+        raise
+
+
+#: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
+_SHARD_MARK = "\x1f"
+_MARKED_SHARD = re.compile(f"{_SHARD_MARK}([0-9]+){_SHARD_MARK}")
+
+
+def _shard_names(several: bool):
+    """A worker's message as the local engine words it.
+
+    ``<source> (shard K)`` when several shards hold bids, else ``<source>``.
+    """
+    return lambda text: _MARKED_SHARD.sub(r" (shard \1)" if several else "", text)
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
@@ -165,8 +259,11 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     from .bid_log import bids_from_arrow
 
     shard = int(table.column("shard")[0].as_py())
-    where = f"{source} (shard {shard})" if multi else source
-    table = table.take(pc.sort_indices(table.column("bid_order")))
+    where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
+    order = table.column("bid_order").to_numpy()
+    if (order[1:] < order[:-1]).any():  # Spark sorts the shard's rows by it already; a copy only if it did not
+        table = table.take(pc.sort_indices(table.column("bid_order")))
+    del order
     n_bids = table.num_rows
     error, pieces, excluded, caught_messages = None, [], 0, []
     try:
@@ -222,6 +319,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         The first shard's error (by shard number), the line the local engine gives for that shard.
     """
     columns = [c for c in ["experiment_id", *BID_COLUMNS] if c in bids.columns]
+    if "auction_id" not in columns:  # the shards need it: prepare_bids's line, before any statement names it
+        raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
 
@@ -231,20 +330,26 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
-        grouped = sharded.repartition(int(shards), "shard").groupBy("shard")
-        answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
+        # rows of a shard in read order: the sort Spark needs for the groups anyway, one key longer
+        # only the columns the estimate reads travel (as the local reader reads only those)
+        grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
+                   .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
+        with _quiet_pyspark():
+            answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
         raise
+    # as locally, a shard is named only when more than one shard holds bids (which only the answers tell)
+    named = _shard_names(len(answers) > 1)
     for answer in answers:
         if answer["error"] is not None:
-            raise InputError(answer["error"])
+            raise InputError(named(answer["error"]))
     pieces: list[StratumPiece] = []
     excluded = 0
     for answer in answers:
         for message in answer["warnings"] or []:
-            warnings.warn(message, EstimatorWarning, stacklevel=2)
+            warnings.warn(named(message), EstimatorWarning, stacklevel=2)
         excluded += int(answer["n_excluded"])
         pieces += pickle.loads(answer["pieces"])
     if not pieces:
@@ -252,21 +357,29 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     return ShardPieces(pieces, excluded)
 
 
-def _read_parquet(spark, path: str, *, source: str, view: str):
+def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):
     """Spark's frame of the Parquet files under ``path``, registered as the temporary view ``view``.
+
+    With ``base_path`` (a folder above ``path``), the ``key=value`` folders between the two are
+    columns too, and only the files under ``path`` are listed and their footers read.
 
     Each row carries ``bid_file`` and ``bid_row``, the file it came from and its row in that file
     (Spark's ``_metadata`` of a file source, which a view no longer exposes): the read order the
     local engine sees.
     """
-    from pyspark.sql.utils import AnalysisException
-
+    _quiet_query_loggers()
+    # pandas writes datetimes as nanosecond timestamps, which Spark refuses to read at all; as
+    # integers they read (the estimate never reads such a column: the local reader skips it too)
+    spark.conf.set(_NANOS_AS_LONG, "true")
     try:
-        frame = spark.read.option("mergeSchema", "true").parquet(path)
+        reader = spark.read.option("mergeSchema", "true")
+        frame = (reader if base_path is None else reader.option("basePath", base_path)).parquet(path)
         frame = frame.select("*", frame["_metadata.file_path"].alias("bid_file"),
                              frame["_metadata.row_index"].alias("bid_row"))
-    except AnalysisException as exc:
-        raise _analysis_error(exc, source) from None
+    except Exception as exc:  # AnalysisException, or py4j's wrapper of Spark's error reading a footer
+        if _is_read_failure(exc):
+            raise _analysis_error(exc, source) from None
+        raise
     frame.createOrReplaceTempView(view)
     return frame
 
@@ -305,7 +418,12 @@ def estimate_bid_log_on_spark(
     spark = spark or spark_session()
     source = str(path)
     bids = _read_parquet(spark, source, source=source, view="counterbid_bid_log")
-    rows = bids.count()
+    try:
+        rows = bids.count()
+    except Exception as exc:  # a footer Spark could list but not read
+        if _READ_FAILURES.search(str(exc)):
+            raise _analysis_error(exc, source) from None
+        raise
     if rows == 0:
         raise InputError(f"{source}: holds no bids (0 rows)")
     shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
@@ -321,8 +439,8 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
                                    cluster: str = "auto", source: str | None = None) -> ShardPieces:
     """The pieces of one (experiment, day) of the Hive-partitioned bid lake, estimated on Spark.
 
-    Spark reads the day's files under ``lake_root`` itself (partition pruning on ``ds``) and
-    keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``), in the shards the load step
+    Spark reads the day's files under ``lake_root`` itself (only the ``ds=<day>`` folder is listed)
+    and keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``), in the shards the load step
     split the day into.
 
     Parameters
@@ -345,11 +463,17 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     from pyspark.sql.utils import AnalysisException
 
     source = source or f"{lake_root} ds={ds}"
-    lake = _read_parquet(spark, str(lake_root), source=str(lake_root), view="counterbid_lake")
+    root = str(lake_root).rstrip("/")
+    try:  # the day's folder only: a lake of many days is neither listed nor its footers read
+        lake = _read_parquet(spark, f"{root}/ds={ds}", base_path=root, source=source, view="counterbid_lake")
+    except InputError as exc:
+        if str(exc).endswith(": no such file or folder"):
+            raise InputError(f"{lake_root}: partition ds={ds} is missing (no such folder)") from None
+        raise
     if "ds" not in lake.columns or "experiment_id" not in lake.columns:
         raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
     try:
-        day = spark.sql(_statement("spark_lake_partition"), args={"ds": ds, "experiment_id": experiment.id})
+        day = _run_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id)
     except AnalysisException as exc:
         raise _analysis_error(exc, source) from None
     return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source)

@@ -200,14 +200,14 @@ _PSYCOPG_PARAM = re.compile(r"%\(([A-Za-z_][A-Za-z0-9_]*)\)s")
 
 
 def parameter_names(text: str, *, dialect: str = "duckdb") -> set[str]:
-    """Names of the bound parameters of a statement in ``dialect`` (``$name`` or ``%(name)s``).
+    """Names of the bound parameters of a statement in ``dialect`` (``$name``, ``:name`` or ``%(name)s``).
 
-    Parsed with sqlglot for DuckDB text (so a ``$`` inside a string literal is not a parameter);
-    for PostgreSQL text the psycopg ``%(name)s`` markers are listed.
+    Parsed with sqlglot for DuckDB and Spark text (so a ``$`` or ``:`` inside a string literal is
+    not a parameter); for PostgreSQL text the psycopg ``%(name)s`` markers are listed.
     """
-    if _check_dialect(dialect) == "duckdb":
+    if _check_dialect(dialect) in ("duckdb", "spark"):
         import sqlglot
         from sqlglot import exp
 
-        return {str(p.name) for p in sqlglot.parse_one(text, read="duckdb").find_all(exp.Placeholder) if p.name}
+        return {str(p.name) for p in sqlglot.parse_one(text, read=dialect).find_all(exp.Placeholder) if p.name}
     return set(_PSYCOPG_PARAM.findall(text))

@@ -71,6 +71,13 @@ def _java_home() -> None:
     os.environ["JAVA_HOME"] = found.stdout.strip()
 
 
+@pytest.fixture(scope="session")
+def java_home() -> str:
+    """The Java 17/21 runtime Spark runs on (for a ``counterbid`` subprocess's ``JAVA_HOME``)."""
+    _java_home()
+    return os.environ["JAVA_HOME"]
+
+
 @pytest.fixture
 def spark():
     """A ``local[2]`` Spark session: the active one, else a new one (a ``@task.pyspark`` task stops its own).
