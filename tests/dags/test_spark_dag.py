@@ -199,3 +199,25 @@ def test_bad_input_fails_the_spark_estimate_with_the_local_line_and_no_retry(spa
     assert "day (shard 0): every auction of experiment 'tiles' has a single bidder" in lines["local"]
     assert lines["spark"] == lines["local"]
     print(f"\nthe estimate step's line on both engines: {lines['spark']}")
+
+
+def test_engine_setting_picks_the_estimate_operator(spark_engine, airflow_db, monkeypatch):
+    """Parse time: ``spark`` makes the estimate task the provider-run operator on the named connection
+    (reading ``lake_root``); an unknown engine is an import error naming the setting."""
+    from airflow.dag_processing.dagbag import DagBag
+
+    from counterbid.cli.backfill import dags_folder
+    from counterbid.operators.pipeline import EstimateArmsOperator
+    from counterbid.operators.spark_pipeline import SparkEstimateArmsOperator
+
+    spark_engine("spark")
+    estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
+    assert isinstance(estimate, SparkEstimateArmsOperator)
+    assert (estimate.conn_id, estimate.lake_root) == (SPARK_CONN, "{{ params.lake_root }}")
+    assert {"lake_root", "conn_id", "confidence_level", "cluster", "experiment_id"} <= set(estimate.template_fields)
+    spark_engine("local")
+    estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
+    assert type(estimate) is EstimateArmsOperator
+    monkeypatch.setenv("COUNTERBID_ENGINE", "dask")
+    errors = DagBag(dag_folder=str(dags_folder())).import_errors
+    assert len(errors) == 1 and "COUNTERBID_ENGINE must be 'local' or 'spark'; got 'dask'" in next(iter(errors.values()))
