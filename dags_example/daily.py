@@ -18,6 +18,16 @@ clustering of the standard errors (``auction``, ``bidder`` or, where the estimat
 shards; default 4M), ``COUNTERBID_MAX_ACTIVE_RUNS`` (default 1: each day's experiment-to-date rows
 combine the stored pieces of the days before it, so days are written in order). The level and
 clustering each stored row used are written beside it.
+
+Engine of the estimate step (read when the DAG is parsed only): ``COUNTERBID_ENGINE`` ``local``
+(the default: the worker estimates the staged shards one after another) or ``spark`` (the
+``spark`` extra: ``SparkEstimateArmsOperator``, through the Apache Spark provider; Spark reads
+the day's partition of ``lake_root`` itself, splits it into the shards the load step staged and
+estimates them in parallel; the numbers and stored rows are the local engine's). With ``spark``,
+``COUNTERBID_SPARK_CONN`` names the Airflow connection of the cluster (host = master URL, extras =
+Spark settings; a ``spark_connect`` connection for Spark Connect); empty = a ``local[*]`` session
+in the worker. The load and validate steps are the same with either engine (they stage and check
+the day with DuckDB), and the lake must be readable by Spark's executors at the same ``lake_root``.
 """
 
 from __future__ import annotations
@@ -41,6 +51,10 @@ from counterbid.operators.pipeline import (
 
 DAG_ID = "counterbid_daily"
 HERE = Path(__file__).resolve().parent
+ENGINE = os.environ.get("COUNTERBID_ENGINE", "local").strip().lower() or "local"
+SPARK_CONN = os.environ.get("COUNTERBID_SPARK_CONN", "").strip() or None
+if ENGINE not in ("local", "spark"):
+    raise ValueError(f"COUNTERBID_ENGINE must be 'local' or 'spark'; got {ENGINE!r}")
 START = dt.datetime.fromisoformat(os.environ.get("COUNTERBID_START", "2026-03-02")).replace(tzinfo=dt.timezone.utc)
 
 # Alerts: failed data checks (observed vs threshold) or the task's error, to the task log by
@@ -97,8 +111,14 @@ def counterbid_daily():
                                      max_bids_per_shard="{{ params.max_bids_per_shard }}", **paths)
         # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
         validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
-        estimate = EstimateArmsOperator(task_id="estimate", confidence_level="{{ params.confidence_level }}",
-                                        cluster="{{ params.cluster }}", **paths)
+        options = {"confidence_level": "{{ params.confidence_level }}", "cluster": "{{ params.cluster }}", **paths}
+        if ENGINE == "spark":  # Spark reads the day from the lake; the provider builds the session from the connection
+            from counterbid.operators.spark_pipeline import SparkEstimateArmsOperator
+
+            estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.lake_root }}",
+                                                 conn_id=SPARK_CONN, **options)
+        else:
+            estimate = EstimateArmsOperator(task_id="estimate", **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
 

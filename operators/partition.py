@@ -108,6 +108,9 @@ def stage_partition(
     def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
         with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
             write_shards(batches, folder, shards)
+        # inside the folder, so it is replaced with the shards: what the Spark engine splits the lake into
+        write_json({"shards": shards, "day_bids": day_rows, "max_bids_per_shard": max_bids},
+                   folder / staged.day_manifest.name)
 
     replace_folder(fill, staged.day)
     measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
@@ -285,6 +288,31 @@ def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPi
     return pieces_from_frames(back)
 
 
+def _pieces_on_spark(spark, lake_root, staged: StagedPartition, *, experiment: Experiment, ds: dt.date,
+                     cluster: str):
+    """The day's pieces estimated on Spark from the lake, in the load step's shards; and their number.
+
+    Messages name the staged day, as the local engine's do (a shard's row numbers count from the
+    start of that shard, which is the staged shard file). Spark reads the lake again, so it must
+    find the bids the load step staged and the validate step checked: a different count means
+    the partition changed in between.
+    """
+    from counterbid.readers.spark_shards import lake_partition_pieces_on_spark
+
+    manifest_path = staged.require(staged.day_manifest, step="load")
+    manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    shards = int(manifest["shards"])
+    found = lake_partition_pieces_on_spark(spark, str(lake_root), experiment=experiment, ds=ds, shards=shards,
+                                           cluster=cluster, source=str(staged.day))
+    # every single-bidder auction left out is one bid; every other bid is in a piece
+    seen = sum(p.n_bids for p in found.pieces) + found.n_excluded_auctions
+    if seen != int(manifest["day_bids"]):
+        raise InputError(f"{lake_root} ds={ds}: Spark read {seen} bids of experiment {experiment.id!r}, the load step "
+                         f"staged {manifest['day_bids']}; the partition changed after it was checked: run the day again "
+                         "from the 'load' step")
+    return found, shards
+
+
 def estimate_partition(
     hook: ResultsHook,
     *,
@@ -294,11 +322,17 @@ def estimate_partition(
     run_id: str,
     confidence_level: float = 0.95,
     cluster: str = "auto",
+    spark=None,
+    lake_root: str | Path | None = None,
 ) -> dict:
     """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
     Each staged shard is read, validated and estimated alone
-    (:func:`counterbid.readers.shards.pieces_by_shard`), keeping only its stratum pieces. The day's
+    (:func:`counterbid.readers.shards.pieces_by_shard`), keeping only its stratum pieces. With a
+    Spark session (``spark``, the Spark engine) Spark reads the day's partition of the lake itself,
+    splits it into the shards the load step staged and estimates them in parallel
+    (:func:`counterbid.readers.spark_shards.lake_partition_pieces_on_spark`): the same pieces; the
+    rest of the step is the same code. The day's
     rows combine the day's pieces (:func:`counterbid.estimators.pieces.combine_pieces`); the
     experiment-to-date rows combine the stored pieces of the earlier days in the analysis window
     (:func:`counterbid.estimators.window.analysis_window`: by default without the days whose
@@ -307,12 +341,21 @@ def estimate_partition(
     (with the partition keys, status, provenance, and the days used and left out) and the
     position weights used to the staging folder.
 
+    Parameters
+    ----------
+    spark : pyspark.sql.SparkSession, optional
+        Estimate on Spark (default: locally, from the staged shards).
+    lake_root : str or Path, optional
+        Root of the bid lake Spark reads the day from; required with ``spark``.
+
     Returns
     -------
     dict
-        Sample sizes, shards, the window and the revenue estimate per arm (small; logged and
-        returned to XCom).
+        Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
+        logged and returned to XCom).
     """
+    if spark is not None and lake_root in (None, ""):
+        raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
     failed_today = _failed_today(staged)
@@ -330,8 +373,12 @@ def estimate_partition(
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
     staged.require(staged.day, step="load")
-    shard_list = [(k, staged.shard(k)) for k in staged.shards()]
-    found = pieces_by_shard(shard_list, experiment, cluster=cluster, day=ds, source=str(staged.day))
+    if spark is None:
+        shard_list = [(k, staged.shard(k)) for k in staged.shards()]
+        found = pieces_by_shard(shard_list, experiment, cluster=cluster, day=ds, source=str(staged.day))
+        n_day_shards = len(shard_list)
+    else:
+        found, n_day_shards = _pieces_on_spark(spark, lake_root, staged, experiment=experiment, ds=ds, cluster=cluster)
     pieces = found.pieces
     day_table = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
@@ -350,7 +397,8 @@ def estimate_partition(
     stored = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
     to_date_pieces = _pieces_of_rows(stored) + (pieces if ds in window.used else [])
 
-    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": len(shard_list),
+    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": n_day_shards,
+               "engine": "local" if spark is None else "spark",
                "days_used": window.days_used, "days_left_out": window.days_left_out}
     tables = {"day": day_table}
     if to_date_pieces:

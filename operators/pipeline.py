@@ -217,15 +217,23 @@ class EstimateArmsOperator(_PartitionOperator):
         self.cluster = cluster
 
     def execute(self, context) -> dict:
+        return self.estimate(run_id=str(context["run_id"]))
+
+    def estimate(self, *, run_id: str, spark=None, lake_root: str | None = None) -> dict:
+        """Run :func:`counterbid.operators.partition.estimate_partition` (on Spark when ``spark`` is given) and log it.
+
+        Bad parameters or input (:class:`InputError`) fail the task without retry: the same
+        files fail the same way.
+        """
         try:
             level, cluster = _level(self.confidence_level, self.task_id), _cluster(self.cluster, self.task_id)
-        except InputError as exc:  # the same parameters fail the same way: no retry
+            out = partition.estimate_partition(
+                self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
+                run_id=run_id, confidence_level=level, cluster=cluster, spark=spark, lake_root=lake_root)
+        except InputError as exc:
             raise AirflowFailException(str(exc)) from None
-        out = partition.estimate_partition(
-            self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
-            run_id=str(context["run_id"]), confidence_level=level, cluster=cluster)
-        log.info("estimated %s on %s (status %s, %s shard(s)): day revenue per auction %s; to date over %s "
-                 "(left out: %s)", self.experiment_id, self.ds, out["status"], out["shards"],
+        log.info("estimated %s on %s (status %s, %s shard(s), %s engine): day revenue per auction %s; to date over %s "
+                 "(left out: %s)", self.experiment_id, self.ds, out["status"], out["shards"], out["engine"],
                  out["day_revenue_per_auction"], out["days_used"] or "no day", out["days_left_out"] or "none")
         return out
 

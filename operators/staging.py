@@ -46,6 +46,8 @@ class StagedPartition:
 
     # written by 'load': the day's bids, one folder per shard (``day/shard=K/*.parquet``)
     day = property(lambda self: self.folder / "day")
+    # the day's shard count and bids as the load step split them (the Spark engine splits the same way)
+    day_manifest = property(lambda self: self.folder / "day" / "shards.json")
     measured_weights = property(lambda self: self.folder / "measured_weights.parquet")
     # written by 'validate'
     checks = property(lambda self: self.folder / "checks.json")

@@ -1,0 +1,223 @@
+"""The daily DAG with the Spark engine (``COUNTERBID_ENGINE=spark``) under ``dag.test``.
+
+The estimate task runs through the Apache Spark provider on a ``local[2]`` session built from an
+Airflow connection defined in the environment. Every stored row must equal the local engine's on
+the same lake, and bad input must end in the local engine's error line, without retry.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+import os
+import re
+import subprocess
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+import yaml
+
+from counterbid.cli.backfill import DAG_ID, run_days
+from counterbid.dags_example.lake import write_bid_lake
+from counterbid.estimators import parse_experiments, simulate_experiment
+from counterbid.estimators.pieces import shard_of
+
+from .conftest import START
+
+pytestmark = pytest.mark.spark
+
+DAYS = [START, START + dt.timedelta(days=1)]
+SPARK_CONN = "counterbid_test_spark"
+#: The cluster's Airflow connection: master URL as host, Spark settings as extras (the provider's reading).
+SPARK_CONNECTION = {"conn_type": "spark", "host": "local[2]",
+                    "extra": {"spark.sql.shuffle.partitions": "4", "spark.driver.memory": "1g",
+                              "spark.ui.enabled": "false", "spark.ui.showConsoleProgress": "false"}}
+# started a week before the days run here: past the warm-up check, so both days are in the to-date window
+SPEC = {"experiments": [{"id": "tiles", "control_arm": "plain", "start": str(START - dt.timedelta(days=7)), "arms": [
+    {"name": "plain", "share": 0.6, "position_weights": [0.4, 0.2, 0.1]},
+    {"name": "bold", "share": 0.4, "position_weights": [0.5, 0.15, 0.05]}]}]}
+#: Every table the write step fills from the estimate step's files (the check tables are the validate step's).
+ESTIMATE_TABLES = ("arm_estimates", "arm_estimates_to_date", "stratum_pieces", "stratum_piece_arms",
+                   "stratum_piece_covariance", "stratum_piece_bidder_sums")
+PROVENANCE = ("run_id", "computed_at")
+#: The issue's bound: Spark's numbers equal the local engine's to 1e-9 relative.
+RTOL = 1e-9
+
+
+@pytest.fixture
+def spark_engine(monkeypatch):
+    """The DAG parsed with the Spark engine; the cluster's connection in ``AIRFLOW_CONN_<ID>``; a Java runtime."""
+    if not os.environ.get("JAVA_HOME"):
+        script = Path(__file__).resolve().parents[2] / ".ci" / "java-home"
+        found = subprocess.run([str(script)], capture_output=True, text=True)
+        if found.returncode != 0:
+            pytest.fail(found.stderr.strip() or "no Java runtime for Spark; run `make test`")
+        monkeypatch.setenv("JAVA_HOME", found.stdout.strip())
+
+    def use(engine: str) -> None:
+        monkeypatch.setenv("COUNTERBID_ENGINE", engine)
+        monkeypatch.setenv("COUNTERBID_SPARK_CONN", SPARK_CONN if engine == "spark" else "")
+        monkeypatch.setenv(f"AIRFLOW_CONN_{SPARK_CONN.upper()}", json.dumps(SPARK_CONNECTION))
+
+    return use
+
+
+def _stored(path) -> dict[str, pd.DataFrame]:
+    """Every estimate table of a results file, provenance dropped, rows in the order of their keys."""
+    out = {}
+    with duckdb.connect(str(path), read_only=True) as con:
+        for name in ESTIMATE_TABLES:
+            frame = con.execute(f"select * from {name}").df().drop(columns=list(PROVENANCE))
+            keys = [c for c in frame.columns if not pd.api.types.is_float_dtype(frame[c])]
+            out[name] = frame.sort_values(keys).reset_index(drop=True)
+    return out
+
+
+def _estimate_summaries(days: list[dt.date]) -> list[dict]:
+    """What the estimate task of each day's latest run returned (its XCom), in day order."""
+    from airflow.models.dagrun import DagRun
+    from airflow.models.xcom import XComModel
+    from airflow.utils.session import create_session
+
+    out = []
+    with create_session() as session:
+        for day in days:
+            run = (session.query(DagRun).filter(DagRun.dag_id == DAG_ID,
+                                                DagRun.logical_date == dt.datetime.combine(day, dt.time(), dt.timezone.utc))
+                   .one())
+            (value,) = session.query(XComModel.value).filter(
+                XComModel.dag_run_id == run.id, XComModel.task_id == "experiment.estimate",
+                XComModel.key == "return_value").one()
+            out.append(json.loads(value) if isinstance(value, str) else value)
+    return out
+
+
+def _largest_relative_difference(got: pd.DataFrame, want: pd.DataFrame, name: str) -> float:
+    """Non-numeric columns equal; numeric ones to RTOL relative (NaN where the other is NaN); the largest difference."""
+    assert list(got.columns) == list(want.columns), name
+    assert len(got) == len(want) > 0, name
+    largest = 0.0
+    for col in want.columns:
+        if pd.api.types.is_numeric_dtype(want[col]) and not pd.api.types.is_bool_dtype(want[col]):
+            a, b = got[col].to_numpy(float), want[col].to_numpy(float)
+            assert np.array_equal(np.isnan(a), np.isnan(b)), f"{name}.{col}: NaN in different rows"
+            finite = ~np.isnan(b)
+            scale = np.maximum(np.abs(a[finite]), np.abs(b[finite]))
+            diff = np.abs(a[finite] - b[finite])
+            rel = np.divide(diff, scale, out=np.zeros_like(diff), where=scale > 0)
+            if rel.size:
+                largest = max(largest, float(rel.max()))
+            assert (rel <= RTOL).all(), f"{name}.{col}: relative difference {rel.max():.3g} > {RTOL}"
+        else:
+            pd.testing.assert_series_equal(got[col], want[col], check_dtype=False, obj=f"{name}.{col}")
+    return largest
+
+
+def test_spark_engine_stores_the_local_engines_rows(spark_engine, airflow_db, tmp_path, record_property):
+    """Two days of two strata (4 and 6 bidders), each split by the load step into 3 shards: the
+    Spark setting's stored day rows, to-date rows (day 2 combines day 1's stored pieces with its
+    own) and stratum pieces equal the local engine's to 1e-9 relative."""
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(yaml.safe_dump(SPEC))
+    experiment = parse_experiments(SPEC)["tiles"]
+    write_bid_lake(tmp_path / "bids", [experiment], start=START, days=len(DAYS), auctions_per_day=500,
+                   n_bidders={4: 0.5, 6: 0.5}, seed=5)
+    conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec), "staging_root": str(tmp_path / "stage"),
+            "clicks_root": "", "max_bids_per_shard": "1000"}  # about 2 500 bids a day: 3 shards
+    results = {}
+    for engine in ("local", "spark"):
+        spark_engine(engine)
+        results[engine] = tmp_path / f"{engine}.duckdb"
+        runs = run_days(DAYS, conf={**conf, "results_database": str(results[engine])})
+        assert [r.state for r in runs] == ["success"] * len(DAYS), [r.line() for r in runs]
+        # the estimate ran on the engine asked for, in 3 shards: its summary (XCom) says so
+        assert [(s["engine"], s["shards"]) for s in _estimate_summaries(DAYS)] == [(engine, 3)] * len(DAYS)
+    local, spark = _stored(results["local"]), _stored(results["spark"])
+    assert sorted(set(local["stratum_pieces"]["shard"])) == [0, 1, 2]
+    assert sorted(set(local["stratum_pieces"]["n_bidders"])) == [4, 6]
+    assert len(local["stratum_piece_bidder_sums"]) > 0  # bidder ids repeat: clustered by bidder, sums stored
+    assert set(local["arm_estimates_to_date"]["n_days_used"]) == {1, 2}
+    largest = {name: _largest_relative_difference(spark[name], local[name], name) for name in ESTIMATE_TABLES}
+    record_property("spark_vs_local_largest_relative_difference", max(largest.values()))
+    print(f"\nlargest relative difference, Spark vs local: {largest}")
+
+
+#: Single-bidder auctions are accepted (left out and counted) by this spec's contract.
+LONE_SPEC = {"experiments": [{**SPEC["experiments"][0], "checks": {"contract": {"min_bidders": 1}}}]}
+
+
+def _day_with_a_shard_of_lone_bidders(day_folder: Path, shards: int) -> int:
+    """A day whose shard 0 (of ``shards``) holds only single-bidder auctions; the others 4 bidders each.
+
+    The day as a whole is valid (the checks pass, the single-bidder auctions are left out), but shard
+    0 alone has nothing to estimate: a fault only the estimate step, which validates each shard,
+    meets. Returns the number of bids.
+    """
+    experiment = parse_experiments(LONE_SPEC)["tiles"]
+    frame = simulate_experiment(st.uniform(0, 2), experiment, n_bidders=4, n_auctions=600, rng=3)
+    frame = frame.drop(columns=["ds", "value", "clicks"])
+    lone = shard_of(frame["auction_id"], shards) == 0
+    top = frame["position"] == 1
+    frame = frame[~lone | top].reset_index(drop=True)  # shard 0: only each auction's top bid
+    day_folder.mkdir(parents=True)
+    frame.to_parquet(day_folder / "tiles.parquet", index=False)
+    return len(frame)
+
+
+def test_bad_input_fails_the_spark_estimate_with_the_local_line_and_no_retry(spark_engine, airflow_db, tmp_path,
+                                                                             capfd, caplog, monkeypatch):
+    """The same one-line error from both engines, and the task fails at once although it has a
+    retry (a retry would first wait the DAG's five-minute retry delay)."""
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(yaml.safe_dump(LONE_SPEC))
+    n_bids = _day_with_a_shard_of_lone_bidders(tmp_path / "bids" / f"ds={START}", shards=3)
+    monkeypatch.setenv("COUNTERBID_RETRIES", "1")
+    conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec), "staging_root": str(tmp_path / "stage"),
+            "clicks_root": "", "max_bids_per_shard": str(math.ceil(n_bids / 3))}
+    lines = {}
+    for engine in ("local", "spark"):
+        spark_engine(engine)
+        capfd.readouterr()
+        caplog.clear()
+        (run,) = run_days([START], conf={**conf, "results_database": str(tmp_path / f"{engine}.duckdb")})
+        out = capfd.readouterr()
+        states = {t: s for t, _, s, _ in run.tasks}
+        assert run.state == "failed" and states["experiment.validate"] == "success", states
+        assert states["experiment.estimate"] == "failed" and states["experiment.write"] == "upstream_failed", states
+        assert run.seconds < 240, f"{engine}: {run.seconds:.0f} s, the estimate task waited for a retry"
+        text = out.out + out.err + caplog.text
+        found = sorted(set(re.findall(rf"{re.escape(conf['staging_root'])}\S*.*nothing to estimate", text)))
+        assert len(found) == 1, (engine, found, text[-3000:])
+        lines[engine] = found[0]
+        with duckdb.connect(str(tmp_path / f"{engine}.duckdb"), read_only=True) as con:
+            assert con.execute("select count(*) from arm_estimates").fetchone()[0] == 0  # nothing half-written
+    assert "day (shard 0): every auction of experiment 'tiles' has a single bidder" in lines["local"]
+    assert lines["spark"] == lines["local"]
+    print(f"\nthe estimate step's line on both engines: {lines['spark']}")
+
+
+def test_engine_setting_picks_the_estimate_operator(spark_engine, airflow_db, monkeypatch):
+    """Parse time: ``spark`` makes the estimate task the provider-run operator on the named connection
+    (reading ``lake_root``); an unknown engine is an import error naming the setting."""
+    from airflow.dag_processing.dagbag import DagBag
+
+    from counterbid.cli.backfill import dags_folder
+    from counterbid.operators.pipeline import EstimateArmsOperator
+    from counterbid.operators.spark_pipeline import SparkEstimateArmsOperator
+
+    spark_engine("spark")
+    estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
+    assert isinstance(estimate, SparkEstimateArmsOperator)
+    assert (estimate.conn_id, estimate.lake_root) == (SPARK_CONN, "{{ params.lake_root }}")
+    assert {"lake_root", "conn_id", "confidence_level", "cluster", "experiment_id"} <= set(estimate.template_fields)
+    spark_engine("local")
+    estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
+    assert type(estimate) is EstimateArmsOperator
+    monkeypatch.setenv("COUNTERBID_ENGINE", "dask")
+    errors = DagBag(dag_folder=str(dags_folder())).import_errors
+    assert len(errors) == 1 and "COUNTERBID_ENGINE must be 'local' or 'spark'; got 'dask'" in next(iter(errors.values()))
