@@ -85,3 +85,16 @@ def test_bad_environment_value_is_named(files, capsys, monkeypatch):
     assert main(["estimate", "--bids", str(path), "--experiment", str(spec)]) == 2
     assert capsys.readouterr().err.strip() == \
         "counterbid: error: COUNTERBID_MAX_BIDS_PER_SHARD must be a whole number of bids >= 1; got '4M'"
+
+
+def test_a_bid_without_an_auction_id_is_refused_in_every_shard_count(files, capsys):
+    """md5 of a null id is null: such a bid must land in a shard (0) and be refused there, not vanish."""
+    spec, path, bids, exp = files
+    holed = bids.copy()
+    holed.loc[holed.index[7], "auction_id"] = None
+    holed.to_parquet(path, index=False)
+    for max_bids in ("100000", "5000"):  # one shard, then four
+        code = main(["estimate", "--bids", str(path), "--experiment", str(spec), "--max-bids-per-shard", max_bids])
+        _, err = capsys.readouterr()
+        assert code == 2, (max_bids, err)
+        assert err.count("\n") == 1 and "'auction_id'" in err and "null" in err, err
