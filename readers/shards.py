@@ -124,6 +124,15 @@ def bid_log_rows(path: str | Path) -> int:
         raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
 
 
+def _column_names(path: str | Path) -> list[str]:
+    """Column names of a bid log (the footers only)."""
+    path = Path(path)
+    try:
+        return pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None).schema.names
+    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
+
+
 def write_shards(batches, folder: str | Path, n_shards: int) -> list[int]:
     """Stream record batches whose last column is ``shard`` into ``folder/shard=K/part-0.parquet``.
 
@@ -310,6 +319,8 @@ def estimate_bid_log(
     from counterbid.estimators.pieces import combine_pieces
 
     shards = n_shards(bid_log_rows(path), _max_bids_setting(max_bids_per_shard))
+    if shards > 1 and "auction_id" not in _column_names(path):
+        shards = 1  # nothing to shard by: the validation of the whole log names the missing column
     with staged_bid_log_shards(path, shards) as shard_list:
         found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
     result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,

@@ -98,3 +98,15 @@ def test_a_bid_without_an_auction_id_is_refused_in_every_shard_count(files, caps
         _, err = capsys.readouterr()
         assert code == 2, (max_bids, err)
         assert err.count("\n") == 1 and "'auction_id'" in err and "null" in err, err
+
+
+def test_a_log_without_auction_ids_gets_the_missing_column_line_in_every_shard_count(files, capsys):
+    spec, path, bids, exp = files
+    bids.drop(columns=["auction_id"]).to_parquet(path, index=False)
+    lines = set()
+    for max_bids in ("100000", "5000"):  # one shard, then (were there ids) four
+        code = main(["estimate", "--bids", str(path), "--experiment", str(spec), "--max-bids-per-shard", max_bids])
+        _, err = capsys.readouterr()
+        assert code == 2 and err.count("\n") == 1 and "'auction_id' is missing" in err, err
+        lines.add(err)
+    assert len(lines) == 1  # the same line whatever the shard setting
