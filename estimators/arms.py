@@ -9,7 +9,7 @@ import pandas as pd
 
 from ._lstatistic import BLOCK, l_statistic
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
-from .errors import InputError
+from .errors import InputError, no_pieces_error
 from .order_weights import WeightTable
 from .payment_rules import PAYMENT_RULES
 from .spec import Experiment
@@ -403,7 +403,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         auction = pd.factorize(auction[keep], sort=False)[0]
         bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
     if bid.size == 0:
-        raise InputError(f"{source}: every auction of experiment {experiment.id!r} has a single bidder; nothing to estimate")
+        raise no_pieces_error(source, experiment.id, single_bidders=True, n_excluded_auctions=n_excluded)
     return PreparedBids(
         bid=bid,
         auction=auction,

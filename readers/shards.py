@@ -22,7 +22,7 @@ import pyarrow as pa
 import pyarrow.dataset as pads
 
 from counterbid.estimators import BID_COLUMNS, Experiment, prepare_bids
-from counterbid.estimators.errors import InputError
+from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 from counterbid.estimators.pieces import MAX_BIDS_PER_SHARD, StratumPiece, n_shards, stratum_pieces
 
 from .bid_log import read_bids
@@ -275,17 +275,28 @@ def pieces_by_shard(
     """
     pieces: list[StratumPiece] = []
     excluded = 0
+    single_bidders = False
     shards = list(shards)
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS], source=where)
-        prepared = prepare_bids(bids, experiment, source=where)
-        del bids  # only the validated arrays from here on: one shard bounds the memory
+        try:
+            prepared = prepare_bids(bids, experiment, source=where)
+        except NothingToEstimate as exc:
+            if len(shards) == 1:
+                raise
+            # a shard of single-bidder auctions only: they are left out, the other shards hold the bids
+            excluded += exc.n_excluded_auctions
+            single_bidders = True
+            continue
+        finally:
+            del bids  # only the validated arrays from here on: one shard bounds the memory
         excluded += int(prepared.n_excluded_auctions)
         pieces += stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where)
         del prepared
     if not pieces:
-        raise InputError(f"{source or 'bids'}: no shard holds bids of experiment {experiment.id!r}")
+        raise no_pieces_error(source or "bids", experiment.id, single_bidders=single_bidders,
+                              n_excluded_auctions=excluded)
     return ShardPieces(pieces, excluded)
 
 

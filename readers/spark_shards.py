@@ -44,7 +44,7 @@ import pyarrow as pa
 
 from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, prepare_bids
 from counterbid.estimators.arms import REQUIRED_BID_COLUMNS
-from counterbid.estimators.errors import InputError
+from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 from counterbid.estimators.pieces import StratumPiece, n_shards, stratum_pieces
 
 from .shards import ShardPieces
@@ -76,7 +76,8 @@ _ROW_BITS = 40
 #: Session setting under which Spark reads Parquet's nanosecond timestamps (pandas' datetimes) as integers.
 _NANOS_AS_LONG = "spark.sql.legacy.parquet.nanosAsLong"
 #: Columns of each shard's answer.
-_ANSWER = "shard long, n_bids long, n_excluded long, error string, warnings array<string>, pieces binary"
+_ANSWER = ("shard long, n_bids long, n_excluded long, single_bidders boolean, error string, warnings array<string>, "
+           "pieces binary")
 
 
 def require_pyspark():
@@ -265,7 +266,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
     n_bids = table.num_rows
-    error, pieces, excluded, caught_messages = None, [], 0, []
+    error, pieces, excluded, caught_messages, single_bidders = None, [], 0, [], False
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", EstimatorWarning)
@@ -276,11 +277,14 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
             excluded = int(prepared.n_excluded_auctions)
             pieces = stratum_pieces(prepared, experiment, shard=shard, day=day, cluster=cluster, source=where)
         caught_messages = [str(w.message) for w in caught if issubclass(w.category, EstimatorWarning)]
+    except NothingToEstimate as exc:  # the driver decides: bad input alone, left out beside other shards
+        excluded, single_bidders, error = exc.n_excluded_auctions, True, str(exc)
     except InputError as exc:
         error = str(exc)
     return pa.table({
         "shard": pa.array([shard], pa.int64()), "n_bids": pa.array([n_bids], pa.int64()),
-        "n_excluded": pa.array([excluded], pa.int64()), "error": pa.array([error], pa.string()),
+        "n_excluded": pa.array([excluded], pa.int64()), "single_bidders": pa.array([single_bidders], pa.bool_()),
+        "error": pa.array([error], pa.string()),
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
     })
@@ -343,7 +347,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     # as locally, a shard is named only when more than one shard holds bids (which only the answers tell)
     named = _shard_names(len(answers) > 1)
     for answer in answers:
-        if answer["error"] is not None:
+        if answer["error"] is not None and not (answer["single_bidders"] and len(answers) > 1):
             raise InputError(named(answer["error"]))
     pieces: list[StratumPiece] = []
     excluded = 0
@@ -352,8 +356,9 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
             warnings.warn(named(message), EstimatorWarning, stacklevel=2)
         excluded += int(answer["n_excluded"])
         pieces += pickle.loads(answer["pieces"])
-    if not pieces:
-        raise InputError(f"{source}: no shard holds bids of experiment {experiment.id!r}")
+    if not pieces:  # as locally: several shards of single-bidder auctions only, or no bids at all
+        raise no_pieces_error(source, experiment.id, single_bidders=any(a["single_bidders"] for a in answers),
+                              n_excluded_auctions=excluded)
     return ShardPieces(pieces, excluded)
 
 
