@@ -8,6 +8,8 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
 (b2) cli_text  the same on a copy of the log whose auction and bidder ids are distinct strings
                (``qa-<auction>`` and ``qb-<bidder>-<auction mod 1024>``: 2M auctions, 4.4M bidders at 10M)
+(b3) cli_spark ``counterbid estimate --engine spark --spark-master local[2] --format json``: the Spark
+               engine in local mode (one JVM, two task threads, Python workers), default shards
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
 (c) sql_realized  the realized per-arm average as a DuckDB GROUP BY (``sql/bench_realized_per_arm.sql``)
 (d) pandas     the plain-pandas peer (``plain_pandas_peer.py``)
@@ -21,7 +23,20 @@ the rest). The notes also give the machine's cost of touching fresh memory, whic
 machine can dominate: a child's peak RSS is memory it had to fault in. Prints a markdown table;
 ``--out FILE`` also writes it.
 
+The engines table sets (b) beside (b3). The Spark engine is a process tree (the Python driver,
+the JVM it launches, the PySpark daemon and its Python workers), so ``ru_maxrss`` of the command
+(the driver alone) says little: for both rows a thread samples the whole tree every 50 ms and
+reports the peak of the summed PSS (shared pages split among their sharers) and of the summed RSS
+(:class:`ProcessTreeMemory` says why sampling rather than ``ru_maxrss``, ``/usr/bin/time`` or a
+cgroup), with the PSS of the driver, the JVM and the workers at that peak. Spark's settings come
+from a ``spark-defaults.conf`` in ``<data>/spark-conf`` (``SPARK_CONF_DIR``; ``--spark-conf
+KEY=VALUE`` adds one, e.g. ``spark.driver.memory=2g``); by default it is empty, so the rows show
+Spark's defaults. Last, ``compare_engines.py`` estimates one 2M-bid log with both engines (4
+shards, clustering by bidder) and its section (largest relative difference over every numeric
+cell, non-numeric cells identical or not) is appended to the output.
+
 Usage: python tests/benchmarks/bench_estimator.py [--sizes 1,5,10] [--repeat 3] [--data DIR] [--out FILE]
+       [--skip ROWS] [--spark-master local[2]] [--spark-conf KEY=VALUE ...] [--compare-millions 2]
 """
 
 from __future__ import annotations
