@@ -95,6 +95,8 @@ def child(kind: str, path: str, spec: str) -> dict:
         return {"work": time.perf_counter() - t0}
     if kind == "simulate":
         return _simulate(Path(path), spec)
+    if kind == "text_ids":
+        return _write_text_ids(Path(path))
     if kind in ("floor", "input"):  # nothing but DuckDB and numpy imported (the SQL file read as text)
         import duckdb
         import numpy as np
@@ -311,23 +313,37 @@ def _simulate(target: Path, spec_path: str) -> dict:
     return {"work": time.perf_counter() - t0, "n": len(frame)}
 
 
-def text_ids(source: Path) -> Path:
-    """A copy of ``source`` with its auction and bidder ids as distinct strings (many distinct values)."""
+def text_ids(source: Path, me: list[str]) -> Path:
+    """A copy of ``source`` with its auction and bidder ids as distinct strings (many distinct values).
+
+    Written by a child, as :func:`make_data` does: ``subprocess`` starts children with ``vfork``,
+    and a child's ``ru_maxrss`` then starts at this parent's own peak RSS (Linux carries the
+    high-water mark of the memory the child borrowed until ``exec``), so a parent that once held a
+    10M-row table would set the floor of every later row's peak RSS.
+    """
+    target = source.with_name(source.stem + "_text.parquet")
+    if not target.exists():
+        run_child([*me, "--child", "text_ids", str(source), "-"])
+    return target
+
+
+def _write_text_ids(source: Path) -> dict:
     import pyarrow as pa
     import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
     target = source.with_name(source.stem + "_text.parquet")
-    if not target.exists():
-        table = pq.read_table(source)
-        auction, bidder = table.column("auction_id"), table.column("bidder_id")
-        text = {"auction_id": pc.binary_join_element_wise("qa-", pc.cast(auction, pa.string()), ""),
-                "bidder_id": pc.binary_join_element_wise("qb-", pc.cast(bidder, pa.string()), "-",
-                                                         pc.cast(pc.bit_wise_and(auction, 1023), pa.string()), "")}
-        for name, column in text.items():
-            table = table.set_column(table.schema.get_field_index(name), name, column)
-        pq.write_table(table, target)
-    return target
+    table = pq.read_table(source)
+    auction, bidder = table.column("auction_id"), table.column("bidder_id")
+    text = {"auction_id": pc.binary_join_element_wise("qa-", pc.cast(auction, pa.string()), ""),
+            "bidder_id": pc.binary_join_element_wise("qb-", pc.cast(bidder, pa.string()), "-",
+                                                     pc.cast(pc.bit_wise_and(auction, 1023), pa.string()), "")}
+    for name, column in text.items():
+        table = table.set_column(table.schema.get_field_index(name), name, column)
+    partial = target.with_name(target.name + ".partial")
+    pq.write_table(table, partial)
+    partial.rename(target)
+    return {"work": 0.0}
 
 
 def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
@@ -421,7 +437,7 @@ def main(argv: list[str] | None = None) -> int:
                 continue
             options = {}
             if kind in ("cli", "cli_text", "cli_spark"):
-                bids = text_ids(path) if kind == "cli_text" else path
+                bids = text_ids(path, me) if kind == "cli_text" else path
                 argv = [exe, "estimate", "--bids", str(bids), "--experiment", str(spec_path), "--format", "json"]
                 options["tree"] = kind != "cli_text"
                 if kind == "cli_spark":
