@@ -25,7 +25,7 @@ machine can dominate: a child's peak RSS is memory it had to fault in. Prints a 
 
 The engines table sets (b) beside (b3). The Spark engine is a process tree (the Python driver,
 the JVM it launches, the PySpark daemon and its Python workers), so ``ru_maxrss`` of the command
-(the driver alone) says little: for both rows a thread samples the whole tree every 50 ms and
+(one process's peak: here the driver's, as the driver does not reap its JVM) says little: for both rows a thread samples the whole tree every 50 ms and
 reports the peak of the summed PSS (shared pages split among their sharers) and of the summed RSS
 (:class:`ProcessTreeMemory` says why sampling rather than ``ru_maxrss``, ``/usr/bin/time`` or a
 cgroup), with the PSS of the driver, the JVM and the workers at that peak. Spark's settings come
@@ -151,8 +151,8 @@ def child(kind: str, path: str, spec: str) -> dict:
 class ProcessTreeMemory:
     """Peak memory of a process and all its descendants, sampled every ``interval`` seconds.
 
-    Why sampling: ``ru_maxrss`` (``os.wait4``) is the peak of ONE process, and ``RUSAGE_CHILDREN``
-    is the largest peak among the reaped descendants, not their sum. The Spark engine is a tree
+    Why sampling: ``ru_maxrss`` (``os.wait4``) is the peak of ONE process: the child's own, or the
+    largest among the descendants it reaped, never their sum. The Spark engine is a tree
     (the Python driver, the JVM it launches, the PySpark daemon and the Python workers it forks),
     so a thread walks the tree (``psutil``) and sums, per sample, each process's proportional set
     size (PSS, ``/proc/<pid>/smaps_rollup``: a page shared by k processes counts 1/k, so the
