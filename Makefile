@@ -31,9 +31,12 @@ demo: $(STAMP)
 	$(PY) -m counterbid.dags_example.demo report --out demo_output
 	@echo "demo wall time: $$(( $$(date +%s) - $$(cat demo_output/.started) ))s"
 
-# Benchmark against the physical floor (1M, 5M, 10M bids; several minutes). Not part of `make test`.
+# Benchmark against the physical floor (1M, 5M, 10M bids), the local engine against the Spark engine
+# in local mode (local[2]), and both engines on one 2M-bid log compared cell by cell; 20-30 minutes.
+# Not part of `make test`. BENCH_ARGS passes options, e.g. BENCH_ARGS='--data /tmp/bench --sizes 1,10'.
+BENCH_ARGS ?=
 bench: $(STAMP) $(JAVA_HOME_FILE)
-	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) tests/benchmarks/bench_estimator.py --out bench_results.md
+	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) tests/benchmarks/bench_estimator.py --out bench_results.md $(BENCH_ARGS)
 
 bench-strata: $(STAMP)
 	$(PY) tests/benchmarks/bench_strata.py --out bench_strata_results.md

@@ -8,6 +8,8 @@ stores them as Parquet in a temporary folder and measures, each in its own child
 (b) cli        ``counterbid estimate --format json`` end to end (interpreter start to exit)
 (b2) cli_text  the same on a copy of the log whose auction and bidder ids are distinct strings
                (``qa-<auction>`` and ``qb-<bidder>-<auction mod 1024>``: 2M auctions, 4.4M bidders at 10M)
+(b3) cli_spark ``counterbid estimate --engine spark --spark-master local[2] --format json``: the Spark
+               engine in local mode (one JVM, two task threads, Python workers), default shards
 (b') estimate  ``read_bids`` + ``estimate_arms`` in one process (time after imports)
 (c) sql_realized  the realized per-arm average as a DuckDB GROUP BY (``sql/bench_realized_per_arm.sql``)
 (d) pandas     the plain-pandas peer (``plain_pandas_peer.py``)
@@ -21,7 +23,20 @@ the rest). The notes also give the machine's cost of touching fresh memory, whic
 machine can dominate: a child's peak RSS is memory it had to fault in. Prints a markdown table;
 ``--out FILE`` also writes it.
 
+The engines table sets (b) beside (b3). The Spark engine is a process tree (the Python driver,
+the JVM it launches, the PySpark daemon and its Python workers), so ``ru_maxrss`` of the command
+(one process's peak: here the driver's, as the driver does not reap its JVM) says little: for both rows a thread samples the whole tree every 50 ms and
+reports the peak of the summed PSS (shared pages split among their sharers) and of the summed RSS
+(:class:`ProcessTreeMemory` says why sampling rather than ``ru_maxrss``, ``/usr/bin/time`` or a
+cgroup), with the PSS of the driver, the JVM and the workers at that peak. Spark's settings come
+from a ``spark-defaults.conf`` in ``<data>/spark-conf`` (``SPARK_CONF_DIR``; ``--spark-conf
+KEY=VALUE`` adds one, e.g. ``spark.driver.memory=2g``); by default it is empty, so the rows show
+Spark's defaults. Last, ``compare_engines.py`` estimates one 2M-bid log with both engines (4
+shards, clustering by bidder) and its section (largest relative difference over every numeric
+cell, non-numeric cells identical or not) is appended to the output.
+
 Usage: python tests/benchmarks/bench_estimator.py [--sizes 1,5,10] [--repeat 3] [--data DIR] [--out FILE]
+       [--skip ROWS] [--spark-master local[2]] [--spark-conf KEY=VALUE ...] [--compare-millions 2]
 """
 
 from __future__ import annotations
@@ -49,6 +64,11 @@ experiments:
       - {name: five,    share: 0.1, position_weights: [0.29, 0.19, 0.10, 0.05, 0.02]}
 """
 N_BIDDERS = 5
+#: Master of the Spark rows: local mode, as many worker threads as the 2-core machine has.
+SPARK_MASTER = "local[2]"
+#: Spark settings of the Spark rows (none: Spark's defaults, a 1g driver heap, which holds 10M bids; in
+#: local mode the executors live in the driver's JVM, so that heap is the whole engine's JVM heap).
+SPARK_CONF: dict[str, str] = {}
 COLUMNS = ["experiment_id", "auction_id", "bidder_id", "arm", "bid", "position"]
 
 
@@ -75,6 +95,8 @@ def child(kind: str, path: str, spec: str) -> dict:
         return {"work": time.perf_counter() - t0}
     if kind == "simulate":
         return _simulate(Path(path), spec)
+    if kind == "text_ids":
+        return _write_text_ids(Path(path))
     if kind in ("floor", "input"):  # nothing but DuckDB and numpy imported (the SQL file read as text)
         import duckdb
         import numpy as np
@@ -126,19 +148,110 @@ def child(kind: str, path: str, spec: str) -> dict:
 
 
 # -- parent ------------------------------------------------------------------------------------
-def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600) -> dict:
-    """Run ``argv`` as a child; wall seconds, peak RSS (MiB) from wait4, and its JSON stdout."""
+class ProcessTreeMemory:
+    """Peak memory of a process and all its descendants, sampled every ``interval`` seconds.
+
+    Why sampling: ``ru_maxrss`` (``os.wait4``) is the peak of ONE process: the child's own, or the
+    largest among the descendants it reaped, never their sum. The Spark engine is a tree
+    (the Python driver, the JVM it launches, the PySpark daemon and the Python workers it forks),
+    so a thread walks the tree (``psutil``) and sums, per sample, each process's proportional set
+    size (PSS, ``/proc/<pid>/smaps_rollup``: a page shared by k processes counts 1/k, so the
+    forked workers and the shared libraries are not counted twice) and, for reference, its RSS
+    (which does count shared pages once per process). The peak of those sums is reported. A cgroup's
+    ``memory.peak`` would be exact but needs a writable cgroup and also counts the page cache of the
+    Parquet files read; ``/usr/bin/time`` reports ``ru_maxrss``, i.e. one process. A spike shorter
+    than the interval can be missed; the local engine's sampled RSS against its own ``ru_maxrss``
+    (both in the engines table) shows how close the sampling gets.
+    """
+
+    def __init__(self, pid: int, interval: float = 0.05):
+        import threading
+
+        self.pid, self.interval = pid, interval
+        self.peak_pss = self.peak_rss = 0.0  # bytes
+        self.max_processes = 0
+        self.java_args: list[str] = []
+        self.peak_roles: dict[str, float] = {}  # PSS by role at the peak sample
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    @staticmethod
+    def _pss_rss(pid: int) -> tuple[int, int]:
+        pss = rss = 0
+        with open(f"/proc/{pid}/smaps_rollup") as f:
+            for line in f:
+                if line.startswith("Pss:"):
+                    pss = int(line.split()[1]) * 1024
+                elif line.startswith("Rss:"):
+                    rss = int(line.split()[1]) * 1024
+        return pss, rss
+
+    def _role(self, proc) -> str:
+        """``driver`` (the command's own process), ``jvm`` (Spark's JVM, launcher included) or ``workers``."""
+        if proc.pid == self.pid:
+            return "driver"
+        return "jvm" if proc.name() == "java" else "workers"
+
+    def _run(self) -> None:
+        import psutil
+
+        try:
+            root = psutil.Process(self.pid)
+        except psutil.Error:
+            return
+        while not self._stop.is_set():
+            try:
+                tree = [root, *root.children(recursive=True)]
+            except psutil.Error:
+                break
+            pss = rss = 0
+            roles: dict[str, float] = {}
+            for proc in tree:
+                try:
+                    p, r = self._pss_rss(proc.pid)
+                    role = self._role(proc)
+                    if role == "jvm" and not self.java_args:
+                        command = proc.cmdline()  # the application's JVM, not Spark's launcher (-Xmx128m)
+                        if "org.apache.spark.launcher.Main" not in command:
+                            self.java_args = [a for a in command if a.startswith("-Xmx")] or ["JVM default heap"]
+                except (OSError, psutil.Error):  # exited between the listing and the read
+                    continue
+                pss, rss = pss + p, rss + r
+                roles[role] = roles.get(role, 0.0) + p
+            if pss > self.peak_pss:
+                self.peak_roles = roles
+            self.peak_pss, self.peak_rss = max(self.peak_pss, pss), max(self.peak_rss, rss)
+            self.max_processes = max(self.max_processes, len(tree))
+            self._stop.wait(self.interval)
+
+    def stop(self) -> dict:
+        self._stop.set()
+        self._thread.join()
+        return {"tree_pss_mib": self.peak_pss / 2**20, "tree_rss_mib": self.peak_rss / 2**20,
+                "tree_processes": self.max_processes, "java_xmx": " ".join(self.java_args),
+                "peak_roles_mib": {k: round(v / 2**20) for k, v in self.peak_roles.items()}}
+
+
+def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600, tree: bool = False) -> dict:
+    """Run ``argv`` as a child; wall seconds, peak RSS (MiB) from wait4, and its JSON stdout.
+
+    With ``tree=True`` also the peak memory of the child and all its descendants
+    (:class:`ProcessTreeMemory`: ``tree_pss_mib``, ``tree_rss_mib``, ``tree_processes``).
+    """
     started = time.perf_counter()
     with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
         proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, text=True)
+        sampler = ProcessTreeMemory(proc.pid) if tree else None
         _, status, usage = os.wait4(proc.pid, 0)
         wall = time.perf_counter() - started
+        sampled = sampler.stop() if sampler else {}
         proc.returncode = os.waitstatus_to_exitcode(status)
         out.seek(0), err.seek(0)
         stdout, stderr = out.read(), err.read()
     if proc.returncode != 0:
         raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}")
-    result = {"wall": wall, "rss_mib": usage.ru_maxrss / 1024.0, "stderr": stderr}
+    result = {"wall": wall, "rss_mib": usage.ru_maxrss / 1024.0, "stdout": stdout, "stderr": stderr, **sampled}
     try:  # a child's one JSON line, or a command's whole JSON output
         result.update(json.loads(stdout.strip().splitlines()[-1]))
     except (ValueError, IndexError):
@@ -147,6 +260,31 @@ def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600
         except ValueError:
             pass
     return result
+
+
+def spark_settings(pairs: list[str]) -> dict[str, str]:
+    """:data:`SPARK_CONF` updated by ``KEY=VALUE`` pairs."""
+    settings = dict(SPARK_CONF)
+    for pair in pairs:
+        key, sep, value = pair.partition("=")
+        if not sep:
+            raise SystemExit(f"--spark-conf {pair!r}: expected KEY=VALUE")
+        settings[key.strip()] = value.strip()
+    return settings
+
+
+def spark_environment(folder: Path, pairs: list[str]) -> dict[str, str]:
+    """The environment of a Spark child: ``SPARK_CONF_DIR`` holding a ``spark-defaults.conf``.
+
+    ``counterbid estimate --engine spark`` starts its session with its own few settings; anything
+    else (the driver's heap above all, which must be known before the JVM starts) comes, as for any
+    Spark application, from ``$SPARK_CONF_DIR/spark-defaults.conf``, read by Spark's launcher.
+    """
+    conf_dir = folder / "spark-conf"
+    conf_dir.mkdir(exist_ok=True)
+    (conf_dir / "spark-defaults.conf").write_text(
+        "".join(f"{k} {v}\n" for k, v in spark_settings(pairs).items()))
+    return {**os.environ, "SPARK_CONF_DIR": str(conf_dir)}
 
 
 def make_data(folder: Path, millions: int, spec_path: Path, me: list[str]) -> Path:
@@ -175,23 +313,37 @@ def _simulate(target: Path, spec_path: str) -> dict:
     return {"work": time.perf_counter() - t0, "n": len(frame)}
 
 
-def text_ids(source: Path) -> Path:
-    """A copy of ``source`` with its auction and bidder ids as distinct strings (many distinct values)."""
+def text_ids(source: Path, me: list[str]) -> Path:
+    """A copy of ``source`` with its auction and bidder ids as distinct strings (many distinct values).
+
+    Written by a child, as :func:`make_data` does: ``subprocess`` starts children with ``vfork``,
+    and a child's ``ru_maxrss`` then starts at this parent's own peak RSS (Linux carries the
+    high-water mark of the memory the child borrowed until ``exec``), so a parent that once held a
+    10M-row table would set the floor of every later row's peak RSS.
+    """
+    target = source.with_name(source.stem + "_text.parquet")
+    if not target.exists():
+        run_child([*me, "--child", "text_ids", str(source), "-"])
+    return target
+
+
+def _write_text_ids(source: Path) -> dict:
     import pyarrow as pa
     import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
     target = source.with_name(source.stem + "_text.parquet")
-    if not target.exists():
-        table = pq.read_table(source)
-        auction, bidder = table.column("auction_id"), table.column("bidder_id")
-        text = {"auction_id": pc.binary_join_element_wise("qa-", pc.cast(auction, pa.string()), ""),
-                "bidder_id": pc.binary_join_element_wise("qb-", pc.cast(bidder, pa.string()), "-",
-                                                         pc.cast(pc.bit_wise_and(auction, 1023), pa.string()), "")}
-        for name, column in text.items():
-            table = table.set_column(table.schema.get_field_index(name), name, column)
-        pq.write_table(table, target)
-    return target
+    table = pq.read_table(source)
+    auction, bidder = table.column("auction_id"), table.column("bidder_id")
+    text = {"auction_id": pc.binary_join_element_wise("qa-", pc.cast(auction, pa.string()), ""),
+            "bidder_id": pc.binary_join_element_wise("qb-", pc.cast(bidder, pa.string()), "-",
+                                                     pc.cast(pc.bit_wise_and(auction, 1023), pa.string()), "")}
+    for name, column in text.items():
+        table = table.set_column(table.schema.get_field_index(name), name, column)
+    partial = target.with_name(target.name + ".partial")
+    pq.write_table(table, partial)
+    partial.rename(target)
+    return {"work": 0.0}
 
 
 def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
@@ -211,19 +363,24 @@ def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
     return r
 
 
-def repeated(argv: list[str], times: int) -> dict:
-    """Median wall, work and peak RSS of ``times`` runs of one child (the other fields of the last)."""
-    runs = [run_child(argv) for _ in range(times)]
+def repeated(argv: list[str], times: int, **options) -> dict:
+    """Median wall, work and peak memory of ``times`` runs of one child (the other fields of the last)."""
+    runs = [run_child(argv, **options) for _ in range(times)]
     out = dict(runs[-1])
-    for field in ("wall", "work", "rss_mib"):
+    for field in ("wall", "work", "rss_mib", "tree_pss_mib", "tree_rss_mib"):
+        if field not in out:
+            continue
         values = [r.get(field, float("nan")) for r in runs]
         out[field] = statistics.median(values) if all(v == v for v in values) else float("nan")
+    if "tree_pss_mib" in out:  # the composition of the median run's peak
+        out["peak_roles_mib"] = sorted(runs, key=lambda r: r["tree_pss_mib"])[(len(runs) - 1) // 2]["peak_roles_mib"]
     out["walls"] = [round(r["wall"], 2) for r in runs]
     return out
 
 
 LABELS = {"floor": "(a) floor: DuckDB read bid + np.sort", "input": "(a2) DuckDB read of the 5 columns used + np.sort",
           "cli": "(b) counterbid estimate (CLI process)", "cli_text": "(b2) counterbid estimate, string ids",
+          "cli_spark": "(b3) counterbid estimate --engine spark, local[2]",
           "estimate": "(b') read_bids + estimate_arms",
           "sql_realized": "(c) realized per-arm average (DuckDB)", "pandas": "(d) plain-pandas peer"}
 
@@ -234,7 +391,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--repeat", type=int, default=3, help="runs per row; medians are reported (default 3)")
     p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
     p.add_argument("--out", help="also write the markdown table here")
-    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,cli_text,estimate,sql_realized,pandas,dag)")
+    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,cli_text,cli_spark,estimate,"
+                                              "sql_realized,pandas,dag,compare)")
+    p.add_argument("--spark-master", default=SPARK_MASTER, help=f"master of the Spark rows (default {SPARK_MASTER})")
+    p.add_argument("--spark-conf", action="append", default=[], metavar="KEY=VALUE",
+                   help="a Spark setting of the Spark rows, written to their spark-defaults.conf (repeatable; default "
+                        + ", ".join(f"{k}={v}" for k, v in SPARK_CONF.items()) + ")")
+    p.add_argument("--compare-millions", type=int, default=2, help="bids (millions) of the engine comparison (default 2)")
     p.add_argument("--child", nargs=3, metavar=("KIND", "PATH", "SPEC"), help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
@@ -260,28 +423,45 @@ def main(argv: list[str] | None = None) -> int:
              f"({touch['work'] / 4:.3f} s per 100 MiB)",
              f"load average at the start: {os.getloadavg()[0]:.2f}; medians of {args.repeat} runs"]
     first_file = None
+    spark_env = spark_environment(folder, args.spark_conf)
+    engine_lines = ["| bids | engine | shards | wall s | peak RSS of the command's process MiB | "
+                    "peak PSS of the process tree MiB | peak RSS summed over the tree MiB | processes |",
+                    "|---:|---|---:|---:|---:|---:|---:|---:|"]
     for millions in [int(s) for s in args.sizes.split(",")]:
         path = make_data(folder, millions, spec_path, me)
         first_file = first_file or path
         column_mib = millions * 1e6 * 8 / 2**20
         rows = {}
-        for kind in ("floor", "input", "cli", "cli_text", "estimate", "sql_realized", "pandas"):
+        for kind in ("floor", "input", "cli", "cli_text", "cli_spark", "estimate", "sql_realized", "pandas"):
             if kind in skip:
                 continue
-            if kind in ("cli", "cli_text"):
-                bids = text_ids(path) if kind == "cli_text" else path
+            options = {}
+            if kind in ("cli", "cli_text", "cli_spark"):
+                bids = text_ids(path, me) if kind == "cli_text" else path
                 argv = [exe, "estimate", "--bids", str(bids), "--experiment", str(spec_path), "--format", "json"]
+                options["tree"] = kind != "cli_text"
+                if kind == "cli_spark":
+                    argv += ["--engine", "spark", "--spark-master", args.spark_master]
+                    options["env"] = spark_env
             else:
                 argv = [*me, "--child", kind, str(path), str(spec_path)]
-            r = repeated(argv, 1 if kind == "pandas" else args.repeat)
-            if kind in ("cli", "cli_text"):
+            r = repeated(argv, 1 if kind == "pandas" else args.repeat, **options)
+            if kind in ("cli", "cli_text", "cli_spark"):
                 r["work"] = float("nan")
+            if kind in ("cli", "cli_spark"):
+                engine = "local (default shards)" if kind == "cli" else f"spark {args.spark_master} ({r['java_xmx']})"
+                roles = ", ".join(f"{k} {v}" for k, v in sorted(r["peak_roles_mib"].items()))
+                engine_lines.append(f"| {millions}M | {engine} | {r.get('shards', '?')} | {r['wall']:.2f} | "
+                                    f"{r['rss_mib']:.0f} | {r['tree_pss_mib']:.0f} ({roles}) | "
+                                    f"{r['tree_rss_mib']:.0f} | {r['tree_processes']} |")
             rows[kind] = r
             print(f"{millions}M {kind}: wall {r['wall']:.2f}s {r['walls']} work {r.get('work', float('nan')):.2f}s "
                   f"rss {r['rss_mib']:.0f} MiB {({k: v for k, v in r.items() if k in ('read', 'sort', 'estimate')})}",
                   file=sys.stderr, flush=True)
         floor = rows.get("floor")
         for kind, r in rows.items():
+            if kind == "cli_spark":  # its process is the Python driver alone: the engines table has the tree
+                continue
             ratio_wall = r["wall"] / floor["wall"] if floor else float("nan")
             ratio_work = r["work"] / floor["work"] if floor and r["work"] == r["work"] else float("nan")
             cells = [f"{v:.2f}" if v == v else "–" for v in (r["wall"], r["work"])]
@@ -295,7 +475,20 @@ def main(argv: list[str] | None = None) -> int:
         notes.append(f"one-day DAG run (counterbid backfill, dag.test) on 1M bids: {d['state']} in {d['dag_seconds']:.1f} s "
                      f"({d['steps']}); process wall {d['wall']:.1f} s incl. Airflow metadata migration, "
                      f"peak RSS {d['rss_mib']:.0f} MiB")
-    text = "\n".join(lines + [""] + [f"* {n}" for n in notes]) + "\n"
+    sections = lines + [""] + [f"* {n}" for n in notes]
+    if len(engine_lines) > 2:
+        sections += ["", f"Engines: `counterbid estimate --format json`, local engine against `--engine spark "
+                         f"--spark-master {args.spark_master}` (Spark settings: "
+                         f"{', '.join(f'{k}={v}' for k, v in spark_settings(args.spark_conf).items()) or 'defaults'}); medians of "
+                         f"{args.repeat} runs; the process tree's memory sampled every 50 ms (see ProcessTreeMemory).",
+                     "", *engine_lines]
+    if "compare" not in skip:
+        compared = run_child([sys.executable, str(HERE / "compare_engines.py"), "--data", str(folder),
+                              "--millions", str(args.compare_millions), "--spark-master", args.spark_master,
+                              "--exit-zero"],
+                             env=spark_env)
+        sections += ["", compared["stdout"].rstrip()]
+    text = "\n".join(sections) + "\n"
     print(text)
     if args.out:
         Path(args.out).write_text(text)
