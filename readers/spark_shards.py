@@ -96,9 +96,10 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     Parameters
     ----------
     master : str, optional
-        Master URL of a new session (``local[2]``, ``spark://host:7077``, ``yarn``, ...); default
-        ``$COUNTERBID_SPARK_MASTER``, else ``local[*]``. Ignored when a session is active (a
-        ``@task.pyspark`` task's, say).
+        Master URL of a new session (``local[2]``, ``spark://host:7077``, ``yarn``, ...), or a
+        Spark Connect URL (``sc://host:15002``, with ``/;token=...`` when the server asks for one:
+        no Java is needed here then); default ``$COUNTERBID_SPARK_MASTER``, else ``local[*]``.
+        Ignored when a session is active (a ``@task.pyspark`` task's, say).
     config : mapping, optional
         More Spark settings of a new session.
 
@@ -117,10 +118,21 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     active = SparkSession.getActiveSession()
     if active is not None:
         return active
+    url = master or os.environ.get(SPARK_MASTER_ENV) or "local[*]"
+    if url.startswith("sc://"):  # Spark Connect: the server runs Spark, Java and the Python workers
+        builder = SparkSession.builder.remote(url)
+        for key, value in (config or {}).items():
+            builder = builder.config(key, value)
+        try:
+            with _quiet_pyspark():
+                return builder.getOrCreate()
+        except Exception as exc:  # grpc's errors: the server is down, refuses the token, ...
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise InputError(f"could not reach the Spark Connect server {url.split(';')[0]} ({first})") from None
     _require_java()
     # local workers run this interpreter (which has counterbid), not whatever `python3` is first on PATH
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
-    builder = (SparkSession.builder.master(master or os.environ.get(SPARK_MASTER_ENV) or "local[*]")
+    builder = (SparkSession.builder.master(url)
                .appName("counterbid").config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false")
                .config("spark.driver.maxResultSize", "0"))  # pieces of every shard come back to the driver
     for key, value in (config or {}).items():

@@ -10,8 +10,10 @@ from __future__ import annotations
 import json
 import os
 import re
+import signal
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -94,9 +96,8 @@ def test_spark_gives_the_local_rows(files, java_home, capsys):
                 np.testing.assert_allclose(mine[key], value, rtol=0, atol=1e-10, err_msg=key)
             else:
                 assert mine[key] == value, key
-    # the warnings the local run prints (welfare has no interval), and nothing of Spark's past its startup
+    # the lines the local run prints (warnings, notes), and nothing of Spark's past its startup
     assert _counterbid_lines(done.stderr) == local_err.splitlines()
-    assert local_err.startswith("counterbid: warning: ")
 
 
 def test_bad_input_is_one_line_and_exit_2(files, java_home, capsys):
@@ -149,3 +150,63 @@ def test_without_java_one_line(files, tmp_path):
     assert done.stderr.splitlines() == [
         f"counterbid: error: JAVA_HOME={nowhere} holds no bin/java; Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
         "to one"]
+
+
+CONNECT_SERVER = """
+import os, sys
+os.environ["PYSPARK_PYTHON"] = sys.executable
+from pyspark.sql import SparkSession
+# a local Spark Connect server (Spark, its JVM and Python workers in this process tree) on a port, with a
+# token; its own client looks for the default port, so getOrCreate keeps waiting while the server serves
+SparkSession.builder.remote("local[2]").config("spark.connect.grpc.binding.port", sys.argv[1]) \\
+    .config("spark.connect.authenticate.token", sys.argv[2]).config("spark.sql.shuffle.partitions", "4").getOrCreate()
+"""
+
+
+@pytest.fixture
+def connect_server(java_home):
+    """A Spark Connect server in its own process: ``sc://localhost:<port>/;token=<token>``."""
+    import socket
+
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    token = "quillfen-bench-token"
+    env = {**os.environ, "JAVA_HOME": java_home}
+    server = subprocess.Popen([sys.executable, "-c", CONNECT_SERVER, str(port), token], stdout=subprocess.DEVNULL,
+                              stderr=subprocess.DEVNULL, env=env, start_new_session=True)
+    try:
+        deadline = time.monotonic() + 180
+        while True:  # until the server accepts connections
+            assert server.poll() is None, "the Spark Connect server exited"
+            try:
+                socket.create_connection(("127.0.0.1", port), timeout=1).close()
+                break
+            except OSError:
+                assert time.monotonic() < deadline, "the Spark Connect server did not start in 180 s"
+                time.sleep(0.5)
+        yield f"sc://localhost:{port}/;token={token}"
+    finally:
+        os.killpg(server.pid, signal.SIGKILL)  # the server's JVM and Python workers too
+        server.wait(timeout=30)
+
+
+def test_spark_connect_server_gives_the_local_rows(files, connect_server, capsys):
+    """``--spark-master sc://...``: the client needs no Java; the server's Spark estimates the shards."""
+    spec, path, _ = files
+    argv = ["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json", "--max-bids-per-shard", "1500"]
+    assert main([*argv, "--engine", "local"]) == 0
+    local = json.loads(capsys.readouterr().out)
+    env = {k: v for k, v in os.environ.items() if k != "JAVA_HOME"}
+    done = subprocess.run([sys.executable, "-m", "counterbid.cli", *argv, "--engine", "spark", "--spark-master",
+                           connect_server], capture_output=True, text=True, timeout=300,
+                          env={**env, "PATH": os.path.dirname(sys.executable)})  # no java on PATH either
+    assert done.returncode == 0, done.stderr
+    remote = json.loads(done.stdout)
+    assert remote["shards"] == local["shards"] == 3
+    for mine, theirs in zip(remote["rows"], local["rows"], strict=True):
+        for key, value in theirs.items():
+            if isinstance(value, float):
+                np.testing.assert_allclose(mine[key], value, rtol=0, atol=1e-10, err_msg=key)
+            else:
+                assert mine[key] == value, key
