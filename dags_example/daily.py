@@ -27,7 +27,9 @@ estimates them in parallel; the numbers and stored rows are the local engine's).
 ``COUNTERBID_SPARK_CONN`` names the Airflow connection of the cluster (host = master URL, extras =
 Spark settings; a ``spark_connect`` connection for Spark Connect); empty = a ``local[*]`` session
 in the worker. The load and validate steps are the same with either engine (they stage and check
-the day with DuckDB), and the lake must be readable by Spark's executors at the same ``lake_root``.
+the day with DuckDB); Spark's executors read the lake at ``COUNTERBID_SPARK_LAKE`` (the run
+parameter ``spark_lake_root``), by default ``lake_root`` itself -- set it when Spark names the same
+store differently (``s3a://`` for DuckDB's ``s3://``).
 """
 
 from __future__ import annotations
@@ -88,6 +90,8 @@ ALERTS = CheckAlertNotifier(
         "confidence_level": os.environ.get("COUNTERBID_LEVEL", str(DEFAULT_CONFIDENCE_LEVEL)),
         "cluster": os.environ.get("COUNTERBID_CLUSTER", DEFAULT_CLUSTER),
         "max_bids_per_shard": os.environ.get("COUNTERBID_MAX_BIDS_PER_SHARD", ""),
+        # the lake as Spark's executors read it, when their URL differs from DuckDB's (s3a:// vs s3://)
+        "spark_lake_root": os.environ.get("COUNTERBID_SPARK_LAKE", ""),
     },
     tags=["counterbid"],
     doc_md=__doc__,
@@ -115,7 +119,7 @@ def counterbid_daily():
         if ENGINE == "spark":  # Spark reads the day from the lake; the provider builds the session from the connection
             from counterbid.operators.spark_pipeline import SparkEstimateArmsOperator
 
-            estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.lake_root }}",
+            estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.spark_lake_root or params.lake_root }}",
                                                  conn_id=SPARK_CONN, **options)
         else:
             estimate = EstimateArmsOperator(task_id="estimate", **options)
