@@ -240,7 +240,7 @@ def test_engine_setting_picks_the_estimate_operator(spark_engine, airflow_db, mo
     spark_engine("spark")
     estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
     assert isinstance(estimate, SparkEstimateArmsOperator)
-    assert (estimate.conn_id, estimate.lake_root) == (SPARK_CONN, "{{ params.lake_root }}")
+    assert (estimate.conn_id, estimate.lake_root) == (SPARK_CONN, "{{ params.spark_lake_root or params.lake_root }}")
     assert {"lake_root", "conn_id", "confidence_level", "cluster", "experiment_id"} <= set(estimate.template_fields)
     spark_engine("local")
     estimate = DagBag(dag_folder=str(dags_folder())).get_dag(DAG_ID).get_task("experiment.estimate")
