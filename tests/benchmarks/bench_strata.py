@@ -21,6 +21,7 @@ import argparse
 import datetime as dt
 import os
 import statistics
+import subprocess
 import sys
 import tempfile
 from pathlib import Path
@@ -55,17 +56,17 @@ def memory_rows(folder: Path, sizes: list[int], spec_path: Path, me: list[str]) 
 
 
 def backfill_rows(folder: Path, days: int, bids_per_day: int, spec_path: Path) -> tuple[list[str], str]:
-    from counterbid.dags_example.lake import write_bid_lake
-    from counterbid.estimators import load_experiments
-
     lake = folder / f"lake_{days}d_{bids_per_day}"
+    exe = str(Path(sys.executable).with_name("counterbid"))
     if not lake.exists():
-        write_bid_lake(lake, load_experiments(spec_path).values(), start=START, days=days,
-                       auctions_per_day=bids_per_day // N_BIDDERS, n_bidders=N_BIDDERS, seed=12)
+        # written by a child: a child forked after the parent held the lake's frames would start its
+        # peak RSS (ru_maxrss) at the parent's, inflating every backfill row below
+        subprocess.run([exe, "simulate", "--experiment", str(spec_path), "--out", str(lake), "--start", START.isoformat(),
+                        "--days", str(days), "--auctions-per-day", str(bids_per_day // N_BIDDERS),
+                        "--bidders", str(N_BIDDERS), "--seed", "12"], check=True, stdout=subprocess.DEVNULL)
     results = folder / "backfill_results.duckdb"
     results.unlink(missing_ok=True)
     home = folder / "airflow_home"
-    exe = str(Path(sys.executable).with_name("counterbid"))
     env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
     lines = ["| day | wall s (whole call) | DAG run s | steps | peak RSS MiB |", "|---|---:|---:|---|---:|"]
     walls = []
