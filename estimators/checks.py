@@ -15,7 +15,7 @@ import copy
 import datetime as _dt
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -27,12 +27,14 @@ from .errors import InputError
 from .spec import Experiment, parse_day
 
 __all__ = [
+    "AuctionCounts",
     "CheckResult",
     "DEFAULT_CHECKS",
     "InferredValues",
     "BID_QUANTILES",
     "SEVERITIES",
     "STATISTICAL_CHECKS",
+    "auction_counts",
     "bid_quantile_summary",
     "check_config",
     "drift_check",
@@ -242,6 +244,118 @@ def _auction_table(data) -> tuple[np.ndarray, np.ndarray]:
     return arm, n
 
 
+@dataclass(frozen=True, eq=False)
+class AuctionCounts:
+    """Auctions of one day per arm and number of bidders: all the counting checks read.
+
+    Attributes
+    ----------
+    n_bidders : ndarray of int64
+        The day's strata (numbers of bidders, each >= 2), ascending.
+    auctions : ndarray of int64, shape (arms, strata)
+        Auctions per arm (in the experiment's arm order) and stratum.
+    day_bids : int
+        Every bid of the day, single-bidder auctions included.
+
+    Notes
+    -----
+    Built from bids (:func:`auction_counts`) or from per-(arm, number of bidders) aggregates
+    computed elsewhere, e.g. by a database over the whole day (:meth:`from_frame`), so that
+    :func:`sample_ratio_check` and :func:`minimum_sample_checks` stay exact on a day too large to
+    load. Auctions with a single bidder are left out, as :func:`~counterbid.estimators.prepare_bids`
+    leaves them out.
+    """
+
+    n_bidders: np.ndarray
+    auctions: np.ndarray
+    day_bids: int
+
+    @property
+    def per_arm(self) -> np.ndarray:
+        """Auctions per arm (experiment order)."""
+        return self.auctions.sum(axis=1)
+
+    @property
+    def per_stratum(self) -> np.ndarray:
+        """Auctions per number of bidders (order of :attr:`n_bidders`)."""
+        return self.auctions.sum(axis=0)
+
+    @classmethod
+    def from_frame(cls, frame: pd.DataFrame, experiment: Experiment, *, source: str = "auction counts") -> "AuctionCounts":
+        """Counts from one row per (arm, number of bidders) with its auctions.
+
+        Parameters
+        ----------
+        frame : pandas.DataFrame
+            Columns ``arm`` (name), ``n_bidders`` (bids per auction, 1 included) and
+            ``n_auctions``; an (arm, n_bidders) pair may repeat (rows are summed).
+        experiment : Experiment
+        source : str
+            Name of the input in error messages.
+
+        Returns
+        -------
+        AuctionCounts
+
+        Raises
+        ------
+        InputError
+            A missing column, an arm not in the spec, or a negative or missing count (the
+            message names the row).
+        """
+        missing = [c for c in ("arm", "n_bidders", "n_auctions") if c not in frame.columns]
+        if missing:
+            raise InputError(f"{source}: column {missing[0]!r} is missing (required: arm, n_bidders, n_auctions)")
+        index = {name: k for k, name in enumerate(experiment.arm_names)}
+        arms = [None if pd.isna(a) else str(a) for a in frame["arm"]]
+        for i, a in enumerate(arms):
+            if a not in index:
+                raise InputError(f"{source}: unknown arm {a!r} at row {i} (experiment {experiment.id!r} has arms: "
+                                 f"{', '.join(experiment.arm_names)})")
+        n = pd.to_numeric(frame["n_bidders"], errors="coerce").to_numpy(float)
+        m = pd.to_numeric(frame["n_auctions"], errors="coerce").to_numpy(float)
+        for what, values in (("n_bidders", n), ("n_auctions", m)):
+            bad = np.flatnonzero(~np.isfinite(values) | (values < 0) | (values != np.round(values)))
+            if bad.size:
+                raise InputError(f"{source}: column {what!r} row {int(bad[0])} is not a count: "
+                                 f"{frame[what].iloc[int(bad[0])]}")
+        n, m = n.astype(np.int64), m.astype(np.int64)
+        day_bids = int(np.sum(n * m))
+        keep = (n >= 2) & (m > 0)
+        if not keep.any():  # as prepare_bids refuses such a day
+            raise InputError(f"{source}: no auction of experiment {experiment.id!r} has two or more bidders")
+        strata = np.unique(n[keep])
+        table = np.zeros((len(experiment.arms), strata.size), dtype=np.int64)
+        np.add.at(table, (np.array([index[a] for a in arms], dtype=np.int64)[keep], np.searchsorted(strata, n[keep])),
+                  m[keep])
+        return cls(n_bidders=strata, auctions=table, day_bids=day_bids)
+
+
+def auction_counts(bids, experiment: Experiment, *, source: str = "bids") -> AuctionCounts:
+    """Auctions per arm and number of bidders of a bids frame (or :class:`PreparedBids`).
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    source : str
+
+    Returns
+    -------
+    AuctionCounts
+    """
+    data = _prepared(bids, experiment, source)
+    arm, n = _auction_table(data)
+    strata = np.unique(n)
+    table = np.zeros((len(experiment.arms), strata.size), dtype=np.int64)
+    np.add.at(table, (arm, np.searchsorted(strata, n)), 1)
+    return AuctionCounts(n_bidders=strata, auctions=table, day_bids=int(data.bid.size + data.n_excluded_bids))
+
+
+def _counts(bids, experiment: Experiment, source: str) -> AuctionCounts:
+    return bids if isinstance(bids, AuctionCounts) else auction_counts(bids, experiment, source=source)
+
+
 def _result(name: str, cfg: Mapping[str, Any], passed: bool, observed, threshold, **details) -> CheckResult:
     obs = None if observed is None or not np.isfinite(observed) else float(observed)
     thr = None if threshold is None else float(threshold)
@@ -274,8 +388,9 @@ def sample_ratio_check(bids, experiment: Experiment, *, config: Mapping[str, Any
 
     Parameters
     ----------
-    bids : pandas.DataFrame or PreparedBids
-        The day's bids (data contract) or the output of :func:`prepare_bids`.
+    bids : pandas.DataFrame, PreparedBids or AuctionCounts
+        The day's bids (data contract), the output of :func:`prepare_bids`, or the day's
+        auctions per arm and number of bidders (:class:`AuctionCounts`; same result).
     experiment : Experiment
     config : mapping, optional
         Threshold overrides (``{"sample_ratio": {"alpha": ...}}``).
@@ -300,9 +415,7 @@ def sample_ratio_check(bids, experiment: Experiment, *, config: Mapping[str, Any
     .. [2] ``scipy.stats.chisquare``.
     """
     cfg = _config(config, experiment)["sample_ratio"]
-    data = _prepared(bids, experiment, source)
-    arm, _ = _auction_table(data)
-    observed = np.bincount(arm, minlength=len(experiment.arms)).astype(float)
+    observed = _counts(bids, experiment, source).per_arm.astype(float)
     shares = np.asarray(experiment.shares, dtype=float)
     expected = shares / shares.sum() * observed.sum()
     counts = {a.name: int(c) for a, c in zip(experiment.arms, observed)}
@@ -321,7 +434,8 @@ def minimum_sample_checks(bids, experiment: Experiment, *, config: Mapping[str, 
 
     Parameters
     ----------
-    bids : pandas.DataFrame or PreparedBids
+    bids : pandas.DataFrame, PreparedBids or AuctionCounts
+        The day's bids, or its auctions per arm and number of bidders (same result).
     experiment : Experiment
     config : mapping, optional
     source : str
@@ -340,14 +454,13 @@ def minimum_sample_checks(bids, experiment: Experiment, *, config: Mapping[str, 
     stratum (number of bidders) is inverted on its own bids. Common practice thresholds.
     """
     cfgs = _config(config, experiment)
-    data = _prepared(bids, experiment, source)
-    arm, n = _auction_table(data)
-    per_arm = np.bincount(arm, minlength=len(experiment.arms))
+    table = _counts(bids, experiment, source)
+    per_arm = table.per_arm
     arm_cfg = cfgs["min_auctions_per_arm"]
     smallest = int(per_arm.min())
     out = [_result("min_auctions_per_arm", arm_cfg, smallest >= arm_cfg["min_auctions"], smallest,
                    arm_cfg["min_auctions"], auctions={a.name: int(c) for a, c in zip(experiment.arms, per_arm)})]
-    strata, counts = np.unique(n, return_counts=True)
+    strata, counts = table.n_bidders, table.per_stratum
     st_cfg = cfgs["min_auctions_per_stratum"]
     low = {int(k): int(c) for k, c in zip(strata, counts) if c < st_cfg["min_auctions"]}
     out.append(_result("min_auctions_per_stratum", st_cfg, not low, int(counts.min()), st_cfg["min_auctions"],
@@ -833,7 +946,9 @@ def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[s
 
 
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
-                       config: Mapping[str, Any] | None = None, source: str = "bids") -> list[CheckResult]:
+                       config: Mapping[str, Any] | None = None, source: str = "bids",
+                       counts: AuctionCounts | None = None,
+                       sample: Mapping[str, Any] | None = None) -> list[CheckResult]:
     """Every statistical check of one (experiment, day), in :data:`STATISTICAL_CHECKS` order.
 
     Parameters
@@ -851,6 +966,14 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     config : mapping, optional
         Threshold overrides on top of ``experiment.checks``.
     source : str
+    counts : AuctionCounts, optional
+        The whole day's auctions per arm and number of bidders, when ``bids`` holds a sample of
+        the day's auctions: ``sample_ratio`` and the minimum-sample checks then read these
+        (exact for the day) and the distribution checks (``monotone_values``, ``shading``,
+        ``drift``) read ``bids``. Default: counted from ``bids``.
+    sample : mapping, optional
+        What ``bids`` is a sample of (e.g. ``{"shard": 0, "shards": 3, "bids_used": ...,
+        "day_bids": ...}``), recorded as ``details["sample"]`` of each distribution check.
 
     Returns
     -------
@@ -863,12 +986,18 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
         hist_days = pd.to_datetime(history["ds"])
         window = (hist_days < day) & (hist_days >= day - pd.Timedelta(days=int(cfg["drift"]["trailing_days"])))
         history = history.loc[window.to_numpy()] if window.any() else None
-    out = [sample_ratio_check(data, experiment, config=cfg)]
-    out += minimum_sample_checks(data, experiment, config=cfg)
+    if counts is not None and not isinstance(counts, AuctionCounts):
+        raise InputError("`counts` must be AuctionCounts (see AuctionCounts.from_frame)")
+    whole_day = counts if counts is not None else auction_counts(data, experiment)
+    out = [sample_ratio_check(whole_day, experiment, config=cfg)]
+    out += minimum_sample_checks(whole_day, experiment, config=cfg)
     fits, skipped = _inversions(data, experiment, cfg["monotone_values"])  # shared by both checks
-    out.append(_monotone_values_result(fits, skipped, cfg["monotone_values"]))
-    out.append(_shading_result(fits, skipped, cfg["shading"]))
-    out.append(drift_check(data, experiment, history, config=cfg, source=source))
+    spread = [_monotone_values_result(fits, skipped, cfg["monotone_values"]), _shading_result(fits, skipped, cfg["shading"]),
+              drift_check(data, experiment, history, config=cfg, source=source)]
+    if sample is not None:  # the distribution checks ran on a sample of the day's auctions: say which
+        note = _jsonable(dict(sample))
+        spread = [replace(r, details={**r.details, "sample": note}) for r in spread]
+    out += spread
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))
     return out

@@ -17,7 +17,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from counterbid.estimators.checks import CheckResult, bid_quantile_summary, check_config, equilibrium_checks
+from counterbid.estimators.checks import AuctionCounts, CheckResult, bid_quantile_summary, check_config, equilibrium_checks
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
@@ -39,6 +39,8 @@ def run_checks(
     history_relation: str | None = None,
     history_quantiles: pd.DataFrame | None = None,
     config: Mapping[str, Any] | None = None,
+    sample_relation: str | None = None,
+    sample_shard: tuple[int, int] | None = None,
 ) -> list[CheckResult]:
     """Every data check of one experiment's day: the contract suite, then the statistical checks.
 
@@ -61,6 +63,15 @@ def run_checks(
         ``history_relation`` is not given.
     config : mapping, optional
         Threshold overrides on top of ``experiment.checks`` (see ``DEFAULT_CHECKS``).
+    sample_relation : str, optional
+        Table or view (same connection) holding a hash sample of whole auctions of the day (one
+        shard of a day staged in several). The counting checks (``sample_ratio``, the minimum
+        samples) still count the whole ``relation`` in DuckDB (``sql/check_auction_counts.sql``);
+        the distribution checks (``monotone_values``, ``shading``, ``drift``) load only the
+        sample, so the frame in memory is one shard. Default: they load ``relation``.
+    sample_shard : (int, int), optional
+        ``(shard, shards)`` the sample is, recorded with the bids used and the day's bids in
+        ``details["sample"]`` of each distribution check.
 
     Returns
     -------
@@ -76,6 +87,8 @@ def run_checks(
     validate_identifier(relation, what="relation")
     if history_relation is not None:
         validate_identifier(history_relation, what="history_relation")
+    if sample_relation is not None:
+        validate_identifier(sample_relation, what="sample_relation")
     day = parse_day(ds)
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
     results = run_contract(con, relation, experiment, config=cfg)
@@ -83,10 +96,25 @@ def run_checks(
         relation = with_quality(con, relation)  # quality 1 when the log has none: every check ranks by bid x quality
         if history_relation is not None:
             history_relation = with_quality(con, history_relation)
+        if sample_relation is not None:
+            sample_relation = with_quality(con, sample_relation)
     if any(not r.passed and r.severity == "error" for r in results):
         log.warning("%s %s: contract failed; statistical checks not run", experiment.id, day)
         return results
-    bids = _bids_frame(con, render_sql("check_day_bids", relation=relation))
+    counts = sample = None
+    if sample_relation is not None:
+        try:  # the whole day's auctions per arm and number of bidders, counted in DuckDB
+            counts = AuctionCounts.from_frame(con.sql(render_sql("check_auction_counts", relation=relation)).df(),
+                                              experiment, source=relation)
+        except InputError as exc:
+            return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
+    bids = _bids_frame(con, render_sql("check_day_bids", relation=sample_relation or relation))
+    if counts is not None:
+        shard, shards = sample_shard if sample_shard is not None else (None, None)
+        sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
+                  "method": "hash sample of whole auctions (md5 of auction_id)"}
+        log.info("%s %s: distribution checks on shard %s of %s (%d of %d bids)", experiment.id, day, shard, shards,
+                 len(bids), counts.day_bids)
     history = None
     if history_relation is not None:
         first = day - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
@@ -99,7 +127,8 @@ def run_checks(
     elif history_quantiles is not None and not history_quantiles.empty:
         history = history_quantiles
     try:
-        results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg, source=relation)
+        results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg,
+                                      source=sample_relation or relation, counts=counts, sample=sample)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
     return results
@@ -109,7 +138,9 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
     """The day's bid-quantile summary (:func:`~counterbid.estimators.checks.bid_quantile_summary`) of a relation.
 
     Run after :func:`run_checks` passed the contract: the bids are read again from the DuckDB
-    relation (the checks' frame is gone by then, so the peak is one frame).
+    relation (the checks' frame is gone by then, so the peak is one frame). On a day staged in
+    several shards the pipeline passes the same hash sample the distribution checks read (its
+    ``n_bids`` are the sample's, which is what the drift test's effective size needs).
     """
     validate_identifier(relation, what="relation")
     relation = with_quality(con, relation)

@@ -429,10 +429,15 @@ class ResultsHook(BaseHook):
             return con.execute(self.lake_sql("staged_arm_counts"), {"path": str(path)}).df()
 
     @contextlib.contextmanager
-    def staged_relations(self, *, day: str | Path) -> Iterator[duckdb.DuckDBPyConnection]:
-        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards)."""
+    def staged_relations(self, *, day: str | Path, sample: str | Path | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards).
+
+        With ``sample`` (one shard's file or glob), also the temp table ``staged_sample``.
+        """
         with self.lake() as con:
             con.execute(self.lake_sql("staged_create_day"), {"path": str(day)})
+            if sample is not None:
+                con.execute(self.lake_sql("staged_create_sample"), {"path": str(sample)})
             yield con
 
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:

@@ -179,7 +179,11 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
     the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
-    table ``staged_day`` (every shard), with measured position weights filled from staging; the
+    table ``staged_day`` (every shard), with measured position weights filled from staging. When
+    the day has several shards, the distribution checks and the day's bid-quantile summary read
+    shard 0 alone (temp table ``staged_sample``: a hash sample of whole auctions, at least about
+    half of ``max_bids_per_shard`` bids), so the frame in memory is one shard; the counting checks
+    stay exact over the whole day (DuckDB aggregates). The
     drift check compares the day with the bid-quantile summaries, stored in the results database,
     of the trailing days that are in the analysis window (a warm-up day, a drifted day, a burn-in
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
@@ -201,10 +205,17 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
         history = history[[d in kept for d in history_days]]
         history = None if history.empty else history
     staged.bid_quantiles.unlink(missing_ok=True)
-    with hook.staged_relations(day=staged.day_files) as con:
-        results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history))
+    shards = staged.shards()
+    # several shards: the distribution checks and the summary read shard 0 alone (a hash sample of
+    # whole auctions), so the frame in memory is one shard; the counting checks count the whole day
+    sampled = len(shards) > 1
+    sample_files = str(staged.shard(shards[0]) / "*.parquet") if sampled else None
+    with hook.staged_relations(day=staged.day_files, sample=sample_files) as con:
+        results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
+                                   sample_relation="staged_sample" if sampled else None,
+                                   sample_shard=(shards[0], len(shards)) if sampled else None))
         if worst_failure(results) != "error":
-            summary = day_bid_quantiles(con, "staged_day", experiment)
+            summary = day_bid_quantiles(con, "staged_sample" if sampled else "staged_day", experiment)
             summary.insert(0, "experiment_id", experiment.id)
             summary.insert(1, "ds", ds)
             write_parquet(pa.Table.from_pandas(summary, preserve_index=False), staged.bid_quantiles)
