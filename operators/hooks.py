@@ -440,6 +440,11 @@ class ResultsHook(BaseHook):
                 con.execute(self.lake_sql("staged_create_sample"), {"path": str(sample)})
             yield con
 
+    def staged_shard_has_auctions(self, path: str | Path) -> bool:
+        """Whether a staged shard (a file or a glob) holds an auction with at least two bids."""
+        with self.lake() as con:
+            return bool(con.execute(self.lake_sql("staged_shard_has_auctions"), {"path": str(path)}).fetchone()[0])
+
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:
         """Store check outcomes with ``recorder(session, results, experiment_id=, ds=, run_id=, schema=)``."""
         def write():

@@ -181,7 +181,8 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
     table ``staged_day`` (every shard), with measured position weights filled from staging. When
     the day has several shards, the distribution checks and the day's bid-quantile summary read
-    shard 0 alone (temp table ``staged_sample``: a hash sample of whole auctions, at least about
+    shard 0 alone, or the first shard after it holding an auction with two bids or more (temp
+    table ``staged_sample``: a hash sample of whole auctions, at least about
     half of ``max_bids_per_shard`` bids), so the frame in memory is one shard; the counting checks
     stay exact over the whole day (DuckDB aggregates). The
     drift check compares the day with the bid-quantile summaries, stored in the results database,
@@ -206,14 +207,17 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
         history = None if history.empty else history
     staged.bid_quantiles.unlink(missing_ok=True)
     shards = staged.shards()
-    # several shards: the distribution checks and the summary read shard 0 alone (a hash sample of
-    # whole auctions), so the frame in memory is one shard; the counting checks count the whole day
+    # several shards: the distribution checks and the summary read one shard alone (a hash sample of
+    # whole auctions), so the frame in memory is one shard; the counting checks count the whole day.
+    # The sample is shard 0, or the first shard after it holding an auction with two bids or more.
     sampled = len(shards) > 1
-    sample_files = str(staged.shard(shards[0]) / "*.parquet") if sampled else None
+    sample = next((k for k in shards if hook.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
+                  shards[0]) if sampled else None
+    sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
     with hook.staged_relations(day=staged.day_files, sample=sample_files) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
-                                   sample_shard=(shards[0], len(shards)) if sampled else None))
+                                   sample_shard=(sample, len(shards)) if sampled else None))
         if worst_failure(results) != "error":
             summary = day_bid_quantiles(con, "staged_sample" if sampled else "staged_day", experiment)
             summary.insert(0, "experiment_id", experiment.id)

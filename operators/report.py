@@ -276,7 +276,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
             checks = hook.fetch_df("report_day_check_status", {"experiment_id": exp_id}).set_index("ds")
             per_day["data checks"] = [
                 f"{checks.loc[d, 'worst_status']} ({int(checks.loc[d, 'n_failed'])}/{int(checks.loc[d, 'n_checks'])} failed"
-                + (f"; {int(checks.loc[d, 'n_on_sample'])} on shard 0)" if checks.loc[d, "n_on_sample"] else ")")
+                + (f"; {int(checks.loc[d, 'n_on_sample'])} on one shard)" if checks.loc[d, "n_on_sample"] else ")")
                 if d in checks.index else "not run" for d in per_day.index]
         per_day["mixture: estimated"] = days["estimated"].map("{:.4f}".format)
         per_day["mixture: realized"] = days["realized"].map("{:.4f}".format)
@@ -300,9 +300,10 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
                          "lists the flags of each day's rows.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.startswith("error").any():
             notes.append("Days whose data checks failed with an error have no estimates.")
-        if has_checks and "data checks" in per_day and per_day["data checks"].str.contains("on shard 0").any():
+        if has_checks and "data checks" in per_day and per_day["data checks"].str.contains("on one shard").any():
             notes.append("On days split into several shards the distribution checks (monotone values, shading, drift) "
-                         "ran on shard 0 alone, a hash sample of whole auctions; the counting checks counted every "
+                         "ran on one shard alone (shard 0, or the first with an auction of two bids or more), a hash "
+                         "sample of whole auctions; the counting checks counted every "
                          "auction of the day.")
         weights_note = ""
         if not weights.empty:

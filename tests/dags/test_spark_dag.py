@@ -189,6 +189,9 @@ def test_a_shard_of_single_bidder_auctions_is_left_out_on_both_engines(spark_eng
             stored[engine] = con.execute("select * from arm_estimates order by arm, metric").df().drop(
                 columns=list(PROVENANCE))
             assert sorted(r[0] for r in con.execute("select distinct shard from stratum_pieces").fetchall()) == [1, 2]
+            # the validate step's distribution checks read shard 1, the first shard with an auction to check
+            (details,) = con.execute("select details from data_checks where \"check\" = 'monotone_values'").fetchone()
+            assert json.loads(details)["sample"]["shard"] == 1, details
     _largest_relative_difference(stored["spark"], stored["local"], "arm_estimates")
 
 
