@@ -91,6 +91,19 @@ def shard_folders(folder: str | Path) -> list[tuple[int, Path]]:
     return sorted(found)
 
 
+@contextmanager
+def _bid_log_dataset(path: str | Path) -> Iterator[pads.Dataset]:
+    """A bid log as an Arrow dataset (a file, or a Hive-partitioned folder); pyarrow's errors inside
+    the block become one line naming the log."""
+    path = Path(path)
+    try:
+        yield pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None)
+    except InputError:
+        raise
+    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
+
+
 def distinct_experiment_ids(path: str | Path) -> list[str] | None:
     """The distinct ``experiment_id`` values of a bid log, batch by batch (``None`` without the column).
 
@@ -98,9 +111,7 @@ def distinct_experiment_ids(path: str | Path) -> list[str] | None:
     """
     import pyarrow.compute as pc
 
-    path = Path(path)
-    try:
-        dataset = pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None)
+    with _bid_log_dataset(path) as dataset:
         if "experiment_id" not in dataset.schema.names:
             return None
         seen: dict[str, None] = {}
@@ -109,28 +120,20 @@ def distinct_experiment_ids(path: str | Path) -> list[str] | None:
                 if value is not None:
                     seen.setdefault(str(value), None)
         return list(seen)
-    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
-        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
 
 
 def bid_log_rows(path: str | Path) -> int:
     """Rows of a bid log (a Parquet file or a Hive-partitioned folder), from the footers only."""
-    path = Path(path)
-    if not path.exists():
+    if not Path(path).exists():
         raise InputError(f"{path}: no such file or folder")
-    try:
-        return int(pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None).count_rows())
-    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
-        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
+    with _bid_log_dataset(path) as dataset:
+        return int(dataset.count_rows())
 
 
 def _column_names(path: str | Path) -> list[str]:
     """Column names of a bid log (the footers only)."""
-    path = Path(path)
-    try:
-        return pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None).schema.names
-    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
-        raise InputError(f"{path}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
+    with _bid_log_dataset(path) as dataset:
+        return dataset.schema.names
 
 
 def write_shards(batches, folder: str | Path, n_shards: int) -> list[int]:

@@ -11,9 +11,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
-import os
 import re
-import subprocess
 from pathlib import Path
 
 import duckdb
@@ -51,14 +49,9 @@ RTOL = 1e-9
 
 
 @pytest.fixture
-def spark_engine(monkeypatch):
+def spark_engine(monkeypatch, java_home):
     """The DAG parsed with the Spark engine; the cluster's connection in ``AIRFLOW_CONN_<ID>``; a Java runtime."""
-    if not os.environ.get("JAVA_HOME"):
-        script = Path(__file__).resolve().parents[2] / ".ci" / "java-home"
-        found = subprocess.run([str(script)], capture_output=True, text=True)
-        if found.returncode != 0:
-            pytest.fail(found.stderr.strip() or "no Java runtime for Spark; run `make test`")
-        monkeypatch.setenv("JAVA_HOME", found.stdout.strip())
+    monkeypatch.setenv("JAVA_HOME", java_home)
 
     def use(engine: str) -> None:
         monkeypatch.setenv("COUNTERBID_ENGINE", engine)
