@@ -170,3 +170,111 @@ def test_bad_notifier_settings_fail_at_construction(monkeypatch):
     monkeypatch.setitem(alert_targets.PROVIDERS, "slack", ("airflow.providers.not_installed_here", "apache-airflow-providers-slack"))
     with pytest.raises(InputError, match=r"target 'slack' needs apache-airflow-providers-slack: pip install 'counterbid\[alerts\]'"):
         CheckAlertNotifier(target="slack", conn_id="quillfen_slack")
+
+
+DAG_FILE = textwrap.dedent(
+    '''
+    import json
+
+    import pendulum
+    from airflow.sdk import DAG, task
+    from airflow.sdk.exceptions import AirflowFailException
+
+    from counterbid.estimators.checks import CheckResult
+    from counterbid.operators.notify import XCOM_KEY, CheckAlertNotifier, check_payload
+
+    def outcomes(ti, experiment_id, passed, warning_passed=True):
+        results = [CheckResult("sample_ratio", "error", passed, 0.4 if passed else 2.5e-5, 1e-3),
+                   CheckResult("drift", "warning", warning_passed, 0.2 if warning_passed else 4e-7, 1e-3)]
+        ti.xcom_push(key=XCOM_KEY, value=check_payload(results, experiment_id=experiment_id, ds="2026-03-02"))
+
+    def failing(task_id, experiment_id, alert):
+        @task(task_id=task_id, on_failure_callback=alert, retries=0)
+        def validate(ti=None):
+            outcomes(ti, experiment_id, passed=False)
+            raise AirflowFailException(f"{experiment_id} 2026-03-02: sample_ratio failed in {task_id}")
+        return validate()
+
+    with DAG("quillfen_check_alerts", schedule=None, start_date=pendulum.datetime(2026, 3, 1, tz="UTC"),
+             catchup=False) as dag:
+        failing("validate_hooked", "featured-rows", CheckAlertNotifier(target="webhook", conn_id="quillfen_hook",
+                                                                     endpoint="/checks"))
+        failing("validate_mailed", "wide-grid", CheckAlertNotifier(target="smtp", conn_id="quillfen_mail"))
+        failing("validate_refused", "tall-cards", CheckAlertNotifier(target="webhook", conn_id="quillfen_refusing",
+                                                                   retries=1))
+        failing("validate_unanswered", "short-list", CheckAlertNotifier(target="slack", conn_id="quillfen_silent",
+                                                                      retries=0))
+
+        @task(on_success_callback=CheckAlertNotifier(target="smtp", conn_id="quillfen_refusing_mail"))
+        def warned(ti=None):
+            outcomes(ti, "loose-grid", passed=True, warning_passed=False)
+
+        @task(on_success_callback=CheckAlertNotifier(target="webhook", conn_id="quillfen_hook", endpoint="/checks"))
+        def settled(ti=None):
+            outcomes(ti, "calm-rows", passed=True)
+
+        warned()
+        settled()
+
+    if __name__ == "__main__":
+        run = dag.test(logical_date=pendulum.datetime(2026, 3, 2, tz="UTC"))
+        states = {ti.task_id: str(getattr(ti.state, "value", ti.state)) for ti in run.get_task_instances()}
+        print("TASK STATES " + json.dumps(states, sort_keys=True))
+    '''
+)
+
+
+def _run_alert_dag(tmp_path, connections: dict[str, str]) -> tuple[dict, str]:
+    home, dags = tmp_path / "airflow", tmp_path / "dags"
+    dags.mkdir()
+    (dags / "quillfen_check_alerts.py").write_text(DAG_FILE)
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("AIRFLOW", "COUNTERBID_"))}
+    env.update({"AIRFLOW_HOME": str(home), "AIRFLOW__CORE__DAGS_FOLDER": str(dags), "AIRFLOW__CORE__LOAD_EXAMPLES": "False",
+                **{f"AIRFLOW_CONN_{name.upper()}": conn for name, conn in connections.items()}})
+    airflow = os.path.join(os.path.dirname(sys.executable), "airflow")
+    subprocess.run([airflow, "db", "migrate"], env=env, check=True, capture_output=True, timeout=300)
+    run = subprocess.run([sys.executable, str(dags / "quillfen_check_alerts.py")], env=env, capture_output=True,
+                         text=True, timeout=300)
+    out = run.stdout + run.stderr
+    line = next((x for x in run.stdout.splitlines() if x.startswith("TASK STATES ")), None)
+    assert line is not None, out[-4000:]
+    return json.loads(line.removeprefix("TASK STATES ")), out
+
+
+@pytest.mark.slow
+def test_alerts_under_dag_test_delivered_refused_and_timed_out(tmp_path):
+    """One dag.test run, six tasks, each alerting through a real local server.
+
+    Delivered: webhook (HTTP 204) and e-mail (aiosmtpd). Refused: webhook answering 500 (two
+    tries), a mail recipient refused (550) on a task that passed with a warning. Timed out: a Slack
+    webhook that never answers (1 s connection timeout). Each failed task stays ``failed`` with its
+    own check failure logged, and the passed ones stay ``success``, whatever their alert did.
+    """
+    with HttpSink(204) as hook, HttpSink(500) as refusing, SmtpSink() as mail, \
+            SmtpSink(refuse=("pricing-desk@quillfen.example",)) as refusing_mail, SilentPort() as silent:
+        states, log = _run_alert_dag(tmp_path, {
+            "quillfen_hook": http_conn(hook.url), "quillfen_refusing": http_conn(refusing.url),
+            "quillfen_mail": smtp_conn(mail.port), "quillfen_refusing_mail": smtp_conn(refusing_mail.port, retry_limit=0),
+            "quillfen_silent": slack_conn(silent.url, timeout=1),
+        })
+    assert states == {"validate_hooked": "failed", "validate_mailed": "failed", "validate_refused": "failed",
+                      "validate_unanswered": "failed", "warned": "success", "settled": "success"}, log[-4000:]
+    # delivered: one POST (the passing task sends nothing) and one mail, each with the message as built
+    assert [r["path"] for r in hook.received] == ["/checks"], log[-4000:]
+    assert hook.received[0]["body"]["text"].splitlines() == [
+        "featured-rows 2026-03-02: 1 of 2 checks failed (worst: error)",
+        "  sample_ratio [error] FAILED: observed 2.5e-05 vs threshold 0.001",
+    ]
+    assert [m["message"]["Subject"] for m in mail.messages] == ["counterbid checks: wide-grid 2026-03-02 (error)"]
+    # refused and timed out: tried, not delivered, and the log says so beside the task's own failure
+    assert len(refusing.received) == 2 and refusing_mail.refused == ["pricing-desk@quillfen.example"]
+    for task_id, experiment_id, reason in [
+        ("validate_refused", "tall-cards", "alert to webhook 'quillfen_refusing' not delivered: HTTP 500"),
+        ("validate_unanswered", "short-list", "alert to slack 'quillfen_silent' not delivered: TimeoutError: timed out"),
+    ]:
+        failure = f"{experiment_id} 2026-03-02: sample_ratio failed in {task_id}"
+        assert failure in log, log[-4000:]
+        assert reason in log, log[-4000:]
+        assert log.index(failure) < log.index(reason)  # the check failed first; the alert's failure came after
+    assert "alert to smtp 'quillfen_refusing_mail' not delivered: SMTPRecipientsRefused" in log
+    assert "alert NOT delivered (the task's outcome stands)" in log
