@@ -18,7 +18,8 @@ seconds between tries (default 300),
 ``COUNTERBID_CATCHUP`` (``false`` leaves past days to ``airflow backfill create``),
 ``COUNTERBID_MAX_BIDS_PER_SHARD`` (a day with more bids is estimated in ``ceil(bids / max)``
 shards; default 4M), ``COUNTERBID_MAX_ACTIVE_RUNS`` (default 1: each day's experiment-to-date rows
-combine the stored pieces of the days before it, so days are written in order). The level and
+combine the stored pieces of the days before it, so days are written in order; a backfill is bounded
+by its own ``airflow backfill create --max-active-runs``, not by this: pass 1 there too). The level and
 clustering each stored row used are written beside it.
 
 Engine of the estimate step (read when the DAG is parsed only): ``COUNTERBID_ENGINE`` ``local``
