@@ -18,7 +18,7 @@ from scipy import special
 
 from counterbid.estimators import InputError, parse_experiments, prepare_bids, simulate_experiment
 from counterbid.estimators.checks import DEFAULT_CHECKS, DEPENDENCE_REMEDY, auction_dependence_check
-from counterbid.estimators.dependence import auction_dependence
+from counterbid.estimators.dependence import _rank_scores, auction_dependence
 
 # Invented layouts: a large control with two small arms.
 EXP = parse_experiments({"experiments": [{
@@ -88,6 +88,15 @@ def test_vectorised_statistic_equals_the_plain_formula_with_ties_and_two_strata(
     n_s = {k: int(np.sum(stratum == k)) for k in (2, 3, 5)}
     d_s = {k: float(np.sum(sizes[sizes == k] * (k - 1))) for k in (2, 3, 5)}
     assert got.null_mean == pytest.approx(-sum(d_s[k] / (n_s[k] - 1) for k in n_s) / sum(d_s.values()))
+
+
+@pytest.mark.parametrize("decimals", [None, 2, 0])
+def test_rank_scores_shortcut_equals_scipy_mid_ranks(decimals):
+    """The one-argsort scores against ``scipy.stats.rankdata(method='average')`` (ties at 2 and 0 decimals)."""
+    bid = np.random.default_rng(5).lognormal(size=20_000)
+    bid = bid if decimals is None else np.round(bid, decimals)
+    want = special.ndtri((st.rankdata(bid, method="average") - 0.5) / bid.size)
+    np.testing.assert_array_equal(_rank_scores(bid), want)
 
 
 def test_a_stratum_of_tied_bids_is_left_out_of_the_pooled_statistic():
