@@ -176,8 +176,9 @@ def auction_dependence(bid, auction, stratum=None) -> AuctionDependence:
     uniformly random permutation (whatever the value distribution and the increasing bid
     function), so ``E r_s = -1 / (N - 1)`` exactly and ``Var r_s ~= 1 / P_s`` with
     ``P_s = sum_j n_j (n_j - 1) / 2`` (products of distinct pairs are uncorrelated with variance
-    ``~1``). Pooled: numerators and pair counts are summed over strata. Cost: one rank (sort)
-    per stratum and two ``np.bincount`` by auction.
+    ``~1``). Pooled: numerators and pair counts are summed over strata. Cost: one ``argsort``
+    per stratum and two ``np.bincount`` by auction (docs/method.md, "Auctions that differ: the
+    dependence check").
 
     References
     ----------
@@ -208,8 +209,9 @@ def auction_dependence(bid, auction, stratum=None) -> AuctionDependence:
     n_bids = np.zeros(keys.size, dtype=np.int64)
     for s in range(keys.size):
         rows = slice(None) if code is None else np.flatnonzero(code == s)
-        scores = _normal_scores(bid[rows])
-        n_bids[s] = bid[rows].size
+        part = bid[rows]
+        n_bids[s] = part.size
+        scores = _normal_scores(part)
         if scores is not None:
             z[rows], counted[s] = scores, True
     auction_code = np.zeros(n_auctions, dtype=np.intp)
