@@ -33,7 +33,7 @@ from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import with_stored_columns
+from .stored_rows import check_flags, with_stored_columns
 
 __all__ = [
     "EARLIEST_DAY",
@@ -434,7 +434,8 @@ def estimate_partition(
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
             table["n_days_left_out"] = len(window.left_out)
-        with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
+        # status flags (a failed check's own flag, e.g. heterogeneous_auctions), level and clustering the run used
+        with_stored_columns(table, check_status=status, flags=check_flags(failed_today))
         table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
         table["run_id"] = run_id
         table["computed_at"] = computed_at

@@ -11,7 +11,7 @@ import scipy.stats as st
 from counterbid.estimators import estimate_arms, parse_experiments, simulate_experiment
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.intervals import format_level, interval_label, row_clusters
-from counterbid.operators.stored_rows import STATUS_PATTERN, stored_status, with_stored_columns
+from counterbid.operators.stored_rows import CHECK_FLAGS, STATUS_PATTERN, check_flags, stored_status, with_stored_columns
 from counterbid.sql import load_sql
 
 
@@ -23,6 +23,15 @@ from counterbid.sql import load_sql
 def test_stored_status_is_ok_or_sorted_flags(check, own, stored):
     assert stored_status(check, own) == stored
     assert re.fullmatch(STATUS_PATTERN, stored)
+
+
+def test_a_failed_dependence_check_flags_every_row_of_the_day():
+    assert check_flags(["drift", "auction_dependence", "warmup"]) == ("heterogeneous_auctions",)
+    assert check_flags(["drift"]) == () and set(CHECK_FLAGS) == {"auction_dependence"}
+    assert stored_status("warning", "few_bids", flags=check_flags(["auction_dependence"])) == \
+        "few_bids,heterogeneous_auctions,warning"
+    with pytest.raises(InputError, match="lowercase"):
+        stored_status("ok", "ok", flags=("Mixed",))
 
 
 @pytest.mark.parametrize("check,own", [("error", "ok"), ("ok", "Few bids"), ("ok", "")])
@@ -51,8 +60,10 @@ def test_table_without_estimator_status_gets_level_cluster_and_check_status():
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=600, rng=3)
     # a table without the estimator's status column (an older estimator's) counts as 'ok'
     table = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder").drop(columns="status")
-    out = with_stored_columns(table, check_status="warning")
+    out = with_stored_columns(table.copy(), check_status="warning")
     assert set(out["status"]) == {"warning"} and set(out["confidence_level"]) == {0.9}
+    flagged = with_stored_columns(table.copy(), check_status="warning", flags=check_flags(["auction_dependence"]))
+    assert set(flagged["status"]) == {"heterogeneous_auctions,warning"}
     realized = out["metric"] == "realized_revenue_per_auction"
     assert set(out.loc[realized, "cluster"]) == {"auction"} and set(out.loc[~realized, "cluster"]) == {"bidder"}
     pd.testing.assert_series_equal(row_clusters(table), out["cluster"])
