@@ -329,10 +329,9 @@ def _pieces_on_spark(spark, lake_root, staged: StagedPartition, *, experiment: E
     return found, shards
 
 
-def _horizon_auctions(experiment: Experiment, pieces: list[StratumPiece], first_day: dt.date) -> int:
-    """Auctions at the planned last look: planned days x the auctions of the first day used (fixed from then on)."""
-    first = sum(p.n_auctions for p in pieces if p.day == first_day.isoformat())
-    return planned_days(experiment) * max(1, int(first))
+def _horizon_auctions(experiment: Experiment, pieces: list[StratumPiece], n_days: int) -> int:
+    """Auctions at the planned last look: planned days x the mean auctions of the days used so far."""
+    return max(1, round(planned_days(experiment) * sum(p.n_auctions for p in pieces) / n_days))
 
 
 def estimate_partition(
@@ -432,7 +431,7 @@ def estimate_partition(
             to_date_cluster = "auction"
         tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
-        with_anytime_columns(tables["to_date"], horizon_auctions=_horizon_auctions(experiment, to_date_pieces, window.used[0]))
+        with_anytime_columns(tables["to_date"], horizon_auctions=_horizon_auctions(experiment, to_date_pieces, len(window.used)))
     for span, table in tables.items():
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)

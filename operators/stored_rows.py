@@ -98,8 +98,7 @@ def with_anytime_columns(table: pd.DataFrame, *, horizon_auctions: int) -> pd.Da
         A combination of the days to date (``combine_pieces``), modified in place and returned;
         ``attrs`` must hold ``confidence_level`` and ``n_auctions`` (the auctions to date).
     horizon_auctions : int
-        Auctions at the planned last look (planned days x auctions of the first day used), fixed
-        from the first look on.
+        Auctions at the planned last look (planned days x the mean auctions per day used so far).
 
     Returns
     -------
