@@ -217,14 +217,41 @@ def peeking_study(setup: PeekingSetup, *, looks: int, reps: int, planned_days: i
 
 
 def first_exclusion(estimate: np.ndarray, std_error: np.ndarray, multiplier, truth: float, looks: int) -> np.ndarray:
-    """Per replicate, whether some look among the first ``looks`` has an interval excluding ``truth``."""
+    """Per replicate, whether some look among the first ``looks`` has an interval excluding ``truth``.
+
+    Parameters
+    ----------
+    estimate, std_error : ndarray
+        Replicates x looks.
+    multiplier : float or ndarray
+        Half width in standard errors: one number (fixed interval) or one per look.
+    truth : float
+    looks : int
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        One per replicate.
+    """
     half = np.broadcast_to(multiplier, estimate.shape) * std_error
     out = np.abs(estimate - truth) > half
     return out[:, :looks].any(axis=1)
 
 
 def detection_day(estimate: np.ndarray, std_error: np.ndarray, multiplier) -> np.ndarray:
-    """Per replicate, the first look (1-based) whose lower bound is above 0; ``inf`` if none."""
+    """Per replicate, the first look (1-based) whose lower bound is above 0; ``inf`` if none.
+
+    Parameters
+    ----------
+    estimate, std_error : ndarray
+        Replicates x looks.
+    multiplier : float or ndarray
+        Half width in standard errors: one number or one per look.
+
+    Returns
+    -------
+    numpy.ndarray of float
+    """
     half = np.broadcast_to(multiplier, estimate.shape) * std_error
     above = estimate - half > 0
     first = np.argmax(above, axis=1).astype(float) + 1

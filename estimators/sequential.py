@@ -171,6 +171,12 @@ def anytime_bounds(estimate, std_error, *, units: float, planned_units: float,
        Annals of Mathematical Statistics 41(5), 1397-1409.
     .. [2] Waudby-Smith, I., Arbour, D., Sinha, R., Kennedy, E. H. & Ramdas, A. (2024). Time-uniform
        central limit theory and asymptotic confidence sequences. Annals of Statistics (cited from memory; volume not checked).
+
+    Examples
+    --------
+    >>> b = anytime_bounds(0.012, 0.004, units=7 * 1200, planned_units=28 * 1200)
+    >>> round(b.multiplier, 3), round(b.width_ratio, 3), round(float(b.low), 4)
+    (3.251, 1.659, -0.001)
     """
     level = _level(confidence_level)
     for name, value in (("units", units), ("planned_units", planned_units)):
