@@ -125,8 +125,10 @@ def test_anytime_bounds_keep_false_exclusions_under_5_percent_auction_clusters()
     rates = _null_rates(None, seed=31)
     for looks in (10, 30, 60):
         assert rates[looks][1] <= BAND, (looks, rates)
-    assert rates[10][0] > BAND, rates  # the fixed interval looked at daily: measured 0.16-0.20
-    assert abs(rates[1][0] - 0.05) <= 3 * math.sqrt(0.05 * 0.95 / R_NULL), rates  # one look: exact
+    assert rates[10][0] > BAND, rates  # the fixed interval looked at daily: measured 0.255 (0.170 at another seed)
+    # one look: the fixed interval holds (measured 0.090 at this seed, 2.6 sd high; 0.052 pooled over 20 looks
+    # x 150 replicates at another)
+    assert abs(rates[1][0] - 0.05) <= 3 * math.sqrt(0.05 * 0.95 / R_NULL), rates
 
 
 @pytest.mark.slow
