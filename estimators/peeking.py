@@ -30,7 +30,8 @@ from .simulate import equilibrium_bid_function
 from .spec import Experiment
 from .study import _increments
 
-__all__ = ["DayPiece", "LookPath", "PeekingSetup", "day_piece", "detection_day", "first_exclusion", "look_path", "peeking_study"]
+__all__ = ["DayPiece", "LookPath", "PeekingSetup", "day_piece", "detection_day", "first_exclusion", "look_path",
+           "peeking_study"]
 
 
 @dataclass(frozen=True)

@@ -94,7 +94,8 @@ def anytime_multiplier(information_ratio, *, confidence_level: float = 0.95) -> 
     .. [1] Robbins, H. (1970). Statistical methods related to the law of the iterated logarithm.
        Annals of Mathematical Statistics 41(5), 1397-1409.
     .. [2] Waudby-Smith, I., Arbour, D., Sinha, R., Kennedy, E. H. & Ramdas, A. (2024). Time-uniform
-       central limit theory and asymptotic confidence sequences. Annals of Statistics (cited from memory; volume not checked)
+       central limit theory and asymptotic confidence sequences. Annals of Statistics (cited from
+       memory; volume not checked)
        (the asymptotic confidence sequence ``estimate +- std_error x`` this multiplier).
     """
     alpha = 1.0 - _level(confidence_level)
@@ -170,7 +171,8 @@ def anytime_bounds(estimate, std_error, *, units: float, planned_units: float,
     .. [1] Robbins, H. (1970). Statistical methods related to the law of the iterated logarithm.
        Annals of Mathematical Statistics 41(5), 1397-1409.
     .. [2] Waudby-Smith, I., Arbour, D., Sinha, R., Kennedy, E. H. & Ramdas, A. (2024). Time-uniform
-       central limit theory and asymptotic confidence sequences. Annals of Statistics (cited from memory; volume not checked).
+       central limit theory and asymptotic confidence sequences. Annals of Statistics (cited from
+       memory; volume not checked).
 
     Examples
     --------
