@@ -7,20 +7,24 @@ check that has one of its own (``heterogeneous_auctions``: the bids of one aucti
 ``status`` column (``few_bids``, ``degenerate``, ``no_interval``, ...; a table without the
 column counts as ``ok``). ``confidence_level`` and ``cluster`` are what the run used
 (``estimate_arms``' ``attrs``; the realized per-arm averages are always clustered by auction), and so
-are ``payment_rule`` and ``floor``: the auction the bids came from.
+are ``payment_rule`` and ``floor``: the auction the bids came from. Experiment-to-date rows also
+carry anytime-valid bounds (``with_anytime_columns``).
 """
 
 from __future__ import annotations
 
 import re
 
+import numpy as np
 import pandas as pd
 
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.intervals import row_clusters
 from counterbid.estimators.payment_rules import PAYMENT_RULES
+from counterbid.estimators.sequential import anytime_bounds
 
-__all__ = ["CHECK_FLAGS", "CHECK_STATUS_FLAG", "STATUS_PATTERN", "check_flags", "stored_status", "with_stored_columns"]
+__all__ = ["ANYTIME_METRICS", "CHECK_FLAGS", "CHECK_STATUS_FLAG", "STATUS_PATTERN", "check_flags", "stored_status",
+           "with_anytime_columns", "with_stored_columns"]
 
 #: Flag added to every row of an (experiment, day) whose data checks raised a warning.
 CHECK_STATUS_FLAG = "warning"
@@ -29,6 +33,8 @@ CHECK_FLAGS = {"auction_dependence": "heterogeneous_auctions"}
 #: Shape of a stored status (also the results tables' check constraint): ``ok`` or flags.
 STATUS_PATTERN = r"[a-z][a-z_]*(,[a-z][a-z_]*)*"
 _STATUS = re.compile(STATUS_PATTERN)
+#: To-date metrics that get anytime-valid bounds (welfare has no interval, so none).
+ANYTIME_METRICS = ("revenue_per_auction", "realized_revenue_per_auction", "revenue_lift_vs_control")
 
 
 def check_flags(failed_checks) -> tuple[str, ...]:
@@ -98,4 +104,37 @@ def with_stored_columns(table: pd.DataFrame, *, check_status: str, flags=()) -> 
         raise InputError(f"estimate table: attrs['payment_rule'] must be one of {', '.join(PAYMENT_RULES)}; got {rule!r}")
     table["payment_rule"] = rule
     table["floor"] = float(table.attrs.get("floor") or 0.0)
+    return table
+
+
+def with_anytime_columns(table: pd.DataFrame, *, horizon_auctions: int) -> pd.DataFrame:
+    """Experiment-to-date rows with ``anytime_low``, ``anytime_high`` and ``anytime_horizon_auctions``.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        A combination of the days to date (``combine_pieces``), modified in place and returned;
+        ``attrs`` must hold ``confidence_level`` and ``n_auctions`` (the auctions to date).
+    horizon_auctions : int
+        Auctions at the planned last look (planned days x the mean auctions per day used so far).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Bounds on the revenue, realized revenue and lift rows (:data:`ANYTIME_METRICS`), NaN elsewhere
+        and where the row has no standard error; every look uses the information ratio auctions to
+        date over ``horizon_auctions`` (:func:`counterbid.estimators.sequential.anytime_bounds`).
+    """
+    level = table.attrs.get("confidence_level")
+    units = table.attrs.get("n_auctions")
+    if isinstance(horizon_auctions, bool) or not isinstance(horizon_auctions, (int, np.integer)) or horizon_auctions < 1:
+        raise InputError(f"`horizon_auctions` must be a whole number >= 1; got {horizon_auctions!r}")
+    if isinstance(units, bool) or not isinstance(units, (int, np.integer)) or units < 1:
+        raise InputError(f"to-date table: attrs['n_auctions'] must be a whole number >= 1; got {units!r}")
+    bounds = anytime_bounds(table["estimate"].to_numpy(float), table["std_error"].to_numpy(float), units=int(units),
+                            planned_units=int(horizon_auctions), confidence_level=level)
+    shown = table["metric"].isin(ANYTIME_METRICS).to_numpy()
+    table["anytime_low"] = np.where(shown, bounds.low, np.nan)
+    table["anytime_high"] = np.where(shown, bounds.high, np.nan)
+    table["anytime_horizon_auctions"] = np.int64(horizon_auctions)
     return table

@@ -67,3 +67,23 @@ def test_table_without_estimator_status_gets_level_cluster_and_check_status():
     realized = out["metric"] == "realized_revenue_per_auction"
     assert set(out.loc[realized, "cluster"]) == {"auction"} and set(out.loc[~realized, "cluster"]) == {"bidder"}
     pd.testing.assert_series_equal(row_clusters(table), out["cluster"])
+
+
+def test_anytime_columns_on_the_rows_with_an_interval_and_refused_without_auctions():
+    from counterbid.operators.stored_rows import with_anytime_columns
+
+    exp = parse_experiments({"experiments": [{"id": "reed-rows", "control_arm": "a", "arms": [
+        {"name": "a", "share": 0.5, "position_weights": [0.5, 0.2]},
+        {"name": "b", "share": 0.5, "position_weights": [0.6, 0.1]}]}]})["reed-rows"]
+    table = estimate_arms(simulate_experiment(st.uniform(), exp, n_bidders=3, n_auctions=600, rng=2), exp)
+    with_anytime_columns(table, horizon_auctions=28 * 600)  # one day of 28 planned
+    banded = table["metric"] != "welfare_per_auction"
+    # x* = 8.212 at 95 %: m(1/28) = sqrt((1 + 28/x*)(log(1 + x*/28) + 2 log 20)) = 5.2492
+    half = (table["anytime_high"] - table["estimate"])[banded] / table["std_error"][banded]
+    assert half.to_numpy() == pytest.approx(5.2492, abs=1e-4)
+    assert table.loc[~banded, "anytime_low"].isna().all() and (table["anytime_horizon_auctions"] == 16800).all()
+    with pytest.raises(InputError, match="`horizon_auctions` must be a whole number >= 1"):
+        with_anytime_columns(table, horizon_auctions=0)
+    table.attrs["n_auctions"] = None
+    with pytest.raises(InputError, match=r"attrs\['n_auctions'\]"):
+        with_anytime_columns(table, horizon_auctions=10)
