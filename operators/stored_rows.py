@@ -4,7 +4,8 @@
 of severity warning failed for the (experiment, day), plus the estimator's own flags from its
 ``status`` column (``few_bids``, ``degenerate``, ``no_interval``, ...; a table without the
 column counts as ``ok``). ``confidence_level`` and ``cluster`` are what the run used
-(``estimate_arms``' ``attrs``; the realized per-arm averages are always clustered by auction), and so
+(``estimate_arms``' :class:`~counterbid.estimators.ArmEstimates`; the realized per-arm averages are
+always clustered by auction), and so
 are ``payment_rule`` and ``floor``: the auction the bids came from.
 """
 
@@ -14,6 +15,7 @@ import re
 
 import pandas as pd
 
+from counterbid.estimators import ArmEstimates
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.intervals import row_clusters
 from counterbid.estimators.payment_rules import PAYMENT_RULES
@@ -54,30 +56,32 @@ def stored_status(check_status: str, estimator_status: object = "ok") -> str:
     return ",".join(sorted(flags)) or "ok"
 
 
-def with_stored_columns(table: pd.DataFrame, *, check_status: str) -> pd.DataFrame:
-    """``table`` (a result of ``estimate_arms``) with ``status``, ``confidence_level``, ``cluster``,
-    ``payment_rule`` and ``floor`` (0: none) set.
+def with_stored_columns(table: pd.DataFrame, result: ArmEstimates, *, check_status: str) -> pd.DataFrame:
+    """``table`` (rows of ``result``, possibly with more columns) with ``status``, ``confidence_level``,
+    ``cluster``, ``payment_rule`` and ``floor`` (0: none) set.
 
     Parameters
     ----------
     table : pandas.DataFrame
-        Modified in place and returned; its ``attrs`` must hold ``confidence_level`` and ``cluster``.
+        Rows of ``result`` (``result.to_frame()``, say); modified in place and returned.
+    result : ArmEstimates
+        What the rows were computed with: level, clustering, payment rule and floor.
     check_status : {'ok', 'warning'}
 
     Returns
     -------
     pandas.DataFrame
     """
-    level = table.attrs.get("confidence_level")
+    level = result.confidence_level
     if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0 < level < 1:
-        raise InputError(f"estimate table: attrs['confidence_level'] must be in (0, 1); got {level!r}")
+        raise InputError(f"estimate: confidence_level must be in (0, 1); got {level!r}")
     own = table["status"] if "status" in table.columns else pd.Series("ok", index=table.index)
     table["status"] = [stored_status(check_status, s) for s in own]
     table["confidence_level"] = float(level)
-    table["cluster"] = row_clusters(table)
-    rule = table.attrs.get("payment_rule", "first_price")
-    if rule not in PAYMENT_RULES:
-        raise InputError(f"estimate table: attrs['payment_rule'] must be one of {', '.join(PAYMENT_RULES)}; got {rule!r}")
-    table["payment_rule"] = rule
-    table["floor"] = float(table.attrs.get("floor") or 0.0)
+    table["cluster"] = row_clusters(table["metric"], result.cluster)
+    if result.payment_rule not in PAYMENT_RULES:
+        raise InputError(f"estimate: payment_rule must be one of {', '.join(PAYMENT_RULES)}; "
+                         f"got {result.payment_rule!r}")
+    table["payment_rule"] = result.payment_rule
+    table["floor"] = float(result.floor or 0.0)
     return table

@@ -171,6 +171,6 @@ def test_scheduler_runs_a_three_day_backfill(tmp_path):
     exp = experiments["tiles"]
     want = estimate_arms(lake[(lake["experiment_id"] == "tiles") & (lake["ds"] == DAYS[1])].reset_index(drop=True), exp)
     got = daily[(daily["experiment_id"] == "tiles") & (daily["ds"] == pd.Timestamp(DAYS[1]))]
-    merged = want.merge(got, on=["arm", "metric"], suffixes=("", "_db"))
-    assert len(merged) == len(want)
+    merged = want.table.merge(got, on=["arm", "metric"], suffixes=("", "_db"))
+    assert len(merged) == len(want.table)
     assert (merged["estimate"] == merged["estimate_db"]).all()

@@ -50,9 +50,10 @@ def test_table_without_estimator_status_gets_level_cluster_and_check_status():
     exp = parse_experiments(spec)["e"]
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=600, rng=3)
     # a table without the estimator's status column (an older estimator's) counts as 'ok'
-    table = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder").drop(columns="status")
-    out = with_stored_columns(table, check_status="warning")
+    result = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder")
+    table = result.to_frame().drop(columns="status")
+    out = with_stored_columns(table, result, check_status="warning")
     assert set(out["status"]) == {"warning"} and set(out["confidence_level"]) == {0.9}
     realized = out["metric"] == "realized_revenue_per_auction"
     assert set(out.loc[realized, "cluster"]) == {"auction"} and set(out.loc[~realized, "cluster"]) == {"bidder"}
-    pd.testing.assert_series_equal(row_clusters(table), out["cluster"])
+    pd.testing.assert_series_equal(row_clusters(table["metric"], result.cluster), out["cluster"])

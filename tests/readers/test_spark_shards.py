@@ -62,7 +62,7 @@ def _both(spark, path, experiment="racks", **kw):
             for caught in (local_caught, spark_caught)]
     # nothing else reaches the caller either (PySpark's notice about pandas versions is silenced)
     assert [str(w.message) for w in spark_caught if not issubclass(w.category, EstimatorWarning)] == []
-    return local, said[0], on_spark, said[1]
+    return local.table, said[0], on_spark, said[1]
 
 
 def _same_frames(local: pd.DataFrame, on_spark: pd.DataFrame, scenario: str) -> float:
