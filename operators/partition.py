@@ -88,7 +88,7 @@ def stage_partition(
     """Copy the day's bids of one experiment into staging, split into shards.
 
     A day with more bids than ``max_bids_per_shard`` (default
-    :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
+    :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
     is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, computed by
     DuckDB as it scans (``sql/lake_read_partition_shards.sql``) and streamed into
     ``day/shard=K/part-0.parquet`` (:func:`counterbid.readers.shards.write_shards`; one batch in memory). Only

@@ -3,7 +3,7 @@
 The same work as :mod:`counterbid.readers.shards`, spread over a Spark cluster. Spark reads the
 Parquet input itself (a path, a folder or an object-store URL its file system understands), gives
 every bid the shard of its auction by the same stable hash as the local engine
-(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.pieces.shard_of`), and runs one
+(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.shard_of`), and runs one
 Python task per shard (``groupBy('shard').applyInArrow``) that converts the shard's rows as the
 local reader does (:func:`counterbid.readers.bid_log.bids_from_arrow`), validates them
 (:func:`~counterbid.estimators.prepare_bids`) and returns its stratum pieces

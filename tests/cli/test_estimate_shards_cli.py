@@ -12,7 +12,7 @@ import yaml
 
 from counterbid.cli import main
 from counterbid.estimators import estimate_arms, parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 
 SPEC = """experiments:
   - id: strip

@@ -13,7 +13,7 @@ import pytest
 from counterbid.cli.backfill import DAG_ID, dags_folder, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import estimate_arms, load_experiments
-from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators.pipeline import DEFAULT_CLUSTER, DEFAULT_CONFIDENCE_LEVEL
 
 from .conftest import SPEC_TEXT, START

@@ -11,7 +11,7 @@ import scipy.stats as st
 
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import expected_revenue_per_auction, parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import combine_pieces, stratum_pieces
+from counterbid.estimators import combine_pieces, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.staging import StagedPartition
