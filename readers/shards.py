@@ -1,4 +1,4 @@
-"""Estimating a day shard by shard: the one path of the estimate step and ``counterbid estimate``.
+"""The local engine: a day estimated shard by shard in this process (:class:`~counterbid.readers.engines.LocalEngine`).
 
 A day with more bids than ``max_bids_per_shard`` is split into ``ceil(bids / max)`` shards by the
 stable hash of its auction ids (:func:`counterbid.estimators.shard_of`; DuckDB computes the
