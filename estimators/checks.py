@@ -11,10 +11,9 @@ section and then by an explicit ``config`` mapping (see :func:`check_config`).
 
 from __future__ import annotations
 
-import copy
 import datetime as _dt
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -23,6 +22,8 @@ import pandas as pd
 from scipy import interpolate, special, stats
 
 from .allocation import allocation_rule, mixture_rule
+from .bids import PreparedBids, prepare_bids
+from .check_settings import DEFAULT_CHECKS, SEVERITIES, check_config
 from .dependence import auction_dependence
 from .errors import InputError
 from .spec import Experiment, parse_day
@@ -52,10 +53,6 @@ __all__ = [
     "warmup_check",
     "worst_failure",
 ]
-
-#: Severities, mildest first.
-SEVERITIES = ("warning", "error")
-
 
 @dataclass(frozen=True)
 class CheckResult:
@@ -107,44 +104,6 @@ def worst_failure(results: Iterable[CheckResult]) -> str | None:
 # Thresholds
 # ---------------------------------------------------------------------------------------------
 
-#: Default severity and thresholds of every check, keyed by check group. The spec's ``checks:``
-#: section overrides any key, e.g. ``checks: {sample_ratio: {alpha: 1.0e-4}, drift: {severity:
-#: error}}``. ``contract`` configures the Great Expectations suite in ``counterbid.operators``.
-DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
-    # Auctions per arm vs designed shares, Pearson chi-square; fail when p < alpha.
-    "sample_ratio": {"severity": "error", "alpha": 1e-3},
-    # Auctions per arm, and per number of bidders (strata smaller than this are not estimated well).
-    "min_auctions_per_arm": {"severity": "error", "min_auctions": 100},
-    "min_auctions_per_stratum": {"severity": "warning", "min_auctions": 50},
-    # v(q) = b + b' x / x' on a least-squares cubic spline of the bid quantile function (per stratum):
-    # fail when v lies below its running maximum by more than `tolerance` x (its range) on more
-    # than `max_falling_share` of the grid on [q_low, q_high].
-    "monotone_values": {
-        "severity": "warning",
-        "max_falling_share": 0.05,
-        "tolerance": 0.03,
-        "knots": 16,
-        "grid": 200,
-        "q_low": 0.05,
-        "q_high": 0.95,
-        "min_bids": 1000,
-    },
-    # Implied value / bid on the same grid: fail when more than `max_outside_share` of it lies
-    # outside [min_ratio, max_ratio] (a value below the bid cannot be a best response).
-    "shading": {"severity": "warning", "min_ratio": 1.0, "max_ratio": 50.0, "max_outside_share": 0.05},
-    # Two-sample Kolmogorov-Smirnov, today's bids vs the trailing days' (per stratum, Bonferroni).
-    "drift": {"severity": "warning", "alpha": 1e-3, "trailing_days": 7, "min_bids": 200},
-    # Bids of one auction must be independent draws: the intra-auction correlation of normal scores
-    # of within-stratum bid ranks (estimators/dependence.py). Fail when its one-sided p < alpha and it
-    # exceeds min_correlation (implied revenue bias under 1 %); above error_correlation (2-5 % on
-    # a small arm) the failure is an error whatever `severity` says (docs/method.md, "Auctions that differ").
-    "auction_dependence": {"severity": "warning", "alpha": 1e-3, "min_correlation": 0.02, "error_correlation": 0.1},
-    # Days since the experiment started or its shares changed; flagged while < days.
-    "warmup": {"severity": "warning", "days": 3, "changed_on": []},
-    # Great Expectations contract suite (counterbid.operators.contract).
-    "contract": {"severity": "error", "max_bidders": 200, "min_bidders": 2, "tie_tolerance": 1e-9, "sample_rows": 1000},
-}
-
 #: Names of the checks :func:`equilibrium_checks` returns, in order.
 STATISTICAL_CHECKS = (
     "sample_ratio",
@@ -156,68 +115,6 @@ STATISTICAL_CHECKS = (
     "auction_dependence",
     "warmup",
 )
-
-
-def check_config(*layers: Mapping[str, Any] | None, source: str = "checks") -> dict[str, dict[str, Any]]:
-    """Merge threshold overrides onto :data:`DEFAULT_CHECKS` and validate them.
-
-    Parameters
-    ----------
-    *layers : mapping or None
-        Override mappings ``{group: {key: value}}``, applied in order (later wins): typically
-        the experiment's ``checks:`` section, then an operator's ``config``.
-    source : str
-        Name of the configuration in error messages.
-
-    Returns
-    -------
-    dict
-        A full copy of the defaults with the overrides applied.
-
-    Raises
-    ------
-    InputError
-        Unknown group or key, a severity other than ``warning``/``error``, or a value of the
-        wrong type; the message names ``group.key``.
-    """
-    merged = copy.deepcopy({k: dict(v) for k, v in DEFAULT_CHECKS.items()})
-    for layer in layers:
-        if layer is None:
-            continue
-        if not isinstance(layer, Mapping):
-            raise InputError(f"{source}: must be a mapping of check name to settings")
-        for group, settings in layer.items():
-            if group not in merged:
-                raise InputError(f"{source}: unknown check {group!r} (known: {', '.join(merged)})")
-            if not isinstance(settings, Mapping):
-                raise InputError(f"{source}.{group}: must be a mapping of setting to value")
-            for key, value in settings.items():
-                if key not in merged[group]:
-                    raise InputError(
-                        f"{source}.{group}: unknown setting {key!r} (known: {', '.join(merged[group])})"
-                    )
-                merged[group][key] = _setting(value, merged[group][key], f"{source}.{group}.{key}", key)
-    return merged
-
-
-def _setting(value: Any, default: Any, where: str, key: str) -> Any:
-    if key == "severity":
-        if value not in SEVERITIES:
-            raise InputError(f"{where}: must be one of {', '.join(SEVERITIES)}; got {value!r}")
-        return value
-    if key == "changed_on":
-        if isinstance(value, (str, bytes)) or not isinstance(value, Sequence):
-            raise InputError(f"{where}: must be a list of dates YYYY-MM-DD; got {value!r}")
-        return [parse_day(v, what=where) for v in value]
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise InputError(f"{where}: must be a finite number; got {value!r}")
-    if isinstance(default, int) and not isinstance(default, bool):
-        if int(value) != value or value < 0:
-            raise InputError(f"{where}: must be a whole number >= 0; got {value!r}")
-        return int(value)
-    if value < 0:
-        raise InputError(f"{where}: must be >= 0; got {value!r}")
-    return float(value)
 
 
 def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> dict[str, dict[str, Any]]:
@@ -237,8 +134,6 @@ def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> 
 
 
 def _prepared(bids, experiment: Experiment, source: str):
-    from .arms import PreparedBids, prepare_bids
-
     if isinstance(bids, PreparedBids):
         return bids
     return prepare_bids(bids, experiment, source=source)

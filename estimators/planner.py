@@ -23,11 +23,13 @@ import pandas as pd
 from scipy import stats
 
 from .allocation import allocation_rule, mixture_rule
-from .arms import estimate_arms, prepare_bids
+from .arms import estimate_arms
+from .bids import prepare_bids
 from .errors import EstimatorWarning, InputError
 from .sequential import anytime_multiplier
 from .simulate import simulate_experiment
 from .spec import Experiment
+from .study import ordstat_revenue, simulate_prepared
 from .two_step import pseudo_values
 
 __all__ = ["DEFAULT_SHARES", "PLAN_COLUMNS", "SharePlan", "pilot_values", "plan_shares", "simulated_half_width",
@@ -156,7 +158,7 @@ def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> p
                                payment_rule=experiment.payment_rule, floor=experiment.floor or None)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)  # welfare's missing interval: not planned
-        return _sigma_of(estimate_arms(bids, experiment, cluster="auction"), n_auctions)
+        return _sigma_of(estimate_arms(bids, experiment, cluster="auction").table, n_auctions)
 
 
 def _sigma_of(result: pd.DataFrame, n_auctions: int) -> pd.DataFrame:
@@ -293,7 +295,7 @@ def plan_shares(
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", EstimatorWarning)
             pilot = estimate_arms(bids, experiment, confidence_level=confidence_level, cluster="auction", source=source)
-        observed = _sigma_of(pilot, int(pilot.attrs["n_auctions"]))
+        observed = _sigma_of(pilot.table, pilot.n_auctions)
         simulated = _sigma(values, experiment, n_bidders, m, rng)
         scale = {key: float(observed.loc[key, "sigma"] / simulated.loc[key, "sigma"])
                  for key in observed.index if np.isfinite(observed.loc[key, "sigma"]) and simulated.loc[key, "sigma"] > 0}
@@ -378,8 +380,6 @@ def simulated_half_width(
         Columns ``arm, metric, simulated_half_width, mean_reported_half_width`` (the mean of the
         estimator's own half-widths; revenue only), ``reps``.
     """
-    from .study import ordstat_revenue, simulate_prepared
-
     if isinstance(reps, bool) or not isinstance(reps, (int, np.integer)) or reps < 2:
         raise InputError(f"`reps` must be an integer >= 2; got {reps!r}")
     if isinstance(n_bidders, bool) or not isinstance(n_bidders, (int, np.integer)) or n_bidders < 2:

@@ -6,7 +6,8 @@ check that has one of its own (``heterogeneous_auctions``: the bids of one aucti
 ``auction_dependence``), plus the estimator's own flags from its
 ``status`` column (``few_bids``, ``degenerate``, ``no_interval``, ...; a table without the
 column counts as ``ok``). ``confidence_level`` and ``cluster`` are what the run used
-(``estimate_arms``' ``attrs``; the realized per-arm averages are always clustered by auction), and so
+(``estimate_arms``' :class:`~counterbid.estimators.ArmEstimates`; the realized per-arm averages are
+always clustered by auction), and so
 are ``payment_rule`` and ``floor``: the auction the bids came from. Experiment-to-date rows also
 carry anytime-valid bounds (``with_anytime_columns``).
 """
@@ -18,6 +19,7 @@ import re
 import numpy as np
 import pandas as pd
 
+from counterbid.estimators import ArmEstimates
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.intervals import row_clusters
 from counterbid.estimators.payment_rules import PAYMENT_RULES
@@ -75,14 +77,16 @@ def stored_status(check_status: str, estimator_status: object = "ok", *, flags=(
     return ",".join(sorted(own | extra)) or "ok"
 
 
-def with_stored_columns(table: pd.DataFrame, *, check_status: str, flags=()) -> pd.DataFrame:
-    """``table`` (a result of ``estimate_arms``) with ``status``, ``confidence_level``, ``cluster``,
-    ``payment_rule`` and ``floor`` (0: none) set.
+def with_stored_columns(table: pd.DataFrame, result: ArmEstimates, *, check_status: str, flags=()) -> pd.DataFrame:
+    """``table`` (rows of ``result``, possibly with more columns) with ``status``, ``confidence_level``,
+    ``cluster``, ``payment_rule`` and ``floor`` (0: none) set.
 
     Parameters
     ----------
     table : pandas.DataFrame
-        Modified in place and returned; its ``attrs`` must hold ``confidence_level`` and ``cluster``.
+        Rows of ``result`` (``result.to_frame()``, say); modified in place and returned.
+    result : ArmEstimates
+        What the rows were computed with: level, clustering, payment rule and floor.
     check_status : {'ok', 'warning'}
     flags : iterable of str, optional
         Flags of the day's failed checks (:func:`check_flags`), added to every row.
@@ -91,30 +95,31 @@ def with_stored_columns(table: pd.DataFrame, *, check_status: str, flags=()) -> 
     -------
     pandas.DataFrame
     """
-    level = table.attrs.get("confidence_level")
+    level = result.confidence_level
     if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0 < level < 1:
-        raise InputError(f"estimate table: attrs['confidence_level'] must be in (0, 1); got {level!r}")
+        raise InputError(f"estimate: confidence_level must be in (0, 1); got {level!r}")
     own = table["status"] if "status" in table.columns else pd.Series("ok", index=table.index)
     flags = tuple(flags)
     table["status"] = [stored_status(check_status, s, flags=flags) for s in own]
     table["confidence_level"] = float(level)
-    table["cluster"] = row_clusters(table)
-    rule = table.attrs.get("payment_rule", "first_price")
-    if rule not in PAYMENT_RULES:
-        raise InputError(f"estimate table: attrs['payment_rule'] must be one of {', '.join(PAYMENT_RULES)}; got {rule!r}")
-    table["payment_rule"] = rule
-    table["floor"] = float(table.attrs.get("floor") or 0.0)
+    table["cluster"] = row_clusters(table["metric"], result.cluster)
+    if result.payment_rule not in PAYMENT_RULES:
+        raise InputError(f"estimate: payment_rule must be one of {', '.join(PAYMENT_RULES)}; "
+                         f"got {result.payment_rule!r}")
+    table["payment_rule"] = result.payment_rule
+    table["floor"] = float(result.floor or 0.0)
     return table
 
 
-def with_anytime_columns(table: pd.DataFrame, *, horizon_auctions: int) -> pd.DataFrame:
+def with_anytime_columns(table: pd.DataFrame, result: ArmEstimates, *, horizon_auctions: int) -> pd.DataFrame:
     """Experiment-to-date rows with ``anytime_low``, ``anytime_high`` and ``anytime_horizon_auctions``.
 
     Parameters
     ----------
     table : pandas.DataFrame
-        A combination of the days to date (``combine_pieces``), modified in place and returned;
-        ``attrs`` must hold ``confidence_level`` and ``n_auctions`` (the auctions to date).
+        Rows of ``result`` (``result.to_frame()``), modified in place and returned.
+    result : ArmEstimates
+        A combination of the days to date (``combine_pieces``): its level and its auctions to date.
     horizon_auctions : int
         Auctions at the planned last look (planned days x the mean auctions per day used so far).
 
@@ -125,12 +130,12 @@ def with_anytime_columns(table: pd.DataFrame, *, horizon_auctions: int) -> pd.Da
         and where the row has no standard error; every look uses the information ratio auctions to
         date over ``horizon_auctions`` (:func:`counterbid.estimators.sequential.anytime_bounds`).
     """
-    level = table.attrs.get("confidence_level")
-    units = table.attrs.get("n_auctions")
+    level = result.confidence_level
+    units = result.n_auctions
     if isinstance(horizon_auctions, bool) or not isinstance(horizon_auctions, (int, np.integer)) or horizon_auctions < 1:
         raise InputError(f"`horizon_auctions` must be a whole number >= 1; got {horizon_auctions!r}")
     if isinstance(units, bool) or not isinstance(units, (int, np.integer)) or units < 1:
-        raise InputError(f"to-date table: attrs['n_auctions'] must be a whole number >= 1; got {units!r}")
+        raise InputError(f"to-date estimate: n_auctions must be a whole number >= 1; got {units!r}")
     bounds = anytime_bounds(table["estimate"].to_numpy(float), table["std_error"].to_numpy(float), units=int(units),
                             planned_units=int(horizon_auctions), confidence_level=level)
     shown = table["metric"].isin(ANYTIME_METRICS).to_numpy()

@@ -235,6 +235,6 @@ def test_backfill_create_runs_the_days_in_order_and_writes_what_counterbid_backf
     exp = experiments["tiles"]
     want = estimate_arms(lake[(lake["experiment_id"] == "tiles") & (lake["ds"] == DAYS[1])].reset_index(drop=True), exp)
     got = daily[(daily["experiment_id"] == "tiles") & (daily["ds"] == pd.Timestamp(DAYS[1]))]
-    merged = want.merge(got, on=["arm", "metric"], suffixes=("", "_db"))
-    assert len(merged) == len(want)
+    merged = want.table.merge(got, on=["arm", "metric"], suffixes=("", "_db"))
+    assert len(merged) == len(want.table)
     assert (merged["estimate"] == merged["estimate_db"]).all()

@@ -59,31 +59,34 @@ def test_table_without_estimator_status_gets_level_cluster_and_check_status():
     exp = parse_experiments(spec)["e"]
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=600, rng=3)
     # a table without the estimator's status column (an older estimator's) counts as 'ok'
-    table = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder").drop(columns="status")
-    out = with_stored_columns(table.copy(), check_status="warning")
+    result = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder")
+    table = result.to_frame().drop(columns="status")
+    out = with_stored_columns(table, result, check_status="warning")
     assert set(out["status"]) == {"warning"} and set(out["confidence_level"]) == {0.9}
-    flagged = with_stored_columns(table.copy(), check_status="warning", flags=check_flags(["auction_dependence"]))
-    assert set(flagged["status"]) == {"heterogeneous_auctions,warning"}
     realized = out["metric"] == "realized_revenue_per_auction"
     assert set(out.loc[realized, "cluster"]) == {"auction"} and set(out.loc[~realized, "cluster"]) == {"bidder"}
-    pd.testing.assert_series_equal(row_clusters(table), out["cluster"])
+    pd.testing.assert_series_equal(row_clusters(table["metric"], result.cluster), out["cluster"])
+    flagged = with_stored_columns(table.copy(), result, check_status="warning", flags=check_flags(["auction_dependence"]))
+    assert set(flagged["status"]) == {"heterogeneous_auctions,warning"}
 
 
 def test_anytime_columns_on_the_rows_with_an_interval_and_refused_without_auctions():
+    import dataclasses
+
     from counterbid.operators.stored_rows import with_anytime_columns
 
     exp = parse_experiments({"experiments": [{"id": "reed-rows", "control_arm": "a", "arms": [
         {"name": "a", "share": 0.5, "position_weights": [0.5, 0.2]},
         {"name": "b", "share": 0.5, "position_weights": [0.6, 0.1]}]}]})["reed-rows"]
-    table = estimate_arms(simulate_experiment(st.uniform(), exp, n_bidders=3, n_auctions=600, rng=2), exp)
-    with_anytime_columns(table, horizon_auctions=28 * 600)  # one day of 28 planned
+    result = estimate_arms(simulate_experiment(st.uniform(), exp, n_bidders=3, n_auctions=600, rng=2), exp)
+    table = result.to_frame()
+    with_anytime_columns(table, result, horizon_auctions=28 * 600)  # one day of 28 planned
     banded = table["metric"] != "welfare_per_auction"
     # x* = 8.212 at 95 %: m(1/28) = sqrt((1 + 28/x*)(log(1 + x*/28) + 2 log 20)) = 5.2492
     half = (table["anytime_high"] - table["estimate"])[banded] / table["std_error"][banded]
     assert half.to_numpy() == pytest.approx(5.2492, abs=1e-4)
     assert table.loc[~banded, "anytime_low"].isna().all() and (table["anytime_horizon_auctions"] == 16800).all()
     with pytest.raises(InputError, match="`horizon_auctions` must be a whole number >= 1"):
-        with_anytime_columns(table, horizon_auctions=0)
-    table.attrs["n_auctions"] = None
-    with pytest.raises(InputError, match=r"attrs\['n_auctions'\]"):
-        with_anytime_columns(table, horizon_auctions=10)
+        with_anytime_columns(table, result, horizon_auctions=0)
+    with pytest.raises(InputError, match="n_auctions must be a whole number"):
+        with_anytime_columns(table, dataclasses.replace(result, n_auctions=0), horizon_auctions=10)
