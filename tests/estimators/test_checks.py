@@ -62,7 +62,7 @@ SPEC = {
 }
 EXPERIMENTS = parse_experiments(SPEC)
 VALUES = st.lognorm(0.5, scale=0.8)
-DISTRIBUTIONS = (st.lognorm(0.5, scale=0.8), st.uniform(0, 2), st.beta(2, 5, scale=3))
+DISTRIBUTIONS = (st.lognorm(0.5, scale=0.8), st.uniform(0, 1), st.beta(2, 5, scale=3))
 BIDDERS = ({4: 0.3, 6: 0.7}, 3, {2: 0.2, 5: 0.8}, 6)
 
 
