@@ -91,7 +91,7 @@ def test_plan_from_an_assumed_distribution_json(capsys):
 
 def test_plan_from_pilot_bids_table(tmp_path, capsys):
     lake = tmp_path / "lake"
-    assert main(["simulate", "--experiment", str(SPEC), "--experiment-id", "gallery-premium", "--out", str(lake),
+    assert main(["simulate", "--experiment", str(SPEC), "--experiment-id", "maker-spotlight", "--out", str(lake),
                  "--days", "1", "--auctions-per-day", "3000", "--bidders", "4", "--seed", "2"]) == 0
     capsys.readouterr()
     rc = main(["plan", "--experiment", str(SPEC), "--bids", str(lake), "--days", "7", "--auctions-per-day", "2000",
@@ -100,7 +100,7 @@ def test_plan_from_pilot_bids_table(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "from pilot bids" in out
     assert "no candidate share reaches half-width 1e-09" in out
-    assert "two-premium" in out and "informed_ab_half_width" in out
+    assert "tile-stack" in out and "informed_ab_half_width" in out
 
 
 @pytest.mark.parametrize("extra, message", [
@@ -109,7 +109,7 @@ def test_plan_from_pilot_bids_table(tmp_path, capsys):
     (["--days", "1", "--auctions-per-day", "100", "--shares", "1.5"], "`shares` must be"),
 ])
 def test_plan_bad_input_is_one_line_error(extra, message, capsys):
-    rc = main(["plan", "--experiment", str(SPEC), "--experiment-id", "gallery-premium", *extra])
+    rc = main(["plan", "--experiment", str(SPEC), "--experiment-id", "maker-spotlight", *extra])
     assert rc == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("counterbid: error: ") and message in err[0]

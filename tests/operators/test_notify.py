@@ -120,7 +120,7 @@ DAG_FILE = textwrap.dedent(
         @task(on_success_callback=alert)
         def settled(ti=None):
             results = [CheckResult("sample_ratio", "error", True, 0.4, 1e-3)]
-            ti.xcom_push(key=XCOM_KEY, value=check_payload(results, experiment_id="gallery-premium", ds="2026-03-02"))
+            ti.xcom_push(key=XCOM_KEY, value=check_payload(results, experiment_id="maker-spotlight", ds="2026-03-02"))
 
         validate()
         settled()
