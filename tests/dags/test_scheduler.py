@@ -79,6 +79,7 @@ def _stop(procs: dict) -> None:
             proc.wait(timeout=10)
 
 
+@pytest.mark.timeout(1800)  # airflow db migrate, a scheduler and three runs, each step with its own deadline
 def test_scheduler_runs_a_three_day_backfill(tmp_path):
     home, dags, logs = tmp_path / "airflow", tmp_path / "dags", tmp_path / "logs"
     for d in (home, dags, logs):

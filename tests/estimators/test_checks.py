@@ -395,6 +395,7 @@ def warmup_detection_rates(exp_id: str, n_days: int, n_auctions: int) -> dict[st
 
 
 @pytest.mark.slow
+@pytest.mark.timeout(1800)  # 400 simulated days through every check: 5-15 minutes on two busy cores
 def test_false_alarm_rate_at_default_thresholds_is_at_most_two_percent():
     rates = false_alarm_rates(200, 1500)
     print("false-alarm rates over 200 clean datasets:", rates)
