@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 
 import pandas as pd
 import pytest
@@ -48,6 +50,30 @@ def test_table_flags_warmup_days_and_exits_zero_on_warnings(lake, capsys):
     warm = [ln.split() for ln in lines if " warmup " in f" {ln} "]
     assert [(w[0], w[3], w[4]) for w in warm] == [("2026-03-03", "NO", "1"), ("2026-03-04", "NO", "2"),
                                                   ("2026-03-05", "yes", "3")]
+
+
+#: Runs ``counterbid check`` in a fresh interpreter (no test has imported anything yet, warnings at
+#: Python's defaults), then says whether pyspark was imported on the way.
+CHECK_IN_A_FRESH_PROCESS = """
+import sys
+from counterbid.cli import main
+code = main(sys.argv[1:])
+print("pyspark imported:", "pyspark" in sys.modules, file=sys.stdout)
+sys.exit(code)
+"""
+
+
+def test_check_keeps_stderr_to_its_own_lines_and_leaves_pyspark_alone(lake):
+    # Great Expectations probes for pyspark when imported; PySpark 4.2 then printed two
+    # FutureWarnings about pandas 3 on every `counterbid check`, with the Spark engine unused.
+    spec, out = lake
+    done = subprocess.run([sys.executable, "-c", CHECK_IN_A_FRESH_PROCESS, "check", "--bids", str(out),
+                           "--experiment", str(spec), "--experiment-id", "maker-spotlight"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stderr == ""
+    lines = done.stdout.splitlines()
+    assert lines[0].startswith("experiment maker-spotlight: 3 day(s)") and lines[-1] == "pyspark imported: False"
 
 
 def test_json_output_rows(lake, capsys):
