@@ -390,7 +390,12 @@ def test_three_days_into_postgres_match_duckdb_and_rerun_identically(three_days,
         lift = con.execute("select span, count(*) from main.arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from main.arm_estimates_cumulative").fetchall()
         checks = con.execute("select count(distinct (experiment_id, ds)) from main.data_checks").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 4)]  # day 1 (warm-up) has no to-date rows and cumulative == [(DAYS[-1],)] and checks == 6
+    # one lift per experiment (two, one treated arm each) and day: 2 x 3 daily; day 1 (warm-up)
+    # has no to-date rows: 2 x 2 to date
+    assert lift == [("day", 6), ("to_date", 4)]
+    # the cumulative view holds the latest day only; every (experiment, day) has its checks stored
+    assert cumulative == [(DAYS[-1],)]
+    assert checks == len(DAYS) * len(load_experiments(conf["spec_path"])) == 6
     # the stored check outcomes too (the DuckDB file's are from its own latest run of the same days)
     check_cols = "experiment_id, ds, \"check\", severity, passed, observed, threshold, cast(details as varchar) as details"
     order = "order by experiment_id, ds, \"check\""

@@ -32,7 +32,7 @@ SPEC = {"experiments": [{"id": "tiles", "control_arm": "plain", "start": "2026-0
 
 def _bids(n_auctions=400, seed=1, first_auction_id=0) -> pd.DataFrame:
     exp = parse_experiments(SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=n_auctions, rng=seed,
+    frame = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=n_auctions, rng=seed,
                                 first_auction_id=first_auction_id)
     return frame.drop(columns=["ds", "value", "clicks"])
 

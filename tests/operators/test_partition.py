@@ -21,6 +21,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results
+from counterbid.operators.contract import CONTRACT_CHECKS
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.pipeline import failed_checks_message
 from counterbid.operators.schema_gate import schema_gate
@@ -89,7 +90,11 @@ def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
     results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=START)
     gate = [r for r in results if r.check.startswith("schema_")]
     assert gate and all(r.passed and r.severity == "error" for r in gate)
-    assert len(results) > len(gate)  # the full check runner ran after the gate
+    # the full check runner ran after the gate: every contract, experiment and equilibrium check
+    ran = {r.check for r in results} - {r.check for r in gate}
+    assert ran >= set(CONTRACT_CHECKS) | {"sample_ratio", "min_auctions_per_arm", "min_auctions_per_stratum",
+                                         "monotone_values", "shading", "drift", "warmup"}, sorted(ran)
+    assert {"schema_rows", "schema_known_arms", "schema_column_bid", "schema_nulls_bid"} <= {r.check for r in gate}
     assert all(r.passed for r in results if r.severity == "error")
     # the experiment's first day is inside its warm-up: a warning, not an error
     assert {r.check for r in results if not r.passed} == {"warmup"}

@@ -33,7 +33,7 @@ BID_TYPES = [("float32", pa.float32(), False), ("int32", pa.int32(), True), ("in
 @pytest.fixture(scope="module")
 def day_table():
     exp = parse_experiments(SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=800, rng=3, ds=DAY)
+    frame = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=800, rng=3, ds=DAY)
     table = pa.Table.from_pandas(frame.drop(columns=["value", "clicks"]), preserve_index=False)
     table = table.set_column(table.schema.get_field_index("ds"), "ds", pa.array([DAY] * table.num_rows, pa.date32()))
     return exp, table, np.round(frame["bid"].to_numpy() * 100).astype(np.int64)

@@ -3,7 +3,11 @@
 from __future__ import annotations
 
 import datetime as dt
+from pathlib import Path
 
+import matplotlib.colors as mcolors
+import matplotlib.figure
+import matplotlib.image as mimage
 import numpy as np
 import pandas as pd
 import pytest
@@ -32,6 +36,32 @@ RUNS = [(0.95, "auction", False), (0.975, "bidder", False), (0.975, "bidder", Tr
 SMALL_DAY_AUCTIONS = 20
 
 
+def png_pixels(path, width_in, height_in, dpi=110):
+    """The PNG's RGB pixels, after checking its size is the figure's (inches x dpi, as matplotlib rounds)."""
+    img = mimage.imread(path)
+    assert img.shape[:2] == (round(height_in * dpi), round(width_in * dpi)), img.shape
+    return img[..., :3]
+
+
+def share_of_colour(rgb, colour, tol=0.02):
+    """Share of pixels within ``tol`` of a matplotlib colour (``C0``, ...) in every channel."""
+    return float(np.mean(np.all(np.abs(rgb - np.asarray(mcolors.to_rgb(colour))) < tol, axis=-1)))
+
+
+@pytest.fixture
+def saved_figures(monkeypatch):
+    """The figures written by ``Figure.savefig`` during the test, with their paths (the real savefig runs)."""
+    saved = []
+    real = matplotlib.figure.Figure.savefig
+
+    def keep(fig, fname, *args, **kwargs):
+        saved.append((fig, str(fname)))
+        return real(fig, fname, *args, **kwargs)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", keep)
+    return saved
+
+
 @pytest.fixture(scope="module")
 def results(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
@@ -58,7 +88,7 @@ def results(tmp_path_factory):
     return root, hook
 
 
-def test_report_has_plots_assumptions_and_days(results):
+def test_report_has_plots_assumptions_and_days(results, saved_figures):
     root, hook = results
     page = write_report(hook, root / "out")
     text = page.read_text()
@@ -66,9 +96,18 @@ def test_report_has_plots_assumptions_and_days(results):
         assert assumption in text
     # the auction that ran, per experiment, from the stored rows
     assert "The auction that ran (payment rule, floor per click): " in text and "first_price, no floor" in text
-    for png in ("tiles_revenue.png", "tiles_lift.png"):
+    # each PNG is its figure (size in inches x dpi 110), drawn, not blank: the revenue plot shows
+    # both arms' colours, the lift plot the treated arm's only
+    figures = {Path(path).name: fig for fig, path in saved_figures}
+    colours = report._colours(hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}))
+    for png, arms in (("tiles_revenue.png", ("plain", "bold")), ("tiles_lift.png", ("bold",))):
         assert f'src="{png}"' in text
-        assert (root / "out" / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        width, height = figures[png].get_size_inches()
+        rgb = png_pixels(root / "out" / png, width, height)
+        for arm in arms:
+            assert share_of_colour(rgb, colours[arm]) > 0.002, (png, arm)
+        if png == "tiles_lift.png":
+            assert share_of_colour(rgb, colours["plain"]) == 0
     for k in range(3):
         assert f"<th>{START + dt.timedelta(days=k)}</th>" in text
     assert "data checks" not in text  # no data_checks table: nothing shown
@@ -96,11 +135,22 @@ def test_report_says_the_level_clustering_and_status_each_interval_used(results)
     assert "The estimator flagged rows (few_bids, no_interval)" in text
 
 
-def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
+def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path, saved_figures):
     _, hook = results
     daily = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
     to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
     title = report._plot_revenue(daily, "tiles", tmp_path / "r.png")
+    # the plotted data are the stored rows: each arm's estimate and realized average by day
+    (fig, path), = saved_figures
+    assert path == str(tmp_path / "r.png")
+    lines = {line.get_label(): line for line in fig.axes[0].get_lines()}
+    for arm in ("plain", "bold"):
+        for metric, label in (("revenue_per_auction", "if run everywhere"), ("realized_revenue_per_auction",
+                                                                             "realized per-arm average")):
+            rows = daily[(daily["arm"] == arm) & (daily["metric"] == metric)]
+            assert len(rows) == 3
+            np.testing.assert_array_equal(lines[f"{arm}: {label}"].get_ydata(), rows["estimate"].to_numpy(float))
+    assert fig.axes[0].get_ylabel() == "revenue per auction"
     assert title.endswith("(bands: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days) intervals)")
     title = report._plot_lift(daily, to_date, "tiles", tmp_path / "l.png")
     assert title.splitlines()[1] == ("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder "

@@ -28,7 +28,7 @@ def test_spark_estimate_refuses_a_partition_changed_after_the_load_step(spark, t
     lake, stage = tmp_path / "bids", tmp_path / "stage"
     day = lake / f"ds={DAY}"
     day.mkdir(parents=True)
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=400, rng=4).drop(columns=["ds", "value", "clicks"])
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=400, rng=4).drop(columns=["ds", "value", "clicks"])
     bids.to_parquet(day / "part-a.parquet", index=False)
     hook = ResultsHook(database=tmp_path / "results.duckdb")
     staged = StagedPartition.at(stage, exp.id, DAY)
@@ -45,7 +45,7 @@ def test_spark_estimate_refuses_a_partition_changed_after_the_load_step(spark, t
     assert on_spark == local and on_spark["shards"] == 3
 
     staged.estimates_day.unlink()
-    late = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=20, rng=5, first_auction_id=10**6)
+    late = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=20, rng=5, first_auction_id=10**6)
     late.drop(columns=["ds", "value", "clicks"]).to_parquet(day / "part-b.parquet", index=False)
     with pytest.raises(InputError) as caught:
         partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=stage, run_id="r", spark=spark,
