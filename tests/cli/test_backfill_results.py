@@ -61,7 +61,7 @@ def test_a_postgresql_url_writes_to_the_server_and_creates_no_folder(lake, tmp_p
     # the rows are the estimator's on the day's bids, every arm and metric of it
     exp = load_experiments(tmp_path / "spec.yaml")["tiles"]
     bids = read_bids(tmp_path / "bids").query("experiment_id == 'tiles'").reset_index(drop=True)
-    want = estimate_arms(bids, exp).set_index(["arm", "metric"])
+    want = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     got = rows.set_index(["arm", "metric"]).loc[want.index]
     assert len(rows) == len(want) and set(rows["experiment_id"]) == {"tiles"} and set(rows["ds"]) == {DAY}
     np.testing.assert_allclose(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float), rtol=1e-12)

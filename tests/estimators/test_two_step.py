@@ -71,7 +71,7 @@ def test_revenue_equivalence_three_vs_four_slots():
     assert rev["three"] == pytest.approx(1.5 - 0.050, abs=20 * 0.0003)
     assert rev["four"] == pytest.approx(1.5 - 0.008, abs=20 * 0.0018)
     # The order-statistic estimator on the same bids has no such bias (within 4 of its own SE).
-    est = estimate_arms(bids, exp).query("metric == 'revenue_per_auction'").set_index("arm")
+    est = estimate_arms(bids, exp).table.query("metric == 'revenue_per_auction'").set_index("arm")
     assert (np.abs(est.loc[["three", "four"], "estimate"] - 1.5) < 4 * est.loc[["three", "four"], "std_error"]).all()
 
 
