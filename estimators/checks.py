@@ -133,6 +133,11 @@ DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
     "drift": {"severity": "warning", "alpha": 1e-3, "trailing_days": 7, "min_bids": 200},
     # Days since the experiment started or its shares changed; flagged while < days.
     "warmup": {"severity": "warning", "days": 3, "changed_on": []},
+    # Bids whose log lies more than `max_robust_z` robust sds (1.4826 MAD) above their stratum's median
+    # log bid (estimators/outlying_bids.py); the first `max_rows` are named.
+    "outlying_bids": {"severity": "warning", "max_robust_z": 8.0, "min_bids": 20, "max_rows": 10},
+    # Share of some arm's revenue estimate the outlying bids carry; fail above `max_share`.
+    "dominant_bids": {"severity": "error", "max_share": 0.5},
     # Great Expectations contract suite (counterbid.operators.contract).
     "contract": {"severity": "error", "max_bidders": 200, "min_bidders": 2, "tie_tolerance": 1e-9, "sample_rows": 1000},
 }
@@ -145,6 +150,8 @@ STATISTICAL_CHECKS = (
     "monotone_values",
     "shading",
     "drift",
+    "outlying_bids",
+    "dominant_bids",
     "warmup",
 )
 
@@ -998,8 +1005,20 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
         note = _jsonable(dict(sample))
         spread = [replace(r, details={**r.details, "sample": note}) for r in spread]
     out += spread
+    out += _outlier_results(data, experiment, cfg, bids if isinstance(bids, pd.DataFrame) else None, sample)
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))
+    return out
+
+
+def _outlier_results(data, experiment: Experiment, cfg, frame, sample) -> list[CheckResult]:
+    """``outlying_bids`` and ``dominant_bids`` (estimators/outlying_bids.py), noting the sample they read."""
+    from .outlying_bids import outlying_bid_checks
+
+    out = outlying_bid_checks(data, experiment, cfg, frame=frame)
+    if sample is not None:
+        note = _jsonable(dict(sample))
+        out = [replace(r, details={**r.details, "sample": note}) for r in out]
     return out
 
 
