@@ -161,6 +161,10 @@ def run(args: argparse.Namespace) -> int:
     from counterbid.operators.results_schema import results_target
 
     target = results_target(args.results, what="--results")
+    from counterbid.operators.extras import require_extras_for
+
+    engine = os.environ.get("COUNTERBID_ENGINE", "local").strip().lower() or "local"
+    require_extras_for(results=target, engine=engine, results_setting="--results", engine_setting="COUNTERBID_ENGINE")
     if not str(args.lake).startswith(_REMOTE) and not Path(args.lake).is_dir():
         raise InputError(f"--lake {args.lake}: no such folder")
     configured = "airflow" in sys.modules  # Airflow reads its configuration once, on import
