@@ -25,7 +25,7 @@ from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
-from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
+from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import pieces_by_shard, write_shards
 
@@ -425,11 +425,13 @@ def estimate_partition(
             to_date_cluster = "auction"
         tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
+    else:  # no day of the window is used yet: rows without numbers, saying why (warming_up, ...)
+        tables["to_date"] = _pending_rows(day_table, pending_status(window))
     for span, table in tables.items():
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", window.used[0])
+            table.insert(2, "first_ds", window.used[0] if window.used else None)
             table["days_used"] = window.days_used
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
@@ -442,12 +444,29 @@ def estimate_partition(
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
     write_parquet(pa.Table.from_pandas(day_table, preserve_index=False), staged.estimates_day)
-    if "to_date" in tables:
-        write_parquet(pa.Table.from_pandas(tables["to_date"], preserve_index=False), staged.estimates_to_date)
-    else:  # every day so far is left out: no experiment-to-date rows for this day
-        staged.estimates_to_date.unlink(missing_ok=True)
+    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
+    if not window.used:  # first_ds is all null: keep its type a date for both sinks
+        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
+                                     pa.nulls(to_date.num_rows, type=pa.date32()))
+    write_parquet(to_date, staged.estimates_to_date)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
+
+
+def _pending_rows(day_table: pd.DataFrame, status: str) -> pd.DataFrame:
+    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) pairs, no numbers.
+
+    Estimate, standard error and interval are null, counts 0, ``status`` says why (``warming_up``, ...);
+    the level and clustering are the run's, so the views and the report read them like any other rows.
+    """
+    rows = day_table[["arm", "metric"]].copy()
+    for column in ("estimate", "std_error", "ci_low", "ci_high"):
+        rows[column] = float("nan")
+    rows["n_auctions"] = 0
+    rows["n_bids"] = 0
+    rows["status"] = status
+    rows.attrs = {**day_table.attrs, "n_bids": 0, "n_auctions": 0}
+    return rows
 
 
 def write_partition(
@@ -456,7 +475,7 @@ def write_partition(
     """Replace the (experiment, day)'s rows of every results table in one transaction.
 
     The day's estimates, its experiment-to-date estimates (none when every day so far is left
-    out of the window), position weights, stratum pieces and bid-quantile summary.
+    out of the window: rows without numbers saying why), position weights, stratum pieces and bid-quantile summary.
 
     Returns
     -------

@@ -122,6 +122,9 @@ MIGRATIONS = (
                   Statement("results_create_stratum_piece_bidder_sums"),
                   Statement("results_create_bid_quantiles"),
               )),
+    Migration(3, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
+                 "excluded days) the rows hold no estimate and a status saying why; first_ds null, n_days_used 0",
+              _rebuild(3, "arm_estimates_to_date")),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version
