@@ -120,7 +120,8 @@ def _plain(x: Any) -> Any:
 
 
 def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping[str, Any]], *,
-                        frame: pd.DataFrame | None = None) -> list:
+                        frame: pd.DataFrame | None = None, day_flagged: pd.DataFrame | None = None,
+                        day_bids: Mapping[int, int] | None = None) -> list:
     """The ``outlying_bids`` and ``dominant_bids`` results of one day.
 
     Parameters
@@ -134,6 +135,14 @@ def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping
     frame : pandas.DataFrame, optional
         The bids frame ``data`` was prepared from; when given, the flagged bids are named by its
         row number, ``auction_id`` and ``bidder_id``.
+    day_flagged : pandas.DataFrame, optional
+        When ``data`` is a sample of the day (one shard): the whole day's bids above the fences
+        this function computes from the sample (:func:`outlier_fences`; columns ``n_bidders``,
+        ``auction_id``, ``bidder_id``, ``bid``, ``effective_bid``), found by the caller over every
+        shard. They replace the sample's own flagged bids, and their share is computed with the
+        whole day's weights (``day_bids``) against the sample's other bids.
+    day_bids : mapping of int to int, optional
+        Bids of each stratum over the whole day; required with ``day_flagged``.
 
     Returns
     -------
@@ -176,6 +185,8 @@ def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping
     count = {n: int(strata[n].size - k) for n, k in flagged.items() if strata[n].size > k}
     stats = {n: {"median": float(np.exp(f["median_log"])), "scale_log": f["scale_log"], "fence": f["fence"]}
              for n, f in fences.items()}
+    if day_flagged is not None:
+        return _whole_day(strata, fences, flagged, day_flagged, day_bids, stats, experiment, out_cfg, dom_cfg)
     rows = []
     if count and frame is not None:
         rows = _flagged_rows(frame, fences, int(out_cfg["max_rows"]))
@@ -207,3 +218,71 @@ def _dominance(strata, flagged, count, rows, experiment: Experiment, cfg):
     observed = float(np.max(share))
     return _result("dominant_bids", cfg, observed <= cfg["max_share"], observed, cfg["max_share"],
                    share_of_revenue_by_arm=by_arm, flagged_by_bidders=count, flagged_bids=rows)
+
+
+def _day_rows(day_flagged: pd.DataFrame, fences: Mapping[int, dict], max_rows: int) -> list[dict]:
+    """The first ``max_rows`` of the whole day's flagged bids, named by auction and bidder."""
+    rows = []
+    for r in day_flagged.head(max_rows).itertuples(index=False):
+        f = fences[int(r.n_bidders)]
+        rows.append({"auction_id": _plain(r.auction_id), "bidder_id": _plain(r.bidder_id), "bid": float(r.bid),
+                     "effective_bid": float(r.effective_bid), "n_bidders": int(r.n_bidders),
+                     "robust_z": float((np.log(r.effective_bid) - f["median_log"]) / f["scale_log"])})
+    return rows
+
+
+def _whole_day(strata, fences, flagged, day_flagged, day_bids, stats, experiment: Experiment, out_cfg, dom_cfg):
+    """Both results when the sample's fences were applied to the whole day (``day_flagged``)."""
+    from .checks import _result
+
+    if day_bids is None:
+        raise ValueError("outlying_bid_checks: `day_bids` is required with `day_flagged`")
+    top = {int(n): np.sort(g["effective_bid"].to_numpy(float)) for n, g in day_flagged.groupby("n_bidders")}
+    count = {n: int(b.size) for n, b in top.items()}
+    zs = [(np.log(b[-1]) - fences[n]["median_log"]) / fences[n]["scale_log"] for n, b in top.items()
+          if fences[n]["scale_log"] > 0]
+    sample_top = [(np.log(b[-1]) - fences[n]["median_log"]) / fences[n]["scale_log"] for n, b in strata.items()
+                  if n in fences and fences[n]["scale_log"] > 0 and b[-1] > 0]
+    z = max(zs + sample_top) if zs + sample_top else None
+    rows = _day_rows(day_flagged, fences, int(out_cfg["max_rows"]))
+    out = _result("outlying_bids", out_cfg, not count, z, out_cfg["max_robust_z"], flagged_by_bidders=count,
+                  flagged_bids=rows, log_bid_by_bidders=stats, scope="fences from the sample, bids of the whole day")
+    if not count:
+        return [out, _result("dominant_bids", dom_cfg, True, 0.0, dom_cfg["max_share"], note="no outlying bids")]
+    scale = max(max(float(b[-1]) for b in strata.values()), max(float(b[-1]) for b in top.values()))
+    total, carried = np.zeros(len(experiment.arms)), np.zeros(len(experiment.arms))
+    for n in sorted(set(strata) | set(top)):
+        big_n = int(day_bids.get(n, 0))
+        if big_n == 0:
+            continue
+        auctions = big_n / n
+        clean = 0.0
+        if n in strata:  # the sample's other bids estimate the rest of the stratum's revenue
+            b = strata[n][: flagged.get(n, strata[n].size)] / scale
+            if b.size:
+                clean, _ = _stratum_revenue_sums(b, n, experiment, b.size)
+        high = _top_contributions(top.get(n, np.zeros(0)) / scale, n, big_n, experiment)
+        total += auctions * (clean + high)
+        carried += auctions * high
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = np.where(total > 0, carried / total, np.where(carried > 0, 1.0, 0.0))
+    by_arm = {a.name: float(s) for a, s in zip(experiment.arms, share)}
+    observed = float(np.max(share))
+    return [out, _result("dominant_bids", dom_cfg, observed <= dom_cfg["max_share"], observed, dom_cfg["max_share"],
+                         share_of_revenue_by_arm=by_arm, flagged_by_bidders=count, flagged_bids=rows)]
+
+
+def _top_contributions(top_sorted: np.ndarray, n: int, big_n: int, experiment: Experiment) -> np.ndarray:
+    """Per arm, ``n sum_j w_(N-j) b_j`` of a stratum's top ``k`` bids at the whole day's size ``N``."""
+    k = top_sorted.size
+    if k == 0:
+        return np.zeros(len(experiment.arms))
+    rules = [allocation_rule(a.weights_for(n), n) for a in experiment.arms]
+    mix = mixture_rule(rules, experiment.shares)
+    q = np.arange(big_n - k, big_n + 1) / big_n  # the ranks the top k bids hold in the whole day
+    out = np.zeros(len(rules))
+    for i, rule in enumerate(rules):
+        weights = revenue_weights(rule, mix, big_n, payment_rule=experiment.payment_rule)
+        cum = weights.values[big_n - k:] if weights.grid.size == big_n + 1 else weights.at(q)
+        out[i] = n * float(np.diff(cum) @ top_sorted)
+    return out
