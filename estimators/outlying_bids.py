@@ -102,7 +102,8 @@ def _flagged_rows(frame: pd.DataFrame, fences: Mapping[int, dict], max_rows: int
     if "quality" in frame.columns:
         bid = bid * pd.to_numeric(frame["quality"], errors="coerce").to_numpy(float)
     n = frame.groupby("auction_id", observed=True, sort=False)["auction_id"].transform("size").to_numpy()
-    fence = np.array([fences.get(int(k), {"fence": np.inf})["fence"] for k in n]) if n.size else np.zeros(0)
+    by_stratum = pd.Series({k: f["fence"] for k, f in fences.items()}, dtype=float)
+    fence = pd.Series(n).map(by_stratum).fillna(np.inf).to_numpy(float)  # no fence: never flagged
     with np.errstate(invalid="ignore"):
         hit = np.flatnonzero(bid > fence)
     rows = []

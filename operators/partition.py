@@ -442,7 +442,8 @@ def estimate_partition(
         table["computed_at"] = computed_at
         summary[f"{span}_bids"] = int(table.attrs["n_bids"])
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
-        summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
+        # XCom is JSON: a warm-up day's to-date rows have no number (None, not NaN)
+        summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) if pd.notna(v) else None for k, v in rev.items()}
     write_parquet(pa.Table.from_pandas(day_table, preserve_index=False), staged.estimates_day)
     to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
     if not window.used:  # first_ds is all null: keep its type a date for both sinks

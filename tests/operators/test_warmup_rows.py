@@ -7,6 +7,7 @@ dashboard reading ``arm_estimates_cumulative`` showed nothing rather than "warmi
 from __future__ import annotations
 
 import datetime as dt
+import json
 
 import pandas as pd
 import pytest
@@ -44,7 +45,8 @@ def _run_days(hook: ResultsHook, lake, staging):
         partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=day, staging_root=staging)
         staged = StagedPartition.at(staging, exp.id, day)
         partition.record_checks(staged, schema_gate(hook, experiment=exp, staged=staged))
-        partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=staging, run_id=f"run-{day}")
+        summary = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=staging, run_id=f"run-{day}")
+        json.dumps(summary, allow_nan=False)  # what XCom stores: strict JSON, no NaN for a warm-up day
         partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=staging)
         seen.append(cumulative_table(hook))  # what a dashboard reads after each day
     return seen
