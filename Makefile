@@ -18,7 +18,9 @@ JAVA_HOME_FILE := $(VENV)/java-home
 $(JAVA_HOME_FILE): .ci/java-home | $(STAMP)
 	.ci/java-home > $@.tmp && mv $@.tmp $@
 
+# The import contracts of pyproject.toml ([tool.importlinter]) first: a broken layer fails the target.
 test: $(STAMP) $(JAVA_HOME_FILE)
+	$(VENV)/bin/lint-imports
 	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) -m pytest
 
 # 14 days of the invented Quillfen marketplace through the daily DAG (dag.test per day), then the report.

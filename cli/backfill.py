@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import importlib.util
 import os
 import shutil
 import subprocess
@@ -84,10 +85,15 @@ def ensure_metadata(env: dict[str, str] | None = None) -> None:
 
 
 def dags_folder() -> Path:
-    """Folder of the installed example DAG (``counterbid.dags_example``)."""
-    import counterbid.dags_example as pkg
+    """Folder of the installed example DAG (``counterbid.dags_example``), found without importing it.
 
-    return Path(pkg.__file__).resolve().parent
+    The command line does not import the example DAGs (an import contract in ``pyproject.toml``):
+    Airflow parses them from this folder in its own processes.
+    """
+    spec = importlib.util.find_spec("counterbid.dags_example")
+    if spec is None or not spec.submodule_search_locations:
+        raise RuntimeError("counterbid.dags_example is not installed")
+    return Path(next(iter(spec.submodule_search_locations))).resolve()
 
 
 @dataclass

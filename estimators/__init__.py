@@ -2,9 +2,10 @@
 
 Public API
 ----------
-estimate_arms
-    Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids.
-stratum_pieces, combine_pieces, StratumPiece, pieces_to_frames, pieces_from_frames
+estimate_arms, ArmEstimates
+    Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids, as a
+    frozen result (the rows in ``.table``, and what they were computed with).
+stratum_pieces, combine_pieces, StratumKey, StratumPiece, pieces_to_frames, pieces_from_frames
     Strata as the unit of work: estimate each stratum alone, store and combine what it contributes.
 shard_of, n_shards, MAX_BIDS_PER_SHARD
     The stable hash shard of an auction id and the number of shards of a stratum.
@@ -19,8 +20,11 @@ simulate_experiment, equilibrium_bid_function, expected_revenue_per_auction
 """
 
 from .allocation import AllocationRule, allocation_rule, derivative_ratio, mixture_rule
-from .arms import (
-    BID_COLUMNS,
+from .arms import estimate_arms
+from .bids import BID_COLUMNS, PreparedBids, prepare_bids
+from .checks import CheckResult, worst_failure
+from .combine import ArmEstimates, combine_pieces
+from .constants import (
     CLUSTERS,
     METHOD_VERSION,
     METRICS,
@@ -28,25 +32,13 @@ from .arms import (
     MIXTURE_ARM,
     RESULT_COLUMNS,
     STATUS_FLAGS,
-    PreparedBids,
-    estimate_arms,
-    prepare_bids,
+    piece_labels,
 )
-from .checks import CheckResult, worst_failure
 from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
-from .pieces import (
-    MAX_BIDS_PER_SHARD,
-    PIECE_FRAMES,
-    StratumPiece,
-    combine_pieces,
-    n_shards,
-    piece_labels,
-    pieces_from_frames,
-    pieces_to_frames,
-    shard_of,
-    stratum_pieces,
-)
+from .piece_frames import PIECE_FRAMES, pieces_from_frames, pieces_to_frames
+from .pieces import StratumKey, StratumPiece, stratum_pieces
+from .sharding import MAX_BIDS_PER_SHARD, n_shards, shard_of
 from .position_weights import measured_position_weights
 from .simulate import (
     BidFunction,
@@ -60,6 +52,7 @@ from .spec import Arm, Experiment, load_experiment, load_experiments, parse_day,
 __all__ = [
     "AllocationRule",
     "Arm",
+    "ArmEstimates",
     "BID_COLUMNS",
     "BidFunction",
     "CLUSTERS",
@@ -76,6 +69,7 @@ __all__ = [
     "PreparedBids",
     "RESULT_COLUMNS",
     "STATUS_FLAGS",
+    "StratumKey",
     "StratumPiece",
     "allocation_rule",
     "combine_pieces",

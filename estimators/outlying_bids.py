@@ -36,6 +36,11 @@ MAD_TO_SD = 1.482602218505602
 _DECILE_RANGE_TO_SD = 2.5631031310892007
 
 
+def _result(name: str, cfg: Mapping[str, Any], passed: bool, observed, threshold, **details) -> tuple:
+    """One outcome as ``(check, passed, observed, threshold, details)`` (``checks.py`` adds the severity)."""
+    return name, bool(passed), observed, threshold, details
+
+
 def _robust_scale(logs: np.ndarray, centre: float) -> float:
     """1.4826 x MAD of ``logs``; the 10-90 % range / 2.563 when more than half the bids are equal."""
     scale = MAD_TO_SD * float(np.median(np.abs(logs - centre)))
@@ -120,24 +125,25 @@ def _plain(x: Any) -> Any:
     return x.item() if isinstance(x, np.generic) else x if isinstance(x, (int, float)) else str(x)
 
 
-def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping[str, Any]], *,
+def outlying_bid_checks(strata: Mapping[int, np.ndarray], experiment: Experiment, cfgs: Mapping[str, Mapping[str, Any]], *,
                         frame: pd.DataFrame | None = None, day_flagged: pd.DataFrame | None = None,
                         day_bids: Mapping[int, int] | None = None) -> list:
     """The ``outlying_bids`` and ``dominant_bids`` results of one day.
 
     Parameters
     ----------
-    data : PreparedBids
-        The day's validated bids (single-bidder auctions left out).
+    strata : mapping of int to ndarray
+        The day's validated effective bids per stratum (number of bidders), sorted
+        (single-bidder auctions left out).
     experiment : Experiment
     cfgs : mapping
         Full check configuration (``check_config``): reads ``outlying_bids`` (``max_robust_z``,
         ``min_bids``, ``max_rows``) and ``dominant_bids`` (``max_share``).
     frame : pandas.DataFrame, optional
-        The bids frame ``data`` was prepared from; when given, the flagged bids are named by its
+        The bids frame ``strata`` were prepared from; when given, the flagged bids are named by its
         row number, ``auction_id`` and ``bidder_id``.
     day_flagged : pandas.DataFrame, optional
-        When ``data`` is a sample of the day (one shard): the whole day's bids above the fences
+        When ``strata`` are a sample of the day (one shard): the whole day's bids above the fences
         this function computes from the sample (:func:`outlier_fences`; columns ``n_bidders``,
         ``auction_id``, ``bidder_id``, ``bid``, ``effective_bid``), found by the caller over every
         shard. They replace the sample's own flagged bids, and their share is computed with the
@@ -147,8 +153,9 @@ def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping
 
     Returns
     -------
-    list of CheckResult
-        ``outlying_bids``: observed is the largest robust z (over strata), threshold
+    list of tuple
+        ``(check, passed, observed, threshold, details)`` per check, which ``checks.py`` turns into
+        ``CheckResult`` rows. ``outlying_bids``: observed is the largest robust z (over strata), threshold
         ``max_robust_z``; details name the flagged bids. ``dominant_bids``: observed is the
         largest share (over arms) of the day's revenue estimate the flagged bids carry,
         threshold ``max_share``; details give the share per arm.
@@ -167,10 +174,7 @@ def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping
     .. [2] Serfling, R. J. (1980). Approximation Theorems of Mathematical Statistics, ch. 8
        (L-statistics).
     """
-    from .checks import _result, _strata_bids  # checks.py calls this module lazily
-
     out_cfg, dom_cfg = cfgs["outlying_bids"], cfgs["dominant_bids"]
-    strata = _strata_bids(data)
     fences = outlier_fences(strata, max_robust_z=out_cfg["max_robust_z"], min_bids=out_cfg["min_bids"])
     if not fences:
         note = "no stratum has enough positive bids"
@@ -201,8 +205,6 @@ def outlying_bid_checks(data, experiment: Experiment, cfgs: Mapping[str, Mapping
 
 
 def _dominance(strata, flagged, count, rows, experiment: Experiment, cfg):
-    from .checks import _result
-
     if not count:
         return _result("dominant_bids", cfg, True, 0.0, cfg["max_share"], note="no outlying bids")
     top_bid = max(float(b[-1]) for b in strata.values())
@@ -234,8 +236,6 @@ def _day_rows(day_flagged: pd.DataFrame, fences: Mapping[int, dict], max_rows: i
 
 def _whole_day(strata, fences, flagged, day_flagged, day_bids, stats, experiment: Experiment, out_cfg, dom_cfg):
     """Both results when the sample's fences were applied to the whole day (``day_flagged``)."""
-    from .checks import _result
-
     if day_bids is None:
         raise ValueError("outlying_bid_checks: `day_bids` is required with `day_flagged`")
     top = {int(n): np.sort(g["effective_bid"].to_numpy(float)) for n, g in day_flagged.groupby("n_bidders")}

@@ -48,9 +48,10 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import yaml
 
+from .check_settings import check_config
+from .days import parse_day
 from .errors import InputError
 from .payment_rules import PAYMENT_RULES as _PAYMENT_RULES
 
@@ -206,47 +207,6 @@ def _weights(raw: Any, where: str) -> tuple[float, ...]:
     return tuple(out)
 
 
-def parse_day(value: Any, *, what: str = "ds") -> _dt.date:
-    """A calendar day from a ``date``, a ``datetime`` or an ISO 8601 text.
-
-    Parameters
-    ----------
-    value : date, datetime, numpy.datetime64 or str
-        ``datetime`` values (``pandas.Timestamp`` included) give their date; texts are
-        ``YYYY-MM-DD`` or an ISO date-time such as Airflow's ``2026-03-02T00:00:00+00:00``.
-        Numbers are refused.
-    what : str, optional
-        What is being parsed (``ds``, ``--start``, a spec key); named in the error message.
-
-    Returns
-    -------
-    datetime.date
-
-    Raises
-    ------
-    InputError
-        ``value`` is not a day; the message names ``what`` and shows the value.
-
-    Examples
-    --------
-    >>> parse_day("2026-03-02T00:00:00+00:00")
-    datetime.date(2026, 3, 2)
-    """
-    if isinstance(value, _dt.datetime):
-        return value.date()
-    if isinstance(value, _dt.date):
-        return value
-    text = value if isinstance(value, str) else str(value)[:10] if isinstance(value, np.datetime64) else None
-    try:
-        if text is not None and len(text) > 10 and text[10] in "T ":  # a date-time: its date
-            return _dt.datetime.fromisoformat(text).date()
-        if text is not None:
-            return _dt.date.fromisoformat(text)
-    except ValueError:
-        pass
-    raise InputError(f"{what}: must be a date YYYY-MM-DD; got {value!r}")
-
-
 def _experiment(raw: Any, where: str) -> Experiment:
     if not isinstance(raw, Mapping):
         raise InputError(f"{where}: must be a mapping with keys id, control_arm, arms")
@@ -308,8 +268,6 @@ def _experiment(raw: Any, where: str) -> Experiment:
     checks = raw.get("checks") or {}
     if not isinstance(checks, Mapping):
         raise InputError(f"{where}: 'checks' must be a mapping")
-    from .checks import check_config  # checks.py imports this module
-
     check_config(checks, source=f"{where} checks")  # unknown check or setting, or a bad value: refused now
     burn_in = raw.get("burn_in_days", 0)
     if isinstance(burn_in, bool) or not isinstance(burn_in, int) or burn_in < 0:

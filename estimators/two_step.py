@@ -27,11 +27,18 @@ import pandas as pd
 from scipy import integrate, stats
 
 from .allocation import AllocationRule, allocation_rule, mixture_rule
-from .arms import PreparedBids, prepare_bids
+from .bids import PreparedBids, prepare_bids
 from .errors import InputError
 from .spec import Experiment
 
-__all__ = ["PseudoValues", "TWO_STEP_COLUMNS", "pseudo_values", "two_step_revenue", "two_step_from_prepared"]
+__all__ = [
+    "PseudoValues",
+    "TWO_STEP_COLUMNS",
+    "pseudo_value_revenue",
+    "pseudo_values",
+    "two_step_from_prepared",
+    "two_step_revenue",
+]
 
 #: Columns of :func:`two_step_revenue`'s result.
 TWO_STEP_COLUMNS = ("arm", "metric", "estimate", "n_auctions", "n_bids", "n_trimmed")
@@ -178,7 +185,7 @@ def pseudo_values(
     return PseudoValues(q[keep][finite], np.sort(v[finite]), h, big_n, big_n - int(np.count_nonzero(finite)))
 
 
-def _revenue(pv: PseudoValues, target: AllocationRule, n: int) -> float:
+def pseudo_value_revenue(pv: PseudoValues, target: AllocationRule, n: int) -> float:
     """``n * (1/N) * sum (1 - q_i) v_i y'(q_i)`` over the retained pseudo-values."""
     if pv.value.size == 0:
         return np.nan
@@ -220,13 +227,10 @@ def two_step_from_prepared(
         pv = pseudo_values(b, mix, trim_bandwidths=trim_bandwidths, bw_method=bw_method)
         trimmed += pv.n_trimmed
         for k, rule in enumerate(rules):
-            revenue[k] += a_n / total * _revenue(pv, rule, n)
+            revenue[k] += a_n / total * pseudo_value_revenue(pv, rule, n)
     rows = [(a.name, "revenue_per_auction", float(revenue[k]), total, int(data.bid.size), trimmed)
             for k, a in enumerate(arms)]
-    out = pd.DataFrame(rows, columns=list(TWO_STEP_COLUMNS))
-    out.attrs.update(experiment_id=experiment.id, method="two-step kernel inversion",
-                     trim_bandwidths=float(trim_bandwidths), n_auctions=total)
-    return out
+    return pd.DataFrame(rows, columns=list(TWO_STEP_COLUMNS))
 
 
 def two_step_revenue(

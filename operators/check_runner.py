@@ -25,7 +25,7 @@ from counterbid.sql import render_sql, validate_identifier
 from .contract import run_contract, with_quality
 from .results_schema import as_session, migrate
 
-__all__ = ["day_bid_quantiles", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["day_bid_quantiles", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
 
@@ -173,14 +173,6 @@ def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) ->
         if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
             table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
     return table.to_pandas()
-
-
-def ensure_data_checks_table(con, *, schema: str = "main") -> None:
-    """Bring the results schema (``data_checks`` included) to this version (see ``results_schema.migrate``).
-
-    ``con`` is a :class:`~counterbid.operators.results_schema.ResultsSession` or a DuckDB connection.
-    """
-    migrate(as_session(con, schema=schema))
 
 
 def write_check_results(

@@ -44,8 +44,6 @@ POSTGRES_CONN_TYPE = "postgres"
 #: Text of DuckDB's error when another process holds the database file.
 LOCK_ERROR = "Could not set lock on file"
 
-#: Tables of the stored stratum pieces (one per frame of ``counterbid.estimators.pieces.pieces_to_frames``).
-PIECE_TABLES = ("stratum_pieces", "stratum_piece_arms", "stratum_piece_covariance", "stratum_piece_bidder_sums")
 
 
 def is_lock_error(exc: BaseException) -> bool:

@@ -13,30 +13,42 @@ import json
 import logging
 import shutil
 from collections.abc import Mapping
-from dataclasses import asdict, replace
+from dataclasses import asdict
 from pathlib import Path
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from counterbid.estimators import CheckResult, Experiment, load_experiments, measured_position_weights, parse_day, worst_failure
-from counterbid.estimators.arms import METHOD_VERSION
+from counterbid.estimators import (
+    ArmEstimates,
+    CheckResult,
+    Experiment,
+    StratumPiece,
+    combine_pieces,
+    load_experiments,
+    measured_position_weights,
+    n_shards,
+    parse_day,
+    pieces_from_frames,
+    pieces_to_frames,
+    worst_failure,
+)
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
+from counterbid.estimators.sequential import planned_days
 from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
+from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedDay
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
-from counterbid.readers.shards import pieces_by_shard, write_shards
+from counterbid.readers.shards import write_shards
 
 from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import with_stored_columns
+from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 
 __all__ = [
-    "EARLIEST_DAY",
     "MissingPartitionError",
     "PIECE_TABLES",
     "active_experiment_ids",
@@ -52,10 +64,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-#: Experiments without a ``start`` pool every day of the lake up to the run's day.
-EARLIEST_DAY = dt.date(1970, 1, 1)
-
 
 def active_experiment_ids(spec_path: str | Path, ds: object) -> list[str]:
     """Ids of the experiments of ``spec_path`` that run on day ``ds``, in file order."""
@@ -81,7 +89,7 @@ def stage_partition(
     """Copy the day's bids of one experiment into staging, split into shards.
 
     A day with more bids than ``max_bids_per_shard`` (default
-    :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
+    :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
     is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, computed by
     DuckDB as it scans (``sql/lake_read_partition_shards.sql``) and streamed into
     ``day/shard=K/part-0.parquet`` (:func:`counterbid.readers.shards.write_shards`; one batch in memory). Only
@@ -257,7 +265,7 @@ def load_checks(staged: StagedPartition) -> str:
     return status
 
 
-#: Results table of each frame of :func:`counterbid.estimators.pieces.pieces_to_frames`.
+#: Results table of each frame of :func:`counterbid.estimators.pieces_to_frames`.
 PIECE_TABLES = {
     "strata": "stratum_pieces",
     "arms": "stratum_piece_arms",
@@ -303,29 +311,29 @@ def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPi
     return pieces_from_frames(back)
 
 
-def _pieces_on_spark(spark, lake_root, staged: StagedPartition, *, experiment: Experiment, ds: dt.date,
-                     cluster: str):
-    """The day's pieces estimated on Spark from the lake, in the load step's shards; and their number.
+def _staged_day(staged: StagedPartition, ds: dt.date, *, manifest: bool) -> StagedDay:
+    """The day as the load step staged it: its shards and, with ``manifest``, the number of shards and
+    bids the load step recorded (``day/shards.json``; an engine that reads the lake again needs them)."""
+    staged.require(staged.day, step="load")
+    shards = [(k, staged.shard(k)) for k in staged.shards()]
+    if not manifest:
+        return StagedDay(ds=ds, shards=shards, n_shards=len(shards), staged_bids=None, source=str(staged.day))
+    recorded = json.loads(staged.require(staged.day_manifest, step="load").read_text(encoding="utf-8"))
+    return StagedDay(ds=ds, shards=shards, n_shards=int(recorded["shards"]), staged_bids=int(recorded["day_bids"]),
+                     source=str(staged.day))
 
-    Messages name the staged day, as the local engine's do (a shard's row numbers count from the
-    start of that shard, which is the staged shard file). Spark reads the lake again, so it must
-    find the bids the load step staged and the validate step checked: a different count means
-    the partition changed in between.
-    """
-    from counterbid.readers.spark_shards import lake_partition_pieces_on_spark
 
-    manifest_path = staged.require(staged.day_manifest, step="load")
-    manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-    shards = int(manifest["shards"])
-    found = lake_partition_pieces_on_spark(spark, str(lake_root), experiment=experiment, ds=ds, shards=shards,
-                                           cluster=cluster, source=str(staged.day))
-    # every single-bidder auction left out is one bid; every other bid is in a piece
-    seen = sum(p.n_bids for p in found.pieces) + found.n_excluded_auctions
-    if seen != int(manifest["day_bids"]):
-        raise InputError(f"{lake_root} ds={ds}: Spark read {seen} bids of experiment {experiment.id!r}, the load step "
-                         f"staged {manifest['day_bids']}; the partition changed after it was checked: run the day again "
-                         "from the 'load' step")
-    return found, shards
+def _engine(spark, lake_root) -> Engine:
+    if spark is None:
+        return LocalEngine()
+    if lake_root in (None, ""):
+        raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
+    return SparkEngine(spark, str(lake_root))
+
+
+def _horizon_auctions(experiment: Experiment, pieces: list[StratumPiece], n_days: int) -> int:
+    """Auctions at the planned last look: planned days x the mean auctions of the days used so far."""
+    return max(1, round(planned_days(experiment) * sum(p.n_auctions for p in pieces) / n_days))
 
 
 def estimate_partition(
@@ -343,12 +351,11 @@ def estimate_partition(
     """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
     Each staged shard is read, validated and estimated alone
-    (:func:`counterbid.readers.shards.pieces_by_shard`), keeping only its stratum pieces. With a
-    Spark session (``spark``, the Spark engine) Spark reads the day's partition of the lake itself,
-    splits it into the shards the load step staged and estimates them in parallel
-    (:func:`counterbid.readers.spark_shards.lake_partition_pieces_on_spark`): the same pieces; the
-    rest of the step is the same code. The day's
-    rows combine the day's pieces (:func:`counterbid.estimators.pieces.combine_pieces`); the
+    (:class:`counterbid.readers.engines.LocalEngine`), keeping only its stratum pieces. With a
+    Spark session (``spark``, :class:`counterbid.readers.engines.SparkEngine`) Spark reads the
+    day's partition of the lake itself, splits it into the shards the load step staged and
+    estimates them in parallel: the same pieces; the rest of the step is the same code. The day's
+    rows combine the day's pieces (:func:`counterbid.estimators.combine_pieces`); the
     experiment-to-date rows combine the stored pieces of the earlier days in the analysis window
     (:func:`counterbid.estimators.window.analysis_window`: by default without the days whose
     warm-up or drift check failed, and the spec's ``burn_in_days`` and ``exclude_days``) with
@@ -369,8 +376,7 @@ def estimate_partition(
         Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
         logged and returned to XCom).
     """
-    if spark is not None and lake_root in (None, ""):
-        raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
+    engine = _engine(spark, lake_root)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
     failed_today = _failed_today(staged)
@@ -387,18 +393,12 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    staged.require(staged.day, step="load")
-    if spark is None:
-        shard_list = [(k, staged.shard(k)) for k in staged.shards()]
-        found = pieces_by_shard(shard_list, experiment, cluster=cluster, day=ds, source=str(staged.day))
-        n_day_shards = len(shard_list)
-    else:
-        found, n_day_shards = _pieces_on_spark(spark, lake_root, staged, experiment=experiment, ds=ds, cluster=cluster)
+    found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
     pieces = found.pieces
-    day_table = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                               n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
-    if day_table.attrs.get("cluster") == "auction":  # bidder sums not used: not stored either
-        pieces = [replace(p, bidder_ids=None, bidder_sums=None, _bidder_codes=None, _bidder_space=None) for p in pieces]
+    day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
+                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
+    if day_result.cluster == "auction":  # bidder sums not used: not stored either
+        pieces = [p.without_bidder_sums() for p in pieces]
     frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
     for table, frame in frames.items():
         write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
@@ -412,10 +412,9 @@ def estimate_partition(
     stored = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
     to_date_pieces = _pieces_of_rows(stored) + (pieces if ds in window.used else [])
 
-    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": n_day_shards,
-               "engine": "local" if spark is None else "spark",
-               "days_used": window.days_used, "days_left_out": window.days_left_out}
-    tables = {"day": day_table}
+    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": found.shards,
+               "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out}
+    results: dict[str, ArmEstimates] = {"day": day_result}
     if to_date_pieces:
         to_date_cluster = cluster
         if cluster == "bidder" and any(p.bidder_sums is None for p in to_date_pieces):
@@ -423,11 +422,12 @@ def estimate_partition(
             # the days can only be combined by auction; the rows say so in their `cluster` column
             log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
             to_date_cluster = "auction"
-        tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
-                                           cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
-    else:  # no day of the window is used yet: rows without numbers, saying why (warming_up, ...)
-        tables["to_date"] = _pending_rows(day_table, pending_status(window))
-    for span, table in tables.items():
+        results["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
+                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
+        horizon = _horizon_auctions(experiment, to_date_pieces, len(window.used))
+    tables = {}
+    for span, result in results.items():
+        table = result.to_frame()
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
@@ -436,15 +436,22 @@ def estimate_partition(
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
             table["n_days_left_out"] = len(window.left_out)
-        with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
-        table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
+        # status flags (a failed check's own flag, e.g. heterogeneous_auctions), level and clustering the run used
+        with_stored_columns(table, result, check_status=status, flags=check_flags(failed_today))
+        if span == "to_date":
+            with_anytime_columns(table, result, horizon_auctions=horizon)
+        table["method_version"] = result.method_version
         table["run_id"] = run_id
         table["computed_at"] = computed_at
-        summary[f"{span}_bids"] = int(table.attrs["n_bids"])
+        tables[span] = table
+        summary[f"{span}_bids"] = result.n_bids
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
-        # XCom is JSON: a warm-up day's to-date rows have no number (None, not NaN)
-        summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) if pd.notna(v) else None for k, v in rev.items()}
-    write_parquet(pa.Table.from_pandas(day_table, preserve_index=False), staged.estimates_day)
+        summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
+    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
+        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
+                                                                              flags=check_flags(failed_today)))
+        summary["to_date_status"] = pending_status(window)
+    write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
     to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
     if not window.used:  # first_ds is all null: keep its type a date for both sinks
         to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
@@ -454,19 +461,25 @@ def estimate_partition(
     return summary
 
 
-def _pending_rows(day_table: pd.DataFrame, status: str) -> pd.DataFrame:
-    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) pairs, no numbers.
+def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:
+    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) rows, no numbers.
 
-    Estimate, standard error and interval are null, counts 0, ``status`` says why (``warming_up``, ...);
-    the level and clustering are the run's, so the views and the report read them like any other rows.
+    Estimate, standard error, interval and anytime bounds are null, counts 0, ``first_ds`` null,
+    ``status`` says why (``warming_up``, ...); level, clustering, rule and floor are the day's, so
+    the views and the report read them like any other rows.
     """
-    rows = day_table[["arm", "metric"]].copy()
-    for column in ("estimate", "std_error", "ci_low", "ci_high"):
+    rows = day.copy()
+    for column in ("estimate", "std_error", "ci_low", "ci_high", "anytime_low", "anytime_high"):
         rows[column] = float("nan")
     rows["n_auctions"] = 0
     rows["n_bids"] = 0
     rows["status"] = status
-    rows.attrs = {**day_table.attrs, "n_bids": 0, "n_auctions": 0}
+    rows.insert(2, "first_ds", None)
+    rows["days_used"] = window.days_used
+    rows["days_left_out"] = window.days_left_out
+    rows["n_days_used"] = 0
+    rows["n_days_left_out"] = len(window.left_out)
+    rows["anytime_horizon_auctions"] = pd.array([None] * len(rows), dtype="Int64")
     return rows
 
 

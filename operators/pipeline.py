@@ -16,7 +16,7 @@ from airflow.sdk import Asset, BaseOperator
 from airflow.sdk.exceptions import AirflowFailException
 
 from counterbid.estimators import CheckResult, load_experiment, parse_day
-from counterbid.estimators.arms import CLUSTERS
+from counterbid.estimators import CLUSTERS
 from counterbid.estimators.errors import InputError
 from counterbid.readers.shards import max_bids_per_shard as max_bids_setting
 from counterbid.sql import validate_identifier
@@ -114,7 +114,7 @@ class LoadPartitionOperator(_PartitionOperator):
     max_bids_per_shard : int or str, optional
         A day with more bids is split into ``ceil(bids / max)`` shards by the stable hash of the
         auction id (default: ``$COUNTERBID_MAX_BIDS_PER_SHARD``, else
-        :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`). Templated; an empty rendered
+        :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`). Templated; an empty rendered
         value means the default.
     """
 
@@ -195,7 +195,7 @@ class EstimateArmsOperator(_PartitionOperator):
         Level of the intervals, in (0, 1). Templated (e.g. ``"{{ params.confidence_level }}"``);
         a rendered string is read as a number when the task runs.
     cluster : str
-        One of ``counterbid.estimators.arms.CLUSTERS``; default :data:`DEFAULT_CLUSTER`. Templated.
+        One of ``counterbid.estimators.CLUSTERS``; default :data:`DEFAULT_CLUSTER`. Templated.
     """
 
     template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "confidence_level", "cluster")

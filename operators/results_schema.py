@@ -122,9 +122,13 @@ MIGRATIONS = (
                   Statement("results_create_stratum_piece_bidder_sums"),
                   Statement("results_create_bid_quantiles"),
               )),
-    Migration(3, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
+    Migration(3, "experiment-to-date rows carry anytime-valid bounds (valid at every daily look) and the auctions "
+                 "they are tuned for",
+              (Statement("results_v3_add_anytime_low"), Statement("results_v3_add_anytime_high"),
+               Statement("results_v3_add_anytime_horizon_auctions"))),
+    Migration(4, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
                  "excluded days) the rows hold no estimate and a status saying why; first_ds null, n_days_used 0",
-              _rebuild(3, "arm_estimates_to_date")),
+              _rebuild(4, "arm_estimates_to_date")),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

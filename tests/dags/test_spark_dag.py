@@ -24,7 +24,7 @@ import yaml
 from counterbid.cli.backfill import DAG_ID, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import shard_of
+from counterbid.estimators import shard_of
 
 from .conftest import START
 

@@ -40,7 +40,7 @@ def _checks(bids, **kw):
 def _revenue(bids):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)
-        out = estimate_arms(bids, EXP)
+        out = estimate_arms(bids, EXP).to_frame()
     rev = out[out["metric"] == "revenue_per_auction"].set_index("arm")
     return rev["estimate"], rev["status"]
 

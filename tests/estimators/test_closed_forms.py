@@ -91,7 +91,7 @@ def test_estimator_on_exact_grid_uniform(n, shares):
     exp = experiment([("one", shares[0], [1.0]), ("two", shares[1], [1.0, 1.0])])
     mix = mixture_rule([allocation_rule([1.0], n), allocation_rule([1.0, 1.0], n)], shares)
     bid_of_q = lambda q: q - mix.integral(q) / mix.value(q)  # noqa: E731
-    out = estimate_arms(grid_bids(bid_of_q, n, 20000, exp), exp).set_index(["arm", "metric"])["estimate"]
+    out = estimate_arms(grid_bids(bid_of_q, n, 20000, exp), exp).table.set_index(["arm", "metric"])["estimate"]
     assert out["one", "revenue_per_auction"] == pytest.approx((n - 1) / (n + 1), abs=1e-6)
     assert out["two", "revenue_per_auction"] == pytest.approx(2 * (n - 2) / (n + 1), abs=1e-6)
     # Welfare has a boundary term in the top bid; on the midpoint grid the top bid sits 1/(2N)
@@ -114,7 +114,7 @@ def test_five_bidders_two_or_three_slots_every_mix_earns_one():
         bid_of_q = lambda q: q - mix.integral(q) / mix.value(q)  # noqa: E731
         # Identical top two slots in every arm: welfare is not identified (revenue is).
         with pytest.warns(EstimatorWarning, match="not identified"):
-            out = estimate_arms(grid_bids(bid_of_q, n, 20000, exp), exp).set_index(["arm", "metric"])["estimate"]
+            out = estimate_arms(grid_bids(bid_of_q, n, 20000, exp), exp).table.set_index(["arm", "metric"])["estimate"]
         assert out["two", "revenue_per_auction"] == pytest.approx(1.0, abs=1e-6)
         assert out["three", "revenue_per_auction"] == pytest.approx(1.0, abs=1e-6)
         # The realized per-arm average ranks three slots higher on the same bids: the arm that sells

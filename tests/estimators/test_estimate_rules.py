@@ -61,7 +61,7 @@ def test_one_slot_bids_are_values_and_revenue(payment_rule):
     exp = experiment(payment_rule, arms={"one": ([1.0], 1.0)})
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=n, n_auctions=20_000, rng=11, payment_rule=payment_rule)
     np.testing.assert_allclose(bids["bid"], bids["value"], atol=1e-9)
-    rev = revenue(estimate_arms(bids, exp)).loc["one"]
+    rev = revenue(estimate_arms(bids, exp).table).loc["one"]
     assert abs(rev["estimate"] - (n - 1) / (n + 1)) < 3 * rev["std_error"]
 
 
@@ -75,9 +75,9 @@ def test_one_slot_reserve_uniform(payment_rule, n, r):
     exp = experiment(payment_rule, floor=r, arms={"one": ([1.0], 1.0)})
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=n, n_auctions=30_000, rng=5, payment_rule=payment_rule, floor=r)
     out = estimate_arms(bids, exp)
-    rev = revenue(out).loc["one"]
+    rev = revenue(out.table).loc["one"]
     assert abs(rev["estimate"] - truth) < 3 * rev["std_error"]
-    assert out.attrs["payment_rule"] == payment_rule and out.attrs["floor"] == r
+    assert out.payment_rule == payment_rule and out.floor == r
 
 
 # --- several slots, three arms, every rule, floor and quality --------------------------------------
@@ -95,15 +95,15 @@ def test_three_arms_within_three_standard_errors(payment_rule, with_floor, with_
     bids = simulate_experiment(values, exp, n_bidders=n, n_auctions=20_000, rng=17, payment_rule=payment_rule,
                                floor=floor, quality=quality)
     out = estimate_arms(bids, exp)
-    rev = revenue(out)
+    rev = revenue(out.table)
     for arm, (w, _) in ARMS.items():
         truth = myerson_quad(values, w, n, floor)
         assert abs(rev.loc[arm, "estimate"] - truth) < 3 * rev.loc[arm, "std_error"], arm
     # The mixture identity: estimated mixture revenue = realized mixture revenue priced by the rule that ran.
-    realized = out.query("arm == '_mixture' and metric == 'realized_revenue_per_auction'").iloc[0]
+    realized = out.table.query("arm == '_mixture' and metric == 'realized_revenue_per_auction'").iloc[0]
     gap = rev.loc["_mixture", "estimate"] - realized["estimate"]
     assert abs(gap) < 3 * np.hypot(rev.loc["_mixture", "std_error"], realized["std_error"])
-    assert out.attrs["quality"] == with_quality
+    assert out.quality == with_quality
 
 
 def test_wrong_rule_is_far_off():
@@ -111,8 +111,8 @@ def test_wrong_rule_is_far_off():
     values = VALUES["beta"]
     exp = experiment("gsp")
     bids = simulate_experiment(values, exp, n_bidders=5, n_auctions=10_000, rng=3, payment_rule="gsp")
-    wrong = revenue(estimate_arms(bids, dataclasses.replace(exp, payment_rule="first_price")))
-    right = revenue(estimate_arms(bids, exp))
+    wrong = revenue(estimate_arms(bids, dataclasses.replace(exp, payment_rule="first_price")).table)
+    right = revenue(estimate_arms(bids, exp).table)
     truth = myerson_quad(values, ARMS["control"][0], 5)
     assert wrong.loc["control", "estimate"] > 1.15 * truth
     assert abs(right.loc["control", "estimate"] - truth) < 3 * right.loc["control", "std_error"]
@@ -135,7 +135,7 @@ def test_standard_error_matches_monte_carlo(payment_rule, with_floor):
     chunk = log["auction_id"].to_numpy() // size
     est, se = [], []
     for _, part in log.groupby(chunk, sort=False):
-        rev = revenue(estimate_arms(part, exp, cluster="auction"))
+        rev = revenue(estimate_arms(part, exp, cluster="auction").table)
         est.append(rev.loc[["control", "steep", "_mixture"], "estimate"].to_numpy())
         se.append(rev.loc[["control", "steep", "_mixture"], "std_error"].to_numpy())
     ratio = np.mean(se, axis=0) / np.std(est, axis=0, ddof=1)

@@ -77,7 +77,7 @@ def test_estimator_on_exact_grid_matches_quad(dist, n):
     q = (np.arange(total) + 0.5) / total
     bids = pd.DataFrame({"auction_id": np.arange(total) % (total // n), "bidder_id": np.arange(total),
                          "bid": equilibrium_bid_function(values, rule)(q), "arm": "control", "position": pd.NA})
-    out = estimate_arms(bids, exp).set_index(["arm", "metric"])["estimate"]
+    out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])["estimate"]
     for arm in ("control", "treat"):
         # log-normal bids have an unbounded derivative at q = 1 (v grows without bound), so the
         # midpoint grid converges more slowly there; 1e-5 relative is ~1000x below a day's SE.

@@ -44,7 +44,7 @@ def test_two_vs_three_slots_within_3_se(share):
     exp = two_vs_three_slots(share)
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=5, n_auctions=30_000, rng=11)
     with pytest.warns(EstimatorWarning, match="not identified"):  # identical top two slots: no welfare
-        out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+        out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     for arm in ("two", "three"):
         est, se = out.loc[(arm, "revenue_per_auction"), ["estimate", "std_error"]]
         assert abs(est - 1.0) < 3 * se, (arm, est, se)
@@ -71,7 +71,7 @@ def test_three_arms_lognormal_within_3_se(share):
     exp = parse_experiments(doc)["m"]
     values = st.lognorm(0.5, scale=0.8)
     bids = simulate_experiment(values, exp, n_bidders=6, n_auctions=40_000, rng=3)
-    out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+    out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     truth_rev = {a.name: expected_revenue_per_auction(values, a.position_weights, 6) for a in exp.arms}
     truth_wel = {a.name: expected_welfare_per_auction(values, a.position_weights, 6) for a in exp.arms}
     for arm in exp.arm_names:
@@ -91,8 +91,8 @@ def test_varying_number_of_bidders_strata():
     mix_n = {3: 0.5, 5: 0.3, 8: 0.2}
     bids = simulate_experiment(values, exp, n_bidders=mix_n, n_auctions=40_000, rng=5)
     out = estimate_arms(bids, exp)
-    assert set(out.attrs["strata"]) == {3, 5, 8}
-    est = out.set_index(["arm", "metric"])
+    assert set(out.strata) == {3, 5, 8}
+    est = out.table.set_index(["arm", "metric"])
     for a in exp.arms:
         truth = expected_revenue_per_auction(values, a.position_weights, mix_n)
         e, se = est.loc[(a.name, "revenue_per_auction"), ["estimate", "std_error"]]
@@ -104,8 +104,8 @@ def test_single_bidder_auctions_are_excluded_and_counted():
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders={1: 0.2, 4: 0.8}, n_auctions=5000, rng=2)
     singles = int((bids.groupby("auction_id").size() == 1).sum())
     out = estimate_arms(bids, exp)
-    assert singles > 0 and out.attrs["n_excluded_auctions"] == singles
-    assert out.attrs["n_auctions"] == bids["auction_id"].nunique() - singles
+    assert singles > 0 and out.n_excluded_auctions == singles
+    assert out.n_auctions == bids["auction_id"].nunique() - singles
 
 
 def test_welfare_not_identified_warns_nan():
@@ -117,7 +117,7 @@ def test_welfare_not_identified_warns_nan():
     exp = parse_experiments(doc)["w"]
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=3000, rng=1)
     with pytest.warns(EstimatorWarning, match="not identified"):
-        out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+        out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     assert np.isnan(out.loc[("a", "welfare_per_auction"), "estimate"])
     assert np.isfinite(out.loc[("a", "revenue_per_auction"), "estimate"])
 
@@ -127,10 +127,10 @@ def test_confidence_level_and_cluster_options():
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=4000, rng=9)
     a = estimate_arms(bids, exp, confidence_level=0.90, cluster="auction")
     b = estimate_arms(bids, exp, confidence_level=0.99, cluster="auction")
-    with_interval = a["std_error"].notna()  # welfare has none (documented in estimate_arms)
-    assert with_interval.sum() == len(a) - 2 and (a.loc[~with_interval, "metric"] == "welfare_per_auction").all()
-    assert ((a.ci_high - a.ci_low) < (b.ci_high - b.ci_low))[with_interval].all()
-    assert a.attrs["cluster"] == "auction"
+    with_interval = a.table["std_error"].notna()  # welfare has none (documented in estimate_arms)
+    assert with_interval.sum() == len(a.table) - 2 and (a.table.loc[~with_interval, "metric"] == "welfare_per_auction").all()
+    assert ((a.table.ci_high - a.table.ci_low) < (b.table.ci_high - b.table.ci_low))[with_interval].all()
+    assert a.cluster == "auction"
     c = estimate_arms(bids, exp, cluster="bidder")
-    np.testing.assert_allclose(c.estimate, a.estimate)
-    assert c.attrs["cluster"] == "bidder"
+    np.testing.assert_allclose(c.table.estimate, a.table.estimate)
+    assert c.cluster == "bidder"

@@ -28,11 +28,11 @@ def monte_carlo(values, cluster, seed, days=200):
     for _ in range(days):
         bids = simulate_experiment(values, exp, n_bidders=5, n_auctions=3000, rng=rng, bidder_pool=600)
         out = estimate_arms(bids, exp, cluster=cluster)
-        estimates.append(out["estimate"].to_numpy())
-        ses.append(out["std_error"].to_numpy())
-    keys = list(zip(out["arm"], out["metric"]))
-    welfare = (out["metric"] == "welfare_per_auction").to_numpy()
-    assert np.isnan(np.asarray(ses)[:, welfare]).all() and (out.loc[welfare, "status"] == "no_interval").all()
+        estimates.append(out.table["estimate"].to_numpy())
+        ses.append(out.table["std_error"].to_numpy())
+    keys = list(zip(out.table["arm"], out.table["metric"]))
+    welfare = (out.table["metric"] == "welfare_per_auction").to_numpy()
+    assert np.isnan(np.asarray(ses)[:, welfare]).all() and (out.table.loc[welfare, "status"] == "no_interval").all()
     ratio = np.mean(ses, axis=0) / np.std(estimates, axis=0, ddof=1)
     return {k: r for k, r, w in zip(keys, ratio, welfare) if not w}
 

@@ -43,7 +43,7 @@ def test_fast_simulator_matches_simulate_experiment():
 def test_fast_estimator_equals_estimate_arms():
     exp = study_experiment(0.1)
     bids = simulate_experiment(VALUE_DISTRIBUTIONS["beta"], exp, n_bidders=4, n_auctions=3000, rng=4)
-    full = estimate_arms(bids, exp, cluster="auction").query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm")
+    full = estimate_arms(bids, exp, cluster="auction").table.query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm")
     data = prepare_bids(bids, exp)
     rules = [allocation_rule(a.weights_for(4), 4) for a in exp.arms]
     res = ordstat_revenue(data, rules, mixture_rule(rules, exp.shares))
@@ -137,9 +137,9 @@ def test_fast_estimator_equals_estimate_arms_for_rule_and_floor(payment_rule, fl
     if floor is not None:
         below = np.count_nonzero(data.bid < floor) / data.bid.size
         assert 0.2 < below < 0.4  # the floor is active: q* = F(0.6) ~ 0.28 under the log-normal values
-    full = (estimate_arms(data, exp, cluster="auction")
-            .query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm"))
-    assert full.attrs["payment_rule"] == payment_rule
+    result = estimate_arms(data, exp, cluster="auction")
+    full = result.table.query("metric == 'revenue_per_auction' and arm != '_mixture'").set_index("arm")
+    assert result.payment_rule == payment_rule
     rules = [allocation_rule(a.weights_for(4), 4) for a in exp.arms]
     res = ordstat_revenue(data, rules, mixture_rule(rules, exp.shares), payment_rule=payment_rule, floor=floor)
     np.testing.assert_allclose(res.estimate, full.loc[list(exp.arm_names), "estimate"], rtol=1e-10)

@@ -74,7 +74,7 @@ def test_agrees_with_estimator_and_truth_at_large_n(values):
     exp = experiment([("control", 0.5, CONTROL), ("treated", 0.5, TREATED)])
     bids = simulate_experiment(values, exp, n_bidders=5, n_auctions=20_000, rng=5)
     two = two_step_revenue(bids, exp).set_index("arm")["estimate"]
-    est = estimate_arms(bids, exp).query("metric == 'revenue_per_auction'").set_index("arm")["estimate"]
+    est = estimate_arms(bids, exp).table.query("metric == 'revenue_per_auction'").set_index("arm")["estimate"]
     for arm, w in (("control", CONTROL), ("treated", TREATED)):
         truth = expected_revenue_per_auction(values, w, 5)
         assert two[arm] == pytest.approx(truth, rel=0.01)

@@ -18,7 +18,7 @@ from counterbid.estimators import (
     CheckResult, estimate_arms, expected_revenue_per_auction, parse_day, parse_experiments, worst_failure,
 )
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results
 from counterbid.operators.hooks import ResultsHook
@@ -144,14 +144,14 @@ def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, expe
     want = estimate_arms(_lake_day(lake / "bids", day), experiment)
     got = pq.read_table(staged.estimates_day).to_pandas()
     # ``status`` is the data checks' here (the estimator's own flags are merged in elsewhere)
-    numbers = [c for c in want.columns if c != "status"]
-    pd.testing.assert_frame_equal(got[numbers], want[numbers], check_exact=True)
+    numbers = [c for c in want.table.columns if c != "status"]
+    pd.testing.assert_frame_equal(got[numbers], want.table[numbers], check_exact=True)
     welfare = got["metric"] == "welfare_per_auction"  # published without an interval: the estimator's flag
     assert set(got.loc[~welfare, "status"]) == {"ok"} and set(got.loc[welfare, "status"]) == {"no_interval"}
     assert set(got["run_id"]) == {"t1"}
     counts = partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage", cleanup=False)
     assert {k: counts[k] for k in ("arm_estimates", "arm_estimates_to_date", "position_weights")} == \
-        {"arm_estimates": len(want), "arm_estimates_to_date": len(want), "position_weights": 6}
+        {"arm_estimates": len(want.table), "arm_estimates_to_date": len(want.table), "position_weights": 6}
     assert counts["stratum_pieces"] == 1  # one stratum (4 bidders), one shard
     assert counts["bid_quantiles"] == 0  # the validate step did not run here: no summary to store
     first = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
@@ -301,4 +301,23 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
     # the interval really is the bidder-clustered 97.5 % one
     want = estimate_arms(_lake_day(lake / "bids", day), experiment, confidence_level=0.975, cluster="bidder")
     got = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}).set_index(["arm", "metric"])
-    np.testing.assert_array_equal(got.loc[list(zip(want["arm"], want["metric"])), "ci_high"].to_numpy(), want["ci_high"].to_numpy())
+    np.testing.assert_array_equal(got.loc[list(zip(want.table["arm"], want.table["metric"])), "ci_high"].to_numpy(), want.table["ci_high"].to_numpy())
+
+
+def test_rows_of_a_day_whose_bids_move_together_carry_heterogeneous_auctions(hook, lake, experiment, tmp_path):
+    """A failed auction_dependence warning adds its own flag to the day's and the to-date rows."""
+    from counterbid.estimators import CheckResult
+
+    day = START + dt.timedelta(days=1)
+    _stage(hook, lake, experiment, tmp_path, day)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
+    dependent = CheckResult(check="auction_dependence", severity="warning", passed=False, observed=0.05,
+                            threshold=0.02, details={})
+    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), dependent]) == "warning"
+    partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
+    partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
+    for name in ("report_daily_estimates", "report_to_date_estimates"):
+        rows = hook.fetch_df(name, {"experiment_id": "tiles"})
+        welfare = rows["metric"] == "welfare_per_auction"
+        assert set(rows.loc[welfare, "status"]) == {"heterogeneous_auctions,no_interval,warning"}
+        assert set(rows.loc[~welfare, "status"]) == {"heterogeneous_auctions,warning"}

@@ -11,7 +11,7 @@ import scipy.stats as st
 
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import expected_revenue_per_auction, parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import combine_pieces, stratum_pieces
+from counterbid.estimators import combine_pieces, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.staging import StagedPartition
@@ -46,7 +46,7 @@ def test_pieces_round_trip_through_the_results_tables(tmp_path):
         assert a.equals(b), a.key
     # the combination of the stored pieces is the combination of the computed ones; the in-memory
     # pieces match bidders by shared codes, the stored ones by id text: the sums may differ in the last bit
-    want, got = combine_pieces(pieces, exp, cluster="bidder"), combine_pieces(back, exp, cluster="bidder")
+    want, got = combine_pieces(pieces, exp, cluster="bidder").table, combine_pieces(back, exp, cluster="bidder").table
     np.testing.assert_allclose(got["std_error"].to_numpy(float), want["std_error"].to_numpy(float), rtol=1e-14)
     np.testing.assert_array_equal(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float))
     assert hook.stored_piece_days(experiment_id="tiles", ds=START + dt.timedelta(days=1)) == [START]
@@ -151,11 +151,11 @@ def test_the_default_window_leaves_warm_up_days_out_and_lands_on_the_truth(tmp_p
     assert set(default["days_used"]) == {f"{days[2]}..{days[5]}"}
     stored = hook.stored_piece_frames(experiment_id="tiles", days=days, tables=list(partition.PIECE_TABLES.values()))
     included = combine_pieces(partition._pieces_of_rows(stored), exp, cluster="auto")
-    included = included[included["metric"] == "revenue_per_auction"].set_index("arm")
+    included = included.table[included.table["metric"] == "revenue_per_auction"].set_index("arm")
     misses = {}
     for arm in exp.arms:
         truth = expected_revenue_per_auction(values, arm.position_weights, 4)
-        for name, table in (("default", default), ("warm-up included", included)):
+        for name, table in (("default", default), ("warm-up included", included.table)):
             misses[(name, arm.name)] = (table.loc[arm.name, "estimate"] - truth) / table.loc[arm.name, "std_error"]
     print("to-date revenue per auction minus truth, in SE:", {k: round(v, 2) for k, v in misses.items()})
     assert all(abs(misses[("default", a.name)]) < 3 for a in exp.arms), misses

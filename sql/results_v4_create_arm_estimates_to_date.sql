@@ -1,8 +1,8 @@
--- Schema version 3, step 1 of 4 for arm_estimates_to_date: the same table, except that an
+-- Schema version 4, step 1 of 4 for arm_estimates_to_date: the same table, except that an
 -- (experiment, day) whose window has no day yet (warm-up, burn-in, excluded days) gets rows too:
 -- estimate null, status naming why (warming_up, ...), first_ds null and n_days_used 0. Built beside
--- the version-2 table (DuckDB cannot alter a check constraint in place), filled by
--- results_v3_copy_arm_estimates_to_date, then swapped in.
+-- the version-3 table (DuckDB cannot alter a check constraint in place), filled by
+-- results_v4_copy_arm_estimates_to_date, then swapped in.
 -- Experiment-to-date estimates: the stored stratum pieces of the days in the analysis window
 -- through ds, combined by auction counts (the auction-weighted average over days of each day's
 -- counterfactual; no bids re-read). One set of rows per (experiment, ds), from the first day on; first_ds is the
@@ -36,5 +36,9 @@ create table {{ schema }}.arm_estimates_to_date_next (
     days_left_out varchar not null,
     n_days_used integer not null check (n_days_used >= 0),
     n_days_left_out integer not null check (n_days_left_out >= 0),
+    -- anytime-valid bounds (version 3): null where the row has no standard error, and on rows without numbers
+    anytime_low double,
+    anytime_high double,
+    anytime_horizon_auctions bigint,
     primary key (experiment_id, ds, arm, metric)
 )
