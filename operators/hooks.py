@@ -24,6 +24,7 @@ from airflow.sdk import BaseHook
 from counterbid.estimators.errors import InputError
 from counterbid.sql import render_sql, validate_identifier
 
+from .extras import require_extra
 from .results_schema import (
     POSTGRES_SCHEMES, RESULTS_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget, check_readable,
     migrate, results_target, statement_for,
@@ -164,6 +165,7 @@ class ResultsHook(BaseHook):
             con.close()
 
     def _postgres_connection(self):
+        require_extra("postgres", needed_by=f"results database {self.target.shown}")  # one line, not an ImportError
         from airflow.providers.postgres.hooks.postgres import PostgresHook
 
         if self._target is not None and self._target.location.startswith(tuple(f"{s}://" for s in POSTGRES_SCHEMES)):

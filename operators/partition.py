@@ -37,7 +37,7 @@ from counterbid.estimators import (
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.sequential import planned_days
-from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
+from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
 from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedDay
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import write_shards
@@ -46,7 +46,7 @@ from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import check_flags, with_anytime_columns, with_stored_columns
+from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 
 __all__ = [
     "MissingPartitionError",
@@ -431,7 +431,7 @@ def estimate_partition(
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", window.used[0])
+            table.insert(2, "first_ds", window.used[0] if window.used else None)
             table["days_used"] = window.days_used
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
@@ -447,13 +447,40 @@ def estimate_partition(
         summary[f"{span}_bids"] = result.n_bids
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
+    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
+        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
+                                                                              flags=check_flags(failed_today)))
+        summary["to_date_status"] = pending_status(window)
     write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
-    if "to_date" in tables:
-        write_parquet(pa.Table.from_pandas(tables["to_date"], preserve_index=False), staged.estimates_to_date)
-    else:  # every day so far is left out: no experiment-to-date rows for this day
-        staged.estimates_to_date.unlink(missing_ok=True)
+    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
+    if not window.used:  # first_ds is all null: keep its type a date for both sinks
+        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
+                                     pa.nulls(to_date.num_rows, type=pa.date32()))
+    write_parquet(to_date, staged.estimates_to_date)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
+
+
+def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:
+    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) rows, no numbers.
+
+    Estimate, standard error, interval and anytime bounds are null, counts 0, ``first_ds`` null,
+    ``status`` says why (``warming_up``, ...); level, clustering, rule and floor are the day's, so
+    the views and the report read them like any other rows.
+    """
+    rows = day.copy()
+    for column in ("estimate", "std_error", "ci_low", "ci_high", "anytime_low", "anytime_high"):
+        rows[column] = float("nan")
+    rows["n_auctions"] = 0
+    rows["n_bids"] = 0
+    rows["status"] = status
+    rows.insert(2, "first_ds", None)
+    rows["days_used"] = window.days_used
+    rows["days_left_out"] = window.days_left_out
+    rows["n_days_used"] = 0
+    rows["n_days_left_out"] = len(window.left_out)
+    rows["anytime_horizon_auctions"] = pd.array([None] * len(rows), dtype="Int64")
+    return rows
 
 
 def write_partition(
@@ -462,7 +489,7 @@ def write_partition(
     """Replace the (experiment, day)'s rows of every results table in one transaction.
 
     The day's estimates, its experiment-to-date estimates (none when every day so far is left
-    out of the window), position weights, stratum pieces and bid-quantile summary.
+    out of the window: rows without numbers saying why), position weights, stratum pieces and bid-quantile summary.
 
     Returns
     -------

@@ -373,7 +373,8 @@ def test_broken_contract_raises_input_error():
 
 # -- false alarms and detection over many seeded datasets (slow) ------------------------------------
 
-FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift", "auction_dependence")
+FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift", "auction_dependence", "outlying_bids",
+                      "dominant_bids")
 
 
 def false_alarm_rates(n_datasets: int, n_auctions: int) -> dict[str, float]:

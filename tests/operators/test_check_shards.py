@@ -97,7 +97,7 @@ def test_counting_checks_are_exact_and_distribution_checks_read_shard_zero_only(
         stored = read_check_results(con, experiment_id="cards", ds=DAY).set_index("check")
     assert '"sample": {' in stored.loc["shading", "details"] and '"sample"' not in stored.loc["sample_ratio", "details"]
     status = hook.fetch_df("report_day_check_status", {"experiment_id": "cards"})  # what the report's day column shows
-    assert status["n_on_sample"].tolist() == [len(DISTRIBUTION)]
+    assert status["n_on_sample"].tolist() == [len(DISTRIBUTION) + 2]  # and outlying_bids, dominant_bids (fences from the sample)
 
 
 def test_drift_on_shard_zero_against_trailing_summaries(hook, lake, experiment, tmp_path):

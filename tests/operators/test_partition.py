@@ -204,8 +204,9 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     plain = weights[weights["arm"] == "plain"]
     assert set(plain["source"]) == {"measured"} and plain["first_click_ds"].iloc[0] == START
     assert plain["weight"].to_numpy() == pytest.approx([0.4, 0.2, 0.1], abs=0.01)
-    # the day's rows (the experiment-to-date has none: both days are inside the default warm-up)
-    assert not staged.estimates_to_date.exists()
+    # the day's rows; the experiment-to-date rows hold no number: both days are inside the default warm-up
+    pending = pq.read_table(staged.estimates_to_date).to_pandas()
+    assert set(pending["status"]) == {"warming_up,warning"} and pending["estimate"].isna().all()  # warm-up warned
     est = pq.read_table(staged.estimates_day).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
     want = expected_revenue_per_auction(values, [0.4, 0.2, 0.1], 4)
     assert abs(est.loc["plain", "estimate"] - want) < 4 * est.loc["plain", "std_error"] + 0.01 * want

@@ -126,13 +126,17 @@ def test_report_says_the_level_clustering_and_status_each_interval_used(results)
     assert "<th>realized per-arm average (97.5 %, by auction)</th>" in text
     assert "Intervals: 97.5 %, clustered by bidder (they speak for a new draw of bidders as well as of auctions)" in text
     assert "clustered by auction, for\nthese same bidders in new auctions" in text  # the page says what both mean
-    # per day: the interval and the status each day's rows carry
+    # per day: the interval and the flags that need attention, by metric (welfare's no_interval is by design)
+    few = "few_bids (revenue / auction, welfare / auction, lift vs control)"
     by_day = dict(zip([str(START + dt.timedelta(days=k)) for k in range(3)],
-                      [("no_interval", "95 %, clustered by auction"), ("few_bids, no_interval", "97.5 %, clustered by bidder"),
-                       ("no_interval, warning", "97.5 %, clustered by bidder")]))
+                      [("ok", "95 %, clustered by auction"), (few, "97.5 %, clustered by bidder"),
+                       ("warning", "97.5 %, clustered by bidder")]))
     for day, (status, how) in by_day.items():
         assert f"<th>{day}</th>\n      <td>{status}</td>\n      <td>{how}</td>" in text, day
-    assert "The estimator flagged rows (few_bids, no_interval)" in text
+    assert "no_interval" not in text.split("<h2>")[1]  # only the assumptions above explain it
+    # the banner names the flagged day and metrics, and only that day
+    assert ("The estimator flagged rows that need attention (2026-03-03: few_bids on revenue / auction, welfare / "
+            "auction, lift vs control)") in text
 
 
 def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path, saved_figures):
@@ -177,8 +181,9 @@ def test_cumulative_table_text(results):
     _, hook = results
     text = format_cumulative(cumulative_table(hook))
     # the second day's 20 auctions are below the estimator's minimum stratum: its flag reaches the to-date rows
-    assert text.startswith(f"tiles: 2026-03-03 .. 2026-03-04, {1500 + SMALL_DAY_AUCTIONS} auctions, status few_bids, "
-                           "no_interval, warning; intervals 97.5 %, clustered by bidder\n"
+    assert text.startswith(f"tiles: 2026-03-03 .. 2026-03-04, {1500 + SMALL_DAY_AUCTIONS} auctions, status few_bids "
+                           "(revenue / auction, welfare / auction, lift vs control), warning; intervals 97.5 %, "
+                           "clustered by bidder\n"
                            "days used (2): 2026-03-03..2026-03-04; left out (1): 2026-03-02 (excluded)\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
@@ -192,6 +197,9 @@ def test_cumulative_table_text(results):
 def test_to_date_rows_carry_anytime_bounds_wider_than_the_fixed_interval(results):
     _, hook = results
     rows = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
+    pending = rows[rows["n_days_used"] == 0]  # day 1 is excluded by the spec: rows without numbers or bounds
+    assert set(pending["status"]) == {"days_excluded"} and pending["anytime_low"].isna().all()
+    rows = rows[rows["n_days_used"] > 0]
     with_bounds = rows[rows["metric"] != "welfare_per_auction"]
     assert with_bounds["anytime_low"].notna().all() and rows.loc[rows["metric"] == "welfare_per_auction", "anytime_low"].isna().all()
     # 28 planned days (no `end` in the spec) x the mean auctions per day used so far: one day of 20, then 1520 in 2
@@ -208,6 +216,30 @@ def test_to_date_rows_carry_anytime_bounds_wider_than_the_fixed_interval(results
                                (m * with_bounds["std_error"])[late], rtol=1e-12)
     assert ((with_bounds["anytime_high"] - with_bounds["anytime_low"])
             > (with_bounds["ci_high"] - with_bounds["ci_low"]) * 1.5).all()
+
+
+def _copy_days(source: ResultsHook, target: ResultsHook, days) -> None:
+    """Replace ``days`` of ``target`` with ``source``'s stored rows (the writer's own replace)."""
+    with source.connect(read_only=True) as con:
+        for day in days:
+            tables = {dest: con.execute(f"select * from {table} where ds = ?", [day]).to_arrow_table()
+                      for dest, table in (("arm_estimates", "arm_estimates"), ("arm_estimates_to_date", "arm_estimates_to_date"),
+                                          ("position_weights", "arm_position_weights"))}
+            target.replace_partition(experiment_id="tiles", ds=day, tables=tables)
+
+
+def test_a_clean_run_shows_no_banner_and_status_ok(results, tmp_path):
+    # the first day alone: no check warned, no estimator flag but welfare's by-design no_interval
+    _, hook = results
+    clean = ResultsHook(database=tmp_path / "clean.duckdb")
+    _copy_days(hook, clean, [START])
+    text = write_report(clean, tmp_path / "out").read_text()
+    section = text.split("<h2>")[1]
+    assert "class='note'" not in section and "flagged" not in section
+    assert f"<th>{START}</th>\n      <td>ok</td>" in section
+    # its to-date rows hold no number yet (the spec excludes the day) and say so instead of a table of n/a
+    assert f"Experiment to date, to {START}: no day used yet (status days_excluded)" in section
+    assert "left out (1): 2026-03-02 (excluded)" in section
 
 
 @pytest.mark.postgres

@@ -85,7 +85,10 @@ def test_drift_reads_the_stored_summaries_and_the_window_follows_the_spec(lake, 
     assert len(quantiles) == 3 * 257 and set(quantiles["n_bids"]) == {6000}
     # the window: days 1-2 burn-in, day 4 excluded; day 3 alone is combined
     to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
-    assert sorted(set(to_date["ds"].dt.date)) == [DAYS[2], DAYS[3]]
+    # to-date rows from day one: the burn-in days' hold no number yet (status warming_up)
+    assert sorted(set(to_date["ds"].dt.date)) == DAYS[:4]
+    burn_in = to_date[to_date["ds"].dt.date < DAYS[2]]
+    assert {s.split(",")[0] for s in burn_in["status"]} == {"warming_up"} and burn_in["estimate"].isna().all()
     last = to_date[to_date["ds"].dt.date == DAYS[3]]
     assert set(last["days_used"]) == {str(DAYS[2])}
     assert set(last["days_left_out"]) == {f"{DAYS[0]}..{DAYS[1]} (burn_in),{DAYS[3]} (excluded)"}
