@@ -315,6 +315,21 @@ class ResultsHook(BaseHook):
             out[table] = None if rows is None or rows.empty else rows
         return out
 
+    def grant_reader(self, role: str):
+        """Create (if missing) the read-only role ``role`` for dashboards; PostgreSQL only.
+
+        Migrates the schema first, then :func:`counterbid.operators.reader_role.grant_reader`.
+        Returns its :class:`~counterbid.operators.reader_role.ReaderGrant`.
+        """
+        from .reader_role import grant_reader
+
+        if self.dialect != "postgres":
+            raise InputError(f"{self.where}: a DuckDB results file has no roles; dashboards open it read-only "
+                             "(duckdb.connect(path, read_only=True))")
+        with self.session() as s:
+            migrate(s)
+            return grant_reader(s, role)
+
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:
         """Store check outcomes with ``recorder(session, results, experiment_id=, ds=, run_id=, schema=)``."""
         def write():
