@@ -76,7 +76,7 @@ def test_four_concurrent_writers_contend_and_all_land(tmp_path):
     one process at a time allowed on the file, the three that do not open it first must be refused
     at least once (a slow writer only holds the lock longer). Only a writer descheduled for longer
     than another's whole transaction could slip into a gap unrefused; measured on the shared
-    2-core machine: exactly 3 of 4 refused in each of 15 runs (4 to 10 refusals each).
+    2-core machine: exactly 3 of 4 refused in each of 16 runs (3 to 10 refusals each).
     """
     db = tmp_path / "results.duckdb"
     gate = tmp_path / "gate"
