@@ -23,6 +23,7 @@ import pandas as pd
 from scipy import interpolate, special, stats
 
 from .allocation import allocation_rule, mixture_rule
+from .dependence import auction_dependence
 from .errors import InputError
 from .spec import Experiment, parse_day
 
@@ -30,11 +31,13 @@ __all__ = [
     "AuctionCounts",
     "CheckResult",
     "DEFAULT_CHECKS",
+    "DEPENDENCE_REMEDY",
     "InferredValues",
     "BID_QUANTILES",
     "SEVERITIES",
     "STATISTICAL_CHECKS",
     "auction_counts",
+    "auction_dependence_check",
     "bid_quantile_summary",
     "check_config",
     "drift_check",
@@ -131,6 +134,11 @@ DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
     "shading": {"severity": "warning", "min_ratio": 1.0, "max_ratio": 50.0, "max_outside_share": 0.05},
     # Two-sample Kolmogorov-Smirnov, today's bids vs the trailing days' (per stratum, Bonferroni).
     "drift": {"severity": "warning", "alpha": 1e-3, "trailing_days": 7, "min_bids": 200},
+    # Bids of one auction must be independent draws: the intra-auction correlation of normal scores
+    # of within-stratum bid ranks (estimators/dependence.py). Fail when its one-sided p < alpha and it
+    # exceeds min_correlation (implied revenue bias under 1 %); above error_correlation (2-5 % on
+    # a small arm) the failure is an error whatever `severity` says (docs/method.md, "Auctions that differ").
+    "auction_dependence": {"severity": "warning", "alpha": 1e-3, "min_correlation": 0.02, "error_correlation": 0.1},
     # Days since the experiment started or its shares changed; flagged while < days.
     "warmup": {"severity": "warning", "days": 3, "changed_on": []},
     # Great Expectations contract suite (counterbid.operators.contract).
@@ -145,6 +153,7 @@ STATISTICAL_CHECKS = (
     "monotone_values",
     "shading",
     "drift",
+    "auction_dependence",
     "warmup",
 )
 
@@ -945,6 +954,57 @@ def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[s
     return _result("drift", cfg, p >= cfg["alpha"], p, cfg["alpha"], by_bidders=tests)
 
 
+#: What the ``auction_dependence`` check's failure asks for (the spec keys that model auctions that differ).
+DEPENDENCE_REMEDY = ("declare segments (`segments:`) or scale covariates (`scale_covariates:`) in the experiment "
+                     "spec: the bids of one auction move together, so auctions differ in a way the spec does not model")
+
+
+def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                             source: str = "bids") -> CheckResult:
+    """Bids of one auction must be independent: intra-auction correlation of rank normal scores.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    config : mapping, optional
+        ``{"auction_dependence": {"alpha", "min_correlation", "error_correlation"}}``.
+    source : str
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the pooled correlation ``r`` (:func:`~counterbid.estimators.dependence.
+        auction_dependence`, strata by number of bidders), ``threshold`` is ``min_correlation``.
+        Fails when ``r`` minus its null mean exceeds ``min_correlation`` and its one-sided p-value
+        is below ``alpha``; the severity is ``error`` when it also exceeds ``error_correlation``.
+        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r`` and, on
+        failure, the remedy (:data:`DEPENDENCE_REMEDY`).
+
+    Notes
+    -----
+    Under the model the bids of one auction are independent draws from the stratum's bid
+    distribution; auctions pooled from segments that differ, or an auction-level factor scaling
+    every value, make them move together and bias every arm's estimate upwards (the spread
+    between auctions read as competition within one). The thresholds come from the bias that
+    correlation implied on simulated equilibrium logs (docs/method.md, "Auctions that differ: the
+    dependence check").
+    """
+    cfg = _config(config, experiment)["auction_dependence"]
+    data = _prepared(bids, experiment, source)
+    dep = auction_dependence(data.bid, data.auction, data.n_bidders)
+    per = {s.key: {"correlation": s.correlation, "standard_error": s.standard_error, "auctions": s.n_auctions}
+           for s in dep.strata}
+    excess = dep.excess
+    passed = not (dep.p_value < cfg["alpha"] and excess > cfg["min_correlation"])
+    if not passed and excess > cfg["error_correlation"]:
+        cfg = {**cfg, "severity": "error"}
+    extra = {} if passed else {"remedy": DEPENDENCE_REMEDY}
+    return _result("auction_dependence", cfg, passed, dep.correlation, cfg["min_correlation"], z=dep.z,
+                   p_value=dep.p_value, standard_error=dep.standard_error, null_mean=dep.null_mean,
+                   error_correlation=cfg["error_correlation"], by_bidders=per, **extra)
+
+
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
                        config: Mapping[str, Any] | None = None, source: str = "bids",
                        counts: AuctionCounts | None = None,
@@ -993,7 +1053,8 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     out += minimum_sample_checks(whole_day, experiment, config=cfg)
     fits, skipped = _inversions(data, experiment, cfg["monotone_values"])  # shared by both checks
     spread = [_monotone_values_result(fits, skipped, cfg["monotone_values"]), _shading_result(fits, skipped, cfg["shading"]),
-              drift_check(data, experiment, history, config=cfg, source=source)]
+              drift_check(data, experiment, history, config=cfg, source=source),
+              auction_dependence_check(data, experiment, config=cfg, source=source)]
     if sample is not None:  # the distribution checks ran on a sample of the day's auctions: say which
         note = _jsonable(dict(sample))
         spread = [replace(r, details={**r.details, "sample": note}) for r in spread]

@@ -25,6 +25,7 @@ from scipy import stats
 from .allocation import allocation_rule, mixture_rule
 from .arms import estimate_arms, prepare_bids
 from .errors import EstimatorWarning, InputError
+from .sequential import anytime_multiplier
 from .simulate import simulate_experiment
 from .spec import Experiment
 from .two_step import pseudo_values
@@ -63,6 +64,9 @@ class SharePlan:
         ``'assumed'`` (a value distribution given by the caller).
     pilot_scale : dict
         Per (arm, metric): pilot SE over simulated SE at the pilot's shares (empty when assumed).
+    anytime : bool
+        Half-widths are those of the anytime-valid bounds at the planned end (valid at every daily
+        look), not of the fixed interval.
     """
 
     table: pd.DataFrame
@@ -73,6 +77,7 @@ class SharePlan:
     confidence_level: float
     basis: str
     pilot_scale: Mapping[tuple[str, str], float]
+    anytime: bool = False
 
 
 def with_treated_share(experiment: Experiment, share: float) -> Experiment:
@@ -200,6 +205,7 @@ def plan_shares(
     calibration_auctions: int = 20_000,
     rng: np.random.Generator | int | None = 0,
     source: str = "bids",
+    anytime: bool = False,
 ) -> SharePlan:
     """Predict each arm's confidence-interval half-width after ``days`` days, for a range of shares.
 
@@ -228,6 +234,11 @@ def plan_shares(
         Seed of the calibration simulations (default 0: plans are reproducible).
     source : str
         Name of the pilot in error messages.
+    anytime : bool
+        Plan for the anytime-valid bounds of the experiment to date at the planned end (the
+        ``days x auctions_per_day`` auctions they are tuned for) instead of the fixed interval:
+        every half-width uses :func:`~.sequential.anytime_multiplier` at ratio 1 (3.035 standard
+        errors at 95 %) in place of ``z`` (1.960), so it is 1.55 times wider at 95 %.
 
     Returns
     -------
@@ -269,7 +280,10 @@ def plan_shares(
                  calibration_auctions)
     rng = np.random.default_rng(rng)
     total = int(days) * int(auctions_per_day)
-    z = float(stats.norm.ppf(0.5 + confidence_level / 2))
+    if not isinstance(anytime, bool):
+        raise InputError(f"`anytime` must be True or False; got {anytime!r}")
+    z = float(anytime_multiplier(1.0, confidence_level=confidence_level)) if anytime \
+        else float(stats.norm.ppf(0.5 + confidence_level / 2))
     m = int(calibration_auctions)
     scale: dict[tuple[str, str], float] = {}
     if bids is not None:
@@ -329,7 +343,7 @@ def plan_shares(
         recommended = float(ok.index.min()) if len(ok) else None
     return SharePlan(table=table, recommended_share=recommended, target_half_width=target_half_width,
                      target_metric=target_metric, n_auctions=total, confidence_level=confidence_level,
-                     basis=basis, pilot_scale=scale)
+                     basis=basis, pilot_scale=scale, anytime=anytime)
 
 
 def simulated_half_width(

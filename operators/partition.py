@@ -25,6 +25,7 @@ from counterbid.estimators.arms import METHOD_VERSION
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
+from counterbid.estimators.sequential import planned_days
 from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import pieces_by_shard, write_shards
@@ -34,7 +35,7 @@ from .hooks import ResultsHook
 from .lake_hook import LakeHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import with_stored_columns
+from .stored_rows import check_flags, with_anytime_columns, with_stored_columns
 
 __all__ = [
     "EARLIEST_DAY",
@@ -331,6 +332,11 @@ def _pieces_on_spark(spark, lake_root, staged: StagedPartition, *, experiment: E
     return found, shards
 
 
+def _horizon_auctions(experiment: Experiment, pieces: list[StratumPiece], n_days: int) -> int:
+    """Auctions at the planned last look: planned days x the mean auctions of the days used so far."""
+    return max(1, round(planned_days(experiment) * sum(p.n_auctions for p in pieces) / n_days))
+
+
 def estimate_partition(
     hook: ResultsHook,
     *,
@@ -428,6 +434,7 @@ def estimate_partition(
             to_date_cluster = "auction"
         tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
+        with_anytime_columns(tables["to_date"], horizon_auctions=_horizon_auctions(experiment, to_date_pieces, len(window.used)))
     for span, table in tables.items():
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
@@ -437,7 +444,8 @@ def estimate_partition(
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
             table["n_days_left_out"] = len(window.left_out)
-        with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
+        # status flags (a failed check's own flag, e.g. heterogeneous_auctions), level and clustering the run used
+        with_stored_columns(table, check_status=status, flags=check_flags(failed_today))
         table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
         table["run_id"] = run_id
         table["computed_at"] = computed_at

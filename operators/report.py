@@ -25,7 +25,8 @@ from counterbid.estimators.intervals import POPULATION, format_level  # noqa: E4
 from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
-    "ASSUMPTIONS", "MIXTURE_GAP_SE", "auction_caption", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "ANYTIME_NOTE", "ASSUMPTIONS", "MIXTURE_GAP_SE", "anytime_caption", "auction_caption", "cumulative_table", "day_status",
+    "format_cumulative", "interval_caption",
     "window_caption",
     "write_report",
 ]
@@ -67,6 +68,27 @@ _LABELS = {
     "realized_revenue_per_auction": "realized per-arm average",
     "revenue_lift_vs_control": "lift vs control",
 }
+
+
+#: Which experiment-to-date band to act on (docs/method.md, "Looking every day").
+ANYTIME_NOTE = ("Act on the anytime-valid bounds when the experiment to date is looked at day after day: they hold at "
+                "every look at once. The fixed interval holds only at a single look planned before the start, "
+                "at the planned end.")
+
+
+def _has_anytime(rows: pd.DataFrame) -> bool:
+    return "anytime_low" in rows.columns and rows["anytime_low"].notna().any()
+
+
+def anytime_caption(rows: pd.DataFrame) -> str:
+    """What the anytime-valid bounds of some to-date rows are tuned for, from the rows themselves."""
+    if not _has_anytime(rows):
+        return "anytime-valid bounds: not stored (rows written before schema version 3)"
+    with_bounds = rows[rows["anytime_low"].notna()]
+    horizon = int(with_bounds["anytime_horizon_auctions"].max())
+    levels = " / ".join(format_level(lv) for lv in dict.fromkeys(with_bounds["confidence_level"].astype(float)))
+    return (f"anytime-valid bounds ('anytime [low, high]'): {levels} for every daily look at once, same clustering, "
+            f"tightest at {horizon:,} auctions (the planned end)")
 
 
 def cumulative_table(hook: ResultsHook) -> pd.DataFrame:
@@ -116,9 +138,15 @@ def _wide(rows: pd.DataFrame) -> pd.DataFrame:
     for metric, m_rows in rows.groupby("metric", sort=False):
         how = "; ".join(f"{format_level(lv)}, by {cl}" for lv, cl in _how(m_rows))
         headers[_LABELS.get(metric, metric)] = f"{_LABELS.get(metric, metric)} ({how})"
+    anytime = _has_anytime(rows)
     for (arm, metric), r in rows.set_index(["arm", "metric"]).iterrows():
         pct = metric == "revenue_lift_vs_control"
-        out.setdefault(arm, {})[_LABELS.get(metric, metric)] = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
+        cell = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
+        if anytime and pd.notna(r["anytime_low"]) and pd.notna(r["anytime_high"]):
+            lo, hi = (f"{r['anytime_low']:+.2%}", f"{r['anytime_high']:+.2%}") if pct else \
+                (f"{r['anytime_low']:.4f}", f"{r['anytime_high']:.4f}")
+            cell += f" anytime [{lo}, {hi}]"
+        out.setdefault(arm, {})[_LABELS.get(metric, metric)] = cell
     frame = pd.DataFrame.from_dict(out, orient="index")
     cols = [c for c in _LABELS.values() if c in frame.columns]
     arms = [a for a in frame.index if a != MIXTURE_ARM] + ([MIXTURE_ARM] if MIXTURE_ARM in frame.index else [])
@@ -143,7 +171,10 @@ def format_cumulative(table: pd.DataFrame) -> str:
         n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
         head = (f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, "
                 f"status {day_status(rows['status'])}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
-        blocks.append(head + "\n" + window_caption(rows) + "\n" + _wide(rows).to_string())
+        lines = [head, window_caption(rows), anytime_caption(rows)]
+        if _has_anytime(rows):
+            lines.append(ANYTIME_NOTE)
+        blocks.append("\n".join(lines) + "\n" + _wide(rows).to_string())
     return "\n\n".join(blocks)
 
 
@@ -204,7 +235,7 @@ def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> str:
 
 def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: Path) -> str:
     """Plot the lift by day and to date to ``target``; return the title (it names the intervals)."""
-    fig, ax = plt.subplots(figsize=(9, 3.6))
+    fig, ax = plt.subplots(figsize=(9, 4.2))
     day = daily[daily["metric"] == "revenue_lift_vs_control"]
     cum = to_date[to_date["metric"] == "revenue_lift_vs_control"]
     colours = _colours(daily)
@@ -216,11 +247,17 @@ def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: 
         c = cum[cum["arm"] == arm]
         xc = pd.to_datetime(c["ds"])
         ax.plot(xc, c["estimate"], color=colour, lw=2, label=f"{arm}: experiment to date")
-        ax.fill_between(xc, c["ci_low"], c["ci_high"], color=colour, alpha=0.18, lw=0)
+        ax.fill_between(xc, c["ci_low"], c["ci_high"], color=colour, alpha=0.18, lw=0,
+                        label=f"{arm}: to date, fixed interval (one planned look)")
+        if _has_anytime(c):
+            ax.fill_between(xc, c["anytime_low"], c["anytime_high"], facecolor="none", edgecolor=colour, hatch="///",
+                            lw=0.8, ls="--", label=f"{arm}: to date, anytime-valid (act on this one)")
     ax.axhline(0.0, color="0.3", lw=0.8)
     ax.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
     title = f"{exp_id}: revenue lift over control\n(that day: {interval_caption(day)}; to date: {interval_caption(cum)})"
+    if _has_anytime(cum):
+        title += "\nlooking daily? act on the hatched anytime-valid band, not the fixed one"
     ax.set_title(title, fontsize=10)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7.5, ncol=2, loc="best")
@@ -327,6 +364,7 @@ check failed is left out, as are the spec's burn-in and excluded days.</p>
 Intervals: {html.escape(interval_caption(cum_model)) if len(cum) else "none"}{html.escape(f" (they speak for {speaks_for})") if speaks_for else ""};
 the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
+{f"<p>{html.escape(anytime_caption(cum))}. <strong>{html.escape(ANYTIME_NOTE)}</strong></p>" if _has_anytime(cum) else ""}
 {weights_note}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
 <img src="{html.escape(rev_png)}" alt="revenue per auction by day, {html.escape(exp_id)}">

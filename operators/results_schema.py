@@ -122,6 +122,10 @@ MIGRATIONS = (
                   Statement("results_create_stratum_piece_bidder_sums"),
                   Statement("results_create_bid_quantiles"),
               )),
+    Migration(3, "experiment-to-date rows carry anytime-valid bounds (valid at every daily look) and the auctions "
+                 "they are tuned for",
+              (Statement("results_v3_add_anytime_low"), Statement("results_v3_add_anytime_high"),
+               Statement("results_v3_add_anytime_horizon_auctions"))),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

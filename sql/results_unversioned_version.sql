@@ -1,16 +1,18 @@
 -- Version of a results schema written before versions were recorded, from its columns:
--- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it.
+-- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
+-- 3 when the to-date rows also carry the anytime-valid bounds.
 with source as (
-    select column_name
+    select table_name, column_name
     from information_schema.columns
     where table_schema = $schema
-        and table_name = 'arm_estimates'
+        and table_name in ('arm_estimates', 'arm_estimates_to_date')
 )
 
 select
     case
-        when count(*) = 0 then 0
-        when count(*) filter (where column_name = 'cluster') = 0 then 1
-        else 2
+        when count(*) filter (where table_name = 'arm_estimates') = 0 then 0
+        when count(*) filter (where table_name = 'arm_estimates' and column_name = 'cluster') = 0 then 1
+        when count(*) filter (where table_name = 'arm_estimates_to_date' and column_name = 'anytime_low') = 0 then 2
+        else 3
     end as version
 from source

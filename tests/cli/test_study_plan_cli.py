@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -87,6 +88,22 @@ def test_plan_from_an_assumed_distribution_json(capsys):
     assert (rows["half_width"] > 0).all()
     # A target of 1.0 revenue per auction is met by the smallest candidate share.
     assert doc["recommended_share"] == 0.05
+    assert doc["anytime_valid"] is False
+
+
+def test_plan_for_the_anytime_valid_bounds(capsys):
+    args = ["plan", "--experiment", str(SPEC), "--experiment-id", "featured-rows", "--days", "3",
+            "--auctions-per-day", "4000", "--bidders", "4", "--shares", "0.2", "--calibration-auctions", "1500"]
+    assert main([*args, "--format", "json"]) == 0
+    fixed = json.loads(capsys.readouterr().out)
+    assert main([*args, "--anytime-valid", "--format", "json"]) == 0
+    anytime = json.loads(capsys.readouterr().out)
+    assert anytime["anytime_valid"] is True
+    # the boundary tuned for the planned end is 3.0351 standard errors there, against z = 1.95996 (95 %)
+    ratio = pd.DataFrame(anytime["rows"])["half_width"] / pd.DataFrame(fixed["rows"])["half_width"]
+    assert np.allclose(ratio, 3.035122 / 1.959964, rtol=1e-6)
+    assert main([*args, "--anytime-valid"]) == 0
+    assert "half-widths of the anytime-valid bounds at the planned end" in capsys.readouterr().out
 
 
 def test_plan_from_pilot_bids_table(tmp_path, capsys):

@@ -134,6 +134,10 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
         np.testing.assert_array_equal(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float))
         # bidder sums read back meet by id text, not by shared codes: the last bit may differ
         np.testing.assert_allclose(got["std_error"].to_numpy(float), want["std_error"].to_numpy(float), rtol=1e-13)
+        # anytime-valid bounds on every row with an interval, wider than the fixed one (docs/method.md)
+        banded = got[got["std_error"].notna()]
+        assert banded["anytime_low"].notna().all() and (banded["anytime_horizon_auctions"] > 0).all()
+        assert ((banded["anytime_high"] - banded["anytime_low"]) > 1.5 * (banded["ci_high"] - banded["ci_low"])).all()
     # the stored pieces: one per (experiment, day, number of bidders, shard); one shard a day here
     with duckdb.connect(conf["results_database"], read_only=True) as con:
         pieces_per_day = con.execute("select experiment_id, ds, count(*), max(shard) from stratum_pieces "

@@ -330,6 +330,21 @@ def test_equilibrium_checks_order_history_window_and_summary():
     assert list(frame.columns) == ["check", "severity", "passed", "observed", "threshold", "details"]
 
 
+def test_auction_dependence_is_wired_in_quiet_on_a_clean_day_and_fails_on_scaled_auctions():
+    exp = EXPERIMENTS["featured-rows"]
+    clean = _sim("featured-rows", n_auctions=6000, seed=40)
+    quiet = _by_name(equilibrium_checks(clean, exp))["auction_dependence"]
+    assert quiet.passed and abs(quiet.details["z"]) < 4 and "remedy" not in quiet.details
+    # the same auctions with an unobserved log-normal factor (sd 0.3) on every value of an auction
+    scaled = clean.copy()
+    factor = np.exp(0.3 * np.random.default_rng(41).standard_normal(6000))
+    scaled["bid"] *= factor[scaled["auction_id"].to_numpy()]
+    failed = _by_name(equilibrium_checks(scaled, exp))["auction_dependence"]
+    assert not failed.passed and failed.severity == "error" and failed.observed > 0.2
+    assert "segments:" in failed.details["remedy"] and "scale_covariates:" in failed.details["remedy"]
+    assert set(failed.details["by_bidders"]) == {"5"}
+
+
 def test_failure_summary_lists_errors_first_with_observed_and_threshold():
     results = [
         CheckResult("drift", "warning", False, 1e-6, 1e-3),
@@ -358,7 +373,7 @@ def test_broken_contract_raises_input_error():
 
 # -- false alarms and detection over many seeded datasets (slow) ------------------------------------
 
-FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift")
+FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift", "auction_dependence")
 
 
 def false_alarm_rates(n_datasets: int, n_auctions: int) -> dict[str, float]:

@@ -50,7 +50,8 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
         "method_version": "ordstat-1", "run_id": run_id,
         "computed_at": now})
     to_date = estimates.assign(first_ds=day - dt.timedelta(days=3), days_used=f"{day - dt.timedelta(days=3)}..{day}",
-                               days_left_out="", n_days_used=4, n_days_left_out=0)
+                               days_left_out="", n_days_used=4, n_days_left_out=0,
+                               anytime_low=k / 7.0 - 0.03, anytime_high=k / 7.0 + 0.03, anytime_horizon_auctions=28000)
     weights = pd.DataFrame({
         "experiment_id": experiment_id, "ds": day, "arm": "arm0000000", "position": range(1, POSITIONS + 1),
         "weight": [0.4, 0.2, 0.1], "source": "spec", "impressions": None, "clicks": None, "first_click_ds": None,

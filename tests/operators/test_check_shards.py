@@ -30,7 +30,7 @@ SPEC = {"experiments": [{
     "arms": [{"name": "flat", "share": 0.6, "position_weights": [0.4, 0.2, 0.1]},
              {"name": "tall", "share": 0.4, "position_weights": [0.5, 0.15, 0.05]}]}]}
 COUNTING = ("sample_ratio", "min_auctions_per_arm", "min_auctions_per_stratum")
-DISTRIBUTION = ("monotone_values", "shading", "drift")
+DISTRIBUTION = ("monotone_values", "shading", "drift", "auction_dependence")
 MAX_BIDS = 4000  # 2 days x 3000 auctions x 4 bidders: 12000 bids a day, 3 shards of about 4000
 
 

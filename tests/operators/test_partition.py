@@ -302,3 +302,22 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
     want = estimate_arms(_lake_day(lake / "bids", day), experiment, confidence_level=0.975, cluster="bidder")
     got = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}).set_index(["arm", "metric"])
     np.testing.assert_array_equal(got.loc[list(zip(want["arm"], want["metric"])), "ci_high"].to_numpy(), want["ci_high"].to_numpy())
+
+
+def test_rows_of_a_day_whose_bids_move_together_carry_heterogeneous_auctions(hook, lake, experiment, tmp_path):
+    """A failed auction_dependence warning adds its own flag to the day's and the to-date rows."""
+    from counterbid.estimators import CheckResult
+
+    day = START + dt.timedelta(days=1)
+    _stage(hook, lake, experiment, tmp_path, day)
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
+    dependent = CheckResult(check="auction_dependence", severity="warning", passed=False, observed=0.05,
+                            threshold=0.02, details={})
+    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), dependent]) == "warning"
+    partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
+    partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
+    for name in ("report_daily_estimates", "report_to_date_estimates"):
+        rows = hook.fetch_df(name, {"experiment_id": "tiles"})
+        welfare = rows["metric"] == "welfare_per_auction"
+        assert set(rows.loc[welfare, "status"]) == {"heterogeneous_auctions,no_interval,warning"}
+        assert set(rows.loc[~welfare, "status"]) == {"heterogeneous_auctions,warning"}

@@ -104,8 +104,9 @@ def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
     title = report._plot_revenue(daily, "tiles", tmp_path / "r.png")
     assert title.endswith("(bands: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days) intervals)")
     title = report._plot_lift(daily, to_date, "tiles", tmp_path / "l.png")
-    assert title.endswith("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days); "
-                          "to date: 97.5 %, clustered by bidder)")  # one kind: no day counts
+    assert title.splitlines()[1] == ("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder "
+                                     "(2 days); to date: 97.5 %, clustered by bidder)")  # one kind: no day counts
+    assert title.splitlines()[2] == "looking daily? act on the hatched anytime-valid band, not the fixed one"
     one_run = daily[daily["ds"] == daily["ds"].max()]
     assert report.interval_caption(one_run[one_run["metric"] == "revenue_per_auction"]) == "97.5 %, clustered by bidder"
 
@@ -132,6 +133,32 @@ def test_cumulative_table_text(results):
                            "days used (2): 2026-03-03..2026-03-04; left out (1): 2026-03-02 (excluded)\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
+    # both bands on every revenue and lift row, and which one to act on; the horizon is 28 planned days (no
+    # `end` in the spec) x the mean of the two days used (1520 auctions / 2)
+    assert ("anytime-valid bounds ('anytime [low, high]'): 97.5 % for every daily look at once, same clustering, "
+            "tightest at 21,280 auctions (the planned end)\n" + report.ANYTIME_NOTE) in text
+    assert text.count(" anytime [") == 2 * 2 + 1 + 2  # revenue and realized of both arms, the lift, the mixture's two
+
+
+def test_to_date_rows_carry_anytime_bounds_wider_than_the_fixed_interval(results):
+    _, hook = results
+    rows = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
+    with_bounds = rows[rows["metric"] != "welfare_per_auction"]
+    assert with_bounds["anytime_low"].notna().all() and rows.loc[rows["metric"] == "welfare_per_auction", "anytime_low"].isna().all()
+    # 28 planned days (no `end` in the spec) x the mean auctions per day used so far: one day of 20, then 1520 in 2
+    assert rows.groupby("ds")["anytime_horizon_auctions"].first().tolist() == [28 * 20, 28 * 760]
+    # the same standard error times the normal-mixture multiplier at days used / planned days (1/28, then 2/28)
+    from counterbid.estimators.sequential import anytime_multiplier
+
+    m = anytime_multiplier(with_bounds["n_days_used"] / 28, confidence_level=with_bounds["confidence_level"].iloc[-1])
+    m = np.where(with_bounds["confidence_level"] == 0.975, m, np.nan)
+    late = with_bounds["confidence_level"] == 0.975
+    np.testing.assert_allclose((with_bounds["anytime_high"] - with_bounds["estimate"])[late],
+                               (m * with_bounds["std_error"])[late], rtol=1e-12)
+    np.testing.assert_allclose((with_bounds["estimate"] - with_bounds["anytime_low"])[late],
+                               (m * with_bounds["std_error"])[late], rtol=1e-12)
+    assert ((with_bounds["anytime_high"] - with_bounds["anytime_low"])
+            > (with_bounds["ci_high"] - with_bounds["ci_low"]) * 1.5).all()
 
 
 @pytest.mark.postgres

@@ -34,7 +34,8 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False,
                    method_version="ordstat-1", run_id=run_id, computed_at=computed_at)
         if to_date:
             row.update(first_ds=D1, days_used=f"{D1}..{ds}" if ds != D1 else str(D1), days_left_out="",
-                       n_days_used=(ds - D1).days + 1, n_days_left_out=0)
+                       n_days_used=(ds - D1).days + 1, n_days_left_out=0, anytime_low=est - 0.03,
+                       anytime_high=est + 0.03, anytime_horizon_auctions=2800)
         rows.append(row)
     return pa.Table.from_pandas(pd.DataFrame(rows), preserve_index=False)
 
