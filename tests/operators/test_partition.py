@@ -313,7 +313,7 @@ def test_rows_of_a_day_whose_bids_move_together_carry_heterogeneous_auctions(hoo
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     dependent = CheckResult(check="auction_dependence", severity="warning", passed=False, observed=0.05,
                             threshold=0.02, details={})
-    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), dependent]) == "warning"
+    assert partition.record_checks(staged, [*schema_gate(LakeHook(), experiment=experiment, staged=staged), dependent]) == "warning"
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
     partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
     for name in ("report_daily_estimates", "report_to_date_estimates"):
