@@ -12,8 +12,10 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import logging
+import os
 import random
 import time
+import uuid
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -48,6 +50,31 @@ LOCK_ERROR = "Could not set lock on file"
 def is_lock_error(exc: BaseException) -> bool:
     """Whether ``exc`` is DuckDB's file-lock conflict (retryable)."""
     return isinstance(exc, duckdb.Error) and LOCK_ERROR in str(exc)
+
+
+def create_database_file(path: Path) -> None:
+    """Create an empty DuckDB file at ``path`` unless one exists, atomically.
+
+    Two processes opening a missing file at once race: one creates it, and the other can open it
+    before its header is written and fail with "exists, but it is not a valid DuckDB database
+    file". So a new file is made whole under a private name and hard-linked into place (the link
+    fails if another process got there first; either way ``path`` is then a complete file).
+    """
+    if path.exists():
+        return
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.new")
+    try:
+        duckdb.connect(str(tmp)).close()
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass  # another writer created it first
+        except OSError:  # no hard links on this filesystem: DuckDB creates the file itself, as before
+            log.debug("cannot hard-link %s; DuckDB creates the results file", tmp)
+    finally:
+        tmp.unlink(missing_ok=True)
+        tmp.with_name(tmp.name + ".wal").unlink(missing_ok=True)
 
 
 class ResultsHook(BaseHook):
@@ -147,7 +174,7 @@ class ResultsHook(BaseHook):
             con = self._postgres_connection()
         else:
             if not read_only:
-                Path(self.database).parent.mkdir(parents=True, exist_ok=True)
+                create_database_file(Path(self.database))
             con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
         try:
             yield con
