@@ -44,6 +44,7 @@ from counterbid.readers.shards import write_shards
 
 from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
+from .lake_hook import LakeHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
@@ -76,7 +77,7 @@ class MissingPartitionError(RuntimeError):
 
 
 def stage_partition(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     lake_root: str | Path,
     experiment: Experiment,
@@ -106,7 +107,7 @@ def stage_partition(
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
-    day_rows = hook.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
+    day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
     if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
         shutil.rmtree(staged.day, ignore_errors=True)
@@ -114,21 +115,21 @@ def stage_partition(
     shards = n_shards(day_rows, max_bids)
 
     def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
-        with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
+        with lake.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
             write_shards(batches, folder, shards)
         # inside the folder, so it is replaced with the shards: what the Spark engine splits the lake into
         write_json({"shards": shards, "day_bids": day_rows, "max_bids_per_shard": max_bids},
                    folder / staged.day_manifest.name)
 
     replace_folder(fill, staged.day)
-    measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
+    measured = stage_measured_weights(lake, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
                                       click_window_days=click_window_days)
     return {"day_bids": day_rows, "shards": shards, "max_bids_per_shard": max_bids, "folder": str(staged.folder),
             "measured_arms": [] if measured is None else list(dict.fromkeys(measured["arm"]))}
 
 
 def stage_measured_weights(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     experiment: Experiment,
     ds: dt.date,
@@ -157,7 +158,7 @@ def stage_measured_weights(
     if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
         raise InputError(f"`click_window_days` must be an integer >= 1; got {click_window_days!r}")
     first_click = ds - dt.timedelta(days=click_window_days - 1)
-    clicks = hook.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
+    clicks = lake.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
     fitted = measured_position_weights(clicks, experiment, source=f"{clicks_root} ({first_click}..{ds})")
     fitted["first_click_ds"] = first_click
     write_parquet(pa.Table.from_pandas(fitted, preserve_index=False), staged.measured_weights)
@@ -182,7 +183,8 @@ def staged_experiment(experiment: Experiment, staged: StagedPartition) -> tuple[
     return experiment.with_position_weights({a.name: weights[a.name] for a in experiment.arms if a.measured}), rows
 
 
-def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition, ds: dt.date) -> list[CheckResult]:
+def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Experiment, staged: StagedPartition,
+                         ds: dt.date) -> list[CheckResult]:
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
@@ -198,9 +200,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
     with, and a market that stays moved stops being flagged once the old days leave the trailing
     window). When no error check failed, the day's own summary is staged
-    (``bid_quantiles.parquet``) for the write step to store.
+    (``bid_quantiles.parquet``) for the write step to store. ``hook`` (the results sink) gives the
+    stored history; ``lake`` reads the staged files, in DuckDB's dialect whatever the sink.
     """
-    results = schema_gate(hook, experiment=experiment, staged=staged)
+    results = schema_gate(lake, experiment=experiment, staged=staged)
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
@@ -219,10 +222,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     # whole auctions), so the frame in memory is one shard; the counting checks count the whole day.
     # The sample is shard 0, or the first shard after it holding an auction with two bids or more.
     sampled = len(shards) > 1
-    sample = next((k for k in shards if hook.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
+    sample = next((k for k in shards if lake.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
                   shards[0]) if sampled else None
     sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
-    with hook.staged_relations(day=staged.day_files, sample=sample_files) as con:
+    with lake.staged_relations(day=staged.day_files, sample=sample_files) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
                                    sample_shard=(sample, len(shards)) if sampled else None))

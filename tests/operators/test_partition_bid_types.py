@@ -21,6 +21,7 @@ from counterbid.estimators import parse_experiments, simulate_experiment
 from counterbid.operators import partition
 from counterbid.operators.staging import StagedPartition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 
 DAY = dt.date(2026, 3, 2)
 SPEC = {"experiments": [{"id": "tiles", "control_arm": "plain", "start": "2026-03-02", "arms": [
@@ -60,9 +61,9 @@ def _run(tmp_path, name, exp, table):
     pq.write_table(table.drop(["ds"]), lake / "tiles.parquet")
     hook = ResultsHook(database=tmp_path / name / "results.duckdb", lock_timeout=5)
     stage = tmp_path / name / "stage"
-    partition.stage_partition(hook, lake_root=lake.parent, experiment=exp, ds=DAY, staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake.parent, experiment=exp, ds=DAY, staging_root=stage)
     staged = StagedPartition.at(stage, "tiles", DAY)
-    results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAY)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAY)
     if partition.record_checks(staged, results) == "error":
         return results, None
     partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=stage, run_id="types")

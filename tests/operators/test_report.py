@@ -17,6 +17,7 @@ from counterbid.estimators import CheckResult, parse_experiments
 from counterbid.operators import partition, report
 from counterbid.operators.check_runner import write_check_results
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.report import ASSUMPTIONS, cumulative_table, format_cumulative, write_report
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
@@ -74,9 +75,9 @@ def results(tmp_path_factory):
     hook = ResultsHook(database=root / "results.duckdb")
     for k, (level, cluster, warned) in enumerate(RUNS):
         day = START + dt.timedelta(days=k)
-        partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
+        partition.stage_partition(LakeHook(), lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
         staged = StagedPartition.at(root / "s", exp.id, day)
-        checks = schema_gate(hook, experiment=exp, staged=staged)
+        checks = schema_gate(LakeHook(), experiment=exp, staged=staged)
         if warned:
             # a warning that keeps the day in the window (a failed drift or warm-up check would not)
             checks.append(CheckResult(check="shading", severity="warning", passed=False, observed=0.2, threshold=0.05))

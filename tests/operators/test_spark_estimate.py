@@ -11,6 +11,7 @@ from counterbid.estimators import parse_experiments, simulate_experiment
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 DAY = dt.date(2026, 3, 2)
@@ -32,8 +33,8 @@ def test_spark_estimate_refuses_a_partition_changed_after_the_load_step(spark, t
     bids.to_parquet(day / "part-a.parquet", index=False)
     hook = ResultsHook(database=tmp_path / "results.duckdb")
     staged = StagedPartition.at(stage, exp.id, DAY)
-    out = partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=DAY, staging_root=stage, max_bids_per_shard=600)
-    partition.record_checks(staged, partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAY))
+    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAY, staging_root=stage, max_bids_per_shard=600)
+    partition.record_checks(staged, partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAY))
     assert out["shards"] == 3
 
     with pytest.raises(InputError, match="`lake_root` is required"):

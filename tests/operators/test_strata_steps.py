@@ -14,6 +14,7 @@ from counterbid.estimators import expected_revenue_per_auction, parse_experiment
 from counterbid.estimators import combine_pieces, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 3, 2)
@@ -54,9 +55,9 @@ def test_pieces_round_trip_through_the_results_tables(tmp_path):
 
 
 def _run_day(hook, lake, exp, stage, day):
-    partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=day, staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage)
     staged = StagedPartition.at(stage, exp.id, day)
-    results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=day)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=day)
     partition.record_checks(staged, results)
     partition.store_checks(hook, results, experiment_id=exp.id, ds=day, run_id=f"r{day}")
     out = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=f"r{day}")
