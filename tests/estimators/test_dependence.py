@@ -247,7 +247,7 @@ def _truth(values, n_bidders) -> np.ndarray:
 def _relative_errors(bids, truth) -> tuple[float, np.ndarray, np.ndarray]:
     """The check's r, and each arm's (estimate / truth - 1) and relative standard error."""
     data = prepare_bids(bids, EXP)
-    table = estimate_arms(data, EXP).set_index(["arm", "metric"])
+    table = estimate_arms(data, EXP).table.set_index(["arm", "metric"])
     rows = table.loc[[(a.name, "revenue_per_auction") for a in EXP.arms]]
     r = auction_dependence(data.bid, data.auction, data.n_bidders).correlation
     return r, rows["estimate"].to_numpy() / truth - 1, rows["std_error"].to_numpy() / truth
