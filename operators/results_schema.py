@@ -126,6 +126,11 @@ MIGRATIONS = (
                  "they are tuned for",
               (Statement("results_v3_add_anytime_low"), Statement("results_v3_add_anytime_high"),
                Statement("results_v3_add_anytime_horizon_auctions"))),
+    Migration(5, "rows may be layouts that did not run (what_if) with their effective share; stored stratum pieces "
+                 "carry those layouts and their own-mixture variance",
+              (Statement("results_v5_add_estimates_what_if"), Statement("results_v5_add_estimates_effective_share"),
+               Statement("results_v5_add_to_date_what_if"), Statement("results_v5_add_to_date_effective_share"),
+               Statement("results_v5_add_piece_arms_what_if"), Statement("results_v5_add_piece_arms_own_variance"))),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

@@ -1,6 +1,6 @@
 -- Version of a results schema written before versions were recorded, from its columns:
 -- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
--- 3 when the to-date rows also carry the anytime-valid bounds.
+-- 3 when the to-date rows also carry the anytime-valid bounds, 5 when estimates carry what_if.
 with source as (
     select table_name, column_name
     from information_schema.columns
@@ -13,6 +13,7 @@ select
         when count(*) filter (where table_name = 'arm_estimates') = 0 then 0
         when count(*) filter (where table_name = 'arm_estimates' and column_name = 'cluster') = 0 then 1
         when count(*) filter (where table_name = 'arm_estimates_to_date' and column_name = 'anytime_low') = 0 then 2
-        else 3
+        when count(*) filter (where table_name = 'arm_estimates' and column_name = 'what_if') = 0 then 3
+        else 5
     end as version
 from source
