@@ -47,7 +47,7 @@ from .simulate import (
     expected_welfare_per_auction,
     simulate_experiment,
 )
-from .spec import Arm, Experiment, load_experiment, load_experiments, parse_day, parse_experiments
+from .spec import Arm, Experiment, WhatIf, load_experiment, load_experiments, parse_day, parse_experiments
 
 __all__ = [
     "AllocationRule",
@@ -71,6 +71,7 @@ __all__ = [
     "STATUS_FLAGS",
     "StratumKey",
     "StratumPiece",
+    "WhatIf",
     "allocation_rule",
     "combine_pieces",
     "derivative_ratio",

@@ -46,6 +46,7 @@ from .constants import METHOD_VERSION, MIN_STRATUM_BIDS, MIXTURE_ARM, RESULT_COL
 from .errors import EstimatorWarning, InputError
 from .pieces import StratumPiece
 from .spec import Experiment
+from .support import MIN_EFFECTIVE_BIDS, effective_share
 
 __all__ = ["ArmEstimates", "combine_pieces"]
 
@@ -175,8 +176,8 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     check_cluster(cluster)
     pieces = _checked_pieces(pieces, experiment, source)
     labels = piece_labels(experiment)
-    k_arms = len(experiment.arms)
-    revenue_cols = list(range(k_arms)) + [len(labels) - 1]
+    k_arms, k_targets = len(experiment.arms), len(experiment.targets)
+    revenue_cols = list(range(k_targets)) + [len(labels) - 1]
     w, exponent = _weights(pieces)
     estimate = _estimates(pieces, w)
     cluster, n_distinct = _cluster_unit(pieces, cluster, source)
@@ -189,13 +190,17 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     variance[np.ix_(revenue_cols, revenue_cols)] = block
     if any("degenerate" in p.flags for p in pieces):
         estimate[:] = np.nan
+    support = _support(pieces, w, k_arms)
+    for j in np.flatnonzero(support.thin):  # no number for a layout the bids say too little about
+        estimate[[k_arms + j, k_targets + k_arms + j]] = np.nan
     welfare_identified = _warn_about(pieces, source)
     unit = np.array([math.ldexp(1.0, p.bid_exponent - exponent) for p in pieces])
     realized = combine_realized([(p.realized_sum, p.realized_squares, p.arm_auctions, p.n_bidders) for p in pieces],
                                 unit)
     lifts = {k: _lift(estimate, variance, k, experiment.arm_names.index(experiment.control_arm), revenue_cols,
-                      totals, scale) for k in range(k_arms)}
-    table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified)
+                      totals, scale) for k in range(k_targets)}
+    table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified,
+                  support)
     table = _in_bid_units(table, exponent, pieces, source)
     return ArmEstimates(
         table=table, experiment_id=experiment.id, confidence_level=confidence_level, cluster=cluster,
@@ -203,6 +208,35 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
         n_excluded_auctions=int(n_excluded_auctions), strata=_strata_counts(pieces), method_version=METHOD_VERSION,
         welfare_identified=welfare_identified, payment_rule=experiment.payment_rule,
         floor=float(experiment.floor or 0.0), quality=any(p.has_quality for p in pieces))
+
+
+@dataclass(frozen=True)
+class _Support:
+    """Per what-if layout: its effective share (NaN: unbounded weights) and whether it gets no number."""
+
+    share: np.ndarray
+    thin: np.ndarray
+
+
+def _support(pieces: Sequence[StratumPiece], w: np.ndarray, k_arms: int) -> _Support:
+    """Effective share of each what-if layout over the strata, and the ``thin_support`` mask.
+
+    ``sum_s w_s^2 V_own,s / sum_s w_s^2 C_s`` (the ``M/(M-1)`` factors cancel): the variance of the
+    layout's weights with itself as the mixture over that of its estimate, both auction-clustered
+    on the same bids (:func:`~.support.effective_share`). A layout is thin when its weights are
+    unbounded in some stratum, or when its effective bids (share x bids) fall below
+    :data:`~.support.MIN_EFFECTIVE_BIDS`.
+    """
+    n_what_if = pieces[0].n_targets - k_arms
+    if n_what_if == 0:
+        return _Support(np.empty(0), np.zeros(0, dtype=bool))
+    own = sum((wi * wi) * p.own_variance for p, wi in zip(pieces, w))
+    var = sum((wi * wi) * np.diagonal(p.covariance)[k_arms:k_arms + n_what_if] for p, wi in zip(pieces, w))
+    share = np.array([effective_share(float(a), float(b)) for a, b in zip(own, var)])
+    n_bids = sum(p.n_bids for p in pieces)
+    with np.errstate(invalid="ignore"):
+        thin = ~(share * n_bids >= MIN_EFFECTIVE_BIDS)
+    return _Support(share, thin)
 
 
 def _checked_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, source: str) -> list[StratumPiece]:
@@ -305,9 +339,9 @@ def _warn_about(pieces: Sequence[StratumPiece], source: str) -> bool:
 
 def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.ndarray, variance: np.ndarray,
           lifts: Mapping[int, tuple[float, float]], realized: RealizedAverages, confidence_level: float,
-          welfare_identified: bool) -> pd.DataFrame:
-    """One row per arm and metric (and the mixture's two), with status flags, in the common unit."""
-    k_arms = len(experiment.arms)
+          welfare_identified: bool, support: _Support) -> pd.DataFrame:
+    """One row per arm and metric (what-if layouts after the arms, then the mixture's two), with status flags."""
+    k_arms, k_targets = len(experiment.arms), len(experiment.targets)
     total_auctions = int(sum(p.n_auctions for p in pieces))
     total_bids = int(sum(p.n_bids for p in pieces))
     degenerate = any("degenerate" in p.flags for p in pieces)
@@ -317,11 +351,12 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     rows: list[tuple] = []
 
     def emit(arm: str, metric: str, est: float, se: float, n_auc: int, n_b: int, *, counterfactual: bool = True,
-             flags: tuple[str, ...] = ()) -> None:
+             flags: tuple[str, ...] = (), what_if: bool = False, share: float = np.nan) -> None:
         status = (list(stratum_flags) if counterfactual else []) + list(flags)
         if np.isfinite(est) and not np.isfinite(se):
             status.append("no_interval")
-        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok"))
+        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok",
+                     what_if, share))
 
     def se_of(i: int) -> float:
         return float(np.sqrt(variance[i, i])) if np.isfinite(estimate[i]) else np.nan
@@ -329,19 +364,31 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     control = experiment.arm_names.index(experiment.control_arm)
     for k, a in enumerate(experiment.arms):
         emit(a.name, REVENUE, float(estimate[k]), se_of(k), total_auctions, total_bids)
-        emit(a.name, WELFARE, float(estimate[k_arms + k]), np.nan, total_auctions, total_bids,
+        emit(a.name, WELFARE, float(estimate[k_targets + k]), np.nan, total_auctions, total_bids,
              flags=() if welfare_identified or degenerate else ("not_identified",))
         emit(a.name, "realized_revenue_per_auction", float(realized.mean[k]), float(realized.std_error[k]),
              int(realized.auctions[k]), int(realized.bids[k]), counterfactual=False,
              flags=() if realized.auctions[k] else ("no_auctions",))
         if k != control:
             emit(a.name, "revenue_lift_vs_control", *lifts[k], total_auctions, total_bids)
+    for j, layout in enumerate(experiment.what_if):
+        k = k_arms + j
+        mark = {"what_if": True, "share": float(support.share[j]),
+                "flags": ("thin_support",) if support.thin[j] else ()}
+        emit(layout.name, REVENUE, float(estimate[k]), se_of(k), total_auctions, total_bids, **mark)
+        welfare_flags = mark["flags"] + (() if welfare_identified or degenerate or support.thin[j]
+                                         else ("not_identified",))
+        emit(layout.name, WELFARE, float(estimate[k_targets + k]), np.nan, total_auctions, total_bids,
+             **{**mark, "flags": welfare_flags})
+        emit(layout.name, "revenue_lift_vs_control", *lifts[k], total_auctions, total_bids, **mark)
     emit(MIXTURE_ARM, REVENUE, float(estimate[-1]), se_of(len(estimate) - 1), total_auctions, total_bids)
     emit(MIXTURE_ARM, "realized_revenue_per_auction", realized.mixture_mean, realized.mixture_std_error,
          total_auctions, total_bids, counterfactual=False)
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")
     out["n_bids"] = out["n_bids"].astype("int64")
+    out["what_if"] = out["what_if"].astype(bool)
+    out["effective_share"] = out["effective_share"].astype(float)
     return out
 
 

@@ -129,6 +129,11 @@ MIGRATIONS = (
     Migration(4, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
                  "excluded days) the rows hold no estimate and a status saying why; first_ds null, n_days_used 0",
               _rebuild(4, "arm_estimates_to_date")),
+    Migration(5, "rows may be layouts that did not run (what_if) with their effective share; stored stratum pieces "
+                 "carry those layouts and their own-mixture variance",
+              (Statement("results_v5_add_estimates_what_if"), Statement("results_v5_add_estimates_effective_share"),
+               Statement("results_v5_add_to_date_what_if"), Statement("results_v5_add_to_date_effective_share"),
+               Statement("results_v5_add_piece_arms_what_if"), Statement("results_v5_add_piece_arms_own_variance"))),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

@@ -1,7 +1,7 @@
 -- Version of a results schema written before versions were recorded, from its columns:
 -- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
 -- 3 when the to-date rows also carry the anytime-valid bounds, 4 when the to-date table's first_ds
--- is nullable as well (warm-up rows without a first day used).
+-- is nullable as well (warm-up rows without a first day used), 5 when estimates carry what_if.
 with source as (
     select table_name, column_name, is_nullable
     from information_schema.columns
@@ -17,6 +17,7 @@ select
         when count(*) filter (
             where table_name = 'arm_estimates_to_date' and column_name = 'first_ds' and is_nullable = 'YES'
         ) = 0 then 3
-        else 4
+        when count(*) filter (where table_name = 'arm_estimates' and column_name = 'what_if') = 0 then 4
+        else 5
     end as version
 from source
