@@ -14,6 +14,7 @@ from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import EstimatorWarning, combine_pieces, parse_experiments, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.report import WHAT_IF_NOTE, write_report
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
@@ -36,9 +37,9 @@ def stored(tmp_path_factory):
     hook = ResultsHook(database=root / "results.duckdb")
     for k in range(2):
         day = START + dt.timedelta(days=k)
-        partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
+        partition.stage_partition(LakeHook(), lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
         staged = StagedPartition.at(root / "s", exp.id, day)
-        partition.record_checks(staged, schema_gate(hook, experiment=exp, staged=staged))
+        partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
         partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=root / "s", run_id=f"r{k}",
                                      confidence_level=0.95, cluster="auction")
         partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=root / "s")
