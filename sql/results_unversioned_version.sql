@@ -1,11 +1,12 @@
 -- Version of a results schema written before versions were recorded, from its columns:
 -- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
--- 3 when the to-date rows also carry the anytime-valid bounds.
+-- 3 when the to-date rows also carry the anytime-valid bounds, 6 when the running bidder window
+-- table exists.
 with source as (
     select table_name, column_name
     from information_schema.columns
     where table_schema = $schema
-        and table_name in ('arm_estimates', 'arm_estimates_to_date')
+        and table_name in ('arm_estimates', 'arm_estimates_to_date', 'bidder_window')
 )
 
 select
@@ -13,6 +14,7 @@ select
         when count(*) filter (where table_name = 'arm_estimates') = 0 then 0
         when count(*) filter (where table_name = 'arm_estimates' and column_name = 'cluster') = 0 then 1
         when count(*) filter (where table_name = 'arm_estimates_to_date' and column_name = 'anytime_low') = 0 then 2
-        else 3
+        when count(*) filter (where table_name = 'bidder_window') = 0 then 3
+        else 6
     end as version
 from source
