@@ -135,8 +135,11 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
         if not mine:  # today left out: the stored window is the window
             return ToDateInputs(window, gram, None, "stored")
         totals = bidder_totals(mine, bid_exponent=exponent)
-        rows = _totals_rows(experiment, totals.bidder_ids, totals.sums)
-        found = hook.bidder_window_totals(experiment_id=experiment.id, today=rows)
+        ids = pa.table({"experiment_id": pa.array([experiment.id] * len(totals.bidder_ids), pa.string()),
+                        "bidder_id": pa.array(totals.bidder_ids, pa.string()),
+                        "arm": pa.array([""] * len(totals.bidder_ids), pa.string()),
+                        "value": pa.array(np.zeros(len(totals.bidder_ids)), pa.float64())})  # one row a bidder
+        found = hook.bidder_window_totals(experiment_id=experiment.id, today=ids)
         before, seen = _before(found, totals, experiment)
         gram, after = extend_gram(gram, totals, before, seen)
         write = _window_write(experiment, "extend", base_days, days_text, ds, gram, totals.bidder_ids, after, run_id,
