@@ -48,7 +48,7 @@ from .pieces import StratumPiece
 from .spec import Experiment
 from .support import MIN_EFFECTIVE_BIDS, effective_share
 
-__all__ = ["ArmEstimates", "combine_pieces"]
+__all__ = ["ArmEstimates", "BidderGram", "combine_pieces"]
 
 
 @dataclass(frozen=True)
@@ -116,8 +116,35 @@ class ArmEstimates:
                                    engine=self.engine if engine is None else engine)
 
 
+@dataclass(frozen=True)
+class BidderGram:
+    """What bidder clustering needs of the bidder sums, kept as running totals.
+
+    With ``U_b = sum_s M_s 2**(e_s - bid_exponent) S_{b,s}`` (each bidder's influence sums weighted
+    by the auctions of their stratum, not yet divided by the total ``M``), :attr:`gram` is
+    ``sum_b U_b U_b'`` over the distinct bidders, revenue labels in the order of
+    :attr:`StratumPiece.bidder_sums` (each arm, then the mixture). ``combine_pieces`` scales it by
+    ``1 / M**2`` (``S_b = U_b / M``): the covariance and the lift's variance follow without the
+    per-bidder rows (``docs/method.md``, "Strata, shards and the experiment to date").
+
+    Attributes
+    ----------
+    gram : numpy.ndarray
+        ``(K + 1, K + 1)``, symmetric.
+    n_bidders : int
+        Distinct bidders ``B`` of the sums (the factor ``B / (B - 1)``).
+    bid_exponent : int
+        Unit of ``U_b``: ``2**bid_exponent`` bids.
+    """
+
+    gram: np.ndarray
+    n_bidders: int
+    bid_exponent: int
+
+
 def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, confidence_level: float = 0.95,
-                   cluster: str = "auto", n_excluded_auctions: int = 0, source: str = "bids") -> ArmEstimates:
+                   cluster: str = "auto", n_excluded_auctions: int = 0, source: str = "bids",
+                   bidder_gram: BidderGram | None = None) -> ArmEstimates:
     """Combine stratum pieces by their auction counts into per-arm estimates.
 
     Parameters
@@ -139,6 +166,10 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
         Single-bidder auctions left out upstream (reported in the result).
     source : str, optional
         Name of the input in warnings and errors.
+    bidder_gram : BidderGram, optional
+        The bidder sums of these pieces as running totals (``operators/window_state.py`` keeps
+        them for the experiment to date): bidder clustering reads it instead of the pieces'
+        bidder sums, which the pieces then need not carry. It must describe exactly these pieces.
 
     Returns
     -------
@@ -180,9 +211,13 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     revenue_cols = list(range(k_targets)) + [len(labels) - 1]
     w, exponent = _weights(pieces)
     estimate = _estimates(pieces, w)
-    cluster, n_distinct = _cluster_unit(pieces, cluster, source)
-    totals = scale = None
-    if cluster == "bidder":
+    cluster, n_distinct = _cluster_unit(pieces, cluster, source, bidder_gram)
+    totals = scale = sums_gram = None
+    if cluster == "bidder" and bidder_gram is not None:
+        sums_gram = _scaled_gram(bidder_gram, pieces, exponent, len(revenue_cols), source)
+        block = _cr_factor(bidder_gram.n_bidders) * sums_gram if bidder_gram.n_bidders >= 2 else \
+            np.full_like(sums_gram, np.nan)
+    elif cluster == "bidder":
         block, totals, scale = _bidder_block(pieces, w, len(revenue_cols))
     else:
         block = _auction_block(pieces, w, revenue_cols)
@@ -197,8 +232,12 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     unit = np.array([math.ldexp(1.0, p.bid_exponent - exponent) for p in pieces])
     realized = combine_realized([(p.realized_sum, p.realized_squares, p.arm_auctions, p.n_bidders) for p in pieces],
                                 unit)
-    lifts = {k: _lift(estimate, variance, k, experiment.arm_names.index(experiment.control_arm), revenue_cols,
-                      totals, scale) for k in range(k_targets)}
+    control = experiment.arm_names.index(experiment.control_arm)
+    if sums_gram is not None:
+        lifts = {k: _gram_lift(estimate, sums_gram, bidder_gram.n_bidders, k, control, revenue_cols)
+                 for k in range(k_targets)}
+    else:
+        lifts = {k: _lift(estimate, variance, k, control, revenue_cols, totals, scale) for k in range(k_targets)}
     table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified,
                   support)
     table = _in_bid_units(table, exponent, pieces, source)
@@ -274,8 +313,13 @@ def _estimates(pieces: Sequence[StratumPiece], w: np.ndarray) -> np.ndarray:
     return estimate
 
 
-def _cluster_unit(pieces: Sequence[StratumPiece], cluster: str, source: str) -> tuple[str, int | None]:
+def _cluster_unit(pieces: Sequence[StratumPiece], cluster: str, source: str,
+                  gram: BidderGram | None = None) -> tuple[str, int | None]:
     """The clustering used: ``bidder`` needs bidder sums in every piece; ``auto`` is bidder when they repeat."""
+    if gram is not None:
+        if cluster == "auto":
+            cluster = "bidder" if gram.n_bidders < sum(p.n_bids for p in pieces) else "auction"
+        return cluster, int(gram.n_bidders)
     with_sums = all(p.bidder_sums is not None for p in pieces)
     if cluster == "bidder" and not with_sums:
         lacking = next(p for p in pieces if p.bidder_sums is None)
@@ -303,6 +347,30 @@ def _bidder_block(pieces: Sequence[StratumPiece], w: np.ndarray, size: int) -> t
     if totals.shape[0] >= 2:
         return (factor * scale * scale) * (totals.T @ totals), totals, scale
     return np.full((size, size), np.nan), totals, scale
+
+
+def _scaled_gram(gram: BidderGram, pieces: Sequence[StratumPiece], exponent: int, size: int,
+                 source: str) -> np.ndarray:
+    """``sum_b S_b S_b'`` in the common unit: the running ``sum_b U_b U_b'`` times ``(2**(e - exponent) / M)**2``."""
+    matrix = np.asarray(gram.gram, dtype=float)
+    if matrix.shape != (size, size):
+        raise InputError(f"{source}: bidder totals have {matrix.shape} revenue labels; the pieces have {size}")
+    scale = math.ldexp(1.0, gram.bid_exponent - exponent) / int(sum(p.n_auctions for p in pieces))
+    return (scale * scale) * matrix
+
+
+def _gram_lift(estimate: np.ndarray, sums_gram: np.ndarray, n_bidders: int, k: int, control: int,
+               revenue_cols: list[int]) -> tuple[float, float]:
+    """:func:`_lift` from ``sum_b S_b S_b'``: ``sum_b (S_bk - r S_bc)^2 = G_kk - 2 r G_kc + r^2 G_cc``."""
+    t_a, t_c = estimate[k], estimate[control]
+    if k == control or not (np.isfinite(t_a) and np.isfinite(t_c) and t_c > 0):
+        return np.nan, np.nan
+    r = t_a / t_c
+    i, c = revenue_cols.index(k), revenue_cols.index(control)
+    v = sums_gram[i, i] - 2 * r * sums_gram[i, c] + r * r * sums_gram[c, c]
+    if n_bidders < 2:
+        return t_a / t_c - 1.0, np.nan
+    return t_a / t_c - 1.0, float(np.sqrt(_cr_factor(n_bidders) * max(v, 0.0))) / t_c
 
 
 def _lift(estimate: np.ndarray, variance: np.ndarray, k: int, control: int, revenue_cols: list[int],

@@ -204,7 +204,7 @@ def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
             s.execute("results_drop_table", table="counterbid_schema")
     with sink.session() as s:
         assert schema_version(s) == 2  # from the recorded row, or from the columns
-    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5]  # anytime columns, warm-up rows, what-if rows
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6]  # anytime, warm-up rows, what-if, bidder window
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={
         "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
     rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])
