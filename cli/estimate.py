@@ -58,7 +58,8 @@ def _distinct_text(col) -> list[str]:
 def run(args: argparse.Namespace) -> int:
     from counterbid.estimators import EstimatorWarning
     from counterbid.estimators.errors import InputError
-    from counterbid.readers.shards import distinct_experiment_ids, estimate_bid_log, max_bids_per_shard
+    from counterbid.readers.engines import LocalEngine, SparkEngine, estimate_bid_log
+    from counterbid.readers.shards import distinct_experiment_ids, max_bids_per_shard
 
     max_bids = max_bids_per_shard(args.max_bids_per_shard, what="--max-bids-per-shard")
     if args.engine == "spark":
@@ -74,54 +75,58 @@ def run(args: argparse.Namespace) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
         if args.engine == "spark":
-            from counterbid.readers.spark_shards import estimate_bid_log_on_spark, spark_session
+            from counterbid.readers.spark_shards import spark_session
 
-            result = estimate_bid_log_on_spark(args.bids, experiment, spark=spark_session(args.spark_master),
-                                               max_bids_per_shard=max_bids, confidence_level=args.level,
-                                               cluster=args.cluster)
+            engine = SparkEngine(spark_session(args.spark_master))
         else:
-            # shard by shard: the same path as the pipeline's estimate step (counterbid.readers.shards)
-            result = estimate_bid_log(args.bids, experiment, max_bids_per_shard=max_bids,
-                                      confidence_level=args.level, cluster=args.cluster)
+            engine = LocalEngine()  # shard by shard: the same path as the pipeline's estimate step
+        result = estimate_bid_log(args.bids, experiment, engine=engine, max_bids_per_shard=max_bids,
+                                  confidence_level=args.level, cluster=args.cluster)
     for w in caught:
         if issubclass(w.category, EstimatorWarning):
             print(f"counterbid: warning: {w.message}", file=sys.stderr)
-    excluded = result.attrs["n_excluded_auctions"]
+    excluded = result.n_excluded_auctions
     if excluded:
         print(f"counterbid: note: left out {excluded} single-bidder auction(s) of {args.bids}", file=sys.stderr)
     if args.output_format == "json":
         payload = {
             "experiment_id": experiment.id,
             "confidence_level": args.level,
-            "cluster": result.attrs["cluster"],  # the clustering used
+            "cluster": result.cluster,  # the clustering used
             "n_excluded_auctions": excluded,
-            "shards": result.attrs["shards"],
-            "engine": args.engine,
-            "method_version": result.attrs["method_version"],
-            "payment_rule": result.attrs["payment_rule"],
-            "floor": result.attrs["floor"],
-            "quality": result.attrs["quality"],
-            "rows": json.loads(result.to_json(orient="records")),
+            "shards": result.shards,
+            "engine": result.engine,
+            "method_version": result.method_version,
+            "payment_rule": result.payment_rule,
+            "floor": result.floor,
+            "quality": result.quality,
+            "rows": json.loads(result.table.to_json(orient="records")),
         }
         print(json.dumps(payload, indent=2))
     elif args.output_format == "csv":
-        sys.stdout.write(result.to_csv(index=False))
+        sys.stdout.write(result.table.to_csv(index=False))
     else:
         from counterbid.estimators.intervals import POPULATION, format_level, row_clusters
 
-        cluster = result.attrs["cluster"]  # the clustering the run used (not the option's spelling)
-        floor = result.attrs["floor"]
-        print(f"experiment {experiment.id}: payment rule {result.attrs['payment_rule']}, "
+        cluster = result.cluster  # the clustering the run used (not the option's spelling)
+        floor = result.floor
+        print(f"experiment {experiment.id}: payment rule {result.payment_rule}, "
               f"{'floor ' + format(floor, 'g') if floor else 'no floor'}"
-              f"{', ranked by bid x quality' if result.attrs['quality'] else ''}; "
-              f"{result.attrs['n_auctions']} auctions, {result.attrs['n_bids']} bids"
-              f"{' in ' + str(result.attrs['shards']) + ' shards' if result.attrs['shards'] > 1 else ''}, "
-              f"{format_level(result.attrs['confidence_level'])} intervals clustered by {cluster} "
+              f"{', ranked by bid x quality' if result.quality else ''}; "
+              f"{result.n_auctions} auctions, {result.n_bids} bids"
+              f"{' in ' + str(result.shards) + ' shards' if result.shards > 1 else ''}, "
+              f"{format_level(result.confidence_level)} intervals clustered by {cluster} "
               f"(they speak for {POPULATION[cluster]})")
-        shown = result.copy()
-        shown.insert(shown.columns.get_loc("ci_high") + 1, "cluster", row_clusters(result))
+        shown = result.to_frame()
+        shown.insert(shown.columns.get_loc("ci_high") + 1, "cluster", row_clusters(shown["metric"], cluster))
         print(shown.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
         print("Assumes symmetric bidders in equilibrium against the designed shares, known position weights and the"
               " spec's payment rule and floor (each arm's own payment rule does not enter: revenue equivalence);"
               " realized_revenue_per_auction is the realized per-arm average (biased), shown for comparison.")
+        if shown["what_if"].any():
+            print("Rows with what_if True are layouts that did not run, estimated from the same bids: they also assume"
+                  " bidders would respond to such a layout as they would if it ran. effective_share: the share of"
+                  " these auctions that, bid for the layout itself, would estimate it as precisely (above 1: the"
+                  " mixture's bids say more about it than its own would); status thin_support: no number, the bids"
+                  " say too little about the layout (docs/method.md, 'Layouts that did not run').")
     return 0

@@ -25,6 +25,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--bidders", type=int, default=5, help="bidders per auction when there is no pilot")
     p.add_argument("--level", type=float, default=0.95, help="confidence level (default 0.95)")
     p.add_argument("--calibration-auctions", type=int, default=20_000, help="auctions per calibration simulation")
+    p.add_argument("--anytime-valid", action="store_true", dest="anytime",
+                   help="plan for the anytime-valid bounds of the experiment to date at the planned end (valid when "
+                        "the results are looked at every day) instead of the fixed interval of one planned look")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
@@ -46,7 +49,8 @@ def run(args: argparse.Namespace) -> int:
     common = dict(days=args.days, auctions_per_day=args.auctions_per_day,
                   shares=tuple(args.shares) if args.shares else DEFAULT_SHARES,
                   target_half_width=args.target_half_width, target_metric=args.target_metric,
-                  confidence_level=float(args.level), calibration_auctions=args.calibration_auctions, rng=args.seed)
+                  confidence_level=float(args.level), calibration_auctions=args.calibration_auctions, rng=args.seed,
+                  anytime=args.anytime)
     if bids is not None:
         plan = plan_shares(experiment, bids=bids, source=str(args.bids), **common)
         basis = f"pilot bids {args.bids} (values inferred by kernel inversion, scaled by the pilot's own standard errors)"
@@ -58,7 +62,8 @@ def run(args: argparse.Namespace) -> int:
     table = plan.table
     if args.output_format == "json":
         print(json.dumps({"experiment_id": experiment.id, "basis": plan.basis, "n_auctions": plan.n_auctions,
-                          "confidence_level": plan.confidence_level, "target_metric": plan.target_metric,
+                          "confidence_level": plan.confidence_level, "anytime_valid": plan.anytime,
+                          "target_metric": plan.target_metric,
                           "target_half_width": plan.target_half_width, "recommended_share": plan.recommended_share,
                           "rows": json.loads(table.to_json(orient="records"))}, indent=2))
         return 0
@@ -66,7 +71,9 @@ def run(args: argparse.Namespace) -> int:
         sys.stdout.write(table.to_csv(index=False))
         return 0
     print(f"experiment {experiment.id}: {args.days} days x {args.auctions_per_day} auctions = {plan.n_auctions} auctions; "
-          f"{int(args.level * 100)}% half-widths from {basis}")
+          f"{int(args.level * 100)}% half-widths "
+          f"{'of the anytime-valid bounds at the planned end (valid at every daily look) ' if plan.anytime else ''}"
+          f"from {basis}")
     print(table.to_string(index=False, float_format=lambda x: f"{x:.4g}"))
     if plan.target_half_width is not None:
         if plan.recommended_share is None:

@@ -12,11 +12,14 @@ results DuckDB file or ``postgresql://`` URL (empty: the ``counterbid_results`` 
 staging folder, ``COUNTERBID_CLICKS`` click log root (for measured position weights),
 ``COUNTERBID_LEVEL`` confidence level of the intervals (default 0.95), ``COUNTERBID_CLUSTER``
 clustering of the standard errors (``auction``, ``bidder`` or, where the estimator offers it,
-``auto``; the default), ``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries,
+``auto``; the default), ``COUNTERBID_START`` first day, ``COUNTERBID_RETRIES`` task retries (a
+missing partition is late data: the load step fails and is retried), ``COUNTERBID_RETRY_DELAY``
+seconds between tries (default 300),
 ``COUNTERBID_CATCHUP`` (``false`` leaves past days to ``airflow backfill create``),
 ``COUNTERBID_MAX_BIDS_PER_SHARD`` (a day with more bids is estimated in ``ceil(bids / max)``
 shards; default 4M), ``COUNTERBID_MAX_ACTIVE_RUNS`` (default 1: each day's experiment-to-date rows
-combine the stored pieces of the days before it, so days are written in order). The level and
+combine the stored pieces of the days before it, so days are written in order; a backfill is bounded
+by its own ``airflow backfill create --max-active-runs``, not by this: pass 1 there too). The level and
 clustering each stored row used are written beside it.
 
 Engine of the estimate step (read when the DAG is parsed only): ``COUNTERBID_ENGINE`` ``local``
@@ -40,6 +43,7 @@ from pathlib import Path
 
 from airflow.sdk import dag, task, task_group
 
+from counterbid.operators.extras import require_extras_for
 from counterbid.operators.notify import CheckAlertNotifier
 from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
@@ -50,6 +54,7 @@ from counterbid.operators.pipeline import (
     ValidatePartitionOperator,
     WriteEstimatesOperator,
 )
+from counterbid.operators.results_schema import results_target
 
 DAG_ID = "counterbid_daily"
 HERE = Path(__file__).resolve().parent
@@ -57,15 +62,21 @@ ENGINE = os.environ.get("COUNTERBID_ENGINE", "local").strip().lower() or "local"
 SPARK_CONN = os.environ.get("COUNTERBID_SPARK_CONN", "").strip() or None
 if ENGINE not in ("local", "spark"):
     raise ValueError(f"COUNTERBID_ENGINE must be 'local' or 'spark'; got {ENGINE!r}")
+# A setting that needs an optional extra stops here, at parse time, in one line naming the extra.
+require_extras_for(results=results_target(os.environ["COUNTERBID_RESULTS"], what="COUNTERBID_RESULTS")
+                   if os.environ.get("COUNTERBID_RESULTS", "").strip() else None,
+                   engine=ENGINE, results_setting="COUNTERBID_RESULTS", engine_setting="COUNTERBID_ENGINE")
 START = dt.datetime.fromisoformat(os.environ.get("COUNTERBID_START", "2026-03-02")).replace(tzinfo=dt.timezone.utc)
 
 # Alerts: failed data checks (observed vs threshold) or the task's error, to the task log by
-# default. For a webhook or mail, set COUNTERBID_ALERT_TARGET=webhook|smtp and
-# COUNTERBID_ALERT_CONN to an Airflow connection. Task-level callbacks (default_args), so they
-# also run under dag.test().
+# default. For a webhook, Slack or mail, set COUNTERBID_ALERT_TARGET=webhook|slack|smtp and
+# COUNTERBID_ALERT_CONN to an Airflow connection (the `alerts` extra's HTTP, Slack or SMTP
+# provider sends it); COUNTERBID_ALERT_ENDPOINT is the webhook's path after the connection's URL.
+# Task-level callbacks (default_args), so they also run under dag.test().
 ALERTS = CheckAlertNotifier(
     target=os.environ.get("COUNTERBID_ALERT_TARGET", "log"),
     conn_id=os.environ.get("COUNTERBID_ALERT_CONN") or None,
+    endpoint=os.environ.get("COUNTERBID_ALERT_ENDPOINT") or None,
 )
 
 
@@ -78,7 +89,7 @@ ALERTS = CheckAlertNotifier(
     max_active_runs=int(os.environ.get("COUNTERBID_MAX_ACTIVE_RUNS", "1")),
     default_args={
         "retries": int(os.environ.get("COUNTERBID_RETRIES", "2")),
-        "retry_delay": dt.timedelta(minutes=5),
+        "retry_delay": dt.timedelta(seconds=float(os.environ.get("COUNTERBID_RETRY_DELAY", "300"))),
         "on_failure_callback": ALERTS,
     },
     params={

@@ -2,10 +2,13 @@
 
 Public API
 ----------
-estimate_arms
-    Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids.
-stratum_pieces, combine_pieces, StratumPiece, pieces_to_frames, pieces_from_frames
+estimate_arms, ArmEstimates
+    Per-arm revenue, welfare, realized per-arm average and lift from one experiment's bids, as a
+    frozen result (the rows in ``.table``, and what they were computed with).
+stratum_pieces, combine_pieces, StratumKey, StratumPiece, pieces_to_frames, pieces_from_frames
     Strata as the unit of work: estimate each stratum alone, store and combine what it contributes.
+bidder_totals, gram_of, extend_gram, WindowTotals, BidderGram
+    Running bidder totals of an analysis window (bidder clustering from today's bidders only).
 shard_of, n_shards, MAX_BIDS_PER_SHARD
     The stable hash shard of an auction id and the number of shards of a stratum.
 load_experiment, load_experiments, parse_experiments, parse_day
@@ -19,8 +22,11 @@ simulate_experiment, equilibrium_bid_function, expected_revenue_per_auction
 """
 
 from .allocation import AllocationRule, allocation_rule, derivative_ratio, mixture_rule
-from .arms import (
-    BID_COLUMNS,
+from .arms import estimate_arms
+from .bids import BID_COLUMNS, PreparedBids, prepare_bids
+from .checks import CheckResult, worst_failure
+from .combine import ArmEstimates, BidderGram, combine_pieces
+from .constants import (
     CLUSTERS,
     METHOD_VERSION,
     METRICS,
@@ -28,25 +34,14 @@ from .arms import (
     MIXTURE_ARM,
     RESULT_COLUMNS,
     STATUS_FLAGS,
-    PreparedBids,
-    estimate_arms,
-    prepare_bids,
+    piece_labels,
 )
-from .checks import CheckResult, worst_failure
 from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
-from .pieces import (
-    MAX_BIDS_PER_SHARD,
-    PIECE_FRAMES,
-    StratumPiece,
-    combine_pieces,
-    n_shards,
-    piece_labels,
-    pieces_from_frames,
-    pieces_to_frames,
-    shard_of,
-    stratum_pieces,
-)
+from .piece_frames import PIECE_FRAMES, pieces_from_frames, pieces_to_frames
+from .pieces import StratumKey, StratumPiece, stratum_pieces
+from .window_totals import WindowTotals, bidder_totals, extend_gram, gram_of
+from .sharding import MAX_BIDS_PER_SHARD, n_shards, shard_of
 from .position_weights import measured_position_weights
 from .simulate import (
     BidFunction,
@@ -55,11 +50,12 @@ from .simulate import (
     expected_welfare_per_auction,
     simulate_experiment,
 )
-from .spec import Arm, Experiment, load_experiment, load_experiments, parse_day, parse_experiments
+from .spec import Arm, Experiment, WhatIf, load_experiment, load_experiments, parse_day, parse_experiments
 
 __all__ = [
     "AllocationRule",
     "Arm",
+    "ArmEstimates",
     "BID_COLUMNS",
     "BidFunction",
     "CLUSTERS",
@@ -76,9 +72,16 @@ __all__ = [
     "PreparedBids",
     "RESULT_COLUMNS",
     "STATUS_FLAGS",
+    "StratumKey",
     "StratumPiece",
+    "WhatIf",
     "allocation_rule",
     "combine_pieces",
+    "bidder_totals",
+    "extend_gram",
+    "gram_of",
+    "WindowTotals",
+    "BidderGram",
     "derivative_ratio",
     "equilibrium_bid_function",
     "estimate_arms",

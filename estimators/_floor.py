@@ -1,8 +1,9 @@
 """The one implementation of the floor step of the weighted order statistic (per stratum).
 
-The stratum estimate (``estimators.pieces``) and the Monte Carlo study both call these: the floor's quantile ``q*`` is
-estimated by the share of sub-floor bids, the sorted bids are clamped at the floor, and each bid's
-influence gains the term of the estimated ``q*`` (docs/method.md, "A floor shared by the arms").
+The stratum kernel (``estimators.stratum``) calls these, for the pieces and the Monte Carlo study
+alike: the floor's quantile ``q*`` is estimated by the share of sub-floor bids, the sorted bids are
+clamped at the floor, and each bid's influence gains the term of the estimated ``q*``
+(docs/method.md, "A floor shared by the arms").
 """
 
 from __future__ import annotations

@@ -10,7 +10,7 @@ import numpy as np
 from .payment_rules import per_click_prices
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .arms import PreparedBids
+    from .bids import PreparedBids
     from .spec import Experiment
 
 __all__ = ["RealizedAverages", "auction_revenues", "combine_realized", "realized_averages", "realized_cell"]

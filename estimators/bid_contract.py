@@ -36,9 +36,6 @@ __all__ = [
     "ColumnRule",
     "INTEGER_RANGE",
     "KINDS",
-    "REQUIRED_COLUMNS",
-    "UNIQUE_KEY",
-    "column_rule",
 ]
 
 KINDS = ("numeric", "integer", "text", "text_or_integer", "date")
@@ -110,14 +107,3 @@ BID_CONTRACT: dict[str, ColumnRule] = {r.name: r for r in (
     ColumnRule("quality", "numeric", nullable=False, finite=True, optional=True, strictly_positive=True,
                meaning="optional quality factor (> 0): auctions rank by bid x quality, the effective bid"),
 )}
-
-#: Contract columns every log must have (``quality`` may be absent).
-REQUIRED_COLUMNS = tuple(name for name, rule in BID_CONTRACT.items() if not rule.optional)
-
-#: A bidder bids at most once per auction.
-UNIQUE_KEY = ("auction_id", "bidder_id")
-
-
-def column_rule(name: str) -> ColumnRule:
-    """The rule of contract column ``name`` (``KeyError`` for a column outside the contract)."""
-    return BID_CONTRACT[name]

@@ -11,10 +11,9 @@ section and then by an explicit ``config`` mapping (see :func:`check_config`).
 
 from __future__ import annotations
 
-import copy
 import datetime as _dt
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -23,6 +22,9 @@ import pandas as pd
 from scipy import interpolate, special, stats
 
 from .allocation import allocation_rule, mixture_rule
+from .bids import PreparedBids, prepare_bids
+from .check_settings import DEFAULT_CHECKS, SEVERITIES, check_config
+from .dependence import auction_dependence
 from .errors import InputError
 from .spec import Experiment, parse_day
 
@@ -30,11 +32,13 @@ __all__ = [
     "AuctionCounts",
     "CheckResult",
     "DEFAULT_CHECKS",
+    "DEPENDENCE_REMEDY",
     "InferredValues",
     "BID_QUANTILES",
     "SEVERITIES",
     "STATISTICAL_CHECKS",
     "auction_counts",
+    "auction_dependence_check",
     "bid_quantile_summary",
     "check_config",
     "drift_check",
@@ -49,10 +53,6 @@ __all__ = [
     "warmup_check",
     "worst_failure",
 ]
-
-#: Severities, mildest first.
-SEVERITIES = ("warning", "error")
-
 
 @dataclass(frozen=True)
 class CheckResult:
@@ -104,39 +104,6 @@ def worst_failure(results: Iterable[CheckResult]) -> str | None:
 # Thresholds
 # ---------------------------------------------------------------------------------------------
 
-#: Default severity and thresholds of every check, keyed by check group. The spec's ``checks:``
-#: section overrides any key, e.g. ``checks: {sample_ratio: {alpha: 1.0e-4}, drift: {severity:
-#: error}}``. ``contract`` configures the Great Expectations suite in ``counterbid.operators``.
-DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
-    # Auctions per arm vs designed shares, Pearson chi-square; fail when p < alpha.
-    "sample_ratio": {"severity": "error", "alpha": 1e-3},
-    # Auctions per arm, and per number of bidders (strata smaller than this are not estimated well).
-    "min_auctions_per_arm": {"severity": "error", "min_auctions": 100},
-    "min_auctions_per_stratum": {"severity": "warning", "min_auctions": 50},
-    # v(q) = b + b' x / x' on a least-squares cubic spline of the bid quantile function (per stratum):
-    # fail when v lies below its running maximum by more than `tolerance` x (its range) on more
-    # than `max_falling_share` of the grid on [q_low, q_high].
-    "monotone_values": {
-        "severity": "warning",
-        "max_falling_share": 0.05,
-        "tolerance": 0.03,
-        "knots": 16,
-        "grid": 200,
-        "q_low": 0.05,
-        "q_high": 0.95,
-        "min_bids": 1000,
-    },
-    # Implied value / bid on the same grid: fail when more than `max_outside_share` of it lies
-    # outside [min_ratio, max_ratio] (a value below the bid cannot be a best response).
-    "shading": {"severity": "warning", "min_ratio": 1.0, "max_ratio": 50.0, "max_outside_share": 0.05},
-    # Two-sample Kolmogorov-Smirnov, today's bids vs the trailing days' (per stratum, Bonferroni).
-    "drift": {"severity": "warning", "alpha": 1e-3, "trailing_days": 7, "min_bids": 200},
-    # Days since the experiment started or its shares changed; flagged while < days.
-    "warmup": {"severity": "warning", "days": 3, "changed_on": []},
-    # Great Expectations contract suite (counterbid.operators.contract).
-    "contract": {"severity": "error", "max_bidders": 200, "min_bidders": 2, "tie_tolerance": 1e-9, "sample_rows": 1000},
-}
-
 #: Names of the checks :func:`equilibrium_checks` returns, in order.
 STATISTICAL_CHECKS = (
     "sample_ratio",
@@ -145,70 +112,11 @@ STATISTICAL_CHECKS = (
     "monotone_values",
     "shading",
     "drift",
+    "auction_dependence",
+    "outlying_bids",
+    "dominant_bids",
     "warmup",
 )
-
-
-def check_config(*layers: Mapping[str, Any] | None, source: str = "checks") -> dict[str, dict[str, Any]]:
-    """Merge threshold overrides onto :data:`DEFAULT_CHECKS` and validate them.
-
-    Parameters
-    ----------
-    *layers : mapping or None
-        Override mappings ``{group: {key: value}}``, applied in order (later wins): typically
-        the experiment's ``checks:`` section, then an operator's ``config``.
-    source : str
-        Name of the configuration in error messages.
-
-    Returns
-    -------
-    dict
-        A full copy of the defaults with the overrides applied.
-
-    Raises
-    ------
-    InputError
-        Unknown group or key, a severity other than ``warning``/``error``, or a value of the
-        wrong type; the message names ``group.key``.
-    """
-    merged = copy.deepcopy({k: dict(v) for k, v in DEFAULT_CHECKS.items()})
-    for layer in layers:
-        if layer is None:
-            continue
-        if not isinstance(layer, Mapping):
-            raise InputError(f"{source}: must be a mapping of check name to settings")
-        for group, settings in layer.items():
-            if group not in merged:
-                raise InputError(f"{source}: unknown check {group!r} (known: {', '.join(merged)})")
-            if not isinstance(settings, Mapping):
-                raise InputError(f"{source}.{group}: must be a mapping of setting to value")
-            for key, value in settings.items():
-                if key not in merged[group]:
-                    raise InputError(
-                        f"{source}.{group}: unknown setting {key!r} (known: {', '.join(merged[group])})"
-                    )
-                merged[group][key] = _setting(value, merged[group][key], f"{source}.{group}.{key}", key)
-    return merged
-
-
-def _setting(value: Any, default: Any, where: str, key: str) -> Any:
-    if key == "severity":
-        if value not in SEVERITIES:
-            raise InputError(f"{where}: must be one of {', '.join(SEVERITIES)}; got {value!r}")
-        return value
-    if key == "changed_on":
-        if isinstance(value, (str, bytes)) or not isinstance(value, Sequence):
-            raise InputError(f"{where}: must be a list of dates YYYY-MM-DD; got {value!r}")
-        return [parse_day(v, what=where) for v in value]
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise InputError(f"{where}: must be a finite number; got {value!r}")
-    if isinstance(default, int) and not isinstance(default, bool):
-        if int(value) != value or value < 0:
-            raise InputError(f"{where}: must be a whole number >= 0; got {value!r}")
-        return int(value)
-    if value < 0:
-        raise InputError(f"{where}: must be >= 0; got {value!r}")
-    return float(value)
 
 
 def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> dict[str, dict[str, Any]]:
@@ -228,8 +136,6 @@ def _config(config: Mapping[str, Any] | None, experiment: Experiment | None) -> 
 
 
 def _prepared(bids, experiment: Experiment, source: str):
-    from .arms import PreparedBids, prepare_bids
-
     if isinstance(bids, PreparedBids):
         return bids
     return prepare_bids(bids, experiment, source=source)
@@ -945,10 +851,61 @@ def drift_check(bids, experiment: Experiment, history=None, *, config: Mapping[s
     return _result("drift", cfg, p >= cfg["alpha"], p, cfg["alpha"], by_bidders=tests)
 
 
+#: What the ``auction_dependence`` check's failure asks for (the spec keys that model auctions that differ).
+DEPENDENCE_REMEDY = ("declare segments (`segments:`) or scale covariates (`scale_covariates:`) in the experiment "
+                     "spec: the bids of one auction move together, so auctions differ in a way the spec does not model")
+
+
+def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                             source: str = "bids") -> CheckResult:
+    """Bids of one auction must be independent: intra-auction correlation of rank normal scores.
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame or PreparedBids
+    experiment : Experiment
+    config : mapping, optional
+        ``{"auction_dependence": {"alpha", "min_correlation", "error_correlation"}}``.
+    source : str
+
+    Returns
+    -------
+    CheckResult
+        ``observed`` is the pooled correlation ``r`` (:func:`~counterbid.estimators.dependence.
+        auction_dependence`, strata by number of bidders), ``threshold`` is ``min_correlation``.
+        Fails when ``r`` minus its null mean exceeds ``min_correlation`` and its one-sided p-value
+        is below ``alpha``; the severity is ``error`` when it also exceeds ``error_correlation``.
+        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r`` and, on
+        failure, the remedy (:data:`DEPENDENCE_REMEDY`).
+
+    Notes
+    -----
+    Under the model the bids of one auction are independent draws from the stratum's bid
+    distribution; auctions pooled from segments that differ, or an auction-level factor scaling
+    every value, make them move together and bias every arm's estimate upwards (the spread
+    between auctions read as competition within one). The thresholds come from the bias that
+    correlation implied on simulated equilibrium logs (docs/method.md, "Auctions that differ: the
+    dependence check").
+    """
+    cfg = _config(config, experiment)["auction_dependence"]
+    data = _prepared(bids, experiment, source)
+    dep = auction_dependence(data.bid, data.auction, data.n_bidders)
+    per = {s.key: {"correlation": s.correlation, "standard_error": s.standard_error, "auctions": s.n_auctions}
+           for s in dep.strata}
+    excess = dep.excess
+    passed = not (dep.p_value < cfg["alpha"] and excess > cfg["min_correlation"])
+    if not passed and excess > cfg["error_correlation"]:
+        cfg = {**cfg, "severity": "error"}
+    extra = {} if passed else {"remedy": DEPENDENCE_REMEDY}
+    return _result("auction_dependence", cfg, passed, dep.correlation, cfg["min_correlation"], z=dep.z,
+                   p_value=dep.p_value, standard_error=dep.standard_error, null_mean=dep.null_mean,
+                   error_correlation=cfg["error_correlation"], by_bidders=per, **extra)
+
+
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
                        config: Mapping[str, Any] | None = None, source: str = "bids",
                        counts: AuctionCounts | None = None,
-                       sample: Mapping[str, Any] | None = None) -> list[CheckResult]:
+                       sample: Mapping[str, Any] | None = None, outliers=None) -> list[CheckResult]:
     """Every statistical check of one (experiment, day), in :data:`STATISTICAL_CHECKS` order.
 
     Parameters
@@ -974,6 +931,10 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     sample : mapping, optional
         What ``bids`` is a sample of (e.g. ``{"shard": 0, "shards": 3, "bids_used": ...,
         "day_bids": ...}``), recorded as ``details["sample"]`` of each distribution check.
+    outliers : callable, optional
+        When ``bids`` is a sample: ``outliers({n_bidders: fence})`` returns the whole day's bids
+        above the sample's outlier fences (a frame with ``n_bidders, auction_id, bidder_id, bid,
+        effective_bid``), so ``outlying_bids`` and ``dominant_bids`` see every shard.
 
     Returns
     -------
@@ -993,13 +954,43 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     out += minimum_sample_checks(whole_day, experiment, config=cfg)
     fits, skipped = _inversions(data, experiment, cfg["monotone_values"])  # shared by both checks
     spread = [_monotone_values_result(fits, skipped, cfg["monotone_values"]), _shading_result(fits, skipped, cfg["shading"]),
-              drift_check(data, experiment, history, config=cfg, source=source)]
+              drift_check(data, experiment, history, config=cfg, source=source),
+              auction_dependence_check(data, experiment, config=cfg, source=source)]
     if sample is not None:  # the distribution checks ran on a sample of the day's auctions: say which
         note = _jsonable(dict(sample))
         spread = [replace(r, details={**r.details, "sample": note}) for r in spread]
     out += spread
+    out += _outlier_results(data, experiment, cfg, bids if isinstance(bids, pd.DataFrame) else None, sample,
+                            outliers, counts)
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))
+    return out
+
+
+def _outlier_results(data, experiment: Experiment, cfg, frame, sample, outliers, counts) -> list[CheckResult]:
+    """``outlying_bids`` and ``dominant_bids`` (estimators/outlying_bids.py), noting the sample they read.
+
+    ``outliers``, when given, is a callable taking the sample's fences (``{n: fence}``) and
+    returning the whole day's bids above them (the caller scans every shard); ``counts`` then
+    gives the whole day's strata sizes.
+    """
+    from .outlying_bids import outlier_fences, outlying_bid_checks
+
+    strata = _strata_bids(data)
+    day_flagged = day_bids = None
+    if outliers is not None:
+        own = cfg["outlying_bids"]
+        fences = outlier_fences(strata, max_robust_z=own["max_robust_z"], min_bids=own["min_bids"])
+        day_flagged = outliers({n: f["fence"] for n, f in fences.items()})
+        if counts is None:
+            counts = auction_counts(data, experiment)
+        day_bids = {int(n): int(a) * int(n) for n, a in zip(counts.n_bidders, counts.per_stratum)}
+    raw = outlying_bid_checks(strata, experiment, cfg, frame=frame, day_flagged=day_flagged, day_bids=day_bids)
+    out = [_result(name, cfg[name], passed, observed, threshold, **details)
+           for name, passed, observed, threshold, details in raw]
+    if sample is not None:
+        note = _jsonable(dict(sample))
+        out = [replace(r, details={**r.details, "sample": note}) for r in out]
     return out
 
 

@@ -1,7 +1,7 @@
 """What an interval of :func:`~counterbid.estimators.estimate_arms` speaks for: its level and clustering.
 
 The CLI, the results tables and the report all print these the same way, from what the run used
-(``DataFrame.attrs['confidence_level']`` and ``attrs['cluster']``), never from a default.
+(:class:`~.combine.ArmEstimates`' ``confidence_level`` and ``cluster``), never from a default.
 """
 
 from __future__ import annotations
@@ -52,22 +52,23 @@ def interval_label(level: float, cluster: str) -> str:
     return f"{format_level(level)}, clustered by {cluster}"
 
 
-def row_clusters(table: pd.DataFrame) -> pd.Series:
+def row_clusters(metrics: pd.Series, cluster: str) -> pd.Series:
     """The clustering each row's interval used.
 
     Parameters
     ----------
-    table : pandas.DataFrame
-        A result of ``estimate_arms`` (``attrs['cluster']`` set; a ``metric`` column).
+    metrics : pandas.Series of str
+        The rows' ``metric`` column (of :class:`~.combine.ArmEstimates`' table).
+    cluster : {'auction', 'bidder'}
+        The clustering the run used (``ArmEstimates.cluster``).
 
     Returns
     -------
     pandas.Series of str
-        ``attrs['cluster']`` on every row, except the realized per-arm averages (always
-        ``'auction'``).
+        ``cluster`` on every row, except the realized per-arm averages (always ``'auction'``);
+        indexed like ``metrics``.
     """
-    cluster = table.attrs.get("cluster")
     if cluster not in POPULATION:
-        raise InputError(f"estimate table: attrs['cluster'] must be one of {', '.join(POPULATION)}; got {cluster!r}")
-    by_auction = table["metric"].isin(AUCTION_CLUSTERED_METRICS).to_numpy()
-    return pd.Series(np.where(by_auction, "auction", cluster), index=table.index, name="cluster")
+        raise InputError(f"estimate: cluster must be one of {', '.join(POPULATION)}; got {cluster!r}")
+    by_auction = metrics.isin(AUCTION_CLUSTERED_METRICS).to_numpy()
+    return pd.Series(np.where(by_auction, "auction", cluster), index=metrics.index, name="cluster")

@@ -23,10 +23,13 @@ import pandas as pd
 from scipy import stats
 
 from .allocation import allocation_rule, mixture_rule
-from .arms import estimate_arms, prepare_bids
+from .arms import estimate_arms
+from .bids import prepare_bids
 from .errors import EstimatorWarning, InputError
+from .sequential import anytime_multiplier
 from .simulate import simulate_experiment
 from .spec import Experiment
+from .study import ordstat_revenue, simulate_prepared
 from .two_step import pseudo_values
 
 __all__ = ["DEFAULT_SHARES", "PLAN_COLUMNS", "SharePlan", "pilot_values", "plan_shares", "simulated_half_width",
@@ -63,6 +66,9 @@ class SharePlan:
         ``'assumed'`` (a value distribution given by the caller).
     pilot_scale : dict
         Per (arm, metric): pilot SE over simulated SE at the pilot's shares (empty when assumed).
+    anytime : bool
+        Half-widths are those of the anytime-valid bounds at the planned end (valid at every daily
+        look), not of the fixed interval.
     """
 
     table: pd.DataFrame
@@ -73,6 +79,7 @@ class SharePlan:
     confidence_level: float
     basis: str
     pilot_scale: Mapping[tuple[str, str], float]
+    anytime: bool = False
 
 
 def with_treated_share(experiment: Experiment, share: float) -> Experiment:
@@ -151,7 +158,7 @@ def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> p
                                payment_rule=experiment.payment_rule, floor=experiment.floor or None)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)  # welfare's missing interval: not planned
-        return _sigma_of(estimate_arms(bids, experiment, cluster="auction"), n_auctions)
+        return _sigma_of(estimate_arms(bids, experiment, cluster="auction").table, n_auctions)
 
 
 def _sigma_of(result: pd.DataFrame, n_auctions: int) -> pd.DataFrame:
@@ -200,6 +207,7 @@ def plan_shares(
     calibration_auctions: int = 20_000,
     rng: np.random.Generator | int | None = 0,
     source: str = "bids",
+    anytime: bool = False,
 ) -> SharePlan:
     """Predict each arm's confidence-interval half-width after ``days`` days, for a range of shares.
 
@@ -228,6 +236,11 @@ def plan_shares(
         Seed of the calibration simulations (default 0: plans are reproducible).
     source : str
         Name of the pilot in error messages.
+    anytime : bool
+        Plan for the anytime-valid bounds of the experiment to date at the planned end (the
+        ``days x auctions_per_day`` auctions they are tuned for) instead of the fixed interval:
+        every half-width uses :func:`~.sequential.anytime_multiplier` at ratio 1 (3.035 standard
+        errors at 95 %) in place of ``z`` (1.960), so it is 1.55 times wider at 95 %.
 
     Returns
     -------
@@ -269,7 +282,10 @@ def plan_shares(
                  calibration_auctions)
     rng = np.random.default_rng(rng)
     total = int(days) * int(auctions_per_day)
-    z = float(stats.norm.ppf(0.5 + confidence_level / 2))
+    if not isinstance(anytime, bool):
+        raise InputError(f"`anytime` must be True or False; got {anytime!r}")
+    z = float(anytime_multiplier(1.0, confidence_level=confidence_level)) if anytime \
+        else float(stats.norm.ppf(0.5 + confidence_level / 2))
     m = int(calibration_auctions)
     scale: dict[tuple[str, str], float] = {}
     if bids is not None:
@@ -279,7 +295,7 @@ def plan_shares(
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", EstimatorWarning)
             pilot = estimate_arms(bids, experiment, confidence_level=confidence_level, cluster="auction", source=source)
-        observed = _sigma_of(pilot, int(pilot.attrs["n_auctions"]))
+        observed = _sigma_of(pilot.table, pilot.n_auctions)
         simulated = _sigma(values, experiment, n_bidders, m, rng)
         scale = {key: float(observed.loc[key, "sigma"] / simulated.loc[key, "sigma"])
                  for key in observed.index if np.isfinite(observed.loc[key, "sigma"]) and simulated.loc[key, "sigma"] > 0}
@@ -329,7 +345,7 @@ def plan_shares(
         recommended = float(ok.index.min()) if len(ok) else None
     return SharePlan(table=table, recommended_share=recommended, target_half_width=target_half_width,
                      target_metric=target_metric, n_auctions=total, confidence_level=confidence_level,
-                     basis=basis, pilot_scale=scale)
+                     basis=basis, pilot_scale=scale, anytime=anytime)
 
 
 def simulated_half_width(
@@ -364,8 +380,6 @@ def simulated_half_width(
         Columns ``arm, metric, simulated_half_width, mean_reported_half_width`` (the mean of the
         estimator's own half-widths; revenue only), ``reps``.
     """
-    from .study import ordstat_revenue, simulate_prepared
-
     if isinstance(reps, bool) or not isinstance(reps, (int, np.integer)) or reps < 2:
         raise InputError(f"`reps` must be an integer >= 2; got {reps!r}")
     if isinstance(n_bidders, bool) or not isinstance(n_bidders, (int, np.integer)) or n_bidders < 2:

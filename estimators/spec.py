@@ -9,9 +9,12 @@ A spec file (YAML) holds one or more experiments::
         start: 2026-03-01          # optional: first day the experiment runs
         end: 2026-03-28            # optional: last day (inclusive)
         floor: 0.05                # optional: floor per click, shared by every arm (effective-bid units)
+        max_bid: 40.0              # optional: the largest bid the marketplace accepts (bid units)
         arms:
           - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
           - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+        what_if:                   # optional: layouts that did not run, estimated from the same bids
+          - {name: steep-top, position_weights: [0.40, 0.15, 0.05]}
         checks: {}                 # optional: thresholds for the data checks
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
@@ -22,9 +25,19 @@ the whole experiment: bids (effective bids ``bid x quality`` when the log has a 
 column) below it are ineligible and logged with a null position. Floors that differ by arm are
 not modelled, and the spec has no per-arm ``floor`` key (refused as an unknown key).
 
+``max_bid`` is the largest bid the marketplace accepts (the ``bid`` column, before any quality
+factor). A logged bid above it cannot have been placed, so the log is wrong (a unit slip, a
+corrupt row): :func:`~counterbid.estimators.prepare_bids` refuses it with one line naming the row
+and the value, and no number is estimated from that input.
+
 ``burn_in_days`` and ``exclude_days`` shape the analysis window of the experiment-to-date numbers:
 the first ``burn_in_days`` days from ``start`` and every listed day are left out, besides the days
 whose warm-up or drift check failed (the pipeline's default).
+
+``what_if`` lists layouts that did not run: each gets revenue and welfare per auction and its lift
+against control from the mixture's bids (``docs/method.md``, "Layouts that did not run"). Names must
+differ from the arms' and from each other; weights are validated as the arms' and cannot be
+``measured`` (a layout that never ran has no clicks to measure).
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -42,14 +55,16 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import yaml
 
+from .check_settings import check_config
+from .days import parse_day
 from .errors import InputError
 from .payment_rules import PAYMENT_RULES as _PAYMENT_RULES
 
 __all__ = [
     "Arm",
+    "WhatIf",
     "Experiment",
     "PAYMENT_RULES",
     "SHARE_TOLERANCE",
@@ -68,8 +83,9 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days"})
+                             "burn_in_days", "exclude_days", "max_bid", "what_if"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
+WHAT_IF_KEYS = frozenset({"name", "position_weights", "description"})
 
 
 def _refuse_unknown(raw: Mapping, known: frozenset, where: str) -> None:
@@ -110,6 +126,27 @@ class Arm:
 
 
 @dataclass(frozen=True)
+class WhatIf:
+    """A layout that did not run: estimated from the bids placed against the experiment's mixture.
+
+    Attributes
+    ----------
+    name : str
+        Label of its result rows (distinct from every arm's name).
+    position_weights : tuple of float
+        Click weight of each position, top first, non-increasing and non-negative.
+    """
+
+    name: str
+    position_weights: tuple[float, ...]
+
+    def weights_for(self, n_bidders: int) -> tuple[float, ...]:
+        """Position weights padded with zeros (or cut) to ``n_bidders`` positions."""
+        w = tuple(self.position_weights[:n_bidders])
+        return w + (0.0,) * (n_bidders - len(w))
+
+
+@dataclass(frozen=True)
 class Experiment:
     """An auction-rule experiment: which arms run in which share of auctions.
 
@@ -134,6 +171,11 @@ class Experiment:
         Days from ``start`` left out of the experiment-to-date numbers (0: none).
     exclude_days : tuple of datetime.date
         Days left out of the experiment-to-date numbers, sorted.
+    max_bid : float or None
+        The largest bid the marketplace accepts, in the units of the ``bid`` column (before
+        quality); a logged bid above it is refused as bad input. ``None``: no bound.
+    what_if : tuple of WhatIf
+        Layouts that did not run, estimated from the same bids (no share: not in the mixture).
     """
 
     id: str
@@ -146,10 +188,22 @@ class Experiment:
     checks: Mapping[str, Any] = field(default_factory=dict)
     burn_in_days: int = 0
     exclude_days: tuple[_dt.date, ...] = ()
+    max_bid: float | None = None
+    what_if: tuple[WhatIf, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
         return tuple(a.name for a in self.arms)
+
+    @property
+    def target_names(self) -> tuple[str, ...]:
+        """Every layout estimated: the arms, then the what-if layouts."""
+        return self.arm_names + tuple(w.name for w in self.what_if)
+
+    @property
+    def targets(self) -> tuple[Arm | WhatIf, ...]:
+        """The arms, then the what-if layouts (each has ``name`` and ``weights_for``)."""
+        return tuple(self.arms) + tuple(self.what_if)
 
     @property
     def shares(self) -> tuple[float, ...]:
@@ -196,47 +250,6 @@ def _weights(raw: Any, where: str) -> tuple[float, ...]:
     return tuple(out)
 
 
-def parse_day(value: Any, *, what: str = "ds") -> _dt.date:
-    """A calendar day from a ``date``, a ``datetime`` or an ISO 8601 text.
-
-    Parameters
-    ----------
-    value : date, datetime, numpy.datetime64 or str
-        ``datetime`` values (``pandas.Timestamp`` included) give their date; texts are
-        ``YYYY-MM-DD`` or an ISO date-time such as Airflow's ``2026-03-02T00:00:00+00:00``.
-        Numbers are refused.
-    what : str, optional
-        What is being parsed (``ds``, ``--start``, a spec key); named in the error message.
-
-    Returns
-    -------
-    datetime.date
-
-    Raises
-    ------
-    InputError
-        ``value`` is not a day; the message names ``what`` and shows the value.
-
-    Examples
-    --------
-    >>> parse_day("2026-03-02T00:00:00+00:00")
-    datetime.date(2026, 3, 2)
-    """
-    if isinstance(value, _dt.datetime):
-        return value.date()
-    if isinstance(value, _dt.date):
-        return value
-    text = value if isinstance(value, str) else str(value)[:10] if isinstance(value, np.datetime64) else None
-    try:
-        if text is not None and len(text) > 10 and text[10] in "T ":  # a date-time: its date
-            return _dt.datetime.fromisoformat(text).date()
-        if text is not None:
-            return _dt.date.fromisoformat(text)
-    except ValueError:
-        pass
-    raise InputError(f"{what}: must be a date YYYY-MM-DD; got {value!r}")
-
-
 def _experiment(raw: Any, where: str) -> Experiment:
     if not isinstance(raw, Mapping):
         raise InputError(f"{where}: must be a mapping with keys id, control_arm, arms")
@@ -246,6 +259,9 @@ def _experiment(raw: Any, where: str) -> Experiment:
     if not valid_id:
         raise InputError(f"{where}: 'id' must be a non-empty string")
     exp_id = str(exp_id)
+    if not _NAME.match(exp_id):  # ids name folders, lake partitions and database rows: arm names' alphabet
+        raise InputError(f"{where}: experiment id {exp_id!r} must be 1-128 characters of letters, digits, '_', '.', "
+                         "'-' not starting with '_', '.' or '-'")
     where = f"{where} (id {exp_id!r})"
     rule = raw.get("payment_rule", "first_price")
     if not isinstance(rule, str) or rule not in PAYMENT_RULES:
@@ -287,6 +303,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     floor = raw.get("floor")
     if floor is not None and (isinstance(floor, bool) or not isinstance(floor, (int, float)) or not math.isfinite(floor) or floor < 0):
         raise InputError(f"{where}: 'floor' must be a finite number >= 0; got {floor!r}")
+    max_bid = _max_bid(raw.get("max_bid"), floor, where)
     start = None if raw.get("start") is None else parse_day(raw["start"], what=f"{where} start")
     end = None if raw.get("end") is None else parse_day(raw["end"], what=f"{where} end")
     if start and end and end < start:
@@ -294,8 +311,6 @@ def _experiment(raw: Any, where: str) -> Experiment:
     checks = raw.get("checks") or {}
     if not isinstance(checks, Mapping):
         raise InputError(f"{where}: 'checks' must be a mapping")
-    from .checks import check_config  # checks.py imports this module
-
     check_config(checks, source=f"{where} checks")  # unknown check or setting, or a bad value: refused now
     burn_in = raw.get("burn_in_days", 0)
     if isinstance(burn_in, bool) or not isinstance(burn_in, int) or burn_in < 0:
@@ -304,6 +319,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     if isinstance(excluded_raw, (str, bytes)) or not isinstance(excluded_raw, Sequence):
         raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
+    what_if = _what_ifs(raw.get("what_if"), {a.name for a in arms}, where)
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -315,7 +331,51 @@ def _experiment(raw: Any, where: str) -> Experiment:
         checks=dict(checks),
         burn_in_days=int(burn_in),
         exclude_days=excluded,
+        max_bid=max_bid,
+        what_if=what_if,
     )
+
+
+def _max_bid(value: Any, floor: Any, where: str) -> float | None:
+    """The spec's ``max_bid``: ``None``, or a finite number > 0 and not below the floor."""
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+        raise InputError(f"{where}: 'max_bid' must be a finite number > 0; got {value!r}")
+    if floor is not None and value < floor:
+        raise InputError(f"{where}: 'max_bid' {value!r} lies below the floor {floor!r}")
+    return float(value)
+
+
+def _what_ifs(raw: Any, arm_names: set[str], where: str) -> tuple[WhatIf, ...]:
+    """The ``what_if`` list: names as the arms' (distinct from them), weights as the arms' but never measured."""
+    if raw is None:
+        return ()
+    if not isinstance(raw, Sequence) or isinstance(raw, (str, bytes)):
+        raise InputError(f"{where}: 'what_if' must be a list of {{name, position_weights}}")
+    out: list[WhatIf] = []
+    for i, item in enumerate(raw):
+        ww = f"{where} what_if[{i}]"
+        if not isinstance(item, Mapping):
+            raise InputError(f"{ww}: must be a mapping with keys name, position_weights")
+        name = item.get("name")
+        if "share" in item:
+            raise InputError(f"{ww} ({name}): a what-if layout did not run and has no 'share'; "
+                             "list it under 'arms' if it ran")
+        _refuse_unknown(item, WHAT_IF_KEYS, f"{ww} ({name})" if isinstance(name, str) else ww)
+        if not isinstance(name, str) or not _NAME.match(name):
+            raise InputError(f"{ww}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
+                             f"not starting with '_' or '-'; got {name!r}")
+        if name in arm_names:
+            raise InputError(f"{ww}: name {name!r} is already an arm's; a what-if layout needs its own name")
+        if name in {w.name for w in out}:
+            raise InputError(f"{ww}: duplicate what-if name {name!r}")
+        pw = item.get("position_weights")
+        if pw == "measured":
+            raise InputError(f"{ww} ({name}): position_weights cannot be 'measured' for a layout that did not run "
+                             "(it has no clicks); give the weights as numbers")
+        out.append(WhatIf(name, _weights(pw, f"{ww} ({name}) position_weights")))
+    return tuple(out)
 
 
 def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Experiment]:

@@ -28,18 +28,16 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from ._floor import add_floor_influence, clamp_at_floor
-from ._lstatistic import l_statistic
 from ._realized import realized_averages
 from .allocation import AllocationRule, allocation_rule, mixture_rule
-from .arms import PreparedBids
+from .bids import PreparedBids, sorted_with_order
 from .errors import InputError
 from .order_weights import revenue_weights
-from .payment_rules import check_payment_rule
+from .payment_rules import Floor, check_payment_rule
 from .simulate import BidFunction, equilibrium_bid_function, expected_revenue_per_auction, floor_quantile
 from .spec import Experiment, parse_experiments
-from .two_step import _revenue as _two_step_revenue
-from .two_step import pseudo_values
+from .stratum import FloorStep, MetricWeights, estimate_stratum, floor_step
+from .two_step import pseudo_value_revenue, pseudo_values
 
 __all__ = [
     "CONTROL_WEIGHTS",
@@ -56,9 +54,11 @@ __all__ = [
     "two_step_applies",
 ]
 
-#: Value distributions per click used by the study (frozen scipy.stats objects).
+#: Value distributions per click used by the study, the simulator's command line and the planner
+#: (frozen scipy.stats objects): uniform on [0, 1] (so ``v(q) = q``, the closed forms of
+#: ``docs/method.md`` apply), Beta(2, 5) scaled to [0, 3], log-normal with sigma 0.5 and median 0.8.
 VALUE_DISTRIBUTIONS = {
-    "uniform": stats.uniform(0, 2),
+    "uniform": stats.uniform(0, 1),
     "beta": stats.beta(2, 5, scale=3),
     "lognormal": stats.lognorm(0.5, scale=0.8),
 }
@@ -229,6 +229,27 @@ def _increments(target: tuple[float, ...], mixture: tuple[float, ...], n_bids: i
     return w.increments(n_bids), float(w.top), float(w.bottom)
 
 
+def _cached_weights(target: AllocationRule, mixture: AllocationRule, n_bids: int, payment_rule: str,
+                    floor: Floor | None) -> MetricWeights:
+    """A target's revenue weights for the kernel, the increments cached per (target, mixture, N, rule).
+
+    With a floor only the floor's two terms depend on the replicate (through ``q*``); the
+    increments are the no-floor ones and the floor's term replaces the bottom bid's.
+    """
+    n = mixture.n_bidders
+    inc, top, bottom = _increments(tuple(target.position_weights.tolist()), tuple(mixture.position_weights.tolist()),
+                                   n_bids, payment_rule)
+    increments = functools.partial(_scaled_slice, inc, n)
+    if floor is None:
+        return MetricWeights(increments, top, bottom)
+    ww = revenue_weights(target, mixture, n_bids, payment_rule=payment_rule, floor=floor)
+    return MetricWeights(increments, top, 0.0, float(ww.floor_term), float(ww.floor_slope))
+
+
+def _scaled_slice(inc: np.ndarray, n: int, lo: int, hi: int) -> np.ndarray:
+    return n * inc[lo:hi]
+
+
 def ordstat_revenue(
     data: PreparedBids,
     targets: Sequence[AllocationRule],
@@ -239,11 +260,12 @@ def ordstat_revenue(
 ) -> OrdstatResult:
     """The weighted order-statistic revenue estimate of each target arm, one stratum.
 
-    The same computation as :func:`~.arms.estimate_arms` for a single number of bidders (the
-    tests check they agree), with the weights cached across replicates of equal size. With a
-    floor, the floor step is the estimator's own (:mod:`._floor`): ``q*`` is the share of
-    sub-floor bids, the sorted bids are clamped at the floor, the floor's boundary term is added
-    and its influence term (``q*`` is estimated) enters the standard error.
+    The estimator's own kernel (:func:`~.stratum.estimate_stratum`, what ``estimate_arms`` runs
+    per stratum; the tests check they agree), with the weights' increments cached across
+    replicates of equal size. With a floor, the floor step is the kernel's
+    (:func:`~.stratum.floor_step`): ``q*`` is the share of sub-floor bids, the sorted bids are
+    clamped at the floor, the floor's boundary term is added and its influence term (``q*`` is
+    estimated) enters the standard error.
 
     Parameters
     ----------
@@ -261,7 +283,8 @@ def ordstat_revenue(
     Returns
     -------
     OrdstatResult
-        NaN for every arm when every bid lies below the floor.
+        NaN for every arm when every bid lies below the floor. Standard errors clustered by
+        auction, with the factor ``G / (G - 1)``.
 
     References
     ----------
@@ -274,34 +297,20 @@ def ordstat_revenue(
     n = mixture.n_bidders
     if np.any(data.n_bidders != n):
         raise InputError(f"every auction must have {n} bidders for ordstat_revenue")
-    order = np.argsort(data.bid, kind="stable")
-    b = data.bid[order]
+    order, b = sorted_with_order(data.bid)  # the stable order
     cl = data.auction[order]
     big_n, g = b.size, data.n_auctions
-    mix_key = tuple(mixture.position_weights.tolist())
-    est = np.empty(len(targets))
+    step = floor_step(b, float(floor)) if floor else FloorStep(None, 0)
+    if floor and step.floor is None:  # every bid below the floor: a degenerate stratum (as in estimate_arms)
+        return OrdstatResult(np.full(len(targets), np.nan), np.full(len(targets), np.nan))
+    weights = [_cached_weights(t, mixture, big_n, payment_rule, step.floor) for t in targets]
     se = np.empty(len(targets))
-    at_floor = None
-    if floor:
-        at_floor, n_below = clamp_at_floor(b, float(floor))
-        if at_floor is None:  # every bid below the floor: a degenerate stratum (as in estimate_arms)
-            return OrdstatResult(np.full(len(targets), np.nan), np.full(len(targets), np.nan))
-    influence = np.empty(big_n)
-    for k, target in enumerate(targets):
-        t_key = tuple(target.position_weights.tolist())
-        inc, top, bottom = _increments(t_key, mix_key, big_n, payment_rule)
-        lstat = l_statistic(lambda lo, hi, inc=inc: n * inc[lo:hi], b, influence)
-        if at_floor is None:
-            est[k] = lstat - n * bottom * float(b[0])
-        else:  # the floor's term replaces the bottom bid's
-            ww = revenue_weights(target, mixture, big_n, payment_rule=payment_rule, floor=at_floor)
-            est[k] = lstat + n * ww.floor_term
-            add_floor_influence(influence, n_below, n * ww.floor_slope, at_floor.quantile)
-        if top:
-            est[k] += n * top * float(b[-1])
-        influence /= big_n
+
+    def std_error(k: int, influence: np.ndarray) -> None:
         sums = np.bincount(cl, weights=influence, minlength=g)
         se[k] = math.sqrt(g / (g - 1) * float(sums @ sums)) if g > 1 else np.nan
+
+    est = estimate_stratum(b, n, weights, [], step, on_influence=std_error)
     return OrdstatResult(est, se)
 
 
@@ -425,7 +434,7 @@ def size_cell(values_name: str, n: int, n_bids: int, *, share: float, reps: int,
         est[r], se[r] = res.estimate, res.std_error
         if two_step and (two_step_reps is None or r < two_step_reps):
             pv = pseudo_values(np.sort(data.bid), mix)
-            ts[r] = [_two_step_revenue(pv, rule, n) for rule in rules]
+            ts[r] = [pseudo_value_revenue(pv, rule, n) for rule in rules]
     rows = []
     values = VALUE_DISTRIBUTIONS[values_name]
     for k, arm in enumerate(exp.arms):

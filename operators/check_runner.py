@@ -25,7 +25,7 @@ from counterbid.sql import render_sql, validate_identifier
 from .contract import run_contract, with_quality
 from .results_schema import as_session, migrate
 
-__all__ = ["day_bid_quantiles", "ensure_data_checks_table", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["day_bid_quantiles", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
 
@@ -126,12 +126,30 @@ def run_checks(
             history = None
     elif history_quantiles is not None and not history_quantiles.empty:
         history = history_quantiles
+    outliers = None if sample_relation is None else (lambda fences: _bids_above_fences(con, relation, fences))
     try:
         results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg,
-                                      source=sample_relation or relation, counts=counts, sample=sample)
+                                      source=sample_relation or relation, counts=counts, sample=sample,
+                                      outliers=outliers)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
     return results
+
+
+#: Most outlying bids of a day the checks read back (they name ten; the rest only add to the share).
+MAX_FLAGGED_BIDS = 100_000
+
+
+def _bids_above_fences(con, relation: str, fences: Mapping[int, float]) -> pd.DataFrame:
+    """The whole day's bids above the sample's outlier fences (``sql/check_bids_above_fence.sql``)."""
+    table = pd.DataFrame({"n_bidders": pd.Series(list(fences), dtype="int64"),
+                          "fence": pd.Series(list(fences.values()), dtype="float64")})
+    con.register("outlier_fences", table)
+    try:
+        return con.sql(render_sql("check_bids_above_fence", relation=relation, fences="outlier_fences"),
+                       params={"max_flagged": MAX_FLAGGED_BIDS}).df()
+    finally:
+        con.unregister("outlier_fences")
 
 
 def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFrame:
@@ -155,14 +173,6 @@ def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) ->
         if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
             table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
     return table.to_pandas()
-
-
-def ensure_data_checks_table(con, *, schema: str = "main") -> None:
-    """Bring the results schema (``data_checks`` included) to this version (see ``results_schema.migrate``).
-
-    ``con`` is a :class:`~counterbid.operators.results_schema.ResultsSession` or a DuckDB connection.
-    """
-    migrate(as_session(con, schema=schema))
 
 
 def write_check_results(

@@ -4,7 +4,12 @@ The validating task pushes its outcomes to XCom under :data:`XCOM_KEY` as
 ``{"experiment_id", "ds", "results": [CheckResult fields...]}`` (see :func:`check_payload`); the
 notifier, attached as a task's ``on_failure_callback`` (error checks) or ``on_success_callback``
 (it stays silent when nothing failed), pulls them and sends the message to the log (default), an
-HTTP webhook or e-mail, both through Airflow connections.
+HTTP webhook, a Slack incoming webhook or e-mail, through Airflow's HTTP, Slack and SMTP providers
+and their connections (:mod:`counterbid.operators.alert_targets`).
+
+A delivery that fails is logged (target, connection, reason) and raised from the callback; Airflow
+logs the callback's failure and leaves the task's own outcome as it was, so a failed alert never
+replaces a failed check as the task's failure.
 
 Task-level callbacks run under ``dag.test()``; a notifier object given as a DAG-level callback
 does not, so attach it to the validating task.
@@ -12,17 +17,16 @@ does not, so attach it to the validating task.
 
 from __future__ import annotations
 
-import json
 import logging
-import urllib.error
-import urllib.request
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
-from airflow.sdk import BaseHook, BaseNotifier
+from airflow.sdk import BaseNotifier
 
 from counterbid.estimators.checks import CheckResult, failure_summary, worst_failure
 from counterbid.estimators.errors import InputError
+
+from . import alert_targets
 
 __all__ = ["CheckAlertNotifier", "TARGETS", "XCOM_KEY", "build_alert", "check_payload"]
 
@@ -30,7 +34,7 @@ log = logging.getLogger(__name__)
 
 #: XCom key under which the validating task stores its check outcomes.
 XCOM_KEY = "counterbid_checks"
-TARGETS = ("log", "webhook", "smtp")
+TARGETS = ("log", "webhook", "slack", "smtp")
 
 
 def check_payload(results: Iterable[CheckResult], *, experiment_id: str, ds) -> dict[str, Any]:
@@ -75,23 +79,36 @@ def build_alert(payload: Mapping[str, Any]) -> dict[str, Any]:
 
 
 class CheckAlertNotifier(BaseNotifier):
-    """Send the failed data checks of a validating task to a log, webhook or mailbox.
+    """Send the failed data checks of a validating task to a log, webhook, Slack channel or mailbox.
 
     Parameters
     ----------
-    target : {'log', 'webhook', 'smtp'}, optional
+    target : {'log', 'webhook', 'slack', 'smtp'}, optional
         Where to send; default ``log`` (the task log, level WARNING).
     conn_id : str, optional
-        Airflow connection of the target. ``webhook``: an HTTP connection (``schema`` http or
-        https, ``host``, ``port``; extra ``endpoint`` path and ``headers``); the message is
-        POSTed as JSON. ``smtp``: an SMTP connection for the SMTP provider's hook; extra ``to``
-        (list of addresses) unless ``to`` is given.
+        Airflow connection of the target (see :mod:`counterbid.operators.alert_targets`).
+        ``webhook``: an HTTP connection (base URL; extra keys are headers, ``timeout`` seconds);
+        the alert is POSTed as JSON. ``slack``: a ``slackwebhook`` connection (password = the
+        webhook token or URL; extra ``timeout``); the alert's text is the message. ``smtp``: an
+        SMTP connection (extras ``from_email``, ``to``, ``timeout``, ``retry_limit``).
     task_id : str, optional
         Task whose XCom holds the outcomes; default the task the callback runs for.
     to : sequence of str, optional
-        Recipients (``smtp``).
-    timeout : float, optional
-        Seconds for the webhook request.
+        Recipients (``smtp``); default the connection's extra ``to``.
+    endpoint : str, optional
+        Path after the HTTP connection's base URL (``webhook``).
+    retries : int, optional
+        Extra tries of a ``webhook`` or ``slack`` post after a connection error, a timeout
+        (``webhook``) or a server error, through the provider's own retry (default 2). E-mail
+        retries are the SMTP connection's ``retry_limit``.
+    retry_args : mapping, optional
+        Tenacity settings replacing the ``webhook`` retry (as ``HttpOperator``'s ``retry_args``).
+
+    Raises
+    ------
+    InputError
+        At construction: an unknown target, a missing ``conn_id``, a bad ``retries``, or the
+        target's provider not installed (one line naming the ``alerts`` extra).
 
     Notes
     -----
@@ -99,7 +116,7 @@ class CheckAlertNotifier(BaseNotifier):
     task, logical date and the exception instead.
     """
 
-    template_fields = ("task_id",)
+    template_fields = ("task_id", "endpoint")
 
     def __init__(
         self,
@@ -108,20 +125,25 @@ class CheckAlertNotifier(BaseNotifier):
         conn_id: str | None = None,
         task_id: str | None = None,
         to: Sequence[str] | None = None,
-        timeout: float = 10.0,
+        endpoint: str | None = None,
+        retries: int = 2,
+        retry_args: Mapping[str, Any] | None = None,
     ) -> None:
         super().__init__()
         if target not in TARGETS:
             raise InputError(f"CheckAlertNotifier: `target` must be one of {', '.join(TARGETS)}; got {target!r}")
         if target != "log" and not conn_id:
             raise InputError(f"CheckAlertNotifier: target {target!r} needs `conn_id` (an Airflow connection)")
-        if not (isinstance(timeout, (int, float)) and timeout > 0):
-            raise InputError(f"CheckAlertNotifier: `timeout` must be > 0; got {timeout!r}")
+        if isinstance(retries, bool) or not isinstance(retries, int) or retries < 0:
+            raise InputError(f"CheckAlertNotifier: `retries` must be an integer >= 0; got {retries!r}")
+        alert_targets.require_provider(target)
         self.target = target
         self.conn_id = conn_id
         self.task_id = task_id
         self.to = list(to) if to else None
-        self.timeout = float(timeout)
+        self.endpoint = endpoint
+        self.retries = retries
+        self.retry_args = dict(retry_args) if retry_args else None
 
     # -- message --------------------------------------------------------------------------
     def alert_from_context(self, context: Mapping[str, Any]) -> dict[str, Any] | None:
@@ -150,50 +172,29 @@ class CheckAlertNotifier(BaseNotifier):
         if alert is None:
             self.log.info("counterbid checks: nothing failed, no alert sent")
             return
-        self.send(alert)
+        try:
+            self.send(alert)
+        except Exception as exc:
+            # Airflow logs the callback's failure too; the task keeps its own outcome and reason.
+            self.log.error("counterbid checks alert NOT delivered (the task's outcome stands): %s", exc)
+            raise
 
     # -- targets --------------------------------------------------------------------------
     def send(self, alert: Mapping[str, Any]) -> None:
-        """Deliver ``alert`` (from :func:`build_alert`) to the configured target."""
+        """Deliver ``alert`` (from :func:`build_alert`) to the configured target.
+
+        Raises :class:`~counterbid.operators.alert_targets.AlertDeliveryError` when the target
+        refuses it or does not answer in time.
+        """
         if self.target == "log":
             self.log.warning("counterbid checks alert:\n%s", alert["text"])
         elif self.target == "webhook":
-            self._post(alert)
+            status = alert_targets.post_webhook(self.conn_id, alert, endpoint=self.endpoint, retries=self.retries,
+                                                retry_args=self.retry_args)
+            self.log.info("counterbid checks alert posted to webhook %r (%s)", self.conn_id, status)
+        elif self.target == "slack":
+            status = alert_targets.post_slack(self.conn_id, alert["text"], retries=self.retries)
+            self.log.info("counterbid checks alert posted to slack %r (%s)", self.conn_id, status)
         else:
-            self._mail(alert)
-
-    def _post(self, alert: Mapping[str, Any]) -> None:
-        conn = BaseHook.get_connection(self.conn_id)
-        extra = conn.extra_dejson or {}
-        scheme = conn.schema or "http"
-        if scheme not in ("http", "https") or not conn.host:
-            raise InputError(f"connection {self.conn_id!r}: webhook needs schema http/https and a host")
-        port = f":{conn.port}" if conn.port else ""
-        endpoint = "/" + str(extra.get("endpoint", "")).lstrip("/")
-        url = f"{scheme}://{conn.host}{port}{endpoint}"
-        headers = {"Content-Type": "application/json", **{str(k): str(v) for k, v in dict(extra.get("headers", {})).items()}}
-        body = json.dumps(dict(alert), default=str).encode("utf-8")
-        request = urllib.request.Request(url, data=body, headers=headers, method="POST")
-        try:
-            with urllib.request.urlopen(request, timeout=self.timeout) as response:  # noqa: S310 (scheme checked)
-                status = response.status
-        except urllib.error.HTTPError as exc:
-            raise RuntimeError(f"webhook {self.conn_id!r} answered HTTP {exc.code}") from None
-        self.log.info("counterbid checks alert posted to %s (HTTP %s)", url, status)
-
-    def _mail(self, alert: Mapping[str, Any]) -> None:
-        from airflow.providers.smtp.hooks.smtp import SmtpHook
-
-        with SmtpHook(smtp_conn_id=self.conn_id) as hook:
-            to = self.to or hook.conn.extra_dejson.get("to")  # type: ignore[union-attr]
-            if not to:
-                raise InputError(f"connection {self.conn_id!r}: no recipients (give `to` or extra 'to')")
-            day = alert.get("ds") or ""
-            subject = f"counterbid checks: {alert.get('experiment_id') or 'pipeline'} {day} ({alert.get('worst')})"
-            html = "<pre>" + _escape(alert["text"]) + "</pre>"
-            hook.send_email_smtp(to=to, subject=subject, html_content=html)
-        self.log.info("counterbid checks alert mailed to %s", to)
-
-
-def _escape(text: str) -> str:
-    return text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+            to = alert_targets.mail_alert(self.conn_id, alert, to=self.to)
+            self.log.info("counterbid checks alert mailed to %s", ", ".join(to))

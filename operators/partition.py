@@ -13,30 +13,43 @@ import json
 import logging
 import shutil
 from collections.abc import Mapping
-from dataclasses import asdict, replace
+from dataclasses import asdict
 from pathlib import Path
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from counterbid.estimators import CheckResult, Experiment, load_experiments, measured_position_weights, parse_day, worst_failure
-from counterbid.estimators.arms import METHOD_VERSION
+from counterbid.estimators import (
+    ArmEstimates,
+    CheckResult,
+    Experiment,
+    StratumPiece,
+    combine_pieces,
+    load_experiments,
+    measured_position_weights,
+    n_shards,
+    parse_day,
+    pieces_to_frames,
+    worst_failure,
+)
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.pieces import StratumPiece, combine_pieces, n_shards, pieces_from_frames, pieces_to_frames
-from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
+from counterbid.estimators.sequential import planned_days
+from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
+from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedDay
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
-from counterbid.readers.shards import pieces_by_shard, write_shards
+from counterbid.readers.shards import write_shards
 
 from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
+from .lake_hook import LakeHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import with_stored_columns
+from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
+from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
 
 __all__ = [
-    "EARLIEST_DAY",
     "MissingPartitionError",
     "PIECE_TABLES",
     "active_experiment_ids",
@@ -53,10 +66,6 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-#: Experiments without a ``start`` pool every day of the lake up to the run's day.
-EARLIEST_DAY = dt.date(1970, 1, 1)
-
-
 def active_experiment_ids(spec_path: str | Path, ds: object) -> list[str]:
     """Ids of the experiments of ``spec_path`` that run on day ``ds``, in file order."""
     day = parse_day(ds)
@@ -68,7 +77,7 @@ class MissingPartitionError(RuntimeError):
 
 
 def stage_partition(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     lake_root: str | Path,
     experiment: Experiment,
@@ -81,7 +90,7 @@ def stage_partition(
     """Copy the day's bids of one experiment into staging, split into shards.
 
     A day with more bids than ``max_bids_per_shard`` (default
-    :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
+    :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`, or ``$COUNTERBID_MAX_BIDS_PER_SHARD``)
     is split into ``ceil(bids / max)`` shards by the stable hash of the auction id, computed by
     DuckDB as it scans (``sql/lake_read_partition_shards.sql``) and streamed into
     ``day/shard=K/part-0.parquet`` (:func:`counterbid.readers.shards.write_shards`; one batch in memory). Only
@@ -98,7 +107,7 @@ def stage_partition(
     """
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
-    day_rows = hook.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
+    day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
     if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
         shutil.rmtree(staged.day, ignore_errors=True)
@@ -106,21 +115,21 @@ def stage_partition(
     shards = n_shards(day_rows, max_bids)
 
     def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
-        with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
+        with lake.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
             write_shards(batches, folder, shards)
         # inside the folder, so it is replaced with the shards: what the Spark engine splits the lake into
         write_json({"shards": shards, "day_bids": day_rows, "max_bids_per_shard": max_bids},
                    folder / staged.day_manifest.name)
 
     replace_folder(fill, staged.day)
-    measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
+    measured = stage_measured_weights(lake, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
                                       click_window_days=click_window_days)
     return {"day_bids": day_rows, "shards": shards, "max_bids_per_shard": max_bids, "folder": str(staged.folder),
             "measured_arms": [] if measured is None else list(dict.fromkeys(measured["arm"]))}
 
 
 def stage_measured_weights(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     experiment: Experiment,
     ds: dt.date,
@@ -149,7 +158,7 @@ def stage_measured_weights(
     if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
         raise InputError(f"`click_window_days` must be an integer >= 1; got {click_window_days!r}")
     first_click = ds - dt.timedelta(days=click_window_days - 1)
-    clicks = hook.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
+    clicks = lake.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
     fitted = measured_position_weights(clicks, experiment, source=f"{clicks_root} ({first_click}..{ds})")
     fitted["first_click_ds"] = first_click
     write_parquet(pa.Table.from_pandas(fitted, preserve_index=False), staged.measured_weights)
@@ -174,7 +183,8 @@ def staged_experiment(experiment: Experiment, staged: StagedPartition) -> tuple[
     return experiment.with_position_weights({a.name: weights[a.name] for a in experiment.arms if a.measured}), rows
 
 
-def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition, ds: dt.date) -> list[CheckResult]:
+def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Experiment, staged: StagedPartition,
+                         ds: dt.date) -> list[CheckResult]:
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
@@ -190,9 +200,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
     with, and a market that stays moved stops being flagged once the old days leave the trailing
     window). When no error check failed, the day's own summary is staged
-    (``bid_quantiles.parquet``) for the write step to store.
+    (``bid_quantiles.parquet``) for the write step to store. ``hook`` (the results sink) gives the
+    stored history; ``lake`` reads the staged files, in DuckDB's dialect whatever the sink.
     """
-    results = schema_gate(hook, experiment=experiment, staged=staged)
+    results = schema_gate(lake, experiment=experiment, staged=staged)
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
@@ -211,10 +222,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     # whole auctions), so the frame in memory is one shard; the counting checks count the whole day.
     # The sample is shard 0, or the first shard after it holding an auction with two bids or more.
     sampled = len(shards) > 1
-    sample = next((k for k in shards if hook.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
+    sample = next((k for k in shards if lake.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
                   shards[0]) if sampled else None
     sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
-    with hook.staged_relations(day=staged.day_files, sample=sample_files) as con:
+    with lake.staged_relations(day=staged.day_files, sample=sample_files) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
                                    sample_shard=(sample, len(shards)) if sampled else None))
@@ -257,15 +268,6 @@ def load_checks(staged: StagedPartition) -> str:
     return status
 
 
-#: Results table of each frame of :func:`counterbid.estimators.pieces.pieces_to_frames`.
-PIECE_TABLES = {
-    "strata": "stratum_pieces",
-    "arms": "stratum_piece_arms",
-    "covariance": "stratum_piece_covariance",
-    "bidder_sums": "stratum_piece_bidder_sums",
-}
-
-
 def _failed_today(staged: StagedPartition) -> list[str]:
     """Checks that failed on the staged day (``checks.json`` of the validate step)."""
     payload = json.loads(staged.require(staged.checks, step="validate").read_text(encoding="utf-8"))
@@ -286,46 +288,29 @@ def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.dat
     return out
 
 
-def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPiece]:
-    """Pieces from rows of the results tables (:func:`_stored_frames`' inverse)."""
-    if all(frames.get(table) is None for table in PIECE_TABLES.values()):
-        return []
-    empty = pieces_to_frames([])
-    back = {}
-    for name, table in PIECE_TABLES.items():
-        frame = frames.get(table)
-        if frame is None:  # no rows (e.g. no bidder sums: every piece clustered by auction)
-            back[name] = empty[name]
-            continue
-        frame = frame.drop(columns=["experiment_id", "run_id", "computed_at"], errors="ignore").rename(columns={"ds": "day"})
-        frame["day"] = [parse_day(d).isoformat() for d in frame["day"]]
-        back[name] = frame
-    return pieces_from_frames(back)
+def _staged_day(staged: StagedPartition, ds: dt.date, *, manifest: bool) -> StagedDay:
+    """The day as the load step staged it: its shards and, with ``manifest``, the number of shards and
+    bids the load step recorded (``day/shards.json``; an engine that reads the lake again needs them)."""
+    staged.require(staged.day, step="load")
+    shards = [(k, staged.shard(k)) for k in staged.shards()]
+    if not manifest:
+        return StagedDay(ds=ds, shards=shards, n_shards=len(shards), staged_bids=None, source=str(staged.day))
+    recorded = json.loads(staged.require(staged.day_manifest, step="load").read_text(encoding="utf-8"))
+    return StagedDay(ds=ds, shards=shards, n_shards=int(recorded["shards"]), staged_bids=int(recorded["day_bids"]),
+                     source=str(staged.day))
 
 
-def _pieces_on_spark(spark, lake_root, staged: StagedPartition, *, experiment: Experiment, ds: dt.date,
-                     cluster: str):
-    """The day's pieces estimated on Spark from the lake, in the load step's shards; and their number.
+def _engine(spark, lake_root) -> Engine:
+    if spark is None:
+        return LocalEngine()
+    if lake_root in (None, ""):
+        raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
+    return SparkEngine(spark, str(lake_root))
 
-    Messages name the staged day, as the local engine's do (a shard's row numbers count from the
-    start of that shard, which is the staged shard file). Spark reads the lake again, so it must
-    find the bids the load step staged and the validate step checked: a different count means
-    the partition changed in between.
-    """
-    from counterbid.readers.spark_shards import lake_partition_pieces_on_spark
 
-    manifest_path = staged.require(staged.day_manifest, step="load")
-    manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-    shards = int(manifest["shards"])
-    found = lake_partition_pieces_on_spark(spark, str(lake_root), experiment=experiment, ds=ds, shards=shards,
-                                           cluster=cluster, source=str(staged.day))
-    # every single-bidder auction left out is one bid; every other bid is in a piece
-    seen = sum(p.n_bids for p in found.pieces) + found.n_excluded_auctions
-    if seen != int(manifest["day_bids"]):
-        raise InputError(f"{lake_root} ds={ds}: Spark read {seen} bids of experiment {experiment.id!r}, the load step "
-                         f"staged {manifest['day_bids']}; the partition changed after it was checked: run the day again "
-                         "from the 'load' step")
-    return found, shards
+def _horizon_auctions(experiment: Experiment, pieces: list[StratumPiece], n_days: int) -> int:
+    """Auctions at the planned last look: planned days x the mean auctions of the days used so far."""
+    return max(1, round(planned_days(experiment) * sum(p.n_auctions for p in pieces) / n_days))
 
 
 def estimate_partition(
@@ -343,12 +328,11 @@ def estimate_partition(
     """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
     Each staged shard is read, validated and estimated alone
-    (:func:`counterbid.readers.shards.pieces_by_shard`), keeping only its stratum pieces. With a
-    Spark session (``spark``, the Spark engine) Spark reads the day's partition of the lake itself,
-    splits it into the shards the load step staged and estimates them in parallel
-    (:func:`counterbid.readers.spark_shards.lake_partition_pieces_on_spark`): the same pieces; the
-    rest of the step is the same code. The day's
-    rows combine the day's pieces (:func:`counterbid.estimators.pieces.combine_pieces`); the
+    (:class:`counterbid.readers.engines.LocalEngine`), keeping only its stratum pieces. With a
+    Spark session (``spark``, :class:`counterbid.readers.engines.SparkEngine`) Spark reads the
+    day's partition of the lake itself, splits it into the shards the load step staged and
+    estimates them in parallel: the same pieces; the rest of the step is the same code. The day's
+    rows combine the day's pieces (:func:`counterbid.estimators.combine_pieces`); the
     experiment-to-date rows combine the stored pieces of the earlier days in the analysis window
     (:func:`counterbid.estimators.window.analysis_window`: by default without the days whose
     warm-up or drift check failed, and the spec's ``burn_in_days`` and ``exclude_days``) with
@@ -369,8 +353,7 @@ def estimate_partition(
         Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
         logged and returned to XCom).
     """
-    if spark is not None and lake_root in (None, ""):
-        raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
+    engine = _engine(spark, lake_root)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
     failed_today = _failed_today(staged)
@@ -387,18 +370,12 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    staged.require(staged.day, step="load")
-    if spark is None:
-        shard_list = [(k, staged.shard(k)) for k in staged.shards()]
-        found = pieces_by_shard(shard_list, experiment, cluster=cluster, day=ds, source=str(staged.day))
-        n_day_shards = len(shard_list)
-    else:
-        found, n_day_shards = _pieces_on_spark(spark, lake_root, staged, experiment=experiment, ds=ds, cluster=cluster)
+    found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
     pieces = found.pieces
-    day_table = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                               n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
-    if day_table.attrs.get("cluster") == "auction":  # bidder sums not used: not stored either
-        pieces = [replace(p, bidder_ids=None, bidder_sums=None, _bidder_codes=None, _bidder_space=None) for p in pieces]
+    day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
+                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
+    if day_result.cluster == "auction":  # bidder sums not used: not stored either
+        pieces = [p.without_bidder_sums() for p in pieces]
     frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
     for table, frame in frames.items():
         write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
@@ -409,45 +386,85 @@ def estimate_partition(
     failed[ds] = failed_today
     window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
     used_before = [d for d in window.used if d != ds]
-    stored = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
-    to_date_pieces = _pieces_of_rows(stored) + (pieces if ds in window.used else [])
+    # the stored pieces' small tables, and the running bidder window (read for today's bidders only
+    # when the window is the stored one plus today; rebuilt from the stored pieces otherwise)
+    inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
+                            today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
+                            computed_at=computed_at)
+    to_date_pieces = inputs.pieces
+    stage_window_write(inputs.write, staged.folder)
 
-    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": n_day_shards,
-               "engine": "local" if spark is None else "spark",
-               "days_used": window.days_used, "days_left_out": window.days_left_out}
-    tables = {"day": day_table}
+    summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": found.shards,
+               "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out,
+               "bidder_window": inputs.route}
+    results: dict[str, ArmEstimates] = {"day": day_result}
     if to_date_pieces:
         to_date_cluster = cluster
-        if cluster == "bidder" and any(p.bidder_sums is None for p in to_date_pieces):
+        if cluster == "bidder" and inputs.gram is None:
             # a day of the window was estimated clustered by auction (no bidder sums stored):
             # the days can only be combined by auction; the rows say so in their `cluster` column
             log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
             to_date_cluster = "auction"
-        tables["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
-                                           cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
-    for span, table in tables.items():
+        results["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
+                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}",
+                                            bidder_gram=inputs.gram)
+        horizon = _horizon_auctions(experiment, to_date_pieces, len(window.used))
+    tables = {}
+    for span, result in results.items():
+        table = result.to_frame()
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", window.used[0])
+            table.insert(2, "first_ds", window.used[0] if window.used else None)
             table["days_used"] = window.days_used
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
             table["n_days_left_out"] = len(window.left_out)
-        with_stored_columns(table, check_status=status)  # status flags, level and clustering the run used
-        table["method_version"] = table.attrs.get("method_version", METHOD_VERSION)
+        # status flags (a failed check's own flag, e.g. heterogeneous_auctions), level and clustering the run used
+        with_stored_columns(table, result, check_status=status, flags=check_flags(failed_today))
+        if span == "to_date":
+            with_anytime_columns(table, result, horizon_auctions=horizon)
+        table["method_version"] = result.method_version
         table["run_id"] = run_id
         table["computed_at"] = computed_at
-        summary[f"{span}_bids"] = int(table.attrs["n_bids"])
+        tables[span] = table
+        summary[f"{span}_bids"] = result.n_bids
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
-    write_parquet(pa.Table.from_pandas(day_table, preserve_index=False), staged.estimates_day)
-    if "to_date" in tables:
-        write_parquet(pa.Table.from_pandas(tables["to_date"], preserve_index=False), staged.estimates_to_date)
-    else:  # every day so far is left out: no experiment-to-date rows for this day
-        staged.estimates_to_date.unlink(missing_ok=True)
+    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
+        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
+                                                                              flags=check_flags(failed_today)))
+        summary["to_date_status"] = pending_status(window)
+    write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
+    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
+    if not window.used:  # first_ds is all null: keep its type a date for both sinks
+        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
+                                     pa.nulls(to_date.num_rows, type=pa.date32()))
+    write_parquet(to_date, staged.estimates_to_date)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
+
+
+def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:
+    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) rows, no numbers.
+
+    Estimate, standard error, interval and anytime bounds are null, counts 0, ``first_ds`` null,
+    ``status`` says why (``warming_up``, ...); level, clustering, rule and floor are the day's, so
+    the views and the report read them like any other rows.
+    """
+    rows = day.copy()
+    for column in ("estimate", "std_error", "ci_low", "ci_high", "anytime_low", "anytime_high"):
+        rows[column] = float("nan")
+    rows["n_auctions"] = 0
+    rows["n_bids"] = 0
+    rows["status"] = status
+    rows.insert(2, "first_ds", None)
+    rows["days_used"] = window.days_used
+    rows["days_left_out"] = window.days_left_out
+    rows["n_days_used"] = 0
+    rows["n_days_left_out"] = len(window.left_out)
+    rows["anytime_horizon_auctions"] = pd.array([None] * len(rows), dtype="Int64")
+    return rows
 
 
 def write_partition(
@@ -456,7 +473,7 @@ def write_partition(
     """Replace the (experiment, day)'s rows of every results table in one transaction.
 
     The day's estimates, its experiment-to-date estimates (none when every day so far is left
-    out of the window), position weights, stratum pieces and bid-quantile summary.
+    out of the window: rows without numbers saying why), position weights, stratum pieces and bid-quantile summary.
 
     Returns
     -------
@@ -481,7 +498,8 @@ def write_partition(
             quantiles = quantiles.append_column(name, pa.array([value.as_py() if value is not None else None] * quantiles.num_rows,
                                                                type=day.schema.field(name).type))
         tables["bid_quantiles"] = quantiles
-    counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables)
+    counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables,
+                                    window=load_window_write(staged.folder))
     if cleanup:
         shutil.rmtree(staged.folder, ignore_errors=True)
     return counts

@@ -21,13 +21,13 @@ import pandas as pd  # noqa: E402
 
 from counterbid.estimators import MIXTURE_ARM  # noqa: E402
 from counterbid.estimators.intervals import POPULATION, format_level  # noqa: E402
+from counterbid.estimators.window import PENDING_FLAGS  # noqa: E402
 
 from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
-    "ASSUMPTIONS", "MIXTURE_GAP_SE", "auction_caption", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
-    "window_caption",
-    "write_report",
+    "ANYTIME_NOTE", "ASSUMPTIONS", "EXPECTED_FLAGS", "MIXTURE_GAP_SE", "anytime_caption", "attention_flags", "auction_caption",
+    "cumulative_table", "day_status", "format_cumulative", "interval_caption", "what_if_table", "window_caption", "write_report",
 ]
 
 #: What every number in the report rests on.
@@ -67,6 +67,27 @@ _LABELS = {
     "realized_revenue_per_auction": "realized per-arm average",
     "revenue_lift_vs_control": "lift vs control",
 }
+
+
+#: Which experiment-to-date band to act on (docs/method.md, "Looking every day").
+ANYTIME_NOTE = ("Act on the anytime-valid bounds when the experiment to date is looked at day after day: they hold at "
+                "every look at once. The fixed interval holds only at a single look planned before the start, "
+                "at the planned end.")
+
+
+def _has_anytime(rows: pd.DataFrame) -> bool:
+    return "anytime_low" in rows.columns and rows["anytime_low"].notna().any()
+
+
+def anytime_caption(rows: pd.DataFrame) -> str:
+    """What the anytime-valid bounds of some to-date rows are tuned for, from the rows themselves."""
+    if not _has_anytime(rows):
+        return "anytime-valid bounds: not stored (rows written before schema version 3)"
+    with_bounds = rows[rows["anytime_low"].notna()]
+    horizon = int(with_bounds["anytime_horizon_auctions"].max())
+    levels = " / ".join(format_level(lv) for lv in dict.fromkeys(with_bounds["confidence_level"].astype(float)))
+    return (f"anytime-valid bounds ('anytime [low, high]'): {levels} for every daily look at once, same clustering, "
+            f"tightest at {horizon:,} auctions (the planned end)")
 
 
 def cumulative_table(hook: ResultsHook) -> pd.DataFrame:
@@ -116,13 +137,47 @@ def _wide(rows: pd.DataFrame) -> pd.DataFrame:
     for metric, m_rows in rows.groupby("metric", sort=False):
         how = "; ".join(f"{format_level(lv)}, by {cl}" for lv, cl in _how(m_rows))
         headers[_LABELS.get(metric, metric)] = f"{_LABELS.get(metric, metric)} ({how})"
+    anytime = _has_anytime(rows)
     for (arm, metric), r in rows.set_index(["arm", "metric"]).iterrows():
         pct = metric == "revenue_lift_vs_control"
-        out.setdefault(arm, {})[_LABELS.get(metric, metric)] = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
+        cell = _interval(r["estimate"], r["ci_low"], r["ci_high"], pct=pct)
+        if anytime and pd.notna(r["anytime_low"]) and pd.notna(r["anytime_high"]):
+            lo, hi = (f"{r['anytime_low']:+.2%}", f"{r['anytime_high']:+.2%}") if pct else \
+                (f"{r['anytime_low']:.4f}", f"{r['anytime_high']:.4f}")
+            cell += f" anytime [{lo}, {hi}]"
+        out.setdefault(arm, {})[_LABELS.get(metric, metric)] = cell
     frame = pd.DataFrame.from_dict(out, orient="index")
     cols = [c for c in _LABELS.values() if c in frame.columns]
     arms = [a for a in frame.index if a != MIXTURE_ARM] + ([MIXTURE_ARM] if MIXTURE_ARM in frame.index else [])
     return frame.loc[arms, cols].fillna("").rename(columns=headers)
+
+
+WHAT_IF_NOTE = ("These layouts did not run: their numbers come from the same bids as the arms' and rest on the same "
+                "assumptions as every other counterfactual row, plus one more: that bidders would respond to each "
+                "layout as they would if it ran. Effective share: the share of these auctions that, bid for the "
+                "layout itself, would estimate it as precisely (above 1, the mixture's bids say more about it than "
+                "its own would); 'thin support' marks a layout the bids say too little about, shown without a number "
+                "(docs/method.md, 'Layouts that did not run').")
+
+
+def _is_what_if(rows: pd.DataFrame) -> pd.Series:
+    """Rows of layouts that did not run (null on rows stored before schema version 5: arms)."""
+    if "what_if" not in rows.columns:
+        return pd.Series(False, index=rows.index)
+    return rows["what_if"].fillna(False).astype(bool)
+
+
+def what_if_table(rows: pd.DataFrame) -> pd.DataFrame:
+    """The what-if layouts of some to-date rows beside nothing else: estimates with intervals and the effective share."""
+    layouts = rows[_is_what_if(rows)]
+    if layouts.empty:
+        return pd.DataFrame()
+    frame = _wide(layouts)
+    share = layouts.groupby("arm")["effective_share"].first()
+    status = layouts.groupby("arm")["status"].agg(lambda s: "thin support" if "thin_support" in _flags(s) else "ok")
+    frame["effective share"] = [("n/a" if pd.isna(share[a]) else f"{share[a]:.3g}") for a in frame.index]
+    frame["support"] = [status[a] for a in frame.index]
+    return frame
 
 
 def _flags(statuses) -> set[str]:
@@ -130,20 +185,72 @@ def _flags(statuses) -> set[str]:
     return {f for s in statuses for f in str(s).split(",") if f and f != "ok"}
 
 
-def day_status(statuses) -> str:
-    """One day's (or table's) status: ``'ok'`` or the sorted flags any of its rows carries."""
-    return ", ".join(sorted(_flags(statuses))) or "ok"
+#: Flags a metric carries by design on every row; they need no attention and are not shown as a
+#: day's status (welfare is published without an interval: docs/method.md, "Standard errors").
+EXPECTED_FLAGS = {"welfare_per_auction": frozenset({"no_interval"})}
+#: Flags of experiment-to-date rows that hold no number yet (estimators.window.PENDING_FLAGS).
+PENDING = frozenset(PENDING_FLAGS.values()) | {"left_out", "no_days"}
+
+
+def attention_flags(rows: pd.DataFrame) -> dict[str, list[str]]:
+    """Flags that need attention, each with the metrics (report labels) whose rows carry it.
+
+    Parameters
+    ----------
+    rows : pandas.DataFrame
+        Stored estimate rows with ``metric`` and ``status``.
+
+    Returns
+    -------
+    dict of str to list of str
+        Sorted flags, each metric's :data:`EXPECTED_FLAGS` left out (welfare's ``no_interval``).
+    """
+    found: dict[str, set[str]] = {}
+    for metric, status in zip(rows["metric"], rows["status"]):
+        for flag in _flags([status]) - EXPECTED_FLAGS.get(metric, frozenset()):
+            found.setdefault(flag, set()).add(metric)
+    order = list(_LABELS)
+    return {f: [_LABELS.get(m, m) for m in sorted(ms, key=lambda m: (order.index(m) if m in order else len(order), m))]
+            for f, ms in sorted(found.items())}
+
+
+def day_status(rows) -> str:
+    """One day's (or table's) status: ``'ok'``, or the flags that need attention with their metrics.
+
+    ``rows`` is a frame of stored rows (``metric``, ``status``): a flag on every metric's rows reads
+    alone (``warning``: a data check warned for the day), one on some metrics names them
+    (``few_bids (revenue / auction, lift vs control)``); a metric's expected flags are left out. A
+    sequence of statuses alone (no metrics) gives every flag.
+    """
+    if not isinstance(rows, pd.DataFrame):
+        return ", ".join(sorted(_flags(rows))) or "ok"
+    every = {_LABELS.get(m, m) for m in rows["metric"]}
+    parts = [flag if set(metrics) == every else f"{flag} ({', '.join(metrics)})"
+             for flag, metrics in attention_flags(rows).items()]
+    return ", ".join(parts) or "ok"
+
+
+def _pending(rows: pd.DataFrame) -> bool:
+    """Whether experiment-to-date rows hold no number yet (no day of their window used)."""
+    return len(rows) > 0 and "n_days_used" in rows and bool((rows["n_days_used"] == 0).all())
 
 
 def format_cumulative(table: pd.DataFrame) -> str:
     """The experiment-to-date table as text, one block per experiment."""
     blocks = []
     for exp_id, rows in table.groupby("experiment_id", sort=True):
+        if _pending(rows):  # warm-up (or every day left out): rows without numbers, saying why
+            blocks.append(f"{exp_id}: to {pd.Timestamp(rows['ds'].max()).date()}, no day used yet (status "
+                          f"{day_status(rows)})\n" + window_caption(rows))
+            continue
         first, last = rows["first_ds"].min(), rows["ds"].max()
         n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
         head = (f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, "
-                f"status {day_status(rows['status'])}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
-        blocks.append(head + "\n" + window_caption(rows) + "\n" + _wide(rows).to_string())
+                f"status {day_status(rows)}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
+        lines = [head, window_caption(rows), anytime_caption(rows)]
+        if _has_anytime(rows):
+            lines.append(ANYTIME_NOTE)
+        blocks.append("\n".join(lines) + "\n" + _wide(rows).to_string())
     return "\n\n".join(blocks)
 
 
@@ -204,9 +311,11 @@ def _plot_revenue(daily: pd.DataFrame, exp_id: str, target: Path) -> str:
 
 def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: Path) -> str:
     """Plot the lift by day and to date to ``target``; return the title (it names the intervals)."""
-    fig, ax = plt.subplots(figsize=(9, 3.6))
+    fig, ax = plt.subplots(figsize=(9, 4.2))
     day = daily[daily["metric"] == "revenue_lift_vs_control"]
     cum = to_date[to_date["metric"] == "revenue_lift_vs_control"]
+    if "n_days_used" in cum:
+        cum = cum[cum["n_days_used"] > 0]  # a warm-up day's rows hold no number to plot
     colours = _colours(daily)
     for arm, rows in day.groupby("arm", sort=False):
         colour = colours[arm]
@@ -216,11 +325,17 @@ def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: 
         c = cum[cum["arm"] == arm]
         xc = pd.to_datetime(c["ds"])
         ax.plot(xc, c["estimate"], color=colour, lw=2, label=f"{arm}: experiment to date")
-        ax.fill_between(xc, c["ci_low"], c["ci_high"], color=colour, alpha=0.18, lw=0)
+        ax.fill_between(xc, c["ci_low"], c["ci_high"], color=colour, alpha=0.18, lw=0,
+                        label=f"{arm}: to date, fixed interval (one planned look)")
+        if _has_anytime(c):
+            ax.fill_between(xc, c["anytime_low"], c["anytime_high"], facecolor="none", edgecolor=colour, hatch="///",
+                            lw=0.8, ls="--", label=f"{arm}: to date, anytime-valid (act on this one)")
     ax.axhline(0.0, color="0.3", lw=0.8)
     ax.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d"))
     title = f"{exp_id}: revenue lift over control\n(that day: {interval_caption(day)}; to date: {interval_caption(cum)})"
+    if _has_anytime(cum):
+        title += "\nlooking daily? act on the hatched anytime-valid band, not the fixed one"
     ax.set_title(title, fontsize=10)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7.5, ncol=2, loc="best")
@@ -258,6 +373,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     auctions_run = []
     for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
         daily = hook.fetch_df("report_daily_estimates", {"experiment_id": exp_id})
+        daily = daily[~_is_what_if(daily)]  # the arms that ran; what-if layouts have their own section
         auctions_run.append(f"{exp_id}: {auction_caption(daily)}")
         to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp_id})
         weights = hook.fetch_df("report_position_weights", {"experiment_id": exp_id})
@@ -267,9 +383,11 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         if has_lift:
             _plot_lift(daily, to_date, exp_id, out / lift_png)
         cum = cumulative[cumulative["experiment_id"] == exp_id]
+        layouts = what_if_table(cum)
+        cum = cum[~_is_what_if(cum)]
         days = _mixture_days(daily)
         per_day = pd.DataFrame(index=days.index)
-        per_day["estimate status"] = daily.groupby("ds")["status"].agg(day_status)
+        per_day["estimate status"] = pd.Series({d: day_status(g) for d, g in daily.groupby("ds")})
         model_rows = daily[daily["metric"] != "realized_revenue_per_auction"]
         per_day["intervals"] = pd.Series({d: interval_caption(g) for d, g in model_rows.groupby("ds")})
         if has_checks:
@@ -291,13 +409,18 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
                 "estimated revenue disagrees with its realized revenue by more than 3 standard errors: bidders had "
                 "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date numbers, "
                 "when the window includes them) violate the equilibrium assumption.")
-        warn_days = [d for d, s in per_day["estimate status"].items() if "warning" in s.split(", ")]
+        warn_days = [pd.Timestamp(d).date().isoformat() for d, g in daily.groupby("ds") if "warning" in _flags(g["status"])]
         if warn_days:
             notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry the flag 'warning'.")
-        flagged_rows = {f for f in _flags(daily["status"]) if f != "warning"}
-        if flagged_rows:
-            notes.append(f"The estimator flagged rows ({', '.join(sorted(flagged_rows))}); the estimate status column "
-                         "lists the flags of each day's rows.")
+        flagged_days = []
+        for d, g in daily.groupby("ds"):
+            own = {f: m for f, m in attention_flags(g).items() if f != "warning"}
+            if own:
+                flagged_days.append(f"{pd.Timestamp(d).date().isoformat()}: "
+                                    + "; ".join(f"{f} on {', '.join(m)}" for f, m in own.items()))
+        if flagged_days:
+            notes.append(f"The estimator flagged rows that need attention ({' | '.join(flagged_days)}); the estimate "
+                         "status column lists each day's flags by metric.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.startswith("error").any():
             notes.append("Days whose data checks failed with an error have no estimates.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.contains("on one shard").any():
@@ -311,23 +434,34 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
             wl = weights.groupby("arm")["weight"].apply(lambda w: ", ".join(f"{x:.3g}" for x in w))
             weights_note = "<p class='small'>Position weights (top first): " + "; ".join(
                 f"{html.escape(a)} [{html.escape(wl[a])}] ({html.escape(src[a])})" for a in wl.index) + "</p>"
+        window_line = window_caption(cum) if len(cum) else ""
+        pending = _pending(cum)
+        if pending:  # the latest to-date rows hold no number yet: say why, show no table of n/a
+            cum_text = (f"<p>Experiment to date, to {pd.Timestamp(cum['ds'].max()).date()}: no day used yet "
+                        f"(status {html.escape(day_status(cum))}); the numbers start with the first day the window "
+                        f"keeps.</p>")
+            cum = cum.iloc[0:0]
         first, last = (pd.Timestamp(cum["first_ds"].min()).date(), pd.Timestamp(cum["ds"].max()).date()) if len(cum) else ("", "")
         n_auc = int(cum.loc[cum["metric"] == "revenue_per_auction", "n_auctions"].max()) if len(cum) else 0
+        if not pending:
+            cum_text = (f"<p>Experiment to date, {first} to {last}: {n_auc:,} auctions, each day estimated alone and the "
+                        "days combined by\ntheir auctions (the auction-weighted average of each day's counterfactual).</p>")
         cum_model = cum[cum["metric"] != "realized_revenue_per_auction"]
         used = list(dict.fromkeys(cum_model["cluster"]))
         speaks_for = POPULATION[used[0]] if len(used) == 1 else "; ".join(f"by {cl}, {POPULATION[cl]}" for cl in used)
         sections.append(f"""
 <section>
 <h2>{html.escape(exp_id)}</h2>
-<p>Experiment to date, {first} to {last}: {n_auc:,} auctions, each day estimated alone and the days combined by
-their auctions (the auction-weighted average of each day's counterfactual).</p>
-<p><strong>{html.escape(window_caption(cum)) if len(cum) else ""}</strong>. By default a day whose warm-up or drift
+{cum_text}
+<p><strong>{html.escape(window_line)}</strong>. By default a day whose warm-up or drift
 check failed is left out, as are the spec's burn-in and excluded days.</p>
 <p>
 Intervals: {html.escape(interval_caption(cum_model)) if len(cum) else "none"}{html.escape(f" (they speak for {speaks_for})") if speaks_for else ""};
 the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
+{f"<p>{html.escape(anytime_caption(cum))}. <strong>{html.escape(ANYTIME_NOTE)}</strong></p>" if _has_anytime(cum) else ""}
 {weights_note}
+{f"<h3>Layouts that did not run</h3>{_table_html(layouts)}<p class='note'>{html.escape(WHAT_IF_NOTE)}</p>" if len(layouts) else ""}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
 <img src="{html.escape(rev_png)}" alt="revenue per auction by day, {html.escape(exp_id)}">
 {f'<img src="{html.escape(lift_png)}" alt="lift by day, {html.escape(exp_id)}">' if has_lift else ""}

@@ -16,12 +16,11 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from counterbid.estimators.errors import InputError
 
-__all__ = ["StagedPartition", "replace_folder", "stream_parquet", "write_json", "write_parquet"]
+__all__ = ["StagedPartition", "replace_folder", "write_json", "write_parquet"]
 
 _PATH_SAFE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 
@@ -90,26 +89,6 @@ def write_parquet(table: pa.Table, target: Path) -> None:
     tmp = _temporary(target)
     pq.write_table(table, tmp)
     os.replace(tmp, target)  # readers see the old file or the new one, never half of one
-
-
-def stream_parquet(batches: pa.RecordBatchReader, target: Path) -> tuple[int, dt.date | None]:
-    """Write a stream of batches to ``target`` atomically; rows written and the earliest ``ds``."""
-    tmp = _temporary(target)
-    rows, earliest = 0, None
-    has_ds = "ds" in batches.schema.names
-    try:
-        with pq.ParquetWriter(tmp, batches.schema) as writer:
-            for batch in batches:
-                writer.write_batch(batch)
-                rows += batch.num_rows
-                if has_ds and batch.num_rows:
-                    low = pc.min(batch.column("ds")).as_py()
-                    earliest = low if earliest is None or (low is not None and low < earliest) else earliest
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    os.replace(tmp, target)  # readers see the old file or the new one, never half of one
-    return rows, earliest
 
 
 def replace_folder(fill, target: Path) -> None:

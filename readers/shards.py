@@ -1,10 +1,10 @@
-"""Estimating a day shard by shard: the one path of the estimate step and ``counterbid estimate``.
+"""The local engine: a day estimated shard by shard in this process (:class:`~counterbid.readers.engines.LocalEngine`).
 
 A day with more bids than ``max_bids_per_shard`` is split into ``ceil(bids / max)`` shards by the
-stable hash of its auction ids (:func:`counterbid.estimators.pieces.shard_of`; DuckDB computes the
+stable hash of its auction ids (:func:`counterbid.estimators.shard_of`; DuckDB computes the
 same number for every row, ``sql/lake_read_partition_shards.sql`` and ``sql/bid_log_read_shards.sql``,
 and :func:`write_shards` streams the rows into one folder per shard). Each shard is read alone (:func:`~counterbid.readers.bid_log.read_bids`),
-validated, estimated per stratum (:func:`~counterbid.estimators.pieces.stratum_pieces`) and freed
+validated, estimated per stratum (:func:`~counterbid.estimators.stratum_pieces`) and freed
 before the next is read, so peak memory is set by the shard, not by the day; only the pieces (a few
 numbers per stratum, plus per-bidder sums when clustering by bidder) are kept.
 """
@@ -21,9 +21,8 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.dataset as pads
 
-from counterbid.estimators import BID_COLUMNS, Experiment, prepare_bids
+from counterbid.estimators import BID_COLUMNS, MAX_BIDS_PER_SHARD, Experiment, StratumPiece, prepare_bids, stratum_pieces
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
-from counterbid.estimators.pieces import MAX_BIDS_PER_SHARD, StratumPiece, n_shards, stratum_pieces
 
 from .bid_log import read_bids
 
@@ -33,7 +32,7 @@ __all__ = [
     "distinct_experiment_ids",
     "ShardPieces",
     "bid_log_rows",
-    "estimate_bid_log",
+    "column_names",
     "max_bids_per_shard",
     "pieces_by_shard",
     "shard_folders",
@@ -45,7 +44,7 @@ __all__ = [
 #: flight (measured at 10M bids: 0.6 GiB peak RSS with imports, 5.8 s; 0.8 GiB and 8.2 s with two
 #: threads on the shared 2-core machine).
 SHARD_SCAN_CONFIG = {"threads": 1}
-#: Environment variable overriding :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`
+#: Environment variable overriding :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`
 #: (the DAG's default; the ``--max-bids-per-shard`` option of ``counterbid estimate``).
 MAX_BIDS_ENV = "COUNTERBID_MAX_BIDS_PER_SHARD"
 
@@ -130,7 +129,7 @@ def bid_log_rows(path: str | Path) -> int:
         return int(dataset.count_rows())
 
 
-def _column_names(path: str | Path) -> list[str]:
+def column_names(path: str | Path) -> list[str]:
     """Column names of a bid log (the footers only)."""
     with _bid_log_dataset(path) as dataset:
         return dataset.schema.names
@@ -232,10 +231,11 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
 
 @dataclass(frozen=True)
 class ShardPieces:
-    """The stratum pieces of every shard of an input, and the single-bidder auctions left out."""
+    """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read."""
 
     pieces: list[StratumPiece]
     n_excluded_auctions: int
+    shards: int = 1
 
 
 def pieces_by_shard(
@@ -255,7 +255,7 @@ def pieces_by_shard(
     experiment : Experiment
         With measured position weights already filled.
     cluster : {'auto', 'auction', 'bidder'}
-        Passed to :func:`~counterbid.estimators.pieces.stratum_pieces` for each shard. With
+        Passed to :func:`~counterbid.estimators.stratum_pieces` for each shard. With
         ``'auto'`` a shard keeps per-bidder sums when its bidder ids repeat across its auctions
         (a shard holds at least half of ``max_bids_per_shard`` bids of whole auctions, so a
         bidder who repeats in the day repeats in the shard); the combination then clusters by
@@ -300,44 +300,4 @@ def pieces_by_shard(
     if not pieces:
         raise no_pieces_error(source or "bids", experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)
-    return ShardPieces(pieces, excluded)
-
-
-def estimate_bid_log(
-    path: str | Path,
-    experiment: Experiment,
-    *,
-    max_bids_per_shard: int | None = None,
-    confidence_level: float = 0.95,
-    cluster: str = "auto",
-):
-    """Per-arm estimates of a bid log, shard by shard (what ``counterbid estimate`` runs).
-
-    Parameters
-    ----------
-    path : str or Path
-        A Parquet file or folder of one experiment's bids.
-    experiment : Experiment
-    max_bids_per_shard : int, optional
-        Default: ``$COUNTERBID_MAX_BIDS_PER_SHARD``, else
-        :data:`~counterbid.estimators.pieces.MAX_BIDS_PER_SHARD`.
-    confidence_level : float
-    cluster : {'auto', 'auction', 'bidder'}
-
-    Returns
-    -------
-    pandas.DataFrame
-        :func:`~counterbid.estimators.pieces.combine_pieces` of every shard's pieces (the frame of
-        :func:`~counterbid.estimators.estimate_arms`), with ``attrs['shards']`` added.
-    """
-    from counterbid.estimators.pieces import combine_pieces
-
-    shards = n_shards(bid_log_rows(path), _max_bids_setting(max_bids_per_shard))
-    if shards > 1 and "auction_id" not in _column_names(path):
-        shards = 1  # nothing to shard by: the validation of the whole log names the missing column
-    with staged_bid_log_shards(path, shards) as shard_list:
-        found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
-    result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                            n_excluded_auctions=found.n_excluded_auctions, source=str(path))
-    result.attrs["shards"] = shards
-    return result
+    return ShardPieces(pieces, excluded, len(shards))

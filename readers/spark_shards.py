@@ -3,12 +3,12 @@
 The same work as :mod:`counterbid.readers.shards`, spread over a Spark cluster. Spark reads the
 Parquet input itself (a path, a folder or an object-store URL its file system understands), gives
 every bid the shard of its auction by the same stable hash as the local engine
-(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.pieces.shard_of`), and runs one
+(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.shard_of`), and runs one
 Python task per shard (``groupBy('shard').applyInArrow``) that converts the shard's rows as the
 local reader does (:func:`counterbid.readers.bid_log.bids_from_arrow`), validates them
 (:func:`~counterbid.estimators.prepare_bids`) and returns its stratum pieces
-(:func:`~counterbid.estimators.pieces.stratum_pieces`). Only the pieces travel back to the driver,
-which combines them (:func:`~counterbid.estimators.pieces.combine_pieces`). Inside a shard the
+(:func:`~counterbid.estimators.stratum_pieces`). Only the pieces travel back to the driver,
+which combines them (:func:`~counterbid.estimators.combine_pieces`). Inside a shard the
 rows keep the order the local engine reads them in (files by path, rows by position), so the
 pieces, the numbers and the row named by an error are the local engine's.
 
@@ -42,10 +42,9 @@ from urllib.parse import unquote
 
 import pyarrow as pa
 
-from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, prepare_bids
-from counterbid.estimators.arms import REQUIRED_BID_COLUMNS
+from counterbid.estimators import BID_COLUMNS, EstimatorWarning, Experiment, StratumPiece, n_shards, prepare_bids, stratum_pieces
+from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
-from counterbid.estimators.pieces import StratumPiece, n_shards, stratum_pieces
 
 from .shards import ShardPieces
 from .shards import max_bids_per_shard as _max_bids_setting
@@ -55,7 +54,7 @@ __all__ = [
     "SPARK_EXTRA",
     "SPARK_MASTER_ENV",
     "STATEMENT_PARAMETERS",
-    "estimate_bid_log_on_spark",
+    "bid_log_pieces_on_spark",
     "lake_partition_pieces_on_spark",
     "require_pyspark",
     "spark_session",
@@ -315,8 +314,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     experiment : Experiment
         With measured position weights already filled.
     shards : int
-        Number of shards (:func:`~counterbid.estimators.pieces.n_shards`); rows go to shard
-        :func:`~counterbid.estimators.pieces.shard_of` of their auction id.
+        Number of shards (:func:`~counterbid.estimators.n_shards`); rows go to shard
+        :func:`~counterbid.estimators.shard_of` of their auction id.
     cluster : {'auto', 'auction', 'bidder'}
     day : date-like, optional
         Recorded in every piece.
@@ -371,7 +370,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     if not pieces:  # as locally: several shards of single-bidder auctions only, or no bids at all
         raise no_pieces_error(source, experiment.id, single_bidders=any(a["single_bidders"] for a in answers),
                               n_excluded_auctions=excluded)
-    return ShardPieces(pieces, excluded)
+    return ShardPieces(pieces, excluded, int(shards))
 
 
 def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):
@@ -401,38 +400,26 @@ def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | 
     return frame
 
 
-def estimate_bid_log_on_spark(
-    path: str,
-    experiment: Experiment,
-    *,
-    spark=None,
-    max_bids_per_shard: int | None = None,
-    confidence_level: float = 0.95,
-    cluster: str = "auto",
-):
-    """:func:`counterbid.readers.shards.estimate_bid_log` on Spark (what ``counterbid estimate --engine spark`` runs).
+def bid_log_pieces_on_spark(spark, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
+                            cluster: str = "auto") -> ShardPieces:
+    """The pieces of a bid log estimated on Spark (``counterbid estimate --engine spark``; see
+    :class:`counterbid.readers.engines.SparkEngine`).
 
     Parameters
     ----------
+    spark : pyspark.sql.SparkSession
     path : str
         A Parquet file or (Hive-partitioned) folder, local or on any file system Spark reads.
     experiment : Experiment
-    spark : pyspark.sql.SparkSession, optional
-        Default: :func:`spark_session`.
     max_bids_per_shard : int, optional
         As for the local engine: the log's ``ceil(rows / max)`` shards are the same shards.
-    confidence_level : float
     cluster : {'auto', 'auction', 'bidder'}
 
     Returns
     -------
-    pandas.DataFrame
-        The local engine's frame for the same input, with ``attrs['shards']`` and
-        ``attrs['engine'] = 'spark'``.
+    ShardPieces
+        The local engine's pieces for the same input, and the number of shards.
     """
-    from counterbid.estimators.pieces import combine_pieces
-
-    spark = spark or spark_session()
     source = str(path)
     bids = _read_parquet(spark, source, source=source, view="counterbid_bid_log")
     try:
@@ -444,12 +431,7 @@ def estimate_bid_log_on_spark(
     if rows == 0:
         raise InputError(f"{source}: holds no bids (0 rows)")
     shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
-    found = spark_shard_pieces(spark, bids, experiment, shards=shards, cluster=cluster, source=source)
-    result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                            n_excluded_auctions=found.n_excluded_auctions, source=source)
-    result.attrs["shards"] = shards
-    result.attrs["engine"] = "spark"
-    return result
+    return spark_shard_pieces(spark, bids, experiment, shards=shards, cluster=cluster, source=source)
 
 
 def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, shards: int,

@@ -1,13 +1,16 @@
 -- Revenue lift of each non-control arm over control, with its interval, per day ('day') and
--- experiment-to-date ('to_date'), beside the arm's own revenue per auction.
+-- experiment-to-date ('to_date'), beside the arm's own revenue per auction. To-date rows also carry
+-- the anytime-valid bounds (hold at every daily look; null on 'day' rows and rows before version 3).
 create or replace view {{ schema }}.arm_lift as
 with daily as (
-    select 'day' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status
+    select 'day' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status,
+        cast(null as double) as anytime_low, cast(null as double) as anytime_high
     from {{ schema }}.arm_estimates
 ),
 
 to_date as (
-    select 'to_date' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status
+    select 'to_date' as span, experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high, confidence_level, cluster, status,
+        anytime_low, anytime_high
     from {{ schema }}.arm_estimates_to_date
 ),
 
@@ -39,6 +42,8 @@ select
     lift.confidence_level,
     lift.cluster,
     revenue.revenue_per_auction,
-    lift.status
+    lift.status,
+    lift.anytime_low,
+    lift.anytime_high
 from lift
 left join revenue using (span, experiment_id, ds, arm)

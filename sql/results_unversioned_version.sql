@@ -1,16 +1,25 @@
 -- Version of a results schema written before versions were recorded, from its columns:
--- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it.
+-- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
+-- 3 when the to-date rows also carry the anytime-valid bounds, 4 when the to-date table's first_ds
+-- is nullable as well (warm-up rows without a first day used), 5 when estimates carry what_if,
+-- 6 when the running bidder window table exists.
 with source as (
-    select column_name
+    select table_name, column_name, is_nullable
     from information_schema.columns
     where table_schema = $schema
-        and table_name = 'arm_estimates'
+        and table_name in ('arm_estimates', 'arm_estimates_to_date', 'bidder_window')
 )
 
 select
     case
-        when count(*) = 0 then 0
-        when count(*) filter (where column_name = 'cluster') = 0 then 1
-        else 2
+        when count(*) filter (where table_name = 'arm_estimates') = 0 then 0
+        when count(*) filter (where table_name = 'arm_estimates' and column_name = 'cluster') = 0 then 1
+        when count(*) filter (where table_name = 'arm_estimates_to_date' and column_name = 'anytime_low') = 0 then 2
+        when count(*) filter (
+            where table_name = 'arm_estimates_to_date' and column_name = 'first_ds' and is_nullable = 'YES'
+        ) = 0 then 3
+        when count(*) filter (where table_name = 'arm_estimates' and column_name = 'what_if') = 0 then 4
+        when count(*) filter (where table_name = 'bidder_window') = 0 then 5
+        else 6
     end as version
 from source

@@ -135,7 +135,7 @@ def child(kind: str, path: str, spec: str) -> dict:
         if kind == "estimate":  # as the command line does it: validate, drop the frame, estimate
             prepared = prepare_bids(bids, exp)
             del bids
-            result = estimate_arms(prepared, exp)
+            result = estimate_arms(prepared, exp).table
         else:
             sys.path.insert(0, str(HERE))
             from plain_pandas_peer import plain_pandas_estimate

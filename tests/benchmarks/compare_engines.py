@@ -13,7 +13,7 @@ by bidder:
 It then compares the two frames cell by cell (in memory, at full double precision): the same rows
 and columns in the same order; every non-numeric cell identical; over every numeric cell, the
 largest relative difference ``|a - b| / max(|a|, |b|)`` (0 where both are 0; a NaN must be NaN in
-both) and the largest absolute one; and the frames' ``attrs`` (shards, clustering, counts).
+both) and the largest absolute one; and the results' fields (shards, clustering, counts).
 Prints a markdown section; exits 1 when a non-numeric cell, a NaN, the shape or an attribute
 differs, or the largest relative difference exceeds ``--tolerance`` (default 1e-12: both engines
 feed the same rows, in the same order, to the same pure estimator per shard, so they should agree
@@ -37,7 +37,7 @@ sys.path.insert(0, str(HERE))
 
 from bench_estimator import SPARK_MASTER, SPEC, make_data  # noqa: E402
 
-#: attrs that must agree between the engines (``engine`` names the engine and differs by design).
+#: Fields of the results that must agree between the engines (``engine`` names the engine and differs by design).
 COMPARED_ATTRS = ("shards", "cluster", "n_auctions", "n_bids", "n_excluded_auctions", "confidence_level",
                   "method_version", "payment_rule", "floor", "quality")
 
@@ -115,32 +115,33 @@ def main(argv: list[str] | None = None) -> int:
     path = make_data(folder, args.millions, spec_path, [sys.executable, str(HERE / "bench_estimator.py")])
 
     from counterbid.estimators import load_experiment
-    from counterbid.readers.shards import estimate_bid_log
-    from counterbid.readers.spark_shards import estimate_bid_log_on_spark, spark_session
+    from counterbid.readers.engines import SparkEngine, estimate_bid_log
+    from counterbid.readers.spark_shards import spark_session
 
     experiment = load_experiment(spec_path)
     options = {"max_bids_per_shard": args.max_bids_per_shard, "cluster": args.cluster}
     t0 = time.perf_counter()
-    local = estimate_bid_log(path, experiment, **options)
+    local_result = estimate_bid_log(path, experiment, **options)
     t1 = time.perf_counter()
     spark = spark_session(args.spark_master)
     t2 = time.perf_counter()
-    on_spark = estimate_bid_log_on_spark(str(path), experiment, spark=spark, **options)
+    spark_result = estimate_bid_log(str(path), experiment, engine=SparkEngine(spark), **options)
     t3 = time.perf_counter()
     spark.stop()
 
+    local, on_spark = local_result.table, spark_result.table
     found = compare_frames(local, on_spark)
     attrs_before = len(found["problems"])
     for name in COMPARED_ATTRS:
-        if local.attrs.get(name) != on_spark.attrs.get(name):
-            found["problems"].append(f"attrs[{name!r}]: {local.attrs.get(name)!r} vs {on_spark.attrs.get(name)!r}")
+        if getattr(local_result, name) != getattr(spark_result, name):
+            found["problems"].append(f"{name}: {getattr(local_result, name)!r} vs {getattr(spark_result, name)!r}")
     attrs_same = len(found["problems"]) == attrs_before
     if found["max_relative"] > args.tolerance:
         found["problems"].append(f"largest relative difference {found['max_relative']:.3g} above {args.tolerance:g}")
     lines = [
         f"Engine comparison ({args.millions}M bids, max {args.max_bids_per_shard:,} bids per shard: "
-        f"{local.attrs['shards']} shards on each engine; cluster={args.cluster}, used "
-        f"{local.attrs['cluster']} / {on_spark.attrs['cluster']}; Spark {args.spark_master}):",
+        f"{local_result.shards} shards on each engine; cluster={args.cluster}, used "
+        f"{local_result.cluster} / {spark_result.cluster}; Spark {args.spark_master}):",
         "",
         f"* {len(local)} rows x {local.shape[1]} columns: {found['numeric_cells']} numeric cells, "
         f"{found['text_cells']} non-numeric cells",
@@ -148,7 +149,7 @@ def main(argv: list[str] | None = None) -> int:
         + (f" at {found['where']}" if found["where"] else "")
         + f"; largest absolute difference {found['max_absolute']:.3g}",
         f"* non-numeric cells identical: {'yes' if found['text_differences'] == 0 else 'NO'}; "
-        f"attrs ({', '.join(COMPARED_ATTRS)}) identical: {'yes' if attrs_same else 'NO'}",
+        f"fields ({', '.join(COMPARED_ATTRS)}) identical: {'yes' if attrs_same else 'NO'}",
         f"* wall: local engine {t1 - t0:.1f} s; Spark session start {t2 - t1:.1f} s, Spark engine {t3 - t2:.1f} s",
     ]
     if found["problems"]:

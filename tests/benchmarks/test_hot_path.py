@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from counterbid.estimators.arms import _auction_codes, sort_order
+from counterbid.estimators.bids import _auction_codes, sort_order
 
 
 @pytest.mark.parametrize("n", [10, 2**16 + 5, 300_000])

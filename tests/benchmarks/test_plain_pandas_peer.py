@@ -15,7 +15,7 @@ def test_plain_pandas_peer_agrees_with_estimate_arms(three_arm_experiment):
     exp = three_arm_experiment
     bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders={4: 0.5, 5: 0.5}, n_auctions=3000, rng=7)
     bids = pd.concat([bids, bids.iloc[[0]].assign(auction_id=10**6)], ignore_index=True)  # one single-bidder auction
-    want = estimate_arms(bids, exp, cluster="auction").set_index(["arm", "metric"])
+    want = estimate_arms(bids, exp, cluster="auction").table.set_index(["arm", "metric"])
     got = plain_pandas_estimate(bids, exp).set_index(["arm", "metric"])
     # welfare: estimate_arms reads the top of the bid distribution off the top spacings and
     # publishes no interval (method ordstat-2); the peer keeps the highest bid, so only revenue

@@ -12,7 +12,7 @@ import yaml
 
 from counterbid.cli import main
 from counterbid.estimators import estimate_arms, parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 
 SPEC = """experiments:
   - id: strip
@@ -51,14 +51,14 @@ def test_sharded_log_is_the_combination_of_its_shards(files, capsys, monkeypatch
     pieces = [p for k in range(4) for p in stratum_pieces(bids[shard == k].reset_index(drop=True), exp, shard=k)]
     want = combine_pieces(pieces, exp)
     got = pd.DataFrame(sharded["rows"])
-    np.testing.assert_allclose(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
-    np.testing.assert_allclose(got["std_error"].to_numpy(float), want["std_error"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
-    assert got["n_auctions"].tolist() == want["n_auctions"].tolist()
+    np.testing.assert_allclose(got["estimate"].to_numpy(float), want.table["estimate"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
+    np.testing.assert_allclose(got["std_error"].to_numpy(float), want.table["std_error"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
+    assert got["n_auctions"].tolist() == want.table["n_auctions"].tolist()
     # one shard (the default here) is estimate_arms of the whole log
     whole = _json(base, capsys)
     assert whole["shards"] == 1
     np.testing.assert_allclose(pd.DataFrame(whole["rows"])["estimate"].to_numpy(float),
-                               estimate_arms(bids, exp)["estimate"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
+                               estimate_arms(bids, exp).table["estimate"].to_numpy(float), rtol=0, atol=1e-10)  # the JSON output keeps 10 decimals
     # shards cost a bias of order 1/N per shard: far inside the standard error at these sizes
     rev = got["metric"] == "revenue_per_auction"
     gap = np.abs(got.loc[rev, "estimate"].to_numpy() - pd.DataFrame(whole["rows"]).loc[rev, "estimate"].to_numpy())

@@ -13,7 +13,7 @@ import pytest
 from counterbid.cli.backfill import DAG_ID, dags_folder, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import estimate_arms, load_experiments
-from counterbid.estimators.pieces import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators.pipeline import DEFAULT_CLUSTER, DEFAULT_CONFIDENCE_LEVEL
 
 from .conftest import SPEC_TEXT, START
@@ -100,16 +100,18 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
             # the run's defaults are stored beside every row (the realized averages: by auction)
             assert set(got["confidence_level"]) == {DEFAULT_CONFIDENCE_LEVEL}
             realized = got["metric"] == "realized_revenue_per_auction"
-            assert set(got.loc[~realized, "cluster"]) == {want.attrs["cluster"]}
+            assert set(got.loc[~realized, "cluster"]) == {want.cluster}
             assert set(got.loc[realized, "cluster"]) == {"auction"}
-            _assert_rows_equal(got, want)
+            _assert_rows_equal(got, want.table)
             mine = to_date[(to_date["experiment_id"] == exp.id) & (to_date["ds"] == pd.Timestamp(day))]
-            if k == 0:  # the only day so far is a warm-up day: no experiment-to-date rows yet
-                assert mine.empty
+            if k == 0:  # the only day so far is a warm-up day: to-date rows without numbers, saying why
+                assert len(mine) == len(got) and set(mine["status"]) == {"warming_up,warning"}  # the warm-up check warned
+                assert mine["estimate"].isna().all() and mine["first_ds"].isna().all()
+                assert set(mine["n_days_used"]) == {0} and set(mine["days_left_out"]) == {f"{DAYS[0]} (warmup)"}
                 continue
             window = DAYS[1:k + 1]
             want = combine_pieces([p for d in window for p in pieces[d]], exp, cluster=DEFAULT_CLUSTER)
-            _assert_rows_equal(mine, want)
+            _assert_rows_equal(mine, want.table)
             assert set(mine["first_ds"]) == {pd.Timestamp(DAYS[1])}
             assert set(mine["days_used"]) == {str(DAYS[1]) if k == 1 else f"{DAYS[1]}..{DAYS[k]}"}
             assert set(mine["days_left_out"]) == {f"{DAYS[0]} (warmup)"}
@@ -123,17 +125,21 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
     assert daily["run_id"].nunique() == 3
     # ... and equal the combination of the daily pieces as stored in the results database
     from counterbid.operators.hooks import ResultsHook
-    from counterbid.operators.partition import PIECE_TABLES, _pieces_of_rows
+    from counterbid.operators.window_state import PIECE_TABLES, pieces_of_rows
 
     hook = ResultsHook(database=conf["results_database"])
     for exp in experiments.values():
         stored = hook.stored_piece_frames(experiment_id=exp.id, days=DAYS[1:], tables=list(PIECE_TABLES.values()))
-        want = combine_pieces(_pieces_of_rows(stored), exp, cluster=DEFAULT_CLUSTER)
+        want = combine_pieces(pieces_of_rows(stored), exp, cluster=DEFAULT_CLUSTER)
         got = to_date[(to_date["experiment_id"] == exp.id) & (to_date["ds"] == pd.Timestamp(DAYS[2]))]
-        got = got.set_index(["arm", "metric"]).loc[list(zip(want["arm"], want["metric"]))]
-        np.testing.assert_array_equal(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float))
+        got = got.set_index(["arm", "metric"]).loc[list(zip(want.table["arm"], want.table["metric"]))]
+        np.testing.assert_array_equal(got["estimate"].to_numpy(float), want.table["estimate"].to_numpy(float))
         # bidder sums read back meet by id text, not by shared codes: the last bit may differ
-        np.testing.assert_allclose(got["std_error"].to_numpy(float), want["std_error"].to_numpy(float), rtol=1e-13)
+        np.testing.assert_allclose(got["std_error"].to_numpy(float), want.table["std_error"].to_numpy(float), rtol=1e-13)
+        # anytime-valid bounds on every row with an interval, wider than the fixed one (docs/method.md)
+        banded = got[got["std_error"].notna()]
+        assert banded["anytime_low"].notna().all() and (banded["anytime_horizon_auctions"] > 0).all()
+        assert ((banded["anytime_high"] - banded["anytime_low"]) > 1.5 * (banded["ci_high"] - banded["ci_low"])).all()
     # the stored pieces: one per (experiment, day, number of bidders, shard); one shard a day here
     with duckdb.connect(conf["results_database"], read_only=True) as con:
         pieces_per_day = con.execute("select experiment_id, ds, count(*), max(shard) from stratum_pieces "
@@ -162,10 +168,10 @@ def test_a_day_split_into_shards_combines_its_shards_and_the_days(three_days, tm
         pieces[day] = [p for k in range(4) for p in stratum_pieces(frame[shard == k].reset_index(drop=True), exp,
                                                                       shard=k, day=day, cluster=DEFAULT_CLUSTER)]
         got = daily[(daily["experiment_id"] == "tiles") & (daily["ds"] == pd.Timestamp(day))]
-        _assert_rows_equal(got, combine_pieces(pieces[day], exp, cluster=DEFAULT_CLUSTER))
+        _assert_rows_equal(got, combine_pieces(pieces[day], exp, cluster=DEFAULT_CLUSTER).table)
         assert set(got.loc[got["metric"] == "revenue_per_auction", "n_auctions"]) == {frame["auction_id"].nunique()}
     last = to_date[(to_date["experiment_id"] == "tiles") & (to_date["ds"] == pd.Timestamp(DAYS[2]))]
-    _assert_rows_equal(last, combine_pieces(pieces[DAYS[1]] + pieces[DAYS[2]], exp, cluster=DEFAULT_CLUSTER))
+    _assert_rows_equal(last, combine_pieces(pieces[DAYS[1]] + pieces[DAYS[2]], exp, cluster=DEFAULT_CLUSTER).table)
     with duckdb.connect(str(db), read_only=True) as con:
         shards = con.execute("select ds, count(distinct shard) from stratum_pieces where experiment_id = 'tiles' "
                              "group by ds order by ds").fetchall()
@@ -184,9 +190,9 @@ def test_level_and_cluster_are_run_parameters(three_days, tmp_path):
     for exp in experiments.values():
         bids = lake[(lake["experiment_id"] == exp.id) & (lake["ds"] == DAYS[0])].reset_index(drop=True)
         want = estimate_arms(bids, exp, confidence_level=0.9, cluster="bidder")
-        got = daily[daily["experiment_id"] == exp.id].set_index(["arm", "metric"]).loc[list(zip(want["arm"], want["metric"]))]
-        np.testing.assert_array_equal(got["ci_low"].to_numpy(float), want["ci_low"].to_numpy(float))  # NaN == NaN here
-        np.testing.assert_array_equal(got["ci_high"].to_numpy(float), want["ci_high"].to_numpy(float))
+        got = daily[daily["experiment_id"] == exp.id].set_index(["arm", "metric"]).loc[list(zip(want.table["arm"], want.table["metric"]))]
+        np.testing.assert_array_equal(got["ci_low"].to_numpy(float), want.table["ci_low"].to_numpy(float))  # NaN == NaN here
+        np.testing.assert_array_equal(got["ci_high"].to_numpy(float), want.table["ci_high"].to_numpy(float))
         assert set(got["confidence_level"]) == {0.9}
     assert set(daily.loc[daily["metric"] != "realized_revenue_per_auction", "cluster"]) == {"bidder"}
 
@@ -207,7 +213,7 @@ def test_rerun_replaces_rows_without_duplicates(three_days):
         lift = con.execute("select span, count(*) from arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from arm_estimates_cumulative").fetchall()
         weights = con.execute("select count(*) from arm_position_weights").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 4)]  # 2 experiments x 1 non-control arm x 3 days (2 to date: day 1 is left out)
+    assert lift == [("day", 6), ("to_date", 6)]  # 2 experiments x 1 non-control arm x 3 days (day 1's to date: no number)
     assert cumulative == [(DAYS[-1],)]
     assert weights == 3 * (3 + 3 + 2 + 2)  # days x (positions of each arm)
     assert not any((root / "staging").rglob("*.parquet"))
@@ -325,8 +331,8 @@ def test_measured_position_weights_run_through_validate_estimate_and_write(bag, 
         frame = lake[lake["ds"] == day].reset_index(drop=True)
         want_est = estimate_arms(frame, filled)
         got = daily[daily["ds"] == pd.Timestamp(day)]
-        merged = want_est.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
-        assert (merged["_merge"] == "both").all() and len(got) == len(want_est)
+        merged = want_est.table.merge(got, on=["arm", "metric"], how="outer", suffixes=("", "_db"), indicator=True)
+        assert (merged["_merge"] == "both").all() and len(got) == len(want_est.table)
         for col in VALUES:
             pd.testing.assert_series_equal(merged[col], merged[f"{col}_db"], check_names=False, check_exact=True,
                                            check_dtype=False)
@@ -386,7 +392,11 @@ def test_three_days_into_postgres_match_duckdb_and_rerun_identically(three_days,
         lift = con.execute("select span, count(*) from main.arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from main.arm_estimates_cumulative").fetchall()
         checks = con.execute("select count(distinct (experiment_id, ds)) from main.data_checks").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 4)]  # day 1 (warm-up) has no to-date rows and cumulative == [(DAYS[-1],)] and checks == 6
+    # day 1 (warm-up) has to-date rows too, without numbers (status warming_up): 3 days x 2 lift rows per span
+    assert lift == [("day", 6), ("to_date", 6)]
+    # the cumulative view holds the latest day only; every (experiment, day) has its checks stored
+    assert cumulative == [(DAYS[-1],)]
+    assert checks == len(DAYS) * len(load_experiments(conf["spec_path"])) == 6
     # the stored check outcomes too (the DuckDB file's are from its own latest run of the same days)
     check_cols = "experiment_id, ds, \"check\", severity, passed, observed, threshold, cast(details as varchar) as details"
     order = "order by experiment_id, ds, \"check\""

@@ -24,7 +24,7 @@ import yaml
 from counterbid.cli.backfill import DAG_ID, run_days
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import parse_experiments, simulate_experiment
-from counterbid.estimators.pieces import shard_of
+from counterbid.estimators import shard_of
 
 from .conftest import START
 
@@ -152,7 +152,7 @@ def _day_with_a_shard_of_lone_bidders(day_folder: Path, shards: int) -> int:
     alone has nothing to estimate, and must add only its left-out auctions. Returns the number of bids.
     """
     experiment = parse_experiments(LONE_SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), experiment, n_bidders=4, n_auctions=600, rng=3)
+    frame = simulate_experiment(st.uniform(0, 1), experiment, n_bidders=4, n_auctions=600, rng=3)
     frame = frame.drop(columns=["ds", "value", "clicks"])
     lone = shard_of(frame["auction_id"], shards) == 0
     top = frame["position"] == 1

@@ -8,6 +8,8 @@ IEEE-754 arithmetic, so those results must agree bit for bit; other factors roun
 
 from __future__ import annotations
 
+import dataclasses
+
 import warnings
 
 import numpy as np
@@ -18,7 +20,7 @@ import scipy.stats as st
 from counterbid.estimators import (
     EstimatorWarning, InputError, RESULT_COLUMNS, estimate_arms, parse_experiments, simulate_experiment,
 )
-from counterbid.estimators import arms as arms_module
+from counterbid.estimators import constants
 
 SCALED = ["estimate", "std_error", "ci_low", "ci_high"]
 
@@ -48,12 +50,13 @@ def base():
 def _estimate(bids, exp, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)
-        return estimate_arms(bids, exp, **kw)
+        return estimate_arms(bids, exp, **kw).table
 
 
 @pytest.mark.parametrize("scale", [1e-6, 1.0, 1e3, 1e300, 2.0**-30, 2.0**40, 2.0**900])
 def test_results_scale_with_the_bid_unit(base, scale):
-    exp, bids, ref = base
+    exp, bids, result = base
+    ref = result.table
     out = _estimate(bids.assign(bid=bids["bid"] * scale), exp)
     lift = (out["metric"] == "revenue_lift_vs_control").to_numpy()
     exact = float(np.log2(scale)).is_integer()
@@ -70,7 +73,8 @@ def test_results_scale_with_the_bid_unit(base, scale):
 
 def test_subnormal_bids_estimate(base):
     # bids around 1e-310 are subnormal doubles (fewer significant bits): same numbers to 1e-9
-    exp, bids, ref = base
+    exp, bids, result = base
+    ref = result.table
     out = _estimate(bids.assign(bid=bids["bid"] * 1e-310), exp)
     revenue = (out["metric"] == "revenue_per_auction").to_numpy()
     np.testing.assert_allclose(out.loc[revenue, "estimate"] / 1e-310, ref.loc[revenue, "estimate"], rtol=1e-9)
@@ -102,10 +106,10 @@ def test_every_bid_equal_is_degenerate_not_a_number():
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=5, n_auctions=300, rng=3).assign(bid=0.25)
     with pytest.warns(EstimatorWarning, match=r"5 bidders: all 1500 bids equal 0\.25"):
         out = estimate_arms(bids, exp)
-    counterfactual = out["metric"].isin(["revenue_per_auction", "welfare_per_auction", "revenue_lift_vs_control"])
-    assert out.loc[counterfactual, SCALED].isna().all().all()
-    assert out.loc[counterfactual, "status"].str.contains("degenerate").all()
-    realized = out[out["metric"] == "realized_revenue_per_auction"]
+    counterfactual = out.table["metric"].isin(["revenue_per_auction", "welfare_per_auction", "revenue_lift_vs_control"])
+    assert out.table.loc[counterfactual, SCALED].isna().all().all()
+    assert out.table.loc[counterfactual, "status"].str.contains("degenerate").all()
+    realized = out.table[out.table["metric"] == "realized_revenue_per_auction"]
     assert np.isfinite(realized["estimate"]).all() and (realized["status"] == "ok").all()
 
 
@@ -117,7 +121,7 @@ def test_one_degenerate_stratum_is_named_and_spoils_the_pooled_estimate():
     with pytest.warns(EstimatorWarning, match=r"stratum of 3 bidders: all \d+ bids equal 0\.5") as record:
         out = estimate_arms(bids, exp)
     assert not any("stratum of 5 bidders" in str(w.message) for w in record)
-    revenue = out[out["metric"] == "revenue_per_auction"]
+    revenue = out.table[out.table["metric"] == "revenue_per_auction"]
     assert revenue["estimate"].isna().all() and revenue["status"].str.contains("degenerate").all()
 
 
@@ -126,11 +130,11 @@ def test_all_zero_bids_are_degenerate_too():
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=200, rng=5).assign(bid=0.0)
     with pytest.warns(EstimatorWarning, match="all 800 bids equal 0.0"):
         out = estimate_arms(bids, exp)
-    assert out.loc[out["metric"] == "revenue_lift_vs_control", "estimate"].isna().all()
+    assert out.table.loc[out.table["metric"] == "revenue_lift_vs_control", "estimate"].isna().all()
 
 
 def test_small_strata_are_flagged_with_a_warning_and_a_status():
-    assert arms_module.MIN_STRATUM_BIDS == 100
+    assert constants.MIN_STRATUM_BIDS == 100
     exp = two_vs_three_slots()
     rng = np.random.default_rng(6)
     big = simulate_experiment(st.uniform(0, 1), exp, n_bidders=5, n_auctions=400, rng=rng)
@@ -138,22 +142,25 @@ def test_small_strata_are_flagged_with_a_warning_and_a_status():
     bids = pd.concat([big, small], ignore_index=True)
     with pytest.warns(EstimatorWarning, match=r"fewer than 100 bids \(3 bidders: 12 bids\).*under-cover"):
         out = estimate_arms(bids, exp)
-    counterfactual = out["metric"].isin(["revenue_per_auction", "revenue_lift_vs_control"])
-    assert (out.loc[counterfactual, "status"] == "few_bids").all()
-    assert (out.loc[out["metric"] == "realized_revenue_per_auction", "status"] == "ok").all()
+    counterfactual = out.table["metric"].isin(["revenue_per_auction", "revenue_lift_vs_control"])
+    assert (out.table.loc[counterfactual, "status"] == "few_bids").all()
+    assert (out.table.loc[out.table["metric"] == "realized_revenue_per_auction", "status"] == "ok").all()
     with warnings.catch_warnings():  # a large stratum alone: no such warning, status ok
         warnings.simplefilter("error", EstimatorWarning)
         warnings.filterwarnings("ignore", "welfare", EstimatorWarning)
         clean = estimate_arms(big, exp)
-    assert (clean.loc[clean["metric"] == "revenue_per_auction", "status"] == "ok").all()
+    assert (clean.table.loc[clean.table["metric"] == "revenue_per_auction", "status"] == "ok").all()
 
 
-def test_status_column_follows_n_bids_and_attrs_are_kept(base):
-    _, _, out = base
+def test_status_column_follows_n_bids_and_the_result_says_how_it_was_computed(base):
+    _, _, result = base
+    out = result.table
     assert list(out.columns) == list(RESULT_COLUMNS)
     assert RESULT_COLUMNS[RESULT_COLUMNS.index("n_bids") + 1] == "status"
-    assert out.attrs["confidence_level"] == 0.95 and out.attrs["cluster"] in ("auction", "bidder")
-    known = set(arms_module.STATUS_FLAGS)
+    assert result.confidence_level == 0.95 and result.cluster in ("auction", "bidder")
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        result.cluster = "auction"
+    known = set(constants.STATUS_FLAGS)
     assert all(set(s.split(",")) <= known for s in out["status"])
 
 
@@ -164,9 +171,9 @@ def test_welfare_is_published_without_an_interval(base):
         out = estimate_arms(bids, exp)
     # a fixed property of the metric, said by its status flag: no warning on every run (task logs stay readable)
     assert not [w for w in caught if issubclass(w.category, EstimatorWarning)]
-    welfare = out[out["metric"] == "welfare_per_auction"]
+    welfare = out.table[out.table["metric"] == "welfare_per_auction"]
     assert np.isfinite(welfare["estimate"]).all()
     assert welfare[["std_error", "ci_low", "ci_high"]].isna().all().all()
     assert (welfare["status"] == "no_interval").all()
-    others = out[out["metric"] != "welfare_per_auction"]
+    others = out.table[out.table["metric"] != "welfare_per_auction"]
     assert np.isfinite(others["std_error"]).all() and (others["status"] == "ok").all()

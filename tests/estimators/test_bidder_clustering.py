@@ -37,7 +37,7 @@ def _binomial_band(p: float, reps: int, k: float = 3.0) -> tuple[float, float]:
 def _estimate(data, exp, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimatorWarning)  # welfare's missing interval
-        return estimate_arms(data, exp, **kw).set_index(["arm", "metric"])
+        return estimate_arms(data, exp, **kw).table.set_index(["arm", "metric"])
 
 
 # --------------------------------------------------------------------------------------------
@@ -121,19 +121,19 @@ def test_auto_cluster_resolves_both_ways():
     rng = np.random.default_rng(1)
     pooled = PersistentPool(VALUES, exp, n_bidders=4, n_auctions=500, pool=100).draw(rng)
     out = estimate_arms(pooled, exp)  # default: auto
-    assert out.attrs["cluster"] == "bidder"
+    assert out.cluster == "bidder"
     explicit = estimate_arms(pooled, exp, cluster="bidder")
-    np.testing.assert_array_equal(out["std_error"].to_numpy(), explicit["std_error"].to_numpy())
+    np.testing.assert_array_equal(out.table["std_error"].to_numpy(), explicit.table["std_error"].to_numpy())
     # every bid from its own bidder (as simulate_prepared labels them): auction clustering
     fresh = simulate_prepared("lognormal", exp, n_bidders=4, n_auctions=500, rng=rng)
     out = estimate_arms(fresh, exp)
-    assert out.attrs["cluster"] == "auction"
-    np.testing.assert_array_equal(out["std_error"].to_numpy(), estimate_arms(fresh, exp, cluster="auction")["std_error"].to_numpy())
+    assert out.cluster == "auction"
+    np.testing.assert_array_equal(out.table["std_error"].to_numpy(), estimate_arms(fresh, exp, cluster="auction").table["std_error"].to_numpy())
     # string bidder ids that repeat across auctions go through the frame path too
     bids = simulate_experiment(VALUES, exp, n_bidders=3, n_auctions=400, rng=2, bidder_pool=50)
-    assert estimate_arms(bids.assign(bidder_id="b" + bids["bidder_id"].astype(str)), exp).attrs["cluster"] == "bidder"
+    assert estimate_arms(bids.assign(bidder_id="b" + bids["bidder_id"].astype(str)), exp).cluster == "bidder"
     unique = bids.assign(bidder_id=np.arange(len(bids)))
-    assert estimate_arms(unique, exp).attrs["cluster"] == "auction"
+    assert estimate_arms(unique, exp).cluster == "auction"
 
 
 # --------------------------------------------------------------------------------------------

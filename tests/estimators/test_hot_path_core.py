@@ -16,7 +16,9 @@ from counterbid.estimators import (
     InputError, allocation_rule, estimate_arms, mixture_rule, parse_experiments, prepare_bids, revenue_weights,
     simulate_experiment, welfare_weights,
 )
-from counterbid.estimators import arms as arms_module
+from counterbid.estimators import bids as bids_module
+from counterbid.estimators._lstatistic import l_statistic
+from counterbid.estimators.stratum import table_weights
 from counterbid.estimators.order_weights import WeightTable
 
 ARMS = [[0.31, 0.17, 0.06, 0.02], [0.29, 0.22, 0.15, 0.02], [0.29, 0.19, 0.10, 0.05, 0.02]]
@@ -38,6 +40,7 @@ def _weights(n, big_n):
 def test_weight_table_is_scipy_cubic_spline(big_n):
     ws = _weights(5, big_n)
     table = WeightTable(ws, big_n)
+    metric, _ = table_weights(ws, [], 5, big_n)  # the kernel's increments, from the same table
     grid = np.arange(big_n + 1) / big_n
     for k, w in enumerate(ws):
         reference = CubicSpline(w.grid, w.values)  # what CumulativeWeights.at evaluates
@@ -64,29 +67,29 @@ def _direct_influence(sorted_bids, increments):
 
 @pytest.mark.parametrize("big_n", [5_000, 20_000, 50_001])
 def test_blocked_l_statistic_matches_the_direct_formula(big_n, monkeypatch):
-    monkeypatch.setattr(arms_module, "_BLOCK", 1_024)  # many blocks, ragged last one
     rng = np.random.default_rng(big_n)
     sorted_bids = np.sort(rng.lognormal(-0.3, 0.5, big_n))
     ws = _weights(5, big_n)
     table = WeightTable(ws, big_n)
+    metric, _ = table_weights(ws, [], 5, big_n)  # the kernel's increments, from the same table
     grid = np.arange(big_n + 1) / big_n
     for k, w in enumerate(ws):
         if not np.isfinite(w.top):
             continue
         influence = np.empty(big_n)
-        est = arms_module._l_statistic(table, k, 5, sorted_bids, influence)
+        est = l_statistic(metric[k].increments, sorted_bids, influence, block=1_024)  # many blocks, ragged last one
         inc = 5 * np.diff(w.values if table.exact else CubicSpline(w.grid, w.values)(grid))
         assert est == pytest.approx(float(sorted_bids @ inc), rel=1e-12)
         np.testing.assert_allclose(influence, _direct_influence(sorted_bids, inc), rtol=1e-9, atol=1e-12)
         # the estimate-only pass (welfare) gives the same number
-        assert arms_module._l_statistic(table, k, 5, sorted_bids, None) == pytest.approx(est, rel=1e-13)
+        assert l_statistic(metric[k].increments, sorted_bids, None, block=1_024) == pytest.approx(est, rel=1e-13)
 
 
 def test_mixture_row_is_the_direct_l_statistic_of_the_mixture_rule():
     # The _mixture revenue row comes from linearity (shares x arms); compute it head-on instead.
     exp = _experiment()
     bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=5, n_auctions=30_000, rng=3)
-    out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+    out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     b = np.sort(bids["bid"].to_numpy())
     rules = [allocation_rule(w, 5) for w in ARMS]
     mix = mixture_rule(rules, SHARES)
@@ -98,20 +101,20 @@ def test_mixture_row_is_the_direct_l_statistic_of_the_mixture_rule():
 
 def test_prepared_bids_and_categorical_columns_give_the_same_rows():
     exp = _experiment()
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=5_000, rng=5)
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=5_000, rng=5)
     plain = estimate_arms(bids, exp)
     categorical = bids.assign(arm=bids["arm"].astype("category"), experiment_id=pd.Categorical(["e"] * len(bids)))
-    pd.testing.assert_frame_equal(estimate_arms(categorical, exp), plain)
-    pd.testing.assert_frame_equal(estimate_arms(prepare_bids(bids, exp), exp), plain)
+    pd.testing.assert_frame_equal(estimate_arms(categorical, exp).table, plain.table)
+    pd.testing.assert_frame_equal(estimate_arms(prepare_bids(bids, exp), exp).table, plain.table)
     # categories in another order than the spec's, and one category no row uses
     shuffled = bids.assign(arm=pd.Categorical(bids["arm"], categories=["zz_unused", "a2", "a0", "a1"]))
-    pd.testing.assert_frame_equal(estimate_arms(shuffled, exp), plain)
+    pd.testing.assert_frame_equal(estimate_arms(shuffled, exp).table, plain.table)
 
 
 def test_duplicate_bidder_is_found_across_check_blocks(monkeypatch):
-    monkeypatch.setattr(arms_module, "_PAIR_BLOCK", 1_000)
+    monkeypatch.setattr(bids_module, "_PAIR_BLOCK", 1_000)
     exp = _experiment()
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=2_000, rng=7)
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=2_000, rng=7)
     estimate_arms(bids, exp)  # clean: passes block by block
     dup = pd.concat([bids.iloc[:4_500], bids.iloc[[4_499]], bids.iloc[4_500:]], ignore_index=True)
     with pytest.raises(InputError, match=r"bids twice in auction .*rows 4499 and 4500"):

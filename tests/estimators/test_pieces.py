@@ -30,6 +30,7 @@ import pytest
 import scipy.stats as st
 
 from counterbid.estimators import (
+    ArmEstimates,
     MAX_BIDS_PER_SHARD, PIECE_FRAMES, EstimatorWarning, InputError, PreparedBids, allocation_rule, combine_pieces,
     equilibrium_bid_function, estimate_arms, expected_revenue_per_auction, mixture_rule, n_shards, parse_experiments,
     pieces_from_frames, pieces_to_frames, shard_of, simulate_experiment, stratum_pieces,
@@ -53,11 +54,11 @@ def _experiment(payment_rule="first_price", floor=None):
     return parse_experiments({"experiments": [raw]})["quillfen-strata"]
 
 
-def _same(got: pd.DataFrame, want: pd.DataFrame, rtol: float = 1e-12) -> None:
-    assert got[["arm", "metric", "status", "n_auctions", "n_bids"]].equals(want[["arm", "metric", "status", "n_auctions",
-                                                                                   "n_bids"]])
-    np.testing.assert_allclose(got[NUMBERS].to_numpy(), want[NUMBERS].to_numpy(), rtol=rtol, atol=0)
-    assert got.attrs == want.attrs
+def _same(got: ArmEstimates, want: ArmEstimates, rtol: float = 1e-12) -> None:
+    columns = ["arm", "metric", "status", "n_auctions", "n_bids"]
+    assert got.table[columns].equals(want.table[columns])
+    np.testing.assert_allclose(got.table[NUMBERS].to_numpy(), want.table[NUMBERS].to_numpy(), rtol=rtol, atol=0)
+    assert dataclasses.replace(got, table=None) == dataclasses.replace(want, table=None)
 
 
 def _binomial_band(p: float, reps: int, k: float = 3.0) -> tuple[float, float]:
@@ -100,7 +101,7 @@ def test_strata_estimated_from_their_own_logs_combine_to_estimate_arms(rule, flo
             np.testing.assert_array_equal(a.floor_quantile, b.floor_quantile)  # NaN without a floor
     # auto: these bidders repeat, so auto is bidder clustering, in estimate_arms and in the combination
     auto = combine_pieces([p for n in (3, 5, 8) for p in stratum_pieces(bids[size == n], exp)], exp)
-    assert auto.attrs["cluster"] == "bidder"
+    assert auto.cluster == "bidder"
     _same(auto, estimate_arms(bids, exp))
 
 
@@ -115,17 +116,17 @@ def test_bidder_sums_meet_across_inputs_only_on_equal_ids():
     _same(met, estimate_arms(bids, exp, cluster="bidder"))
     renamed = five.assign(bidder_id="other-" + five["bidder_id"].astype(str))  # disjoint bidders
     pieces = stratum_pieces(three, exp, cluster="bidder") + stratum_pieces(renamed, exp, cluster="bidder")
-    apart = combine_pieces(pieces, exp, cluster="bidder").set_index(["arm", "metric"])
+    apart = combine_pieces(pieces, exp, cluster="bidder").table.set_index(["arm", "metric"])
     # disjoint bidders: the strata's CR1 variances add, each factor B_s/(B_s-1) traded for G/(G-1), G = B_3 + B_5
     b = np.array([p.bidder_ids.size for p in pieces], dtype=float)
     pi = np.array([p.n_auctions for p in pieces], dtype=float) / sum(p.n_auctions for p in pieces)
-    own = [combine_pieces([p], exp, cluster="bidder").set_index(["arm", "metric"]) for p in pieces]
+    own = [combine_pieces([p], exp, cluster="bidder").table.set_index(["arm", "metric"]) for p in pieces]
     g = b.sum()
     assert g == len(set(three["bidder_id"])) + len(set(five["bidder_id"]))
     for key in [("control", "revenue_per_auction"), ("deep", "revenue_per_auction")]:
         want = g / (g - 1) * sum(p * p * o.loc[key, "std_error"] ** 2 * (bs - 1) / bs for p, o, bs in zip(pi, own, b))
         assert apart.loc[key, "std_error"] ** 2 == pytest.approx(want, rel=1e-12)
-        assert apart.loc[key, "std_error"] != pytest.approx(met.set_index(["arm", "metric"]).loc[key, "std_error"],
+        assert apart.loc[key, "std_error"] != pytest.approx(met.table.set_index(["arm", "metric"]).loc[key, "std_error"],
                                                             rel=1e-6)
 
 
@@ -167,13 +168,13 @@ def test_shards_of_ten_thousand_bids_combine_to_the_unsharded_estimate():
     diff, se, se_ratio = [], [], []
     for _ in range(25):
         data = simulate_prepared("lognormal", exp, n_bidders=4, n_auctions=5000, rng=rng)
-        whole = combine_pieces(stratum_pieces(data, exp, cluster="auction"), exp, cluster="auction").set_index(["arm", "metric"])
-        sharded = combine_pieces(_sharded(data, exp, 2, cluster="auction"), exp,
-                                 cluster="auction").set_index(["arm", "metric"])
+        whole = combine_pieces(stratum_pieces(data, exp, cluster="auction"), exp, cluster="auction").table.set_index(["arm", "metric"])
+        sharded_result = combine_pieces(_sharded(data, exp, 2, cluster="auction"), exp, cluster="auction")
+        sharded = sharded_result.table.set_index(["arm", "metric"])
         diff.append([sharded.loc[k, "estimate"] - whole.loc[k, "estimate"] for k in keys])
         se.append([whole.loc[k, "std_error"] for k in keys])
         se_ratio.append([sharded.loc[k, "std_error"] / whole.loc[k, "std_error"] for k in keys])
-        assert sharded.attrs["n_auctions"] == 5000 and sharded.attrs["strata"] == {4: 5000}
+        assert sharded_result.n_auctions == 5000 and sharded_result.strata == {4: 5000}
     diff, se, se_ratio = map(np.asarray, (diff, se, se_ratio))
     bias_in_se = np.abs(diff.mean(axis=0)) / se.mean(axis=0)
     assert (bias_in_se < 0.05).all(), bias_in_se
@@ -195,7 +196,7 @@ def test_sharded_standard_errors_match_the_monte_carlo_spread():
     se = {k: np.empty(reps) for k in truth}
     for r in range(reps):
         data = simulate_prepared(VALUES, exp, n_bidders=n, n_auctions=2500, rng=rng)
-        out = combine_pieces(_sharded(data, exp, 4, cluster="auction"), exp).set_index(["arm", "metric"])
+        out = combine_pieces(_sharded(data, exp, 4, cluster="auction"), exp).table.set_index(["arm", "metric"])
         for k in truth:
             est[k][r], se[k][r] = out.loc[k, ["estimate", "std_error"]]
     rel = 3 / math.sqrt(2 * (reps - 1))
@@ -242,7 +243,7 @@ def _per_day_variances_added(day_pieces, exp, keys):
     """SE from each day's own bidder-clustered SE, added as if days were independent."""
     weights = np.array([sum(p.n_auctions for p in ps) for ps in day_pieces], dtype=float)
     weights /= weights.sum()
-    outs = [combine_pieces(ps, exp, cluster="bidder").set_index(["arm", "metric"]) for ps in day_pieces]
+    outs = [combine_pieces(ps, exp, cluster="bidder").table.set_index(["arm", "metric"]) for ps in day_pieces]
     return {k: math.sqrt(sum(w * w * o.loc[k, "std_error"] ** 2 for w, o in zip(weights, outs))) for k in keys}
 
 
@@ -252,8 +253,9 @@ def test_days_combine_as_the_auction_weighted_average_of_each_day():
     pieces = [stratum_pieces(d, exp, day=f"2026-03-0{i + 2}", cluster="bidder") for i, d in enumerate(days)]
     m = np.array([d.n_auctions for d in days], dtype=float)
     pi = m / m.sum()
-    per_day = [combine_pieces(ps, exp, cluster="auction").set_index(["arm", "metric"]) for ps in pieces]
-    both = combine_pieces(pieces[0] + pieces[1], exp, cluster="auction").set_index(["arm", "metric"])
+    per_day = [combine_pieces(ps, exp, cluster="auction").table.set_index(["arm", "metric"]) for ps in pieces]
+    both_result = combine_pieces(pieces[0] + pieces[1], exp, cluster="auction")
+    both = both_result.table.set_index(["arm", "metric"])
     for k in [("control", "revenue_per_auction"), ("treated", "revenue_per_auction"), ("_mixture", "revenue_per_auction"),
               ("control", "welfare_per_auction")]:
         assert both.loc[k, "estimate"] == pytest.approx(sum(p * o.loc[k, "estimate"] for p, o in zip(pi, per_day)),
@@ -267,9 +269,10 @@ def test_days_combine_as_the_auction_weighted_average_of_each_day():
         # auction clustering: CR1 variances add, each day's factor G_d/(G_d-1) traded for the pooled M/(M-1)
         cr0 = sum(p * p * o.loc[k, "std_error"] ** 2 * (g - 1) / g for p, o, g in zip(pi, per_day, m))
         assert both.loc[k, "std_error"] ** 2 == pytest.approx(m.sum() / (m.sum() - 1) * cr0, rel=1e-12)
-    assert both.attrs["n_auctions"] == 2400 and both.attrs["strata"] == {4: 2400}
-    bidder = combine_pieces(pieces[0] + pieces[1], exp).set_index(["arm", "metric"])
-    assert bidder.attrs["cluster"] == "bidder"
+    assert both_result.n_auctions == 2400 and both_result.strata == {4: 2400}
+    bidder_result = combine_pieces(pieces[0] + pieces[1], exp)
+    bidder = bidder_result.table.set_index(["arm", "metric"])
+    assert bidder_result.cluster == "bidder"
     added = _per_day_variances_added(pieces, exp, [("control", "revenue_per_auction")])
     assert bidder.loc[("control", "revenue_per_auction"), "std_error"] > 1.2 * added[("control", "revenue_per_auction")]
 
@@ -285,7 +288,7 @@ def _two_day_coverage(reps: int, seed: int):
     for r in range(reps):
         days = sim.draw(rng)
         pieces = [stratum_pieces(d, exp, day=f"2026-03-0{i + 2}", cluster="bidder") for i, d in enumerate(days)]
-        out = combine_pieces(pieces[0] + pieces[1], exp, cluster="bidder").set_index(["arm", "metric"])
+        out = combine_pieces(pieces[0] + pieces[1], exp, cluster="bidder").table.set_index(["arm", "metric"])
         added = _per_day_variances_added(pieces, exp, list(truth))
         for k in truth:
             est[k][r], se_bidder[k][r] = out.loc[k, ["estimate", "std_error"]]
@@ -347,8 +350,8 @@ def test_pieces_round_trip_through_plain_frames_exactly():
         assert b.bidder_ids is None or b.bidder_ids.dtype == object
     # bidders come back shuffled here, so the sums over bidders add in another order: equal to rounding
     _same(combine_pieces(back[:2], exp, cluster="bidder"), combine_pieces(pieces[:2], exp, cluster="bidder"), rtol=1e-14)
-    assert pieces[0].to_frames()["strata"].equals(frames["strata"].iloc[[0]])
-    assert type(pieces[0]).from_frames(pieces[0].to_frames()).equals(pieces[0])
+    assert pieces_to_frames(pieces[:1])["strata"].equals(frames["strata"].iloc[[0]])
+    assert pieces_from_frames(pieces_to_frames(pieces[:1]))[0].equals(pieces[0])
     with pytest.raises(InputError, match="frame 'bidder_sums' is missing"):
         pieces_from_frames({k: v for k, v in frames.items() if k != "bidder_sums"})
 

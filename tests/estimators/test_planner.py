@@ -156,3 +156,18 @@ def test_simulated_half_width_rejects_bad_reps():
         simulated_half_width(VALUES, two_arms(), n_bidders=3, n_auctions=10, reps=1)
     assert np.isfinite(simulated_half_width(VALUES, two_arms(), n_bidders=3, n_auctions=50, reps=3, rng=0)
                        ["simulated_half_width"]).all()
+
+
+def test_anytime_plan_is_the_fixed_plan_times_the_boundary_at_the_planned_end():
+    # Same seed, same calibration: only the multiplier differs. At the planned end (ratio 1) the
+    # normal-mixture boundary tuned there is sqrt(1 + x*) = sqrt(-W_{-1}(-alpha^2/e)) standard errors
+    # (docs/method.md, "Looking every day"), 3.0351 at 95 % against z = 1.95996.
+    kwargs = dict(days=DAYS, auctions_per_day=PER_DAY, values=VALUES, n_bidders=N_BIDDERS, shares=(0.1, 0.5),
+                  calibration_auctions=2000, rng=4)
+    fixed, anytime = plan_shares(two_arms(), **kwargs), plan_shares(two_arms(), anytime=True, **kwargs)
+    assert not fixed.anytime and anytime.anytime
+    ratio = 3.035122 / st.norm.ppf(0.975)
+    for col in ("half_width", "informed_ab_half_width"):
+        np.testing.assert_allclose(anytime.table[col], fixed.table[col] * ratio, rtol=1e-6)
+    with pytest.raises(InputError, match="`anytime` must be True or False"):
+        plan_shares(two_arms(), anytime="yes", **kwargs)

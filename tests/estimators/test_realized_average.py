@@ -43,7 +43,7 @@ def test_realized_averages_match_the_plain_groupby():
     np.testing.assert_allclose(got.mean, want["mean"], rtol=1e-12)
     np.testing.assert_allclose(got.std_error, want["se"], rtol=1e-10)
     np.testing.assert_array_equal(got.auctions, want["auctions"].astype(int))
-    out = estimate_arms(bids, exp).set_index(["arm", "metric"])
+    out = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
     for k, name in enumerate(exp.arm_names):
         assert out.loc[(name, "realized_revenue_per_auction"), "estimate"] == got.mean[k]
 

@@ -33,7 +33,7 @@ def test_welfare_is_unbiased_up_to_monte_carlo_error(values):
         data = simulate_prepared(values, exp, n_bidders=n, n_auctions=1000, rng=rng)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", EstimatorWarning)
-            out = estimate_arms(data, exp).set_index(["arm", "metric"])
+            out = estimate_arms(data, exp).table.set_index(["arm", "metric"])
         est[r] = [out.loc[(a.name, "welfare_per_auction"), "estimate"] for a in exp.arms]
     mc_se = est.std(axis=0, ddof=1) / math.sqrt(reps)
     assert np.all(np.abs(est.mean(axis=0) - truth) <= 3 * mc_se), (est.mean(axis=0) - truth) / mc_se

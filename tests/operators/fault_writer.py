@@ -6,6 +6,13 @@
 ``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS [PAUSE]``
     Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day,
     ``PAUSE`` seconds apart (default 0; tasks of a real backfill are seconds apart).
+``partition DB STAGING EXPERIMENT DAY [MARKER]``
+    The pipeline's write step (:func:`counterbid.operators.partition.write_partition`) of a day the
+    test staged and estimated, leaving the staging folder in place. With ``MARKER``, the file is
+    created when the *second* results table's insert is about to run (the first table's rows are
+    replaced, the second's deleted: mid-write) and the writer then waits inside its transaction
+    until ``MARKER.release`` exists (at most 120 s), so the test can kill it or cut its connection
+    there. A PostgreSQL session's backend pid is written into the marker.
 ``contend DB EXPERIMENT DAY ROWS RUN_ID GATE [NAME]``
     Like ``write``, but first builds its rows, creates ``GATE/NAME.ready`` (NAME defaults to
     EXPERIMENT, so writers of one experiment can share a gate) and waits for
@@ -41,9 +48,10 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
         "estimate": k / 7.0, "std_error": 0.01, "ci_low": k / 7.0 - 0.02, "ci_high": k / 7.0 + 0.02,
         "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction", "payment_rule": "first_price", "floor": 0.0,
         "method_version": "ordstat-1", "run_id": run_id,
-        "computed_at": now})
+        "computed_at": now, "what_if": False, "effective_share": float("nan")})
     to_date = estimates.assign(first_ds=day - dt.timedelta(days=3), days_used=f"{day - dt.timedelta(days=3)}..{day}",
-                               days_left_out="", n_days_used=4, n_days_left_out=0)
+                               days_left_out="", n_days_used=4, n_days_left_out=0,
+                               anytime_low=k / 7.0 - 0.03, anytime_high=k / 7.0 + 0.03, anytime_horizon_auctions=28000)
     weights = pd.DataFrame({
         "experiment_id": experiment_id, "ds": day, "arm": "arm0000000", "position": range(1, POSITIONS + 1),
         "weight": [0.4, 0.2, 0.1], "source": "spec", "impressions": None, "clicks": None, "first_click_ds": None,
@@ -63,6 +71,40 @@ class _MarkingHook(ResultsHook):
     def sql(self, name: str, **identifiers: str) -> str:
         if name.startswith("results_insert_") and not self.marker.exists():
             self.marker.write_text("inside the transaction\n")
+        return super().sql(name, **identifiers)
+
+
+class _HoldingHook(ResultsHook):
+    """Creates ``marker`` before the second insert statement and waits inside the transaction for its release."""
+
+    def __init__(self, *, marker: Path, **kwargs) -> None:
+        super().__init__(**kwargs)
+        self.marker = marker
+        self.inserts = 0
+        self.backend_pid = None
+
+    def session(self, *, read_only: bool = False):
+        import contextlib
+
+        @contextlib.contextmanager
+        def opened():
+            with super(_HoldingHook, self).session(read_only=read_only) as s:
+                if s.dialect == "postgres" and not read_only:
+                    self.backend_pid = s.con.info.backend_pid
+                yield s
+
+        return opened()
+
+    def sql(self, name: str, **identifiers: str) -> str:
+        if name.startswith("results_insert_"):
+            self.inserts += 1
+            if self.inserts == 2:
+                self.marker.write_text(f"{self.backend_pid or ''}\n")
+                release, deadline = self.marker.with_name(self.marker.name + ".release"), time.monotonic() + 120
+                while not release.exists():
+                    if time.monotonic() > deadline:
+                        raise SystemExit("not released within 120 s")
+                    time.sleep(0.01)
         return super().sql(name, **identifiers)
 
 
@@ -89,6 +131,13 @@ def main(argv: list[str]) -> int:
         day, rows, run_id = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5]
         hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
         hook.replace_partition(experiment_id=experiment_id, ds=day, tables=partition_tables(experiment_id, day, rows, run_id))
+        return 0
+    if command == "partition":
+        from counterbid.operators.partition import write_partition
+
+        staging, experiment_id, day = argv[2], argv[3], dt.date.fromisoformat(argv[4])
+        hook = _HoldingHook(database=db, marker=Path(argv[5])) if len(argv) > 5 else ResultsHook(database=db)
+        print(json.dumps(write_partition(hook, experiment_id=experiment_id, ds=day, staging_root=staging, cleanup=False)))
         return 0
     if command == "contend":
         day, rows, run_id, gate = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5], Path(argv[6])

@@ -21,11 +21,10 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.stats as st
 
-from counterbid.estimators import EstimatorWarning, parse_experiments, simulate_experiment
+from counterbid.estimators import ArmEstimates, EstimatorWarning, parse_experiments, shard_of, simulate_experiment
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.pieces import shard_of
-from counterbid.readers.shards import estimate_bid_log
-from counterbid.readers.spark_shards import _read_parquet, _with_shards, estimate_bid_log_on_spark
+from counterbid.readers.engines import SparkEngine, estimate_bid_log
+from counterbid.readers.spark_shards import _read_parquet, _with_shards
 
 pytestmark = pytest.mark.spark
 
@@ -38,6 +37,11 @@ SPEC = {"experiments": [
         {"name": "low", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
         {"name": "steep", "share": 0.3, "position_weights": [0.6, 0.1]},
     ]},
+    {"id": "racks-what-if", "control_arm": "low", "payment_rule": "gsp", "floor": 0.4, "arms": [
+        {"name": "low", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
+        {"name": "steep", "share": 0.3, "position_weights": [0.6, 0.1]},
+    ], "what_if": [{"name": "middling", "position_weights": [0.5, 0.15, 0.05]},
+                   {"name": "deeper", "position_weights": [0.4, 0.2, 0.1, 0.05]}]},
 ]}
 EXPERIMENTS = parse_experiments(SPEC)
 RTOL = 1e-9
@@ -50,14 +54,14 @@ def _log(n_auctions=1500, *, rng=4, n_bidders=None, bidder_pool=5000, experiment
 
 
 def _both(spark, path, experiment="racks", **kw):
-    """(local frame, local warnings, spark frame, spark warnings) of one input."""
+    """(local estimates, local warnings, spark estimates, spark warnings) of one input."""
     exp = EXPERIMENTS[experiment]
     with warnings.catch_warnings(record=True) as local_caught:
         warnings.simplefilter("always")
         local = estimate_bid_log(path, exp, **kw)
     with warnings.catch_warnings(record=True) as spark_caught:
         warnings.simplefilter("always")
-        on_spark = estimate_bid_log_on_spark(str(path), exp, spark=spark, **kw)
+        on_spark = estimate_bid_log(str(path), exp, engine=SparkEngine(spark), **kw)
     said = [[str(w.message) for w in caught if issubclass(w.category, EstimatorWarning)]
             for caught in (local_caught, spark_caught)]
     # nothing else reaches the caller either (PySpark's notice about pandas versions is silenced)
@@ -65,8 +69,9 @@ def _both(spark, path, experiment="racks", **kw):
     return local, said[0], on_spark, said[1]
 
 
-def _same_frames(local: pd.DataFrame, on_spark: pd.DataFrame, scenario: str) -> float:
+def _same_frames(local_result: ArmEstimates, spark_result: ArmEstimates, scenario: str) -> float:
     """Assert equal text columns and numbers to RTOL; the largest relative difference (printed for the record)."""
+    local, on_spark = local_result.table, spark_result.table
     assert list(on_spark.columns) == list(local.columns)
     assert len(on_spark) == len(local) > 0
     numeric = local.select_dtypes("number").columns
@@ -80,9 +85,10 @@ def _same_frames(local: pd.DataFrame, on_spark: pd.DataFrame, scenario: str) -> 
         np.testing.assert_allclose(b, a, rtol=RTOL, atol=0, err_msg=name)
         scale = np.where(a == 0, 1.0, np.abs(a))
         largest = max(largest, float(np.max(np.abs(a - b) / scale, initial=0.0)))
-    for key in ("cluster", "n_auctions", "n_bids", "n_excluded_auctions", "shards", "payment_rule", "floor", "quality"):
-        assert on_spark.attrs.get(key) == local.attrs.get(key), key
-    assert on_spark.attrs["engine"] == "spark"
+    for key in ("cluster", "n_auctions", "n_bids", "n_excluded_auctions", "shards", "payment_rule", "floor", "quality",
+                "strata", "confidence_level", "method_version"):
+        assert getattr(spark_result, key) == getattr(local_result, key), key
+    assert spark_result.engine == "spark" and local_result.engine == "local"
     print(f"\n[spark vs local] {scenario}: largest relative difference {largest:.3g}")
     return largest
 
@@ -94,8 +100,8 @@ def test_text_ids_repeating_bidders_and_many_shards(spark, tmp_path):
     path = tmp_path / "bids.parquet"
     bids.to_parquet(path, index=False)  # `ds` as pandas' nanosecond timestamps, which Spark refuses by default
     local, local_said, on_spark, spark_said = _both(spark, path, max_bids_per_shard=1200)
-    assert local.attrs["shards"] == 4
-    assert local.attrs["cluster"] == "bidder"  # auto -> bidder: ids repeat across auctions
+    assert local.shards == 4
+    assert local.cluster == "bidder"  # auto -> bidder: ids repeat across auctions
     _same_frames(local, on_spark, "text ids, bidders repeating, 4 shards")
     # the six-bidder stratum is small in every shard: the workers' warning reaches the driver, word for word
     assert spark_said == local_said and any("few_bids" in s and "shard 3" in s for s in spark_said)
@@ -137,7 +143,7 @@ def test_hive_folder_of_several_files_with_decimal_bids(spark, tmp_path):
     bids = _log(2000, rng=7)
     folder = _hive_folder(tmp_path, bids, pa.decimal128(12, 6))
     local, local_said, on_spark, spark_said = _both(spark, folder, max_bids_per_shard=2500)
-    assert local.attrs["shards"] == 3
+    assert local.shards == 3
     _same_frames(local, on_spark, "Hive folder, 6 files, decimal bids, 3 shards")
     assert spark_said == local_said
 
@@ -148,9 +154,20 @@ def test_gsp_with_a_floor_and_quality(spark, tmp_path):
     path = tmp_path / "gsp.parquet"
     bids.to_parquet(path, index=False)
     local, local_said, on_spark, spark_said = _both(spark, path, "racks-gsp", max_bids_per_shard=3000)
-    assert local.attrs["shards"] == 2 and local.attrs["quality"] and local.attrs["floor"] == 0.4
+    assert local.shards == 2 and local.quality and local.floor == 0.4
     _same_frames(local, on_spark, "gsp, floor 0.4, quality, 2 shards")
     assert spark_said == local_said
+
+
+def test_what_if_layouts_on_both_engines(spark, tmp_path):
+    bids = _log(1500, rng=13, experiment="racks-what-if")
+    path = tmp_path / "what_if.parquet"
+    bids.to_parquet(path, index=False)
+    local, _, on_spark, _ = _both(spark, path, "racks-what-if", max_bids_per_shard=3000, cluster="bidder")
+    assert local.shards == 2
+    assert set(on_spark.table.loc[on_spark.table["what_if"], "arm"]) == {"middling", "deeper"}
+    assert on_spark.table.loc[on_spark.table["what_if"], "effective_share"].notna().all()
+    _same_frames(local, on_spark, "what-if layouts, gsp, floor 0.4, bidder clustering, 2 shards")
 
 
 def _local_and_spark_errors(spark, path, **kw) -> tuple[str, str]:
@@ -158,7 +175,7 @@ def _local_and_spark_errors(spark, path, **kw) -> tuple[str, str]:
     with pytest.raises(InputError) as local:
         estimate_bid_log(path, exp, **kw)
     with pytest.raises(InputError) as on_spark:
-        estimate_bid_log_on_spark(str(path), exp, spark=spark, **kw)
+        estimate_bid_log(str(path), exp, engine=SparkEngine(spark), **kw)
     return str(local.value), str(on_spark.value)
 
 
@@ -246,7 +263,7 @@ def test_missing_or_null_auction_ids(spark, tmp_path):
     assert on_spark == local == f"{nulls}: column 'auction_id' row 700 is null"
     # in shards the bid without an auction goes to shard 0, which refuses it by its row there
     with pytest.raises(InputError) as sharded:
-        estimate_bid_log_on_spark(str(nulls), EXPERIMENTS["racks"], spark=spark, max_bids_per_shard=1000)
+        estimate_bid_log(str(nulls), EXPERIMENTS["racks"], engine=SparkEngine(spark), max_bids_per_shard=1000)
     shard = shard_of(bids["auction_id"], 3)
     row_in_shard_0 = int(((shard == 0) & (bids.index < 700)).sum())
     assert str(sharded.value) == f"{nulls} (shard 0): column 'auction_id' row {row_in_shard_0} is null"

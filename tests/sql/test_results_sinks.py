@@ -29,10 +29,11 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", to_date=False, status="ok", lev
         row = dict(experiment_id=exp, ds=ds, arm=arm, metric=metric, estimate=est, std_error=0.01,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
                    confidence_level=level, cluster=cluster, payment_rule="first_price", floor=0.0,
-                   method_version="ordstat-1", run_id=run_id, computed_at=NOW)
+                   method_version="ordstat-1", run_id=run_id, computed_at=NOW, what_if=False, effective_share=np.nan)
         if to_date:
             row.update(first_ds=D1, days_used=f"{D1}..{ds}", days_left_out="", n_days_used=(ds - D1).days + 1,
-                       n_days_left_out=0)
+                       n_days_left_out=0, anytime_low=est - 0.03, anytime_high=est + 0.03,
+                       anytime_horizon_auctions=2800)
         rows.append(row)
     return pa.Table.from_pandas(pd.DataFrame(rows), preserve_index=False)
 
@@ -167,13 +168,20 @@ def test_a_version_1_database_is_upgraded_in_place_with_its_rows(sink, recorded,
     _build_version_1(sink, record=recorded)
     with sink.session() as s:
         assert schema_version(s) == 1
-    assert sink.ensure_tables() == list(range(2, SCHEMA_VERSION + 1))
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[1:]]
     assert sink.ensure_tables() == []  # idempotent
     kept = _table(sink, "arm_estimates")
     columns = ["arm", "estimate", "status", "run_id", "confidence_level", "cluster", "payment_rule", "floor"]
     assert kept[columns].values.tolist() == [["bold", 1.5, "warning", "r0", 0.95, "auction", "first_price", 0.0]]
-    assert len(_table(sink, "arm_estimates_to_date")) == 1
-    assert _table(sink, "counterbid_schema")["version"].tolist() == list(range(1, SCHEMA_VERSION + 1))
+    kept_to_date = _table(sink, "arm_estimates_to_date")
+    assert len(kept_to_date) == 1
+    # version 3 added the anytime-valid bounds: rows written before it have none (null, never 0)
+    assert kept_to_date[["anytime_low", "anytime_high", "anytime_horizon_auctions"]].isna().all(axis=None)
+    assert kept_to_date["estimate"].tolist() == [1.5]
+    # version 5 added what_if and effective_share: rows written before it are arms' (null)
+    for table in (kept, kept_to_date):
+        assert table[["what_if", "effective_share"]].isna().all(axis=None)
+    assert _table(sink, "counterbid_schema")["version"].tolist() == [m.version for m in MIGRATIONS]
     # the upgraded tables take today's rows, and have exactly the columns of a fresh database
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={"arm_estimates": _rows("tiles", D2, status="few_bids")})
     assert len(_table(sink, "arm_estimates")) == 5
@@ -183,6 +191,29 @@ def test_a_version_1_database_is_upgraded_in_place_with_its_rows(sink, recorded,
         with sink.session() as s, fresh.session() as f:
             cols = [r[0] for r in s.execute("results_table_columns", {"schema": "main", "table": table}).fetchall()]
             assert cols == [r[0] for r in f.execute("results_table_columns", {"schema": "main", "table": table}).fetchall()]
+
+
+@pytest.mark.parametrize("recorded", [True, False], ids=["versioned", "before-versions"])
+def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
+    _build_version_1(sink)
+    with sink.session() as s, s.transaction():  # version 2 as released: step 2 of the migrations
+        for st in MIGRATIONS[1].statements:
+            s.execute(st.name, **dict(st.identifiers))
+        s.execute("results_record_version", {"version": 2, "migrated_at": NOW.to_pydatetime()})
+        if not recorded:
+            s.execute("results_drop_table", table="counterbid_schema")
+    with sink.session() as s:
+        assert schema_version(s) == 2  # from the recorded row, or from the columns
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6]  # anytime, warm-up rows, what-if, bidder window
+    sink.replace_partition(experiment_id="tiles", ds=D2, tables={
+        "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
+    rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])
+    old = rows.loc[(pd.Timestamp(D1), "bold", "revenue_per_auction")]
+    assert pd.isna(old["anytime_low"]) and old["estimate"] == 1.5
+    new = rows.loc[(pd.Timestamp(D2), "bold", "revenue_lift_vs_control")]
+    assert (new["anytime_low"], new["anytime_high"], new["anytime_horizon_auctions"]) == (0.1 - 0.03, 0.1 + 0.03, 2800)
+    lift = _table(sink, "arm_lift")
+    assert lift.loc[lift["span"] == "to_date", "anytime_low"].notna().all()
 
 
 def test_a_database_written_before_versions_at_today_shape_is_recorded_not_rebuilt(sink):

@@ -1,0 +1,160 @@
+"""The two engines behind one small interface: where a bid log's or a staged day's stratum pieces come from.
+
+:class:`LocalEngine` reads shard by shard in this process (:mod:`counterbid.readers.shards`);
+:class:`SparkEngine` lets Spark read the bids and estimate the shards in parallel
+(:mod:`counterbid.readers.spark_shards`, imported only when used: PySpark is the ``spark`` extra).
+Both return the same :class:`~counterbid.readers.shards.ShardPieces` for the same input, so the
+command line (:func:`estimate_bid_log`) and the pipeline's estimate step
+(``counterbid.operators.partition.estimate_partition``) call :meth:`Engine.log_pieces` /
+:meth:`Engine.day_pieces` and combine the pieces one way.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Protocol
+
+from counterbid.estimators import ArmEstimates, Experiment, combine_pieces, n_shards
+from counterbid.estimators.errors import InputError
+
+from .shards import ShardPieces, bid_log_rows, column_names, pieces_by_shard, staged_bid_log_shards
+from .shards import max_bids_per_shard as max_bids_setting
+
+__all__ = ["Engine", "LocalEngine", "SparkEngine", "StagedDay", "estimate_bid_log"]
+
+
+@dataclass(frozen=True)
+class StagedDay:
+    """One (experiment, day) as the load step staged it.
+
+    Attributes
+    ----------
+    ds : datetime.date
+    shards : list of (int, Path)
+        Shard number and its staged Parquet folder.
+    n_shards : int
+        Shards the load step split the day into.
+    staged_bids : int or None
+        Bids the load step staged (an engine that reads the lake again must find as many); ``None``
+        when the engine reads the staged shards themselves.
+    source : str
+        Name of the staged day in messages.
+    """
+
+    ds: dt.date
+    shards: list[tuple[int, Path]]
+    n_shards: int
+    staged_bids: int | None
+    source: str
+
+
+class Engine(Protocol):
+    """Where stratum pieces come from: a bid log (the command line) or a staged day (the estimate step)."""
+
+    name: str
+
+    def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None,
+                   cluster: str) -> ShardPieces:
+        """The pieces of every shard of a bid log (``ceil(rows / max_bids_per_shard)`` shards)."""
+        ...
+
+    def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str) -> ShardPieces:
+        """The pieces of a staged day, in its staged shards, recorded under its day."""
+        ...
+
+
+@dataclass(frozen=True)
+class LocalEngine:
+    """Shard by shard in this process: DuckDB splits a large log, each shard is read, estimated and freed."""
+
+    name: str = "local"
+
+    def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
+                   cluster: str = "auto") -> ShardPieces:
+        shards = n_shards(bid_log_rows(path), max_bids_setting(max_bids_per_shard))
+        if shards > 1 and "auction_id" not in column_names(path):
+            shards = 1  # nothing to shard by: the validation of the whole log names the missing column
+        with staged_bid_log_shards(path, shards) as shard_list:
+            found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
+        return ShardPieces(found.pieces, found.n_excluded_auctions, shards)
+
+    def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:
+        return pieces_by_shard(day.shards, experiment, cluster=cluster, day=day.ds, source=day.source)
+
+
+@dataclass(frozen=True)
+class SparkEngine:
+    """Spark reads the bids (a log, or the day's partition of the lake under ``lake_root``) and estimates the shards.
+
+    Attributes
+    ----------
+    spark : pyspark.sql.SparkSession
+    lake_root : str, optional
+        Root of the bid lake (``ds=YYYY-MM-DD`` folders); needed for :meth:`day_pieces`.
+    """
+
+    spark: object
+    lake_root: str | None = None
+    name: str = "spark"
+
+    def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
+                   cluster: str = "auto") -> ShardPieces:
+        from .spark_shards import bid_log_pieces_on_spark
+
+        return bid_log_pieces_on_spark(self.spark, str(path), experiment, max_bids_per_shard=max_bids_per_shard,
+                                       cluster=cluster)
+
+    def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:
+        """The day's pieces from the lake, in the load step's shards.
+
+        Messages name the staged day, as the local engine's do (a shard's row numbers count from
+        the start of that shard, which is the staged shard file). Spark reads the lake again, so
+        it must find the bids the load step staged and the validate step checked: a different
+        count means the partition changed in between.
+        """
+        from .spark_shards import lake_partition_pieces_on_spark
+
+        if self.lake_root in (None, ""):
+            raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
+        found = lake_partition_pieces_on_spark(self.spark, str(self.lake_root), experiment=experiment, ds=day.ds,
+                                               shards=day.n_shards, cluster=cluster, source=day.source)
+        # every single-bidder auction left out is one bid; every other bid is in a piece
+        seen = sum(p.n_bids for p in found.pieces) + found.n_excluded_auctions
+        if seen != int(day.staged_bids):
+            raise InputError(f"{self.lake_root} ds={day.ds}: Spark read {seen} bids of experiment {experiment.id!r}, "
+                             f"the load step staged {day.staged_bids}; the partition changed after it was checked: "
+                             "run the day again from the 'load' step")
+        return found
+
+
+def estimate_bid_log(path: str | Path, experiment: Experiment, *, engine: Engine | None = None,
+                     max_bids_per_shard: int | None = None, confidence_level: float = 0.95,
+                     cluster: str = "auto") -> ArmEstimates:
+    """Per-arm estimates of a bid log on an engine (what ``counterbid estimate`` runs).
+
+    Parameters
+    ----------
+    path : str or Path
+        A Parquet file or folder of one experiment's bids (the Spark engine also reads object-store URLs).
+    experiment : Experiment
+    engine : Engine, optional
+        Default :class:`LocalEngine`.
+    max_bids_per_shard : int, optional
+        Default: ``$COUNTERBID_MAX_BIDS_PER_SHARD``, else
+        :data:`~counterbid.estimators.MAX_BIDS_PER_SHARD`.
+    confidence_level : float
+    cluster : {'auto', 'auction', 'bidder'}
+
+    Returns
+    -------
+    ArmEstimates
+        :func:`~counterbid.estimators.combine_pieces` of every shard's pieces, with the shards
+        and the engine recorded.
+    """
+    engine = engine or LocalEngine()
+    found = engine.log_pieces(str(path), experiment, max_bids_per_shard=max_bids_per_shard, cluster=cluster)
+    result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
+                            n_excluded_auctions=found.n_excluded_auctions, source=str(path))
+    return result.on(shards=found.shards, engine=engine.name)
