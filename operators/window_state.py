@@ -30,7 +30,7 @@ import pyarrow.parquet as pq
 from counterbid.estimators import (
     BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
 )
-from counterbid.estimators.constants import MIXTURE_ARM
+from counterbid.estimators.constants import REVENUE, piece_labels
 from counterbid.estimators.days import parse_day
 from counterbid.estimators.window_totals import WindowTotals
 
@@ -154,7 +154,8 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
 
 
 def _labels(experiment: Experiment) -> list[str]:
-    return [a.name for a in experiment.arms] + [MIXTURE_ARM]
+    """The bidder sums' columns (``StratumPiece.sum_labels``): each arm's, each what-if layout's, the mixture's revenue."""
+    return [name for name, metric in piece_labels(experiment) if metric == REVENUE]
 
 
 def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment: Experiment) -> BidderGram:

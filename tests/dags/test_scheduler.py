@@ -227,8 +227,11 @@ def test_backfill_create_runs_the_days_in_order_and_writes_what_counterbid_backf
     daily, to_date = scheduled["arm_estimates"], scheduled["arm_estimates_to_date"]
     assert sorted({(e, d.date()) for e, d in zip(daily["experiment_id"], daily["ds"])}) == \
         [(e, d) for e in ("banners", "tiles") for d in DAYS]
-    # to-date rows for the days after the warm-up day, each combining the days up to it
-    assert sorted(set(zip(to_date["ds"].dt.date, to_date["n_days_used"]))) == [(DAYS[1], 1), (DAYS[2], 2)]
+    # to-date rows for every day: the warm-up day's without numbers (no day used yet, status warming_up),
+    # then each later day combining the days up to it
+    assert sorted(set(zip(to_date["ds"].dt.date, to_date["n_days_used"]))) == [(DAYS[0], 0), (DAYS[1], 1), (DAYS[2], 2)]
+    pending = to_date[to_date["n_days_used"] == 0]
+    assert pending["estimate"].isna().all() and all("warming_up" in s.split(",") for s in pending["status"])
 
     # and one day against estimate_arms on the lake, outside Airflow
     lake = pads.dataset(str(tmp_path / "bids"), format="parquet", partitioning="hive").to_table().to_pandas()

@@ -156,7 +156,7 @@ def test_the_default_window_leaves_warm_up_days_out_and_lands_on_the_truth(tmp_p
     misses = {}
     for arm in exp.arms:
         truth = expected_revenue_per_auction(values, arm.position_weights, 4)
-        for name, table in (("default", default), ("warm-up included", included.table)):
+        for name, table in (("default", default), ("warm-up included", included)):
             misses[(name, arm.name)] = (table.loc[arm.name, "estimate"] - truth) / table.loc[arm.name, "std_error"]
     print("to-date revenue per auction minus truth, in SE:", {k: round(v, 2) for k, v in misses.items()})
     assert all(abs(misses[("default", a.name)]) < 3 for a in exp.arms), misses

@@ -22,6 +22,7 @@ import scipy.stats as st
 from counterbid.estimators import bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment
 from counterbid.operators import partition, window_state
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 6, 1)
@@ -34,7 +35,9 @@ def _spec():
         "id": "lanterns", "control_arm": "even", "start": str(START), "exclude_days": [str(DAYS[2])],
         "checks": {"warmup": {"days": 0}},
         "arms": [{"name": "even", "share": 0.6, "position_weights": [0.4, 0.25, 0.1]},
-                 {"name": "tall", "share": 0.4, "position_weights": [0.55, 0.2, 0.05]}]}]})["lanterns"]
+                 {"name": "tall", "share": 0.4, "position_weights": [0.55, 0.2, 0.05]}],
+        # a layout that did not run: its revenue is one more column of the bidder sums and of the window
+        "what_if": [{"name": "between", "position_weights": [0.48, 0.22, 0.08]}]}]})["lanterns"]
 
 
 @pytest.fixture(scope="module")
@@ -58,9 +61,9 @@ def sink(request, tmp_path):
 
 
 def _run_day(hook, lake, exp, stage, day, run):
-    partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=day, staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage)
     staged = StagedPartition.at(stage, exp.id, day)
-    results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=day)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=day)
     partition.record_checks(staged, results)
     out = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=run)
     partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=stage)
@@ -124,9 +127,9 @@ def test_a_write_without_the_window_drops_a_window_that_covers_its_day(lake, tmp
         _run_day(hook, lake, exp, stage, day, f"r-{day}")
     assert _check_stored_window(hook, exp) == DAYS[:2]
     # day 1's pieces written again by a writer that brings no window (e.g. an older estimate step)
-    partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=DAYS[0], staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAYS[0], staging_root=stage)
     staged = StagedPartition.at(stage, exp.id, DAYS[0])
-    partition.record_checks(staged, partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAYS[0]))
+    partition.record_checks(staged, partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAYS[0]))
     partition.estimate_partition(hook, experiment=exp, ds=DAYS[0], staging_root=stage, run_id="again-1")
     (staged.folder / "bidder_window.json").unlink()
     partition.write_partition(hook, experiment_id=exp.id, ds=DAYS[0], staging_root=stage)
