@@ -20,6 +20,11 @@ def _row(rows: np.ndarray | None, i: int) -> int:
     return int(i if rows is None else rows[i])
 
 
+def _value(x) -> str:
+    """A cell value as it reads in an error line (numpy scalars unwrapped)."""
+    return repr(x.item() if isinstance(x, np.generic) else x)
+
+
 def _column(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> np.ndarray:
     """One covariate column as float64; refuses non-numbers, nulls and infinities naming the first row."""
     what = f"{source}: scale covariate column {name!r}"
@@ -30,7 +35,7 @@ def _column(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> 
         bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
         if bad.size:
             i = int(bad[0])
-            raise InputError(f"{what} must be numeric (dtype {col.dtype}); row {_row(rows, i)} holds {col.iloc[i]!r}")
+            raise InputError(f"{what} must be numeric (dtype {col.dtype}); row {_row(rows, i)} holds {_value(col.iloc[i])}")
         col = coerced
     x = col.to_numpy(dtype=float, na_value=np.nan)
     if x.size and not (np.isfinite(x.min()) and np.isfinite(x.max())):
@@ -78,7 +83,7 @@ def auction_covariates(bids: pd.DataFrame, names: Sequence[str], auction: np.nda
             i = int(split[0])
             j = int(np.flatnonzero(auction == auction[i])[0])
             raise InputError(
-                f"{source}: auction {bids['auction_id'].iloc[i]!r} has two values of scale covariate column {name!r} "
+                f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of scale covariate column {name!r} "
                 f"({float(x[j])!r} at row {_row(rows, j)}, {float(x[i])!r} at row {_row(rows, i)}); "
                 "a scale covariate must be constant within an auction")
         out[:, k] = x

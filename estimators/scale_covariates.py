@@ -10,8 +10,10 @@ every bid of the auction is ``exp(gamma . x_j)`` times the bid of the unscaled e
 Per stratum, :func:`fit_scale` estimates ``gamma`` by least squares of the log (effective) bids on
 the centred covariates, divides it out of the bids (the homogenised bids ``b exp(-gamma^ . x~)``),
 and says how to scale the estimate on homogenised bids back: by the stratum's auction average
-``m = mean_j exp(gamma^ . x~_j)``, with the influence of ``m`` and of ``gamma^`` added to each bid's
-influence (:meth:`ScaleFit.extra_influence`; stacked estimating equations, the delta method).
+``m = mean_j exp(gamma^ . x~_j)``, with the influence of ``gamma^`` added to each bid's influence
+(:meth:`ScaleFit.extra_influence`; stacked estimating equations, the delta method). The estimand is
+revenue per auction at the stratum's own covariates (conditional on them, as the strata's auction
+counts are): no term for new draws of ``x``.
 
 Pure numpy.
 
@@ -54,10 +56,10 @@ class ScaleFit:
     homogenized : ndarray, shape (N,)
         ``b exp(-gamma . x~)``, in the input's order.
     unit_influence : ndarray, shape (N,)
-        Per bid, the influence of the scaling per unit of the homogenised estimate ``T~``:
-        ``(exp(gamma . x~) - m) + m1 . H^+ x~ e`` with ``m1 = mean_j x~_j exp(gamma . x~_j)``,
-        ``H = mean x~ x~'`` and ``e`` the least-squares residual. The estimate ``m T~`` has
-        influence ``m IF~ + T~ unit_influence`` at each bid.
+        Per bid, the influence of the fitted ``gamma`` per unit of the homogenised estimate ``T~``:
+        ``m1 . H^+ x~ e`` with ``m1 = mean_j x~_j exp(gamma . x~_j)``, ``H = mean x~ x~'`` and ``e``
+        the least-squares residual. The estimate ``m T~`` has influence ``m IF~ + T~ unit_influence``
+        at each bid.
     """
 
     gamma: np.ndarray
@@ -102,8 +104,12 @@ def fit_scale(bid: np.ndarray, covariates: np.ndarray, *, source: str = "bids") 
     floor). The estimate's first-order expansion in ``gamma^ - gamma`` is ``m1 T~`` (``T~``'s own
     derivative ``-E[x~] T~`` vanishes with centred covariates, the index being independent of
     ``b~``), and ``gamma^ - gamma = H^-1 mean(x~ e)`` (ordinary least squares), so the stacked
-    influence of ``m T~`` at bid ``i`` of auction ``j`` is
-    ``m IF~_i + T~ [(exp(gamma . x~_j) - m) + m1 . H^-1 x~_j e_i]``.
+    influence of ``m T~`` at bid ``i`` of auction ``j`` is ``m IF~_i + T~ m1 . H^-1 x~_j e_i``. The
+    estimand conditions on the stratum's covariates (revenue per auction at these auctions' own
+    scales, ``mean_j exp(gamma . x_j) R~``); for new draws of ``x`` an auction-level term
+    ``(exp(gamma . x~_j) - m) T~`` would join, which bidder clusters cannot carry. Both terms
+    have mean zero given ``x`` and are independent across the bids of an auction, so auction and
+    bidder clusters carry them alike.
 
     References
     ----------
@@ -131,7 +137,7 @@ def fit_scale(bid: np.ndarray, covariates: np.ndarray, *, source: str = "bids") 
     m = float(scale.mean())
     m1 = (xc * scale[:, None]).mean(axis=0)
     h_inv = np.linalg.pinv(xc.T @ xc / b.size)
-    unit = (scale - m) + (xc @ (h_inv @ m1)) * residual
+    unit = (xc @ (h_inv @ m1)) * residual
     return ScaleFit(gamma=gamma, centre=centre, scale_mean=m, homogenized=b / scale, unit_influence=unit)
 
 
