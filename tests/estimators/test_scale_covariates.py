@@ -260,3 +260,25 @@ def test_spec_key_is_validated(raw, message):
     with pytest.raises(InputError) as info:
         parse_experiments({"experiments": [doc]}, source="plan.yaml")
     assert message in str(info.value) and "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------------------------------------
+# The dependence check runs on homogenised bids
+
+
+def test_dependence_check_fails_on_an_undeclared_covariate_and_passes_once_declared():
+    from counterbid.estimators.checks import auction_dependence_check
+
+    bids = simulate_experiment(VALUES, experiment(None), n_bidders=5, n_auctions=10_000, rng=21,
+                               scale_covariates={"footfall": (GAMMA, SIGNAL)})
+    undeclared = auction_dependence_check(bids, experiment(None))
+    declared = auction_dependence_check(bids, experiment())
+    assert not undeclared.passed and undeclared.severity == "error", undeclared
+    assert "scale_covariates" in undeclared.details["remedy"]
+    # Declared: the homogenised bids of one auction are independent draws; z is N(0, 1) under the
+    # null (the fitted slope moves r by O(1/N) only), so |z| < 4 on one seed.
+    assert declared.passed and abs(declared.details["z"]) < 4, declared.details
+    # What the spec does not model is still seen: an unobserved factor on top of the declared covariate.
+    hidden = simulate_experiment(VALUES, experiment(None), n_bidders=5, n_auctions=10_000, rng=22,
+                                 scale_covariates={"footfall": (GAMMA, SIGNAL)}, unobserved_scale_sd=0.3)
+    assert not auction_dependence_check(hidden, experiment()).passed
