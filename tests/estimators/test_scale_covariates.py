@@ -131,6 +131,16 @@ def test_fit_recovers_gamma_and_the_estimate_ignores_shifts_and_constant_covaria
     np.testing.assert_allclose(same[["estimate", "std_error"]], plain[["estimate", "std_error"]], rtol=1e-9)
 
 
+def test_estimates_scale_exactly_with_the_bid_unit():
+    # Bids beyond 2**200 are estimated in a power-of-two unit (docs/method.md); the homogenised bids too.
+    bids = simulate_experiment(VALUES, experiment(None), n_bidders=3, n_auctions=2_000, rng=4,
+                               scale_covariates={"footfall": (GAMMA, SIGNAL)})
+    base = revenue(quiet_estimate(bids, experiment()))
+    huge = revenue(quiet_estimate(bids.assign(bid=bids["bid"] * 2.0**250), experiment()))
+    np.testing.assert_allclose(huge[["estimate", "std_error"]].to_numpy() / 2.0**250,
+                               base[["estimate", "std_error"]].to_numpy(), rtol=1e-12)
+
+
 def test_homogenised_bids_take_each_stratum_its_own_fit():
     rng = np.random.default_rng(5)
     x = rng.normal(size=(400, 1)).repeat(2, axis=0)
