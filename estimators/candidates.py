@@ -278,6 +278,10 @@ def rank_candidates(
     if isinstance(target_half_width, bool) or not isinstance(target_half_width, (int, float)) \
             or not 0 < target_half_width < math.inf:
         raise InputError(f"`target_half_width` must be a number > 0; got {target_half_width!r}")
+    if experiment.scale_covariates:  # the lift's spread is read off raw bids, not homogenised ones
+        raise InputError(f"experiment {experiment.id!r} declares scale_covariates "
+                         f"({', '.join(experiment.scale_covariates)}): the candidate ranking does not model them; rank "
+                         "with a spec without them")
     layouts, origin = _candidates(experiment, candidates)
     full = dataclasses.replace(experiment, what_if=layouts)
     data = prepare_bids(bids, full, source=source)

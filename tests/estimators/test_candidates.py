@@ -122,6 +122,14 @@ def test_bad_arguments_one_line(pilot_bids, kwargs, message):
         rank_candidates(pilot_bids, running(), **args)
 
 
+def test_scale_covariates_refused(pilot_bids):
+    import dataclasses
+
+    exp = dataclasses.replace(running(), scale_covariates=("demand_index",))
+    with pytest.raises(InputError, match="declares scale_covariates \\(demand_index\\): the candidate ranking does not"):
+        rank_candidates(pilot_bids, exp, days=3, auctions_per_day=1000, target_half_width=0.02)
+
+
 def test_no_candidates_refused(pilot_bids):
     with pytest.raises(InputError, match="no candidate layouts"):
         rank_candidates(pilot_bids, running(what_if=()), days=3, auctions_per_day=1000, target_half_width=0.02)
