@@ -202,29 +202,48 @@ _CAUSES = (
     (re.compile(r"OutOfMemoryError|Java heap space|GC overhead limit"),
      "out of memory in Spark's JVM ({detail}); give the driver or executors more memory "
      "(spark.driver.memory, spark.executor.memory) or the shards fewer bids"),
-    (re.compile(r"\bMemoryError\b"), "out of memory in a Python worker ({detail}); give the shards fewer bids"),
-    (re.compile(r"ExecutorLostFailure|[Ll]ost executor|executor .* lost|Python worker exited unexpectedly|"
+    (re.compile(r"\bMemoryError\b|failed to map segment|Cannot allocate memory|bad_alloc|\[Errno 12\]"),
+     "out of memory in a Python worker ({detail}); raise spark.executor.pyspark.memory or the executors' memory, "
+     "or give the shards fewer bids"),
+    (re.compile(r"ExecutorLostFailure|[Ll]ost executor|Python worker exited unexpectedly|"
                 r"SparkContext was shut down|Connection reset"),
      "an executor or Python worker was lost ({detail}); run it again, and check the cluster's logs if it recurs"),
 )
+#: The line of Spark's error text that says what happened.
 _DETAIL = re.compile(r"(java\.lang\.OutOfMemoryError[^\n]*|Total size of serialized results[^\n;]*|"
-                     r"ExecutorLostFailure[^\n]*|Python worker exited unexpectedly[^\n]*|MemoryError[^\n]*|"
+                     r"ExecutorLostFailure[^\n]*|Python worker exited unexpectedly[^\n]*|"
                      r"\[[A-Z][A-Z_.]*\][^\n]*)")
 
 
 def engine_failure(exc: Exception, source: str) -> Exception:
     """One line for a failed Spark job: its cause (out of memory, a lost executor, ...) and Spark's own words.
 
-    Anything else Spark raises (a programming error) is returned unchanged.
+    Errors of Spark and its Python workers (PySpark's and py4j's exception types) become an
+    :class:`EngineFailure`; anything else is returned unchanged.
     """
+    if not type(exc).__module__.startswith(("pyspark", "py4j")):
+        return exc
     text = str(exc)
-    found = _DETAIL.search(text)
-    detail = (found.group(1) if found else (text.strip().splitlines() or [type(exc).__name__])[0]).strip()
-    detail = detail[:200]
+    lines = [line.strip() for line in text.strip().splitlines() if line.strip()]
+    if "An exception was thrown from the Python worker" in text and lines:
+        detail = lines[-1]  # the worker's own exception line, after its traceback
+    else:
+        found = _DETAIL.search(text)
+        detail = found.group(1).strip() if found else (lines[0] if lines else type(exc).__name__)
+    if len(detail) > 240:
+        detail = detail[:237] + "..."
     for pattern, wording in _CAUSES:
         if pattern.search(text):
             return EngineFailure(f"{source}: the Spark engine failed: " + wording.format(detail=detail))
-    return exc
+    return EngineFailure(f"{source}: the Spark engine failed ({detail})")
+
+
+def _as_engine_failure(exc: Exception, source: str) -> Exception:
+    """What to raise for ``exc`` inside an ``except`` block: its :func:`engine_failure` line, else ``exc`` itself."""
+    failure = engine_failure(exc, source)
+    if failure is not exc:
+        failure.__cause__, failure.__suppress_context__ = None, True
+    return failure
 
 
 def _quiet_query_loggers() -> None:
@@ -287,7 +306,7 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     except Exception as exc:  # listing the files runs a job: a file Spark cannot read shows up here too
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
 
 
 #: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
@@ -441,10 +460,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
-        failure = engine_failure(exc, source)
-        if failure is exc:
-            raise
-        raise failure from None
+        raise _as_engine_failure(exc, source)
     answers = sorted((r for r in rows if r["n_bids"] is not None), key=lambda r: r["shard"])
     parts = [(r["part_bidders"], r["part_unit"], r["part_gram"]) for r in rows
              if bidder_gram and r["part_bidders"] is not None]
@@ -500,7 +516,7 @@ def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | 
     except Exception as exc:  # AnalysisException, or py4j's wrapper of Spark's error reading a footer
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
     frame.createOrReplaceTempView(view)
     return frame
 
@@ -532,7 +548,7 @@ def bid_log_pieces_on_spark(spark, path: str, experiment: Experiment, *, max_bid
     except Exception as exc:  # a footer Spark could list but not read
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
     if rows == 0:
         raise InputError(f"{source}: holds no bids (0 rows)")
     shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
