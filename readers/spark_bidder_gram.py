@@ -36,7 +36,7 @@ import pyarrow.compute as pc
 
 from counterbid.estimators import BidderGram, StratumPiece, bidder_totals
 
-__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_rows", "combined_gram", "ids_text", "partition_gram"]
+__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_rows", "bidder_table", "combined_gram", "ids_text", "partition_gram"]
 
 #: Columns of a shard's per-bidder rows (null on its answer row).
 BIDDER_COLUMNS = "bidder_id string, bidder_unit int, bidder_sums array<double>"

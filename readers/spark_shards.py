@@ -356,7 +356,6 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     except InputError as exc:
         error = str(exc)
     with_sums = bool(pieces) and all(p.bidder_sums is not None for p in pieces)
-    extra = None
     if sums_apart and with_sums:
         ids, unit, sums = bidder_rows(pieces)
         pieces = [p.without_bidder_sums() for p in pieces]
@@ -372,8 +371,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
     }, schema=schema)
     if sums_apart and with_sums:
-        extra = bidder_table(ids, unit, sums, shard, schema)
-        return pa.concat_tables([answer, extra])
+        return pa.concat_tables([answer, bidder_table(ids, unit, sums, shard, schema)])
     return answer
 
 
