@@ -90,7 +90,8 @@ class LocalEngine:
             except InputError:
                 pass  # the file-based split below names the fault, its shard and row, as it always has
         with staged_bid_log_shards(path, shards) as shard_list:
-            found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
+            found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path),
+                                    hash_bidders=shards > 1)
         return ShardPieces(found.pieces, found.n_excluded_auctions, shards)
 
     def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:

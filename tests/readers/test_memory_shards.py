@@ -2,7 +2,8 @@
 
 The file-based split (DuckDB's md5 shard of every row, each shard rewritten to Parquet and read
 back, text bidder ids factorized across shards when combined) is the plain formula; the in-memory
-split hashes each distinct auction id once and carries bidder ids as the day's integer codes. Both
+split hashes each distinct auction id once and carries bidder ids as the day's integer codes, and
+the command line's file-based split carries them as 64-bit hashes of their text. All three
 estimate the same rows of the same shards with the same pure estimator, so every per-bidder sum is
 the same number; only the order in which the combination adds bidders differs, hence 1e-12
 relative (rounding of sums of a few thousand doubles is ~1e-15 relative).
@@ -17,9 +18,10 @@ import pandas as pd
 import pytest
 import scipy.stats as st
 
-from counterbid.estimators import parse_experiments, shard_of, simulate_experiment
+from counterbid.estimators import combine_pieces, n_shards, parse_experiments, shard_of, simulate_experiment
 from counterbid.estimators.errors import InputError
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
+from counterbid.readers.shards import bid_log_rows, pieces_by_shard, staged_bid_log_shards
 from counterbid.readers.memory_shards import MEMORY_BUDGET_ENV, fits_in_memory, memory_budget_mib, row_shards
 
 SPEC = {"experiments": [
@@ -68,27 +70,41 @@ def _estimates(path, monkeypatch, budget: str, **kw):
     return found, estimate_bid_log(path, EXP, max_bids_per_shard=MAX, **kw)
 
 
+def _plain(path, cluster):
+    """The plain formula: DuckDB's shard files, text bidder ids matched across shards by their text."""
+    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX)) as shards:
+        found = pieces_by_shard(shards, EXP, cluster=cluster, source=str(path))
+    return found, combine_pieces(found.pieces, EXP, cluster=cluster, n_excluded_auctions=found.n_excluded_auctions)
+
+
+def _same_numbers(a, b):
+    keys = ["arm", "metric", "n_auctions", "n_bids", "status"]
+    assert a.table[keys].equals(b.table[keys])
+    for col in ("estimate", "std_error", "ci_low", "ci_high"):
+        np.testing.assert_allclose(a.table[col].to_numpy(float), b.table[col].to_numpy(float), rtol=1e-12, atol=0,
+                                   err_msg=col)
+
+
 @pytest.mark.parametrize("cluster", ["auto", "bidder", "auction"])
-def test_in_memory_split_equals_the_file_split(tmp_path, monkeypatch, cluster):
+def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypatch, cluster):
     bids = _log()
     path = tmp_path / "crates.parquet"
     bids.to_parquet(path, index=False)
-    mem_pieces, mem = _estimates(path, monkeypatch, "1024", cluster=cluster)
-    file_pieces, on_file = _estimates(path, monkeypatch, "0", cluster=cluster)
-    assert mem.shards == on_file.shards == 5 and mem.cluster == on_file.cluster
+    mem_pieces, mem = _estimates(path, monkeypatch, "1024", cluster=cluster)  # split in memory, integer codes
+    hashed_pieces, hashed = _estimates(path, monkeypatch, "0", cluster=cluster)  # shard files, 64-bit hashes
+    plain_pieces, plain = _plain(path, cluster)
+    assert mem.shards == hashed.shards == 5 and mem.cluster == hashed.cluster == plain.cluster
     assert mem.cluster == ("auction" if cluster == "auction" else "bidder")
-    # the in-memory split really ran: its bidder ids are the day's integer codes, the files' are text
-    if cluster != "auction":
-        assert all(p.bidder_ids.dtype == np.int64 for p in mem_pieces.pieces)
-        assert all(p.bidder_ids.dtype == object for p in file_pieces.pieces)
-        assert [p.bidder_ids.size for p in mem_pieces.pieces] == [p.bidder_ids.size for p in file_pieces.pieces]
-    assert [p.key for p in mem_pieces.pieces] == [p.key for p in file_pieces.pieces]
-    assert mem_pieces.n_excluded_auctions == file_pieces.n_excluded_auctions > 0
-    a, b = mem.table, on_file.table
-    assert a[["arm", "metric", "n_auctions", "n_bids", "status"]].equals(b[["arm", "metric", "n_auctions", "n_bids",
-                                                                          "status"]])
-    for col in ("estimate", "std_error", "ci_low", "ci_high"):
-        np.testing.assert_allclose(a[col].to_numpy(float), b[col].to_numpy(float), rtol=1e-12, atol=0, err_msg=col)
+    if cluster != "auction":  # each shortcut really ran: integer ids where the plain path has text
+        assert all(p.bidder_ids.dtype == np.int64 for p in mem_pieces.pieces + hashed_pieces.pieces)
+        assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
+        sizes = [p.bidder_ids.size for p in plain_pieces.pieces]
+        assert [p.bidder_ids.size for p in mem_pieces.pieces] == sizes == [p.bidder_ids.size for p in
+                                                                           hashed_pieces.pieces]
+    assert [p.key for p in mem_pieces.pieces] == [p.key for p in plain_pieces.pieces]
+    assert mem_pieces.n_excluded_auctions == plain_pieces.n_excluded_auctions > 0
+    _same_numbers(mem, plain)
+    _same_numbers(hashed, plain)  # no collision among 700 ids: the same clusters, the same SEs
 
 
 def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch):
