@@ -44,6 +44,9 @@ MEMORY_BUDGET_MIB = 1024
 #: 0.23 GB imports: the frame, one text column's Arrow strings while Arrow codes them, one shard's
 #: copy, its validated arrays and the estimator's temporaries; see docs/scale.md).
 BYTES_PER_BID = 100
+#: Columns read at once by the in-memory split (Arrow decodes and codes text without the GIL; at 10M
+#: text bids two threads cost about 0.1 GB more than one, within :data:`BYTES_PER_BID`).
+READ_THREADS = 2
 
 
 def memory_budget_mib(value: object = None) -> int:
@@ -152,7 +155,7 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     from .shards import ShardPieces
 
     name = str(source or path)
-    bids = _integer_bidders(read_bids(path, columns=["experiment_id", *BID_COLUMNS], source=name))
+    bids = _integer_bidders(read_bids(path, columns=["experiment_id", *BID_COLUMNS], source=name, threads=READ_THREADS))
     shard = row_shards(bids["auction_id"], n_shards)
     order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
     bounds = np.searchsorted(shard[order], np.arange(int(n_shards) + 1))
