@@ -38,14 +38,14 @@ __all__ = ["BYTES_PER_BID", "MEMORY_BUDGET_ENV", "MEMORY_BUDGET_MIB", "fits_in_m
 MEMORY_BUDGET_ENV = "COUNTERBID_MEMORY_BUDGET_MIB"
 #: Default budget: a day whose in-memory split needs more goes through the file-based split, whose
 #: peak is set by one shard.
-MEMORY_BUDGET_MIB = 1024
+MEMORY_BUDGET_MIB = 1200
 #: Peak memory of the in-memory split per bid of the log, imports excluded, rounded up (measured
-#: with text auction and bidder ids at 10M bids: 1.27 GB peak RSS of the command, of which about
-#: 0.23 GB imports: the frame, one text column's Arrow strings while Arrow codes them, one shard's
-#: copy, its validated arrays and the estimator's temporaries; see docs/scale.md).
-BYTES_PER_BID = 100
+#: with text auction and bidder ids at 10M bids, two read threads: 1357 MiB peak RSS of the command,
+#: of which about 230 MiB imports: the frame, two text columns' Arrow strings while Arrow codes
+#: them, one shard's copy, its validated arrays and the estimator's temporaries; docs/scale.md).
+BYTES_PER_BID = 120
 #: Columns read at once by the in-memory split (Arrow decodes and codes text without the GIL; at 10M
-#: text bids two threads cost about 0.1 GB more than one, within :data:`BYTES_PER_BID`).
+#: text bids two threads cost about 0.1 GiB more than one, within :data:`BYTES_PER_BID`).
 READ_THREADS = 2
 
 

@@ -90,7 +90,7 @@ def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypa
     bids = _log()
     path = tmp_path / "crates.parquet"
     bids.to_parquet(path, index=False)
-    mem_pieces, mem = _estimates(path, monkeypatch, "1024", cluster=cluster)  # split in memory, integer codes
+    mem_pieces, mem = _estimates(path, monkeypatch, "1200", cluster=cluster)  # split in memory, integer codes
     hashed_pieces, hashed = _estimates(path, monkeypatch, "0", cluster=cluster)  # shard files, 64-bit hashes
     plain_pieces, plain = _plain(path, cluster)
     assert mem.shards == hashed.shards == 5 and mem.cluster == hashed.cluster == plain.cluster
@@ -116,7 +116,7 @@ def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch
     path = tmp_path / "twice.parquet"
     bids.to_parquet(path, index=False)
     lines = []
-    for budget in ("1024", "0"):
+    for budget in ("1200", "0"):
         monkeypatch.setenv(MEMORY_BUDGET_ENV, budget)
         with pytest.raises(InputError) as err:
             estimate_bid_log(path, EXP, max_bids_per_shard=MAX)
@@ -126,7 +126,7 @@ def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch
 
 def test_budget_setting(monkeypatch):
     monkeypatch.delenv(MEMORY_BUDGET_ENV, raising=False)
-    assert memory_budget_mib() == 1024 and fits_in_memory(10_000_000) and not fits_in_memory(30_000_000)
+    assert memory_budget_mib() == 1200 and fits_in_memory(10_000_000) and not fits_in_memory(30_000_000)
     monkeypatch.setenv(MEMORY_BUDGET_ENV, "0")
     assert not fits_in_memory(1)
     monkeypatch.setenv(MEMORY_BUDGET_ENV, "lots")
