@@ -5,7 +5,7 @@ a temporary folder (DuckDB computes the md5 shard of every row, pyarrow rewrites
 each shard back. When the whole day fits the memory budget (:func:`fits_in_memory`) the same shards
 come from one read instead: the log is read once (:func:`~counterbid.readers.bid_log.read_bids`:
 text ids as dictionary codes), the md5 shard rule is computed once per *distinct* auction id
-(``sql/shard_of_distinct_ids.sql``, the rule of :func:`counterbid.estimators.shard_of`) and mapped to
+(``sql/bid_log_shard_of_distinct_ids.sql``, the rule of :func:`counterbid.estimators.shard_of`) and mapped to
 the rows through the codes, and each shard's rows are taken in their order in the log, which is
 their order in the shard file. Bidder ids travel as the day's dictionary codes (one integer label
 per distinct id of the log, the same label in every shard), so shards meet on integers when they
@@ -79,7 +79,7 @@ def _distinct_shards(ids, n_shards: int) -> np.ndarray:
     con = duckdb.connect()
     try:
         con.register("distinct_ids", distinct_ids)
-        found = con.execute(load_sql("shard_of_distinct_ids"), {"n_shards": int(n_shards)}).fetchnumpy()["shard"]
+        found = con.execute(load_sql("bid_log_shard_of_distinct_ids"), {"n_shards": int(n_shards)}).fetchnumpy()["shard"]
     finally:
         con.close()
     return np.asarray(found, dtype=np.int64)
