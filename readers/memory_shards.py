@@ -79,7 +79,8 @@ def _distinct_shards(ids, n_shards: int) -> np.ndarray:
     con = duckdb.connect()
     try:
         con.register("distinct_ids", distinct_ids)
-        found = con.execute(load_sql("bid_log_shard_of_distinct_ids"), {"n_shards": int(n_shards)}).fetchnumpy()["shard"]
+        found = con.execute(load_sql("bid_log_shard_of_distinct_ids"),
+                            {"n_shards": int(n_shards)}).fetchnumpy()["shard"]
     finally:
         con.close()
     return np.asarray(found, dtype=np.int64)
