@@ -38,9 +38,11 @@ demo: $(STAMP)
 	$(PY) -m counterbid.dags_example.demo report --out demo_output
 	@echo "demo wall time: $$(( $$(date +%s) - $$(cat demo_output/.started) ))s"
 
-# Benchmark against the physical floor (1M, 5M, 10M bids), the local engine against the Spark engine
-# in local mode (local[2]), and both engines on one 2M-bid log compared cell by cell; 20-30 minutes.
-# Not part of `make test`. BENCH_ARGS passes options, e.g. BENCH_ARGS='--data /tmp/bench --sizes 1,10'.
+# Benchmark against the physical floor: counterbid estimate at 1M, 10M and 30M bids, integer and string
+# ids, local engine and Spark in local mode (local[2]), each beside the floor of the same run; then both
+# engines on one 2M-bid log compared cell by cell. An hour or more. Not part of `make test`.
+# BENCH_ARGS passes options, e.g. BENCH_ARGS='--data /tmp/bench --sizes 1,10 --skip cli_spark,cli_spark_text'
+# (rows: floor,input,cli,cli_text,cli_spark,cli_spark_text,estimate,sql_realized,pandas,dag,compare).
 BENCH_ARGS ?=
 bench: $(STAMP) $(JAVA_HOME_FILE)
 	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) tests/benchmarks/bench_estimator.py --out bench_results.md $(BENCH_ARGS)

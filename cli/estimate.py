@@ -29,7 +29,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
-    """The spec's experiment to estimate; ``bids`` is a frame or the log's distinct experiment ids (or None)."""
+    """The spec's experiment to estimate; ``bids`` is a frame, the log's distinct experiment ids, a function
+    returning them (called only when the spec holds several experiments and none is named), or None."""
     from counterbid.estimators import load_experiments
     from counterbid.estimators.errors import InputError
 
@@ -40,6 +41,8 @@ def _choose_experiment(spec_path: str, experiment_id: str | None, bids):
         return experiments[experiment_id]
     if len(experiments) == 1:
         return next(iter(experiments.values()))
+    if callable(bids):  # the log's distinct experiment ids, read only now that they are needed
+        bids = bids()
     ids = (_distinct_text(bids["experiment_id"]) if "experiment_id" in bids.columns else None) \
         if hasattr(bids, "columns") else bids
     if ids is not None:
@@ -69,9 +72,10 @@ def run(args: argparse.Namespace) -> int:
     local_path = "://" not in args.bids  # Spark also reads object-store URLs
     if local_path and not Path(args.bids).exists():
         raise InputError(f"{args.bids}: no such file or folder")
-    # which experiment: the distinct ids only (batch by batch), never the column
-    ids = distinct_experiment_ids(args.bids) if local_path else None
-    experiment = _choose_experiment(args.experiment, args.experiment_id, ids)
+    # which experiment: the distinct ids only (batch by batch), never the column, and only when the
+    # spec holds several experiments and none is named
+    experiment = _choose_experiment(args.experiment, args.experiment_id,
+                                    (lambda: distinct_experiment_ids(args.bids)) if local_path else None)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EstimatorWarning)
         if args.engine == "spark":

@@ -511,6 +511,7 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple
         return pieces[0].bidder_sums, float(weights[0])  # every code of the space, in order
     space = pieces[0].bidder_space
     shared = space is not None and all(p.bidder_space is space for p in pieces)
+    trim = shared  # codes may leave gaps: drop the codes no piece uses
     if shared:
         codes = [_codes_of(p) for p in pieces]  # one label space: no hashing of the ids
         n_codes = int(max(int(c.max()) + 1 if c.size else 0 for c in codes))
@@ -520,8 +521,12 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple
             joined = np.concatenate(ids)
         else:
             joined = np.concatenate([ids_as_text(i) for i in ids])
-        flat, uniques = pd.factorize(joined, sort=False)
-        n_codes = len(uniques)
+        dense = _dense_labels(joined)
+        if dense is not None:  # small non-negative integers (a day's dictionary codes): their own codes
+            flat, n_codes, trim = dense, int(dense.max()) + 1, True
+        else:
+            flat, uniques = pd.factorize(joined, sort=False)
+            n_codes = len(uniques)
         bounds = np.cumsum([0] + [i.size for i in ids])
         codes = [flat[lo:hi] for lo, hi in zip(bounds[:-1], bounds[1:])]
     n_columns = pieces[0].bidder_sums.shape[1]
@@ -533,7 +538,7 @@ def _bidder_totals(pieces: Sequence[StratumPiece], weights: np.ndarray) -> tuple
                 totals[j] += w * p.bidder_sums[:, j]
             else:
                 totals[j] += np.bincount(c, weights=w * p.bidder_sums[:, j], minlength=n_codes)
-    if shared:
+    if trim:
         seen = np.zeros(n_codes, dtype=bool)
         for c in codes:
             seen[c] = True
@@ -554,4 +559,18 @@ def _distinct_bidders(pieces: Sequence[StratumPiece]) -> int:
         return int(seen.sum())
     ids = [p.bidder_ids for p in pieces]
     joined = np.concatenate(ids) if all(i.dtype.kind in "iu" for i in ids) else np.concatenate([ids_as_text(i) for i in ids])
+    dense = _dense_labels(joined)
+    if dense is not None:
+        return int(np.count_nonzero(np.bincount(dense)))
     return int(pd.unique(joined).size)
+
+
+def _dense_labels(ids: np.ndarray) -> np.ndarray | None:
+    """Integer ids as their own codes when they are non-negative and dense enough (at most ``4 n + 1024``
+    for ``n`` ids, as a day's dictionary codes are): a bincount then replaces hashing. Else ``None``."""
+    if ids.dtype.kind not in "iu" or not ids.size:
+        return None
+    lo, hi = int(ids.min()), int(ids.max())
+    if lo < 0 or hi >= 4 * ids.size + 1024:
+        return None
+    return ids.astype(np.intp, copy=False)

@@ -19,6 +19,7 @@ from typing import Protocol
 from counterbid.estimators import ArmEstimates, Experiment, combine_pieces, n_shards
 from counterbid.estimators.errors import InputError
 
+from .memory_shards import fits_in_memory, pieces_in_memory
 from .shards import ShardPieces, bid_log_rows, column_names, pieces_by_shard, staged_bid_log_shards
 from .shards import max_bids_per_shard as max_bids_setting
 
@@ -67,17 +68,30 @@ class Engine(Protocol):
 
 @dataclass(frozen=True)
 class LocalEngine:
-    """Shard by shard in this process: DuckDB splits a large log, each shard is read, estimated and freed."""
+    """Shard by shard in this process.
+
+    A log of several shards that fits the memory budget is read once and split in memory
+    (:func:`~counterbid.readers.memory_shards.pieces_in_memory`); a larger one is split by DuckDB into
+    shard files, each read, estimated and freed in turn. Bad input always gets the file-based
+    split's message: the in-memory attempt gives way to it on any input error.
+    """
 
     name: str = "local"
 
     def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
                    cluster: str = "auto") -> ShardPieces:
-        shards = n_shards(bid_log_rows(path), max_bids_setting(max_bids_per_shard))
+        rows = bid_log_rows(path)
+        shards = n_shards(rows, max_bids_setting(max_bids_per_shard))
         if shards > 1 and "auction_id" not in column_names(path):
             shards = 1  # nothing to shard by: the validation of the whole log names the missing column
+        if shards > 1 and fits_in_memory(rows):
+            try:
+                return pieces_in_memory(path, experiment, shards, cluster=cluster, source=str(path))
+            except InputError:
+                pass  # the file-based split below names the fault, its shard and row, as it always has
         with staged_bid_log_shards(path, shards) as shard_list:
-            found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path))
+            found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path),
+                                    hash_bidders=shards > 1)
         return ShardPieces(found.pieces, found.n_excluded_auctions, shards)
 
     def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:

@@ -229,6 +229,21 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
         yield shard_folders(Path(tmp) / "day")
 
 
+def _hashed_bidders(bids):
+    """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is."""
+    import pandas as pd
+
+    from .id_hashes import fnv1a_64
+
+    col = bids["bidder_id"] if "bidder_id" in bids.columns else None
+    if col is None or not isinstance(col.dtype, pd.CategoricalDtype):
+        return None
+    codes = col.cat.codes.to_numpy()
+    if not codes.size or codes.min() < 0:  # nulls: the validation names them
+        return None
+    return bids.assign(bidder_id=fnv1a_64(pa.array(col.cat.categories, type=pa.large_string()))[codes])
+
+
 @dataclass(frozen=True)
 class ShardPieces:
     """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read.
@@ -250,6 +265,7 @@ def pieces_by_shard(
     cluster: str = "auto",
     day=None,
     source: str | None = None,
+    hash_bidders: bool = False,
 ) -> ShardPieces:
     """Read, validate and estimate each shard alone; keep only its stratum pieces.
 
@@ -269,12 +285,11 @@ def pieces_by_shard(
         Recorded in every piece.
     source : str, optional
         Name of the input in messages (default: each shard's path).
-
-    Returns
-    -------
-    ShardPieces
-        Every shard's pieces (by shard, then number of bidders) and the single-bidder auctions
-        the validation left out.
+    hash_bidders : bool, optional
+        Text bidder ids as the 64-bit FNV-1a hash of their text (:mod:`.id_hashes`, each distinct id
+        of a shard hashed once), so that shards combine on integers. Only for pieces that are
+        combined and dropped (the command line's); stored pieces keep the text. Messages still
+        quote the text.
 
     Notes
     -----
@@ -288,8 +303,9 @@ def pieces_by_shard(
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.scale_covariates], source=where)
+        hashed = _hashed_bidders(bids) if hash_bidders else None
         try:
-            prepared = prepare_bids(bids, experiment, source=where)
+            prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)
         except NothingToEstimate as exc:
             if len(shards) == 1:
                 raise
@@ -297,8 +313,12 @@ def pieces_by_shard(
             excluded += exc.n_excluded_auctions
             single_bidders = True
             continue
+        except InputError:
+            if hashed is not None:
+                prepare_bids(bids, experiment, source=where)  # the message quotes the id's text
+            raise
         finally:
-            del bids  # only the validated arrays from here on: one shard bounds the memory
+            del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
         excluded += int(prepared.n_excluded_auctions)
         pieces += stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where)
         del prepared

@@ -93,6 +93,15 @@ def child(kind: str, path: str, spec: str) -> dict:
         t0 = time.perf_counter()
         np.ones(400 * 2**20 // 8)
         return {"work": time.perf_counter() - t0}
+    if kind == "spark_start":  # the JVM and session start of the Spark rows, nothing read
+        from counterbid.readers.spark_shards import spark_session
+
+        t0 = time.perf_counter()
+        session = spark_session(path)
+        session.range(1).count()  # the first job starts the task threads (and the Python workers' daemon)
+        out["work"] = time.perf_counter() - t0
+        session.stop()
+        return out
     if kind == "simulate":
         return _simulate(Path(path), spec)
     if kind == "text_ids":
@@ -363,6 +372,40 @@ def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
     return r
 
 
+#: How the issue table's columns are measured.
+ISSUE_TABLE_NOTE = ("peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a driver, "
+                    "a JVM and Python workers); bids/s per core: bids / wall / cores, the local engine counted as "
+                    "one core, Spark as its master's task threads with the session start (row 'Spark session "
+                    "start' in the notes) taken out of its wall time.")
+
+
+def _spark_cores(master: str) -> int:
+    m = re.fullmatch(r"local\[(\d+)\]", master)
+    return int(m.group(1)) if m else (os.cpu_count() or 1)
+
+
+def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spark_start: dict | None,
+               *, failed: str = "") -> str:
+    """One row of the issue's table: size, ids, engine, wall, ratio to the floor, memory, bids/s per core."""
+    ids = "string" if kind.endswith("_text") else "integer"
+    spark = kind.startswith("cli_spark")
+    engine = f"spark {SPARK_MASTER_IN_USE[0]}" if spark else "local"
+    if r is None:
+        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} | – | – | – |"
+    ratio = r["wall"] / floor["wall"] if floor else float("nan")
+    if spark:
+        busy = r["wall"] - (spark_start["wall"] if spark_start else 0.0)
+        per_core = millions * 1e6 / busy / _spark_cores(SPARK_MASTER_IN_USE[0])
+    else:
+        per_core = millions * 1e6 / r["wall"]
+    return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '?')} | {r['wall']:.2f} | {ratio:.2f} | "
+            f"{r['tree_pss_mib']:.0f} | {per_core:,.0f} |")
+
+
+#: The master of this run's Spark rows (set by ``main``).
+SPARK_MASTER_IN_USE = [SPARK_MASTER]
+
+
 def repeated(argv: list[str], times: int, **options) -> dict:
     """Median wall, work and peak memory of ``times`` runs of one child (the other fields of the last)."""
     runs = [run_child(argv, **options) for _ in range(times)]
@@ -381,18 +424,26 @@ def repeated(argv: list[str], times: int, **options) -> dict:
 LABELS = {"floor": "(a) floor: DuckDB read bid + np.sort", "input": "(a2) DuckDB read of the 5 columns used + np.sort",
           "cli": "(b) counterbid estimate (CLI process)", "cli_text": "(b2) counterbid estimate, string ids",
           "cli_spark": "(b3) counterbid estimate --engine spark, local[2]",
+          "cli_spark_text": "(b4) counterbid estimate --engine spark, local[2], string ids",
           "estimate": "(b') read_bids + estimate_arms",
           "sql_realized": "(c) realized per-arm average (DuckDB)", "pandas": "(d) plain-pandas peer"}
 
 
+#: Rows left out unless asked for: the engines' table of the issue is floor, cli, cli_text, cli_spark
+#: and cli_spark_text at 1M, 10M and 30M bids (the plain-pandas peer alone takes minutes at 30M).
+DEFAULT_SKIP = "input,estimate,sql_realized,pandas"
+ROW_KINDS = ("floor", "input", "cli", "cli_text", "cli_spark", "cli_spark_text", "estimate", "sql_realized", "pandas")
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--sizes", default="1,5,10", help="bid counts in millions (default 1,5,10)")
+    p.add_argument("--sizes", default="1,10,30", help="bid counts in millions (default 1,10,30)")
     p.add_argument("--repeat", type=int, default=3, help="runs per row; medians are reported (default 3)")
     p.add_argument("--data", help="folder for the simulated Parquet files (kept; default: temporary)")
     p.add_argument("--out", help="also write the markdown table here")
-    p.add_argument("--skip", default="", help="comma-separated rows to skip (floor,input,cli,cli_text,cli_spark,estimate,"
-                                              "sql_realized,pandas,dag,compare)")
+    p.add_argument("--skip", default=DEFAULT_SKIP,
+                   help="comma-separated rows to skip (floor,input,cli,cli_text,cli_spark,cli_spark_text,estimate,"
+                        f"sql_realized,pandas,dag,compare; default {DEFAULT_SKIP}; '' runs every row)")
     p.add_argument("--spark-master", default=SPARK_MASTER, help=f"master of the Spark rows (default {SPARK_MASTER})")
     p.add_argument("--spark-conf", action="append", default=[], metavar="KEY=VALUE",
                    help="a Spark setting of the Spark rows, written to their spark-defaults.conf (repeatable; default "
@@ -404,6 +455,7 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(child(*args.child)))
         return 0
     skip = set(filter(None, args.skip.split(",")))
+    SPARK_MASTER_IN_USE[0] = args.spark_master
     folder = Path(args.data) if args.data else Path(tempfile.mkdtemp(prefix="counterbid-bench-"))
     folder.mkdir(parents=True, exist_ok=True)
     spec_path = folder / "bench.yaml"
@@ -424,6 +476,13 @@ def main(argv: list[str] | None = None) -> int:
              f"load average at the start: {os.getloadavg()[0]:.2f}; medians of {args.repeat} runs"]
     first_file = None
     spark_env = spark_environment(folder, args.spark_conf)
+    issue_rows: list[str] = []
+    spark_start = None
+    if not {"cli_spark", "cli_spark_text"} <= skip:
+        spark_start = repeated([*me, "--child", "spark_start", args.spark_master, "-"], args.repeat, env=spark_env)
+        notes.append(f"Spark session start ({args.spark_master}: JVM, session, first job), nothing read: "
+                     f"{spark_start['work']:.2f} s after imports, {spark_start['wall']:.2f} s wall; subtracted from "
+                     "the Spark rows' wall time in their per-core throughput")
     engine_lines = ["| bids | engine | shards | wall s | peak RSS of the command's process MiB | "
                     "peak PSS of the process tree MiB | peak RSS summed over the tree MiB | processes |",
                     "|---:|---|---:|---:|---:|---:|---:|---:|"]
@@ -432,22 +491,29 @@ def main(argv: list[str] | None = None) -> int:
         first_file = first_file or path
         column_mib = millions * 1e6 * 8 / 2**20
         rows = {}
-        for kind in ("floor", "input", "cli", "cli_text", "cli_spark", "estimate", "sql_realized", "pandas"):
+        for kind in ROW_KINDS:
             if kind in skip:
                 continue
             options = {}
-            if kind in ("cli", "cli_text", "cli_spark"):
-                bids = text_ids(path, me) if kind == "cli_text" else path
+            if kind.startswith("cli"):
+                bids = text_ids(path, me) if kind.endswith("_text") else path
                 argv = [exe, "estimate", "--bids", str(bids), "--experiment", str(spec_path), "--format", "json"]
-                options["tree"] = kind != "cli_text"
-                if kind == "cli_spark":
+                options["tree"] = True
+                if kind.startswith("cli_spark"):
                     argv += ["--engine", "spark", "--spark-master", args.spark_master]
                     options["env"] = spark_env
             else:
                 argv = [*me, "--child", kind, str(path), str(spec_path)]
-            r = repeated(argv, 1 if kind == "pandas" else args.repeat, **options)
-            if kind in ("cli", "cli_text", "cli_spark"):
+            try:
+                r = repeated(argv, 1 if kind == "pandas" else args.repeat, **options)
+            except SystemExit as exc:  # a failed row is reported, not the end of the benchmark
+                failed = str(exc).strip().splitlines()[-1][:300] if str(exc).strip() else "failed"
+                issue_rows.append(_issue_row(millions, kind, None, rows.get("floor"), spark_start, failed=failed))
+                print(f"{millions}M {kind}: FAILED {failed}", file=sys.stderr, flush=True)
+                continue
+            if kind.startswith("cli"):
                 r["work"] = float("nan")
+                issue_rows.append(_issue_row(millions, kind, r, rows.get("floor"), spark_start))
             if kind in ("cli", "cli_spark"):
                 engine = "local (default shards)" if kind == "cli" else f"spark {args.spark_master} ({r['java_xmx']})"
                 roles = ", ".join(f"{k} {v}" for k, v in sorted(r["peak_roles_mib"].items()))
@@ -460,7 +526,7 @@ def main(argv: list[str] | None = None) -> int:
                   file=sys.stderr, flush=True)
         floor = rows.get("floor")
         for kind, r in rows.items():
-            if kind == "cli_spark":  # its process is the Python driver alone: the engines table has the tree
+            if kind.startswith("cli_spark"):  # its process is the Python driver alone: the engines table has the tree
                 continue
             ratio_wall = r["wall"] / floor["wall"] if floor else float("nan")
             ratio_work = r["work"] / floor["work"] if floor and r["work"] == r["work"] else float("nan")
@@ -475,7 +541,10 @@ def main(argv: list[str] | None = None) -> int:
         notes.append(f"one-day DAG run (counterbid backfill, dag.test) on 1M bids: {d['state']} in {d['dag_seconds']:.1f} s "
                      f"({d['steps']}); process wall {d['wall']:.1f} s incl. Airflow metadata migration, "
                      f"peak RSS {d['rss_mib']:.0f} MiB")
-    sections = lines + [""] + [f"* {n}" for n in notes]
+    issue_table = [f"`counterbid estimate --format json` against the floor (a), same run; {ISSUE_TABLE_NOTE}", "",
+                   "| bids | ids | engine | shards | wall s | wall / floor | peak memory MiB | bids/s per core |",
+                   "|---:|---|---|---:|---:|---:|---:|---:|", *issue_rows, ""]
+    sections = issue_table + lines + [""] + [f"* {n}" for n in notes]
     if len(engine_lines) > 2:
         sections += ["", f"Engines: `counterbid estimate --format json`, local engine against `--engine spark "
                          f"--spark-master {args.spark_master}` (Spark settings: "

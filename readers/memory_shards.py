@@ -1,0 +1,190 @@
+"""A bid log that fits the memory budget, split into its shards in memory (no Parquet rewrite).
+
+:func:`~counterbid.readers.shards.staged_bid_log_shards` splits a large log by writing every shard to
+a temporary folder (DuckDB computes the md5 shard of every row, pyarrow rewrites the day) and reads
+each shard back. When the whole day fits the memory budget (:func:`fits_in_memory`) the same shards
+come from one read instead: the log is read once (:func:`~counterbid.readers.bid_log.read_bids`:
+text ids as dictionary codes), the md5 shard rule is computed once per *distinct* auction id
+(``sql/bid_log_shard_of_distinct_ids.sql``, the rule of :func:`counterbid.estimators.shard_of`) and mapped to
+the rows through the codes, and each shard's rows are taken in their order in the log, which is
+their order in the shard file. Bidder ids travel as the day's dictionary codes (one integer label
+per distinct id of the log, the same label in every shard), so shards meet on integers when they
+are combined and no Python string is made per id.
+
+Every shard is validated and estimated exactly as :func:`~counterbid.readers.shards.pieces_by_shard`
+does it for a shard file, under the same name (``<log> (shard K)``). Bad input takes the plain path:
+on any :class:`~counterbid.estimators.errors.InputError` the caller runs the file-based split, so the
+message (its shard and row numbers) is the one that path gives.
+"""
+
+from __future__ import annotations
+
+import os
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from counterbid.estimators import BID_COLUMNS, Experiment, StratumPiece, prepare_bids, stratum_pieces
+from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
+
+from .bid_log import read_bids
+
+__all__ = ["BYTES_PER_BID", "MEMORY_BUDGET_ENV", "MEMORY_BUDGET_MIB", "fits_in_memory", "memory_budget_mib",
+           "pieces_in_memory", "row_shards"]
+
+#: Environment variable setting the memory budget of a day split in memory, in MiB.
+MEMORY_BUDGET_ENV = "COUNTERBID_MEMORY_BUDGET_MIB"
+#: Default budget: a day whose in-memory split needs more goes through the file-based split, whose
+#: peak is set by one shard.
+MEMORY_BUDGET_MIB = 1200
+#: Peak memory of the in-memory split per bid of the log, imports excluded, rounded up (measured
+#: with text auction and bidder ids at 10M bids, two read threads: 1357 MiB peak RSS of the command,
+#: of which about 230 MiB imports: the frame, two text columns' Arrow strings while Arrow codes
+#: them, one shard's copy, its validated arrays and the estimator's temporaries; docs/scale.md).
+BYTES_PER_BID = 120
+#: Columns read at once by the in-memory split (Arrow decodes and codes text without the GIL; at 10M
+#: text bids two threads cost about 0.1 GiB more than one, within :data:`BYTES_PER_BID`).
+READ_THREADS = 2
+
+
+def memory_budget_mib(value: object = None) -> int:
+    """The budget in MiB: ``value``, else ``$COUNTERBID_MEMORY_BUDGET_MIB``, else :data:`MEMORY_BUDGET_MIB`."""
+    what = "memory_budget_mib"
+    if value in (None, ""):
+        value, what = os.environ.get(MEMORY_BUDGET_ENV, ""), MEMORY_BUDGET_ENV
+    if value in (None, ""):
+        return MEMORY_BUDGET_MIB
+    text = str(value).strip()
+    if isinstance(value, bool) or not text.isdigit():
+        raise InputError(f"{what} must be a whole number of MiB >= 0; got {value!r}")
+    return int(text)
+
+
+def fits_in_memory(n_bids: int, budget_mib: int | None = None) -> bool:
+    """Whether a log of ``n_bids`` bids is split in memory: ``n_bids * BYTES_PER_BID`` within the budget."""
+    budget = memory_budget_mib(budget_mib)
+    return int(n_bids) * BYTES_PER_BID <= budget * 2**20
+
+
+def _distinct_shards(ids, n_shards: int) -> np.ndarray:
+    """The md5 shard of each value of ``ids`` (distinct ids, text or integers), by DuckDB; int64."""
+    import duckdb
+    import pyarrow as pa
+
+    from counterbid.sql import load_sql
+
+    distinct_ids = pa.table({"id": pa.array(ids)})  # noqa: F841 -- scanned by name below
+    con = duckdb.connect()
+    try:
+        con.register("distinct_ids", distinct_ids)
+        found = con.execute(load_sql("bid_log_shard_of_distinct_ids"),
+                            {"n_shards": int(n_shards)}).fetchnumpy()["shard"]
+    finally:
+        con.close()
+    return np.asarray(found, dtype=np.int64)
+
+
+def row_shards(auction_ids: pd.Series, n_shards: int) -> np.ndarray:
+    """The shard of every row's auction, hashing each distinct id once (null: shard 0).
+
+    The same numbers as ``shard_of`` (``int(md5(str(id)).hexdigest()[:8], 16) % n_shards``) and as
+    ``sql/bid_log_read_shards.sql``; a categorical is hashed through its categories, integers through
+    their distinct values (runs of a log written auction by auction need no hashing to find them).
+
+    Returns
+    -------
+    ndarray of int16
+    """
+    if isinstance(auction_ids.dtype, pd.CategoricalDtype):
+        codes = auction_ids.cat.codes.to_numpy()
+        per_id = _distinct_shards(auction_ids.cat.categories, n_shards).astype(np.int16)
+        out = np.zeros(codes.size, dtype=np.int16)
+        known = codes >= 0
+        out[known] = per_id[codes[known]] if not known.all() else per_id[codes]
+        return out
+    nulls = auction_ids.isna().to_numpy() if auction_ids.hasnans else None
+    values = auction_ids.to_numpy(dtype=np.int64, na_value=0) if nulls is not None else auction_ids.to_numpy()
+    codes, uniques = pd.factorize(values, sort=False)
+    out = _distinct_shards(np.asarray(uniques, dtype=np.int64), n_shards).astype(np.int16)[codes]
+    if nulls is not None:
+        out[nulls] = 0
+    return out
+
+
+def _integer_bidders(bids: pd.DataFrame) -> pd.DataFrame:
+    """The frame with text bidder ids replaced by the day's dictionary codes (when none is null).
+
+    A code is the bidder's label in every shard, so the shards' bidder sums meet on integers; the
+    text is needed only for a message, and messages come from the plain path.
+    """
+    col = bids["bidder_id"]
+    if isinstance(col.dtype, pd.CategoricalDtype):
+        codes = col.cat.codes.to_numpy()
+        if codes.size and codes.min() >= 0:
+            return bids.assign(bidder_id=codes)
+    return bids
+
+
+def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *, cluster: str = "auto",
+                     source: str | None = None):
+    """The pieces of every shard of a log split in memory (see the module notes).
+
+    Parameters
+    ----------
+    path : str or Path
+        A Parquet file or folder holding an ``auction_id`` column.
+    experiment : Experiment
+    n_shards : int
+        At least 2 (one shard needs no split).
+    cluster : {'auto', 'auction', 'bidder'}
+    source : str, optional
+        Name of the input in messages (default ``path``).
+
+    Returns
+    -------
+    ShardPieces
+        As :func:`~counterbid.readers.shards.pieces_by_shard` over the file-based split, with
+        bidder ids as the day's integer labels.
+
+    Raises
+    ------
+    InputError
+        Whatever the input's first fault; the caller then runs the file-based split for its message.
+    """
+    from .shards import ShardPieces
+
+    name = str(source or path)
+    columns = ["experiment_id", *BID_COLUMNS, *experiment.scale_covariates]
+    bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
+    shard = row_shards(bids["auction_id"], n_shards)
+    order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
+    bounds = np.searchsorted(shard[order], np.arange(int(n_shards) + 1))
+    del shard
+    present = [k for k in range(int(n_shards)) if bounds[k + 1] > bounds[k]]
+    pieces: list[StratumPiece] = []
+    excluded, single_bidders = 0, False
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        for k in present:
+            where = name if len(present) == 1 else f"{name} (shard {k})"
+            part = bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True)
+            try:
+                prepared = prepare_bids(part, experiment, source=where)
+            except NothingToEstimate as exc:
+                if len(present) == 1:
+                    raise
+                excluded += exc.n_excluded_auctions
+                single_bidders = True
+                continue
+            finally:
+                del part
+            excluded += int(prepared.n_excluded_auctions)
+            pieces += stratum_pieces(prepared, experiment, shard=k, cluster=cluster, source=where)
+            del prepared
+    if not pieces:
+        raise no_pieces_error(name, experiment.id, single_bidders=single_bidders, n_excluded_auctions=excluded)
+    for w in said:  # only once the whole log went through: a failed attempt says nothing
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return ShardPieces(pieces, excluded, int(n_shards))

@@ -1,0 +1,134 @@
+"""A log split into its shards in memory (`readers/memory_shards.py`) against the file-based split.
+
+The file-based split (DuckDB's md5 shard of every row, each shard rewritten to Parquet and read
+back, text bidder ids factorized across shards when combined) is the plain formula; the in-memory
+split hashes each distinct auction id once and carries bidder ids as the day's integer codes, and
+the command line's file-based split carries them as 64-bit hashes of their text. All three
+estimate the same rows of the same shards with the same pure estimator, so every per-bidder sum is
+the same number; only the order in which the combination adds bidders differs, hence 1e-12
+relative (rounding of sums of a few thousand doubles is ~1e-15 relative).
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+import pandas as pd
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import combine_pieces, n_shards, parse_experiments, shard_of, simulate_experiment
+from counterbid.estimators.errors import InputError
+from counterbid.readers.engines import LocalEngine, estimate_bid_log
+from counterbid.readers.shards import bid_log_rows, pieces_by_shard, staged_bid_log_shards
+from counterbid.readers.memory_shards import MEMORY_BUDGET_ENV, fits_in_memory, memory_budget_mib, row_shards
+
+SPEC = {"experiments": [
+    {"id": "crates", "control_arm": "flat", "payment_rule": "gsp", "arms": [
+        {"name": "flat", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
+        {"name": "tiered", "share": 0.3, "position_weights": [0.55, 0.15]},
+    ]},
+]}
+EXP = parse_experiments(SPEC)["crates"]
+MAX = 1500  # bids per shard: 5 shards of the ~7 000-bid logs below
+
+
+def _log(n_auctions=1800, rng=21) -> pd.DataFrame:
+    """Text auction ids, text bidder ids of a small pool (bidders persist across auctions), a few
+    single-bidder auctions (left out, and counted alike by both splits)."""
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), EXP, n_bidders={1: 0.05, 3: 0.55, 5: 0.4},
+                               n_auctions=n_auctions, rng=rng, bidder_pool=700)
+    bids["auction_id"] = "crate-" + bids["auction_id"].astype(str)
+    bids["bidder_id"] = "stall-" + bids["bidder_id"].astype(str)
+    return bids
+
+
+def _md5_shard(text: str, n: int) -> int:
+    """The documented rule, written out: int(md5(text).hexdigest()[:8], 16) % n (RFC 1321)."""
+    return int(hashlib.md5(text.encode("utf-8")).hexdigest()[:8], 16) % n
+
+
+@pytest.mark.parametrize("n", [2, 3, 7])
+def test_row_shards_are_the_md5_rule_of_each_id(n):
+    text = pd.Series(["crate-1", "crate-2", "crate-1", "ü-crate", "crate-30", "crate-2", None, "crate-9"])
+    got = row_shards(text.astype("category"), n)
+    want = [0 if pd.isna(t) else _md5_shard(t, n) for t in text]
+    assert got.tolist() == want
+    assert got[~text.isna().to_numpy()].tolist() == shard_of(text.dropna(), n).tolist()
+    rng = np.random.default_rng(n)
+    ints = pd.Series(rng.permutation(np.repeat(rng.integers(-10**12, 10**12, 400), 3)))
+    assert row_shards(ints, n).tolist() == [_md5_shard(str(v), n) for v in ints]
+    nullable = ints.astype("Int64")
+    nullable[5] = pd.NA
+    assert row_shards(nullable, n)[5] == 0 and row_shards(nullable, n)[6] == _md5_shard(str(ints[6]), n)
+
+
+def _estimates(path, monkeypatch, budget: str, **kw):
+    monkeypatch.setenv(MEMORY_BUDGET_ENV, budget)
+    found = LocalEngine().log_pieces(str(path), EXP, max_bids_per_shard=MAX, cluster=kw.get("cluster", "auto"))
+    return found, estimate_bid_log(path, EXP, max_bids_per_shard=MAX, **kw)
+
+
+def _plain(path, cluster):
+    """The plain formula: DuckDB's shard files, text bidder ids matched across shards by their text."""
+    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX)) as shards:
+        found = pieces_by_shard(shards, EXP, cluster=cluster, source=str(path))
+    return found, combine_pieces(found.pieces, EXP, cluster=cluster, n_excluded_auctions=found.n_excluded_auctions)
+
+
+def _same_numbers(a, b):
+    keys = ["arm", "metric", "n_auctions", "n_bids", "status"]
+    assert a.table[keys].equals(b.table[keys])
+    for col in ("estimate", "std_error", "ci_low", "ci_high"):
+        np.testing.assert_allclose(a.table[col].to_numpy(float), b.table[col].to_numpy(float), rtol=1e-12, atol=0,
+                                   err_msg=col)
+
+
+@pytest.mark.parametrize("cluster", ["auto", "bidder", "auction"])
+def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypatch, cluster):
+    bids = _log()
+    path = tmp_path / "crates.parquet"
+    bids.to_parquet(path, index=False)
+    mem_pieces, mem = _estimates(path, monkeypatch, "1200", cluster=cluster)  # split in memory, integer codes
+    hashed_pieces, hashed = _estimates(path, monkeypatch, "0", cluster=cluster)  # shard files, 64-bit hashes
+    plain_pieces, plain = _plain(path, cluster)
+    assert mem.shards == hashed.shards == 5 and mem.cluster == hashed.cluster == plain.cluster
+    assert mem.cluster == ("auction" if cluster == "auction" else "bidder")
+    if cluster != "auction":  # each shortcut really ran: integer ids where the plain path has text
+        assert all(p.bidder_ids.dtype == np.int64 for p in mem_pieces.pieces + hashed_pieces.pieces)
+        assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
+        sizes = [p.bidder_ids.size for p in plain_pieces.pieces]
+        assert [p.bidder_ids.size for p in mem_pieces.pieces] == sizes == [p.bidder_ids.size for p in
+                                                                           hashed_pieces.pieces]
+    assert [p.key for p in mem_pieces.pieces] == [p.key for p in plain_pieces.pieces]
+    assert mem_pieces.n_excluded_auctions == plain_pieces.n_excluded_auctions > 0
+    _same_numbers(mem, plain)
+    _same_numbers(hashed, plain)  # no collision among 700 ids: the same clusters, the same SEs
+
+
+def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch):
+    bids = _log(rng=5)
+    shard = shard_of(bids["auction_id"], 5)
+    row = int(np.flatnonzero(shard == 3)[10])
+    same = bids.index[(bids["auction_id"] == bids.loc[row, "auction_id"]) & (bids.index != row)][0]
+    bids.loc[row, "bidder_id"] = bids.loc[same, "bidder_id"]  # a bidder twice in one auction
+    path = tmp_path / "twice.parquet"
+    bids.to_parquet(path, index=False)
+    lines = []
+    for budget in ("1200", "0"):
+        monkeypatch.setenv(MEMORY_BUDGET_ENV, budget)
+        with pytest.raises(InputError) as err:
+            estimate_bid_log(path, EXP, max_bids_per_shard=MAX)
+        lines.append(str(err.value))
+    assert lines[0] == lines[1] and lines[0].startswith(f"{path} (shard 3): bidder 'stall-")
+
+
+def test_budget_setting(monkeypatch):
+    monkeypatch.delenv(MEMORY_BUDGET_ENV, raising=False)
+    assert memory_budget_mib() == 1200 and fits_in_memory(10_000_000) and not fits_in_memory(30_000_000)
+    monkeypatch.setenv(MEMORY_BUDGET_ENV, "0")
+    assert not fits_in_memory(1)
+    monkeypatch.setenv(MEMORY_BUDGET_ENV, "lots")
+    with pytest.raises(InputError, match=f"^{MEMORY_BUDGET_ENV} must be a whole number of MiB >= 0; got 'lots'$"):
+        fits_in_memory(1)
