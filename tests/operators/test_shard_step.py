@@ -16,6 +16,7 @@ import os
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
@@ -147,12 +148,13 @@ def test_a_failing_shard_names_the_shard(lake, experiment, tmp_path):
     stage = tmp_path / "stage"
     staged, _ = _checked_day(lake, experiment, stage, START, 2500)
     # shard 3's file replaced by a negative bid after the checks (a shard task reads its shard alone)
-    frame = pq.read_table(next(staged.shard(3).glob("*.parquet"))).to_pandas()
-    frame.loc[5, "bid"] = -1.0
     target = next(staged.shard(3).glob("*.parquet"))
-    frame.to_parquet(target.with_suffix(".tmp"), index=False)
+    table = pq.read_table(target)
+    bids = table.column("bid").to_numpy().copy()
+    bids[5] = -1.0
+    pq.write_table(table.set_column(table.schema.get_field_index("bid"), "bid", pa.array(bids)), target.with_suffix(".tmp"))
     os.replace(target.with_suffix(".tmp"), target)
-    with pytest.raises(InputError, match=r"\(shard 3\)"):
+    with pytest.raises(InputError, match=r"\(shard 3\): column 'bid' row 5 is negative"):
         partition.estimate_partition_shard(experiment, ds=START, staging_root=stage, shard=3)
     with pytest.raises(InputError, match=r"shard 7 of experiment 'lanterns' on 2026-05-11 was not staged"):
         partition.estimate_partition_shard(experiment, ds=START, staging_root=stage, shard=7)
@@ -164,3 +166,36 @@ def test_a_shard_task_refuses_a_day_that_failed_its_checks(lake, experiment, tmp
     partition.stage_partition(LakeHook(), lake_root=lake, experiment=experiment, ds=START, staging_root=stage)
     with pytest.raises(InputError, match="run the 'validate' step"):
         partition.estimate_partition_shard(experiment, ds=START, staging_root=stage, shard=0)
+
+
+def test_the_shard_operator_names_the_shard_when_it_fails(lake, experiment, tmp_path):
+    """Bad bids fail without retry (AirflowFailException); a storage failure is retried (ShardTaskError);
+    both messages name the shard, the experiment and the day."""
+    import yaml
+    from airflow.sdk.exceptions import AirflowFailException
+
+    from counterbid.operators.pipeline import EstimateShardOperator, ShardTaskError
+
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(yaml.safe_dump(SPEC))
+    stage = tmp_path / "stage"
+    staged, _ = _checked_day(lake, experiment, stage, START, 2500)
+
+    def run(k):
+        return EstimateShardOperator(task_id="estimate_shard", experiment_id="lanterns", spec_path=spec,
+                                     staging_root=stage, ds=str(START), shard=k).execute({})
+
+    assert run(0)["pieces"] >= 1 and shard_pieces_folder(staged, 0).is_dir()
+    target = next(staged.shard(2).glob("*.parquet"))
+    table = pq.read_table(target)  # column types kept: only one bid changes
+    bids = table.column("bid").to_numpy().copy()
+    bids[0] = float("nan")
+    pq.write_table(table.set_column(table.schema.get_field_index("bid"), "bid", pa.array(bids)), target)
+    with pytest.raises(AirflowFailException, match=r"\(shard 2\): column 'bid' row \d+ is"):
+        run(2)
+    (staged.day / "pieces").rename(staged.day / "pieces-aside")
+    (staged.day / "pieces").write_text("not a folder")  # the pieces cannot be stored
+    with pytest.raises(ShardTaskError, match=r"^shard 1 of experiment 'lanterns' on 2026-05-11: \w+Error"):
+        run(1)
+    with pytest.raises(AirflowFailException, match="`shard` must be a whole number; got 'one'"):
+        run("one")
