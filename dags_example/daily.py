@@ -139,8 +139,12 @@ def counterbid_daily():
 
             estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.spark_lake_root or params.lake_root }}",
                                                  conn_id=SPARK_CONN, **options)
-        else:  # the shard tasks below estimated the shards; this step combines their pieces
-            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, **options)
+        else:  # the shard tasks below estimated the shards; this step combines their pieces. It runs
+            # when every shard task has ended (all_done), so a failed shard of one experiment does not
+            # hold the others back: it skips itself unless its own validate step passed, and fails
+            # naming a shard whose pieces are missing.
+            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, validate_task_id=validate.task_id,
+                                            trigger_rule="all_done", **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
         steps.update(validate=validate, estimate=estimate)
@@ -149,9 +153,8 @@ def counterbid_daily():
     one_experiment.expand(experiment_id=experiments)
     if ENGINE == "local":
         # Airflow cannot map a task inside a mapped group, so the shards of every experiment of the
-        # day are one mapped task between the group's validate and estimate steps. Listed after every
-        # validate step has ended (all_done), for the experiments whose checks passed only: a failed
-        # experiment's estimate is upstream_failed through its own validate step, the others go on.
+        # day are one mapped task between the group's validate and estimate steps, listed after every
+        # validate step has ended (all_done), for the experiments whose checks passed only.
         @task(trigger_rule="all_done")
         def day_shards(params=None, ds=None, ti=None) -> list[dict]:
             ids = ti.xcom_pull(task_ids="active_experiments") or []

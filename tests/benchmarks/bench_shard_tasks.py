@@ -54,10 +54,13 @@ def child(step: str, work: Path, arg: str) -> dict:
     from counterbid.operators.lake_hook import LakeHook
     from counterbid.operators.staging import StagedPartition
 
-    exp = load_experiment(work / "spec.yaml")
+    exp = None if step == "simulate" else load_experiment(work / "spec.yaml")
     stage = work / "stage"
     t0 = time.perf_counter()
     out: dict = {}
+    if step == "simulate":
+        make_day(work, int(arg))
+        return {}
     if step == "load":
         out = partition.stage_partition(LakeHook(), lake_root=work / "lake", experiment=exp, ds=START,
                                         staging_root=stage)
@@ -84,11 +87,13 @@ def main() -> None:
         return
     data = args.data or Path(tempfile.mkdtemp(prefix="counterbid-shards-"))
     lake = data / f"lake_{args.bids}"
-    make_day(lake, args.bids)
+    me = [sys.executable, str(Path(__file__).resolve()), "--child"]
+    # simulated in a child: a child's ru_maxrss starts at this parent's own peak (vfork), so a parent
+    # that once held the day would set the floor of every row's peak RSS
+    run_child([*me, "simulate", str(lake), str(args.bids)], None)
     work = Path(tempfile.mkdtemp(prefix="run-", dir=data))
     (work / "spec.yaml").write_text(SPEC)
     (work / "lake").symlink_to(lake)
-    me = [sys.executable, str(Path(__file__).resolve()), "--child"]
     env = None
     load = run_child([*me, "load", str(work), "-"], env)
     print(f"## {args.bids} bids on {START}: {load['shards']} shard(s) of at most {load['max_bids_per_shard']} bids\n")

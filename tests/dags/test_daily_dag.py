@@ -50,6 +50,8 @@ def test_dag_imports_without_errors_or_cycles(bag):
     assert dag.get_task("estimate_shard").upstream_task_ids == {"day_shards"}
     assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate",
                                                                       "estimate_shard"}
+    # ... after every shard task ended, so one experiment's failed shard does not hold the others back
+    assert dag.get_task("experiment.estimate").trigger_rule == "all_done"
     assert dag.get_task("experiment.write").upstream_task_ids == {"active_experiments", "experiment.estimate"}
 
 
