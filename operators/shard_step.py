@@ -97,6 +97,18 @@ def estimate_shard(experiment: Experiment, *, ds: dt.date, staging_root: str | P
 def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluster: str) -> ShardPieces:
     """Every staged shard's pieces, as the shard tasks stored them (what the estimate step combines).
 
+    Parameters
+    ----------
+    staged : StagedPartition
+    experiment : Experiment
+    cluster : {'auto', 'auction', 'bidder'}
+        The clustering the shard tasks must have used.
+
+    Returns
+    -------
+    ShardPieces
+        By shard, then number of bidders; bidder ids as text.
+
     Raises
     ------
     InputError
@@ -131,8 +143,19 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
 def validated_shards(staging_root: str | Path, ds: dt.date, experiment_ids: Iterable[str]) -> list[dict]:
     """One ``{"experiment_id", "shard"}`` per staged shard of each experiment given (validated this run).
 
-    What the DAG maps the shard tasks over; ``experiment_ids`` are the experiments whose validate
-    step succeeded.
+    What the DAG maps the shard tasks over.
+
+    Parameters
+    ----------
+    staging_root : str or Path
+    ds : datetime.date
+    experiment_ids : iterable of str
+        The experiments whose validate step succeeded in this run.
+
+    Returns
+    -------
+    list of dict
+        By experiment, then shard: small, fit for XCom.
     """
     return [{"experiment_id": e, "shard": k} for e in experiment_ids
             for k in StagedPartition.at(staging_root, e, ds).shards()]
