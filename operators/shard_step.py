@@ -5,7 +5,10 @@ With the local engine the daily DAG maps one task over each staged shard
 executor spreads a large day over workers. Each shard task reads only its shard, estimates its
 strata (:func:`counterbid.readers.shards.one_shard_pieces`) and stores the pieces as Parquet
 frames (:func:`counterbid.estimators.pieces_to_frames`) in ``day/pieces/shard=K/`` of the staging
-folder, with a small record (``shard.json``). The estimate step then combines them
+folder, with a small record (``shard.json``); the per-bidder sums, when kept, go to one wide file
+(``bidder_sums_wide.parquet``: the stratum, the bidder id as text and one column per revenue label),
+so reading a shard's bidders back costs one text value per bidder, not one per bidder and label.
+The estimate step then combines them
 (:func:`shard_task_pieces`) exactly as it combines the pieces of shards estimated one after another
 in one task. Nothing of size O(bids) goes through XCom.
 
@@ -15,15 +18,19 @@ them with the shards they came from; a retried shard task replaces its own folde
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import json
 from collections.abc import Iterable
 from pathlib import Path
 
+import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from counterbid.estimators import PIECE_FRAMES, Experiment, pieces_from_frames, pieces_to_frames
+from counterbid.estimators import PIECE_FRAMES, Experiment, StratumPiece, pieces_from_frames, pieces_to_frames
+from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.errors import InputError, no_pieces_error
 from counterbid.readers.shards import ShardPieces, one_shard_pieces
 
@@ -33,6 +40,36 @@ __all__ = ["RECORD", "estimate_shard", "shard_pieces_folder", "shard_task_pieces
 
 #: The record a shard task writes last, beside its pieces: what the estimate step checks.
 RECORD = "shard.json"
+#: The shard's per-bidder sums: ``n_bidders``, ``bidder_id`` (text), ``sum_0 .. sum_K`` (the piece's sum labels).
+WIDE_SUMS = "bidder_sums_wide.parquet"
+
+
+def _wide_sums(pieces: list[StratumPiece]) -> pa.Table | None:
+    """Every piece's bidder sums in one wide table (``None`` when no piece keeps them)."""
+    parts = []
+    for p in pieces:
+        if p.bidder_ids is None:
+            continue
+        columns = {"n_bidders": pa.array(np.full(p.bidder_ids.size, p.n_bidders, dtype=np.int64)),
+                   "bidder_id": pa.array(ids_as_text(p.bidder_ids), type=pa.string())}
+        columns |= {f"sum_{c}": pa.array(p.bidder_sums[:, c]) for c in range(p.bidder_sums.shape[1])}
+        parts.append(pa.table(columns))
+    return pa.concat_tables(parts, promote_options="default") if parts else None
+
+
+def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[StratumPiece]:
+    """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text)."""
+    out = []
+    for p in pieces:
+        rows = wide.filter(pc.equal(wide.column("n_bidders"), p.n_bidders))
+        names = [f"sum_{c}" for c in range(len(p.sum_labels))]
+        if rows.num_rows == 0 or any(n not in rows.column_names or rows.column(n).null_count for n in names):
+            raise InputError(f"{where}: no bidder sums for the {p.n_bidders}-bidder stratum; "
+                             "run its 'estimate_shard' task again")
+        ids = rows.column("bidder_id").to_numpy(zero_copy_only=False)
+        sums = np.column_stack([rows.column(n).to_numpy() for n in names])
+        out.append(dataclasses.replace(p, bidder_ids=ids, bidder_sums=sums))
+    return out
 
 
 def shard_pieces_folder(staged: StagedPartition, k: int) -> Path:
@@ -82,11 +119,16 @@ def estimate_shard(experiment: Experiment, *, ds: dt.date, staging_root: str | P
               "bids": sum(p.n_bids for p in found.pieces), "excluded_auctions": found.n_excluded_auctions,
               "single_bidders_only": found.single_bidders_only}
 
+    record["bidder_sums"] = [p.n_bidders for p in found.pieces if p.bidder_ids is not None]
+
     def fill(folder: Path) -> None:
         folder.mkdir(parents=True)
-        if found.pieces:
-            for name, frame in pieces_to_frames(found.pieces).items():
+        if found.pieces:  # the small frames without the bidder sums, which go to one wide file
+            for name, frame in pieces_to_frames([p.without_bidder_sums() for p in found.pieces]).items():
                 pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), folder / f"{name}.parquet")
+            wide = _wide_sums(found.pieces)
+            if wide is not None:
+                pq.write_table(wide, folder / WIDE_SUMS)
         write_json(record, folder / RECORD)
 
     target = shard_pieces_folder(staged, shard)
@@ -132,8 +174,13 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
         excluded += int(record["excluded_auctions"])
         single_bidders = single_bidders or bool(record["single_bidders_only"])
         if int(record["pieces"]):
-            pieces += pieces_from_frames({name: pq.read_table(folder / f"{name}.parquet").to_pandas()
-                                          for name in PIECE_FRAMES})
+            mine = pieces_from_frames({name: pq.read_table(folder / f"{name}.parquet").to_pandas()
+                                       for name in PIECE_FRAMES})
+            with_sums = set(record.get("bidder_sums", []))
+            if with_sums:
+                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], pq.read_table(folder / WIDE_SUMS), folder)
+                mine = kept + [p for p in mine if p.n_bidders not in with_sums]
+            pieces += sorted(mine, key=lambda p: p.n_bidders)
     if not pieces:
         raise no_pieces_error(str(staged.day), experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)
