@@ -139,22 +139,21 @@ def counterbid_daily():
 
             estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.spark_lake_root or params.lake_root }}",
                                                  conn_id=SPARK_CONN, **options)
-        else:  # the shard tasks below estimated the shards; this step combines their pieces. It runs
-            # when every shard task has ended (all_done), so a failed shard of one experiment does not
-            # hold the others back: it skips itself unless its own validate step passed, and fails
-            # naming a shard whose pieces are missing.
-            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, validate_task_id=validate.task_id,
-                                            trigger_rule="all_done", **options)
+        else:  # the shard tasks below estimated the shards; this step combines their pieces
+            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
-        steps.update(validate=validate, estimate=estimate)
+        steps.update(validate=validate, estimate=estimate, write=write)
 
     experiments = active_experiments()
     one_experiment.expand(experiment_id=experiments)
     if ENGINE == "local":
         # Airflow cannot map a task inside a mapped group, so the shards of every experiment of the
         # day are one mapped task between the group's validate and estimate steps, listed after every
-        # validate step has ended (all_done), for the experiments whose checks passed only.
+        # validate step has ended (all_done), for the experiments whose checks passed only. A failed
+        # experiment's estimate is upstream_failed through its own validate step and the others go
+        # on; a shard task that fails after its retries holds back every experiment's estimate of
+        # the day (upstream_failed, so the run fails and alerts once, from the shard task).
         @task(trigger_rule="all_done")
         def day_shards(params=None, ds=None, ti=None) -> list[dict]:
             ids = ti.xcom_pull(task_ids="active_experiments") or []
@@ -169,6 +168,17 @@ def counterbid_daily():
             results_database="{{ params.results_database }}", cluster="{{ params.cluster }}",
         ).expand_kwargs(shards)
         estimate_shard >> steps["estimate"]
+
+        # Airflow judges a run by its last tasks. When no experiment passes its checks, no shard task
+        # is mapped and the steps after it are skipped, which alone would end the run as a success:
+        # this last task is upstream_failed whenever a validate step failed (no task runs, no alert).
+        @task
+        def day_settled() -> None:
+            return None
+
+        settled = day_settled()
+        steps["validate"] >> settled
+        steps["write"] >> settled
 
 
 counterbid_daily()

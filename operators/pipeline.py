@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from airflow.sdk import Asset, BaseOperator
-from airflow.sdk.exceptions import AirflowFailException, AirflowSkipException
+from airflow.sdk.exceptions import AirflowFailException
 
 from counterbid.estimators import CheckResult, load_experiment, parse_day
 from counterbid.estimators import CLUSTERS
@@ -210,11 +210,6 @@ class EstimateArmsOperator(_PartitionOperator):
         The day's shards were estimated by :class:`EstimateShardOperator` tasks (one mapped task
         per shard): combine the pieces they stored instead of estimating the shards here (the
         same rows; a shard whose pieces are missing fails the task, naming it).
-    validate_task_id : str, optional
-        For a step run under trigger rule ``all_done`` after the shard tasks (so that a failed
-        shard of another experiment does not hold this one back): the validate task whose result,
-        in this run and at this map index, says the day passed its checks. Without that result
-        (the day's load or validate failed) the step skips itself, and so does the write.
     """
 
     template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "confidence_level", "cluster")
@@ -225,12 +220,10 @@ class EstimateArmsOperator(_PartitionOperator):
         confidence_level: float | str = DEFAULT_CONFIDENCE_LEVEL,
         cluster: str = DEFAULT_CLUSTER,
         shard_tasks: bool = False,
-        validate_task_id: str | None = None,
         **kwargs: Any,
     ) -> None:
         super().__init__(**kwargs)
         self.shard_tasks = bool(shard_tasks)
-        self.validate_task_id = validate_task_id
         # Templated values are checked when rendered (execute); literal ones fail the DAG's parse.
         if not _templated(confidence_level):
             _level(confidence_level, self.task_id)
@@ -240,9 +233,6 @@ class EstimateArmsOperator(_PartitionOperator):
         self.cluster = cluster
 
     def execute(self, context) -> dict:
-        if self.validate_task_id and context["ti"].xcom_pull(task_ids=self.validate_task_id) is None:
-            raise AirflowSkipException(f"{self.experiment_id} on {self.ds}: {self.validate_task_id} did not pass in "
-                                       "this run; nothing to estimate")
         return self.estimate(run_id=str(context["run_id"]))
 
     def estimate(self, *, run_id: str, spark=None, lake_root: str | None = None) -> dict:

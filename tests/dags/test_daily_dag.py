@@ -48,10 +48,10 @@ def test_dag_imports_without_errors_or_cycles(bag):
     assert dag.get_task("day_shards").upstream_task_ids == {"experiment.validate"}
     assert dag.get_task("day_shards").trigger_rule == "all_done"
     assert dag.get_task("estimate_shard").upstream_task_ids == {"day_shards"}
+    # the last task: a run whose validate steps all failed maps no shard task and must still fail
+    assert dag.get_task("day_settled").upstream_task_ids == {"experiment.validate", "experiment.write"}
     assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate",
                                                                       "estimate_shard"}
-    # ... after every shard task ended, so one experiment's failed shard does not hold the others back
-    assert dag.get_task("experiment.estimate").trigger_rule == "all_done"
     assert dag.get_task("experiment.write").upstream_task_ids == {"active_experiments", "experiment.estimate"}
 
 
