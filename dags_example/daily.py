@@ -23,7 +23,9 @@ by its own ``airflow backfill create --max-active-runs``, not by this: pass 1 th
 clustering each stored row used are written beside it.
 
 Engine of the estimate step (read when the DAG is parsed only): ``COUNTERBID_ENGINE`` ``local``
-(the default: the worker estimates the staged shards one after another) or ``spark`` (the
+(the default: one mapped task per staged shard, ``estimate_shard``, estimates it and stages its
+pieces; the ``experiment.estimate`` step combines them, so an executor with several workers spreads
+a large day over them) or ``spark`` (the
 ``spark`` extra: ``SparkEstimateArmsOperator``, through the Apache Spark provider; Spark reads
 the day's partition of ``lake_root`` itself, splits it into the shards the load step staged and
 estimates them in parallel; the numbers and stored rows are the local engine's). With ``spark``,
@@ -45,15 +47,18 @@ from airflow.sdk import dag, task, task_group
 
 from counterbid.operators.extras import require_extras_for
 from counterbid.operators.notify import CheckAlertNotifier
+from counterbid.estimators import parse_day
 from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
     DEFAULT_CLUSTER,
     DEFAULT_CONFIDENCE_LEVEL,
     EstimateArmsOperator,
+    EstimateShardOperator,
     LoadPartitionOperator,
     ValidatePartitionOperator,
     WriteEstimatesOperator,
 )
+from counterbid.operators.shard_step import validated_shards
 from counterbid.operators.results_schema import results_target
 
 DAG_ID = "counterbid_daily"
@@ -112,6 +117,8 @@ def counterbid_daily():
     def active_experiments(params=None, ds=None) -> list[str]:
         return active_experiment_ids(params["spec_path"], ds)
 
+    steps = {}  # the group's validate and estimate, wired to the shard tasks below
+
     @task_group(group_id="experiment")
     def one_experiment(experiment_id):
         paths = {
@@ -132,12 +139,46 @@ def counterbid_daily():
 
             estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.spark_lake_root or params.lake_root }}",
                                                  conn_id=SPARK_CONN, **options)
-        else:
-            estimate = EstimateArmsOperator(task_id="estimate", **options)
+        else:  # the shard tasks below estimated the shards; this step combines their pieces
+            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
+        steps.update(validate=validate, estimate=estimate, write=write)
 
-    one_experiment.expand(experiment_id=active_experiments())
+    experiments = active_experiments()
+    one_experiment.expand(experiment_id=experiments)
+    if ENGINE == "local":
+        # Airflow cannot map a task inside a mapped group, so the shards of every experiment of the
+        # day are one mapped task between the group's validate and estimate steps, listed after every
+        # validate step has ended (all_done), for the experiments whose checks passed only. A failed
+        # experiment's estimate is upstream_failed through its own validate step and the others go
+        # on; a shard task that fails after its retries holds back every experiment's estimate of
+        # the day (upstream_failed, so the run fails and alerts once, from the shard task).
+        @task(trigger_rule="all_done")
+        def day_shards(params=None, ds=None, ti=None) -> list[dict]:
+            ids = ti.xcom_pull(task_ids="active_experiments") or []
+            passed = [e for i, e in enumerate(ids)
+                      if ti.xcom_pull(task_ids="experiment.validate", map_indexes=i) is not None]
+            return validated_shards(params["staging_root"], parse_day(ds), passed)
+
+        shards = day_shards()
+        steps["validate"] >> shards
+        estimate_shard = EstimateShardOperator.partial(
+            task_id="estimate_shard", spec_path="{{ params.spec_path }}", staging_root="{{ params.staging_root }}",
+            results_database="{{ params.results_database }}", cluster="{{ params.cluster }}",
+        ).expand_kwargs(shards)
+        estimate_shard >> steps["estimate"]
+
+        # Airflow judges a run by its last tasks. When no experiment passes its checks, no shard task
+        # is mapped and the steps after it are skipped, which alone would end the run as a success:
+        # this last task is upstream_failed whenever a validate step failed (no task runs, no alert).
+        @task
+        def day_settled() -> None:
+            return None
+
+        settled = day_settled()
+        steps["validate"] >> settled
+        steps["write"] >> settled
 
 
 counterbid_daily()

@@ -45,6 +45,7 @@ from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
 from .lake_hook import LakeHook
 from .schema_gate import schema_gate
+from .shard_step import estimate_shard, shard_task_pieces
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
@@ -54,6 +55,7 @@ __all__ = [
     "PIECE_TABLES",
     "active_experiment_ids",
     "estimate_partition",
+    "estimate_partition_shard",
     "load_checks",
     "record_checks",
     "run_partition_checks",
@@ -324,6 +326,7 @@ def estimate_partition(
     cluster: str = "auto",
     spark=None,
     lake_root: str | Path | None = None,
+    shard_tasks: bool = False,
 ) -> dict:
     """Estimate every arm of one (experiment, day) shard by shard; combine the day and the experiment to date.
 
@@ -346,6 +349,11 @@ def estimate_partition(
         Estimate on Spark (default: locally, from the staged shards).
     lake_root : str or Path, optional
         Root of the bid lake Spark reads the day from; required with ``spark``.
+    shard_tasks : bool
+        The shards were estimated by tasks of their own (:func:`estimate_partition_shard`, one
+        mapped task per shard): combine the pieces they stored
+        (:func:`counterbid.operators.shard_step.shard_task_pieces`, which refuses a shard whose
+        pieces are missing) instead of estimating the shards here. The same rows.
 
     Returns
     -------
@@ -353,6 +361,8 @@ def estimate_partition(
         Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
         logged and returned to XCom).
     """
+    if shard_tasks and spark is not None:
+        raise InputError("the shards are estimated either by shard tasks or on Spark, not both")
     engine = _engine(spark, lake_root)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
@@ -370,7 +380,10 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
+    if shard_tasks:
+        found = shard_task_pieces(staged, experiment, cluster=cluster)
+    else:
+        found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
     pieces = found.pieces
     day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
                                 n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
@@ -443,6 +456,25 @@ def estimate_partition(
     write_parquet(to_date, staged.estimates_to_date)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
+
+
+def estimate_partition_shard(experiment: Experiment, *, ds: dt.date, staging_root: str | Path, shard: int,
+                             cluster: str = "auto") -> dict:
+    """Estimate one staged shard of a checked (experiment, day) and store its pieces (one shard task).
+
+    Refuses a partition whose checks failed (:func:`load_checks`); fills measured position
+    weights from staging; then :func:`counterbid.operators.shard_step.estimate_shard`. A rerun
+    replaces the shard's pieces.
+
+    Returns
+    -------
+    dict
+        Small: the shard, its pieces, bids and excluded auctions, and where the pieces are.
+    """
+    staged = StagedPartition.at(staging_root, experiment.id, ds)
+    load_checks(staged)
+    experiment, _ = staged_experiment(experiment, staged)
+    return estimate_shard(experiment, ds=ds, staging_root=staging_root, shard=shard, cluster=cluster)
 
 
 def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:

@@ -32,8 +32,10 @@ __all__ = [
     "DEFAULT_CLUSTER",
     "DEFAULT_CONFIDENCE_LEVEL",
     "EstimateArmsOperator",
+    "EstimateShardOperator",
     "LoadPartitionOperator",
     "RESULTS_ASSET",
+    "ShardTaskError",
     "ValidatePartitionOperator",
     "WRITER_POOL",
     "WriteEstimatesOperator",
@@ -204,6 +206,10 @@ class EstimateArmsOperator(_PartitionOperator):
         a rendered string is read as a number when the task runs.
     cluster : str
         One of ``counterbid.estimators.CLUSTERS``; default :data:`DEFAULT_CLUSTER`. Templated.
+    shard_tasks : bool
+        The day's shards were estimated by :class:`EstimateShardOperator` tasks (one mapped task
+        per shard): combine the pieces they stored instead of estimating the shards here (the
+        same rows; a shard whose pieces are missing fails the task, naming it).
     """
 
     template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "confidence_level", "cluster")
@@ -213,9 +219,11 @@ class EstimateArmsOperator(_PartitionOperator):
         *,
         confidence_level: float | str = DEFAULT_CONFIDENCE_LEVEL,
         cluster: str = DEFAULT_CLUSTER,
+        shard_tasks: bool = False,
         **kwargs: Any,
     ) -> None:
         super().__init__(**kwargs)
+        self.shard_tasks = bool(shard_tasks)
         # Templated values are checked when rendered (execute); literal ones fail the DAG's parse.
         if not _templated(confidence_level):
             _level(confidence_level, self.task_id)
@@ -237,12 +245,62 @@ class EstimateArmsOperator(_PartitionOperator):
             level, cluster = _level(self.confidence_level, self.task_id), _cluster(self.cluster, self.task_id)
             out = partition.estimate_partition(
                 self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
-                run_id=run_id, confidence_level=level, cluster=cluster, spark=spark, lake_root=lake_root)
+                run_id=run_id, confidence_level=level, cluster=cluster, spark=spark, lake_root=lake_root,
+                shard_tasks=self.shard_tasks and spark is None)
         except InputError as exc:
             raise AirflowFailException(str(exc)) from None
         log.info("estimated %s on %s (status %s, %s shard(s), %s engine): day revenue per auction %s; to date over %s "
                  "(left out: %s)", self.experiment_id, self.ds, out["status"], out["shards"], out["engine"],
                  out["day_revenue_per_auction"], out["days_used"] or "no day", out["days_left_out"] or "none")
+        return out
+
+
+class ShardTaskError(RuntimeError):
+    """A shard task failed for a reason other than its bids (memory, storage): retried; names the shard."""
+
+
+class EstimateShardOperator(_PartitionOperator):
+    """Estimate one staged shard of one (experiment, day) and store its pieces (one mapped task per shard).
+
+    Mapped over the staged shards (``.partial(...).expand_kwargs([{"experiment_id": ..., "shard":
+    k}, ...])``), so an executor that runs tasks on several workers spreads a large day over them;
+    :class:`EstimateArmsOperator` with ``shard_tasks=True`` then combines the stored pieces. A
+    retry or rerun replaces the shard's pieces. Bad bids fail without retry; any other failure is
+    retried; both name the shard.
+
+    Parameters
+    ----------
+    shard : int or str
+        One of the shards the load step staged. Templated.
+    cluster : str
+        As :class:`EstimateArmsOperator`'s (the estimate step refuses pieces of another). Templated.
+    """
+
+    template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "shard", "cluster")
+
+    def __init__(self, *, shard: int | str, cluster: str = DEFAULT_CLUSTER, **kwargs: Any) -> None:
+        kwargs.setdefault("map_index_template", "{{ task.experiment_id }} shard {{ task.shard }}")
+        super().__init__(**kwargs)
+        if not _templated(cluster):
+            _cluster(cluster, self.task_id)
+        self.shard = shard
+        self.cluster = cluster
+
+    def execute(self, context) -> dict:
+        where = f"shard {self.shard} of experiment {self.experiment_id!r} on {self.ds}"
+        try:
+            k = int(self.shard)
+        except (TypeError, ValueError):
+            raise AirflowFailException(f"{self.task_id}: `shard` must be a whole number; got {self.shard!r}") from None
+        try:
+            out = partition.estimate_partition_shard(self.experiment(), ds=self.day(), staging_root=self.staging_root,
+                                                     shard=k, cluster=_cluster(self.cluster, self.task_id))
+        except InputError as exc:  # the same files fail the same way: no retry
+            raise AirflowFailException(str(exc)) from None
+        except Exception as exc:
+            raise ShardTaskError(f"{where}: {type(exc).__name__}: {exc}") from exc
+        log.info("estimated %s: %s piece(s), %s bids (%s single-bidder auctions left out) in %s", where,
+                 out["pieces"], out["bids"], out["excluded_auctions"], out["folder"])
         return out
 
 

@@ -30,10 +30,12 @@ __all__ = [
     "MAX_BIDS_ENV",
     "SHARD_SCAN_CONFIG",
     "distinct_experiment_ids",
+    "OneShard",
     "ShardPieces",
     "bid_log_rows",
     "column_names",
     "max_bids_per_shard",
+    "one_shard_pieces",
     "pieces_by_shard",
     "shard_folders",
     "staged_bid_log_shards",
@@ -302,27 +304,78 @@ def pieces_by_shard(
     shards = list(shards)
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
-        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.scale_covariates], source=where)
-        hashed = _hashed_bidders(bids) if hash_bidders else None
-        try:
-            prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)
-        except NothingToEstimate as exc:
-            if len(shards) == 1:
-                raise
-            # a shard of single-bidder auctions only: they are left out, the other shards hold the bids
-            excluded += exc.n_excluded_auctions
-            single_bidders = True
-            continue
-        except InputError:
-            if hashed is not None:
-                prepare_bids(bids, experiment, source=where)  # the message quotes the id's text
-            raise
-        finally:
-            del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
-        excluded += int(prepared.n_excluded_auctions)
-        pieces += stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where)
-        del prepared
+        found = one_shard_pieces(k, path, experiment, cluster=cluster, day=day, where=where, alone=len(shards) == 1,
+                                 hash_bidders=hash_bidders)
+        pieces += found.pieces
+        excluded += found.n_excluded_auctions
+        single_bidders = single_bidders or found.single_bidders_only
     if not pieces:
         raise no_pieces_error(source or "bids", experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)
     return ShardPieces(pieces, excluded, len(shards))
+
+
+@dataclass(frozen=True)
+class OneShard:
+    """One shard's stratum pieces, its single-bidder auctions left out, and whether it held nothing else."""
+
+    pieces: list[StratumPiece]
+    n_excluded_auctions: int
+    single_bidders_only: bool = False
+
+
+def one_shard_pieces(
+    k: int,
+    path: str | Path,
+    experiment: Experiment,
+    *,
+    cluster: str = "auto",
+    day=None,
+    where: str | None = None,
+    alone: bool = True,
+    hash_bidders: bool = False,
+) -> OneShard:
+    """Read, validate and estimate one shard; keep only its stratum pieces.
+
+    Parameters
+    ----------
+    k : int
+        The shard's number (recorded in every piece).
+    path : str or Path
+        Its Parquet file or folder.
+    experiment : Experiment
+        With measured position weights already filled.
+    cluster : {'auto', 'auction', 'bidder'}
+    day : date-like, optional
+        Recorded in every piece.
+    where : str, optional
+        Name of the shard in messages (default: its path).
+    alone : bool
+        The shard is the whole input: a shard of single-bidder auctions only is then an error
+        (``NothingToEstimate``); otherwise they are left out and counted, the other shards hold
+        the bids.
+    hash_bidders : bool
+        Text bidder ids as 64-bit hashes of their text (distinct ids hashed once; see
+        :mod:`counterbid.readers.id_hashes`); a bad input's message still quotes the id's text.
+
+    Returns
+    -------
+    OneShard
+    """
+    where = str(where or path)
+    bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.scale_covariates], source=where)
+    hashed = _hashed_bidders(bids) if hash_bidders else None
+    try:
+        prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)
+    except NothingToEstimate as exc:
+        if alone:
+            raise
+        return OneShard([], int(exc.n_excluded_auctions), True)
+    except InputError:
+        if hashed is not None:
+            prepare_bids(bids, experiment, source=where)  # the message quotes the id's text
+        raise
+    finally:
+        del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
+    excluded = int(prepared.n_excluded_auctions)
+    return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where), excluded)

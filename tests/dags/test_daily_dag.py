@@ -43,7 +43,15 @@ def test_dag_imports_without_errors_or_cycles(bag):
     assert dag.get_task("experiment.load").upstream_task_ids == {"active_experiments"}
     # every task of the mapped group also depends on the list it is mapped over
     assert dag.get_task("experiment.validate").upstream_task_ids == {"active_experiments", "experiment.load"}
-    assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate"}
+    # the local engine's shard tasks: listed once every validate step ended, mapped one per staged
+    # shard, combined by each experiment's estimate step
+    assert dag.get_task("day_shards").upstream_task_ids == {"experiment.validate"}
+    assert dag.get_task("day_shards").trigger_rule == "all_done"
+    assert dag.get_task("estimate_shard").upstream_task_ids == {"day_shards"}
+    # the last task: a run whose validate steps all failed maps no shard task and must still fail
+    assert dag.get_task("day_settled").upstream_task_ids == {"experiment.validate", "experiment.write"}
+    assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate",
+                                                                      "estimate_shard"}
     assert dag.get_task("experiment.write").upstream_task_ids == {"active_experiments", "experiment.estimate"}
 
 
@@ -149,15 +157,21 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
     assert quantile_days == 3
 
 
-def test_a_day_split_into_shards_combines_its_shards_and_the_days(three_days, tmp_path):
-    """A tiny ``max_bids_per_shard`` (15 000 bids a day -> 4 shards): the daily rows combine the
-    shards' pieces (each shard estimated from its own auctions, chosen by ``shard_of``) and the
-    to-date rows combine the stored pieces of the window's days."""
+def test_a_day_split_into_shards_combines_its_shards_and_the_days(three_days, tmp_path, capsys):
+    """A tiny ``max_bids_per_shard`` (15 000 bids a day -> 4 shards): one mapped ``estimate_shard``
+    task per shard of each experiment; the daily rows combine the shards' pieces (each shard
+    estimated from its own auctions, chosen by ``shard_of``), are ``counterbid estimate`` of the
+    day's log under the same sharding, and the to-date rows combine the stored pieces of the
+    window's days."""
     root, conf, experiments, _ = three_days
     db = tmp_path / "sharded.duckdb"
     runs = run_days(DAYS, conf={**conf, "results_database": str(db), "staging_root": str(tmp_path / "stage"),
                                 "max_bids_per_shard": "4000"})
     assert [r.state for r in runs] == ["success"] * 3, [r.line() for r in runs]
+    for run in runs:  # 2 experiments x 4 shards, each its own task instance
+        mapped = sorted(m for task_id, m, state, _ in run.tasks if task_id == "estimate_shard" and state == "success")
+        assert mapped == list(range(8)), run.tasks
+    _assert_like_the_command_line(root, db, experiments, DAYS[0], capsys, shards=4, max_bids=4000)
     daily, to_date = _table(db, "arm_estimates"), _table(db, "arm_estimates_to_date")
     lake = _lake(root)
     exp = experiments["tiles"]
@@ -176,6 +190,31 @@ def test_a_day_split_into_shards_combines_its_shards_and_the_days(three_days, tm
         shards = con.execute("select ds, count(distinct shard) from stratum_pieces where experiment_id = 'tiles' "
                              "group by ds order by ds").fetchall()
     assert [n for _, n in shards] == [4, 4, 4]
+
+
+def _assert_like_the_command_line(root, db, experiments, day, capsys, *, shards, max_bids):
+    """The stored daily rows of ``day`` equal ``counterbid estimate`` of each experiment's log of that day."""
+    import json
+
+    from counterbid.cli import main
+
+    daily = _table(db, "arm_estimates")
+    for exp in experiments.values():
+        capsys.readouterr()  # the DAG runs' log lines
+        code = main(["estimate", "--bids", str(root / "bids" / f"ds={day}" / f"{exp.id}.parquet"), "--experiment",
+                     str(root / "spec.yaml"), "--experiment-id", exp.id, "--format", "json",
+                     "--max-bids-per-shard", str(max_bids), "--cluster", DEFAULT_CLUSTER])
+        out, err = capsys.readouterr()
+        assert code == 0, err
+        result = json.loads(out)
+        assert result["shards"] == shards
+        want = pd.DataFrame(result["rows"])
+        got = daily[(daily["experiment_id"] == exp.id) & (daily["ds"] == pd.Timestamp(day))]
+        merged = want.merge(got, on=["arm", "metric"], suffixes=("", "_db"), validate="one_to_one")
+        assert len(merged) == len(want) == len(got)
+        for col in ("estimate", "std_error"):  # the JSON output keeps 10 decimals
+            np.testing.assert_allclose(merged[f"{col}_db"].to_numpy(float), merged[col].to_numpy(float), rtol=0, atol=1e-10)
+        assert merged["n_auctions"].tolist() == merged["n_auctions_db"].tolist()
 
 
 def test_level_and_cluster_are_run_parameters(three_days, tmp_path):
