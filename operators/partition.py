@@ -188,13 +188,15 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
-    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
-    table ``staged_day`` (every shard), with measured position weights filled from staging. When
-    the day has several shards, the distribution checks and the day's bid-quantile summary read
-    shard 0 alone, or the first shard after it holding an auction with two bids or more (temp
-    table ``staged_sample``: a hash sample of whole auctions, at least about
-    half of ``max_bids_per_shard`` bids), so the frame in memory is one shard; the counting checks
-    stay exact over the whole day (DuckDB aggregates). The
+    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the view
+    ``staged_day`` (every shard's files, streamed: nothing of the day is copied into memory), with
+    measured position weights filled from staging. When the day has several shards, the contract
+    suite, the auction counts and the scan for outlying bids run shard by shard (views
+    ``staged_shard_K``; an auction lies in one shard, so the outcomes add up to the whole day's),
+    and the distribution checks and the day's bid-quantile summary read shard 0 alone, or the
+    first shard after it holding an auction with two bids or more (view ``staged_sample``: a hash
+    sample of whole auctions, at least about half of ``max_bids_per_shard`` bids), so memory is
+    set by one shard; the counting checks stay exact over the whole day. The
     drift check compares the day with the bid-quantile summaries, stored in the results database,
     of the trailing days that are in the analysis window (a warm-up day, a drifted day, a burn-in
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
@@ -225,10 +227,13 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
     sample = next((k for k in shards if lake.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
                   shards[0]) if sampled else None
     sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
-    with lake.staged_relations(day=staged.day_files, sample=sample_files) as con:
+    # one view per shard: the per-auction statements (contract, counts, outlier scan) run shard by shard
+    by_shard = {f"staged_shard_{k}": str(staged.shard(k) / "*.parquet") for k in shards} if sampled else None
+    with lake.staged_relations(day=staged.day_files, sample=sample_files, shards=by_shard) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
-                                   sample_shard=(sample, len(shards)) if sampled else None))
+                                   sample_shard=(sample, len(shards)) if sampled else None,
+                                   shard_relations=by_shard))
         if worst_failure(results) != "error":
             summary = day_bid_quantiles(con, "staged_sample" if sampled else "staged_day", experiment)
             summary.insert(0, "experiment_id", experiment.id)
