@@ -10,14 +10,15 @@ from __future__ import annotations
 import datetime as dt
 import json
 import logging
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from counterbid.estimators.checks import AuctionCounts, CheckResult, bid_quantile_summary, check_config, equilibrium_checks
+from counterbid.estimators.checks import (AuctionCounts, CheckResult, bid_quantile_summary, check_config, equilibrium_checks,
+                                          worst_failure)
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
@@ -42,6 +43,7 @@ def run_checks(
     sample_relation: str | None = None,
     sample_shard: tuple[int, int] | None = None,
     shard_relations: Mapping[str, str] | None = None,
+    on_bids: Callable[[pd.DataFrame], None] | None = None,
 ) -> list[CheckResult]:
     """Every data check of one experiment's day: the contract suite, then the statistical checks.
 
@@ -79,6 +81,11 @@ def run_checks(
         counts, the scan for bids above the outlier fences) then run one shard at a time and
         their outcomes are added up: the same outcomes, with memory set by a shard rather than
         the day (an auction lies in one shard). Default: they run on ``relation`` at once.
+    on_bids : callable, optional
+        Called with the frame of bids the distribution checks read (the sample, or the day) once
+        they ran and no ``error`` check failed: what the pipeline summarises for later days' drift
+        check (:func:`~counterbid.estimators.checks.bid_quantile_summary`) without reading the
+        bids a second time.
 
     Returns
     -------
@@ -142,6 +149,8 @@ def run_checks(
                                       outliers=outliers)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
+    if on_bids is not None and worst_failure(results) != "error":
+        on_bids(bids)
     return results
 
 
