@@ -204,13 +204,37 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
     return bid_quantile_summary(bids, experiment, source=relation)
 
 
+#: Rows per batch when the checks' bids are fetched from DuckDB (strings are dictionary-encoded batch by batch).
+FETCH_BATCH_ROWS = 1 << 20
+
+
 def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
-    """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects)."""
-    table = con.sql(statement, params=dict(params or {})).to_arrow_table()
-    for i, field in enumerate(table.schema):
-        if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
-            table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
-    return table.to_pandas()
+    """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects).
+
+    Fetched in batches of :data:`FETCH_BATCH_ROWS`, each string column dictionary-encoded as it
+    arrives (the dictionaries unified at the end), so that the plain text of the ids is never held
+    for the whole frame at once.
+    """
+    reader = con.sql(statement, params=dict(params or {})).to_arrow_reader(FETCH_BATCH_ROWS)
+    schema, batches = reader.schema, []
+    for batch in reader:
+        columns = [pc.dictionary_encode(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
+                   for c in batch.columns]
+        batches.append(pa.RecordBatch.from_arrays(columns, names=batch.schema.names))
+    del reader  # DuckDB's result and its buffers go before the frame is built
+    if not batches:
+        table = schema.empty_table()
+        for i, field in enumerate(table.schema):
+            if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
+                table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
+    else:
+        table = pa.Table.from_batches(batches).unify_dictionaries()
+    del batches
+    # each Arrow column is released as soon as pandas holds it (one copy of the frame at a time)
+    frame = table.to_pandas(self_destruct=True, split_blocks=True)
+    del table
+    pa.default_memory_pool().release_unused()  # hand the Arrow buffers back before the checks allocate theirs
+    return frame
 
 
 def write_check_results(
