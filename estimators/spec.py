@@ -18,6 +18,7 @@ A spec file (YAML) holds one or more experiments::
         checks: {}                 # optional: thresholds for the data checks
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
+        scale_covariates: [demand_index]  # optional: numeric auction-level columns values scale with
 
 ``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
 bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` is one number for
@@ -39,6 +40,11 @@ against control from the mixture's bids (``docs/method.md``, "Layouts that did n
 differ from the arms' and from each other; weights are validated as the arms' and cannot be
 ``measured`` (a layout that never ran has no clicks to measure).
 
+``scale_covariates`` names numeric bid-log columns, constant within an auction, with which every
+value of the auction scales (values ``= exp(gamma . x) x`` a draw from one distribution): the
+estimate runs on homogenised bids and is scaled back (``docs/method.md``, "Scale covariates"). A
+floor does not scale with them, so a floor with scale covariates is refused.
+
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
 experiment, an arm, the ``checks`` block and its settings), is refused with a message naming
@@ -57,6 +63,7 @@ from typing import Any
 
 import yaml
 
+from .bid_contract import BID_CONTRACT
 from .check_settings import check_config
 from .days import parse_day
 from .errors import InputError
@@ -72,6 +79,7 @@ __all__ = [
     "load_experiments",
     "parse_day",
     "parse_experiments",
+    "parse_what_ifs",
 ]
 
 #: Payment rules the estimator implements (the one list lives with their weights).
@@ -83,7 +91,8 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days", "max_bid", "what_if"})
+                             "burn_in_days", "exclude_days", "max_bid", "what_if",
+                             "scale_covariates"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 WHAT_IF_KEYS = frozenset({"name", "position_weights", "description"})
 
@@ -176,6 +185,9 @@ class Experiment:
         quality); a logged bid above it is refused as bad input. ``None``: no bound.
     what_if : tuple of WhatIf
         Layouts that did not run, estimated from the same bids (no share: not in the mixture).
+    scale_covariates : tuple of str
+        Numeric bid-log columns, constant within an auction, that scale every value of the
+        auction (``()``: none; see :mod:`.scale_covariates`).
     """
 
     id: str
@@ -190,6 +202,7 @@ class Experiment:
     exclude_days: tuple[_dt.date, ...] = ()
     max_bid: float | None = None
     what_if: tuple[WhatIf, ...] = ()
+    scale_covariates: tuple[str, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
@@ -279,21 +292,13 @@ def _experiment(raw: Any, where: str) -> Experiment:
             raise InputError(f"{aw} ({name}): arms with different floors are not modelled (bids would bunch at "
                              "each arm's floor); set one 'floor' for the whole experiment")
         _refuse_unknown(a, ARM_KEYS, f"{aw} ({name})" if isinstance(name, str) else aw)
-        if not isinstance(name, str) or not _NAME.match(name):
-            raise InputError(
-                f"{aw}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
-                f"not starting with '_' or '-'; got {name!r}"
-            )
+        name, weights = _layout(a, aw)
         if name in {x.name for x in arms}:
             raise InputError(f"{aw}: duplicate arm name {name!r}")
         share = a.get("share")
         if isinstance(share, bool) or not isinstance(share, (int, float)) or not (0 < share <= 1):
             raise InputError(f"{aw} ({name}): 'share' must be a number in (0, 1]; got {share!r}")
-        pw = a.get("position_weights")
-        if pw == "measured":
-            arms.append(Arm(name, float(share), None, measured=True))
-        else:
-            arms.append(Arm(name, float(share), _weights(pw, f"{aw} ({name}) position_weights")))
+        arms.append(Arm(name, float(share), weights, measured=weights is None))
     total = math.fsum(a.share for a in arms)
     if abs(total - 1.0) > SHARE_TOLERANCE:
         raise InputError(f"{where}: arm shares must sum to 1 (within {SHARE_TOLERANCE:g}); they sum to {total:.9g}")
@@ -320,6 +325,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
         raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
     what_if = _what_ifs(raw.get("what_if"), {a.name for a in arms}, where)
+    covariates = _scale_covariates(raw.get("scale_covariates"), floor, where)
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -333,7 +339,28 @@ def _experiment(raw: Any, where: str) -> Experiment:
         exclude_days=excluded,
         max_bid=max_bid,
         what_if=what_if,
+        scale_covariates=covariates,
     )
+
+
+def _scale_covariates(raw: Any, floor: Any, where: str) -> tuple[str, ...]:
+    """The ``scale_covariates`` list: distinct column names outside the contract; refused beside a floor."""
+    if raw is None:
+        return ()
+    if isinstance(raw, (str, bytes)) or not isinstance(raw, Sequence):
+        raise InputError(f"{where}: 'scale_covariates' must be a list of bid-log column names; got {raw!r}")
+    out: list[str] = []
+    for i, name in enumerate(raw):
+        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]{0,62}", name):
+            raise InputError(f"{where}: scale_covariates[{i}] must be a column name (letters, digits, '_'); got {name!r}")
+        if name in BID_CONTRACT or name in out:
+            why = "is a column of the bids data contract" if name in BID_CONTRACT else "is listed twice"
+            raise InputError(f"{where}: scale_covariates[{i}] {name!r} {why}")
+        out.append(name)
+    if out and floor:
+        raise InputError(f"{where}: a floor ({floor!r}) with scale_covariates is not modelled: the floor does not "
+                         "scale with the covariates, so bids are not homogeneous in them; drop one of the two")
+    return tuple(out)
 
 
 def _max_bid(value: Any, floor: Any, where: str) -> float | None:
@@ -363,19 +390,47 @@ def _what_ifs(raw: Any, arm_names: set[str], where: str) -> tuple[WhatIf, ...]:
             raise InputError(f"{ww} ({name}): a what-if layout did not run and has no 'share'; "
                              "list it under 'arms' if it ran")
         _refuse_unknown(item, WHAT_IF_KEYS, f"{ww} ({name})" if isinstance(name, str) else ww)
-        if not isinstance(name, str) or not _NAME.match(name):
-            raise InputError(f"{ww}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
-                             f"not starting with '_' or '-'; got {name!r}")
+        name, weights = _layout(item, ww)
         if name in arm_names:
             raise InputError(f"{ww}: name {name!r} is already an arm's; a what-if layout needs its own name")
         if name in {w.name for w in out}:
             raise InputError(f"{ww}: duplicate what-if name {name!r}")
-        pw = item.get("position_weights")
-        if pw == "measured":
+        if weights is None:
             raise InputError(f"{ww} ({name}): position_weights cannot be 'measured' for a layout that did not run "
                              "(it has no clicks); give the weights as numbers")
-        out.append(WhatIf(name, _weights(pw, f"{ww} ({name}) position_weights")))
+        out.append(WhatIf(name, weights))
     return tuple(out)
+
+
+def _layout(raw: Mapping, where: str) -> tuple[str, tuple[float, ...] | None]:
+    """A layout's validated ``name`` and ``position_weights`` (``None`` for ``measured``): arms' and what-ifs'."""
+    name = raw.get("name")
+    if not isinstance(name, str) or not _NAME.match(name):
+        raise InputError(f"{where}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
+                         f"not starting with '_' or '-'; got {name!r}")
+    pw = raw.get("position_weights")
+    if isinstance(pw, str) and pw == "measured":
+        return name, None
+    return name, _weights(pw, f"{where} ({name}) position_weights")
+
+
+def parse_what_ifs(raw: Any, arm_names: Sequence[str] = (), *, source: str = "layouts") -> tuple[WhatIf, ...]:
+    """Validate a list of ``{name, position_weights}`` layouts as a spec's ``what_if`` list.
+
+    Parameters
+    ----------
+    raw : list of mapping
+        As the ``what_if`` key of an experiment (e.g. a candidates file).
+    arm_names : sequence of str
+        Names the layouts must not take (the experiment's arms).
+    source : str
+        Where the list came from, for error messages.
+
+    Returns
+    -------
+    tuple of WhatIf
+    """
+    return _what_ifs(raw, set(arm_names), source)
 
 
 def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Experiment]:
