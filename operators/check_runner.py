@@ -10,14 +10,15 @@ from __future__ import annotations
 import datetime as dt
 import json
 import logging
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from counterbid.estimators.checks import AuctionCounts, CheckResult, bid_quantile_summary, check_config, equilibrium_checks
+from counterbid.estimators.checks import (AuctionCounts, CheckResult, bid_quantile_summary, check_config, equilibrium_checks,
+                                          worst_failure)
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
 from counterbid.sql import render_sql, validate_identifier
@@ -41,6 +42,8 @@ def run_checks(
     config: Mapping[str, Any] | None = None,
     sample_relation: str | None = None,
     sample_shard: tuple[int, int] | None = None,
+    shard_relations: Mapping[str, str] | None = None,
+    on_bids: Callable[[pd.DataFrame], None] | None = None,
 ) -> list[CheckResult]:
     """Every data check of one experiment's day: the contract suite, then the statistical checks.
 
@@ -72,6 +75,17 @@ def run_checks(
     sample_shard : (int, int), optional
         ``(shard, shards)`` the sample is, recorded with the bids used and the day's bids in
         ``details["sample"]`` of each distribution check.
+    shard_relations : mapping of str to str, optional
+        The day as relations (same connection) of whole auctions, its shards (name -> the files
+        it reads). The per-auction statements (the contract's aggregates and suite, the auction
+        counts, the scan for bids above the outlier fences) then run one shard at a time and
+        their outcomes are added up: the same outcomes, with memory set by a shard rather than
+        the day (an auction lies in one shard). Default: they run on ``relation`` at once.
+    on_bids : callable, optional
+        Called with the frame of bids the distribution checks read (the sample, or the day) once
+        they ran and no ``error`` check failed: what the pipeline summarises for later days' drift
+        check (:func:`~counterbid.estimators.checks.bid_quantile_summary`) without reading the
+        bids a second time.
 
     Returns
     -------
@@ -89,9 +103,12 @@ def run_checks(
         validate_identifier(history_relation, what="history_relation")
     if sample_relation is not None:
         validate_identifier(sample_relation, what="sample_relation")
+    for name in shard_relations or {}:
+        validate_identifier(name, what="shard relation")
     day = parse_day(ds)
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
-    results = run_contract(con, relation, experiment, config=cfg)
+    results = run_contract(con, relation, experiment, config=cfg, shards=shard_relations)
+    pieces = list(shard_relations) if shard_relations else [relation]
     if not any(r.check == "contract_types" and not r.passed for r in results):  # the columns are there
         relation = with_quality(con, relation)  # quality 1 when the log has none: every check ranks by bid x quality
         if history_relation is not None:
@@ -104,8 +121,7 @@ def run_checks(
     counts = sample = None
     if sample_relation is not None:
         try:  # the whole day's auctions per arm and number of bidders, counted in DuckDB
-            counts = AuctionCounts.from_frame(con.sql(render_sql("check_auction_counts", relation=relation)).df(),
-                                              experiment, source=relation)
+            counts = AuctionCounts.from_frame(_auction_counts(con, pieces), experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
     bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=sample_relation or relation))
@@ -126,13 +142,15 @@ def run_checks(
             history = None
     elif history_quantiles is not None and not history_quantiles.empty:
         history = history_quantiles
-    outliers = None if sample_relation is None else (lambda fences: _bids_above_fences(con, relation, fences))
+    outliers = None if sample_relation is None else (lambda fences: _bids_above_fences(con, pieces, fences))
     try:
         results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg,
                                       source=sample_relation or relation, counts=counts, sample=sample,
                                       outliers=outliers)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
+    if on_bids is not None and worst_failure(results) != "error":
+        on_bids(bids)
     return results
 
 
@@ -140,16 +158,36 @@ def run_checks(
 MAX_FLAGGED_BIDS = 100_000
 
 
-def _bids_above_fences(con, relation: str, fences: Mapping[int, float]) -> pd.DataFrame:
-    """The whole day's bids above the sample's outlier fences (``sql/check_bids_above_fence.sql``)."""
+def _auction_counts(con, relations: list[str]) -> pd.DataFrame:
+    """Auctions per arm and number of bidders (``sql/check_auction_counts.sql``), relation by relation, added up.
+
+    Each relation holds whole auctions (a shard), so the counts add; DuckDB groups one shard at a time.
+    """
+    frames = [con.sql(render_sql("check_auction_counts", relation=with_quality(con, r))).df() for r in relations]
+    if len(frames) == 1:
+        return frames[0]
+    total = pd.concat(frames, ignore_index=True).groupby(["arm", "n_bidders"], as_index=False)["n_auctions"].sum()
+    return total.sort_values(["arm", "n_bidders"], ignore_index=True)
+
+
+def _bids_above_fences(con, relations: list[str], fences: Mapping[int, float]) -> pd.DataFrame:
+    """The whole day's bids above the sample's outlier fences (``sql/check_bids_above_fence.sql``), shard by shard.
+
+    Highest first within each number of bidders, at most :data:`MAX_FLAGGED_BIDS` of them.
+    """
     table = pd.DataFrame({"n_bidders": pd.Series(list(fences), dtype="int64"),
                           "fence": pd.Series(list(fences.values()), dtype="float64")})
     con.register("outlier_fences", table)
     try:
-        return con.sql(render_sql("check_bids_above_fence", relation=relation, fences="outlier_fences"),
-                       params={"max_flagged": MAX_FLAGGED_BIDS}).df()
+        found = [con.sql(render_sql("check_bids_above_fence", relation=with_quality(con, r), fences="outlier_fences"),
+                         params={"max_flagged": MAX_FLAGGED_BIDS}).df() for r in relations]
     finally:
         con.unregister("outlier_fences")
+    if len(found) == 1:
+        return found[0]
+    above = pd.concat(found, ignore_index=True)
+    above = above.sort_values(["n_bidders", "effective_bid"], ascending=[True, False], kind="stable", ignore_index=True)
+    return above.head(MAX_FLAGGED_BIDS)
 
 
 def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFrame:
@@ -171,13 +209,37 @@ def _day_bids_statement(experiment: Experiment) -> str:
     return "check_day_bids_every_column" if experiment.scale_covariates else "check_day_bids"
 
 
+#: Rows per batch when the checks' bids are fetched from DuckDB (strings are dictionary-encoded batch by batch).
+FETCH_BATCH_ROWS = 1 << 20
+
+
 def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
-    """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects)."""
-    table = con.sql(statement, params=dict(params or {})).to_arrow_table()
-    for i, field in enumerate(table.schema):
-        if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
-            table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
-    return table.to_pandas()
+    """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects).
+
+    Fetched in batches of :data:`FETCH_BATCH_ROWS`, each string column dictionary-encoded as it
+    arrives (the dictionaries unified at the end), so that the plain text of the ids is never held
+    for the whole frame at once.
+    """
+    reader = con.sql(statement, params=dict(params or {})).to_arrow_reader(FETCH_BATCH_ROWS)
+    schema, batches = reader.schema, []
+    for batch in reader:
+        columns = [pc.dictionary_encode(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
+                   for c in batch.columns]
+        batches.append(pa.RecordBatch.from_arrays(columns, names=batch.schema.names))
+    del reader  # DuckDB's result and its buffers go before the frame is built
+    if not batches:
+        table = schema.empty_table()
+        for i, field in enumerate(table.schema):
+            if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
+                table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
+    else:
+        table = pa.Table.from_batches(batches).unify_dictionaries()
+    del batches
+    # each Arrow column is released as soon as pandas holds it (one copy of the frame at a time)
+    frame = table.to_pandas(self_destruct=True, split_blocks=True)
+    del table
+    pa.default_memory_pool().release_unused()  # hand the Arrow buffers back before the checks allocate theirs
+    return frame
 
 
 def write_check_results(

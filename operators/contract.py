@@ -199,7 +199,12 @@ def _plain(x: Any) -> Any:
     return x
 
 
-def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[str, Any] | None = None) -> list[CheckResult]:
+#: Failures (one per failing expectation and shard) a contract check lists in its details.
+MAX_LISTED_FAILURES = 10
+
+
+def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
+                 shards: Mapping[str, str] | None = None) -> list[CheckResult]:
     """Validate the day's bids in a DuckDB relation against the data contract.
 
     Parameters
@@ -211,13 +216,20 @@ def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[
     experiment : Experiment
     config : mapping, optional
         Overrides of the ``contract`` thresholds.
+    shards : mapping of str to str, optional
+        The day as relations of whole auctions (view name -> the files it reads, named in the
+        failures): the per-auction aggregates and their suite run on one shard at a time and the
+        outcomes are added up, so neither DuckDB nor the frame GX validates ever holds the day.
+        The outcome equals the whole day's (an auction never spans two shards), apart from
+        which offending auctions are listed. Default: ``relation`` as one piece.
 
     Returns
     -------
     list of CheckResult
         One per name in :data:`CONTRACT_CHECKS` (the per-auction checks are skipped when the
         schema check fails). ``observed`` is the number of failing auctions (or columns),
-        ``threshold`` 0; ``details`` lists up to five offending auction ids per expectation.
+        ``threshold`` 0; ``details`` lists up to five offending auction ids per expectation
+        (with several shards, per expectation and shard, each with the ``shard`` files it lies in).
     """
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")["contract"]
     severity = cfg["severity"]
@@ -230,11 +242,35 @@ def run_contract(con, relation: str, experiment: Experiment, *, config: Mapping[
         log.warning("contract: schema of %s fails; per-auction checks skipped", relation)
         return results
     params = {"floor": float(experiment.floor or 0.0), "tie_tolerance": float(cfg["tie_tolerance"])}
-    relation = with_quality(con, relation)
-    auctions = con.execute(render_sql("check_auction_aggregates", relation=relation), params).df()
-    if auctions.empty:
+    pieces = dict(shards) if shards else {relation: None}
+    parts = []
+    for i, (piece, files) in enumerate(pieces.items()):
+        auctions = con.execute(render_sql("check_auction_aggregates", relation=with_quality(con, piece)), params).df()
+        if not auctions.empty:
+            parts.append((files, _fold(_validate(context, suites["auctions"], auctions, f"auctions_{i}"), severity,
+                                       element="auctions")))
+        del auctions  # one shard's aggregates at a time
+    if not parts:
         results.append(CheckResult("contract_rows", severity, False, 0.0, 1.0, {"note": f"{relation} holds no bids"}))
         return results
-    results += _fold(_validate(context, suites["auctions"], auctions, "auctions"), severity, element="auctions")
+    results += parts[0][1] if len(pieces) == 1 else _added(parts)
     order = {name: i for i, name in enumerate(CONTRACT_CHECKS)}
     return sorted(results, key=lambda r: order.get(r.check, len(order)))
+
+
+def _added(parts: list[tuple[str | None, list[CheckResult]]]) -> list[CheckResult]:
+    """Each check's outcomes on several shards as one: passed on all, failing and checked auctions
+    added, the failures listed with the ``shard`` files they were found in."""
+    grouped: dict[str, list[tuple[str | None, CheckResult]]] = {}
+    for files, results in parts:
+        for r in results:
+            grouped.setdefault(r.check, []).append((files, r))
+    out = []
+    for check, found in grouped.items():
+        first = found[0][1]
+        failures = [dict(f, shard=files) for files, r in found for f in r.details["failures"]]
+        out.append(CheckResult(check, first.severity, all(r.passed for _, r in found),
+                               float(sum(r.observed for _, r in found)), first.threshold,
+                               {"unit": first.details["unit"], "checked": sum(r.details["checked"] for _, r in found),
+                                "failures": failures[:MAX_LISTED_FAILURES]}))
+    return out

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import shutil
+import tempfile
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -19,9 +21,14 @@ import pyarrow as pa
 from airflow.sdk import BaseHook
 
 from counterbid.estimators.errors import InputError
-from counterbid.sql import statement
+from counterbid.sql import statement, validate_identifier
 
-__all__ = ["LakeHook", "lake_glob"]
+__all__ = ["LakeHook", "STAGED_MEMORY_LIMIT", "lake_glob"]
+
+#: DuckDB memory cap of the validate step's connection (:meth:`LakeHook.staged_relations`): its
+#: per-auction aggregates and scans run one shard at a time and spill beyond this, so the step's
+#: peak is this plus one shard's frames on top of the interpreter, whatever the day's size.
+STAGED_MEMORY_LIMIT = "512MB"
 
 
 def lake_glob(root: str | Path) -> str:
@@ -138,11 +145,11 @@ class LakeHook(BaseHook):
             outside, example = con.execute(self.sql("staged_integer_range", column=column), params).fetchone()
             return int(outside), example
 
-    def staged_quality_faults(self, path: str | Path) -> tuple[int, int | None, str | None, str | None]:
-        """Rows of a staged file whose ``quality`` is missing or not > 0, and the first one (row, auction, value)."""
+    def staged_quality_faults(self, path: str | Path) -> tuple[int, str | None, int | None, str | None, str | None]:
+        """Rows of staged files whose ``quality`` is missing or not > 0, and the first one (file, row, auction, value)."""
         with self.connect() as con:
-            n, row, auction, quality = con.execute(self.sql("staged_quality_faults"), {"path": str(path)}).fetchone()
-            return int(n), None if row is None else int(row), auction, quality
+            n, file, row, auction, quality = con.execute(self.sql("staged_quality_faults"), {"path": str(path)}).fetchone()
+            return int(n), file, None if row is None else int(row), auction, quality
 
     def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
         """Auctions and bids per arm of a staged bids file."""
@@ -150,16 +157,25 @@ class LakeHook(BaseHook):
             return con.execute(self.sql("staged_arm_counts"), {"path": str(path)}).df()
 
     @contextlib.contextmanager
-    def staged_relations(self, *, day: str | Path, sample: str | Path | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
-        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards).
+    def staged_relations(self, *, day: str | Path, sample: str | Path | None = None,
+                         shards: Mapping[str, str | Path] | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
+        """In-memory connection with the view ``staged_day`` (``day``: a file or a glob of the shards).
 
-        With ``sample`` (one shard's file or glob), also the temp table ``staged_sample``.
+        With ``sample`` (one shard's file or glob), also the view ``staged_sample``; with ``shards``
+        (view name -> one shard's file or glob), one view per shard. Views, not tables: nothing of
+        the day is copied into memory, each statement streams the Parquet files it reads, and the
+        connection's DuckDB memory is capped at :data:`STAGED_MEMORY_LIMIT` (spilling to a
+        temporary folder beyond it), so that the validate step's memory is set by one shard.
         """
-        with self.connect() as con:
-            con.execute(self.sql("staged_create_day"), {"path": str(day)})
-            if sample is not None:
-                con.execute(self.sql("staged_create_sample"), {"path": str(sample)})
-            yield con
+        spill = tempfile.mkdtemp(prefix="counterbid-duckdb-spill-")
+        try:
+            with self.connect(config={"memory_limit": STAGED_MEMORY_LIMIT, "temp_directory": spill}) as con:
+                views = {"staged_day": day, **({} if sample is None else {"staged_sample": sample}), **dict(shards or {})}
+                for name, files in views.items():  # the relational API: a view's path cannot be a bound parameter
+                    con.read_parquet(str(files)).to_view(validate_identifier(name, what="view"))
+                yield con
+        finally:
+            shutil.rmtree(spill, ignore_errors=True)
 
     def staged_shard_has_auctions(self, path: str | Path) -> bool:
         """Whether a staged shard (a file or a glob) holds an auction with at least two bids."""

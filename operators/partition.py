@@ -33,7 +33,7 @@ from counterbid.estimators import (
     pieces_to_frames,
     worst_failure,
 )
-from counterbid.estimators.checks import check_config
+from counterbid.estimators.checks import bid_quantile_summary, check_config
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.sequential import planned_days
 from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
@@ -41,7 +41,7 @@ from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedD
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import write_shards
 
-from .check_runner import day_bid_quantiles, run_checks, write_check_results
+from .check_runner import run_checks, write_check_results
 from .hooks import ResultsHook
 from .lake_hook import LakeHook
 from .schema_gate import schema_gate
@@ -190,13 +190,15 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
-    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the temp
-    table ``staged_day`` (every shard), with measured position weights filled from staging. When
-    the day has several shards, the distribution checks and the day's bid-quantile summary read
-    shard 0 alone, or the first shard after it holding an auction with two bids or more (temp
-    table ``staged_sample``: a hash sample of whole auctions, at least about
-    half of ``max_bids_per_shard`` bids), so the frame in memory is one shard; the counting checks
-    stay exact over the whole day (DuckDB aggregates). The
+    the full data checks (:func:`counterbid.operators.check_runner.run_checks`) follow on the view
+    ``staged_day`` (every shard's files, streamed: nothing of the day is copied into memory), with
+    measured position weights filled from staging. When the day has several shards, the contract
+    suite, the auction counts and the scan for outlying bids run shard by shard (views
+    ``staged_shard_K``; an auction lies in one shard, so the outcomes add up to the whole day's),
+    and the distribution checks and the day's bid-quantile summary read shard 0 alone, or the
+    first shard after it holding an auction with two bids or more (view ``staged_sample``: a hash
+    sample of whole auctions, at least about half of ``max_bids_per_shard`` bids), so memory is
+    set by one shard; the counting checks stay exact over the whole day. The
     drift check compares the day with the bid-quantile summaries, stored in the results database,
     of the trailing days that are in the analysis window (a warm-up day, a drifted day, a burn-in
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
@@ -227,15 +229,23 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
     sample = next((k for k in shards if lake.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
                   shards[0]) if sampled else None
     sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
-    with lake.staged_relations(day=staged.day_files, sample=sample_files) as con:
+    # one view per shard: the per-auction statements (contract, counts, outlier scan) run shard by shard
+    by_shard = {f"staged_shard_{k}": str(staged.shard(k) / "*.parquet") for k in shards} if sampled else None
+    summaries: list[pd.DataFrame] = []  # the day's bid-quantile summary, of the frame the checks read
+
+    def summarise(bids: pd.DataFrame) -> None:
+        summaries.append(bid_quantile_summary(bids, experiment, source=str(staged.shard(sample) if sampled else staged.day)))
+
+    with lake.staged_relations(day=staged.day_files, sample=sample_files, shards=by_shard) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
-                                   sample_shard=(sample, len(shards)) if sampled else None))
-        if worst_failure(results) != "error":
-            summary = day_bid_quantiles(con, "staged_sample" if sampled else "staged_day", experiment)
-            summary.insert(0, "experiment_id", experiment.id)
-            summary.insert(1, "ds", ds)
-            write_parquet(pa.Table.from_pandas(summary, preserve_index=False), staged.bid_quantiles)
+                                   sample_shard=(sample, len(shards)) if sampled else None,
+                                   shard_relations=by_shard, on_bids=summarise))
+    if summaries and worst_failure(results) != "error":
+        summary = summaries[0]
+        summary.insert(0, "experiment_id", experiment.id)
+        summary.insert(1, "ds", ds)
+        write_parquet(pa.Table.from_pandas(summary, preserve_index=False), staged.bid_quantiles)
     return results
 
 

@@ -23,6 +23,20 @@ __all__ = ["CONTRACT_TYPES", "schema_gate"]
 CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
 
 
+def _arm_counts(lake: LakeHook, staged: StagedPartition) -> pd.DataFrame:
+    """Auctions and bids per arm of the staged day, counted shard by shard and added up.
+
+    An auction lies in one shard (the load step splits by the hash of its id), so distinct auctions
+    add across shards, and DuckDB never holds more than one shard's distinct auction ids.
+    """
+    shards = staged.shards()
+    if len(shards) <= 1:
+        return lake.staged_arm_counts(staged.day)
+    parts = [lake.staged_arm_counts(staged.shard(k)) for k in shards]
+    total = pd.concat(parts, ignore_index=True).groupby("arm", dropna=False, as_index=False)[["n_auctions", "n_bids"]].sum()
+    return total.sort_values("arm", na_position="first", ignore_index=True)
+
+
 def schema_gate(lake: LakeHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
     """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms,
     and, when the log has a ``quality`` column, a factor > 0 on every row (``schema_quality_positive``).
@@ -51,7 +65,7 @@ def schema_gate(lake: LakeHook, *, experiment: Experiment, staged: StagedPartiti
                 threshold=0.0, details={"type": found, "allowed": "int64", "example": example}))
     if not all(r.passed for r in results):
         return results
-    counts = lake.staged_arm_counts(path)
+    counts = _arm_counts(lake, staged)
     total = int(counts["n_bids"].sum())
     results.append(CheckResult(check="schema_rows", severity="error", passed=total >= 1, observed=float(total),
                                threshold=1.0, details={"experiment_id": experiment.id}))
@@ -61,12 +75,12 @@ def schema_gate(lake: LakeHook, *, experiment: Experiment, staged: StagedPartiti
         results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
                                    observed=float(nulls), threshold=0.0, details={"rows": total}))
     if "quality" in columns:  # auctions rank by bid x quality: every row needs a factor > 0
-        n_faults, first_row, first_auction, first_quality = lake.staged_quality_faults(path)
+        n_faults, first_file, first_row, first_auction, first_quality = lake.staged_quality_faults(staged.day_files)
         results.append(CheckResult(
             check="schema_quality_positive", severity="error", passed=n_faults == 0, observed=float(n_faults),
             threshold=0.0, details={"rows": total} | ({} if n_faults == 0 else {
-                "first_row": first_row, "auction_id": first_auction, "quality": first_quality,
-                "error": f"{path}: column 'quality' row {first_row} (auction {first_auction}) is {first_quality}; "
+                "file": first_file, "first_row": first_row, "auction_id": first_auction, "quality": first_quality,
+                "error": f"{first_file}: column 'quality' row {first_row} (auction {first_auction}) is {first_quality}; "
                          "quality factors must be > 0 wherever the column exists"})))
     unknown = counts[~counts["arm"].isin(experiment.arm_names)]
     n_unknown = int(unknown["n_bids"].sum())

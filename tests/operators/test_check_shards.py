@@ -11,6 +11,7 @@ from __future__ import annotations
 import datetime as dt
 
 import pandas as pd
+import pyarrow as pa
 import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 import pytest
@@ -20,6 +21,7 @@ from counterbid.estimators import parse_experiments
 from counterbid.estimators.checks import bid_quantile_summary, equilibrium_checks, sample_ratio_check
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results, run_checks
+from counterbid.operators.contract import run_contract
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
@@ -135,3 +137,54 @@ def test_a_sample_ratio_fault_in_every_shard_fails_at_the_whole_day_p_value(hook
     want = sample_ratio_check(day, experiment)
     assert not want.passed and want.observed < 1e-3
     assert results["sample_ratio"] == want
+
+
+def _rewrite(path, column, values):
+    """Rewrite one staged Parquet file with ``column`` set to ``values`` (added when missing; rows and types kept)."""
+    table = pq.read_table(path)
+    values = pa.array(values, type=pa.float64())
+    where = table.schema.get_field_index(column)
+    table = table.append_column(column, values) if where < 0 else table.set_column(where, column, values)
+    pq.write_table(table, path)
+
+
+def test_a_bad_bid_in_the_last_shard_is_named_with_its_auction_and_shard(hook, lake, experiment, tmp_path):
+    """The contract runs shard by shard: the outcome is the whole day's, and the offender is named."""
+    staged, _ = _staged(hook, lake, experiment, tmp_path)
+    last = staged.shards()[-1]
+    path = staged.shard(last) / "part-0.parquet"
+    victim = pq.read_table(path).column("auction_id")[7].as_py()  # some auction of the last shard
+    table = pq.read_table(path)
+    _rewrite(path, "bid", [-1.0 if a == victim else b for a, b in zip(table.column("auction_id").to_pylist(),
+                                                                       table.column("bid").to_pylist())])
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
+    bad = results["contract_bids_valid"]
+    assert not bad.passed and bad.observed == 1.0
+    (failure,) = bad.details["failures"]
+    assert [x["auction_id"] for x in failure["examples"]] == [victim]
+    assert failure["shard"] == str(staged.shard(last) / "*.parquet")
+    # the same outcome as the suite on the whole day as one relation (the way the day was checked before)
+    with LakeHook().staged_relations(day=staged.day_files) as con:
+        whole = _by_name(run_contract(con, "staged_day", experiment))
+    assert set(whole) == {n for n in results if n.startswith("contract_")}
+    for name, r in whole.items():
+        assert (results[name].passed, results[name].observed, results[name].details["checked"]) == \
+            (r.passed, r.observed, r.details["checked"]), name
+    assert whole["contract_bids_valid"].details["checked"] == len(_frame(staged.day)["auction_id"].unique())
+    assert not any(r.passed is False and r.severity == "error" for n, r in results.items() if n != "contract_bids_valid")
+
+
+def test_a_bad_quality_in_the_last_shard_is_named_with_its_file_and_row(hook, lake, experiment, tmp_path):
+    staged, _ = _staged(hook, lake, experiment, tmp_path)
+    last = staged.shards()[-1]
+    for k in staged.shards():  # every shard gets a quality column; row 11 of the last shard a factor of 0
+        rows = pq.read_metadata(staged.shard(k) / "part-0.parquet").num_rows
+        _rewrite(staged.shard(k) / "part-0.parquet", "quality", [0.0 if (k == last and i == 11) else 1.0 for i in range(rows)])
+    path = staged.shard(last) / "part-0.parquet"
+    auction = pq.read_table(path).column("auction_id")[11].as_py()
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
+    assert "schema_quality_positive" in results, [r.describe() for r in results.values() if not r.passed]
+    fault = results["schema_quality_positive"]
+    assert not fault.passed and fault.observed == 1.0
+    assert (fault.details["file"], fault.details["first_row"], fault.details["auction_id"]) == (str(path), 11, str(auction))
+    assert fault.details["error"].startswith(f"{path}: column 'quality' row 11 (auction {auction}) is 0.0")

@@ -1,0 +1,165 @@
+"""One day through the daily DAG, step by step: wall time, CPU time and peak RSS per task (not a test).
+
+Writes a lake day of ``--millions`` million bids with string ids (auction ``lot-<n>``, bidder
+``seat-<slot>-<n // 3>``: most bidders bid in one to three auctions) of a three-arm spec, then
+
+* ``--mode dag``: runs ``counterbid_daily`` once with ``dag.test()`` in this process (as
+  ``counterbid backfill`` does), sampling this process's RSS and CPU time every 0.1 s, and cuts the
+  samples at each task's start and end;
+* ``--mode steps``: runs each step (load, validate, estimate, write) in a child process of its
+  own, as an Airflow worker does, and reports each child's peak RSS (``ru_maxrss``).
+
+Usage: python tests/benchmarks/bench_dag_steps.py --data DIR [--millions 1] [--mode dag|steps]
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import os
+import resource
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+DAY = dt.date(2026, 3, 2)
+SPEC = """
+experiments:
+  - id: shelfmix
+    control_arm: control
+    start: 2026-03-02
+    arms:
+      - {name: control, share: 0.8, position_weights: [0.31, 0.17, 0.06, 0.02]}
+      - {name: tall,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+      - {name: split,   share: 0.1, position_weights: [0.29, 0.19, 0.10, 0.05, 0.02]}
+"""
+AUCTIONS_PER_FILE = 200_000  # 5 bidders each: 1M bids per file
+
+
+def write_lake(root: Path, millions: int, spec: Path) -> None:
+    """``millions`` files of 1M simulated bids each in ``root/ds=DAY``, ids as text (kept between runs)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+    import scipy.stats as st
+
+    from counterbid.estimators import load_experiment, simulate_experiment
+
+    folder = root / f"ds={DAY}"
+    folder.mkdir(parents=True, exist_ok=True)
+    exp = load_experiment(spec)
+    for k in range(millions):
+        target = folder / f"part-{k:03d}.parquet"
+        if target.exists():
+            continue
+        frame = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=5, n_auctions=AUCTIONS_PER_FILE,
+                                    rng=1000 + k)
+        t = pa.Table.from_pandas(frame[["experiment_id", "auction_id", "bidder_id", "arm", "bid", "position"]],
+                                 preserve_index=False)
+        auction = pc.add(pc.cast(t["auction_id"], pa.int64()), k * AUCTIONS_PER_FILE)
+        bidder = pc.binary_join_element_wise("seat-", pc.cast(t["bidder_id"], pa.string()), "-",
+                                             pc.cast(pc.divide(auction, 3), pa.string()), "")
+        t = t.set_column(t.schema.get_field_index("auction_id"), "auction_id",
+                         pc.binary_join_element_wise("lot-", pc.cast(auction, pa.string()), ""))
+        t = t.set_column(t.schema.get_field_index("bidder_id"), "bidder_id", bidder)
+        pq.write_table(t, target.with_suffix(".partial"))
+        target.with_suffix(".partial").rename(target)
+
+
+def _rss() -> int:
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+
+
+def through_dag(lake: Path, spec: Path, work: Path) -> None:
+    from counterbid.cli import backfill as bf
+
+    samples: list[tuple[float, int, float]] = []
+
+    def sample() -> None:
+        while True:
+            samples.append((time.time(), _rss(), time.process_time()))
+            time.sleep(0.1)
+
+    threading.Thread(target=sample, daemon=True).start()
+    conf = {"lake_root": str(lake), "spec_path": str(spec), "results_database": str(work / "results.duckdb"),
+            "staging_root": str(work / "staging"), "clicks_root": ""}
+    os.environ.update(bf.airflow_environment(work / "airflow", dags_folder=bf.dags_folder()))
+    os.environ.update({"COUNTERBID_LAKE": conf["lake_root"], "COUNTERBID_SPEC": conf["spec_path"],
+                       "COUNTERBID_RESULTS": conf["results_database"], "COUNTERBID_STAGING": conf["staging_root"],
+                       "COUNTERBID_CLICKS": "", "COUNTERBID_RETRIES": "0"})
+    bf.ensure_metadata()
+    from airflow.configuration import conf as airflow_conf
+    from airflow.dag_processing.dagbag import DagBag
+
+    dag = DagBag(dag_folder=airflow_conf.get("core", "dags_folder")).get_dag(bf.DAG_ID)
+    t0, c0 = time.time(), time.process_time()
+    run = dag.test(logical_date=dt.datetime.combine(DAY, dt.time(), tzinfo=dt.timezone.utc), run_conf=conf)
+    t1, c1 = time.time(), time.process_time()
+    print(f"dag.test {t1 - t0:.1f}s wall, {c1 - c0:.1f}s CPU, state {run.state}, "
+          f"peak RSS {max(r for _, r, _ in samples) / 2**20:.0f} MiB")
+    for ti in sorted(run.get_task_instances(), key=lambda t: t.start_date):
+        a, b = ti.start_date.timestamp(), ti.end_date.timestamp()
+        inside = [(r, c) for t, r, c in samples if a - 0.05 <= t <= b + 0.05]
+        cpu = inside[-1][1] - inside[0][1] if inside else float("nan")
+        print(f"  {ti.task_id:<28} {ti.duration:7.2f}s wall {cpu:6.2f}s CPU  "
+              f"peak RSS {max((r for r, _ in inside), default=0) / 2**20:6.0f} MiB")
+
+
+def one_step(step: str, lake: Path, spec: Path, work: Path) -> None:
+    from counterbid.estimators import load_experiment
+    from counterbid.operators import partition
+    from counterbid.operators.hooks import ResultsHook
+    from counterbid.operators.lake_hook import LakeHook
+    from counterbid.operators.staging import StagedPartition
+
+    exp, hook, staging = load_experiment(spec), ResultsHook(database=str(work / "results.duckdb")), work / "staging"
+    t0, c0 = time.perf_counter(), time.process_time()
+    if step == "load":
+        partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAY, staging_root=staging)
+    elif step == "validate":
+        staged = StagedPartition.at(staging, exp.id, DAY)
+        results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAY)
+        partition.record_checks(staged, results)
+        partition.store_checks(hook, results, experiment_id=exp.id, ds=DAY, run_id="bench")
+    elif step == "estimate":
+        partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=staging, run_id="bench",
+                                     confidence_level=0.95, cluster="auto")
+    else:
+        partition.write_partition(hook, experiment_id=exp.id, ds=DAY, staging_root=staging)
+    print(f"  {step:<9} {time.perf_counter() - t0:7.1f}s wall {time.process_time() - c0:7.1f}s CPU  "
+          f"peak RSS {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:6.0f} MiB", flush=True)
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--data", required=True, type=Path)
+    p.add_argument("--millions", type=int, default=1)
+    p.add_argument("--mode", choices=("dag", "steps"), default="dag")
+    p.add_argument("--step", help=argparse.SUPPRESS)  # a child of --mode steps
+    args = p.parse_args(argv)
+    spec, lake = args.data / "spec.yaml", args.data / f"lake_{args.millions}M"
+    work = args.data / f"run_{args.millions}M_{args.mode}"
+    if args.step:
+        one_step(args.step, lake, spec, work)
+        return 0
+    args.data.mkdir(parents=True, exist_ok=True)
+    spec.write_text(SPEC)
+    write_lake(lake, args.millions, spec)
+    import shutil
+
+    shutil.rmtree(work, ignore_errors=True)
+    work.mkdir()
+    if args.mode == "dag":
+        through_dag(lake, spec, work)
+        return 0
+    for step in ("load", "validate", "estimate", "write"):
+        subprocess.run([sys.executable, __file__, "--data", str(args.data), "--millions", str(args.millions),
+                        "--mode", "steps", "--step", step], check=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
