@@ -83,6 +83,9 @@ class ArmEstimates:
         Shards the input was estimated in (1 unless an engine split it).
     engine : str
         ``'local'`` or ``'spark'``.
+    segments : mapping of str to int
+        Auctions per segment label, when the strata are segmented (empty otherwise). The table
+        then holds, after the pooled rows (``segment`` null), the same rows for each segment.
     """
 
     table: pd.DataFrame
@@ -100,14 +103,20 @@ class ArmEstimates:
     quality: bool
     shards: int = 1
     engine: str = "local"
+    segments: Mapping[str, int] = dataclasses.field(default_factory=dict)
 
     def to_frame(self) -> pd.DataFrame:
         """A copy of :attr:`table` (the caller may add columns)."""
         return self.table.copy()
 
     def rows(self, metric: str) -> pd.DataFrame:
-        """The rows of one metric, indexed by arm."""
-        return self.table[self.table["metric"] == metric].set_index("arm")
+        """The pooled rows of one metric (every segment together), indexed by arm."""
+        return self.table[(self.table["metric"] == metric) & self.table["segment"].isna()].set_index("arm")
+
+    def segment_rows(self, metric: str) -> pd.DataFrame:
+        """The per-segment rows of one metric, indexed by (segment, arm); empty when not segmented."""
+        t = self.table
+        return t[(t["metric"] == metric) & t["segment"].notna()].set_index(["segment", "arm"])
 
     def on(self, *, shards: int | None = None, engine: str | None = None) -> ArmEstimates:
         """The same estimates, recording the shards and engine that produced them."""
@@ -174,12 +183,33 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     confidence_level = check_confidence_level(confidence_level)
     check_cluster(cluster)
     pieces = _checked_pieces(pieces, experiment, source)
+    cluster, _ = _cluster_unit(pieces, cluster, source)
+    welfare_identified = _warn_about(pieces, source)
+    table = _table(pieces, experiment, cluster, confidence_level, welfare_identified, source, segment=None)
+    segments = _segments_of(pieces, source)
+    if segments:
+        parts = [table] + [
+            _table(group, experiment, cluster, confidence_level,
+                   not any("not_identified" in p.flags for p in group), source, segment=name)
+            for name, group in segments.items()]
+        table = pd.concat(parts, ignore_index=True)
+    return ArmEstimates(
+        table=table, experiment_id=experiment.id, confidence_level=confidence_level, cluster=cluster,
+        n_auctions=int(sum(p.n_auctions for p in pieces)), n_bids=int(sum(p.n_bids for p in pieces)),
+        n_excluded_auctions=int(n_excluded_auctions), strata=_strata_counts(pieces), method_version=METHOD_VERSION,
+        welfare_identified=welfare_identified, payment_rule=experiment.payment_rule,
+        floor=float(experiment.floor or 0.0), quality=any(p.has_quality for p in pieces),
+        segments={name: int(sum(p.n_auctions for p in group)) for name, group in segments.items()})
+
+
+def _table(pieces: Sequence[StratumPiece], experiment: Experiment, cluster: str, confidence_level: float,
+           welfare_identified: bool, source: str, *, segment: str | None) -> pd.DataFrame:
+    """The rows of one combination of pieces (all of them: the pooled rows; one segment's: its rows)."""
     labels = piece_labels(experiment)
     k_arms = len(experiment.arms)
     revenue_cols = list(range(k_arms)) + [len(labels) - 1]
     w, exponent = _weights(pieces)
     estimate = _estimates(pieces, w)
-    cluster, n_distinct = _cluster_unit(pieces, cluster, source)
     totals = scale = None
     if cluster == "bidder":
         block, totals, scale = _bidder_block(pieces, w, len(revenue_cols))
@@ -189,20 +219,29 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     variance[np.ix_(revenue_cols, revenue_cols)] = block
     if any("degenerate" in p.flags for p in pieces):
         estimate[:] = np.nan
-    welfare_identified = _warn_about(pieces, source)
     unit = np.array([math.ldexp(1.0, p.bid_exponent - exponent) for p in pieces])
     realized = combine_realized([(p.realized_sum, p.realized_squares, p.arm_auctions, p.n_bidders) for p in pieces],
                                 unit)
     lifts = {k: _lift(estimate, variance, k, experiment.arm_names.index(experiment.control_arm), revenue_cols,
                       totals, scale) for k in range(k_arms)}
-    table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified)
-    table = _in_bid_units(table, exponent, pieces, source)
-    return ArmEstimates(
-        table=table, experiment_id=experiment.id, confidence_level=confidence_level, cluster=cluster,
-        n_auctions=int(sum(p.n_auctions for p in pieces)), n_bids=int(sum(p.n_bids for p in pieces)),
-        n_excluded_auctions=int(n_excluded_auctions), strata=_strata_counts(pieces), method_version=METHOD_VERSION,
-        welfare_identified=welfare_identified, payment_rule=experiment.payment_rule,
-        floor=float(experiment.floor or 0.0), quality=any(p.has_quality for p in pieces))
+    table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified,
+                  segment)
+    return _in_bid_units(table, exponent, pieces, source)
+
+
+def _segments_of(pieces: Sequence[StratumPiece], source: str) -> dict[str, list[StratumPiece]]:
+    """The pieces of each segment, by segment label ({} when no piece is segmented); mixing is refused."""
+    named = [p for p in pieces if p.key.segment is not None]
+    if not named:
+        return {}
+    if len(named) != len(pieces):
+        plain = next(p for p in pieces if p.key.segment is None)
+        raise InputError(f"{source}: the piece of {plain.key.describe()} has no segment while others have one; "
+                         "estimate every stratum with the same segments to combine them")
+    out: dict[str, list[StratumPiece]] = {}
+    for p in sorted(pieces, key=lambda p: p.key.segment):
+        out.setdefault(p.key.segment, []).append(p)
+    return out
 
 
 def _checked_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, source: str) -> list[StratumPiece]:
@@ -305,7 +344,7 @@ def _warn_about(pieces: Sequence[StratumPiece], source: str) -> bool:
 
 def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.ndarray, variance: np.ndarray,
           lifts: Mapping[int, tuple[float, float]], realized: RealizedAverages, confidence_level: float,
-          welfare_identified: bool) -> pd.DataFrame:
+          welfare_identified: bool, segment: str | None) -> pd.DataFrame:
     """One row per arm and metric (and the mixture's two), with status flags, in the common unit."""
     k_arms = len(experiment.arms)
     total_auctions = int(sum(p.n_auctions for p in pieces))
@@ -321,7 +360,7 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
         status = (list(stratum_flags) if counterfactual else []) + list(flags)
         if np.isfinite(est) and not np.isfinite(se):
             status.append("no_interval")
-        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok"))
+        rows.append((arm, segment, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok"))
 
     def se_of(i: int) -> float:
         return float(np.sqrt(variance[i, i])) if np.isfinite(estimate[i]) else np.nan
@@ -342,6 +381,7 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")
     out["n_bids"] = out["n_bids"].astype("int64")
+    out["segment"] = out["segment"].astype(object)
     return out
 
 

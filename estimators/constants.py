@@ -52,7 +52,7 @@ STATUS_FLAGS = {
                    "or fewer than two clusters)",
     "no_auctions": "realized per-arm average of an arm that ran in no auction: NaN",
 }
-RESULT_COLUMNS = ("arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status")
+RESULT_COLUMNS = ("arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status")
 #: Bids are estimated in their own unit when the largest lies in [2**-UNIT_EXPONENT, 2**UNIT_EXPONENT];
 #: otherwise in a power-of-two unit (exact), so no square or sum of bids overflows or underflows.
 UNIT_EXPONENT = 200

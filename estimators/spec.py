@@ -15,6 +15,7 @@ A spec file (YAML) holds one or more experiments::
         checks: {}                 # optional: thresholds for the data checks
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
+        segments: [category]       # optional: bid-log columns constant within an auction; estimated apart
 
 ``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
 bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` is one number for
@@ -25,6 +26,10 @@ not modelled, and the spec has no per-arm ``floor`` key (refused as an unknown k
 ``burn_in_days`` and ``exclude_days`` shape the analysis window of the experiment-to-date numbers:
 the first ``burn_in_days`` days from ``start`` and every listed day are left out, besides the days
 whose warm-up or drift check failed (the pipeline's default).
+
+``segments`` names columns of the bid log (string, integer or boolean) that are constant within an
+auction: every (day, number of bidders, segment) is estimated as a stratum of its own, so auctions
+whose values come from different distributions are not pooled into one inversion.
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -44,6 +49,7 @@ from typing import Any
 
 import yaml
 
+from .bid_contract import BID_CONTRACT
 from .check_settings import check_config
 from .days import parse_day
 from .errors import InputError
@@ -69,7 +75,7 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days"})
+                             "burn_in_days", "exclude_days", "segments"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 
 
@@ -135,6 +141,9 @@ class Experiment:
         Days from ``start`` left out of the experiment-to-date numbers (0: none).
     exclude_days : tuple of datetime.date
         Days left out of the experiment-to-date numbers, sorted.
+    segments : tuple of str
+        Bid-log columns whose values (constant within an auction) split the auctions into
+        segments estimated apart (``()``: not segmented).
     """
 
     id: str
@@ -147,6 +156,7 @@ class Experiment:
     checks: Mapping[str, Any] = field(default_factory=dict)
     burn_in_days: int = 0
     exclude_days: tuple[_dt.date, ...] = ()
+    segments: tuple[str, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
@@ -262,6 +272,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     if isinstance(excluded_raw, (str, bytes)) or not isinstance(excluded_raw, Sequence):
         raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
+    segments = _segments(raw.get("segments"), where)
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -273,7 +284,28 @@ def _experiment(raw: Any, where: str) -> Experiment:
         checks=dict(checks),
         burn_in_days=int(burn_in),
         exclude_days=excluded,
+        segments=segments,
     )
+
+
+
+
+def _segments(raw: Any, where: str) -> tuple[str, ...]:
+    """The ``segments`` list: distinct column names, none of the contract's own columns."""
+    if raw is None:
+        return ()
+    if isinstance(raw, (str, bytes)) or not isinstance(raw, Sequence):
+        raise InputError(f"{where}: 'segments' must be a list of bid-log column names; got {raw!r}")
+    out: list[str] = []
+    for i, name in enumerate(raw):
+        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]{0,62}", name):
+            raise InputError(f"{where}: segments[{i}] must be a column name (letters, digits, '_'); got {name!r}")
+        if name in BID_CONTRACT:
+            raise InputError(f"{where}: segments[{i}] {name!r} is a column of the bids data contract, not a segment")
+        if name in out:
+            raise InputError(f"{where}: segments[{i}] {name!r} is listed twice")
+        out.append(name)
+    return tuple(out)
 
 
 def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Experiment]:
