@@ -430,7 +430,7 @@ def _segment_column(col: pd.Series, name: str, rows: np.ndarray | None, source: 
         bad = np.flatnonzero(np.isfinite(values) & (values != np.round(values)) | np.isinf(values))
         if bad.size:
             raise InputError(f"{source}: segment column {name!r} row {_row(rows, int(bad[0]))} is "
-                             f"{values[bad[0]]!r}; segment columns hold strings, integers or booleans")
+                             f"{float(values[bad[0]])!r}; segment columns hold strings, integers or booleans")
         kind = "integer"
     if kind not in ("string", "integer", "boolean", "empty", "categorical"):
         raise InputError(f"{source}: segment column {name!r} must hold strings, integers or booleans "

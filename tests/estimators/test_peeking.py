@@ -100,7 +100,7 @@ def test_daily_pieces_and_their_cumulative_combination_are_the_estimators(pool):
     for d in (1, 3):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", EstimatorWarning)
-            out = combine_pieces(theirs[:d], NULL, cluster=setup.cluster).set_index(["arm", "metric"])
+            out = combine_pieces(theirs[:d], NULL, cluster=setup.cluster).table.set_index(["arm", "metric"])
         lift = out.loc[("four_slots", "revenue_lift_vs_control")]
         control = out.loc[("two_slots", "revenue_per_auction")]
         assert (path.lift[d - 1], path.lift_se[d - 1]) == pytest.approx((lift["estimate"], lift["std_error"]), rel=1e-12)
