@@ -194,12 +194,13 @@ AUCTIONS = 3000
 
 @pytest.mark.slow
 def test_pooled_and_per_segment_intervals_cover_for_auction_and_bidder_clustering():
-    """Replicates are disjoint blocks of one long simulated log (auctions are independent draws);
+    """Replicates are disjoint random blocks of one long simulated log (auctions are independent draws);
     each replicate's truth uses its own segment and stratum counts (the estimand is conditional
     on them). Bidders repeat (a pool of 300 ids) so bidder clustering has clusters to sum."""
     exp = _experiment()
     big = _log(REPLICATES * AUCTIONS, 8, bidder_pool=300)
-    block = big["auction_id"].to_numpy() // AUCTIONS
+    ids = big["auction_id"].to_numpy()  # consecutive within each segment: blocks of a random relabelling
+    block = np.random.default_rng(80).permutation(int(ids.max()) + 1)[ids] // AUCTIONS
     errors = {c: {} for c in ("auction", "bidder")}
     ses = {c: {} for c in ("auction", "bidder")}
     targets = [("shelf", None), ("spotlight", None), ("shelf", "bulk"), ("spotlight", "fresh")]
@@ -226,3 +227,17 @@ def test_pooled_and_per_segment_intervals_cover_for_auction_and_bidder_clusterin
             print(f"{cluster} {key}: SE/spread {ratio:.3f}, coverage {coverage:.3f}")
             assert 0.8 <= ratio <= 1.25, (cluster, key, ratio)
             assert 0.90 <= coverage <= 0.99, (cluster, key, coverage)
+
+
+def test_segmented_pieces_round_trip_through_frames():
+    from counterbid.estimators import pieces_from_frames, pieces_to_frames
+
+    bids = _log(2000, 9, bidder_pool=200)
+    pieces = stratum_pieces(bids, _experiment(), day="2026-05-03", cluster="bidder")
+    frames = pieces_to_frames(pieces)
+    assert all(set(frames[name]["segment"]) == {"bulk", "fresh"} for name in frames)
+    back = pieces_from_frames(frames)
+    assert len(back) == len(pieces) and all(a.equals(b) for a, b in zip(pieces, back))
+    old = {name: f.drop(columns="segment") for name, f in pieces_to_frames(
+        stratum_pieces(bids, _experiment(segments=None), day="2026-05-03")).items()}
+    assert {p.key.segment for p in pieces_from_frames(old)} == {None}
