@@ -75,6 +75,18 @@ class MissingPartitionError(RuntimeError):
     """The day's partition folder does not exist (yet): retryable, unlike bad input."""
 
 
+def refuse_segments(experiment: Experiment) -> None:
+    """One line, before anything is staged or written: the results tables do not store segment rows yet.
+
+    Segment rows share ``(experiment_id, ds, arm, metric)`` with the pooled rows; the results
+    schema keys on that, so they wait for the schema version that adds the ``segment`` column
+    (``counterbid estimate`` gives them meanwhile).
+    """
+    if experiment.segments:
+        raise InputError(f"experiment {experiment.id!r} declares segments ({', '.join(experiment.segments)}): the "
+                         "results tables do not store per-segment rows yet; estimate it with `counterbid estimate`")
+
+
 def stage_partition(
     hook: ResultsHook,
     *,
@@ -104,6 +116,7 @@ def stage_partition(
         ``{"day_bids": int, "shards": int, "max_bids_per_shard": int, "folder": str,
         "measured_arms": list}``.
     """
+    refuse_segments(experiment)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
     day_rows = hook.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
@@ -376,6 +389,7 @@ def estimate_partition(
         Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
         logged and returned to XCom).
     """
+    refuse_segments(experiment)
     engine = _engine(spark, lake_root)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)

@@ -11,6 +11,7 @@ References checked against (outside the project):
 
 from __future__ import annotations
 
+import functools
 import warnings
 
 import numpy as np
@@ -51,6 +52,12 @@ SEGMENTS = {
 }
 
 
+@functools.lru_cache(maxsize=None)
+def segment_truth(segment: str, arm: str, n: int) -> float:
+    """Revenue per auction of ``arm`` in a stratum of ``n`` bidders of ``segment``, by quadrature."""
+    return quad_revenue(SEGMENTS[segment].values, WEIGHTS[arm], n)
+
+
 def quad_revenue(values, weights, n):
     """Myerson's revenue per auction by quad (see the module docstring)."""
     q = Polynomial([0, 1])
@@ -69,7 +76,7 @@ def _auctions_by_stratum(bids):
 def _truths(bids, arm):
     """Per segment and pooled: the auction-weighted truth of the log's own stratum counts."""
     counts = _auctions_by_stratum(bids)
-    ref = {(s, n): quad_revenue(SEGMENTS[s].values, WEIGHTS[arm], n) for s, n in counts.index}
+    ref = {(s, n): segment_truth(s, arm, int(n)) for s, n in counts.index}
     per_segment = {s: sum(counts[(s, n)] * ref[(s, n)] for n in counts[s].index) / counts[s].sum()
                    for s in counts.index.get_level_values(0).unique()}
     pooled = sum(counts[k] * ref[k] for k in counts.index) / counts.sum()
@@ -205,8 +212,7 @@ def test_pooled_and_per_segment_intervals_cover_for_auction_and_bidder_clusterin
     ses = {c: {} for c in ("auction", "bidder")}
     targets = [("shelf", None), ("spotlight", None), ("shelf", "bulk"), ("spotlight", "fresh")]
     truths = {}
-    for r in range(REPLICATES):
-        bids = big[block == r]
+    for _, bids in big.groupby(block, sort=True):
         for arm in WEIGHTS:
             per_segment, pooled = _truths(bids, arm)
             truths[(arm, None)] = pooled
