@@ -870,11 +870,13 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     -------
     CheckResult
         ``observed`` is the pooled correlation ``r`` (:func:`~counterbid.estimators.dependence.
-        auction_dependence`, strata by number of bidders), ``threshold`` is ``min_correlation``.
+        auction_dependence`, strata by number of bidders and, when the experiment declares
+        segments, by segment), ``threshold`` is ``min_correlation``.
         Fails when ``r`` minus its null mean exceeds ``min_correlation`` and its one-sided p-value
         is below ``alpha``; the severity is ``error`` when it also exceeds ``error_correlation``.
-        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r`` and, on
-        failure, the remedy (:data:`DEPENDENCE_REMEDY`).
+        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r``
+        (``by_bidders``; ``by_bidders_and_segment`` keyed ``'4 bidders in bulk'`` when segmented)
+        and, on failure, the remedy (:data:`DEPENDENCE_REMEDY`).
 
     Notes
     -----
@@ -887,9 +889,10 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     """
     cfg = _config(config, experiment)["auction_dependence"]
     data = _prepared(bids, experiment, source)
-    dep = auction_dependence(data.bid, data.auction, data.n_bidders)
-    per = {s.key: {"correlation": s.correlation, "standard_error": s.standard_error, "auctions": s.n_auctions}
-           for s in dep.strata}
+    stratum, name_of = _dependence_strata(data)
+    dep = auction_dependence(data.bid, data.auction, stratum)
+    per = {name_of(s.key): {"correlation": s.correlation, "standard_error": s.standard_error,
+                            "auctions": s.n_auctions} for s in dep.strata}
     excess = dep.excess
     passed = not (dep.p_value < cfg["alpha"] and excess > cfg["min_correlation"])
     if not passed and excess > cfg["error_correlation"]:
@@ -897,7 +900,18 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     extra = {} if passed else {"remedy": DEPENDENCE_REMEDY}
     return _result("auction_dependence", cfg, passed, dep.correlation, cfg["min_correlation"], z=dep.z,
                    p_value=dep.p_value, standard_error=dep.standard_error, null_mean=dep.null_mean,
-                   error_correlation=cfg["error_correlation"], by_bidders=per, **extra)
+                   error_correlation=cfg["error_correlation"],
+                   **{"by_bidders" if data.segment is None else "by_bidders_and_segment": per}, **extra)
+
+
+def _dependence_strata(data) -> tuple[np.ndarray, Any]:
+    """The dependence check's stratum of every bid -- its number of bidders, and its segment when the
+    experiment declares segments -- and how a stratum key reads in the details."""
+    if data.segment is None:
+        return data.n_bidders, int
+    m = max(len(data.segment_names), 1)
+    stratum = data.n_bidders.astype(np.int64) * m + data.segment
+    return stratum, lambda k: f"{int(k) // m} bidders in {data.segment_names[int(k) % m]}"
 
 
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,

@@ -247,3 +247,18 @@ def test_segmented_pieces_round_trip_through_frames():
     old = {name: f.drop(columns="segment") for name, f in pieces_to_frames(
         stratum_pieces(bids, _experiment(segments=None), day="2026-05-03")).items()}
     assert {p.key.segment for p in pieces_from_frames(old)} == {None}
+
+
+def test_the_dependence_check_strata_by_segment_once_segments_are_declared():
+    """Two segments of very different value scales sharing 4-bidder auctions: pooled, the bids of one
+    auction move together and the check fails naming the remedy; declared, each (n, segment)
+    stratum is a draw from one distribution and the check passes."""
+    from counterbid.estimators.checks import auction_dependence_check
+
+    bids = _log(20_000, 10)
+    pooled = auction_dependence_check(bids, _experiment(segments=None))
+    declared = auction_dependence_check(bids, _experiment())
+    assert not pooled.passed and "segments" in pooled.details["remedy"]
+    assert declared.passed, declared.details
+    assert set(declared.details["by_bidders_and_segment"]) == {"4 bidders in bulk", "4 bidders in fresh",
+                                                               "6 bidders in fresh"}
