@@ -238,3 +238,28 @@ def test_segment_changing_within_an_auction_is_one_line(tmp_path, capsys):
     assert code == 2 and out == ""
     line = err.strip().splitlines()
     assert len(line) == 1 and f"auction {bids['auction_id'].iloc[5]} has two values of segment column 'aisle'" in line[0]
+
+
+def test_simulate_writes_segments_that_estimate_reads_back(tmp_path, capsys):
+    """`counterbid simulate --segment ...` writes the spec's segment column; each segment's auctions
+    have its own bidder count, and `estimate` gives its rows."""
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SEGMENTED_SPEC)
+    code, _, err = run(["simulate", "--experiment", str(spec), "--out", str(tmp_path / "lake"), "--auctions-per-day",
+                        "1500", "--segment", "bulk:beta:4:0.6", "--segment", "fresh:lognorm:6:0.4", "--seed", "5"],
+                       capsys)
+    assert code == 0, err
+    path = tmp_path / "lake" / "ds=2026-01-05" / "cli-exp.parquet"
+    bids = pd.read_parquet(path)
+    sizes = bids.groupby("auction_id").agg(aisle=("aisle", "first"), n=("bid", "size"))
+    assert sizes.groupby("aisle")["n"].unique().map(list).to_dict() == {"bulk": [4], "fresh": [6]}
+    assert 0.55 < (sizes["aisle"] == "bulk").mean() < 0.65  # 1,500 auctions: sd of the share 0.013
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json"], capsys)
+    assert code == 0, err
+    assert set(json.loads(out)["segments"]) == {"bulk", "fresh"}
+    for bad, words in ((["--segment", "bulk:gamma:4:0.6"], "expected LABEL:VALUES:BIDDERS:SHARE"),
+                       (["--segment", "bulk:beta:1:0.6"], "BIDDERS must be a whole number >= 2"),
+                       ([], "declares segments (aisle): give them with --segment")):
+        code, out, err = run(["simulate", "--experiment", str(spec), "--out", str(tmp_path / "bad"), *bad], capsys)
+        assert code == 2 and words in err and len(err.strip().splitlines()) == 1, err
+        assert not (tmp_path / "bad").exists()
