@@ -86,7 +86,7 @@ class StratumPiece:
     Attributes
     ----------
     key : StratumKey
-        Which stratum: day, number of bidders, shard (and, later, segment); ``n_bidders``,
+        Which stratum: day, number of bidders, shard, segment; ``n_bidders``,
         ``shard`` and ``day`` read through to it.
     n_auctions, n_bids : int
         Auctions (the combine weight ``M_s``) and bids of the stratum.
@@ -207,7 +207,7 @@ class StratumPiece:
 
 def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cluster: str = "auto",
                    source: str = "bids") -> list[StratumPiece]:
-    """Estimate every stratum (number of bidders) of one input alone: one :class:`StratumPiece` each.
+    """Estimate every stratum (number of bidders, and segment when declared) of one input alone: one piece each.
 
     Parameters
     ----------
@@ -230,7 +230,8 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
     Returns
     -------
     list of StratumPiece
-        Sorted by number of bidders.
+        Sorted by number of bidders, then segment label (``key.segment``; ``None`` unless the
+        experiment declares ``segments``).
 
     Warns
     -----
@@ -258,7 +259,8 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
 
 def pieces_of_prepared(data: PreparedBids, experiment: Experiment, *, base: StratumKey, cluster: str, source: str,
                        auction_covariance: bool = True) -> list[StratumPiece]:
-    """The pieces of validated bids, one per number of bidders, keyed like ``base`` (its ``n_bidders`` replaced).
+    """The pieces of validated bids, one per (number of bidders, segment), keyed like ``base`` (``n_bidders`` and
+    ``segment`` replaced).
 
     ``auction_covariance=False`` (``estimate_arms``' shortcut: its pieces never leave the call)
     leaves ``covariance`` NaN when bidder sums are kept, saving a gather and a bincount per metric.
