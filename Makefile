@@ -14,14 +14,19 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 # A Java 17/21 runtime for Spark in local mode (.ci/java-home finds one, or installs Debian's as root).
+# Not fatal: without one the file is not written, every other test still runs and the Spark tests
+# fail, each with the script's one line naming what to install.
 JAVA_HOME_FILE := $(VENV)/java-home
 $(JAVA_HOME_FILE): .ci/java-home | $(STAMP)
-	.ci/java-home > $@.tmp && mv $@.tmp $@
+	@if .ci/java-home > $@.tmp; then mv $@.tmp $@; else rm -f $@.tmp; \
+	    echo "make: no Java runtime for Spark: the Spark tests will fail; every other test runs" >&2; fi
 
 # The import contracts of pyproject.toml ([tool.importlinter]) first: a broken layer fails the target.
+# PYTEST_ARGS picks tests or options, e.g. PYTEST_ARGS='-m "not slow" tests/estimators'.
+PYTEST_ARGS ?=
 test: $(STAMP) $(JAVA_HOME_FILE)
 	$(VENV)/bin/lint-imports
-	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) -m pytest
+	JAVA_HOME=$$(cat $(JAVA_HOME_FILE) 2>/dev/null || printf '%s' "$$JAVA_HOME") $(PY) -m pytest $(PYTEST_ARGS)
 
 # 14 days of the invented Quillfen marketplace through the daily DAG (dag.test per day), then the report.
 demo: $(STAMP)

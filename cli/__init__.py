@@ -19,6 +19,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "backfill": ("counterbid.cli.backfill", "run the daily DAG in-process for each day of a range (no scheduler needed)"),
     "study": ("counterbid.cli.study", "Monte Carlo validation study: CSV, figures and a markdown summary"),
     "plan": ("counterbid.cli.plan", "predicted interval half-widths per traffic share, and the smallest share that suffices"),
+    "grant-reader": ("counterbid.cli.grant_reader", "a read-only role for dashboards on a PostgreSQL results database"),
 }
 
 EXIT_INPUT = 2

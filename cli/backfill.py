@@ -104,6 +104,8 @@ class DayRun:
     state: str
     seconds: float
     tasks: list[tuple[str, int, str, float]] = field(default_factory=list)
+    #: Why tasks failed: ``<task> (<experiment>): <exception type>: <message>``, one entry per failed task.
+    reasons: list[str] = field(default_factory=list)
 
     def line(self) -> str:
         per_step: dict[str, float] = {}
@@ -112,6 +114,45 @@ class DayRun:
             per_step[step] = per_step.get(step, 0.0) + secs
         steps = " ".join(f"{k} {v:.1f}s" for k, v in per_step.items())
         return f"{self.ds} {self.state:<7} {self.seconds:5.1f}s  ({steps})"
+
+
+#: Longest reason quoted per failed task in the closing lines (a failed check's details can be long).
+REASON_CHARS = 400
+
+
+class FailureRecorder:
+    """A task failure callback keeping one line per failed task: task, experiment, exception.
+
+    ``run_days`` adds it beside each task's own failure callbacks for the length of the run, so the
+    closing lines of ``counterbid backfill`` say why each day failed, not only that it did.
+    """
+
+    def __init__(self) -> None:
+        self.reasons: list[str] = []
+
+    def __call__(self, context) -> None:
+        ti, exc = context.get("ti"), context.get("exception")
+        task = getattr(ti, "task_id", "?")
+        experiment = getattr(context.get("task"), "experiment_id", None)
+        where = f"{task} ({experiment})" if isinstance(experiment, str) and experiment else task
+        if exc is None:
+            self.reasons.append(f"{where}: failed (no exception recorded)")
+            return
+        lines = [ln.strip().lstrip("- ").strip() for ln in str(exc).splitlines() if ln.strip()]
+        text = "".join(f"{'' if k == 0 else ' ' if lines[k - 1].endswith(':') else '; '}{ln}"
+                       for k, ln in enumerate(lines)) or "(no message)"
+        if len(text) > REASON_CHARS:
+            text = text[: REASON_CHARS - 3] + "..."
+        self.reasons.append(f"{where}: {type(exc).__name__}: {text}")
+
+
+def _with_recorder(dag, recorder: FailureRecorder) -> None:
+    """Add ``recorder`` to every task's failure callbacks (their own ones kept, and run first)."""
+    for task in dag.tasks:
+        own = task.on_failure_callback
+        own = [] if own is None else list(own) if isinstance(own, (list, tuple)) else [own]
+        if recorder not in own:
+            task.on_failure_callback = [*own, recorder]
 
 
 def run_days(days: list[dt.date], *, conf: dict[str, str], progress=None) -> list[DayRun]:
@@ -144,12 +185,16 @@ def run_days(days: list[dt.date], *, conf: dict[str, str], progress=None) -> lis
     if dag is None:
         raise InputError(f"{folder}: no DAG {DAG_ID!r}")
     out = []
+    recorder = FailureRecorder()
+    _with_recorder(dag, recorder)
     for day in days:
         started = time.perf_counter()
+        recorder.reasons = []
         run = dag.test(logical_date=dt.datetime.combine(day, dt.time(), tzinfo=dt.timezone.utc), run_conf=conf)
         tis = sorted(run.get_task_instances(), key=lambda t: (t.start_date is None, t.start_date))
         result = DayRun(day, str(getattr(run.state, "value", run.state)), time.perf_counter() - started,
-                        [(t.task_id, t.map_index, str(getattr(t.state, "value", t.state)), float(t.duration or 0.0)) for t in tis])
+                        [(t.task_id, t.map_index, str(getattr(t.state, "value", t.state)), float(t.duration or 0.0)) for t in tis],
+                        list(recorder.reasons))
         out.append(result)
         if progress is not None:
             progress(result.line())
@@ -167,6 +212,10 @@ def run(args: argparse.Namespace) -> int:
     from counterbid.operators.results_schema import results_target
 
     target = results_target(args.results, what="--results")
+    from counterbid.operators.extras import require_extras_for
+
+    engine = os.environ.get("COUNTERBID_ENGINE", "local").strip().lower() or "local"
+    require_extras_for(results=target, engine=engine, results_setting="--results", engine_setting="COUNTERBID_ENGINE")
     if not str(args.lake).startswith(_REMOTE) and not Path(args.lake).is_dir():
         raise InputError(f"--lake {args.lake}: no such folder")
     configured = "airflow" in sys.modules  # Airflow reads its configuration once, on import
@@ -200,6 +249,9 @@ def run(args: argparse.Namespace) -> int:
         if failed:
             print(f"counterbid: {len(failed)} of {len(runs)} day(s) failed: {', '.join(str(r.ds) for r in failed)}",
                   file=sys.stderr)
+            for r in failed:  # the last lines: why each day failed
+                for reason in r.reasons or ["no task failed; see the log above"]:
+                    print(f"  {r.ds} {reason}", file=sys.stderr)
             return 1
         return 0
     finally:

@@ -18,7 +18,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--days", type=int, default=1, help="number of days")
     p.add_argument("--auctions-per-day", type=int, default=20000)
     p.add_argument("--bidders", type=int, default=5, help="bidders per auction")
-    p.add_argument("--values", choices=DISTRIBUTIONS, default="lognorm", help="value distribution per click")
+    p.add_argument("--values", choices=DISTRIBUTIONS, default="lognorm", help="value distribution per click: lognorm (sigma 0.5, median 0.8), uniform on [0, 1], "
+                        "beta (Beta(2, 5) scaled to [0, 3])")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--quality", nargs=2, type=float, metavar=("LOW", "HIGH"),
                    help="draw a quality factor per bid, uniform on [LOW, HIGH] (> 0), and log it in a 'quality' "
@@ -31,9 +32,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _distribution(name: str):
-    import scipy.stats as st
+    """The study's distribution of that name (``lognorm`` is the study's ``lognormal``)."""
+    from counterbid.estimators.study import VALUE_DISTRIBUTIONS
 
-    return {"lognorm": st.lognorm(0.5, scale=0.8), "uniform": st.uniform(0, 2), "beta": st.beta(2, 5, scale=3)}[name]
+    return VALUE_DISTRIBUTIONS[{"lognorm": "lognormal"}.get(name, name)]
 
 
 def _segments(texts: list[str]):

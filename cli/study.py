@@ -33,7 +33,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "the two-step baseline runs under first_price only")
     p.add_argument("--floor", type=float, metavar="R",
                    help="floor per click shared by the arms, in value units (default: none); it must lie below the "
-                        "top of every value distribution (uniform values end at 2)")
+                        "top of every value distribution (uniform values end at 1)")
     p.add_argument("--seed", type=int, default=20260301)
     p.add_argument("--jobs", type=int, default=1, help="worker processes (results do not depend on it)")
     p.add_argument("--redraw", metavar="DIR",
@@ -219,7 +219,7 @@ def summary_markdown(size, share, coverage, *, settings: dict, seconds: float | 
         provenance if provenance is not None else _provenance(settings, seconds),
         "",
         "Design: two arms with position weights control = (0.31, 0.17, 0.06, 0.02) and treated = "
-        "(0.36, 0.12, 0.05, 0.02); `n` bidders per auction; values per click uniform U[0, 2], "
+        "(0.36, 0.12, 0.05, 0.02); `n` bidders per auction; values per click uniform U[0, 1], "
         "Beta(2, 5) scaled to [0, 3], log-normal (sigma 0.5, median 0.8). "
         f"{_auction_sentence(rule, floor)} Truth is Myerson's formula by "
         "quadrature. So every number below rests on the estimator's own assumptions holding exactly "

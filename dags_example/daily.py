@@ -43,6 +43,7 @@ from pathlib import Path
 
 from airflow.sdk import dag, task, task_group
 
+from counterbid.operators.extras import require_extras_for
 from counterbid.operators.notify import CheckAlertNotifier
 from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
@@ -53,6 +54,7 @@ from counterbid.operators.pipeline import (
     ValidatePartitionOperator,
     WriteEstimatesOperator,
 )
+from counterbid.operators.results_schema import results_target
 
 DAG_ID = "counterbid_daily"
 HERE = Path(__file__).resolve().parent
@@ -60,6 +62,10 @@ ENGINE = os.environ.get("COUNTERBID_ENGINE", "local").strip().lower() or "local"
 SPARK_CONN = os.environ.get("COUNTERBID_SPARK_CONN", "").strip() or None
 if ENGINE not in ("local", "spark"):
     raise ValueError(f"COUNTERBID_ENGINE must be 'local' or 'spark'; got {ENGINE!r}")
+# A setting that needs an optional extra stops here, at parse time, in one line naming the extra.
+require_extras_for(results=results_target(os.environ["COUNTERBID_RESULTS"], what="COUNTERBID_RESULTS")
+                   if os.environ.get("COUNTERBID_RESULTS", "").strip() else None,
+                   engine=ENGINE, results_setting="COUNTERBID_RESULTS", engine_setting="COUNTERBID_ENGINE")
 START = dt.datetime.fromisoformat(os.environ.get("COUNTERBID_START", "2026-03-02")).replace(tzinfo=dt.timezone.utc)
 
 # Alerts: failed data checks (observed vs threshold) or the task's error, to the task log by

@@ -130,20 +130,19 @@ def estimate_arms(
 
     Examples
     --------
-    Five bidders with U[0, 1] values; two identical slots against three. Both sell
-    ``k (n - k) / (n + 1) = 1.0`` per auction (Krishna 2010, ch. 3), and so does their mixture, so
-    each revenue estimate should lie within a few of its own standard errors (0.0006-0.002 here)
-    of 1.0:
+    Seven bidders with U[0, 1] values; three identical slots against four. Both sell
+    ``k (n - k) / (n + 1) = 3/2`` per auction (Krishna 2010, ch. 3), and so does their mixture, so
+    each revenue estimate should lie within a few of its own standard errors of 3/2:
 
     >>> import scipy.stats as st
     >>> from counterbid.estimators import parse_experiments, simulate_experiment
-    >>> exp = parse_experiments({"experiments": [{"id": "e", "control_arm": "two", "arms": [
-    ...     {"name": "two", "share": 0.5, "position_weights": [1.0, 1.0]},
-    ...     {"name": "three", "share": 0.5, "position_weights": [1.0, 1.0, 1.0]}]}]})["e"]
-    >>> bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=5, n_auctions=20000, rng=0)
+    >>> exp = parse_experiments({"experiments": [{"id": "e", "control_arm": "three", "arms": [
+    ...     {"name": "three", "share": 0.5, "position_weights": [1.0, 1.0, 1.0]},
+    ...     {"name": "four", "share": 0.5, "position_weights": [1.0, 1.0, 1.0, 1.0]}]}]})["e"]
+    >>> bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=7, n_auctions=20000, rng=0)
     >>> out = estimate_arms(bids, exp)
     >>> rev = out.rows("revenue_per_auction")
-    >>> bool(((rev["estimate"] - 1.0).abs() < 4 * rev["std_error"]).all())
+    >>> bool(((rev["estimate"] - 1.5).abs() < 4 * rev["std_error"]).all())
     True
     >>> rev["status"].tolist()
     ['ok', 'ok', 'ok']

@@ -303,6 +303,8 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             bad = np.flatnonzero(test(bid))
             if bad.size:
                 raise InputError(f"{source}: column 'bid' row {_row(rows, int(bad[0]))} is {what} ({bid[bad[0]]!r})")
+    if experiment.max_bid is not None and high > experiment.max_bid:
+        _refuse_bids_above_max(bid, experiment, rows, source)
 
     has_quality = "quality" in bids.columns
     if has_quality:  # auctions rank by bid x quality: everything from here on uses the effective bid
@@ -499,6 +501,15 @@ def _qualities(col: pd.Series, rows: np.ndarray | None, source: str) -> np.ndarr
                 raise InputError(f"{source}: column 'quality' row {_row(rows, int(bad[0]))} is {what} "
                                  f"({quality[bad[0]]!r}); quality factors must be > 0 wherever the column exists")
     return quality
+
+
+def _refuse_bids_above_max(bid: np.ndarray, experiment: Experiment, rows: np.ndarray | None, source: str) -> None:
+    """A logged bid above the spec's ``max_bid`` cannot have been placed: refuse, naming the first such row."""
+    above = np.flatnonzero(bid > experiment.max_bid)
+    i = int(above[0])
+    more = f" ({above.size} bids above it)" if above.size > 1 else ""
+    raise InputError(f"{source}: column 'bid' row {_row(rows, i)} is {float(bid[i])!r}, above max_bid "
+                     f"{experiment.max_bid!r} of experiment {experiment.id!r}{more}")
 
 
 def _refuse_bids_against_floor(bid: np.ndarray, position: np.ndarray, floor: float, rows: np.ndarray | None,

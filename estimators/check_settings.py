@@ -53,6 +53,11 @@ DEFAULT_CHECKS: Mapping[str, Mapping[str, Any]] = {
     "auction_dependence": {"severity": "warning", "alpha": 1e-3, "min_correlation": 0.02, "error_correlation": 0.1},
     # Days since the experiment started or its shares changed; flagged while < days.
     "warmup": {"severity": "warning", "days": 3, "changed_on": []},
+    # Bids whose log lies more than `max_robust_z` robust sds (1.4826 MAD) above their stratum's median
+    # log bid (estimators/outlying_bids.py); the first `max_rows` are named.
+    "outlying_bids": {"severity": "warning", "max_robust_z": 8.0, "min_bids": 20, "max_rows": 10},
+    # Share of some arm's revenue estimate the outlying bids carry; fail above `max_share`.
+    "dominant_bids": {"severity": "error", "max_share": 0.5},
     # Great Expectations contract suite (counterbid.operators.contract).
     "contract": {"severity": "error", "max_bidders": 200, "min_bidders": 2, "tie_tolerance": 1e-9, "sample_rows": 1000},
 }

@@ -113,6 +113,8 @@ STATISTICAL_CHECKS = (
     "shading",
     "drift",
     "auction_dependence",
+    "outlying_bids",
+    "dominant_bids",
     "warmup",
 )
 
@@ -917,7 +919,7 @@ def _dependence_strata(data) -> tuple[np.ndarray, Any]:
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
                        config: Mapping[str, Any] | None = None, source: str = "bids",
                        counts: AuctionCounts | None = None,
-                       sample: Mapping[str, Any] | None = None) -> list[CheckResult]:
+                       sample: Mapping[str, Any] | None = None, outliers=None) -> list[CheckResult]:
     """Every statistical check of one (experiment, day), in :data:`STATISTICAL_CHECKS` order.
 
     Parameters
@@ -943,6 +945,10 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
     sample : mapping, optional
         What ``bids`` is a sample of (e.g. ``{"shard": 0, "shards": 3, "bids_used": ...,
         "day_bids": ...}``), recorded as ``details["sample"]`` of each distribution check.
+    outliers : callable, optional
+        When ``bids`` is a sample: ``outliers({n_bidders: fence})`` returns the whole day's bids
+        above the sample's outlier fences (a frame with ``n_bidders, auction_id, bidder_id, bid,
+        effective_bid``), so ``outlying_bids`` and ``dominant_bids`` see every shard.
 
     Returns
     -------
@@ -968,8 +974,37 @@ def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,
         note = _jsonable(dict(sample))
         spread = [replace(r, details={**r.details, "sample": note}) for r in spread]
     out += spread
+    out += _outlier_results(data, experiment, cfg, bids if isinstance(bids, pd.DataFrame) else None, sample,
+                            outliers, counts)
     if ds is not None:
         out.append(warmup_check(experiment, ds, config=cfg))
+    return out
+
+
+def _outlier_results(data, experiment: Experiment, cfg, frame, sample, outliers, counts) -> list[CheckResult]:
+    """``outlying_bids`` and ``dominant_bids`` (estimators/outlying_bids.py), noting the sample they read.
+
+    ``outliers``, when given, is a callable taking the sample's fences (``{n: fence}``) and
+    returning the whole day's bids above them (the caller scans every shard); ``counts`` then
+    gives the whole day's strata sizes.
+    """
+    from .outlying_bids import outlier_fences, outlying_bid_checks
+
+    strata = _strata_bids(data)
+    day_flagged = day_bids = None
+    if outliers is not None:
+        own = cfg["outlying_bids"]
+        fences = outlier_fences(strata, max_robust_z=own["max_robust_z"], min_bids=own["min_bids"])
+        day_flagged = outliers({n: f["fence"] for n, f in fences.items()})
+        if counts is None:
+            counts = auction_counts(data, experiment)
+        day_bids = {int(n): int(a) * int(n) for n, a in zip(counts.n_bidders, counts.per_stratum)}
+    raw = outlying_bid_checks(strata, experiment, cfg, frame=frame, day_flagged=day_flagged, day_bids=day_bids)
+    out = [_result(name, cfg[name], passed, observed, threshold, **details)
+           for name, passed, observed, threshold, details in raw]
+    if sample is not None:
+        note = _jsonable(dict(sample))
+        out = [replace(r, details={**r.details, "sample": note}) for r in out]
     return out
 
 

@@ -9,6 +9,7 @@ A spec file (YAML) holds one or more experiments::
         start: 2026-03-01          # optional: first day the experiment runs
         end: 2026-03-28            # optional: last day (inclusive)
         floor: 0.05                # optional: floor per click, shared by every arm (effective-bid units)
+        max_bid: 40.0              # optional: the largest bid the marketplace accepts (bid units)
         arms:
           - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
           - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
@@ -22,6 +23,11 @@ bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` 
 the whole experiment: bids (effective bids ``bid x quality`` when the log has a ``quality``
 column) below it are ineligible and logged with a null position. Floors that differ by arm are
 not modelled, and the spec has no per-arm ``floor`` key (refused as an unknown key).
+
+``max_bid`` is the largest bid the marketplace accepts (the ``bid`` column, before any quality
+factor). A logged bid above it cannot have been placed, so the log is wrong (a unit slip, a
+corrupt row): :func:`~counterbid.estimators.prepare_bids` refuses it with one line naming the row
+and the value, and no number is estimated from that input.
 
 ``burn_in_days`` and ``exclude_days`` shape the analysis window of the experiment-to-date numbers:
 the first ``burn_in_days`` days from ``start`` and every listed day are left out, besides the days
@@ -75,7 +81,7 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days", "segments"})
+                             "burn_in_days", "exclude_days", "max_bid", "segments"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 
 
@@ -141,6 +147,9 @@ class Experiment:
         Days from ``start`` left out of the experiment-to-date numbers (0: none).
     exclude_days : tuple of datetime.date
         Days left out of the experiment-to-date numbers, sorted.
+    max_bid : float or None
+        The largest bid the marketplace accepts, in the units of the ``bid`` column (before
+        quality); a logged bid above it is refused as bad input. ``None``: no bound.
     segments : tuple of str
         Bid-log columns whose values (constant within an auction) split the auctions into
         segments estimated apart (``()``: not segmented).
@@ -156,6 +165,7 @@ class Experiment:
     checks: Mapping[str, Any] = field(default_factory=dict)
     burn_in_days: int = 0
     exclude_days: tuple[_dt.date, ...] = ()
+    max_bid: float | None = None
     segments: tuple[str, ...] = ()
 
     @property
@@ -216,6 +226,9 @@ def _experiment(raw: Any, where: str) -> Experiment:
     if not valid_id:
         raise InputError(f"{where}: 'id' must be a non-empty string")
     exp_id = str(exp_id)
+    if not _NAME.match(exp_id):  # ids name folders, lake partitions and database rows: arm names' alphabet
+        raise InputError(f"{where}: experiment id {exp_id!r} must be 1-128 characters of letters, digits, '_', '.', "
+                         "'-' not starting with '_', '.' or '-'")
     where = f"{where} (id {exp_id!r})"
     rule = raw.get("payment_rule", "first_price")
     if not isinstance(rule, str) or rule not in PAYMENT_RULES:
@@ -257,6 +270,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     floor = raw.get("floor")
     if floor is not None and (isinstance(floor, bool) or not isinstance(floor, (int, float)) or not math.isfinite(floor) or floor < 0):
         raise InputError(f"{where}: 'floor' must be a finite number >= 0; got {floor!r}")
+    max_bid = _max_bid(raw.get("max_bid"), floor, where)
     start = None if raw.get("start") is None else parse_day(raw["start"], what=f"{where} start")
     end = None if raw.get("end") is None else parse_day(raw["end"], what=f"{where} end")
     if start and end and end < start:
@@ -284,10 +298,20 @@ def _experiment(raw: Any, where: str) -> Experiment:
         checks=dict(checks),
         burn_in_days=int(burn_in),
         exclude_days=excluded,
+        max_bid=max_bid,
         segments=segments,
     )
 
 
+def _max_bid(value: Any, floor: Any, where: str) -> float | None:
+    """The spec's ``max_bid``: ``None``, or a finite number > 0 and not below the floor."""
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+        raise InputError(f"{where}: 'max_bid' must be a finite number > 0; got {value!r}")
+    if floor is not None and value < floor:
+        raise InputError(f"{where}: 'max_bid' {value!r} lies below the floor {floor!r}")
+    return float(value)
 
 
 def _segments(raw: Any, where: str) -> tuple[str, ...]:

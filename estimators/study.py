@@ -54,9 +54,11 @@ __all__ = [
     "two_step_applies",
 ]
 
-#: Value distributions per click used by the study (frozen scipy.stats objects).
+#: Value distributions per click used by the study, the simulator's command line and the planner
+#: (frozen scipy.stats objects): uniform on [0, 1] (so ``v(q) = q``, the closed forms of
+#: ``docs/method.md`` apply), Beta(2, 5) scaled to [0, 3], log-normal with sigma 0.5 and median 0.8.
 VALUE_DISTRIBUTIONS = {
-    "uniform": stats.uniform(0, 2),
+    "uniform": stats.uniform(0, 1),
     "beta": stats.beta(2, 5, scale=3),
     "lognormal": stats.lognorm(0.5, scale=0.8),
 }

@@ -12,10 +12,12 @@ from dataclasses import dataclass, field
 from .errors import InputError
 from .spec import Experiment, parse_day
 
-__all__ = ["WINDOW_CHECKS", "AnalysisWindow", "analysis_window", "format_days"]
+__all__ = ["PENDING_FLAGS", "WINDOW_CHECKS", "AnalysisWindow", "analysis_window", "format_days", "pending_status"]
 
 #: Checks whose failure on a day leaves that day out of the experiment-to-date numbers by default.
 WINDOW_CHECKS = ("warmup", "drift")
+#: Status flag of the experiment-to-date rows of a day whose window uses no day yet, per reason a day is left out.
+PENDING_FLAGS = {"burn_in": "warming_up", "warmup": "warming_up", "excluded": "days_excluded", "drift": "drifting"}
 
 
 @dataclass(frozen=True)
@@ -119,3 +121,24 @@ def analysis_window(
         else:
             used.append(day)
     return AnalysisWindow(tuple(used), left_out)
+
+
+def pending_status(window: AnalysisWindow) -> str:
+    """Why the experiment-to-date rows of a window that uses no day hold no number yet.
+
+    Parameters
+    ----------
+    window : AnalysisWindow
+        A window with no day used.
+
+    Returns
+    -------
+    str
+        Sorted, comma-joined flags of :data:`PENDING_FLAGS`, one per reason a day was left out
+        (``warming_up`` for burn-in and failed warm-up checks); ``no_days`` when nothing was left
+        out either.
+    """
+    if window.used:
+        raise InputError(f"pending_status: the window uses {len(window.used)} day(s); its rows have numbers")
+    flags = {PENDING_FLAGS.get(part, "left_out") for why in window.left_out.values() for part in why.split("+")}
+    return ",".join(sorted(flags)) or "no_days"

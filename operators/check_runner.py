@@ -126,12 +126,30 @@ def run_checks(
             history = None
     elif history_quantiles is not None and not history_quantiles.empty:
         history = history_quantiles
+    outliers = None if sample_relation is None else (lambda fences: _bids_above_fences(con, relation, fences))
     try:
         results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg,
-                                      source=sample_relation or relation, counts=counts, sample=sample)
+                                      source=sample_relation or relation, counts=counts, sample=sample,
+                                      outliers=outliers)
     except InputError as exc:  # a contract check configured as a warning let broken data through
         results.append(CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)}))
     return results
+
+
+#: Most outlying bids of a day the checks read back (they name ten; the rest only add to the share).
+MAX_FLAGGED_BIDS = 100_000
+
+
+def _bids_above_fences(con, relation: str, fences: Mapping[int, float]) -> pd.DataFrame:
+    """The whole day's bids above the sample's outlier fences (``sql/check_bids_above_fence.sql``)."""
+    table = pd.DataFrame({"n_bidders": pd.Series(list(fences), dtype="int64"),
+                          "fence": pd.Series(list(fences.values()), dtype="float64")})
+    con.register("outlier_fences", table)
+    try:
+        return con.sql(render_sql("check_bids_above_fence", relation=relation, fences="outlier_fences"),
+                       params={"max_flagged": MAX_FLAGGED_BIDS}).df()
+    finally:
+        con.unregister("outlier_fences")
 
 
 def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFrame:

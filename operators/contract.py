@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import logging
 import os
+import sys
 from collections.abc import Mapping
 from typing import Any
 
@@ -73,6 +74,16 @@ _RESULT_FORMAT = {"result_format": "SUMMARY", "unexpected_index_column_names": [
 def _gx():
     # Usage statistics off before GE is imported (it reads the variable at import).
     os.environ.setdefault("GX_ANALYTICS_ENABLED", "False")
+    if "great_expectations" not in sys.modules and "pyspark" not in sys.modules:
+        # GE probes for pyspark when it is imported (great_expectations.compatibility.pyspark) and
+        # takes it as absent on ImportError. The contract runs on pandas frames; importing pyspark
+        # here would only cost time and print PySpark's pandas-3 FutureWarnings on every
+        # `counterbid check`. The Spark engine imports pyspark itself, unaffected, when it runs.
+        sys.modules["pyspark"] = None  # type: ignore[assignment]  # `import pyspark` raises ImportError
+        try:
+            import great_expectations  # noqa: F401
+        finally:
+            del sys.modules["pyspark"]
     import great_expectations as gx
 
     return gx

@@ -1,8 +1,10 @@
-"""The results database hook: the only code in counterbid that opens results-database connections.
+"""The results-sink hook: the only code in counterbid that opens results-database connections.
 
 The results sink is an embedded DuckDB file (connection type ``counterbid_duckdb``, the default) or
 a PostgreSQL database (connection type ``postgres``, through the Airflow Postgres provider's
-``PostgresHook`` and psycopg 3). Lake, click-log and staged-file reads always use in-memory DuckDB.
+``PostgresHook`` and psycopg 3); every statement here is in the sink's dialect. The bid lake, the
+click log and the staged files are read by :class:`counterbid.operators.lake_hook.LakeHook`, on
+in-memory DuckDB, whatever the sink.
 """
 
 from __future__ import annotations
@@ -10,8 +12,10 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import logging
+import os
 import random
 import time
+import uuid
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -22,8 +26,9 @@ import pyarrow as pa
 from airflow.sdk import BaseHook
 
 from counterbid.estimators.errors import InputError
-from counterbid.sql import render_sql, validate_identifier
+from counterbid.sql import validate_identifier
 
+from .extras import require_extra
 from .results_schema import (
     POSTGRES_SCHEMES, RESULTS_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget, check_readable,
     migrate, results_target, statement_for,
@@ -31,7 +36,7 @@ from .results_schema import (
 
 __all__ = [
     "DEFAULT_CONN_ID", "LOCK_ERROR", "POSTGRES_CONN_TYPE", "ResultsHook", "ResultsTarget", "is_lock_error",
-    "lake_glob", "results_target",
+    "results_target",
 ]
 
 log = logging.getLogger(__name__)
@@ -44,22 +49,38 @@ POSTGRES_CONN_TYPE = "postgres"
 LOCK_ERROR = "Could not set lock on file"
 
 
-
 def is_lock_error(exc: BaseException) -> bool:
     """Whether ``exc`` is DuckDB's file-lock conflict (retryable)."""
     return isinstance(exc, duckdb.Error) and LOCK_ERROR in str(exc)
 
 
-def lake_glob(root: str | Path) -> str:
-    """Glob of every Parquet file under a Hive-partitioned root (local path or object-store URL)."""
-    text = str(root).rstrip("/")
-    if not text:
-        raise InputError("lake root is empty")
-    return f"{text}/**/*.parquet"
+def create_database_file(path: Path) -> None:
+    """Create an empty DuckDB file at ``path`` unless one exists, atomically.
+
+    Two processes opening a missing file at once race: one creates it, and the other can open it
+    before its header is written and fail with "exists, but it is not a valid DuckDB database
+    file". So a new file is made whole under a private name and hard-linked into place (the link
+    fails if another process got there first; either way ``path`` is then a complete file).
+    """
+    if path.exists():
+        return
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.new")
+    try:
+        duckdb.connect(str(tmp)).close()
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass  # another writer created it first
+        except OSError:  # no hard links on this filesystem: DuckDB creates the file itself, as before
+            log.debug("cannot hard-link %s; DuckDB creates the results file", tmp)
+    finally:
+        tmp.unlink(missing_ok=True)
+        tmp.with_name(tmp.name + ".wal").unlink(missing_ok=True)
 
 
 class ResultsHook(BaseHook):
-    """Access to the results database (DuckDB file or PostgreSQL) and in-memory lake queries.
+    """Access to the results database (DuckDB file or PostgreSQL): connections, migrations, writes, reads.
 
     Parameters
     ----------
@@ -82,9 +103,8 @@ class ResultsHook(BaseHook):
     DuckDB lets one process hold a database file at a time (readers included), so every
     connection to a results file is short-lived and opening it retries on the lock error with
     jittered exponential back-off. PostgreSQL readers see the last committed state and are
-    never locked out by a writer. Lake reads use a private in-memory DuckDB connection;
-    object-store URLs (``s3://``, ``gs://``, ``https://``) are read through DuckDB's httpfs
-    extension, which DuckDB loads automatically.
+    never locked out by a writer. Parquet (lake, click log, staging) is not read here: see
+    :class:`counterbid.operators.lake_hook.LakeHook`.
 
     Every write first brings the results schema to this code's version
     (:func:`counterbid.operators.results_schema.migrate`), and every read refuses a schema of
@@ -156,7 +176,7 @@ class ResultsHook(BaseHook):
             con = self._postgres_connection()
         else:
             if not read_only:
-                Path(self.database).parent.mkdir(parents=True, exist_ok=True)
+                create_database_file(Path(self.database))
             con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
         try:
             yield con
@@ -164,6 +184,7 @@ class ResultsHook(BaseHook):
             con.close()
 
     def _postgres_connection(self):
+        require_extra("postgres", needed_by=f"results database {self.target.shown}")  # one line, not an ImportError
         from airflow.providers.postgres.hooks.postgres import PostgresHook
 
         if self._target is not None and self._target.location.startswith(tuple(f"{s}://" for s in POSTGRES_SCHEMES)):
@@ -182,15 +203,6 @@ class ResultsHook(BaseHook):
         kind = PostgresSession if self.dialect == "postgres" else DuckDBSession
         with self.connect(read_only=read_only) as con:
             yield kind(con, schema=self.schema, sql=self.sql, where=self.where)
-
-    @contextlib.contextmanager
-    def lake(self, *, config: Mapping[str, Any] | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
-        """An in-memory connection for reading Parquet (the bid lake, click log, staged files); ``config``: DuckDB settings."""
-        con = duckdb.connect(":memory:", config=dict(config or {}))
-        try:
-            yield con
-        finally:
-            con.close()
 
     def _retry_on_lock(self, action, *, what: str):
         deadline = time.monotonic() + self.lock_timeout
@@ -212,10 +224,6 @@ class ResultsHook(BaseHook):
     def sql(self, name: str, **identifiers: str) -> str:
         """Statement ``name`` in this sink's dialect, with the results schema filled in (when it has a placeholder)."""
         return statement_for(name, self.dialect, self.schema, **identifiers)
-
-    def lake_sql(self, name: str, **identifiers: str) -> str:
-        """Statement ``name`` for the in-memory DuckDB lake connection."""
-        return statement_for(name, "duckdb", self.schema, **identifiers)
 
     # -- results database --------------------------------------------------------------------
     def ensure_tables(self) -> list[int]:
@@ -337,111 +345,20 @@ class ResultsHook(BaseHook):
             out[table] = None if rows is None or rows.empty else rows
         return out
 
-    # -- lake and staged files ---------------------------------------------------------------
-    def read_lake_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> pa.Table:
-        """Bids of one experiment and day (partition-pruned read of ``lake_root``)."""
-        with self.lake_partition_batches(lake_root, experiment_id=experiment_id, ds=ds) as batches:
-            return batches.read_all()
+    def grant_reader(self, role: str):
+        """Create (if missing) the read-only role ``role`` for dashboards; PostgreSQL only.
 
-    def read_lake_range(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date) -> pa.Table:
-        """Bids of one experiment on every day ``first_ds..ds`` (partition-pruned)."""
-        with self.lake_range_batches(lake_root, experiment_id=experiment_id, first_ds=first_ds, ds=ds) as batches:
-            return batches.read_all()
-
-    def lake_partition_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date,
-                               batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
-        """:meth:`read_lake_partition` as a stream of record batches (see :meth:`lake_range_batches`)."""
-        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
-        return self._lake_batches("lake_read_partition", params, lake_root, batch_rows)
-
-    def lake_range_batches(self, lake_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date,
-                           batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
-        """:meth:`read_lake_range` as a stream of record batches (memory: about one batch).
-
-        The connection stays open while the ``with`` block iterates; lake errors raised during
-        the iteration become the same one-line :class:`InputError` as :meth:`read_lake_range`'s.
+        Migrates the schema first, then :func:`counterbid.operators.reader_role.grant_reader`.
+        Returns its :class:`~counterbid.operators.reader_role.ReaderGrant`.
         """
-        params = {"lake_glob": lake_glob(lake_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
-        return self._lake_batches("lake_read_range", params, lake_root, batch_rows)
+        from .reader_role import grant_reader
 
-    @contextlib.contextmanager
-    def _lake_batches(self, name: str, params: Mapping[str, Any], root, batch_rows: int,
-                      config: Mapping[str, Any] | None = None) -> Iterator[pa.RecordBatchReader]:
-        with self.lake(config=config) as con:
-            try:
-                yield con.sql(self.lake_sql(name), params=dict(params)).to_arrow_reader(batch_rows)
-            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
-                raise _lake_error(exc, root) from None
-
-    def lake_count_partition(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date) -> int:
-        """Bids of one experiment and day in the lake (partition-pruned)."""
-        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id}
-        return int(self._lake_query("lake_count_partition", params, lake_root).column(0)[0].as_py())
-
-    def lake_partition_shard_batches(self, lake_root: str | Path, *, experiment_id: str, ds: dt.date, n_shards: int,
-                                     batch_rows: int = 2**20) -> contextlib.AbstractContextManager[pa.RecordBatchReader]:
-        """:meth:`lake_partition_batches` with a trailing ``shard`` column (stable hash of the auction id)."""
-        from counterbid.readers.shards import SHARD_SCAN_CONFIG
-
-        params = {"lake_glob": lake_glob(lake_root), "ds": ds, "experiment_id": experiment_id, "n_shards": int(n_shards)}
-        return self._lake_batches("lake_read_partition_shards", params, lake_root, batch_rows, config=SHARD_SCAN_CONFIG)
-
-    def clicks_position_weights(
-        self, clicks_root: str | Path, *, experiment_id: str, first_ds: dt.date, ds: dt.date
-    ) -> pd.DataFrame:
-        """Clicks, impressions and their ratio per (arm, position) over ``first_ds..ds``."""
-        params = {"clicks_glob": lake_glob(clicks_root), "first_ds": first_ds, "ds": ds, "experiment_id": experiment_id}
-        return self._lake_query("clicks_position_weights", params, clicks_root).to_pandas()
-
-    def staged_columns(self, path: str | Path) -> dict[str, str]:
-        """Column name -> DuckDB type of a Parquet file (footer only)."""
-        with self.lake() as con:
-            return dict(con.execute(self.lake_sql("staged_columns"), {"path": str(path)}).fetchall())
-
-    def staged_null_counts(self, path: str | Path) -> dict[str, int]:
-        """Nulls per always-required contract column of a staged bids file."""
-        with self.lake() as con:
-            cur = con.execute(self.lake_sql("staged_null_counts"), {"path": str(path)})
-            names = [d[0] for d in cur.description]
-            return dict(zip(names, (int(v) for v in cur.fetchone())))
-
-    def staged_integer_range(self, path: str | Path, column: str) -> tuple[int, str | None]:
-        """Rows of a staged bids file whose integer ``column`` lies outside int64, and the smallest such value."""
-        from counterbid.estimators.bid_contract import INTEGER_RANGE
-
-        low, high = INTEGER_RANGE
-        with self.lake() as con:
-            params = {"path": str(path), "low": low, "high": high}
-            outside, example = con.execute(render_sql("staged_integer_range", column=column), params).fetchone()
-            return int(outside), example
-
-    def staged_quality_faults(self, path: str | Path) -> tuple[int, int | None, str | None, str | None]:
-        """Rows of a staged file whose ``quality`` is missing or not > 0, and the first one (row, auction, value)."""
-        with self.lake() as con:
-            n, row, auction, quality = con.execute(self.sql("staged_quality_faults"), {"path": str(path)}).fetchone()
-            return int(n), None if row is None else int(row), auction, quality
-
-    def staged_arm_counts(self, path: str | Path) -> pd.DataFrame:
-        """Auctions and bids per arm of a staged bids file."""
-        with self.lake() as con:
-            return con.execute(self.lake_sql("staged_arm_counts"), {"path": str(path)}).df()
-
-    @contextlib.contextmanager
-    def staged_relations(self, *, day: str | Path, sample: str | Path | None = None) -> Iterator[duckdb.DuckDBPyConnection]:
-        """In-memory connection with the temp table ``staged_day`` (``day``: a file or a glob of the shards).
-
-        With ``sample`` (one shard's file or glob), also the temp table ``staged_sample``.
-        """
-        with self.lake() as con:
-            con.execute(self.lake_sql("staged_create_day"), {"path": str(day)})
-            if sample is not None:
-                con.execute(self.lake_sql("staged_create_sample"), {"path": str(sample)})
-            yield con
-
-    def staged_shard_has_auctions(self, path: str | Path) -> bool:
-        """Whether a staged shard (a file or a glob) holds an auction with at least two bids."""
-        with self.lake() as con:
-            return bool(con.execute(self.lake_sql("staged_shard_has_auctions"), {"path": str(path)}).fetchone()[0])
+        if self.dialect != "postgres":
+            raise InputError(f"{self.where}: a DuckDB results file has no roles; dashboards open it read-only "
+                             "(duckdb.connect(path, read_only=True))")
+        with self.session() as s:
+            migrate(s)
+            return grant_reader(s, role)
 
     def record_checks(self, recorder, results, *, experiment_id: str, ds: dt.date, run_id: str) -> int:
         """Store check outcomes with ``recorder(session, results, experiment_id=, ds=, run_id=, schema=)``."""
@@ -450,21 +367,3 @@ class ResultsHook(BaseHook):
                 return recorder(s, list(results), experiment_id=experiment_id, ds=ds, run_id=run_id, schema=self.schema)
 
         return self._with_retry(write, what="record checks")
-
-    def _lake_query(self, name: str, params: Mapping[str, Any], root) -> pa.Table:
-        with self.lake() as con:
-            try:
-                return con.sql(self.lake_sql(name), params=dict(params)).to_arrow_table()
-            except (duckdb.IOException, duckdb.InvalidInputException) as exc:
-                raise _lake_error(exc, root) from None
-            except duckdb.BinderException as exc:
-                first = str(exc).splitlines()[0]
-                raise InputError(f"{root}: cannot read the lake with statement {name!r} ({first})") from None
-
-
-def _lake_error(exc: Exception, root) -> InputError:
-    """One line naming the lake root for a DuckDB read error."""
-    if "No files found" in str(exc):
-        return InputError(f"{root}: no Parquet files under this root")
-    first = str(exc).splitlines()[0]
-    return InputError(f"{root}: a Parquet file of the lake cannot be read ({first})")

@@ -37,16 +37,17 @@ from counterbid.estimators import (
 from counterbid.estimators.checks import check_config
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.sequential import planned_days
-from counterbid.estimators.window import WINDOW_CHECKS, analysis_window
+from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
 from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedDay
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import write_shards
 
 from .check_runner import day_bid_quantiles, run_checks, write_check_results
 from .hooks import ResultsHook
+from .lake_hook import LakeHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
-from .stored_rows import check_flags, with_anytime_columns, with_stored_columns
+from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 
 __all__ = [
     "MissingPartitionError",
@@ -88,7 +89,7 @@ def refuse_segments(experiment: Experiment) -> None:
 
 
 def stage_partition(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     lake_root: str | Path,
     experiment: Experiment,
@@ -119,7 +120,7 @@ def stage_partition(
     refuse_segments(experiment)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
-    day_rows = hook.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
+    day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
     if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
         shutil.rmtree(staged.day, ignore_errors=True)
@@ -127,21 +128,21 @@ def stage_partition(
     shards = n_shards(day_rows, max_bids)
 
     def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
-        with hook.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
+        with lake.lake_partition_shard_batches(lake_root, experiment_id=experiment.id, ds=ds, n_shards=shards) as batches:
             write_shards(batches, folder, shards)
         # inside the folder, so it is replaced with the shards: what the Spark engine splits the lake into
         write_json({"shards": shards, "day_bids": day_rows, "max_bids_per_shard": max_bids},
                    folder / staged.day_manifest.name)
 
     replace_folder(fill, staged.day)
-    measured = stage_measured_weights(hook, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
+    measured = stage_measured_weights(lake, experiment=experiment, ds=ds, staged=staged, clicks_root=clicks_root,
                                       click_window_days=click_window_days)
     return {"day_bids": day_rows, "shards": shards, "max_bids_per_shard": max_bids, "folder": str(staged.folder),
             "measured_arms": [] if measured is None else list(dict.fromkeys(measured["arm"]))}
 
 
 def stage_measured_weights(
-    hook: ResultsHook,
+    lake: LakeHook,
     *,
     experiment: Experiment,
     ds: dt.date,
@@ -170,7 +171,7 @@ def stage_measured_weights(
     if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
         raise InputError(f"`click_window_days` must be an integer >= 1; got {click_window_days!r}")
     first_click = ds - dt.timedelta(days=click_window_days - 1)
-    clicks = hook.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
+    clicks = lake.clicks_position_weights(clicks_root, experiment_id=experiment.id, first_ds=first_click, ds=ds)
     fitted = measured_position_weights(clicks, experiment, source=f"{clicks_root} ({first_click}..{ds})")
     fitted["first_click_ds"] = first_click
     write_parquet(pa.Table.from_pandas(fitted, preserve_index=False), staged.measured_weights)
@@ -195,7 +196,8 @@ def staged_experiment(experiment: Experiment, staged: StagedPartition) -> tuple[
     return experiment.with_position_weights({a.name: weights[a.name] for a in experiment.arms if a.measured}), rows
 
 
-def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition, ds: dt.date) -> list[CheckResult]:
+def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Experiment, staged: StagedPartition,
+                         ds: dt.date) -> list[CheckResult]:
     """Every check run on one staged (experiment, day) before it is estimated.
 
     The schema gate (:func:`counterbid.operators.schema_gate.schema_gate`) first; when it passes,
@@ -211,9 +213,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     or excluded day is no reference: after a warm-up the first adapted day has nothing to compare
     with, and a market that stays moved stops being flagged once the old days leave the trailing
     window). When no error check failed, the day's own summary is staged
-    (``bid_quantiles.parquet``) for the write step to store.
+    (``bid_quantiles.parquet``) for the write step to store. ``hook`` (the results sink) gives the
+    stored history; ``lake`` reads the staged files, in DuckDB's dialect whatever the sink.
     """
-    results = schema_gate(hook, experiment=experiment, staged=staged)
+    results = schema_gate(lake, experiment=experiment, staged=staged)
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
@@ -232,10 +235,10 @@ def run_partition_checks(hook: ResultsHook, *, experiment: Experiment, staged: S
     # whole auctions), so the frame in memory is one shard; the counting checks count the whole day.
     # The sample is shard 0, or the first shard after it holding an auction with two bids or more.
     sampled = len(shards) > 1
-    sample = next((k for k in shards if hook.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
+    sample = next((k for k in shards if lake.staged_shard_has_auctions(staged.shard(k) / "*.parquet")),
                   shards[0]) if sampled else None
     sample_files = str(staged.shard(sample) / "*.parquet") if sampled else None
-    with hook.staged_relations(day=staged.day_files, sample=sample_files) as con:
+    with lake.staged_relations(day=staged.day_files, sample=sample_files) as con:
         results += list(run_checks(con, "staged_day", experiment, ds=ds, history_quantiles=history,
                                    sample_relation="staged_sample" if sampled else None,
                                    sample_shard=(sample, len(shards)) if sampled else None))
@@ -445,7 +448,7 @@ def estimate_partition(
         table.insert(0, "experiment_id", experiment.id)
         table.insert(1, "ds", ds)
         if span == "to_date":
-            table.insert(2, "first_ds", window.used[0])
+            table.insert(2, "first_ds", window.used[0] if window.used else None)
             table["days_used"] = window.days_used
             table["days_left_out"] = window.days_left_out
             table["n_days_used"] = len(window.used)
@@ -461,13 +464,40 @@ def estimate_partition(
         summary[f"{span}_bids"] = result.n_bids
         rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
+    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
+        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
+                                                                              flags=check_flags(failed_today)))
+        summary["to_date_status"] = pending_status(window)
     write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
-    if "to_date" in tables:
-        write_parquet(pa.Table.from_pandas(tables["to_date"], preserve_index=False), staged.estimates_to_date)
-    else:  # every day so far is left out: no experiment-to-date rows for this day
-        staged.estimates_to_date.unlink(missing_ok=True)
+    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
+    if not window.used:  # first_ds is all null: keep its type a date for both sinks
+        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
+                                     pa.nulls(to_date.num_rows, type=pa.date32()))
+    write_parquet(to_date, staged.estimates_to_date)
     write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
     return summary
+
+
+def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:
+    """Experiment-to-date rows of a day whose window uses no day yet: the day's (arm, metric) rows, no numbers.
+
+    Estimate, standard error, interval and anytime bounds are null, counts 0, ``first_ds`` null,
+    ``status`` says why (``warming_up``, ...); level, clustering, rule and floor are the day's, so
+    the views and the report read them like any other rows.
+    """
+    rows = day.copy()
+    for column in ("estimate", "std_error", "ci_low", "ci_high", "anytime_low", "anytime_high"):
+        rows[column] = float("nan")
+    rows["n_auctions"] = 0
+    rows["n_bids"] = 0
+    rows["status"] = status
+    rows.insert(2, "first_ds", None)
+    rows["days_used"] = window.days_used
+    rows["days_left_out"] = window.days_left_out
+    rows["n_days_used"] = 0
+    rows["n_days_left_out"] = len(window.left_out)
+    rows["anytime_horizon_auctions"] = pd.array([None] * len(rows), dtype="Int64")
+    return rows
 
 
 def write_partition(
@@ -476,7 +506,7 @@ def write_partition(
     """Replace the (experiment, day)'s rows of every results table in one transaction.
 
     The day's estimates, its experiment-to-date estimates (none when every day so far is left
-    out of the window), position weights, stratum pieces and bid-quantile summary.
+    out of the window: rows without numbers saying why), position weights, stratum pieces and bid-quantile summary.
 
     Returns
     -------

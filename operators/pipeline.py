@@ -1,8 +1,10 @@
 """Airflow 3 operators of the daily pipeline: load, validate, estimate, write.
 
-Each operator builds a :class:`~counterbid.operators.hooks.ResultsHook`, calls one function of
-:mod:`counterbid.operators.partition` for one (experiment, day), logs, and raises. Configuration
-is checked in ``__init__`` (a broken DAG fails when it is parsed); dates and paths are templated.
+Each operator builds the hooks it needs (:class:`~counterbid.operators.hooks.ResultsHook`: the
+results sink; :class:`~counterbid.operators.lake_hook.LakeHook`: the lake and the staged files),
+calls one function of :mod:`counterbid.operators.partition` for one (experiment, day), logs, and
+raises. Configuration is checked in ``__init__`` (a broken DAG fails when it is parsed); dates and
+paths are templated.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from counterbid.sql import validate_identifier
 
 from . import notify, partition
 from .hooks import DEFAULT_CONN_ID, ResultsHook
+from .lake_hook import LakeHook
 from .staging import StagedPartition
 
 __all__ = [
@@ -86,8 +89,13 @@ class _PartitionOperator(BaseOperator):
             raise InputError(f"{self.task_id}: `staging_root` must be a folder path")
 
     def hook(self) -> ResultsHook:
+        """The results sink (a DuckDB file or PostgreSQL)."""
         return ResultsHook(database=self.results_database or None, counterbid_conn_id=self.results_conn_id,
                            schema=self.results_schema)
+
+    def lake(self) -> LakeHook:
+        """In-memory DuckDB reads of the lake, the click log and the staged files."""
+        return LakeHook()
 
     def day(self):
         return parse_day(self.ds)
@@ -137,7 +145,7 @@ class LoadPartitionOperator(_PartitionOperator):
 
     def execute(self, context) -> dict:
         try:
-            out = partition.stage_partition(self.hook(), lake_root=self.lake_root, experiment=self.experiment(),
+            out = partition.stage_partition(self.lake(), lake_root=self.lake_root, experiment=self.experiment(),
                                             ds=self.day(), staging_root=self.staging_root,
                                             clicks_root=self.clicks_root or None, click_window_days=self.click_window_days,
                                             max_bids_per_shard=self.max_bids_per_shard)
@@ -170,7 +178,7 @@ class ValidatePartitionOperator(_PartitionOperator):
     def execute(self, context) -> dict:
         experiment, day = self.experiment(), self.day()
         staged = StagedPartition.at(self.staging_root, experiment.id, day)
-        results = partition.run_partition_checks(self.hook(), experiment=experiment, staged=staged, ds=day)
+        results = partition.run_partition_checks(self.hook(), self.lake(), experiment=experiment, staged=staged, ds=day)
         status = partition.record_checks(staged, results)
         partition.store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
         for r in results:

@@ -21,14 +21,13 @@ import pandas as pd  # noqa: E402
 
 from counterbid.estimators import MIXTURE_ARM  # noqa: E402
 from counterbid.estimators.intervals import POPULATION, format_level  # noqa: E402
+from counterbid.estimators.window import PENDING_FLAGS  # noqa: E402
 
 from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
-    "ANYTIME_NOTE", "ASSUMPTIONS", "MIXTURE_GAP_SE", "anytime_caption", "auction_caption", "cumulative_table", "day_status",
-    "format_cumulative", "interval_caption",
-    "window_caption",
-    "write_report",
+    "ANYTIME_NOTE", "ASSUMPTIONS", "EXPECTED_FLAGS", "MIXTURE_GAP_SE", "anytime_caption", "attention_flags", "auction_caption",
+    "cumulative_table", "day_status", "format_cumulative", "interval_caption", "window_caption", "write_report",
 ]
 
 #: What every number in the report rests on.
@@ -158,19 +157,68 @@ def _flags(statuses) -> set[str]:
     return {f for s in statuses for f in str(s).split(",") if f and f != "ok"}
 
 
-def day_status(statuses) -> str:
-    """One day's (or table's) status: ``'ok'`` or the sorted flags any of its rows carries."""
-    return ", ".join(sorted(_flags(statuses))) or "ok"
+#: Flags a metric carries by design on every row; they need no attention and are not shown as a
+#: day's status (welfare is published without an interval: docs/method.md, "Standard errors").
+EXPECTED_FLAGS = {"welfare_per_auction": frozenset({"no_interval"})}
+#: Flags of experiment-to-date rows that hold no number yet (estimators.window.PENDING_FLAGS).
+PENDING = frozenset(PENDING_FLAGS.values()) | {"left_out", "no_days"}
+
+
+def attention_flags(rows: pd.DataFrame) -> dict[str, list[str]]:
+    """Flags that need attention, each with the metrics (report labels) whose rows carry it.
+
+    Parameters
+    ----------
+    rows : pandas.DataFrame
+        Stored estimate rows with ``metric`` and ``status``.
+
+    Returns
+    -------
+    dict of str to list of str
+        Sorted flags, each metric's :data:`EXPECTED_FLAGS` left out (welfare's ``no_interval``).
+    """
+    found: dict[str, set[str]] = {}
+    for metric, status in zip(rows["metric"], rows["status"]):
+        for flag in _flags([status]) - EXPECTED_FLAGS.get(metric, frozenset()):
+            found.setdefault(flag, set()).add(metric)
+    order = list(_LABELS)
+    return {f: [_LABELS.get(m, m) for m in sorted(ms, key=lambda m: (order.index(m) if m in order else len(order), m))]
+            for f, ms in sorted(found.items())}
+
+
+def day_status(rows) -> str:
+    """One day's (or table's) status: ``'ok'``, or the flags that need attention with their metrics.
+
+    ``rows`` is a frame of stored rows (``metric``, ``status``): a flag on every metric's rows reads
+    alone (``warning``: a data check warned for the day), one on some metrics names them
+    (``few_bids (revenue / auction, lift vs control)``); a metric's expected flags are left out. A
+    sequence of statuses alone (no metrics) gives every flag.
+    """
+    if not isinstance(rows, pd.DataFrame):
+        return ", ".join(sorted(_flags(rows))) or "ok"
+    every = {_LABELS.get(m, m) for m in rows["metric"]}
+    parts = [flag if set(metrics) == every else f"{flag} ({', '.join(metrics)})"
+             for flag, metrics in attention_flags(rows).items()]
+    return ", ".join(parts) or "ok"
+
+
+def _pending(rows: pd.DataFrame) -> bool:
+    """Whether experiment-to-date rows hold no number yet (no day of their window used)."""
+    return len(rows) > 0 and "n_days_used" in rows and bool((rows["n_days_used"] == 0).all())
 
 
 def format_cumulative(table: pd.DataFrame) -> str:
     """The experiment-to-date table as text, one block per experiment."""
     blocks = []
     for exp_id, rows in table.groupby("experiment_id", sort=True):
+        if _pending(rows):  # warm-up (or every day left out): rows without numbers, saying why
+            blocks.append(f"{exp_id}: to {pd.Timestamp(rows['ds'].max()).date()}, no day used yet (status "
+                          f"{day_status(rows)})\n" + window_caption(rows))
+            continue
         first, last = rows["first_ds"].min(), rows["ds"].max()
         n_auc = int(rows.loc[rows["metric"] == "revenue_per_auction", "n_auctions"].max())
         head = (f"{exp_id}: {pd.Timestamp(first).date()} .. {pd.Timestamp(last).date()}, {n_auc} auctions, "
-                f"status {day_status(rows['status'])}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
+                f"status {day_status(rows)}; intervals {interval_caption(rows[rows['metric'] != 'realized_revenue_per_auction'])}")
         lines = [head, window_caption(rows), anytime_caption(rows)]
         if _has_anytime(rows):
             lines.append(ANYTIME_NOTE)
@@ -238,6 +286,8 @@ def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: 
     fig, ax = plt.subplots(figsize=(9, 4.2))
     day = daily[daily["metric"] == "revenue_lift_vs_control"]
     cum = to_date[to_date["metric"] == "revenue_lift_vs_control"]
+    if "n_days_used" in cum:
+        cum = cum[cum["n_days_used"] > 0]  # a warm-up day's rows hold no number to plot
     colours = _colours(daily)
     for arm, rows in day.groupby("arm", sort=False):
         colour = colours[arm]
@@ -306,7 +356,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         cum = cumulative[cumulative["experiment_id"] == exp_id]
         days = _mixture_days(daily)
         per_day = pd.DataFrame(index=days.index)
-        per_day["estimate status"] = daily.groupby("ds")["status"].agg(day_status)
+        per_day["estimate status"] = pd.Series({d: day_status(g) for d, g in daily.groupby("ds")})
         model_rows = daily[daily["metric"] != "realized_revenue_per_auction"]
         per_day["intervals"] = pd.Series({d: interval_caption(g) for d, g in model_rows.groupby("ds")})
         if has_checks:
@@ -328,13 +378,18 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
                 "estimated revenue disagrees with its realized revenue by more than 3 standard errors: bidders had "
                 "probably not adapted to the experiment, so those days' estimates (and the experiment-to-date numbers, "
                 "when the window includes them) violate the equilibrium assumption.")
-        warn_days = [d for d, s in per_day["estimate status"].items() if "warning" in s.split(", ")]
+        warn_days = [pd.Timestamp(d).date().isoformat() for d, g in daily.groupby("ds") if "warning" in _flags(g["status"])]
         if warn_days:
             notes.append(f"Data checks raised warnings on {', '.join(warn_days)}; those estimates carry the flag 'warning'.")
-        flagged_rows = {f for f in _flags(daily["status"]) if f != "warning"}
-        if flagged_rows:
-            notes.append(f"The estimator flagged rows ({', '.join(sorted(flagged_rows))}); the estimate status column "
-                         "lists the flags of each day's rows.")
+        flagged_days = []
+        for d, g in daily.groupby("ds"):
+            own = {f: m for f, m in attention_flags(g).items() if f != "warning"}
+            if own:
+                flagged_days.append(f"{pd.Timestamp(d).date().isoformat()}: "
+                                    + "; ".join(f"{f} on {', '.join(m)}" for f, m in own.items()))
+        if flagged_days:
+            notes.append(f"The estimator flagged rows that need attention ({' | '.join(flagged_days)}); the estimate "
+                         "status column lists each day's flags by metric.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.startswith("error").any():
             notes.append("Days whose data checks failed with an error have no estimates.")
         if has_checks and "data checks" in per_day and per_day["data checks"].str.contains("on one shard").any():
@@ -348,17 +403,26 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
             wl = weights.groupby("arm")["weight"].apply(lambda w: ", ".join(f"{x:.3g}" for x in w))
             weights_note = "<p class='small'>Position weights (top first): " + "; ".join(
                 f"{html.escape(a)} [{html.escape(wl[a])}] ({html.escape(src[a])})" for a in wl.index) + "</p>"
+        window_line = window_caption(cum) if len(cum) else ""
+        pending = _pending(cum)
+        if pending:  # the latest to-date rows hold no number yet: say why, show no table of n/a
+            cum_text = (f"<p>Experiment to date, to {pd.Timestamp(cum['ds'].max()).date()}: no day used yet "
+                        f"(status {html.escape(day_status(cum))}); the numbers start with the first day the window "
+                        f"keeps.</p>")
+            cum = cum.iloc[0:0]
         first, last = (pd.Timestamp(cum["first_ds"].min()).date(), pd.Timestamp(cum["ds"].max()).date()) if len(cum) else ("", "")
         n_auc = int(cum.loc[cum["metric"] == "revenue_per_auction", "n_auctions"].max()) if len(cum) else 0
+        if not pending:
+            cum_text = (f"<p>Experiment to date, {first} to {last}: {n_auc:,} auctions, each day estimated alone and the "
+                        "days combined by\ntheir auctions (the auction-weighted average of each day's counterfactual).</p>")
         cum_model = cum[cum["metric"] != "realized_revenue_per_auction"]
         used = list(dict.fromkeys(cum_model["cluster"]))
         speaks_for = POPULATION[used[0]] if len(used) == 1 else "; ".join(f"by {cl}, {POPULATION[cl]}" for cl in used)
         sections.append(f"""
 <section>
 <h2>{html.escape(exp_id)}</h2>
-<p>Experiment to date, {first} to {last}: {n_auc:,} auctions, each day estimated alone and the days combined by
-their auctions (the auction-weighted average of each day's counterfactual).</p>
-<p><strong>{html.escape(window_caption(cum)) if len(cum) else ""}</strong>. By default a day whose warm-up or drift
+{cum_text}
+<p><strong>{html.escape(window_line)}</strong>. By default a day whose warm-up or drift
 check failed is left out, as are the spec's burn-in and excluded days.</p>
 <p>
 Intervals: {html.escape(interval_caption(cum_model)) if len(cum) else "none"}{html.escape(f" (they speak for {speaks_for})") if speaks_for else ""};

@@ -126,6 +126,9 @@ MIGRATIONS = (
                  "they are tuned for",
               (Statement("results_v3_add_anytime_low"), Statement("results_v3_add_anytime_high"),
                Statement("results_v3_add_anytime_horizon_auctions"))),
+    Migration(4, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
+                 "excluded days) the rows hold no estimate and a status saying why; first_ds null, n_days_used 0",
+              _rebuild(4, "arm_estimates_to_date")),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

@@ -13,7 +13,7 @@ from counterbid.estimators import CheckResult, Experiment
 from counterbid.estimators.bid_contract import BID_CONTRACT
 
 from . import duckdb_types
-from .hooks import ResultsHook
+from .lake_hook import LakeHook
 from .staging import StagedPartition
 
 __all__ = ["CONTRACT_TYPES", "schema_gate"]
@@ -23,14 +23,15 @@ __all__ = ["CONTRACT_TYPES", "schema_gate"]
 CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
 
 
-def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
+def schema_gate(lake: LakeHook, *, experiment: Experiment, staged: StagedPartition) -> list[CheckResult]:
     """Minimal contract gate of a staged day: columns and types, rows present, no nulls, known arms,
     and, when the log has a ``quality`` column, a factor > 0 on every row (``schema_quality_positive``).
 
-    Every result has severity ``error``: a failure stops this (experiment, day).
+    Every result has severity ``error``: a failure stops this (experiment, day). The staged
+    files are read by ``lake`` (in-memory DuckDB), whatever the results sink.
     """
     path = staged.require(staged.day, step="load")
-    columns = hook.staged_columns(path)
+    columns = lake.staged_columns(path)
     results = []
     for name, allowed in CONTRACT_TYPES.items():
         found = columns.get(name)
@@ -44,23 +45,23 @@ def schema_gate(hook: ResultsHook, *, experiment: Experiment, staged: StagedPart
         return results  # counts below need the columns
     for name, found in columns.items():  # 128-bit (and UBIGINT) integers: accepted when every value fits int64
         if name in CONTRACT_TYPES and duckdb_types.needs_range_check(name, found):
-            outside, example = hook.staged_integer_range(path, name)
+            outside, example = lake.staged_integer_range(path, name)
             results.append(CheckResult(
                 check=f"schema_range_{name}", severity="error", passed=outside == 0, observed=float(outside),
                 threshold=0.0, details={"type": found, "allowed": "int64", "example": example}))
     if not all(r.passed for r in results):
         return results
-    counts = hook.staged_arm_counts(path)
+    counts = lake.staged_arm_counts(path)
     total = int(counts["n_bids"].sum())
     results.append(CheckResult(check="schema_rows", severity="error", passed=total >= 1, observed=float(total),
                                threshold=1.0, details={"experiment_id": experiment.id}))
-    for name, nulls in hook.staged_null_counts(path).items():
+    for name, nulls in lake.staged_null_counts(path).items():
         if BID_CONTRACT[name].nullable:
             continue
         results.append(CheckResult(check=f"schema_nulls_{name}", severity="error", passed=nulls == 0,
                                    observed=float(nulls), threshold=0.0, details={"rows": total}))
     if "quality" in columns:  # auctions rank by bid x quality: every row needs a factor > 0
-        n_faults, first_row, first_auction, first_quality = hook.staged_quality_faults(path)
+        n_faults, first_row, first_auction, first_quality = lake.staged_quality_faults(path)
         results.append(CheckResult(
             check="schema_quality_positive", severity="error", passed=n_faults == 0, observed=float(n_faults),
             threshold=0.0, details={"rows": total} | ({} if n_faults == 0 else {

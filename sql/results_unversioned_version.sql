@@ -1,8 +1,9 @@
 -- Version of a results schema written before versions were recorded, from its columns:
 -- 0 no arm_estimates table (nothing to migrate), 1 without the cluster column, 2 with it,
--- 3 when the to-date rows also carry the anytime-valid bounds.
+-- 3 when the to-date rows also carry the anytime-valid bounds, 4 when the to-date table's first_ds
+-- is nullable as well (warm-up rows without a first day used).
 with source as (
-    select table_name, column_name
+    select table_name, column_name, is_nullable
     from information_schema.columns
     where table_schema = $schema
         and table_name in ('arm_estimates', 'arm_estimates_to_date')
@@ -13,6 +14,9 @@ select
         when count(*) filter (where table_name = 'arm_estimates') = 0 then 0
         when count(*) filter (where table_name = 'arm_estimates' and column_name = 'cluster') = 0 then 1
         when count(*) filter (where table_name = 'arm_estimates_to_date' and column_name = 'anytime_low') = 0 then 2
-        else 3
+        when count(*) filter (
+            where table_name = 'arm_estimates_to_date' and column_name = 'first_ds' and is_nullable = 'YES'
+        ) = 0 then 3
+        else 4
     end as version
 from source

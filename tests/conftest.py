@@ -57,17 +57,27 @@ def three_arm_experiment():
 SPARK_TEST_CONFIG = {"spark.sql.shuffle.partitions": "4", "spark.driver.memory": "2g"}
 
 
+_NO_JAVA: list[str] = []  # the script's message, once it has failed: not rerun for every Spark test
+
+
 def _java_home() -> None:
-    """Point JAVA_HOME at a Java 17/21 runtime (``.ci/java-home``, which ``make test`` also runs) when unset."""
+    """Point JAVA_HOME at a Java 17/21 runtime (``.ci/java-home``, which ``make test`` also runs) when unset.
+
+    Without one the calling test fails with the script's one line naming what to install (never a skip).
+    """
     if os.environ.get("JAVA_HOME"):
         return
+    if _NO_JAVA:
+        pytest.fail(_NO_JAVA[0], pytrace=False)
     import subprocess
     from pathlib import Path
 
     script = Path(__file__).resolve().parents[1] / ".ci" / "java-home"
-    found = subprocess.run([str(script)], capture_output=True, text=True)
+    found = subprocess.run([str(script)], capture_output=True, text=True, timeout=900)  # as root it may install one
     if found.returncode != 0:
-        pytest.fail(found.stderr.strip() or "no Java runtime for Spark; run `make test`")
+        lines = found.stderr.strip().splitlines()
+        _NO_JAVA.append(lines[-1] if lines else "no Java runtime for Spark; run `make test`")
+        pytest.fail(_NO_JAVA[0], pytrace=False)
     os.environ["JAVA_HOME"] = found.stdout.strip()
 
 

@@ -17,7 +17,7 @@ _TREE = """
 import subprocess, sys
 grandchild = "import numpy as np, time; a = np.ones(300 * 2**20 // 8); time.sleep(1.0)"
 running = [subprocess.Popen([sys.executable, "-c", grandchild]) for _ in range(2)]
-assert all(p.wait() == 0 for p in running)
+assert all(p.wait(timeout=120) == 0 for p in running)
 """
 
 
@@ -34,7 +34,7 @@ print(json.dumps({{k: v for k, v in r.items() if k not in ("stdout", "stderr")}}
 
 def test_tree_memory_sums_the_processes_where_ru_maxrss_takes_the_largest():
     r = json.loads(subprocess.run([sys.executable, "-c", _MEASURE], check=True, capture_output=True,
-                                  text=True).stdout)
+                                  text=True, timeout=300).stdout)
     # wait4's ru_maxrss is the largest single peak among the child and its reaped descendants: one
     # grandchild (300 MiB + numpy's import, ~30 MiB), not two
     assert 300 < r["rss_mib"] < 450

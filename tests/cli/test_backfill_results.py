@@ -4,12 +4,15 @@ from __future__ import annotations
 
 import datetime as dt
 
+import numpy as np
+import pandas as pd
 import psycopg
 import pytest
 
 from counterbid.cli import main
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import load_experiments
+from counterbid.estimators import estimate_arms, load_experiments
+from counterbid.readers.bid_log import read_bids
 
 DAY = dt.date(2026, 3, 2)
 SPEC = """
@@ -52,6 +55,17 @@ def test_a_postgresql_url_writes_to_the_server_and_creates_no_folder(lake, tmp_p
     assert main(["backfill", *lake, "--results", postgres_url]) == 0, capsys.readouterr().err[-2000:]
     assert set(tmp_path.iterdir()) == before  # before this change: a folder 'postgresql:' with a DuckDB file inside
     with psycopg.connect(postgres_url) as con:
-        n, days = con.execute("select count(*), count(distinct ds) from main.arm_estimates").fetchone()
-        checks = con.execute("select count(*) from main.data_checks").fetchone()[0]
-    assert n > 0 and days == 1 and checks > 0
+        cur = con.execute("select experiment_id, ds, arm, metric, estimate, std_error from main.arm_estimates")
+        rows = pd.DataFrame.from_records(cur.fetchall(), columns=[d.name for d in cur.description])
+        checks = con.execute("select experiment_id, ds, \"check\" from main.data_checks").fetchall()
+    # the rows are the estimator's on the day's bids, every arm and metric of it
+    exp = load_experiments(tmp_path / "spec.yaml")["tiles"]
+    bids = read_bids(tmp_path / "bids").query("experiment_id == 'tiles'").reset_index(drop=True)
+    want = estimate_arms(bids, exp).table.set_index(["arm", "metric"])
+    got = rows.set_index(["arm", "metric"]).loc[want.index]
+    assert len(rows) == len(want) and set(rows["experiment_id"]) == {"tiles"} and set(rows["ds"]) == {DAY}
+    np.testing.assert_allclose(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float), rtol=1e-12)
+    np.testing.assert_allclose(got["std_error"].to_numpy(float), want["std_error"].to_numpy(float), rtol=1e-12)
+    # the day's checks: one row per check, of this experiment and day, the schema gate's among them
+    assert {(e, d) for e, d, _ in checks} == {("tiles", DAY)}
+    assert len({c for _, _, c in checks}) == len(checks) and {"schema_rows", "sample_ratio"} <= {c for _, _, c in checks}

@@ -44,7 +44,7 @@ def base(tmp_path_factory):
     folder = tmp_path_factory.mktemp("bid_types")
     (folder / "spec.yaml").write_text(yaml.safe_dump(SPEC))
     exp = parse_experiments(SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=600, rng=5, ds="2026-03-02")
+    frame = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=600, rng=5, ds="2026-03-02")
     table = pa.Table.from_pandas(frame.drop(columns=["value", "clicks"]), preserve_index=False)
     cents = np.round(frame["bid"].to_numpy() * 100).astype(np.int64)
     return folder, table, cents

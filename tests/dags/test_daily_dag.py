@@ -104,8 +104,10 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
             assert set(got.loc[realized, "cluster"]) == {"auction"}
             _assert_rows_equal(got, want.table)
             mine = to_date[(to_date["experiment_id"] == exp.id) & (to_date["ds"] == pd.Timestamp(day))]
-            if k == 0:  # the only day so far is a warm-up day: no experiment-to-date rows yet
-                assert mine.empty
+            if k == 0:  # the only day so far is a warm-up day: to-date rows without numbers, saying why
+                assert len(mine) == len(got) and set(mine["status"]) == {"warming_up,warning"}  # the warm-up check warned
+                assert mine["estimate"].isna().all() and mine["first_ds"].isna().all()
+                assert set(mine["n_days_used"]) == {0} and set(mine["days_left_out"]) == {f"{DAYS[0]} (warmup)"}
                 continue
             window = DAYS[1:k + 1]
             want = combine_pieces([p for d in window for p in pieces[d]], exp, cluster=DEFAULT_CLUSTER)
@@ -211,7 +213,7 @@ def test_rerun_replaces_rows_without_duplicates(three_days):
         lift = con.execute("select span, count(*) from arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from arm_estimates_cumulative").fetchall()
         weights = con.execute("select count(*) from arm_position_weights").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 4)]  # 2 experiments x 1 non-control arm x 3 days (2 to date: day 1 is left out)
+    assert lift == [("day", 6), ("to_date", 6)]  # 2 experiments x 1 non-control arm x 3 days (day 1's to date: no number)
     assert cumulative == [(DAYS[-1],)]
     assert weights == 3 * (3 + 3 + 2 + 2)  # days x (positions of each arm)
     assert not any((root / "staging").rglob("*.parquet"))
@@ -390,7 +392,11 @@ def test_three_days_into_postgres_match_duckdb_and_rerun_identically(three_days,
         lift = con.execute("select span, count(*) from main.arm_lift group by span order by span").fetchall()
         cumulative = con.execute("select distinct ds from main.arm_estimates_cumulative").fetchall()
         checks = con.execute("select count(distinct (experiment_id, ds)) from main.data_checks").fetchone()[0]
-    assert lift == [("day", 6), ("to_date", 4)]  # day 1 (warm-up) has no to-date rows and cumulative == [(DAYS[-1],)] and checks == 6
+    # day 1 (warm-up) has to-date rows too, without numbers (status warming_up): 3 days x 2 lift rows per span
+    assert lift == [("day", 6), ("to_date", 6)]
+    # the cumulative view holds the latest day only; every (experiment, day) has its checks stored
+    assert cumulative == [(DAYS[-1],)]
+    assert checks == len(DAYS) * len(load_experiments(conf["spec_path"])) == 6
     # the stored check outcomes too (the DuckDB file's are from its own latest run of the same days)
     check_cols = "experiment_id, ds, \"check\", severity, passed, observed, threshold, cast(details as varchar) as details"
     order = "order by experiment_id, ds, \"check\""

@@ -110,7 +110,7 @@ def test_partition_landing_between_tries_lets_the_retry_succeed(late_lake, airfl
     with duckdb.connect(conf["results_database"], read_only=True) as con:
         got = con.execute("select arm, metric, estimate from arm_estimates where ds = ? order by all", [LATE]).df()
     bids = pd.read_parquet(root / "bids" / f"ds={LATE}" / "strips.parquet")
-    want = estimate_arms(bids, load_experiments(conf["spec_path"])["strips"])
+    want = estimate_arms(bids, load_experiments(conf["spec_path"])["strips"]).table
     merged = want.merge(got, on=["arm", "metric"], suffixes=("", "_db"), validate="one_to_one")
     assert len(merged) == len(want) == len(got)
     assert (merged["estimate"] == merged["estimate_db"]).all()

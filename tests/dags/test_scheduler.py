@@ -121,6 +121,7 @@ def test_readme_shows_the_backfill_command_tested_here():
     assert README_BACKFILL.format(first="2026-03-02", last="2026-03-15") in readme
 
 
+@pytest.mark.timeout(1800)  # airflow db migrate, a scheduler, three runs and a counterbid backfill, each with a deadline
 def test_backfill_create_runs_the_days_in_order_and_writes_what_counterbid_backfill_writes(tmp_path):
     home, dags, logs = tmp_path / "airflow", tmp_path / "dags", tmp_path / "logs"
     for d in (home, dags, logs):

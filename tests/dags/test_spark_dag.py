@@ -152,7 +152,7 @@ def _day_with_a_shard_of_lone_bidders(day_folder: Path, shards: int) -> int:
     alone has nothing to estimate, and must add only its left-out auctions. Returns the number of bids.
     """
     experiment = parse_experiments(LONE_SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), experiment, n_bidders=4, n_auctions=600, rng=3)
+    frame = simulate_experiment(st.uniform(0, 1), experiment, n_bidders=4, n_auctions=600, rng=3)
     frame = frame.drop(columns=["ds", "value", "clicks"])
     lone = shard_of(frame["auction_id"], shards) == 0
     top = frame["position"] == 1

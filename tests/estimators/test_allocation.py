@@ -8,6 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.polynomial import Polynomial
 from scipy import integrate
+from scipy import stats as sps
 from scipy.special import comb
 
 from counterbid.estimators import InputError, allocation_rule, derivative_ratio, mixture_rule
@@ -64,12 +65,36 @@ def test_stable_at_sixty_bidders():
 
 
 def test_derivative_ratio_limits():
-    # one slot vs the 50/50 mixture of one and two slots, n = 3: x' = 1, y' = 2q exactly.
-    one, two = allocation_rule([1.0], 3), allocation_rule([1.0, 1.0], 3)
-    mix = mixture_rule([one, two], [0.5, 0.5])
-    q = np.array([0.0, 0.25, 1.0])
-    np.testing.assert_allclose(derivative_ratio(one, mix, q), 2 * q, atol=1e-12)
-    np.testing.assert_allclose(derivative_ratio(two, mix, q), 2 - 2 * q, atol=1e-12)
+    """Four bidders, one slot against two identical slots at 80/20.
+
+    With ``m = n - 1`` rivals, ``k`` identical slots are won when at least ``m - k + 1`` rivals
+    bid lower: ``x_k(q) = P[Bin(m, q) >= m - k + 1]``, whose derivative is the binomial density
+    ``x_k'(q) = m C(m-1, m-k) q^(m-k) (1-q)^(k-1)`` (the identity d/dq P[Bin(m, q) >= j] =
+    m C(m-1, j-1) q^(j-1) (1-q)^(m-j); Johnson, Kemp & Kotz, Univariate Discrete Distributions,
+    3rd ed., 2005, sec. 3.2, recalled from memory and checked here by scipy's binomial tail).
+    For m = 3: x_1' = 3 q^2, x_2' = 6 q (1 - q), so the mixture's y' = 1.2 q (1 + q) and
+
+        x_1'/y' = 5 q / (2 (1 + q))   (0 at q = 0, 5/4 = 1/0.8 at q = 1),
+        x_2'/y' = 5 (1 - q) / (1 + q)  (5 = 1/0.2 at q = 0, 0 at q = 1),
+
+    both 0/0 at one end, where the one-sided limits are the bounds 1/share or 0.
+    """
+    n = 4
+    one, two = allocation_rule([1.0], n), allocation_rule([1.0, 1.0], n)
+    mix = mixture_rule([one, two], [0.8, 0.2])
+    q = np.array([0.0, 1 / 3, 0.5, 1.0])
+    # The derivatives themselves, against scipy's binomial tail differentiated numerically.
+    inner = np.array([0.2, 0.5, 0.7])
+    h = 1e-6
+    for rule, k in ((one, 1), (two, 2)):
+        tail = lambda t: sps.binom.sf(n - 1 - k, n - 1, t)  # noqa: E731  P[Bin(3, t) >= 3 - k + 1]
+        np.testing.assert_allclose(rule.value(inner), tail(inner), atol=1e-12)
+        np.testing.assert_allclose((tail(inner + h) - tail(inner - h)) / (2 * h),
+                                   [3 * inner**2, 6 * inner * (1 - inner)][k - 1], atol=1e-6)
+    np.testing.assert_allclose(derivative_ratio(one, mix, q), 5 * q / (2 * (1 + q)), atol=1e-12)
+    np.testing.assert_allclose(derivative_ratio(two, mix, q), 5 * (1 - q) / (1 + q), atol=1e-12)
+    np.testing.assert_allclose(derivative_ratio(one, mix, [0.0, 1.0]), [0.0, 1 / 0.8], atol=1e-12)
+    np.testing.assert_allclose(derivative_ratio(two, mix, [0.0, 1.0]), [1 / 0.2, 0.0], atol=1e-12)
 
 
 def test_rejects_bad_weights():

@@ -45,12 +45,12 @@ SPEC = {
             ],
         },
         {
-            "id": "gallery-premium",
-            "control_arm": "one-premium",
+            "id": "maker-spotlight",
+            "control_arm": "large-tile",
             "start": "2026-03-02",
             "arms": [
-                {"name": "one-premium", "share": 0.5, "position_weights": [0.40, 0.08, 0.04]},
-                {"name": "two-premium", "share": 0.5, "position_weights": [0.30, 0.26, 0.04]},
+                {"name": "large-tile", "share": 0.6, "position_weights": [0.42, 0.06, 0.03]},
+                {"name": "tile-stack", "share": 0.4, "position_weights": [0.25, 0.22, 0.10]},
             ],
         },
         {
@@ -62,11 +62,11 @@ SPEC = {
 }
 EXPERIMENTS = parse_experiments(SPEC)
 VALUES = st.lognorm(0.5, scale=0.8)
-DISTRIBUTIONS = (st.lognorm(0.5, scale=0.8), st.uniform(0, 2), st.beta(2, 5, scale=3))
+DISTRIBUTIONS = (st.lognorm(0.5, scale=0.8), st.uniform(0, 1), st.beta(2, 5, scale=3))
 BIDDERS = ({4: 0.3, 6: 0.7}, 3, {2: 0.2, 5: 0.8}, 6)
 
 
-def _sim(exp_id="gallery-premium", *, n_auctions=2000, seed=0, n_bidders=5, values=VALUES, **kw):
+def _sim(exp_id="maker-spotlight", *, n_auctions=2000, seed=0, n_bidders=5, values=VALUES, **kw):
     return simulate_experiment(values, EXPERIMENTS[exp_id], n_bidders=n_bidders, n_auctions=n_auctions, rng=seed, **kw)
 
 
@@ -105,7 +105,7 @@ def test_check_config_rejects_bad_settings(layer, message):
 
 def test_spec_checks_section_is_applied():
     doc = {"experiments": [{**SPEC["experiments"][1], "checks": {"sample_ratio": {"alpha": 0.5}}}]}
-    exp = parse_experiments(doc)["gallery-premium"]
+    exp = parse_experiments(doc)["maker-spotlight"]
     r = sample_ratio_check(_sim(), exp)
     assert r.threshold == 0.5
 
@@ -126,13 +126,13 @@ def test_sample_ratio_matches_pearson_formula_and_passes_on_clean_data():
 
 
 def test_sample_ratio_fires_when_an_arm_loses_auctions():
-    bids = _sim("gallery-premium", n_auctions=4000, seed=4)
-    treated = bids.loc[bids["arm"] == "two-premium", "auction_id"].unique()
+    bids = _sim("maker-spotlight", n_auctions=4000, seed=4)
+    treated = bids.loc[bids["arm"] == "tile-stack", "auction_id"].unique()
     lost = set(treated[: len(treated) // 10])  # logging dropped 10 % of one arm's auctions
     broken = bids[~bids["auction_id"].isin(lost)]
-    r = sample_ratio_check(broken, EXPERIMENTS["gallery-premium"])
+    r = sample_ratio_check(broken, EXPERIMENTS["maker-spotlight"])
     assert not r.passed and r.observed < 1e-3
-    assert r.details["auctions"]["two-premium"] < r.details["expected"]["two-premium"]
+    assert r.details["auctions"]["tile-stack"] < r.details["expected"]["tile-stack"]
 
 
 def test_sample_ratio_single_arm_passes_without_test():
@@ -189,8 +189,8 @@ def _bunched(bids: pd.DataFrame, lo: float, hi: float) -> pd.DataFrame:
 
 
 def test_monotone_values_quiet_on_equilibrium_and_fires_on_bunched_bids():
-    exp = EXPERIMENTS["gallery-premium"]
-    bids = _sim("gallery-premium", n_auctions=1500, seed=6, n_bidders=4)
+    exp = EXPERIMENTS["maker-spotlight"]
+    bids = _sim("maker-spotlight", n_auctions=1500, seed=6, n_bidders=4)
     clean = monotone_values_check(bids, exp)
     assert clean.passed and clean.observed <= 0.05
     broken = monotone_values_check(_bunched(bids, 0.4, 0.6), exp)
@@ -199,7 +199,7 @@ def test_monotone_values_quiet_on_equilibrium_and_fires_on_bunched_bids():
 
 
 def test_monotone_values_skips_small_strata():
-    r = monotone_values_check(_sim(n_auctions=100, n_bidders=3), EXPERIMENTS["gallery-premium"])
+    r = monotone_values_check(_sim(n_auctions=100, n_bidders=3), EXPERIMENTS["maker-spotlight"])
     assert r.passed and r.observed is None and r.details["skipped_strata"] == {"3": 300}
 
 
@@ -207,8 +207,8 @@ def test_monotone_values_skips_small_strata():
 
 
 def test_shading_fires_on_a_gap_in_the_bid_distribution():
-    exp = EXPERIMENTS["gallery-premium"]
-    bids = _sim("gallery-premium", n_auctions=1500, seed=7, n_bidders=4)
+    exp = EXPERIMENTS["maker-spotlight"]
+    bids = _sim("maker-spotlight", n_auctions=1500, seed=7, n_bidders=4)
     b = bids["bid"].to_numpy()
     gap = np.where(b > np.median(b), b * 30, b)  # the upper half bids 30x: implied values explode
     r = shading_check(bids.assign(bid=gap), exp)
@@ -217,8 +217,8 @@ def test_shading_fires_on_a_gap_in_the_bid_distribution():
 
 
 def test_shading_lower_bound_flags_bids_above_values():
-    exp = EXPERIMENTS["gallery-premium"]
-    bids = _sim("gallery-premium", n_auctions=1500, seed=7, n_bidders=4)
+    exp = EXPERIMENTS["maker-spotlight"]
+    bids = _sim("maker-spotlight", n_auctions=1500, seed=7, n_bidders=4)
     r = shading_check(bids, exp, config={"shading": {"min_ratio": 3.0}})  # no one shades that much here
     assert not r.passed and r.observed > 0.5
 
@@ -227,7 +227,7 @@ def test_shading_lower_bound_flags_bids_above_values():
 
 
 def test_drift_quiet_on_a_settled_market_and_fires_on_unadapted_bidders():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     history = _sim(n_auctions=4000, seed=100)
     settled = drift_check(_sim(n_auctions=1500, seed=101), exp, history)
     assert settled.passed and settled.observed > 1e-3
@@ -240,7 +240,7 @@ def test_drift_quiet_on_a_settled_market_and_fires_on_unadapted_bidders():
 
 
 def test_drift_compares_strata_separately_with_bonferroni():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     mix = {3: 0.5, 6: 0.5}
     r = drift_check(_sim(n_auctions=1500, seed=1, n_bidders=mix), exp, _sim(n_auctions=3000, seed=2, n_bidders=mix))
     pvals = [t["pvalue"] for t in r.details["by_bidders"].values()]
@@ -253,7 +253,7 @@ def test_drift_compares_strata_separately_with_bonferroni():
 
 
 def test_bid_quantile_summary_is_numpy_quantiles_of_each_stratum():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     bids = _sim(n_auctions=800, seed=7, n_bidders={3: 0.5, 6: 0.5})
     summary = bid_quantile_summary(bids, exp)
     assert len(summary) == 2 * BID_QUANTILES and set(summary["n_bidders"]) == {3, 6}
@@ -267,7 +267,7 @@ def test_bid_quantile_summary_is_numpy_quantiles_of_each_stratum():
 
 
 def test_drift_from_stored_summaries_equals_drift_from_the_bids_they_summarise():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     history = _sim(n_auctions=3000, seed=30)
     today = _sim(n_auctions=1500, seed=31, belief_shares=[1.0, 0.0])
     from_bids = drift_check(today, exp, history)
@@ -278,7 +278,7 @@ def test_drift_from_stored_summaries_equals_drift_from_the_bids_they_summarise()
 def test_drift_pools_several_days_of_summaries_by_their_bids():
     # Two trailing days of different sizes: the pooled distribution is their bid-weighted mixture,
     # so the distance is close to scipy's two-sample distance against the two days' bids pooled.
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     day1, day2 = _sim(n_auctions=1000, seed=40), _sim(n_auctions=3000, seed=41, belief_shares=[1.0, 0.0])
     summaries = pd.concat([bid_quantile_summary(day1, exp).assign(ds=dt.date(2026, 3, 1)),
                            bid_quantile_summary(day2, exp).assign(ds=dt.date(2026, 3, 2))], ignore_index=True)
@@ -293,12 +293,12 @@ def test_drift_pools_several_days_of_summaries_by_their_bids():
 
 
 def test_drift_without_history_passes_and_says_so():
-    r = drift_check(_sim(n_auctions=300), EXPERIMENTS["gallery-premium"], None)
+    r = drift_check(_sim(n_auctions=300), EXPERIMENTS["maker-spotlight"], None)
     assert r.passed and r.observed is None and r.details["note"] == "no trailing days"
 
 
 def test_warmup_window_after_start_and_share_change():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     first = warmup_check(exp, "2026-03-02")
     assert not first.passed and first.observed == 0 and first.threshold == 3
     assert warmup_check(exp, dt.date(2026, 3, 4)).observed == 2
@@ -313,7 +313,7 @@ def test_warmup_window_after_start_and_share_change():
 
 
 def test_equilibrium_checks_order_history_window_and_summary():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     old = _sim(n_auctions=2000, seed=20, ds="2026-03-01", belief_shares=[1.0, 0.0])  # outside the window
     recent = _sim(n_auctions=2000, seed=21, ds="2026-03-08", first_auction_id=10**6)
     today = _sim(n_auctions=1500, seed=22, ds="2026-03-10", first_auction_id=2 * 10**6)
@@ -325,7 +325,7 @@ def test_equilibrium_checks_order_history_window_and_summary():
     assert all(r.passed for r in results), failure_summary(results, experiment_id=exp.id)
     assert worst_failure(results) is None
     assert failure_summary(results, experiment_id=exp.id, ds="2026-03-10") == \
-        f"gallery-premium 2026-03-10: all {len(results)} checks passed"
+        f"maker-spotlight 2026-03-10: all {len(results)} checks passed"
     frame = results_frame(results)
     assert list(frame.columns) == ["check", "severity", "passed", "observed", "threshold", "details"]
 
@@ -359,7 +359,7 @@ def test_failure_summary_lists_errors_first_with_observed_and_threshold():
 
 
 def test_checks_accept_prepared_bids():
-    exp = EXPERIMENTS["gallery-premium"]
+    exp = EXPERIMENTS["maker-spotlight"]
     bids = _sim(n_auctions=500)
     assert sample_ratio_check(prepare_bids(bids, exp), exp) == sample_ratio_check(bids, exp)
 
@@ -368,18 +368,19 @@ def test_broken_contract_raises_input_error():
     bids = _sim(n_auctions=200)
     bids.loc[5, "bid"] = np.nan
     with pytest.raises(InputError, match="column 'bid' row 5 is NaN"):
-        equilibrium_checks(bids, EXPERIMENTS["gallery-premium"])
+        equilibrium_checks(bids, EXPERIMENTS["maker-spotlight"])
 
 
 # -- false alarms and detection over many seeded datasets (slow) ------------------------------------
 
-FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift", "auction_dependence")
+FALSE_ALARM_CHECKS = ("sample_ratio", "monotone_values", "shading", "drift", "auction_dependence", "outlying_bids",
+                      "dominant_bids")
 
 
 def false_alarm_rates(n_datasets: int, n_auctions: int) -> dict[str, float]:
     """Share of clean equilibrium datasets on which each statistical check fails (defaults)."""
     fails = {c: 0 for c in FALSE_ALARM_CHECKS}
-    exps = [EXPERIMENTS["featured-rows"], EXPERIMENTS["gallery-premium"]]
+    exps = [EXPERIMENTS["featured-rows"], EXPERIMENTS["maker-spotlight"]]
     for s in range(n_datasets):
         exp, values, n = exps[s % 2], DISTRIBUTIONS[s % 3], BIDDERS[s % 4]
         history = simulate_experiment(values, exp, n_bidders=n, n_auctions=2 * n_auctions, rng=10_000 + s, ds="2026-03-08")
@@ -410,6 +411,7 @@ def warmup_detection_rates(exp_id: str, n_days: int, n_auctions: int) -> dict[st
 
 
 @pytest.mark.slow
+@pytest.mark.timeout(1800)  # 400 simulated days through every check: 5-15 minutes on two busy cores
 def test_false_alarm_rate_at_default_thresholds_is_at_most_two_percent():
     rates = false_alarm_rates(200, 1500)
     print("false-alarm rates over 200 clean datasets:", rates)
@@ -418,6 +420,6 @@ def test_false_alarm_rate_at_default_thresholds_is_at_most_two_percent():
 
 @pytest.mark.slow
 def test_unadapted_bidders_are_flagged_when_the_mixture_differs_from_control():
-    rates = warmup_detection_rates("gallery-premium", 40, 1500)
-    print("warm-up detection rates, gallery-premium (50/50 arms):", rates)
+    rates = warmup_detection_rates("maker-spotlight", 40, 1500)
+    print("warm-up detection rates, maker-spotlight (60/40 arms):", rates)
     assert rates["drift"] >= 0.8, rates

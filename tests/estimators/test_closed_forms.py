@@ -81,7 +81,7 @@ def test_truth_k_identical_slots(n, k):
     assert expected_welfare_per_auction(values, [1.0] * k, n) == pytest.approx(welfare, abs=1e-9)
 
 
-@pytest.mark.parametrize("n,shares", [(3, (0.5, 0.5)), (5, (0.7, 0.3)), (10, (0.9, 0.1)), (2, (0.6, 0.4))])
+@pytest.mark.parametrize("n,shares", [(4, (0.8, 0.2)), (5, (0.7, 0.3)), (10, (0.9, 0.1)), (2, (0.6, 0.4))])
 def test_estimator_on_exact_grid_uniform(n, shares):
     """One slot vs two slots with U[0,1] values, bids of the mixture's equilibrium.
 
@@ -103,20 +103,37 @@ def test_estimator_on_exact_grid_uniform(n, shares):
     assert out["_mixture", "revenue_per_auction"] == pytest.approx(mixture, abs=1e-6)
 
 
-def test_five_bidders_two_or_three_slots_every_mix_earns_one():
-    # Five bidders, U[0,1] values, two vs three identical slots (weight 1 for the top k):
-    # k(n-k)/(n+1) = 2*3/6 = 3*2/6 = 1.0, so both arms, and by revenue equivalence every mix of
-    # them, earn 1.0 per auction (Krishna 2010, ch. 3).
-    n = 5
+def test_seven_bidders_three_or_four_slots_every_mix_earns_three_halves():
+    """Seven bidders, U[0,1] values, three against four identical slots (weight 1 for the top k).
+
+    Derivation. With k identical slots and truthful uniform prices, the k highest of n values win
+    and each pays the (k+1)-th highest, the (n-k)-th smallest; by revenue equivalence (Krishna 2010,
+    ch. 3) pay-your-bid earns the same. For U[0,1] values the r-th smallest of n has mean
+    E[U_(r:n)] = r/(n+1) (it is Beta(r, n-r+1); David & Nagaraja 2003, sec. 2.1, section from memory), so revenue is
+
+        k E[U_(n-k:n)] = k (n-k) / (n+1),
+
+    symmetric in k <-> n-k: for n = 7, k = 3 and k = 4 both give 12/8 = 3/2, and so does every
+    mix of the two arms (the estimator is linear in the target rule). Welfare differs: the sum of
+    the top k means, sum_{r=1..k} (n+1-r)/(n+1) = 18/8 (three slots) and 22/8 (four slots).
+    """
+    n = 7
+    # Outside check of the order-statistic means: scipy.stats.beta(r, n - r + 1).mean().
+    for k in (3, 4):
+        assert k * st.beta(n - k, k + 1).mean() == pytest.approx(1.5, abs=1e-12)
+        assert expected_revenue_per_auction(st.uniform(0, 1), [1.0] * k, n) == pytest.approx(1.5, abs=1e-9)
+    assert expected_welfare_per_auction(st.uniform(0, 1), [1.0] * 3, n) == pytest.approx(18 / 8, abs=1e-9)
+    assert expected_welfare_per_auction(st.uniform(0, 1), [1.0] * 4, n) == pytest.approx(22 / 8, abs=1e-9)
     for s in (0.5, 0.1, 0.02):
-        exp = experiment([("two", 1 - s, [1.0, 1.0]), ("three", s, [1.0, 1.0, 1.0])])
-        mix = mixture_rule([allocation_rule([1.0, 1.0], n), allocation_rule([1.0, 1.0, 1.0], n)], [1 - s, s])
+        exp = experiment([("three", 1 - s, [1.0] * 3), ("four", s, [1.0] * 4)])
+        mix = mixture_rule([allocation_rule([1.0] * 3, n), allocation_rule([1.0] * 4, n)], [1 - s, s])
         bid_of_q = lambda q: q - mix.integral(q) / mix.value(q)  # noqa: E731
-        # Identical top two slots in every arm: welfare is not identified (revenue is).
+        # Identical top three slots in every arm: welfare is not identified (revenue is).
         with pytest.warns(EstimatorWarning, match="not identified"):
             out = estimate_arms(grid_bids(bid_of_q, n, 20000, exp), exp).table.set_index(["arm", "metric"])["estimate"]
-        assert out["two", "revenue_per_auction"] == pytest.approx(1.0, abs=1e-6)
-        assert out["three", "revenue_per_auction"] == pytest.approx(1.0, abs=1e-6)
-        # The realized per-arm average ranks three slots higher on the same bids: the arm that sells
+        assert out["three", "revenue_per_auction"] == pytest.approx(1.5, abs=1e-6)
+        assert out["four", "revenue_per_auction"] == pytest.approx(1.5, abs=1e-6)
+        assert out["_mixture", "revenue_per_auction"] == pytest.approx(1.5, abs=1e-6)
+        # The realized per-arm average ranks four slots higher on the same bids: the arm that sells
         # more clicks looks better, although both earn the same once bidders adapt.
-        assert out["three", "realized_revenue_per_auction"] > out["two", "realized_revenue_per_auction"]
+        assert out["four", "realized_revenue_per_auction"] > out["three", "realized_revenue_per_auction"]

@@ -101,7 +101,7 @@ def test_mixture_row_is_the_direct_l_statistic_of_the_mixture_rule():
 
 def test_prepared_bids_and_categorical_columns_give_the_same_rows():
     exp = _experiment()
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=5_000, rng=5)
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=5_000, rng=5)
     plain = estimate_arms(bids, exp)
     categorical = bids.assign(arm=bids["arm"].astype("category"), experiment_id=pd.Categorical(["e"] * len(bids)))
     pd.testing.assert_frame_equal(estimate_arms(categorical, exp).table, plain.table)
@@ -114,7 +114,7 @@ def test_prepared_bids_and_categorical_columns_give_the_same_rows():
 def test_duplicate_bidder_is_found_across_check_blocks(monkeypatch):
     monkeypatch.setattr(bids_module, "_PAIR_BLOCK", 1_000)
     exp = _experiment()
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=3, n_auctions=2_000, rng=7)
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=2_000, rng=7)
     estimate_arms(bids, exp)  # clean: passes block by block
     dup = pd.concat([bids.iloc[:4_500], bids.iloc[[4_499]], bids.iloc[4_500:]], ignore_index=True)
     with pytest.raises(InputError, match=r"bids twice in auction .*rows 4499 and 4500"):

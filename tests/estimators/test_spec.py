@@ -138,3 +138,40 @@ def test_analysis_window_keys_burn_in_and_excluded_days(tmp_path):
 def test_analysis_window_keys_refuse_bad_values(over, message):
     with pytest.raises(InputError, match=message):
         parse_experiments(doc(**over), source="spec.yaml")
+
+
+@pytest.mark.parametrize("bad_id", ["it's", 'say "hi"', "a b", "_hidden", "-dash", "x" * 129, "semi;colon"])
+def test_experiment_ids_are_checked_when_the_spec_loads(tmp_path, bad_id):
+    # an id names staging folders, lake partitions and result rows: the arm names' alphabet, refused at load
+    path = tmp_path / "spec.yaml"
+    path.write_text("experiments:\n  - id: " + repr(bad_id).replace("\\'", "''") + "\n    control_arm: a\n"
+                    "    arms:\n      - {name: a, share: 1.0, position_weights: [0.3]}\n")
+    with pytest.raises(InputError) as info:
+        load_experiments(path)
+    message = str(info.value)
+    assert "\n" not in message and message.startswith(f"{path}: experiments[0]")
+    assert f"experiment id {bad_id!r} must be 1-128 characters" in message
+
+
+def test_plain_ids_still_load():
+    for good in ("summer.strip-v2", "E_7", 42):
+        assert list(parse_experiments(doc(id=good))) == [str(good)]
+
+
+@pytest.mark.parametrize("value,message", [
+    (0, "'max_bid' must be a finite number > 0; got 0"),
+    (-3.0, "'max_bid' must be a finite number > 0"),
+    (float("inf"), "'max_bid' must be a finite number > 0"),
+    ("40", "'max_bid' must be a finite number > 0; got '40'"),
+    (True, "'max_bid' must be a finite number > 0; got True"),
+])
+def test_max_bid_is_validated_like_the_other_keys(value, message):
+    with pytest.raises(InputError, match=message):
+        parse_experiments(doc(max_bid=value), source="spec.yaml")
+
+
+def test_max_bid_below_the_floor_is_refused_and_a_good_one_kept():
+    with pytest.raises(InputError, match=r"'max_bid' 0\.5 lies below the floor 1\.0"):
+        parse_experiments(doc(max_bid=0.5, floor=1.0))
+    assert parse_experiments(doc(max_bid=40))["e1"].max_bid == 40.0
+    assert parse_experiments(doc())["e1"].max_bid is None

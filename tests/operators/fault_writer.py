@@ -6,6 +6,13 @@
 ``days DB EXPERIMENT FIRST_DAY N_DAYS ROUNDS ROWS [PAUSE]``
     Rewrite ``N_DAYS`` days ``ROUNDS`` times over (a backfill loop), one transaction per day,
     ``PAUSE`` seconds apart (default 0; tasks of a real backfill are seconds apart).
+``partition DB STAGING EXPERIMENT DAY [MARKER]``
+    The pipeline's write step (:func:`counterbid.operators.partition.write_partition`) of a day the
+    test staged and estimated, leaving the staging folder in place. With ``MARKER``, the file is
+    created when the *second* results table's insert is about to run (the first table's rows are
+    replaced, the second's deleted: mid-write) and the writer then waits inside its transaction
+    until ``MARKER.release`` exists (at most 120 s), so the test can kill it or cut its connection
+    there. A PostgreSQL session's backend pid is written into the marker.
 ``contend DB EXPERIMENT DAY ROWS RUN_ID GATE [NAME]``
     Like ``write``, but first builds its rows, creates ``GATE/NAME.ready`` (NAME defaults to
     EXPERIMENT, so writers of one experiment can share a gate) and waits for
@@ -67,6 +74,40 @@ class _MarkingHook(ResultsHook):
         return super().sql(name, **identifiers)
 
 
+class _HoldingHook(ResultsHook):
+    """Creates ``marker`` before the second insert statement and waits inside the transaction for its release."""
+
+    def __init__(self, *, marker: Path, **kwargs) -> None:
+        super().__init__(**kwargs)
+        self.marker = marker
+        self.inserts = 0
+        self.backend_pid = None
+
+    def session(self, *, read_only: bool = False):
+        import contextlib
+
+        @contextlib.contextmanager
+        def opened():
+            with super(_HoldingHook, self).session(read_only=read_only) as s:
+                if s.dialect == "postgres" and not read_only:
+                    self.backend_pid = s.con.info.backend_pid
+                yield s
+
+        return opened()
+
+    def sql(self, name: str, **identifiers: str) -> str:
+        if name.startswith("results_insert_"):
+            self.inserts += 1
+            if self.inserts == 2:
+                self.marker.write_text(f"{self.backend_pid or ''}\n")
+                release, deadline = self.marker.with_name(self.marker.name + ".release"), time.monotonic() + 120
+                while not release.exists():
+                    if time.monotonic() > deadline:
+                        raise SystemExit("not released within 120 s")
+                    time.sleep(0.01)
+        return super().sql(name, **identifiers)
+
+
 class _CountingHook(ResultsHook):
     """Counts every lock error the hook's retry loop absorbs (each one is a refused attempt)."""
 
@@ -90,6 +131,13 @@ def main(argv: list[str]) -> int:
         day, rows, run_id = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5]
         hook = _MarkingHook(database=db, marker=Path(argv[6])) if len(argv) > 6 else ResultsHook(database=db)
         hook.replace_partition(experiment_id=experiment_id, ds=day, tables=partition_tables(experiment_id, day, rows, run_id))
+        return 0
+    if command == "partition":
+        from counterbid.operators.partition import write_partition
+
+        staging, experiment_id, day = argv[2], argv[3], dt.date.fromisoformat(argv[4])
+        hook = _HoldingHook(database=db, marker=Path(argv[5])) if len(argv) > 5 else ResultsHook(database=db)
+        print(json.dumps(write_partition(hook, experiment_id=experiment_id, ds=day, staging_root=staging, cleanup=False)))
         return 0
     if command == "contend":
         day, rows, run_id, gate = dt.date.fromisoformat(argv[3]), int(argv[4]), argv[5], Path(argv[6])

@@ -32,7 +32,7 @@ SPEC = {"experiments": [{"id": "tiles", "control_arm": "plain", "start": "2026-0
 
 def _bids(n_auctions=400, seed=1, first_auction_id=0) -> pd.DataFrame:
     exp = parse_experiments(SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=n_auctions, rng=seed,
+    frame = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=n_auctions, rng=seed,
                                 first_auction_id=first_auction_id)
     return frame.drop(columns=["ds", "value", "clicks"])
 
@@ -156,8 +156,9 @@ def test_lake_cases_leave_no_rows_in_postgres(write_day, step, airflow_db, tmp_p
                 assert n == 0, table
 
 
-def test_sql_looking_experiment_id_is_data_and_refused_by_name(airflow_db, tmp_path, capfd, caplog):
-    """An id like ``'; drop table ...`` travels as a bound value; it cannot name a folder, so it fails alone."""
+def test_sql_looking_experiment_id_is_refused_when_the_spec_loads(airflow_db, tmp_path, capfd, caplog):
+    """An id like ``'; drop table ...`` is refused by the spec's own rules (arm names' alphabet), in one
+    line naming it, before any experiment is loaded: no staging folder, no row, the table untouched."""
     spec = {"experiments": [SPEC["experiments"][0], {**SPEC["experiments"][0], "id": EVIL}]}
 
     def both(day):
@@ -166,13 +167,13 @@ def test_sql_looking_experiment_id_is_data_and_refused_by_name(airflow_db, tmp_p
 
     run, conf, text = _pipeline(tmp_path, (capfd, caplog), both, spec=spec)
     assert run.state == "failed"
-    states = {(t, i): s for t, i, s, _ in run.tasks}
-    assert sorted(s for (t, _), s in states.items() if t == "experiment.write") == ["success", "upstream_failed"]
-    line = _one_line(text, r"(InputError|AirflowFailException): experiment id")
-    assert "cannot name a staging folder" in line and "drop table arm_estimates" in line
-    with duckdb.connect(conf["results_database"], read_only=True) as con:  # the table is still there
-        ids = con.execute("select distinct experiment_id from arm_estimates").fetchall()
-    assert ids == [("tiles",)]
+    states = {t: s for t, _, s, _ in run.tasks}
+    assert states["active_experiments"] == "failed", states
+    assert not any(t.startswith("experiment.") and s == "success" for t, s in states.items()), states
+    line = _one_line(text, r"InputError: .*experiment id")
+    assert f"experiments[1]: experiment id {EVIL!r} must be 1-128 characters" in line
+    assert not (tmp_path / "stage").exists()
+    _nothing_written(conf)
 
 
 # -- bid-log and spec cases: counterbid estimate -----------------------------------------------------

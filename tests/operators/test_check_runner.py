@@ -18,17 +18,17 @@ from counterbid.operators.contract import CONTRACT_CHECKS
 SPEC = {
     "experiments": [
         {
-            "id": "gallery-premium",
-            "control_arm": "one-premium",
+            "id": "maker-spotlight",
+            "control_arm": "large-tile",
             "start": "2026-03-02",
             "arms": [
-                {"name": "one-premium", "share": 0.5, "position_weights": [0.40, 0.08, 0.04]},
-                {"name": "two-premium", "share": 0.5, "position_weights": [0.30, 0.26, 0.04]},
+                {"name": "large-tile", "share": 0.6, "position_weights": [0.42, 0.06, 0.03]},
+                {"name": "tile-stack", "share": 0.4, "position_weights": [0.25, 0.22, 0.10]},
             ],
         }
     ]
 }
-EXP = parse_experiments(SPEC)["gallery-premium"]
+EXP = parse_experiments(SPEC)["maker-spotlight"]
 VALUES = st.lognorm(0.5, scale=0.8)
 
 

@@ -21,6 +21,7 @@ from counterbid.estimators.checks import bid_quantile_summary, equilibrium_check
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results, run_checks
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 DAY = dt.date(2026, 5, 4)
@@ -52,7 +53,7 @@ def hook(tmp_path):
 
 
 def _staged(hook, lake, experiment, tmp_path, max_bids=MAX_BIDS):
-    out = partition.stage_partition(hook, lake_root=lake, experiment=experiment, ds=DAY,
+    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=experiment, ds=DAY,
                                     staging_root=tmp_path / "stage", max_bids_per_shard=max_bids)
     return StagedPartition.at(tmp_path / "stage", experiment.id, DAY), out
 
@@ -71,7 +72,7 @@ def test_counting_checks_are_exact_and_distribution_checks_read_shard_zero_only(
     assert out["shards"] == 3
     day, shard0 = _frame(staged.day), _frame(staged.shard(0))
     assert 0 < len(shard0) < len(day) == out["day_bids"]
-    results = _by_name(partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY))
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
     on_day = _by_name(equilibrium_checks(day, experiment, ds=DAY))
     on_shard0 = _by_name(equilibrium_checks(shard0, experiment, ds=DAY))
     for name in COUNTING:  # (a) exact over the whole day
@@ -97,14 +98,14 @@ def test_counting_checks_are_exact_and_distribution_checks_read_shard_zero_only(
         stored = read_check_results(con, experiment_id="cards", ds=DAY).set_index("check")
     assert '"sample": {' in stored.loc["shading", "details"] and '"sample"' not in stored.loc["sample_ratio", "details"]
     status = hook.fetch_df("report_day_check_status", {"experiment_id": "cards"})  # what the report's day column shows
-    assert status["n_on_sample"].tolist() == [len(DISTRIBUTION)]
+    assert status["n_on_sample"].tolist() == [len(DISTRIBUTION) + 2]  # and outlying_bids, dominant_bids (fences from the sample)
 
 
 def test_drift_on_shard_zero_against_trailing_summaries(hook, lake, experiment, tmp_path):
     staged, _ = _staged(hook, lake, experiment, tmp_path)
     before = _frame(lake / f"ds={DAY - dt.timedelta(days=1)}")
     history = bid_quantile_summary(before, experiment).assign(ds=DAY - dt.timedelta(days=1))
-    with hook.staged_relations(day=staged.day_files, sample=str(staged.shard(0) / "*.parquet")) as con:
+    with LakeHook().staged_relations(day=staged.day_files, sample=str(staged.shard(0) / "*.parquet")) as con:
         results = _by_name(run_checks(con, "staged_day", experiment, ds=DAY, history_quantiles=history,
                                       sample_relation="staged_sample", sample_shard=(0, 3)))
     want = _by_name(equilibrium_checks(_frame(staged.shard(0)), experiment, ds=DAY, history=history))["drift"]
@@ -115,7 +116,7 @@ def test_drift_on_shard_zero_against_trailing_summaries(hook, lake, experiment, 
 def test_a_day_with_one_shard_is_checked_whole_as_before(hook, lake, experiment, tmp_path):
     staged, out = _staged(hook, lake, experiment, tmp_path, max_bids=1_000_000)
     assert out["shards"] == 1
-    results = _by_name(partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY))
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
     on_day = _by_name(equilibrium_checks(_frame(staged.day), experiment, ds=DAY))
     for name in COUNTING + DISTRIBUTION:
         assert results[name] == on_day[name] and "sample" not in results[name].details
@@ -130,7 +131,7 @@ def test_a_sample_ratio_fault_in_every_shard_fails_at_the_whole_day_p_value(hook
         pq.write_table(pq.read_table(path).filter(pads.field("auction_id").isin(tall[: len(tall) // 4]) == False),  # noqa: E712
                        path)
     day = _frame(staged.day)
-    results = _by_name(partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY))
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
     want = sample_ratio_check(day, experiment)
     assert not want.passed and want.observed < 1e-3
     assert results["sample_ratio"] == want

@@ -14,17 +14,17 @@ from counterbid.operators.contract import CONTRACT_CHECKS, build_suites, run_con
 SPEC = {
     "experiments": [
         {
-            "id": "gallery-premium",
-            "control_arm": "one-premium",
+            "id": "maker-spotlight",
+            "control_arm": "large-tile",
             "floor": 0.01,
             "arms": [
-                {"name": "one-premium", "share": 0.5, "position_weights": [0.40, 0.08, 0.04]},
-                {"name": "two-premium", "share": 0.5, "position_weights": [0.30, 0.26, 0.04]},
+                {"name": "large-tile", "share": 0.6, "position_weights": [0.42, 0.06, 0.03]},
+                {"name": "tile-stack", "share": 0.4, "position_weights": [0.25, 0.22, 0.10]},
             ],
         }
     ]
 }
-EXP = parse_experiments(SPEC)["gallery-premium"]
+EXP = parse_experiments(SPEC)["maker-spotlight"]
 
 
 @pytest.fixture(scope="module")
@@ -102,7 +102,7 @@ def test_bids_per_auction_bounds(clean):
 def test_one_arm_per_auction(clean):
     f = clean.copy()
     first = f.index[_first_auction(f)]
-    other = "two-premium" if f.loc[first[0], "arm"] == "one-premium" else "one-premium"
+    other = "tile-stack" if f.loc[first[0], "arm"] == "large-tile" else "large-tile"
     f.loc[first[-1], "arm"] = other
     assert _failed(_run(f)) == ["contract_one_arm"]
 

@@ -30,6 +30,8 @@ from counterbid.operators.hooks import ResultsHook, is_lock_error
 WRITER = Path(__file__).with_name("fault_writer.py")
 DAY = dt.date(2026, 3, 2)
 TABLES = ("arm_estimates", "arm_estimates_to_date", "arm_position_weights")
+#: Longest wait for a child process or a lock (seconds); every loop below gives up after it.
+WAIT_S = 240
 
 
 def _writer(*args) -> list[str]:
@@ -71,8 +73,10 @@ def test_four_concurrent_writers_contend_and_all_land(tmp_path):
 
     The writers build their rows first and wait at a gate, so all four open the file within a few
     milliseconds of each other while each holds it for a whole transaction of 20,000 rows; with
-    one process at a time allowed on the file, at least three of them must be refused at least
-    once, however loaded the machine (a slow writer only holds the lock longer).
+    one process at a time allowed on the file, the three that do not open it first must be refused
+    at least once (a slow writer only holds the lock longer). Only a writer descheduled for longer
+    than another's whole transaction could slip into a gap unrefused; measured on the shared
+    2-core machine: exactly 3 of 4 refused in each of 16 runs (3 to 10 refusals each).
     """
     db = tmp_path / "results.duckdb"
     gate = tmp_path / "gate"
@@ -92,8 +96,8 @@ def test_four_concurrent_writers_contend_and_all_land(tmp_path):
         assert p.returncode == 0, err[-2000:]
         reports.append(json.loads(out.strip().splitlines()[-1]))
     refused = [r["lock_errors"] for r in reports]
-    # Contention happened: writers were refused the lock and waited (not one after the other by luck).
-    assert sum(1 for n in refused if n > 0) >= 1, refused
+    # Contention happened: every writer but the first was refused the lock and waited.
+    assert sum(1 for n in refused if n > 0) >= 3, refused
     # The writers' replace windows overlap (one began before another committed), yet they serialize.
     windows = sorted((r["started"], r["committed"]) for r in reports)
     assert any(later[0] < earlier[1] for earlier, later in zip(windows, windows[1:])), windows
@@ -137,7 +141,9 @@ def test_polling_reader_never_sees_half_a_day(tmp_path, record_property):
     lockouts: dict[str, list[float]] = {"hook": [], "tight": []}
     snapshots = 0
     seen_commits: list[int] = []
+    deadline = time.monotonic() + WAIT_S
     while writer.poll() is None:
+        _before_deadline(deadline, writer, "the backfill writer")
         # Alternate the hook's connection (jittered exponential back-off up to 2 s) with a tight
         # 5 ms poll, which measures how long the writer really holds the file.
         how = "hook" if snapshots % 2 == 0 else "tight"
@@ -174,15 +180,24 @@ def test_polling_reader_never_sees_half_a_day(tmp_path, record_property):
               f"median {sorted(waits)[len(waits) // 2]:.4f} s; commits seen {sorted(set(seen_commits))}")
 
 
+def _before_deadline(deadline: float, child: subprocess.Popen, what: str) -> None:
+    """Fail (and kill ``child``) once ``deadline`` has passed."""
+    if time.monotonic() > deadline:
+        child.kill()
+        child.wait(timeout=30)
+        pytest.fail(f"{what} did not finish within {WAIT_S} s")
+
+
 @contextlib.contextmanager
 def _tight_open(db: Path):
-    """Read-only connection, retrying every 5 ms while another process holds the file."""
+    """Read-only connection, retrying every 5 ms (for at most ``WAIT_S``) while another process holds the file."""
+    deadline = time.monotonic() + WAIT_S
     while True:
         try:
             con = duckdb.connect(str(db), read_only=True)
             break
         except duckdb.Error as exc:
-            if not is_lock_error(exc):
+            if not is_lock_error(exc) or time.monotonic() > deadline:
                 raise
             time.sleep(0.005)
     try:
@@ -236,7 +251,9 @@ def test_polling_reader_on_postgres_is_never_refused_or_blocked(postgres_url, re
                               text=True)
     latencies: list[float] = []
     seen_rounds: list[tuple] = []
+    deadline = time.monotonic() + WAIT_S
     while writer.poll() is None:
+        _before_deadline(deadline, writer, "the backfill writer")
         started = time.perf_counter()
         with psycopg.connect(postgres_url) as con:
             per_day = con.execute(

@@ -22,7 +22,9 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results
+from counterbid.operators.contract import CONTRACT_CHECKS
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.pipeline import failed_checks_message
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
@@ -58,7 +60,7 @@ def _lake_day(root, day):
 
 
 def _stage(hook, lake, experiment, tmp_path, day, **kw):
-    return partition.stage_partition(hook, lake_root=lake / "bids", experiment=experiment, ds=day,
+    return partition.stage_partition(LakeHook(), lake_root=lake / "bids", experiment=experiment, ds=day,
                                      staging_root=tmp_path / "stage", **kw)
 
 
@@ -87,10 +89,14 @@ def test_stage_writes_only_the_day_split_into_shards_by_auction(hook, lake, expe
 def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
     _stage(hook, lake, experiment, tmp_path, START)
     staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
-    results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=START)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=START)
     gate = [r for r in results if r.check.startswith("schema_")]
     assert gate and all(r.passed and r.severity == "error" for r in gate)
-    assert len(results) > len(gate)  # the full check runner ran after the gate
+    # the full check runner ran after the gate: every contract, experiment and equilibrium check
+    ran = {r.check for r in results} - {r.check for r in gate}
+    assert ran >= set(CONTRACT_CHECKS) | {"sample_ratio", "min_auctions_per_arm", "min_auctions_per_stratum",
+                                         "monotone_values", "shading", "drift", "warmup"}, sorted(ran)
+    assert {"schema_rows", "schema_known_arms", "schema_column_bid", "schema_nulls_bid"} <= {r.check for r in gate}
     assert all(r.passed for r in results if r.severity == "error")
     # the experiment's first day is inside its warm-up: a warning, not an error
     assert {r.check for r in results if not r.passed} == {"warmup"}
@@ -102,7 +108,7 @@ def _gate_on(hook, experiment, tmp_path, frame):
     staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
     staged.shard(0).mkdir(parents=True, exist_ok=True)
     pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), staged.shard(0) / "part-0.parquet")
-    return staged, schema_gate(hook, experiment=experiment, staged=staged)
+    return staged, schema_gate(LakeHook(), experiment=experiment, staged=staged)
 
 
 def test_schema_gate_lists_every_failing_column(hook, lake, experiment, tmp_path):
@@ -140,7 +146,7 @@ def test_estimate_matches_estimate_arms_and_write_is_idempotent(hook, lake, expe
     day = START + dt.timedelta(days=1)
     _stage(hook, lake, experiment, tmp_path, day)
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
-    partition.record_checks(staged, schema_gate(hook, experiment=experiment, staged=staged))
+    partition.record_checks(staged, schema_gate(LakeHook(), experiment=experiment, staged=staged))
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
     want = estimate_arms(_lake_day(lake / "bids", day), experiment)
     got = pq.read_table(staged.estimates_day).to_pandas()
@@ -186,13 +192,13 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     hook = ResultsHook(database=tmp_path / "r.duckdb")
     day = START + dt.timedelta(days=1)
     with pytest.raises(InputError, match="needs a click log"):
-        partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day, staging_root=tmp_path / "s")
-    out = partition.stage_partition(hook, lake_root=tmp_path / "bids", experiment=measured, ds=day,
+        partition.stage_partition(LakeHook(), lake_root=tmp_path / "bids", experiment=measured, ds=day, staging_root=tmp_path / "s")
+    out = partition.stage_partition(LakeHook(), lake_root=tmp_path / "bids", experiment=measured, ds=day,
                                     staging_root=tmp_path / "s", clicks_root=tmp_path / "clicks", click_window_days=2)
     assert out["measured_arms"] == ["plain"]
     staged = StagedPartition.at(tmp_path / "s", "tiles", day)
-    results = partition.run_partition_checks(hook, experiment=measured, staged=staged, ds=day)
-    assert len(results) > len(schema_gate(hook, experiment=measured, staged=staged))  # the full runner ran
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=measured, staged=staged, ds=day)
+    assert len(results) > len(schema_gate(LakeHook(), experiment=measured, staged=staged))  # the full runner ran
     assert all(r.passed for r in results if r.severity == "error"), [r.describe() for r in results if not r.passed]
     partition.record_checks(staged, results)
     partition.estimate_partition(hook, experiment=measured, ds=day, staging_root=tmp_path / "s", run_id="r")
@@ -200,8 +206,9 @@ def test_measured_weights_from_the_click_log_recover_revenue(tmp_path):
     plain = weights[weights["arm"] == "plain"]
     assert set(plain["source"]) == {"measured"} and plain["first_click_ds"].iloc[0] == START
     assert plain["weight"].to_numpy() == pytest.approx([0.4, 0.2, 0.1], abs=0.01)
-    # the day's rows (the experiment-to-date has none: both days are inside the default warm-up)
-    assert not staged.estimates_to_date.exists()
+    # the day's rows; the experiment-to-date rows hold no number: both days are inside the default warm-up
+    pending = pq.read_table(staged.estimates_to_date).to_pandas()
+    assert set(pending["status"]) == {"warming_up,warning"} and pending["estimate"].isna().all()  # warm-up warned
     est = pq.read_table(staged.estimates_day).to_pandas().query("metric == 'revenue_per_auction'").set_index("arm")
     want = expected_revenue_per_auction(values, [0.4, 0.2, 0.1], 4)
     assert abs(est.loc["plain", "estimate"] - want) < 4 * est.loc["plain", "std_error"] + 0.01 * want
@@ -227,8 +234,8 @@ def test_the_full_check_runner_runs_after_the_gate_and_its_outcomes_are_stored(h
     day = START + dt.timedelta(days=2)
     _stage(hook, lake, experiment, tmp_path, day)
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
-    results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=day)
-    gate = schema_gate(hook, experiment=experiment, staged=staged)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=day)
+    gate = schema_gate(LakeHook(), experiment=experiment, staged=staged)
     assert [r.check for r in results[: len(gate)]] == [r.check for r in gate]
     later = {r.check for r in results[len(gate):]}
     assert {"sample_ratio", "warmup"} <= later  # statistical checks of the runner, after its contract suite
@@ -285,7 +292,7 @@ def test_stored_rows_carry_the_level_clustering_and_merged_status(hook, lake, ex
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     # a warning that does not leave the day out of the window (warm-up and drift would)
     warned = CheckResult(check="shading", severity="warning", passed=False, observed=0.2, threshold=0.05, details={})
-    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), warned]) == "warning"
+    assert partition.record_checks(staged, [*schema_gate(LakeHook(), experiment=experiment, staged=staged), warned]) == "warning"
 
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1",
                                  confidence_level=0.975, cluster="bidder")
@@ -313,7 +320,7 @@ def test_rows_of_a_day_whose_bids_move_together_carry_heterogeneous_auctions(hoo
     staged = StagedPartition.at(tmp_path / "stage", "tiles", day)
     dependent = CheckResult(check="auction_dependence", severity="warning", passed=False, observed=0.05,
                             threshold=0.02, details={})
-    assert partition.record_checks(staged, [*schema_gate(hook, experiment=experiment, staged=staged), dependent]) == "warning"
+    assert partition.record_checks(staged, [*schema_gate(LakeHook(), experiment=experiment, staged=staged), dependent]) == "warning"
     partition.estimate_partition(hook, experiment=experiment, ds=day, staging_root=tmp_path / "stage", run_id="t1")
     partition.write_partition(hook, experiment_id="tiles", ds=day, staging_root=tmp_path / "stage")
     for name in ("report_daily_estimates", "report_to_date_estimates"):

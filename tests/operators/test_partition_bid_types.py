@@ -21,6 +21,7 @@ from counterbid.estimators import parse_experiments, simulate_experiment
 from counterbid.operators import partition
 from counterbid.operators.staging import StagedPartition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 
 DAY = dt.date(2026, 3, 2)
 SPEC = {"experiments": [{"id": "tiles", "control_arm": "plain", "start": "2026-03-02", "arms": [
@@ -33,7 +34,7 @@ BID_TYPES = [("float32", pa.float32(), False), ("int32", pa.int32(), True), ("in
 @pytest.fixture(scope="module")
 def day_table():
     exp = parse_experiments(SPEC)["tiles"]
-    frame = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=800, rng=3, ds=DAY)
+    frame = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=800, rng=3, ds=DAY)
     table = pa.Table.from_pandas(frame.drop(columns=["value", "clicks"]), preserve_index=False)
     table = table.set_column(table.schema.get_field_index("ds"), "ds", pa.array([DAY] * table.num_rows, pa.date32()))
     return exp, table, np.round(frame["bid"].to_numpy() * 100).astype(np.int64)
@@ -60,9 +61,9 @@ def _run(tmp_path, name, exp, table):
     pq.write_table(table.drop(["ds"]), lake / "tiles.parquet")
     hook = ResultsHook(database=tmp_path / name / "results.duckdb", lock_timeout=5)
     stage = tmp_path / name / "stage"
-    partition.stage_partition(hook, lake_root=lake.parent, experiment=exp, ds=DAY, staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake.parent, experiment=exp, ds=DAY, staging_root=stage)
     staged = StagedPartition.at(stage, "tiles", DAY)
-    results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAY)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAY)
     if partition.record_checks(staged, results) == "error":
         return results, None
     partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=stage, run_id="types")

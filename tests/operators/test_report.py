@@ -3,7 +3,11 @@
 from __future__ import annotations
 
 import datetime as dt
+from pathlib import Path
 
+import matplotlib.colors as mcolors
+import matplotlib.figure
+import matplotlib.image as mimage
 import numpy as np
 import pandas as pd
 import pytest
@@ -13,6 +17,7 @@ from counterbid.estimators import CheckResult, parse_experiments
 from counterbid.operators import partition, report
 from counterbid.operators.check_runner import write_check_results
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.report import ASSUMPTIONS, cumulative_table, format_cumulative, write_report
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
@@ -32,6 +37,32 @@ RUNS = [(0.95, "auction", False), (0.975, "bidder", False), (0.975, "bidder", Tr
 SMALL_DAY_AUCTIONS = 20
 
 
+def png_pixels(path, width_in, height_in, dpi=110):
+    """The PNG's RGB pixels, after checking its size is the figure's (inches x dpi, as matplotlib rounds)."""
+    img = mimage.imread(path)
+    assert img.shape[:2] == (round(height_in * dpi), round(width_in * dpi)), img.shape
+    return img[..., :3]
+
+
+def share_of_colour(rgb, colour, tol=0.02):
+    """Share of pixels within ``tol`` of a matplotlib colour (``C0``, ...) in every channel."""
+    return float(np.mean(np.all(np.abs(rgb - np.asarray(mcolors.to_rgb(colour))) < tol, axis=-1)))
+
+
+@pytest.fixture
+def saved_figures(monkeypatch):
+    """The figures written by ``Figure.savefig`` during the test, with their paths (the real savefig runs)."""
+    saved = []
+    real = matplotlib.figure.Figure.savefig
+
+    def keep(fig, fname, *args, **kwargs):
+        saved.append((fig, str(fname)))
+        return real(fig, fname, *args, **kwargs)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", keep)
+    return saved
+
+
 @pytest.fixture(scope="module")
 def results(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
@@ -44,9 +75,9 @@ def results(tmp_path_factory):
     hook = ResultsHook(database=root / "results.duckdb")
     for k, (level, cluster, warned) in enumerate(RUNS):
         day = START + dt.timedelta(days=k)
-        partition.stage_partition(hook, lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
+        partition.stage_partition(LakeHook(), lake_root=root / "bids", experiment=exp, ds=day, staging_root=root / "s")
         staged = StagedPartition.at(root / "s", exp.id, day)
-        checks = schema_gate(hook, experiment=exp, staged=staged)
+        checks = schema_gate(LakeHook(), experiment=exp, staged=staged)
         if warned:
             # a warning that keeps the day in the window (a failed drift or warm-up check would not)
             checks.append(CheckResult(check="shading", severity="warning", passed=False, observed=0.2, threshold=0.05))
@@ -58,7 +89,7 @@ def results(tmp_path_factory):
     return root, hook
 
 
-def test_report_has_plots_assumptions_and_days(results):
+def test_report_has_plots_assumptions_and_days(results, saved_figures):
     root, hook = results
     page = write_report(hook, root / "out")
     text = page.read_text()
@@ -66,9 +97,18 @@ def test_report_has_plots_assumptions_and_days(results):
         assert assumption in text
     # the auction that ran, per experiment, from the stored rows
     assert "The auction that ran (payment rule, floor per click): " in text and "first_price, no floor" in text
-    for png in ("tiles_revenue.png", "tiles_lift.png"):
+    # each PNG is its figure (size in inches x dpi 110), drawn, not blank: the revenue plot shows
+    # both arms' colours, the lift plot the treated arm's only
+    figures = {Path(path).name: fig for fig, path in saved_figures}
+    colours = report._colours(hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"}))
+    for png, arms in (("tiles_revenue.png", ("plain", "bold")), ("tiles_lift.png", ("bold",))):
         assert f'src="{png}"' in text
-        assert (root / "out" / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        width, height = figures[png].get_size_inches()
+        rgb = png_pixels(root / "out" / png, width, height)
+        for arm in arms:
+            assert share_of_colour(rgb, colours[arm]) > 0.002, (png, arm)
+        if png == "tiles_lift.png":
+            assert share_of_colour(rgb, colours["plain"]) == 0
     for k in range(3):
         assert f"<th>{START + dt.timedelta(days=k)}</th>" in text
     assert "data checks" not in text  # no data_checks table: nothing shown
@@ -87,20 +127,35 @@ def test_report_says_the_level_clustering_and_status_each_interval_used(results)
     assert "<th>realized per-arm average (97.5 %, by auction)</th>" in text
     assert "Intervals: 97.5 %, clustered by bidder (they speak for a new draw of bidders as well as of auctions)" in text
     assert "clustered by auction, for\nthese same bidders in new auctions" in text  # the page says what both mean
-    # per day: the interval and the status each day's rows carry
+    # per day: the interval and the flags that need attention, by metric (welfare's no_interval is by design)
+    few = "few_bids (revenue / auction, welfare / auction, lift vs control)"
     by_day = dict(zip([str(START + dt.timedelta(days=k)) for k in range(3)],
-                      [("no_interval", "95 %, clustered by auction"), ("few_bids, no_interval", "97.5 %, clustered by bidder"),
-                       ("no_interval, warning", "97.5 %, clustered by bidder")]))
+                      [("ok", "95 %, clustered by auction"), (few, "97.5 %, clustered by bidder"),
+                       ("warning", "97.5 %, clustered by bidder")]))
     for day, (status, how) in by_day.items():
         assert f"<th>{day}</th>\n      <td>{status}</td>\n      <td>{how}</td>" in text, day
-    assert "The estimator flagged rows (few_bids, no_interval)" in text
+    assert "no_interval" not in text.split("<h2>")[1]  # only the assumptions above explain it
+    # the banner names the flagged day and metrics, and only that day
+    assert ("The estimator flagged rows that need attention (2026-03-03: few_bids on revenue / auction, welfare / "
+            "auction, lift vs control)") in text
 
 
-def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path):
+def test_plot_titles_name_the_intervals_of_their_rows(results, tmp_path, saved_figures):
     _, hook = results
     daily = hook.fetch_df("report_daily_estimates", {"experiment_id": "tiles"})
     to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
     title = report._plot_revenue(daily, "tiles", tmp_path / "r.png")
+    # the plotted data are the stored rows: each arm's estimate and realized average by day
+    (fig, path), = saved_figures
+    assert path == str(tmp_path / "r.png")
+    lines = {line.get_label(): line for line in fig.axes[0].get_lines()}
+    for arm in ("plain", "bold"):
+        for metric, label in (("revenue_per_auction", "if run everywhere"), ("realized_revenue_per_auction",
+                                                                             "realized per-arm average")):
+            rows = daily[(daily["arm"] == arm) & (daily["metric"] == metric)]
+            assert len(rows) == 3
+            np.testing.assert_array_equal(lines[f"{arm}: {label}"].get_ydata(), rows["estimate"].to_numpy(float))
+    assert fig.axes[0].get_ylabel() == "revenue per auction"
     assert title.endswith("(bands: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder (2 days) intervals)")
     title = report._plot_lift(daily, to_date, "tiles", tmp_path / "l.png")
     assert title.splitlines()[1] == ("(that day: 95 %, clustered by auction (1 days); 97.5 %, clustered by bidder "
@@ -127,8 +182,9 @@ def test_cumulative_table_text(results):
     _, hook = results
     text = format_cumulative(cumulative_table(hook))
     # the second day's 20 auctions are below the estimator's minimum stratum: its flag reaches the to-date rows
-    assert text.startswith(f"tiles: 2026-03-03 .. 2026-03-04, {1500 + SMALL_DAY_AUCTIONS} auctions, status few_bids, "
-                           "no_interval, warning; intervals 97.5 %, clustered by bidder\n"
+    assert text.startswith(f"tiles: 2026-03-03 .. 2026-03-04, {1500 + SMALL_DAY_AUCTIONS} auctions, status few_bids "
+                           "(revenue / auction, welfare / auction, lift vs control), warning; intervals 97.5 %, "
+                           "clustered by bidder\n"
                            "days used (2): 2026-03-03..2026-03-04; left out (1): 2026-03-02 (excluded)\n")
     assert "revenue / auction (97.5 %, by bidder)" in text and "realized per-arm average (97.5 %, by auction)" in text
     assert "lift vs control" in text and "_mixture" in text
@@ -142,6 +198,9 @@ def test_cumulative_table_text(results):
 def test_to_date_rows_carry_anytime_bounds_wider_than_the_fixed_interval(results):
     _, hook = results
     rows = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
+    pending = rows[rows["n_days_used"] == 0]  # day 1 is excluded by the spec: rows without numbers or bounds
+    assert set(pending["status"]) == {"days_excluded"} and pending["anytime_low"].isna().all()
+    rows = rows[rows["n_days_used"] > 0]
     with_bounds = rows[rows["metric"] != "welfare_per_auction"]
     assert with_bounds["anytime_low"].notna().all() and rows.loc[rows["metric"] == "welfare_per_auction", "anytime_low"].isna().all()
     # 28 planned days (no `end` in the spec) x the mean auctions per day used so far: one day of 20, then 1520 in 2
@@ -158,6 +217,30 @@ def test_to_date_rows_carry_anytime_bounds_wider_than_the_fixed_interval(results
                                (m * with_bounds["std_error"])[late], rtol=1e-12)
     assert ((with_bounds["anytime_high"] - with_bounds["anytime_low"])
             > (with_bounds["ci_high"] - with_bounds["ci_low"]) * 1.5).all()
+
+
+def _copy_days(source: ResultsHook, target: ResultsHook, days) -> None:
+    """Replace ``days`` of ``target`` with ``source``'s stored rows (the writer's own replace)."""
+    with source.connect(read_only=True) as con:
+        for day in days:
+            tables = {dest: con.execute(f"select * from {table} where ds = ?", [day]).to_arrow_table()
+                      for dest, table in (("arm_estimates", "arm_estimates"), ("arm_estimates_to_date", "arm_estimates_to_date"),
+                                          ("position_weights", "arm_position_weights"))}
+            target.replace_partition(experiment_id="tiles", ds=day, tables=tables)
+
+
+def test_a_clean_run_shows_no_banner_and_status_ok(results, tmp_path):
+    # the first day alone: no check warned, no estimator flag but welfare's by-design no_interval
+    _, hook = results
+    clean = ResultsHook(database=tmp_path / "clean.duckdb")
+    _copy_days(hook, clean, [START])
+    text = write_report(clean, tmp_path / "out").read_text()
+    section = text.split("<h2>")[1]
+    assert "class='note'" not in section and "flagged" not in section
+    assert f"<th>{START}</th>\n      <td>ok</td>" in section
+    # its to-date rows hold no number yet (the spec excludes the day) and say so instead of a table of n/a
+    assert f"Experiment to date, to {START}: no day used yet (status days_excluded)" in section
+    assert "left out (1): 2026-03-02 (excluded)" in section
 
 
 @pytest.mark.postgres

@@ -11,6 +11,7 @@ from counterbid.estimators import parse_experiments, simulate_experiment
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 DAY = dt.date(2026, 3, 2)
@@ -28,12 +29,12 @@ def test_spark_estimate_refuses_a_partition_changed_after_the_load_step(spark, t
     lake, stage = tmp_path / "bids", tmp_path / "stage"
     day = lake / f"ds={DAY}"
     day.mkdir(parents=True)
-    bids = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=400, rng=4).drop(columns=["ds", "value", "clicks"])
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=400, rng=4).drop(columns=["ds", "value", "clicks"])
     bids.to_parquet(day / "part-a.parquet", index=False)
     hook = ResultsHook(database=tmp_path / "results.duckdb")
     staged = StagedPartition.at(stage, exp.id, DAY)
-    out = partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=DAY, staging_root=stage, max_bids_per_shard=600)
-    partition.record_checks(staged, partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=DAY))
+    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAY, staging_root=stage, max_bids_per_shard=600)
+    partition.record_checks(staged, partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=DAY))
     assert out["shards"] == 3
 
     with pytest.raises(InputError, match="`lake_root` is required"):
@@ -45,7 +46,7 @@ def test_spark_estimate_refuses_a_partition_changed_after_the_load_step(spark, t
     assert on_spark == local and on_spark["shards"] == 3
 
     staged.estimates_day.unlink()
-    late = simulate_experiment(st.uniform(0, 2), exp, n_bidders=4, n_auctions=20, rng=5, first_auction_id=10**6)
+    late = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=20, rng=5, first_auction_id=10**6)
     late.drop(columns=["ds", "value", "clicks"]).to_parquet(day / "part-b.parquet", index=False)
     with pytest.raises(InputError) as caught:
         partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=stage, run_id="r", spark=spark,

@@ -14,6 +14,7 @@ from counterbid.estimators import expected_revenue_per_auction, parse_experiment
 from counterbid.estimators import combine_pieces, stratum_pieces
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
 
 START = dt.date(2026, 3, 2)
@@ -54,9 +55,9 @@ def test_pieces_round_trip_through_the_results_tables(tmp_path):
 
 
 def _run_day(hook, lake, exp, stage, day):
-    partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=day, staging_root=stage)
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage)
     staged = StagedPartition.at(stage, exp.id, day)
-    results = partition.run_partition_checks(hook, experiment=exp, staged=staged, ds=day)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=exp, staged=staged, ds=day)
     partition.record_checks(staged, results)
     partition.store_checks(hook, results, experiment_id=exp.id, ds=day, run_id=f"r{day}")
     out = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=f"r{day}")
@@ -85,7 +86,10 @@ def test_drift_reads_the_stored_summaries_and_the_window_follows_the_spec(lake, 
     assert len(quantiles) == 3 * 257 and set(quantiles["n_bids"]) == {6000}
     # the window: days 1-2 burn-in, day 4 excluded; day 3 alone is combined
     to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": "tiles"})
-    assert sorted(set(to_date["ds"].dt.date)) == [DAYS[2], DAYS[3]]
+    # to-date rows from day one: the burn-in days' hold no number yet (status warming_up)
+    assert sorted(set(to_date["ds"].dt.date)) == DAYS[:4]
+    burn_in = to_date[to_date["ds"].dt.date < DAYS[2]]
+    assert {s.split(",")[0] for s in burn_in["status"]} == {"warming_up"} and burn_in["estimate"].isna().all()
     last = to_date[to_date["ds"].dt.date == DAYS[3]]
     assert set(last["days_used"]) == {str(DAYS[2])}
     assert set(last["days_left_out"]) == {f"{DAYS[0]}..{DAYS[1]} (burn_in),{DAYS[3]} (excluded)"}

@@ -64,3 +64,11 @@ def hook(tmp_path):
     from counterbid.operators.hooks import ResultsHook
 
     return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+
+
+@pytest.fixture
+def lake():
+    """In-memory DuckDB reads of the lake and staged files (the same whatever the results sink)."""
+    from counterbid.operators.lake_hook import LakeHook
+
+    return LakeHook()

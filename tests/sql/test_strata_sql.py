@@ -15,7 +15,7 @@ import pytest
 from counterbid.estimators import CheckResult
 from counterbid.estimators import shard_of
 from counterbid.operators.check_runner import write_check_results
-from counterbid.operators.hooks import lake_glob
+from counterbid.operators.lake_hook import lake_glob
 from counterbid.readers.shards import shard_folders, staged_bid_log_shards, write_shards
 from counterbid.sql import load_sql
 
