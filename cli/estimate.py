@@ -128,4 +128,10 @@ def run(args: argparse.Namespace) -> int:
         print("Assumes symmetric bidders in equilibrium against the designed shares, known position weights and the"
               " spec's payment rule and floor (each arm's own payment rule does not enter: revenue equivalence);"
               " realized_revenue_per_auction is the realized per-arm average (biased), shown for comparison.")
+        if shown["what_if"].any():
+            print("Rows with what_if True are layouts that did not run, estimated from the same bids: they also assume"
+                  " bidders would respond to such a layout as they would if it ran. effective_share: the share of"
+                  " these auctions that, bid for the layout itself, would estimate it as precisely (above 1: the"
+                  " mixture's bids say more about it than its own would); status thin_support: no number, the bids"
+                  " say too little about the layout (docs/method.md, 'Layouts that did not run').")
     return 0

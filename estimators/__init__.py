@@ -7,6 +7,8 @@ estimate_arms, ArmEstimates
     frozen result (the rows in ``.table``, and what they were computed with).
 stratum_pieces, combine_pieces, StratumKey, StratumPiece, pieces_to_frames, pieces_from_frames
     Strata as the unit of work: estimate each stratum alone, store and combine what it contributes.
+bidder_totals, gram_of, extend_gram, WindowTotals, BidderGram
+    Running bidder totals of an analysis window (bidder clustering from today's bidders only).
 shard_of, n_shards, MAX_BIDS_PER_SHARD
     The stable hash shard of an auction id and the number of shards of a stratum.
 load_experiment, load_experiments, parse_experiments, parse_day
@@ -23,7 +25,7 @@ from .allocation import AllocationRule, allocation_rule, derivative_ratio, mixtu
 from .arms import estimate_arms
 from .bids import BID_COLUMNS, PreparedBids, prepare_bids
 from .checks import CheckResult, worst_failure
-from .combine import ArmEstimates, combine_pieces
+from .combine import ArmEstimates, BidderGram, combine_pieces
 from .constants import (
     CLUSTERS,
     METHOD_VERSION,
@@ -38,6 +40,7 @@ from .errors import EstimatorWarning, InputError
 from .order_weights import revenue_weights, welfare_weights
 from .piece_frames import PIECE_FRAMES, pieces_from_frames, pieces_to_frames
 from .pieces import StratumKey, StratumPiece, stratum_pieces
+from .window_totals import WindowTotals, bidder_totals, extend_gram, gram_of
 from .sharding import MAX_BIDS_PER_SHARD, n_shards, shard_of
 from .position_weights import measured_position_weights
 from .simulate import (
@@ -49,7 +52,7 @@ from .simulate import (
     simulate_experiment,
     simulate_segmented_experiment,
 )
-from .spec import Arm, Experiment, load_experiment, load_experiments, parse_day, parse_experiments
+from .spec import Arm, Experiment, WhatIf, load_experiment, load_experiments, parse_day, parse_experiments
 
 __all__ = [
     "AllocationRule",
@@ -73,8 +76,14 @@ __all__ = [
     "STATUS_FLAGS",
     "StratumKey",
     "StratumPiece",
+    "WhatIf",
     "allocation_rule",
     "combine_pieces",
+    "bidder_totals",
+    "extend_gram",
+    "gram_of",
+    "WindowTotals",
+    "BidderGram",
     "derivative_ratio",
     "equilibrium_bid_function",
     "estimate_arms",

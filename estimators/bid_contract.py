@@ -92,7 +92,7 @@ class ColumnRule:
         return self.kind in ("integer", "text_or_integer")
 
 
-#: The contract, column by column, in the order the README lists them.
+#: The contract, column by column, in the order docs/usage.md lists them.
 BID_CONTRACT: dict[str, ColumnRule] = {r.name: r for r in (
     ColumnRule("experiment_id", "text", nullable=False, meaning="the experiment the bid belongs to"),
     ColumnRule("ds", "date", nullable=False, partition_key=True, meaning="the day of the bid"),

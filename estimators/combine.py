@@ -46,8 +46,9 @@ from .constants import METHOD_VERSION, MIN_STRATUM_BIDS, MIXTURE_ARM, RESULT_COL
 from .errors import EstimatorWarning, InputError
 from .pieces import StratumPiece
 from .spec import Experiment
+from .support import MIN_EFFECTIVE_BIDS, effective_share
 
-__all__ = ["ArmEstimates", "combine_pieces"]
+__all__ = ["ArmEstimates", "BidderGram", "combine_pieces"]
 
 
 @dataclass(frozen=True)
@@ -124,8 +125,36 @@ class ArmEstimates:
                                    engine=self.engine if engine is None else engine)
 
 
+@dataclass(frozen=True)
+class BidderGram:
+    """What bidder clustering needs of the bidder sums, kept as running totals.
+
+    With ``U_b = sum_s M_s 2**(e_s - bid_exponent) S_{b,s}`` (each bidder's influence sums weighted
+    by the auctions of their stratum, not yet divided by the total ``M``), :attr:`gram` is
+    ``sum_b U_b U_b'`` over the distinct bidders, revenue labels in the order of
+    :attr:`StratumPiece.bidder_sums` (each arm, then the mixture). ``combine_pieces`` scales it by
+    ``1 / M**2`` (``S_b = U_b / M``): the covariance and the lift's variance follow without the
+    per-bidder rows (``docs/method.md``, "Strata, shards and the experiment to date").
+
+    Attributes
+    ----------
+    gram : numpy.ndarray
+        ``(K + 1, K + 1)``, symmetric.
+    n_bidders : int
+        Distinct bidders ``B`` of the sums (the factor ``B / (B - 1)``).
+    bid_exponent : int
+        Unit of ``U_b``: ``2**bid_exponent`` bids.
+    """
+
+    gram: np.ndarray
+    n_bidders: int
+    bid_exponent: int
+
+
 def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, confidence_level: float = 0.95,
-                   cluster: str = "auto", n_excluded_auctions: int = 0, source: str = "bids") -> ArmEstimates:
+                   cluster: str = "auto", n_excluded_auctions: int = 0, source: str = "bids",
+                   bidder_gram: BidderGram | None = None,
+                   segment_grams: Mapping[str, BidderGram] | None = None) -> ArmEstimates:
     """Combine stratum pieces by their auction counts into per-arm estimates.
 
     Parameters
@@ -147,6 +176,13 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
         Single-bidder auctions left out upstream (reported in the result).
     source : str, optional
         Name of the input in warnings and errors.
+    bidder_gram : BidderGram, optional
+        The bidder sums of these pieces as running totals (``operators/window_state.py`` keeps
+        them for the experiment to date): bidder clustering reads it instead of the pieces'
+        bidder sums, which the pieces then need not carry. It must describe exactly these pieces.
+    segment_grams : mapping of str to BidderGram, optional
+        The same per segment label (segmented pieces only): each describes exactly that segment's
+        pieces. A segment without one is clustered from its pieces' bidder sums.
 
     Returns
     -------
@@ -183,14 +219,16 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     confidence_level = check_confidence_level(confidence_level)
     check_cluster(cluster)
     pieces = _checked_pieces(pieces, experiment, source)
-    cluster, _ = _cluster_unit(pieces, cluster, source)
+    cluster, _ = _cluster_unit(pieces, cluster, source, bidder_gram)
     welfare_identified = _warn_about(pieces, source)
-    table = _table(pieces, experiment, cluster, confidence_level, welfare_identified, source, segment=None)
+    table = _table(pieces, experiment, cluster, confidence_level, welfare_identified, source, segment=None,
+                   gram=bidder_gram)
     segments = _segments_of(pieces, source)
     if segments:
+        grams = _segment_grams(segments, segment_grams, cluster, source)
         parts = [table] + [
             _table(group, experiment, cluster, confidence_level,
-                   not any("not_identified" in p.flags for p in group), source, segment=name)
+                   not any("not_identified" in p.flags for p in group), source, segment=name, gram=grams.get(name))
             for name, group in segments.items()]
         table = pd.concat(parts, ignore_index=True)
     return ArmEstimates(
@@ -203,15 +241,19 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
 
 
 def _table(pieces: Sequence[StratumPiece], experiment: Experiment, cluster: str, confidence_level: float,
-           welfare_identified: bool, source: str, *, segment: str | None) -> pd.DataFrame:
+           welfare_identified: bool, source: str, *, segment: str | None, gram: BidderGram | None) -> pd.DataFrame:
     """The rows of one combination of pieces (all of them: the pooled rows; one segment's: its rows)."""
     labels = piece_labels(experiment)
-    k_arms = len(experiment.arms)
-    revenue_cols = list(range(k_arms)) + [len(labels) - 1]
+    k_arms, k_targets = len(experiment.arms), len(experiment.targets)
+    revenue_cols = list(range(k_targets)) + [len(labels) - 1]
     w, exponent = _weights(pieces)
     estimate = _estimates(pieces, w)
-    totals = scale = None
-    if cluster == "bidder":
+    totals = scale = sums_gram = None
+    if cluster == "bidder" and gram is not None:
+        sums_gram = _scaled_gram(gram, pieces, exponent, len(revenue_cols), source)
+        block = _cr_factor(gram.n_bidders) * sums_gram if gram.n_bidders >= 2 else \
+            np.full_like(sums_gram, np.nan)
+    elif cluster == "bidder":
         block, totals, scale = _bidder_block(pieces, w, len(revenue_cols))
     else:
         block = _auction_block(pieces, w, revenue_cols)
@@ -219,14 +261,35 @@ def _table(pieces: Sequence[StratumPiece], experiment: Experiment, cluster: str,
     variance[np.ix_(revenue_cols, revenue_cols)] = block
     if any("degenerate" in p.flags for p in pieces):
         estimate[:] = np.nan
+    support = _support(pieces, w, k_arms)
+    for j in np.flatnonzero(support.thin):  # no number for a layout the bids say too little about
+        estimate[[k_arms + j, k_targets + k_arms + j]] = np.nan
     unit = np.array([math.ldexp(1.0, p.bid_exponent - exponent) for p in pieces])
     realized = combine_realized([(p.realized_sum, p.realized_squares, p.arm_auctions, p.n_bidders) for p in pieces],
                                 unit)
-    lifts = {k: _lift(estimate, variance, k, experiment.arm_names.index(experiment.control_arm), revenue_cols,
-                      totals, scale) for k in range(k_arms)}
+    control = experiment.arm_names.index(experiment.control_arm)
+    if sums_gram is not None:
+        lifts = {k: _gram_lift(estimate, sums_gram, gram.n_bidders, k, control, revenue_cols)
+                 for k in range(k_targets)}
+    else:
+        lifts = {k: _lift(estimate, variance, k, control, revenue_cols, totals, scale) for k in range(k_targets)}
     table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified,
-                  segment)
+                  support, segment)
     return _in_bid_units(table, exponent, pieces, source)
+
+
+def _segment_grams(segments: Mapping[str, Sequence[StratumPiece]], grams: Mapping[str, BidderGram] | None,
+                   cluster: str, source: str) -> Mapping[str, BidderGram]:
+    """The running bidder totals of each segment; under bidder clustering a segment without them needs bidder sums."""
+    grams = dict(grams or {})
+    unknown = sorted(set(grams) - set(segments))
+    if unknown:
+        raise InputError(f"{source}: bidder totals of segment {unknown[0]!r}, which has no pieces")
+    for name, group in segments.items():
+        if cluster == "bidder" and name not in grams and any(p.bidder_sums is None for p in group):
+            raise InputError(f"{source}: segment {name!r} has neither bidder totals nor bidder sums in every piece; "
+                             "bidder clustering needs one of them")
+    return grams
 
 
 def _segments_of(pieces: Sequence[StratumPiece], source: str) -> dict[str, list[StratumPiece]]:
@@ -242,6 +305,35 @@ def _segments_of(pieces: Sequence[StratumPiece], source: str) -> dict[str, list[
     for p in sorted(pieces, key=lambda p: p.key.segment):
         out.setdefault(p.key.segment, []).append(p)
     return out
+
+
+@dataclass(frozen=True)
+class _Support:
+    """Per what-if layout: its effective share (NaN: unbounded weights) and whether it gets no number."""
+
+    share: np.ndarray
+    thin: np.ndarray
+
+
+def _support(pieces: Sequence[StratumPiece], w: np.ndarray, k_arms: int) -> _Support:
+    """Effective share of each what-if layout over the strata, and the ``thin_support`` mask.
+
+    ``sum_s w_s^2 V_own,s / sum_s w_s^2 C_s`` (the ``M/(M-1)`` factors cancel): the variance of the
+    layout's weights with itself as the mixture over that of its estimate, both auction-clustered
+    on the same bids (:func:`~.support.effective_share`). A layout is thin when its weights are
+    unbounded in some stratum, or when its effective bids (share x bids) fall below
+    :data:`~.support.MIN_EFFECTIVE_BIDS`.
+    """
+    n_what_if = pieces[0].n_targets - k_arms
+    if n_what_if == 0:
+        return _Support(np.empty(0), np.zeros(0, dtype=bool))
+    own = sum((wi * wi) * p.own_variance for p, wi in zip(pieces, w))
+    var = sum((wi * wi) * np.diagonal(p.covariance)[k_arms:k_arms + n_what_if] for p, wi in zip(pieces, w))
+    share = np.array([effective_share(float(a), float(b)) for a, b in zip(own, var)])
+    n_bids = sum(p.n_bids for p in pieces)
+    with np.errstate(invalid="ignore"):
+        thin = ~(share * n_bids >= MIN_EFFECTIVE_BIDS)
+    return _Support(share, thin)
 
 
 def _checked_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, source: str) -> list[StratumPiece]:
@@ -279,8 +371,13 @@ def _estimates(pieces: Sequence[StratumPiece], w: np.ndarray) -> np.ndarray:
     return estimate
 
 
-def _cluster_unit(pieces: Sequence[StratumPiece], cluster: str, source: str) -> tuple[str, int | None]:
+def _cluster_unit(pieces: Sequence[StratumPiece], cluster: str, source: str,
+                  gram: BidderGram | None = None) -> tuple[str, int | None]:
     """The clustering used: ``bidder`` needs bidder sums in every piece; ``auto`` is bidder when they repeat."""
+    if gram is not None:
+        if cluster == "auto":
+            cluster = "bidder" if gram.n_bidders < sum(p.n_bids for p in pieces) else "auction"
+        return cluster, int(gram.n_bidders)
     with_sums = all(p.bidder_sums is not None for p in pieces)
     if cluster == "bidder" and not with_sums:
         lacking = next(p for p in pieces if p.bidder_sums is None)
@@ -308,6 +405,30 @@ def _bidder_block(pieces: Sequence[StratumPiece], w: np.ndarray, size: int) -> t
     if totals.shape[0] >= 2:
         return (factor * scale * scale) * (totals.T @ totals), totals, scale
     return np.full((size, size), np.nan), totals, scale
+
+
+def _scaled_gram(gram: BidderGram, pieces: Sequence[StratumPiece], exponent: int, size: int,
+                 source: str) -> np.ndarray:
+    """``sum_b S_b S_b'`` in the common unit: the running ``sum_b U_b U_b'`` times ``(2**(e - exponent) / M)**2``."""
+    matrix = np.asarray(gram.gram, dtype=float)
+    if matrix.shape != (size, size):
+        raise InputError(f"{source}: bidder totals have {matrix.shape} revenue labels; the pieces have {size}")
+    scale = math.ldexp(1.0, gram.bid_exponent - exponent) / int(sum(p.n_auctions for p in pieces))
+    return (scale * scale) * matrix
+
+
+def _gram_lift(estimate: np.ndarray, sums_gram: np.ndarray, n_bidders: int, k: int, control: int,
+               revenue_cols: list[int]) -> tuple[float, float]:
+    """:func:`_lift` from ``sum_b S_b S_b'``: ``sum_b (S_bk - r S_bc)^2 = G_kk - 2 r G_kc + r^2 G_cc``."""
+    t_a, t_c = estimate[k], estimate[control]
+    if k == control or not (np.isfinite(t_a) and np.isfinite(t_c) and t_c > 0):
+        return np.nan, np.nan
+    r = t_a / t_c
+    i, c = revenue_cols.index(k), revenue_cols.index(control)
+    v = sums_gram[i, i] - 2 * r * sums_gram[i, c] + r * r * sums_gram[c, c]
+    if n_bidders < 2:
+        return t_a / t_c - 1.0, np.nan
+    return t_a / t_c - 1.0, float(np.sqrt(_cr_factor(n_bidders) * max(v, 0.0))) / t_c
 
 
 def _lift(estimate: np.ndarray, variance: np.ndarray, k: int, control: int, revenue_cols: list[int],
@@ -344,9 +465,9 @@ def _warn_about(pieces: Sequence[StratumPiece], source: str) -> bool:
 
 def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.ndarray, variance: np.ndarray,
           lifts: Mapping[int, tuple[float, float]], realized: RealizedAverages, confidence_level: float,
-          welfare_identified: bool, segment: str | None) -> pd.DataFrame:
-    """One row per arm and metric (and the mixture's two), with status flags, in the common unit."""
-    k_arms = len(experiment.arms)
+          welfare_identified: bool, support: _Support, segment: str | None) -> pd.DataFrame:
+    """One row per arm and metric (what-if layouts after the arms, then the mixture's two), with status flags."""
+    k_arms, k_targets = len(experiment.arms), len(experiment.targets)
     total_auctions = int(sum(p.n_auctions for p in pieces))
     total_bids = int(sum(p.n_bids for p in pieces))
     degenerate = any("degenerate" in p.flags for p in pieces)
@@ -356,11 +477,12 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     rows: list[tuple] = []
 
     def emit(arm: str, metric: str, est: float, se: float, n_auc: int, n_b: int, *, counterfactual: bool = True,
-             flags: tuple[str, ...] = ()) -> None:
+             flags: tuple[str, ...] = (), what_if: bool = False, share: float = np.nan) -> None:
         status = (list(stratum_flags) if counterfactual else []) + list(flags)
         if np.isfinite(est) and not np.isfinite(se):
             status.append("no_interval")
-        rows.append((arm, segment, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok"))
+        rows.append((arm, segment, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok",
+                     what_if, share))
 
     def se_of(i: int) -> float:
         return float(np.sqrt(variance[i, i])) if np.isfinite(estimate[i]) else np.nan
@@ -368,13 +490,23 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     control = experiment.arm_names.index(experiment.control_arm)
     for k, a in enumerate(experiment.arms):
         emit(a.name, REVENUE, float(estimate[k]), se_of(k), total_auctions, total_bids)
-        emit(a.name, WELFARE, float(estimate[k_arms + k]), np.nan, total_auctions, total_bids,
+        emit(a.name, WELFARE, float(estimate[k_targets + k]), np.nan, total_auctions, total_bids,
              flags=() if welfare_identified or degenerate else ("not_identified",))
         emit(a.name, "realized_revenue_per_auction", float(realized.mean[k]), float(realized.std_error[k]),
              int(realized.auctions[k]), int(realized.bids[k]), counterfactual=False,
              flags=() if realized.auctions[k] else ("no_auctions",))
         if k != control:
             emit(a.name, "revenue_lift_vs_control", *lifts[k], total_auctions, total_bids)
+    for j, layout in enumerate(experiment.what_if):
+        k = k_arms + j
+        mark = {"what_if": True, "share": float(support.share[j]),
+                "flags": ("thin_support",) if support.thin[j] else ()}
+        emit(layout.name, REVENUE, float(estimate[k]), se_of(k), total_auctions, total_bids, **mark)
+        welfare_flags = mark["flags"] + (() if welfare_identified or degenerate or support.thin[j]
+                                         else ("not_identified",))
+        emit(layout.name, WELFARE, float(estimate[k_targets + k]), np.nan, total_auctions, total_bids,
+             **{**mark, "flags": welfare_flags})
+        emit(layout.name, "revenue_lift_vs_control", *lifts[k], total_auctions, total_bids, **mark)
     emit(MIXTURE_ARM, REVENUE, float(estimate[-1]), se_of(len(estimate) - 1), total_auctions, total_bids)
     emit(MIXTURE_ARM, "realized_revenue_per_auction", realized.mixture_mean, realized.mixture_std_error,
          total_auctions, total_bids, counterfactual=False)
@@ -382,6 +514,8 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     out["n_auctions"] = out["n_auctions"].astype("int64")
     out["n_bids"] = out["n_bids"].astype("int64")
     out["segment"] = out["segment"].astype(object)
+    out["what_if"] = out["what_if"].astype(bool)
+    out["effective_share"] = out["effective_share"].astype(float)
     return out
 
 

@@ -51,8 +51,12 @@ STATUS_FLAGS = {
     "no_interval": "the estimate stands without a standard error or interval (welfare always, see estimate_arms; "
                    "or fewer than two clusters)",
     "no_auctions": "realized per-arm average of an arm that ran in no auction: NaN",
+    "thin_support": "a what-if layout the mixture's bids say too little about: its weights are unbounded, or "
+                    "it leans on fewer effective bids than MIN_STRATUM_BIDS (docs/method.md, 'Layouts that did "
+                    "not run'): NaN",
 }
-RESULT_COLUMNS = ("arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status")
+RESULT_COLUMNS = ("arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status",
+                  "what_if", "effective_share")
 #: Bids are estimated in their own unit when the largest lies in [2**-UNIT_EXPONENT, 2**UNIT_EXPONENT];
 #: otherwise in a power-of-two unit (exact), so no square or sum of bids overflows or underflows.
 UNIT_EXPONENT = 200
@@ -65,7 +69,8 @@ WELFARE = "welfare_per_auction"
 def piece_labels(experiment: Experiment) -> tuple[tuple[str, str], ...]:
     """The (arm, metric) labels of a stratum piece's linear quantities, in order.
 
-    Revenue of every arm, welfare of every arm, then the mixture's revenue (arm ``_mixture``).
+    Revenue of every target (the arms, then the what-if layouts), welfare of every target, then the
+    mixture's revenue (arm ``_mixture``).
 
     Parameters
     ----------
@@ -74,7 +79,7 @@ def piece_labels(experiment: Experiment) -> tuple[tuple[str, str], ...]:
     Returns
     -------
     tuple of (str, str)
-        ``2 K + 1`` labels for ``K`` arms.
+        ``2 T + 1`` labels for ``T`` targets (arms and what-if layouts).
     """
-    names = experiment.arm_names
+    names = experiment.target_names
     return tuple([(a, REVENUE) for a in names] + [(a, WELFARE) for a in names] + [(MIXTURE_ARM, REVENUE)])

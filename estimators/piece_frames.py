@@ -59,17 +59,20 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
                        "bid_exponent": p.bid_exponent, "floor_quantile": p.floor_quantile,
                        "has_quality": p.has_quality, "flags": ",".join(p.flags),
                        "n_distinct_bidders": -1 if p.bidder_ids is None else int(p.bidder_ids.size)})
-        k_arms = (len(p.labels) - 1) // 2
-        names = [a for a, _ in p.labels[:k_arms]] + [p.labels[-1][0]]
-        revenue = list(range(k_arms)) + [len(p.labels) - 1]
+        k_targets, k_arms = p.n_targets, p.n_arms
+        names = [a for a, _ in p.labels[:k_targets]] + [p.labels[-1][0]]
+        revenue = list(range(k_targets)) + [len(p.labels) - 1]
+        gap = np.full(k_targets - k_arms, np.nan)  # what-if layouts ran in no auction: no realized sums
         arms.append(pd.DataFrame({
-            **{c: [v] * (k_arms + 1) for c, v in key.items()},
-            "arm_index": np.arange(k_arms + 1), "arm": names,
+            **{c: [v] * (k_targets + 1) for c, v in key.items()},
+            "arm_index": np.arange(k_targets + 1), "arm": names,
             "revenue_per_auction": p.estimate[revenue],
-            "welfare_per_auction": np.append(p.estimate[k_arms:2 * k_arms], np.nan),
-            "n_auctions": np.append(p.arm_auctions, p.n_auctions).astype(np.int64),
-            "realized_revenue_sum": np.append(p.realized_sum, np.nan),
-            "realized_revenue_squares": np.append(p.realized_squares, np.nan),
+            "welfare_per_auction": np.append(p.estimate[k_targets:2 * k_targets], np.nan),
+            "n_auctions": np.concatenate([p.arm_auctions, np.zeros(k_targets - k_arms), [p.n_auctions]]).astype(np.int64),
+            "realized_revenue_sum": np.concatenate([p.realized_sum, gap, [np.nan]]),
+            "realized_revenue_squares": np.concatenate([p.realized_squares, gap, [np.nan]]),
+            "what_if": (np.arange(k_targets + 1) >= k_arms) & (np.arange(k_targets + 1) < k_targets),
+            "own_variance": np.concatenate([np.full(k_arms, np.nan), p.own_variance, [np.nan]]),
         }))
         i, j = np.triu_indices(len(p.labels))
         keep = np.isfinite(p.covariance[i, j])
@@ -82,15 +85,15 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
         }))
         if p.bidder_ids is not None:
             b = p.bidder_ids.size
-            rows = b * (k_arms + 1)
+            rows = b * (k_targets + 1)
             # text columns built once per distinct value and repeated by ``take`` (no per-row conversion)
             sums.append(pd.DataFrame({
                 "day": pd.array([p.day], dtype="str").take(np.zeros(rows, dtype=np.intp)),
                 "n_bidders": np.full(rows, p.n_bidders, dtype=np.int64),
                 "shard": np.full(rows, p.shard, dtype=np.int64),
                 "segment": pd.array([p.key.segment], dtype="str").take(np.zeros(rows, dtype=np.intp)),
-                "bidder_id": pd.array(ids_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_arms + 1)),
-                "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_arms + 1), b)),
+                "bidder_id": pd.array(ids_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_targets + 1)),
+                "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_targets + 1), b)),
                 "value": p.bidder_sums.T.ravel(),
             }))
     key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64, "segment": "str"}
@@ -99,7 +102,7 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
                    "floor_quantile": float, "has_quality": bool, "flags": "str", "n_distinct_bidders": np.int64},
         "arms": {**key_types, "arm_index": np.int64, "arm": "str", "revenue_per_auction": float,
                  "welfare_per_auction": float, "n_auctions": np.int64, "realized_revenue_sum": float,
-                 "realized_revenue_squares": float},
+                 "realized_revenue_squares": float, "what_if": bool, "own_variance": float},
         "covariance": {**key_types, "arm_i": "str", "metric_i": "str", "arm_j": "str", "metric_j": "str",
                        "value": float},
         "bidder_sums": {**key_types, "bidder_id": "str", "arm": "str", "value": float},
@@ -159,13 +162,20 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
         names = arms["arm"].tolist()
         if not names or names[-1] != MIXTURE_ARM:
             raise InputError(f"piece frames: {where}: the last arm row must be {MIXTURE_ARM!r}")
-        k_arms = len(names) - 1
-        labels = tuple([(a, REVENUE) for a in names[:k_arms]] + [(a, WELFARE) for a in names[:k_arms]]
+        k_targets = len(names) - 1
+        what_if = (arms["what_if"].fillna(False).to_numpy(dtype=bool) if "what_if" in arms
+                   else np.zeros(k_targets + 1, dtype=bool))
+        k_arms = int((~what_if[:k_targets]).sum())
+        if what_if[:k_arms].any():
+            raise InputError(f"piece frames: {where}: what-if rows must follow the arms' rows")
+        labels = tuple([(a, REVENUE) for a in names[:k_targets]] + [(a, WELFARE) for a in names[:k_targets]]
                        + [(MIXTURE_ARM, REVENUE)])
         index = {label: x for x, label in enumerate(labels)}
         revenue = arms["revenue_per_auction"].to_numpy(dtype=float)
-        estimate = np.concatenate([revenue[:k_arms], arms["welfare_per_auction"].to_numpy(dtype=float)[:k_arms],
-                                   revenue[k_arms:]])
+        estimate = np.concatenate([revenue[:k_targets],
+                                   arms["welfare_per_auction"].to_numpy(dtype=float)[:k_targets], revenue[k_targets:]])
+        own_variance = (arms["own_variance"].to_numpy(dtype=float)[k_arms:k_targets] if "own_variance" in arms
+                        else np.full(k_targets - k_arms, np.nan))
         covariance = np.full((len(labels), len(labels)), np.nan)
         if key in cov_of:
             c = cov_of[key]
@@ -187,7 +197,7 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
                 raise InputError(f"piece frames: {where}: bidder_sums names an unknown arm "
                                  f"{s['arm'].to_numpy()[np.flatnonzero(column < 0)[0]]!r}")
             bidder_ids = np.asarray(uniques, dtype=object)
-            bidder_sums = np.full((bidder_ids.size, k_arms + 1), np.nan)
+            bidder_sums = np.full((bidder_ids.size, k_targets + 1), np.nan)
             bidder_sums[codes, column] = s["value"].to_numpy(dtype=float)
         flags = tuple(f for f in str(row["flags"] if not pd.isna(row["flags"]) else "").split(",") if f)
         pieces.append(StratumPiece(
@@ -197,7 +207,8 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
             realized_sum=arms["realized_revenue_sum"].to_numpy(dtype=float)[:k_arms],
             realized_squares=arms["realized_revenue_squares"].to_numpy(dtype=float)[:k_arms],
             floor_quantile=_number(row["floor_quantile"]), max_bid=_number(row["max_bid"]),
-            bid_exponent=int(row["bid_exponent"]), has_quality=bool(row["has_quality"]), flags=flags))
+            bid_exponent=int(row["bid_exponent"]), has_quality=bool(row["has_quality"]), flags=flags,
+            own_variance=own_variance))
     return pieces
 
 

@@ -37,7 +37,9 @@ from .constants import MIN_STRATUM_BIDS, REVENUE, piece_labels
 from .days import parse_day
 from .errors import EstimatorWarning
 from .spec import Experiment
+from .order_weights import revenue_weights
 from .stratum import estimate_stratum, floor_step, stratum_weights, table_weights, unit_exponent
+from .support import weights_bounded
 
 __all__ = ["StratumKey", "StratumPiece", "pieces_of_prepared", "stratum_pieces"]
 
@@ -125,6 +127,11 @@ class StratumPiece:
         Whether bids are effective bids (bid x quality).
     flags : tuple of str
         ``few_bids``, ``degenerate``, ``not_identified`` (welfare) of this stratum.
+    own_variance : ndarray, shape (W,)
+        Per what-if layout (the labels after the ``K`` arms), the CR0 auction-clustered variance of
+        its revenue weights with itself as the mixture, on this stratum's bids (NaN where its
+        weights against the mixture are unbounded): the numerator of the effective share
+        (:func:`~.support.effective_share`). Empty without what-if layouts.
     """
 
     key: StratumKey
@@ -143,6 +150,7 @@ class StratumPiece:
     bid_exponent: int
     has_quality: bool
     flags: tuple[str, ...]
+    own_variance: np.ndarray = field(default_factory=lambda: np.empty(0))
     # In-process shortcut: bidder codes in a label space shared by the pieces of one call of
     # stratum_pieces, so combine_pieces needs no hashing of the ids (codes None with a space: the
     # piece holds every code of the space, in order). Not stored.
@@ -165,6 +173,16 @@ class StratumPiece:
     def sum_labels(self) -> tuple[tuple[str, str], ...]:
         """Labels of the columns of ``bidder_sums``: the revenue labels, in label order."""
         return tuple(label for label in self.labels if label[1] == REVENUE)
+
+    @property
+    def n_arms(self) -> int:
+        """Arms that ran (``K``); the labels' targets after them are what-if layouts."""
+        return int(self.arm_auctions.size)
+
+    @property
+    def n_targets(self) -> int:
+        """Arms and what-if layouts (``T``)."""
+        return (len(self.labels) - 1) // 2
 
     @property
     def arm_bids(self) -> np.ndarray:
@@ -282,7 +300,7 @@ def pieces_of_prepared(data: PreparedBids, experiment: Experiment, *, base: Stra
         estimate=x.estimate, covariance=x.covariance, bidder_ids=x.ids, bidder_sums=x.sums,
         arm_auctions=counts, realized_sum=sums, realized_squares=squares, floor_quantile=float(x.floor_quantile),
         max_bid=x.top_bid, bid_exponent=int(x.exponent), has_quality=bool(data.has_quality), flags=x.flags,
-        bidder_codes=x.codes, bidder_space=space.token if x.ids is not None else None)
+        own_variance=x.own_variance, bidder_codes=x.codes, bidder_space=space.token if x.ids is not None else None)
         for (n, seg, a_n), x, (sums, squares, counts) in zip(strata, numbers, cells)]
 
 
@@ -383,6 +401,7 @@ class _Numbers:
     top_bid: float
     exponent: int
     flags: tuple[str, ...]
+    own_variance: np.ndarray = field(default_factory=lambda: np.empty(0))
 
 
 def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experiment: Experiment,
@@ -392,8 +411,8 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
 
     ``rows``: the stratum's bids in the input (``None``: all of them).
     """
-    k_arms = len(experiment.arms)
-    n_labels = 2 * k_arms + 1
+    k_arms, k_targets = len(experiment.arms), len(experiment.targets)
+    n_labels = 2 * k_targets + 1
     b_raw = data.bid if rows is None else data.bid[rows]
     top_bid = float(b_raw.max())
     exponent = unit_exponent(top_bid)
@@ -413,59 +432,88 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
         else:
             present = np.flatnonzero(np.bincount(space.codes[rows], minlength=space.ids.size))
             ids, codes = space.ids[present], present
-    numbers = _Numbers(big_n, estimate, covariance, ids, None, codes, floor.quantile, top_bid, exponent, ())
+    numbers = _Numbers(big_n, estimate, covariance, ids, None, codes, floor.quantile, top_bid, exponent, (),
+                       np.full(k_targets - k_arms, np.nan))
     if sorted_bids[0] == sorted_bids[-1]:
         flags.append("degenerate")
         _warn_degenerate(sorted_bids, n, exponent, floor_value, floor.floor is None, source)
-        numbers.sums = None if ids is None else np.full((ids.size, k_arms + 1), np.nan)
+        numbers.sums = None if ids is None else np.full((ids.size, k_targets + 1), np.nan)
         numbers.flags = tuple(flags)
         return numbers
     auc = None
-    if auction_covariance or space is None:
+    if auction_covariance or space is None or k_targets > k_arms:  # what-ifs' effective share: auction sums
         auc = (data.auction if rows is None else data.auction[rows])[order].astype(np.intp, copy=False)
     bcs = None
     if space is not None:
         bcs = (space.codes if rows is None else space.codes[rows])[order].astype(np.intp, copy=False)
     del order, b_raw
     if ids is not None:  # allocated after the sort's temporaries are gone
-        sums = np.empty((ids.size, k_arms + 1))
-    auction_sums = None if auc is None else np.empty((k_arms, data.n_auctions))
+        sums = np.empty((ids.size, k_targets + 1))
+    extra = k_targets - k_arms  # what-if layouts: one more revenue pass each, with themselves as the mixture
+    auction_sums = None if auc is None else np.empty((k_targets + extra, data.n_auctions))
 
     def keep(k: int, influence: np.ndarray) -> None:
         if auction_sums is not None:
             auction_sums[k] = np.bincount(auc, weights=influence, minlength=data.n_auctions)
-        if bcs is not None:
+        if bcs is not None and k < k_targets:
             by_code = np.bincount(bcs, weights=influence, minlength=space.ids.size)
             sums[:, k] = by_code if codes is None else by_code[codes]
 
-    rules = [allocation_rule(a.weights_for(n), n) for a in experiment.arms]
     shares = np.array(experiment.shares)
-    revenue, welfare = table_weights(*stratum_weights(rules, mixture_rule(rules, shares), big_n,
-                                                      payment_rule=experiment.payment_rule, floor=floor.floor),
-                                     n, big_n)
+    revenue, welfare, bounded = _target_weights(experiment, n, big_n, floor)
     if any(w is None for w in welfare):
         flags.append("not_identified")
-    estimate[:2 * k_arms] = estimate_stratum(sorted_bids, n, revenue, welfare, floor, influence=buffer.of(big_n),
-                                             on_influence=keep)
+    out = estimate_stratum(sorted_bids, n, revenue, welfare, floor, influence=buffer.of(big_n), on_influence=keep)
+    estimate[:k_targets] = out[:k_targets]
+    estimate[k_targets:2 * k_targets] = out[k_targets + extra:]
     # The estimator is linear in the target rule and the mixture's rule is the share-weighted sum of
     # the arms' rules, so the mixture's revenue (and its influence) is the shares' sum.
     estimate[-1] = float(shares @ estimate[:k_arms])
     if auction_sums is not None:
-        _auction_covariance(covariance, auction_sums, shares)
+        _auction_covariance(covariance, auction_sums[:k_targets], shares)
+        own = auction_sums[k_targets:]
+        numbers.own_variance = np.einsum("ij,ij->i", own, own)
     if sums is not None:
-        sums[:, k_arms] = sums[:, :k_arms] @ shares
+        sums[:, k_targets] = sums[:, :k_arms] @ shares
+    for j in np.flatnonzero(~bounded):  # unbounded weights: no number for this layout
+        t = k_arms + j
+        estimate[[t, k_targets + t]] = np.nan
+        covariance[t, :] = covariance[:, t] = np.nan
+        numbers.own_variance[j] = np.nan
+        if sums is not None:
+            sums[:, t] = np.nan
     numbers.sums, numbers.flags = sums, tuple(flags)
     return numbers
 
 
+def _target_weights(experiment: Experiment, n: int, big_n: int, floor) -> tuple[list, list, np.ndarray]:
+    """Revenue weights of every target (arms, what-ifs) and of each what-if against itself; welfare weights.
+
+    A what-if layout whose weights against the mixture are unbounded (:func:`~.support.weights_bounded`)
+    is estimated with the mixture's weights as a stand-in and marked ``False`` in the returned mask
+    (its numbers are set to NaN by the caller).
+    """
+    arm_rules = [allocation_rule(a.weights_for(n), n) for a in experiment.arms]
+    mixture = mixture_rule(arm_rules, np.array(experiment.shares))
+    what_if = [allocation_rule(w.weights_for(n), n) for w in experiment.what_if]
+    bounded = np.array([weights_bounded(y, mixture, experiment.payment_rule) for y in what_if], dtype=bool)
+    targets = arm_rules + [y if ok else mixture for y, ok in zip(what_if, bounded)]
+    options = {"payment_rule": experiment.payment_rule, "floor": floor.floor}
+    revenue, welfare = stratum_weights(targets, mixture, big_n, **options)
+    own = [revenue_weights(y if ok else mixture, y if ok else mixture, big_n, **options)
+           for y, ok in zip(what_if, bounded)]
+    rev, wel = table_weights(revenue + own, welfare, n, big_n)
+    return rev, wel, bounded
+
+
 def _auction_covariance(covariance: np.ndarray, auction_sums: np.ndarray, shares: np.ndarray) -> None:
-    """Fill the revenue block of ``covariance`` (arms, then the mixture) with the CR0 sum of auction sums."""
-    k_arms = auction_sums.shape[0]
-    block = auction_sums @ auction_sums.T  # arms x arms, CR0
-    mix_row = shares @ block
-    covariance[np.ix_(range(k_arms), range(k_arms))] = block
-    covariance[-1, :k_arms] = covariance[:k_arms, -1] = mix_row
-    covariance[-1, -1] = float(mix_row @ shares)
+    """Fill the revenue block of ``covariance`` (targets, then the mixture) with the CR0 sum of auction sums."""
+    k_targets, k_arms = auction_sums.shape[0], shares.size
+    block = auction_sums @ auction_sums.T  # targets x targets, CR0
+    mix_row = shares @ block[:k_arms]
+    covariance[np.ix_(range(k_targets), range(k_targets))] = block
+    covariance[-1, :k_targets] = covariance[:k_targets, -1] = mix_row
+    covariance[-1, -1] = float(mix_row[:k_arms] @ shares)
 
 
 def _warn_degenerate(sorted_bids: np.ndarray, n: int, exponent: int, floor_value: float, no_floor: bool,

@@ -13,6 +13,8 @@ A spec file (YAML) holds one or more experiments::
         arms:
           - {name: control, share: 0.9, position_weights: [0.31, 0.17, 0.06, 0.02]}
           - {name: wide,    share: 0.1, position_weights: [0.29, 0.22, 0.15, 0.02]}
+        what_if:                   # optional: layouts that did not run, estimated from the same bids
+          - {name: steep-top, position_weights: [0.40, 0.15, 0.05]}
         checks: {}                 # optional: thresholds for the data checks
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
@@ -36,6 +38,11 @@ whose warm-up or drift check failed (the pipeline's default).
 ``segments`` names columns of the bid log (string, integer or boolean) that are constant within an
 auction: every (day, number of bidders, segment) is estimated as a stratum of its own, so auctions
 whose values come from different distributions are not pooled into one inversion.
+
+``what_if`` lists layouts that did not run: each gets revenue and welfare per auction and its lift
+against control from the mixture's bids (``docs/method.md``, "Layouts that did not run"). Names must
+differ from the arms' and from each other; weights are validated as the arms' and cannot be
+``measured`` (a layout that never ran has no clicks to measure).
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -63,6 +70,7 @@ from .payment_rules import PAYMENT_RULES as _PAYMENT_RULES
 
 __all__ = [
     "Arm",
+    "WhatIf",
     "Experiment",
     "PAYMENT_RULES",
     "SHARE_TOLERANCE",
@@ -81,8 +89,9 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days", "max_bid", "segments"})
+                             "burn_in_days", "exclude_days", "max_bid", "segments", "what_if"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
+WHAT_IF_KEYS = frozenset({"name", "position_weights", "description"})
 
 
 def _refuse_unknown(raw: Mapping, known: frozenset, where: str) -> None:
@@ -123,6 +132,27 @@ class Arm:
 
 
 @dataclass(frozen=True)
+class WhatIf:
+    """A layout that did not run: estimated from the bids placed against the experiment's mixture.
+
+    Attributes
+    ----------
+    name : str
+        Label of its result rows (distinct from every arm's name).
+    position_weights : tuple of float
+        Click weight of each position, top first, non-increasing and non-negative.
+    """
+
+    name: str
+    position_weights: tuple[float, ...]
+
+    def weights_for(self, n_bidders: int) -> tuple[float, ...]:
+        """Position weights padded with zeros (or cut) to ``n_bidders`` positions."""
+        w = tuple(self.position_weights[:n_bidders])
+        return w + (0.0,) * (n_bidders - len(w))
+
+
+@dataclass(frozen=True)
 class Experiment:
     """An auction-rule experiment: which arms run in which share of auctions.
 
@@ -153,6 +183,8 @@ class Experiment:
     segments : tuple of str
         Bid-log columns whose values (constant within an auction) split the auctions into
         segments estimated apart (``()``: not segmented).
+    what_if : tuple of WhatIf
+        Layouts that did not run, estimated from the same bids (no share: not in the mixture).
     """
 
     id: str
@@ -167,10 +199,21 @@ class Experiment:
     exclude_days: tuple[_dt.date, ...] = ()
     max_bid: float | None = None
     segments: tuple[str, ...] = ()
+    what_if: tuple[WhatIf, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
         return tuple(a.name for a in self.arms)
+
+    @property
+    def target_names(self) -> tuple[str, ...]:
+        """Every layout estimated: the arms, then the what-if layouts."""
+        return self.arm_names + tuple(w.name for w in self.what_if)
+
+    @property
+    def targets(self) -> tuple[Arm | WhatIf, ...]:
+        """The arms, then the what-if layouts (each has ``name`` and ``weights_for``)."""
+        return tuple(self.arms) + tuple(self.what_if)
 
     @property
     def shares(self) -> tuple[float, ...]:
@@ -287,6 +330,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
         raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
     segments = _segments(raw.get("segments"), where)
+    what_if = _what_ifs(raw.get("what_if"), {a.name for a in arms}, where)
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -300,6 +344,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
         exclude_days=excluded,
         max_bid=max_bid,
         segments=segments,
+        what_if=what_if,
     )
 
 
@@ -329,6 +374,37 @@ def _segments(raw: Any, where: str) -> tuple[str, ...]:
         if name in out:
             raise InputError(f"{where}: segments[{i}] {name!r} is listed twice")
         out.append(name)
+    return tuple(out)
+
+
+def _what_ifs(raw: Any, arm_names: set[str], where: str) -> tuple[WhatIf, ...]:
+    """The ``what_if`` list: names as the arms' (distinct from them), weights as the arms' but never measured."""
+    if raw is None:
+        return ()
+    if not isinstance(raw, Sequence) or isinstance(raw, (str, bytes)):
+        raise InputError(f"{where}: 'what_if' must be a list of {{name, position_weights}}")
+    out: list[WhatIf] = []
+    for i, item in enumerate(raw):
+        ww = f"{where} what_if[{i}]"
+        if not isinstance(item, Mapping):
+            raise InputError(f"{ww}: must be a mapping with keys name, position_weights")
+        name = item.get("name")
+        if "share" in item:
+            raise InputError(f"{ww} ({name}): a what-if layout did not run and has no 'share'; "
+                             "list it under 'arms' if it ran")
+        _refuse_unknown(item, WHAT_IF_KEYS, f"{ww} ({name})" if isinstance(name, str) else ww)
+        if not isinstance(name, str) or not _NAME.match(name):
+            raise InputError(f"{ww}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
+                             f"not starting with '_' or '-'; got {name!r}")
+        if name in arm_names:
+            raise InputError(f"{ww}: name {name!r} is already an arm's; a what-if layout needs its own name")
+        if name in {w.name for w in out}:
+            raise InputError(f"{ww}: duplicate what-if name {name!r}")
+        pw = item.get("position_weights")
+        if pw == "measured":
+            raise InputError(f"{ww} ({name}): position_weights cannot be 'measured' for a layout that did not run "
+                             "(it has no clicks); give the weights as numbers")
+        out.append(WhatIf(name, _weights(pw, f"{ww} ({name}) position_weights")))
     return tuple(out)
 
 

@@ -30,7 +30,8 @@ from counterbid.sql import validate_identifier
 
 from .extras import require_extra
 from .results_schema import (
-    POSTGRES_SCHEMES, RESULTS_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget, check_readable,
+    POSTGRES_SCHEMES, RESULTS_TABLES, WINDOW_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget,
+    WindowWrite, check_readable,
     migrate, results_target, statement_for,
 )
 
@@ -267,6 +268,7 @@ class ResultsHook(BaseHook):
         experiment_id: str,
         ds: dt.date,
         tables: Mapping[str, pa.Table | None],
+        window: WindowWrite | None = None,
     ) -> dict[str, int]:
         """Replace every row of one (experiment, day) in one transaction (delete, then insert).
 
@@ -280,6 +282,11 @@ class ResultsHook(BaseHook):
             ``arm_estimates_to_date``, ``position_weights``, the stratum-piece tables, ``bid_quantiles``);
             each table holds that destination's columns. Duplicate keys are dropped in SQL. ``None``
             deletes the destination's rows of the (experiment, day) and inserts none.
+        window : WindowWrite, optional
+            The running bidder window the day's estimate step computed, written in the same
+            transaction. Without one, a stored window that covers ``ds`` is dropped (the day's
+            pieces change under it); an ``'extend'`` whose base is no longer the stored window
+            drops it too. A dropped window is rebuilt from the stored pieces on the next day.
 
         Returns
         -------
@@ -305,9 +312,29 @@ class ResultsHook(BaseHook):
                             continue
                         s.insert_rows(known[dest], table, params)
                         counts[dest] = table.num_rows
+                    counts.update(_write_window(s, experiment_id=experiment_id, ds=ds, window=window))
                 return counts
 
         return self._with_retry(write, what="write")
+
+    def bidder_window(self, *, experiment_id: str) -> tuple[pd.Series, pd.DataFrame] | None:
+        """The stored running bidder window of an experiment (its row, and its Gram rows), or ``None``."""
+        row = self._fetch_if_present("bidder_window", "bidder_window_select", {"experiment_id": experiment_id})
+        if row is None or row.empty:
+            return None
+        return row.iloc[0], self.fetch_df("bidder_window_gram_select", {"experiment_id": experiment_id})
+
+    def bidder_window_totals(self, *, experiment_id: str, today: pa.Table) -> pd.DataFrame:
+        """Stored running totals of the bidders in ``today`` (rows of ``bidder_window_totals``), joined in SQL."""
+        dest = WINDOW_TABLES[-1]
+
+        def run():
+            with self.session(read_only=True) as s:
+                check_readable(s)
+                with s.transaction(), s.incoming(dest, today):
+                    return s.fetch_df("bidder_window_totals_select_incoming", {"experiment_id": experiment_id})
+
+        return self._with_retry(run, what="read")
 
     def _fetch_if_present(self, table: str, name: str, params: Mapping[str, Any]) -> pd.DataFrame | None:
         """``fetch_df(name, params)`` when the results file holds ``table``, else ``None``."""
@@ -367,3 +394,32 @@ class ResultsHook(BaseHook):
                 return recorder(s, list(results), experiment_id=experiment_id, ds=ds, run_id=run_id, schema=self.schema)
 
         return self._with_retry(write, what="record checks")
+
+
+_WINDOW_LOCK_DAY = dt.date(1970, 1, 1)  # the window is one experiment's, not one day's
+
+
+def _write_window(s: ResultsSession, *, experiment_id: str, ds: dt.date, window: WindowWrite | None) -> dict[str, int]:
+    """Apply (or drop) the running bidder window inside the day's write transaction."""
+    by_experiment = {"experiment_id": experiment_id}
+    s.lock_partition("bidder_window", experiment_id=experiment_id, ds=_WINDOW_LOCK_DAY)
+    stored = s.fetch_df("bidder_window_select", by_experiment)
+    stored_days = None if stored.empty else str(stored["days_used"].iloc[0])
+    covers_today = stored_days is not None and ds.isoformat() in stored_days.split(",")
+    if window is None and not covers_today:
+        return {}
+    if window is None or window.mode == "replace" or stored_days != window.base_days:
+        for dest in WINDOW_TABLES:  # dropped (rebuilt on the next day), or about to be written whole
+            s.execute(f"results_delete_{dest.destination}", by_experiment)
+        if window is None or window.mode == "extend":
+            return {dest.destination: 0 for dest in WINDOW_TABLES}
+    counts = {}
+    for dest in WINDOW_TABLES:
+        rows = window.tables[dest.destination]
+        with s.incoming(dest, rows):
+            if window.mode == "extend":  # today's bidders only; the others' totals stay
+                incoming = dest.destination == "bidder_window_totals"
+                s.execute(f"results_delete_{dest.destination}{'_incoming' if incoming else ''}", by_experiment)
+            s.execute(f"results_insert_{dest.destination}", by_experiment)
+        counts[dest.destination] = rows.num_rows
+    return counts

@@ -30,7 +30,6 @@ from counterbid.estimators import (
     measured_position_weights,
     n_shards,
     parse_day,
-    pieces_from_frames,
     pieces_to_frames,
     worst_failure,
 )
@@ -48,6 +47,7 @@ from .lake_hook import LakeHook
 from .schema_gate import schema_gate
 from .staging import StagedPartition, replace_folder, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
+from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
 
 __all__ = [
     "MissingPartitionError",
@@ -281,15 +281,6 @@ def load_checks(staged: StagedPartition) -> str:
     return status
 
 
-#: Results table of each frame of :func:`counterbid.estimators.pieces_to_frames`.
-PIECE_TABLES = {
-    "strata": "stratum_pieces",
-    "arms": "stratum_piece_arms",
-    "covariance": "stratum_piece_covariance",
-    "bidder_sums": "stratum_piece_bidder_sums",
-}
-
-
 def _failed_today(staged: StagedPartition) -> list[str]:
     """Checks that failed on the staged day (``checks.json`` of the validate step)."""
     payload = json.loads(staged.require(staged.checks, step="validate").read_text(encoding="utf-8"))
@@ -308,23 +299,6 @@ def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.dat
         frame["computed_at"] = computed_at
         out[PIECE_TABLES[name]] = frame
     return out
-
-
-def _pieces_of_rows(frames: Mapping[str, pd.DataFrame | None]) -> list[StratumPiece]:
-    """Pieces from rows of the results tables (:func:`_stored_frames`' inverse)."""
-    if all(frames.get(table) is None for table in PIECE_TABLES.values()):
-        return []
-    empty = pieces_to_frames([])
-    back = {}
-    for name, table in PIECE_TABLES.items():
-        frame = frames.get(table)
-        if frame is None:  # no rows (e.g. no bidder sums: every piece clustered by auction)
-            back[name] = empty[name]
-            continue
-        frame = frame.drop(columns=["experiment_id", "run_id", "computed_at"], errors="ignore").rename(columns={"ds": "day"})
-        frame["day"] = [parse_day(d).isoformat() for d in frame["day"]]
-        back[name] = frame
-    return pieces_from_frames(back)
 
 
 def _staged_day(staged: StagedPartition, ds: dt.date, *, manifest: bool) -> StagedDay:
@@ -426,21 +400,28 @@ def estimate_partition(
     failed[ds] = failed_today
     window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
     used_before = [d for d in window.used if d != ds]
-    stored = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
-    to_date_pieces = _pieces_of_rows(stored) + (pieces if ds in window.used else [])
+    # the stored pieces' small tables, and the running bidder window (read for today's bidders only
+    # when the window is the stored one plus today; rebuilt from the stored pieces otherwise)
+    inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
+                            today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
+                            computed_at=computed_at)
+    to_date_pieces = inputs.pieces
+    stage_window_write(inputs.write, staged.folder)
 
     summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": found.shards,
-               "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out}
+               "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out,
+               "bidder_window": inputs.route}
     results: dict[str, ArmEstimates] = {"day": day_result}
     if to_date_pieces:
         to_date_cluster = cluster
-        if cluster == "bidder" and any(p.bidder_sums is None for p in to_date_pieces):
+        if cluster == "bidder" and inputs.gram is None:
             # a day of the window was estimated clustered by auction (no bidder sums stored):
             # the days can only be combined by auction; the rows say so in their `cluster` column
             log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
             to_date_cluster = "auction"
         results["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
-                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}")
+                                            cluster=to_date_cluster, source=f"{experiment.id} to {ds}",
+                                            bidder_gram=inputs.gram)
         horizon = _horizon_auctions(experiment, to_date_pieces, len(window.used))
     tables = {}
     for span, result in results.items():
@@ -531,7 +512,8 @@ def write_partition(
             quantiles = quantiles.append_column(name, pa.array([value.as_py() if value is not None else None] * quantiles.num_rows,
                                                                type=day.schema.field(name).type))
         tables["bid_quantiles"] = quantiles
-    counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables)
+    counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables,
+                                    window=load_window_write(staged.folder))
     if cleanup:
         shutil.rmtree(staged.folder, ignore_errors=True)
     return counts

@@ -27,7 +27,7 @@ from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
     "ANYTIME_NOTE", "ASSUMPTIONS", "EXPECTED_FLAGS", "MIXTURE_GAP_SE", "anytime_caption", "attention_flags", "auction_caption",
-    "cumulative_table", "day_status", "format_cumulative", "interval_caption", "window_caption", "write_report",
+    "cumulative_table", "day_status", "format_cumulative", "interval_caption", "what_if_table", "window_caption", "write_report",
 ]
 
 #: What every number in the report rests on.
@@ -150,6 +150,34 @@ def _wide(rows: pd.DataFrame) -> pd.DataFrame:
     cols = [c for c in _LABELS.values() if c in frame.columns]
     arms = [a for a in frame.index if a != MIXTURE_ARM] + ([MIXTURE_ARM] if MIXTURE_ARM in frame.index else [])
     return frame.loc[arms, cols].fillna("").rename(columns=headers)
+
+
+WHAT_IF_NOTE = ("These layouts did not run: their numbers come from the same bids as the arms' and rest on the same "
+                "assumptions as every other counterfactual row, plus one more: that bidders would respond to each "
+                "layout as they would if it ran. Effective share: the share of these auctions that, bid for the "
+                "layout itself, would estimate it as precisely (above 1, the mixture's bids say more about it than "
+                "its own would); 'thin support' marks a layout the bids say too little about, shown without a number "
+                "(docs/method.md, 'Layouts that did not run').")
+
+
+def _is_what_if(rows: pd.DataFrame) -> pd.Series:
+    """Rows of layouts that did not run (null on rows stored before schema version 5: arms)."""
+    if "what_if" not in rows.columns:
+        return pd.Series(False, index=rows.index)
+    return rows["what_if"].fillna(False).astype(bool)
+
+
+def what_if_table(rows: pd.DataFrame) -> pd.DataFrame:
+    """The what-if layouts of some to-date rows beside nothing else: estimates with intervals and the effective share."""
+    layouts = rows[_is_what_if(rows)]
+    if layouts.empty:
+        return pd.DataFrame()
+    frame = _wide(layouts)
+    share = layouts.groupby("arm")["effective_share"].first()
+    status = layouts.groupby("arm")["status"].agg(lambda s: "thin support" if "thin_support" in _flags(s) else "ok")
+    frame["effective share"] = [("n/a" if pd.isna(share[a]) else f"{share[a]:.3g}") for a in frame.index]
+    frame["support"] = [status[a] for a in frame.index]
+    return frame
 
 
 def _flags(statuses) -> set[str]:
@@ -345,6 +373,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     auctions_run = []
     for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
         daily = hook.fetch_df("report_daily_estimates", {"experiment_id": exp_id})
+        daily = daily[~_is_what_if(daily)]  # the arms that ran; what-if layouts have their own section
         auctions_run.append(f"{exp_id}: {auction_caption(daily)}")
         to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp_id})
         weights = hook.fetch_df("report_position_weights", {"experiment_id": exp_id})
@@ -354,6 +383,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         if has_lift:
             _plot_lift(daily, to_date, exp_id, out / lift_png)
         cum = cumulative[cumulative["experiment_id"] == exp_id]
+        layouts = what_if_table(cum)
+        cum = cum[~_is_what_if(cum)]
         days = _mixture_days(daily)
         per_day = pd.DataFrame(index=days.index)
         per_day["estimate status"] = pd.Series({d: day_status(g) for d, g in daily.groupby("ds")})
@@ -430,6 +461,7 @@ the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
 {f"<p>{html.escape(anytime_caption(cum))}. <strong>{html.escape(ANYTIME_NOTE)}</strong></p>" if _has_anytime(cum) else ""}
 {weights_note}
+{f"<h3>Layouts that did not run</h3>{_table_html(layouts)}<p class='note'>{html.escape(WHAT_IF_NOTE)}</p>" if len(layouts) else ""}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
 <img src="{html.escape(rev_png)}" alt="revenue per auction by day, {html.escape(exp_id)}">
 {f'<img src="{html.escape(lift_png)}" alt="lift by day, {html.escape(exp_id)}">' if has_lift else ""}

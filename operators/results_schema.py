@@ -33,7 +33,7 @@ from counterbid.sql import has_dialect_file, load_sql, statement, validate_ident
 
 __all__ = [
     "MIGRATIONS", "RESULTS_TABLES", "RESULTS_VIEWS", "SCHEMA_VERSION", "DuckDBSession", "Migration",
-    "POSTGRES_SCHEMES", "PostgresSession", "ResultsSession", "ResultsTable", "ResultsTarget", "Statement", "as_session",
+    "POSTGRES_SCHEMES", "PostgresSession", "ResultsSession", "ResultsTable", "WINDOW_TABLES", "WindowWrite", "ResultsTarget", "Statement", "as_session",
     "migrate", "results_target", "schema_version",
 ]
 
@@ -64,6 +64,28 @@ RESULTS_TABLES = (
     ResultsTable("stratum_piece_bidder_sums", "stratum_piece_bidder_sums"),
     ResultsTable("bid_quantiles", "bid_quantiles"),
 )
+#: The running bidder window (one experiment's rows, not one day's): written by
+#: :meth:`~counterbid.operators.hooks.ResultsHook.replace_partition` with the day whose estimate
+#: step computed them (``operators/window_state.py``).
+WINDOW_TABLES = (
+    ResultsTable("bidder_window", "bidder_window"),
+    ResultsTable("bidder_window_gram", "bidder_window_gram"),
+    ResultsTable("bidder_window_totals", "bidder_window_totals"),
+)
+@dataclass(frozen=True)
+class WindowWrite:
+    """An update of the running bidder window, written with the day that computed it.
+
+    ``mode`` ``'extend'``: ``tables['bidder_window_totals']`` holds today's bidders only, and the
+    update applies only when the stored window's ``days_used`` is still ``base_days`` (else the
+    stored window is dropped: rebuilt on the next day). ``'replace'``: every row of the window.
+    """
+
+    mode: str
+    base_days: str | None
+    tables: Mapping[str, pa.Table]
+
+
 #: Views over the tables, in creation order: (view name, create statement).
 RESULTS_VIEWS = (
     ("arm_estimates_cumulative", "results_create_view_cumulative"),
@@ -129,6 +151,15 @@ MIGRATIONS = (
     Migration(4, "experiment-to-date rows from the first day: while no day of the window is used (warm-up, burn-in, "
                  "excluded days) the rows hold no estimate and a status saying why; first_ds null, n_days_used 0",
               _rebuild(4, "arm_estimates_to_date")),
+    Migration(5, "rows may be layouts that did not run (what_if) with their effective share; stored stratum pieces "
+                 "carry those layouts and their own-mixture variance",
+              (Statement("results_v5_add_estimates_what_if"), Statement("results_v5_add_estimates_effective_share"),
+               Statement("results_v5_add_to_date_what_if"), Statement("results_v5_add_to_date_effective_share"),
+               Statement("results_v5_add_piece_arms_what_if"), Statement("results_v5_add_piece_arms_own_variance"))),
+    Migration(6, "running bidder totals of each experiment's analysis window, so that a day's to-date rows read "
+                 "only today's bidders",
+              (Statement("results_v6_create_bidder_window"), Statement("results_v6_create_bidder_window_gram"),
+               Statement("results_v6_create_bidder_window_totals"))),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version
@@ -244,7 +275,14 @@ class ResultsSession:
 
     def insert_rows(self, dest: ResultsTable, rows: pa.Table, params: Mapping[str, Any]) -> None:
         """Run ``results_insert_<dest>`` over ``rows`` (visible to it as ``incoming``)."""
+        with self.incoming(dest, rows):
+            self.execute(f"results_insert_{dest.destination}", params)
+
+    @contextlib.contextmanager
+    def incoming(self, dest: ResultsTable, rows: pa.Table) -> Iterator[None]:
+        """``rows`` (columns of ``dest``'s table) visible to statements as ``incoming`` (PostgreSQL: in a transaction)."""
         raise NotImplementedError
+        yield
 
     def lock_partition(self, what: str, *, experiment_id: str, ds) -> None:
         """Inside a transaction: wait for other writers of the same (``what``, experiment, day)."""
@@ -280,9 +318,10 @@ class DuckDBSession(ResultsSession):
             raise
         self.con.execute("commit")
 
-    def insert_rows(self, dest, rows, params):
+    @contextlib.contextmanager
+    def incoming(self, dest, rows):
         self.con.register("incoming", rows)  # left registered on failure: the connection is closed
-        self.execute(f"results_insert_{dest.destination}", params)
+        yield
         self.con.unregister("incoming")
 
 
@@ -309,7 +348,8 @@ class PostgresSession(ResultsSession):
         with self.con.transaction():
             yield
 
-    def insert_rows(self, dest, rows, params):
+    @contextlib.contextmanager
+    def incoming(self, dest, rows):
         self.execute("results_stage_incoming", table=dest.table)
         columns = [r[0] for r in self.execute("results_table_columns", {"schema": self.schema, "table": dest.table}).fetchall()]
         missing = [c for c in columns if c not in rows.column_names]
@@ -319,7 +359,7 @@ class PostgresSession(ResultsSession):
         with self.con.cursor() as cur, cur.copy(self.sql("results_copy_incoming")) as copy:
             for row in zip(*values):
                 copy.write_row(row)
-        self.execute(f"results_insert_{dest.destination}", params)
+        yield
         self.execute("results_drop_incoming")
 
 

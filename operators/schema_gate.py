@@ -18,7 +18,7 @@ from .staging import StagedPartition
 
 __all__ = ["CONTRACT_TYPES", "schema_gate"]
 
-#: Accepted DuckDB types (regular expressions) of the bids data contract (README, "Bids data contract"),
+#: Accepted DuckDB types (regular expressions) of the bids data contract (docs/usage.md, "Bids data contract"),
 #: translated from ``counterbid.estimators.bid_contract`` by ``operators/duckdb_types.py``.
 CONTRACT_TYPES: dict[str, str] = duckdb_types.COLUMN_TYPES
 

@@ -2,11 +2,13 @@
 -- (duplicate keys inside one batch are dropped here, keeping the most recent computation).
 insert into {{ schema }}.arm_estimates (
     experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
-    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at
+    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at,
+    what_if, effective_share
 )
 select
     experiment_id, ds, arm, metric, estimate, std_error, ci_low, ci_high,
-    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at
+    n_auctions, n_bids, status, confidence_level, cluster, payment_rule, floor, method_version, run_id, computed_at,
+    what_if, effective_share
 from incoming
 where experiment_id = $experiment_id
     and ds = $ds

@@ -49,7 +49,8 @@ def test_json_output_has_every_arm_and_metric(files, capsys):
     payload = json.loads(out)
     assert payload["experiment_id"] == "cli-exp" and payload["n_excluded_auctions"] == 0
     rows = payload["rows"]
-    assert set(rows[0]) == {"arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status"}
+    assert set(rows[0]) == {"arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids",
+                            "status", "what_if", "effective_share"}
     seen = {(r["arm"], r["metric"]) for r in rows}
     for arm in ("control", "wide", "single"):
         assert (arm, "revenue_per_auction") in seen and (arm, "realized_revenue_per_auction") in seen
@@ -61,7 +62,8 @@ def test_table_and_csv(files, capsys):
     code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
     assert code == 0 and "wide" in out and "revenue_lift_vs_control" in out and "Assumes" in out
     code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv", "--level", "0.9"], capsys)
-    assert code == 0 and out.splitlines()[0] == "arm,segment,metric,estimate,std_error,ci_low,ci_high,n_auctions,n_bids,status"
+    assert code == 0 and out.splitlines()[0] == ("arm,segment,metric,estimate,std_error,ci_low,ci_high,n_auctions,n_bids,"
+                                                 "status,what_if,effective_share")
 
 
 def test_single_bidder_auctions_reported_not_fatal(files, capsys):

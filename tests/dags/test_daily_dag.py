@@ -125,12 +125,12 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
     assert daily["run_id"].nunique() == 3
     # ... and equal the combination of the daily pieces as stored in the results database
     from counterbid.operators.hooks import ResultsHook
-    from counterbid.operators.partition import PIECE_TABLES, _pieces_of_rows
+    from counterbid.operators.window_state import PIECE_TABLES, pieces_of_rows
 
     hook = ResultsHook(database=conf["results_database"])
     for exp in experiments.values():
         stored = hook.stored_piece_frames(experiment_id=exp.id, days=DAYS[1:], tables=list(PIECE_TABLES.values()))
-        want = combine_pieces(_pieces_of_rows(stored), exp, cluster=DEFAULT_CLUSTER)
+        want = combine_pieces(pieces_of_rows(stored), exp, cluster=DEFAULT_CLUSTER)
         got = to_date[(to_date["experiment_id"] == exp.id) & (to_date["ds"] == pd.Timestamp(DAYS[2]))]
         got = got.set_index(["arm", "metric"]).loc[list(zip(want.table["arm"], want.table["metric"]))]
         np.testing.assert_array_equal(got["estimate"].to_numpy(float), want.table["estimate"].to_numpy(float))

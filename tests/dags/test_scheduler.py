@@ -1,6 +1,6 @@
-"""The README's backfill path with a real scheduler: api-server, scheduler and dag-processor against a
+"""The documented backfill path (docs/pipeline.md) with a real scheduler: api-server, scheduler and dag-processor against a
 temporary SQLite home with the LocalExecutor, and a 3-day backfill queued with Airflow's own
-``airflow backfill create`` exactly as the README writes it. The days run one after another, in
+``airflow backfill create`` exactly as docs/pipeline.md writes it. The days run one after another, in
 order, and every results table equals, row by row, what ``counterbid backfill`` (the same DAG under
 ``dag.test``, in its own process) writes from the same lake."""
 
@@ -31,7 +31,7 @@ from .conftest import SPEC_TEXT, START
 pytestmark = pytest.mark.slow
 
 DAYS = [START + dt.timedelta(days=k) for k in range(3)]
-#: The README's command (section "Backfills"); the test runs it with these days. Without
+#: The documented command (docs/pipeline.md, section "Backfills"); the test runs it with these days. Without
 #: `--max-active-runs 1` Airflow starts up to 10 backfill runs at once (the DAG's own
 #: max_active_runs does not bound a backfill), and a day's to-date rows then miss the days before it.
 README_BACKFILL = "airflow backfill create --dag-id counterbid_daily --from-date {first} --to-date {last} --max-active-runs 1"
@@ -117,7 +117,7 @@ def _tables(path: Path) -> dict[str, pd.DataFrame]:
 
 
 def test_readme_shows_the_backfill_command_tested_here():
-    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+    readme = (Path(__file__).resolve().parents[2] / "docs" / "pipeline.md").read_text()
     assert README_BACKFILL.format(first="2026-03-02", last="2026-03-15") in readme
 
 
@@ -188,7 +188,7 @@ def test_backfill_create_runs_the_days_in_order_and_writes_what_counterbid_backf
         start("dag-processor")
         _wait("the DAG to be serialized", lambda: _query(db, "select 1 from serialized_dag where dag_id = 'counterbid_daily'"),
               deadline=deadline, procs=procs, logs=logs)
-        # the README's command, queued before the scheduler starts writing to the same SQLite file
+        # the documented command, queued before the scheduler starts writing to the same SQLite file
         airflow(*README_BACKFILL.format(first=DAYS[0], last=DAYS[-1]).split()[1:])
         assert _query(db, "select max_active_runs from backfill") == [(1,)]
         start("api-server", "--host", "127.0.0.1", "--port", str(port), "--apps", "execution", "--workers", "1")
@@ -227,8 +227,11 @@ def test_backfill_create_runs_the_days_in_order_and_writes_what_counterbid_backf
     daily, to_date = scheduled["arm_estimates"], scheduled["arm_estimates_to_date"]
     assert sorted({(e, d.date()) for e, d in zip(daily["experiment_id"], daily["ds"])}) == \
         [(e, d) for e in ("banners", "tiles") for d in DAYS]
-    # to-date rows for the days after the warm-up day, each combining the days up to it
-    assert sorted(set(zip(to_date["ds"].dt.date, to_date["n_days_used"]))) == [(DAYS[1], 1), (DAYS[2], 2)]
+    # to-date rows for every day: the warm-up day's without numbers (no day used yet, status warming_up),
+    # then each later day combining the days up to it
+    assert sorted(set(zip(to_date["ds"].dt.date, to_date["n_days_used"]))) == [(DAYS[0], 0), (DAYS[1], 1), (DAYS[2], 2)]
+    pending = to_date[to_date["n_days_used"] == 0]
+    assert pending["estimate"].isna().all() and all("warming_up" in s.split(",") for s in pending["status"])
 
     # and one day against estimate_arms on the lake, outside Airflow
     lake = pads.dataset(str(tmp_path / "bids"), format="parquet", partitioning="hive").to_table().to_pandas()

@@ -228,8 +228,12 @@ def test_three_reruns_of_a_seven_day_backfill_are_identical(airflow_db, tmp_path
         snapshots.append({t: _rows(tmp_path / "r.duckdb", t) for t in TABLES})
     for table in TABLES:
         first = snapshots[0][table]
-        # the first three days sit in the default three-day warm-up: left out of the experiment to date
-        assert first["ds"].nunique() == (4 if table == "arm_estimates_to_date" else 7)
+        # every day has rows; the first three (the default three-day warm-up) have to-date rows without
+        # numbers: no day of the window is used yet
+        assert first["ds"].nunique() == 7
+        if table == "arm_estimates_to_date":
+            assert (first["n_days_used"] == 0).sum() > 0 and first.loc[first["n_days_used"] == 0, "estimate"].isna().all()
+            assert first.loc[first["n_days_used"] == 0, "ds"].nunique() == 3
         for later in snapshots[1:]:
             pd.testing.assert_frame_equal(later[table].drop(columns=provenance), first.drop(columns=provenance), check_exact=True)
         run_ids = [set(s[table]["run_id"]) for s in snapshots]

@@ -68,7 +68,7 @@ def test_a_day_with_quality_goes_through_every_step_on_either_sink(kind, quality
     stored = results.fetch_df("report_daily_estimates", {"experiment_id": exp.id})
     assert counts["arm_estimates"] == len(stored) > 0
     # the stored numbers are estimate_arms' on the day's bids (quality included), to 1e-12
-    want = estimate_arms(bids, exp).set_index(["arm", "metric"]).sort_index()
+    want = estimate_arms(bids, exp).table.set_index(["arm", "metric"]).sort_index()
     got = stored.set_index(["arm", "metric"]).sort_index()
     assert list(got.index) == list(want.index)
     for column in NUMBERS:  # welfare has no interval: NaN on both sides

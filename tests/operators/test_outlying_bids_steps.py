@@ -16,6 +16,7 @@ from counterbid.estimators import parse_experiments
 from counterbid.estimators.checks import equilibrium_checks
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.pipeline import failed_checks_message
 from counterbid.operators.staging import StagedPartition
 
@@ -41,7 +42,7 @@ def lake(tmp_path_factory, experiment):
 
 def _stage(lake, experiment, tmp_path, max_bids):
     hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
-    out = partition.stage_partition(hook, lake_root=lake, experiment=experiment, ds=DAY,
+    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=experiment, ds=DAY,
                                     staging_root=tmp_path / "stage", max_bids_per_shard=max_bids)
     return hook, StagedPartition.at(tmp_path / "stage", experiment.id, DAY), out
 
@@ -74,7 +75,7 @@ def test_a_huge_bid_stops_a_one_shard_day_naming_it(lake, experiment, tmp_path):
     hook, staged, out = _stage(lake, experiment, tmp_path, max_bids=1_000_000)
     assert out["shards"] == 1
     auction, bidder = _set_bid(staged.shard(0) / "part-0.parquet", 1234, 1e300)
-    results = partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY)
+    results = partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY)
     found = _by_name(results)
     assert not found["outlying_bids"].passed and not found["dominant_bids"].passed
     message = failed_checks_message(results, where=f"experiment 'lead-card' on {DAY}")
@@ -86,7 +87,7 @@ def test_on_several_shards_a_bid_outside_shard_zero_is_found(lake, experiment, t
     hook, staged, out = _stage(lake, experiment, tmp_path, max_bids=4000)
     assert out["shards"] == 3
     auction, bidder = _set_bid(staged.shard(2) / "part-0.parquet", 17, 1e300)
-    found = _by_name(partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY))
+    found = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
     out_check, dom = found["outlying_bids"], found["dominant_bids"]
     assert not out_check.passed and not dom.passed and dom.observed > 0.999
     assert out_check.details["sample"]["shard"] == 0  # the fences came from the sample ...
@@ -98,7 +99,7 @@ def test_on_several_shards_a_moderate_outlier_warns_with_about_the_whole_day_sha
     hook, staged, _ = _stage(lake, experiment, tmp_path, max_bids=4000)
     big = 300 * float(np.median(_day(staged)["bid"]))
     _set_bid(staged.shard(1) / "part-0.parquet", 40, big)
-    found = _by_name(partition.run_partition_checks(hook, experiment=experiment, staged=staged, ds=DAY))
+    found = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
     assert not found["outlying_bids"].passed and found["dominant_bids"].passed
     whole = _day(staged)
     want = _by_name(equilibrium_checks(whole, experiment, ds=DAY))["dominant_bids"].details["share_of_revenue_by_arm"]

@@ -97,7 +97,9 @@ def snapshot(url: str) -> dict[str, pd.DataFrame]:
 def assert_same(got: dict[str, pd.DataFrame], want: dict[str, pd.DataFrame], tables=TABLES) -> None:
     for table in tables:
         assert len(got[table]) == len(want[table]), table
-        pd.testing.assert_frame_equal(got[table], want[table], check_exact=True, obj=table)
+        # numbers to 1e-12 (a rerun may rebuild the running bidder window that the uninterrupted run
+        # extended day by day: the same sums in another order), everything else exactly
+        pd.testing.assert_frame_equal(got[table], want[table], check_exact=False, rtol=1e-12, atol=0, obj=table)
 
 
 def _prepare(urls: tuple[str, ...], lake: Path, stage: Path, day: dt.date, run_id: str) -> None:

@@ -12,7 +12,7 @@ import scipy.stats as st
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import expected_revenue_per_auction, parse_experiments, simulate_experiment
 from counterbid.estimators import combine_pieces, stratum_pieces
-from counterbid.operators import partition
+from counterbid.operators import partition, window_state
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
@@ -41,7 +41,7 @@ def test_pieces_round_trip_through_the_results_tables(tmp_path):
         hook.replace_partition(experiment_id="tiles", ds=START,
                                tables={t: pa.Table.from_pandas(f, preserve_index=False) for t, f in frames.items()})
     stored = hook.stored_piece_frames(experiment_id="tiles", days=[START], tables=list(partition.PIECE_TABLES.values()))
-    back = partition._pieces_of_rows(stored)
+    back = window_state.pieces_of_rows(stored)
     assert len(back) == len(pieces) == 2
     for a, b in zip(pieces, back):
         assert a.equals(b), a.key
@@ -151,12 +151,12 @@ def test_the_default_window_leaves_warm_up_days_out_and_lands_on_the_truth(tmp_p
     assert set(default["days_left_out"]) == {f"{days[0]}..{days[1]} (warmup)"}
     assert set(default["days_used"]) == {f"{days[2]}..{days[5]}"}
     stored = hook.stored_piece_frames(experiment_id="tiles", days=days, tables=list(partition.PIECE_TABLES.values()))
-    included = combine_pieces(partition._pieces_of_rows(stored), exp, cluster="auto")
+    included = combine_pieces(window_state.pieces_of_rows(stored), exp, cluster="auto")
     included = included.table[included.table["metric"] == "revenue_per_auction"].set_index("arm")
     misses = {}
     for arm in exp.arms:
         truth = expected_revenue_per_auction(values, arm.position_weights, 4)
-        for name, table in (("default", default), ("warm-up included", included.table)):
+        for name, table in (("default", default), ("warm-up included", included)):
             misses[(name, arm.name)] = (table.loc[arm.name, "estimate"] - truth) / table.loc[arm.name, "std_error"]
     print("to-date revenue per auction minus truth, in SE:", {k: round(v, 2) for k, v in misses.items()})
     assert all(abs(misses[("default", a.name)]) < 3 for a in exp.arms), misses

@@ -17,6 +17,7 @@ from counterbid.estimators import parse_experiments
 from counterbid.estimators.window import analysis_window, pending_status
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
+from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.report import cumulative_table, format_cumulative, write_report
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
@@ -42,9 +43,9 @@ def _run_days(hook: ResultsHook, lake, staging):
     exp = parse_experiments(SPEC)["grid-badges"]
     seen = []
     for day in DAYS:
-        partition.stage_partition(hook, lake_root=lake, experiment=exp, ds=day, staging_root=staging)
+        partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=staging)
         staged = StagedPartition.at(staging, exp.id, day)
-        partition.record_checks(staged, schema_gate(hook, experiment=exp, staged=staged))
+        partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
         summary = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=staging, run_id=f"run-{day}")
         json.dumps(summary, allow_nan=False)  # what XCom stores: strict JSON, no NaN for a warm-up day
         partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=staging)

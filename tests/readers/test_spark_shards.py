@@ -41,6 +41,11 @@ SPEC = {"experiments": [
         {"name": "low", "share": 0.6, "position_weights": [0.35, 0.15, 0.05]},
         {"name": "tall", "share": 0.4, "position_weights": [0.30, 0.20, 0.10]},
     ]},
+    {"id": "racks-what-if", "control_arm": "low", "payment_rule": "gsp", "floor": 0.4, "arms": [
+        {"name": "low", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
+        {"name": "steep", "share": 0.3, "position_weights": [0.6, 0.1]},
+    ], "what_if": [{"name": "middling", "position_weights": [0.5, 0.15, 0.05]},
+                   {"name": "deeper", "position_weights": [0.4, 0.2, 0.1, 0.05]}]},
 ]}
 EXPERIMENTS = parse_experiments(SPEC)
 RTOL = 1e-9
@@ -175,6 +180,17 @@ def test_gsp_with_a_floor_and_quality(spark, tmp_path):
     assert local.shards == 2 and local.quality and local.floor == 0.4
     _same_frames(local, on_spark, "gsp, floor 0.4, quality, 2 shards")
     assert spark_said == local_said
+
+
+def test_what_if_layouts_on_both_engines(spark, tmp_path):
+    bids = _log(1500, rng=13, experiment="racks-what-if")
+    path = tmp_path / "what_if.parquet"
+    bids.to_parquet(path, index=False)
+    local, _, on_spark, _ = _both(spark, path, "racks-what-if", max_bids_per_shard=3000, cluster="bidder")
+    assert local.shards == 2
+    assert set(on_spark.table.loc[on_spark.table["what_if"], "arm"]) == {"middling", "deeper"}
+    assert on_spark.table.loc[on_spark.table["what_if"], "effective_share"].notna().all()
+    _same_frames(local, on_spark, "what-if layouts, gsp, floor 0.4, bidder clustering, 2 shards")
 
 
 def _local_and_spark_errors(spark, path, **kw) -> tuple[str, str]:

@@ -29,7 +29,7 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", to_date=False, status="ok", lev
         row = dict(experiment_id=exp, ds=ds, arm=arm, metric=metric, estimate=est, std_error=0.01,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
                    confidence_level=level, cluster=cluster, payment_rule="first_price", floor=0.0,
-                   method_version="ordstat-1", run_id=run_id, computed_at=NOW)
+                   method_version="ordstat-1", run_id=run_id, computed_at=NOW, what_if=False, effective_share=np.nan)
         if to_date:
             row.update(first_ds=D1, days_used=f"{D1}..{ds}", days_left_out="", n_days_used=(ds - D1).days + 1,
                        n_days_left_out=0, anytime_low=est - 0.03, anytime_high=est + 0.03,
@@ -168,7 +168,7 @@ def test_a_version_1_database_is_upgraded_in_place_with_its_rows(sink, recorded,
     _build_version_1(sink, record=recorded)
     with sink.session() as s:
         assert schema_version(s) == 1
-    assert sink.ensure_tables() == list(range(2, SCHEMA_VERSION + 1))
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[1:]]
     assert sink.ensure_tables() == []  # idempotent
     kept = _table(sink, "arm_estimates")
     columns = ["arm", "estimate", "status", "run_id", "confidence_level", "cluster", "payment_rule", "floor"]
@@ -178,7 +178,10 @@ def test_a_version_1_database_is_upgraded_in_place_with_its_rows(sink, recorded,
     # version 3 added the anytime-valid bounds: rows written before it have none (null, never 0)
     assert kept_to_date[["anytime_low", "anytime_high", "anytime_horizon_auctions"]].isna().all(axis=None)
     assert kept_to_date["estimate"].tolist() == [1.5]
-    assert _table(sink, "counterbid_schema")["version"].tolist() == list(range(1, SCHEMA_VERSION + 1))
+    # version 5 added what_if and effective_share: rows written before it are arms' (null)
+    for table in (kept, kept_to_date):
+        assert table[["what_if", "effective_share"]].isna().all(axis=None)
+    assert _table(sink, "counterbid_schema")["version"].tolist() == [m.version for m in MIGRATIONS]
     # the upgraded tables take today's rows, and have exactly the columns of a fresh database
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={"arm_estimates": _rows("tiles", D2, status="few_bids")})
     assert len(_table(sink, "arm_estimates")) == 5
@@ -201,7 +204,7 @@ def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
             s.execute("results_drop_table", table="counterbid_schema")
     with sink.session() as s:
         assert schema_version(s) == 2  # from the recorded row, or from the columns
-    assert sink.ensure_tables() == [3, 4]  # the anytime columns, then the to-date table rebuilt for warm-up rows
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6]  # anytime, warm-up rows, what-if, bidder window
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={
         "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
     rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])

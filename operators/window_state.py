@@ -1,0 +1,227 @@
+"""The experiment-to-date inputs of one day: stored pieces, and the running bidder window.
+
+Bidder clustering of the experiment to date needs every window day's bidder sums added bidder by
+bidder. Instead of reading them all back every day, the results database keeps the window's
+running totals ``U_b`` per bidder with their Gram form and distinct-bidder count
+(``bidder_window*`` tables; :mod:`counterbid.estimators.window_totals`). A day whose window is the
+stored one plus today (the daily run) reads only today's bidders' totals (a join on today's ids in
+SQL) and writes them back with today added: its cost follows today's bidders, not the
+experiment's age. Anything else is rebuilt from the stored pieces, exactly as the full
+recombination: the first day, a rerun of a day the window already holds, an earlier day, a window
+that lost or regained a day (burn-in, exclusion, a failed warm-up or drift check), a change of bid
+unit. A day's write drops a stored window that covers it unless it brings the window's update,
+and an update whose base changed since its estimate step is dropped too, so the stored window
+always equals what its days' stored pieces give.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from counterbid.estimators import (
+    BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
+)
+from counterbid.estimators.constants import REVENUE, piece_labels
+from counterbid.estimators.days import parse_day
+from counterbid.estimators.window_totals import WindowTotals
+
+from .hooks import ResultsHook
+from .results_schema import WINDOW_TABLES, WindowWrite
+from .staging import write_json, write_parquet
+
+__all__ = ["ToDateInputs", "load_window_write", "stage_window_write", "to_date_inputs"]
+
+#: Results table of each frame of :func:`counterbid.estimators.pieces_to_frames`.
+PIECE_TABLES = {
+    "strata": "stratum_pieces",
+    "arms": "stratum_piece_arms",
+    "covariance": "stratum_piece_covariance",
+    "bidder_sums": "stratum_piece_bidder_sums",
+}
+_MANIFEST = "bidder_window.json"
+
+
+@dataclass(frozen=True)
+class ToDateInputs:
+    """What the experiment-to-date rows combine: pieces (without bidder sums when ``gram`` is set).
+
+    Attributes
+    ----------
+    pieces : list of StratumPiece
+    gram : BidderGram or None
+        The window's bidder totals (``combine_pieces(..., bidder_gram=gram)``).
+    write : WindowWrite or None
+        The running window to store with the day.
+    route : str
+        ``'extended'`` (today's bidders only), ``'stored'`` (today left out: the stored window as it
+        is), ``'rebuilt'`` (from every stored piece), or
+        ``'by_auction'`` (no bidder sums needed or available).
+    """
+
+    pieces: list[StratumPiece]
+    gram: BidderGram | None
+    write: WindowWrite | None
+    route: str
+
+
+def pieces_of_rows(frames: Mapping[str, pd.DataFrame | None], *, without_sums: bool = False) -> list[StratumPiece]:
+    """Pieces from rows of the results tables; ``without_sums``: the strata rows' bidder sums ignored."""
+    if all(frames.get(table) is None for table in PIECE_TABLES.values()):
+        return []
+    empty = pieces_to_frames([])
+    back = {}
+    for name, table in PIECE_TABLES.items():
+        frame = frames.get(table)
+        if frame is None or (without_sums and name == "bidder_sums"):
+            back[name] = empty[name]
+            continue
+        frame = frame.drop(columns=["experiment_id", "run_id", "computed_at"], errors="ignore").rename(columns={"ds": "day"})
+        frame["day"] = [parse_day(d).isoformat() for d in frame["day"]]
+        if without_sums and name == "strata":
+            frame["n_distinct_bidders"] = -1
+        back[name] = frame
+    return pieces_from_frames(back)
+
+
+def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: list[dt.date], today: list[StratumPiece],
+                   today_in_window: bool, ds: dt.date, cluster: str, run_id: str, computed_at) -> ToDateInputs:
+    """The pieces (and bidder window) the experiment-to-date rows of ``ds`` combine.
+
+    Parameters
+    ----------
+    hook : ResultsHook
+    experiment : Experiment
+    used_before : list of datetime.date
+        Days of the analysis window before ``ds`` (their pieces are stored).
+    today : list of StratumPiece
+        Today's pieces (with bidder sums when the day is clustered by bidder).
+    today_in_window : bool
+        Whether ``ds`` is in the analysis window.
+    ds : datetime.date
+    cluster : {'auto', 'auction', 'bidder'}
+    run_id : str
+    computed_at : timestamp
+
+    Returns
+    -------
+    ToDateInputs
+    """
+    small = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before,
+                                     tables=[t for t in PIECE_TABLES.values() if t != "stratum_piece_bidder_sums"])
+    stored = pieces_of_rows(small, without_sums=True)
+    mine = today if today_in_window else []
+    strata = small.get("stratum_pieces")
+    with_sums = cluster != "auction" and (strata is None or bool((strata["n_distinct_bidders"] >= 0).all())) \
+        and all(p.bidder_sums is not None for p in mine)
+    window = stored + [p.without_bidder_sums() for p in mine]
+    if not window or not with_sums:
+        return ToDateInputs(window, None, None, "by_auction")
+    exponent = max(p.bid_exponent for p in window)
+    days_text = ",".join(d.isoformat() for d in sorted([*used_before, *([ds] if today_in_window else [])]))
+    base = hook.bidder_window(experiment_id=experiment.id)
+    base_days = None if base is None else str(base[0]["days_used"])
+    before_text = ",".join(d.isoformat() for d in sorted(used_before))
+    if base is not None and used_before and base_days == before_text and int(base[0]["bid_exponent"]) == exponent:
+        gram = _gram_of_rows(base[1], int(base[0]["n_distinct_bidders"]), exponent, experiment)
+        if not mine:  # today left out: the stored window is the window
+            return ToDateInputs(window, gram, None, "stored")
+        totals = bidder_totals(mine, bid_exponent=exponent)
+        ids = pa.table({"experiment_id": pa.array([experiment.id] * len(totals.bidder_ids), pa.string()),
+                        "bidder_id": pa.array(totals.bidder_ids, pa.string()),
+                        "arm": pa.array([""] * len(totals.bidder_ids), pa.string()),
+                        "value": pa.array(np.zeros(len(totals.bidder_ids)), pa.float64())})  # one row a bidder
+        found = hook.bidder_window_totals(experiment_id=experiment.id, today=ids)
+        before, seen = _before(found, totals, experiment)
+        gram, after = extend_gram(gram, totals, before, seen)
+        write = _window_write(experiment, "extend", base_days, days_text, ds, gram, totals.bidder_ids, after, run_id,
+                              computed_at)
+        return ToDateInputs(window, gram, write, "extended")
+    full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
+    totals = bidder_totals(pieces_of_rows(full) + mine, bid_exponent=exponent)
+    gram = gram_of(totals)
+    write = _window_write(experiment, "replace", None, days_text, ds, gram, totals.bidder_ids, totals.sums, run_id,
+                          computed_at)
+    return ToDateInputs(window, gram, write, "rebuilt")
+
+
+def _labels(experiment: Experiment) -> list[str]:
+    """The bidder sums' columns (``StratumPiece.sum_labels``): each arm's, each what-if layout's, the mixture's revenue."""
+    return [name for name, metric in piece_labels(experiment) if metric == REVENUE]
+
+
+def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment: Experiment) -> BidderGram:
+    labels = _labels(experiment)
+    index = {name: i for i, name in enumerate(labels)}
+    gram = np.full((len(labels), len(labels)), np.nan)
+    for a, b, v in zip(rows["arm_i"], rows["arm_j"], rows["value"]):
+        gram[index[a], index[b]] = v
+    return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=exponent)
+
+
+def _totals_rows(experiment: Experiment, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
+    labels = _labels(experiment)
+    n = len(ids)
+    return pa.table({
+        "experiment_id": pa.array(np.full(n * len(labels), experiment.id, dtype=object), pa.string()),
+        "bidder_id": pa.array(np.repeat(np.asarray(ids, dtype=object), len(labels)), pa.string()),
+        "arm": pa.array(np.tile(np.asarray(labels, dtype=object), n), pa.string()),
+        "value": pa.array(sums.ravel(), pa.float64()),
+    })
+
+
+def _before(found: pd.DataFrame, totals: WindowTotals, experiment: Experiment) -> tuple[np.ndarray, np.ndarray]:
+    """The stored totals of today's bidders in today's row order (zeros, unseen, for new bidders)."""
+    before = np.zeros_like(totals.sums)
+    seen = np.zeros(totals.sums.shape[0], dtype=bool)
+    if found.empty:
+        return before, seen
+    rows = pd.Index(totals.bidder_ids).get_indexer(found["bidder_id"].astype(str))
+    cols = pd.Index(_labels(experiment)).get_indexer(found["arm"].astype(str))
+    before[rows, cols] = found["value"].to_numpy(dtype=float)
+    seen[rows] = True
+    return before, seen
+
+
+def _window_write(experiment: Experiment, mode: str, base_days: str | None, days_text: str, ds: dt.date,
+                  gram: BidderGram, ids: np.ndarray, sums: np.ndarray, run_id: str, computed_at) -> WindowWrite:
+    labels = _labels(experiment)
+    last = max(parse_day(d) for d in days_text.split(","))
+    summary = pa.Table.from_pylist([{
+        "experiment_id": experiment.id, "ds": last, "days_used": days_text, "n_distinct_bidders": int(gram.n_bidders),
+        "bid_exponent": int(gram.bid_exponent), "run_id": run_id, "computed_at": pd.Timestamp(computed_at).to_pydatetime()}])
+    pairs = [(a, b, float(gram.gram[i, j])) for i, a in enumerate(labels) for j, b in enumerate(labels)]
+    gram_rows = pa.Table.from_pylist([{"experiment_id": experiment.id, "arm_i": a, "arm_j": b, "value": v}
+                                      for a, b, v in pairs])
+    return WindowWrite(mode=mode, base_days=base_days, tables={
+        "bidder_window": summary, "bidder_window_gram": gram_rows,
+        "bidder_window_totals": _totals_rows(experiment, ids, sums)})
+
+
+def stage_window_write(write: WindowWrite | None, folder: Path) -> None:
+    """Stage the window's update beside the day's files (removing an earlier attempt's when there is none)."""
+    manifest = folder / _MANIFEST
+    if write is None:
+        manifest.unlink(missing_ok=True)
+        return
+    for dest in WINDOW_TABLES:
+        write_parquet(write.tables[dest.destination], folder / f"{dest.destination}.parquet")
+    write_json({"mode": write.mode, "base_days": write.base_days}, manifest)
+
+
+def load_window_write(folder: Path) -> WindowWrite | None:
+    """The staged update of the running window (``None``: the day brings none)."""
+    manifest = folder / _MANIFEST
+    if not manifest.exists():
+        return None
+    meta = json.loads(manifest.read_text(encoding="utf-8"))
+    return WindowWrite(mode=meta["mode"], base_days=meta["base_days"],
+                       tables={d.destination: pq.read_table(folder / f"{d.destination}.parquet") for d in WINDOW_TABLES})
