@@ -278,3 +278,41 @@ def test_the_planner_plans_on_the_pooled_rows_of_a_segmented_pilot():
     assert not rows.duplicated(subset=[c for c in rows.columns if c in ("share", "arm", "metric")]).any()
     assert len(rows) > 0 and np.isfinite(rows.select_dtypes("number").to_numpy(float)).all()
     assert plan.basis == "pilot" and all(0 < v < 1 for v in plan.pilot_scale.values()), plan.pilot_scale
+
+
+def test_a_what_if_layout_gets_per_segment_rows_equal_to_the_segment_estimated_alone():
+    """The what-if layout's rows of a segment, effective share included, are the segment's own estimate."""
+    bids = _log(6000, 10)
+    doc = {"experiments": [{"id": "pantry", "control_arm": "shelf", "segments": ["aisle"], "arms": [
+        {"name": n, "share": s, "position_weights": w} for (n, w), s in zip(WEIGHTS.items(), (0.75, 0.25))],
+        "what_if": [{"name": "lean", "position_weights": [0.36, 0.12, 0.04]}]}]}
+    exp = parse_experiments(doc)["pantry"]
+    plain = parse_experiments({"experiments": [{**doc["experiments"][0], "segments": []}]})["pantry"]
+    out = estimate_arms(bids, exp).table
+    for name in SEGMENTS:
+        mine = out[(out["segment"] == name) & out["what_if"]].reset_index(drop=True)
+        alone = estimate_arms(bids[bids["aisle"] == name], plain).table
+        alone = alone[alone["what_if"]].reset_index(drop=True)
+        assert len(mine) == len(alone) > 0 and set(mine["arm"]) == {"lean"}
+        cols = ["estimate", "std_error", "effective_share"]
+        np.testing.assert_allclose(mine[cols].to_numpy(float), alone[cols].to_numpy(float), rtol=1e-12)
+    pooled = out[out["segment"].isna() & out["what_if"]]
+    assert (pooled["metric"] == "revenue_per_auction").any() and np.isfinite(pooled["estimate"]).all()
+
+
+def test_running_bidder_totals_per_segment_give_the_rows_of_the_bidder_sums():
+    """combine_pieces with a BidderGram per segment equals combining the pieces' own bidder sums (1e-12)."""
+    from counterbid.estimators import bidder_totals, gram_of
+
+    exp = _experiment()
+    pieces = stratum_pieces(_log(4000, 11, bidder_pool=300), exp, day="2026-05-04", cluster="bidder")
+    direct = combine_pieces(pieces, exp, cluster="bidder").table
+    grams = {name: gram_of(bidder_totals([p for p in pieces if p.key.segment == name])) for name in SEGMENTS}
+    light = [p.without_bidder_sums() for p in pieces]
+    via = combine_pieces(light, exp, cluster="bidder", bidder_gram=gram_of(bidder_totals(pieces)),
+                         segment_grams=grams).table
+    cols = ["estimate", "std_error", "ci_low", "ci_high"]
+    np.testing.assert_allclose(via[cols].to_numpy(float), direct[cols].to_numpy(float), rtol=1e-12)
+    with pytest.raises(InputError, match="segment 'fresh' has neither bidder totals nor bidder sums"):
+        combine_pieces(light, exp, cluster="bidder", bidder_gram=gram_of(bidder_totals(pieces)),
+                       segment_grams={"bulk": grams["bulk"]})
