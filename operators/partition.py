@@ -76,18 +76,6 @@ class MissingPartitionError(RuntimeError):
     """The day's partition folder does not exist (yet): retryable, unlike bad input."""
 
 
-def refuse_segments(experiment: Experiment) -> None:
-    """One line, before anything is staged or written: the results tables do not store segment rows yet.
-
-    Segment rows share ``(experiment_id, ds, arm, metric)`` with the pooled rows; the results
-    schema keys on that, so they wait for the schema version that adds the ``segment`` column
-    (``counterbid estimate`` gives them meanwhile).
-    """
-    if experiment.segments:
-        raise InputError(f"experiment {experiment.id!r} declares segments ({', '.join(experiment.segments)}): the "
-                         "results tables do not store per-segment rows yet; estimate it with `counterbid estimate`")
-
-
 def stage_partition(
     lake: LakeHook,
     *,
@@ -117,7 +105,6 @@ def stage_partition(
         ``{"day_bids": int, "shards": int, "max_bids_per_shard": int, "folder": str,
         "measured_arms": list}``.
     """
-    refuse_segments(experiment)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
     day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
@@ -366,7 +353,6 @@ def estimate_partition(
         Sample sizes, shards, the engine, the window and the revenue estimate per arm (small;
         logged and returned to XCom).
     """
-    refuse_segments(experiment)
     engine = _engine(spark, lake_root)
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     status = load_checks(staged)
@@ -414,7 +400,7 @@ def estimate_partition(
     results: dict[str, ArmEstimates] = {"day": day_result}
     if to_date_pieces:
         to_date_cluster = cluster
-        if cluster == "bidder" and inputs.gram is None:
+        if cluster == "bidder" and inputs.route == "by_auction":
             # a day of the window was estimated clustered by auction (no bidder sums stored):
             # the days can only be combined by auction; the rows say so in their `cluster` column
             log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
@@ -443,7 +429,7 @@ def estimate_partition(
         table["computed_at"] = computed_at
         tables[span] = table
         summary[f"{span}_bids"] = result.n_bids
-        rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
+        rev = table[(table["metric"] == "revenue_per_auction") & table["segment"].isna()].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
     if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
         tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),

@@ -328,14 +328,3 @@ def test_rows_of_a_day_whose_bids_move_together_carry_heterogeneous_auctions(hoo
         welfare = rows["metric"] == "welfare_per_auction"
         assert set(rows.loc[welfare, "status"]) == {"heterogeneous_auctions,no_interval,warning"}
         assert set(rows.loc[~welfare, "status"]) == {"heterogeneous_auctions,warning"}
-
-
-def test_a_segmented_experiment_is_refused_before_anything_is_staged(hook, lake, experiment, tmp_path):
-    """The results tables key rows on (experiment, day, arm, metric): per-segment rows wait for the
-    schema version with a segment column, and the pipeline says so in one line, staging nothing."""
-    segmented = dataclasses.replace(experiment, segments=("aisle",))
-    with pytest.raises(InputError, match=r"declares segments \(aisle\).*`counterbid estimate`"):
-        _stage(hook, lake, segmented, tmp_path, START)
-    assert not (tmp_path / "stage").exists()
-    with pytest.raises(InputError, match="declares segments"):
-        partition.estimate_partition(hook, experiment=segmented, ds=START, staging_root=tmp_path / "stage", run_id="r")
