@@ -485,6 +485,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         window_line = window_caption(cum) if len(cum) else ""
         pending = _pending(cum)
         if pending:  # the latest to-date rows hold no number yet: say why, show no table of n/a
+            segments = segments.iloc[0:0]
             cum_text = (f"<p>Experiment to date, to {pd.Timestamp(cum['ds'].max()).date()}: no day used yet "
                         f"(status {html.escape(day_status(cum))}); the numbers start with the first day the window "
                         f"keeps.</p>")
