@@ -29,6 +29,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         f"{', '.join(DISTRIBUTIONS)}), bidders per auction and share of auctions, e.g. "
                         "'bulk:beta:4:0.6'; repeat for each segment. Written to the experiment's one segment column "
                         "(the spec's `segments:`), which every simulated experiment must declare")
+    p.add_argument("--scale-covariate", action="append", default=[], metavar="NAME:GAMMA:SD",
+                   help="an auction-level column NAME drawn from Normal(0, SD) per auction; every value and bid of "
+                        "the auction is multiplied by exp(GAMMA x NAME). Repeatable. Refused with a floor")
+    p.add_argument("--hidden-scale-sd", type=float, default=0.0, metavar="SIGMA",
+                   help="log-sd of an auction-level factor exp(SIGMA e - SIGMA^2/2) that scales every value and bid "
+                        "of the auction and is not logged (default 0: none). Refused with a floor")
 
 
 def _distribution(name: str):
@@ -75,6 +81,30 @@ def _segment_column(exp, segments) -> str | None:
     return exp.segments[0]
 
 
+def _scale_covariates(items: list[str]) -> dict:
+    """``--scale-covariate NAME:GAMMA:SD`` options as ``{name: (gamma, Normal(0, sd))}``; one line for a bad one."""
+    import math
+    import re
+
+    import scipy.stats as st
+
+    from counterbid.estimators.errors import InputError
+
+    out = {}
+    for item in items:
+        parts = item.split(":")
+        try:
+            name, gamma, sd = parts[0], float(parts[1]), float(parts[2])
+            ok = len(parts) == 3 and sd > 0 and math.isfinite(gamma) and math.isfinite(sd)
+        except (IndexError, ValueError):
+            ok = False
+        if not ok or not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]{0,62}", parts[0]) or parts[0] in out:
+            raise InputError(f"--scale-covariate {item!r}: expected NAME:GAMMA:SD with a distinct column name, a "
+                             "finite GAMMA and SD > 0")
+        out[name] = (gamma, st.norm(0.0, sd))
+    return out
+
+
 def run(args: argparse.Namespace) -> int:
     import numpy as np
 
@@ -99,6 +129,7 @@ def run(args: argparse.Namespace) -> int:
         quality = st.uniform(low, high - low)
     segments = _segments(args.segment or [])
     columns = {exp.id: _segment_column(exp, segments) for exp in experiments.values()}  # refused before writing
+    covariates = _scale_covariates(args.scale_covariate)
     root = Path(args.out)
     next_id = 0
     for d in range(args.days):
@@ -107,7 +138,8 @@ def run(args: argparse.Namespace) -> int:
         part.mkdir(parents=True, exist_ok=True)
         for exp in experiments.values():
             options = dict(rng=rng, ds=day, first_auction_id=next_id, payment_rule=exp.payment_rule,
-                           floor=exp.floor or None, quality=quality)
+                           floor=exp.floor or None, quality=quality, scale_covariates=covariates,
+                           unobserved_scale_sd=args.hidden_scale_sd)
             if columns[exp.id] is None:
                 frame = simulate_experiment(values, exp, n_bidders=args.bidders, n_auctions=args.auctions_per_day,
                                             **options)

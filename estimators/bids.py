@@ -15,6 +15,7 @@ import pandas as pd
 
 from ._validate import check_experiment
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
+from .covariate_columns import auction_covariates
 from .errors import InputError, no_pieces_error
 from .spec import Experiment
 
@@ -71,6 +72,8 @@ class PreparedBids:
         int64 for integer ids, str objects for text), or ``None`` when the labels are the ids
         themselves (non-negative integer ids). Strata estimated from different logs (days,
         shards) meet on these ids (:mod:`.combine`).
+    covariates : ndarray of float64, shape (N, p), or None
+        Each bid's auction values of the spec's ``scale_covariates`` (``None``: none declared).
     """
 
     bid: np.ndarray
@@ -86,6 +89,7 @@ class PreparedBids:
     bidder_ids: np.ndarray | None = None
     segment: np.ndarray | None = None
     segment_names: tuple[str, ...] = ()
+    covariates: np.ndarray | None = None
 
 
 def _row(rows: np.ndarray | None, i: int) -> int:
@@ -375,12 +379,19 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     segment, segment_names = _segments(bids, experiment, auction, contiguous, rows, source)
     bidder, n_bidder_labels, bidder_ids = _bidder_labels(bids["bidder_id"])
     _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous)
+    covariates = auction_covariates(bids, experiment.scale_covariates, auction, experiment_id=experiment.id,
+                                    rows=rows, source=source)
+    if covariates is not None and not low > 0:  # homogenising takes the log of every (effective) bid
+        i = int(np.flatnonzero(~(bid > 0))[0])
+        raise InputError(f"{source}: column 'bid' row {_row(rows, i)} is {float(bid[i])!r}; with scale_covariates "
+                         "every (effective) bid must be > 0 (its log is taken)")
     n_excluded_bids = int(np.count_nonzero(n_bidders < 2)) if n_excluded else 0
     if n_excluded_bids:
         keep = n_bidders >= 2
         auction = pd.factorize(auction[keep], sort=False)[0]
         bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
         segment = None if segment is None else segment[keep]
+        covariates = None if covariates is None else covariates[keep]
     if bid.size == 0:
         raise no_pieces_error(source, experiment.id, single_bidders=True, n_excluded_auctions=n_excluded)
     return PreparedBids(
@@ -397,6 +408,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         bidder_ids=bidder_ids,
         segment=segment,
         segment_names=segment_names,
+        covariates=covariates,
     )
 
 

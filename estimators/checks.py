@@ -25,6 +25,7 @@ from .allocation import allocation_rule, mixture_rule
 from .bids import PreparedBids, prepare_bids
 from .check_settings import DEFAULT_CHECKS, SEVERITIES, check_config
 from .dependence import auction_dependence
+from .scale_covariates import homogenized_bids
 from .errors import InputError
 from .spec import Experiment, parse_day
 
@@ -873,7 +874,9 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     CheckResult
         ``observed`` is the pooled correlation ``r`` (:func:`~counterbid.estimators.dependence.
         auction_dependence`, strata by number of bidders and, when the experiment declares
-        segments, by segment), ``threshold`` is ``min_correlation``.
+        segments, by segment; on homogenised bids,
+        :func:`~counterbid.estimators.scale_covariates.homogenized_bids`, when the spec declares
+        ``scale_covariates``), ``threshold`` is ``min_correlation``.
         Fails when ``r`` minus its null mean exceeds ``min_correlation`` and its one-sided p-value
         is below ``alpha``; the severity is ``error`` when it also exceeds ``error_correlation``.
         ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r``
@@ -892,7 +895,10 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     cfg = _config(config, experiment)["auction_dependence"]
     data = _prepared(bids, experiment, source)
     stratum, name_of = _dependence_strata(data)
-    dep = auction_dependence(data.bid, data.auction, stratum)
+    bid = data.bid
+    if data.covariates is not None:  # what the spec models is taken out first: per-stratum homogenised bids
+        bid = homogenized_bids(data.bid, data.covariates, stratum, source=source)
+    dep = auction_dependence(bid, data.auction, stratum)
     per = {name_of(s.key): {"correlation": s.correlation, "standard_error": s.standard_error,
                             "auctions": s.n_auctions} for s in dep.strata}
     excess = dep.excess

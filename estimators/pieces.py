@@ -38,6 +38,7 @@ from .days import parse_day
 from .errors import EstimatorWarning
 from .spec import Experiment
 from .order_weights import revenue_weights
+from .scale_covariates import fit_scale
 from .stratum import estimate_stratum, floor_step, stratum_weights, table_weights, unit_exponent
 from .support import weights_bounded
 
@@ -415,7 +416,11 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
     n_labels = 2 * k_targets + 1
     b_raw = data.bid if rows is None else data.bid[rows]
     top_bid = float(b_raw.max())
-    exponent = unit_exponent(top_bid)
+    scale = None
+    if data.covariates is not None:  # estimate on homogenised bids, scale back below (docs/method.md)
+        scale = fit_scale(b_raw, data.covariates if rows is None else data.covariates[rows], source=source)
+        b_raw = scale.homogenized
+    exponent = unit_exponent(float(b_raw.max()))
     floor_value = math.ldexp(float(experiment.floor or 0.0), -exponent)  # per click, (effective) bid units
     if exponent:
         b_raw = np.ldexp(b_raw, -exponent)
@@ -447,6 +452,11 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
     if space is not None:
         bcs = (space.codes if rows is None else space.codes[rows])[order].astype(np.intp, copy=False)
     del order, b_raw
+    if scale is not None:  # the scaling's influence per unit of estimate: auction and bidder sums, like the kernel's
+        unit = scale.unit_influence / big_n
+        auc_rows = data.auction if rows is None else data.auction[rows]
+        scale_sums = (None if auc is None else np.bincount(auc_rows, weights=unit, minlength=data.n_auctions),
+                      None if bcs is None else _unit_bidder_sums(space, rows, codes, unit))
     if ids is not None:  # allocated after the sort's temporaries are gone
         sums = np.empty((ids.size, k_targets + 1))
     extra = k_targets - k_arms  # what-if layouts: one more revenue pass each, with themselves as the mixture
@@ -464,6 +474,8 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
     if any(w is None for w in welfare):
         flags.append("not_identified")
     out = estimate_stratum(sorted_bids, n, revenue, welfare, floor, influence=buffer.of(big_n), on_influence=keep)
+    if scale is not None:
+        _scale_back(scale.scale_mean, out, k_targets + extra, auction_sums, sums, *scale_sums)
     estimate[:k_targets] = out[:k_targets]
     estimate[k_targets:2 * k_targets] = out[k_targets + extra:]
     # The estimator is linear in the target rule and the mixture's rule is the share-weighted sum of
@@ -484,6 +496,30 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
             sums[:, t] = np.nan
     numbers.sums, numbers.flags = sums, tuple(flags)
     return numbers
+
+
+def _unit_bidder_sums(space: _BidderSpace, rows: np.ndarray | None, codes: np.ndarray | None,
+                      unit: np.ndarray) -> np.ndarray:
+    """Per bidder of the stratum (the order of its ``sums``), the summed scaling influence ``unit``."""
+    by_code = np.bincount(space.codes if rows is None else space.codes[rows], weights=unit, minlength=space.ids.size)
+    return by_code if codes is None else by_code[codes]
+
+
+def _scale_back(m: float, out: np.ndarray, n_revenue: int, auction_sums: np.ndarray | None,
+                sums: np.ndarray | None, unit_auction: np.ndarray | None, unit_bidder: np.ndarray | None) -> None:
+    """Estimates on homogenised bids back to the bids' scale, in place (:func:`.scale_covariates.fit_scale`).
+
+    Each label's estimate ``T~`` becomes ``m T~``; each revenue label's influence sums ``S~``
+    become ``m S~ + T~ U`` with ``U`` the sums of the scaling's unit influence.
+    """
+    if auction_sums is not None:
+        auction_sums *= m
+        auction_sums += out[:n_revenue, None] * unit_auction[None, :]
+    if sums is not None:
+        k = sums.shape[1] - 1  # revenue per target (the mixture's column is filled afterwards)
+        sums[:, :k] *= m
+        sums[:, :k] += unit_bidder[:, None] * out[None, :k]
+    out *= m
 
 
 def _target_weights(experiment: Experiment, n: int, big_n: int, floor) -> tuple[list, list, np.ndarray]:

@@ -280,6 +280,10 @@ def plan_shares(
     >>> sorted(plan.table["share"].unique().tolist())
     [0.05, 0.2]
     """
+    if experiment.scale_covariates:  # its calibration logs carry no covariates, and pilot values would pool them
+        raise InputError(f"experiment {experiment.id!r} declares scale_covariates "
+                         f"({', '.join(experiment.scale_covariates)}): the planner does not model them; plan with a "
+                         "spec without them (its precision then ignores the covariates' share of the spread)")
     usable = _iv(experiment, days, auctions_per_day, shares, target_half_width, target_metric, confidence_level,
                  calibration_auctions)
     rng = np.random.default_rng(rng)

@@ -8,6 +8,7 @@ nothing here reads real data.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
@@ -347,6 +348,8 @@ def simulate_experiment(
     payment_rule: str | None = None,
     floor: float | None = None,
     quality=None,
+    scale_covariates: Mapping[str, tuple[float, object]] | None = None,
+    unobserved_scale_sd: float = 0.0,
 ) -> pd.DataFrame:
     """Simulate one experiment's bid log: bids answer the mixture, the arm is drawn per auction.
 
@@ -382,6 +385,15 @@ def simulate_experiment(
         ``value * quality`` (the symmetric private value of the click model in which bidder ``i``
         at position ``k`` gets ``w_k * quality_i`` clicks), the submitted bid is the effective
         bid divided by the quality, and ``value`` is logged per click (effective value / quality).
+    scale_covariates : mapping of str to (float, distribution), optional
+        Auction-level columns ``{name: (gamma, distribution of x)}``: every value (and, the
+        equilibrium being homogeneous of degree one in the values without a floor, every bid) of
+        auction ``j`` is multiplied by ``exp(sum_k gamma_k x_jk)``; the drawn ``x`` are logged in
+        column ``name``. Refused with a floor.
+    unobserved_scale_sd : float, optional
+        Log-sd ``sigma`` of an unlogged auction-level factor ``exp(sigma e_j - sigma^2 / 2)``
+        (``e_j`` standard normal, mean-one factor) multiplying the auction's values and bids as
+        above. Default 0: none. Refused with a floor.
 
     Returns
     -------
@@ -474,6 +486,12 @@ def simulate_experiment(
     cols = ["experiment_id", "ds", "auction_id", "bidder_id", "arm", "bid", "position", "value", "clicks"]
     if quality is not None:
         cols.append("quality")
+    if scale_covariates or unobserved_scale_sd:
+        if floor:
+            raise InputError("scale covariates and unobserved scale factors are not simulated with a floor: "
+                             "the floor does not scale with them")
+        cols += _scale_auctions(out, dict(scale_covariates or {}), float(unobserved_scale_sd), int(n_auctions),
+                                first_auction_id, rng)
     return out[cols].reset_index(drop=True)
 
 
@@ -547,3 +565,30 @@ def simulate_segmented_experiment(segments: Mapping[str, SimulatedSegment], expe
         frames.append(frame)
         first += count
     return pd.concat(frames, ignore_index=True)
+
+
+def _scale_auctions(out: pd.DataFrame, covariates: dict, sigma: float, n_auctions: int, first_auction_id: int,
+                    rng: np.random.Generator) -> list[str]:
+    """Multiply each auction's values and bids by ``exp(gamma . x_j + sigma e_j - sigma^2/2)``, in place.
+
+    Without a floor the equilibrium bid is homogeneous of degree one in the values (the first-order
+    condition, and the next-price one, are linear in values and bids; docs/method.md, "Scale
+    covariates"), so scaling an auction's equilibrium bids is its equilibrium under scaled values.
+    Returns the covariate columns added.
+    """
+    if not (math.isfinite(sigma) and sigma >= 0):
+        raise InputError(f"`unobserved_scale_sd` must be a finite number >= 0; got {sigma!r}")
+    log_factor = np.zeros(n_auctions)
+    for name, spec in covariates.items():
+        if name in out.columns:
+            raise InputError(f"scale covariate {name!r} clashes with a column of the simulated log")
+        gamma, dist = spec
+        x = dist.rvs(size=n_auctions, random_state=rng)
+        log_factor += float(gamma) * x
+        out[name] = x[out["auction_id"].to_numpy() - first_auction_id]
+    if sigma:
+        log_factor += sigma * rng.standard_normal(n_auctions) - sigma**2 / 2
+    factor = np.exp(log_factor)[out["auction_id"].to_numpy() - first_auction_id]
+    out["bid"] = out["bid"].to_numpy() * factor
+    out["value"] = out["value"].to_numpy() * factor
+    return list(covariates)

@@ -19,6 +19,7 @@ A spec file (YAML) holds one or more experiments::
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
         segments: [category]       # optional: bid-log columns constant within an auction; estimated apart
+        scale_covariates: [demand_index]  # optional: numeric auction-level columns values scale with
 
 ``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
 bid, or truthful VCG prices); it decides how bids map back to values. ``floor`` is one number for
@@ -43,6 +44,11 @@ whose values come from different distributions are not pooled into one inversion
 against control from the mixture's bids (``docs/method.md``, "Layouts that did not run"). Names must
 differ from the arms' and from each other; weights are validated as the arms' and cannot be
 ``measured`` (a layout that never ran has no clicks to measure).
+
+``scale_covariates`` names numeric bid-log columns, constant within an auction, with which every
+value of the auction scales (values ``= exp(gamma . x) x`` a draw from one distribution): the
+estimate runs on homogenised bids and is scaled back (``docs/method.md``, "Scale covariates"). A
+floor does not scale with them, so a floor with scale covariates is refused.
 
 ``position_weights`` may also be the string ``measured``: the pipeline then fills the weights
 from the click log before estimating. A key the spec does not know, at any level (the top, an
@@ -89,7 +95,8 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days", "max_bid", "segments", "what_if"})
+                             "burn_in_days", "exclude_days", "max_bid", "segments", "what_if",
+                             "scale_covariates"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 WHAT_IF_KEYS = frozenset({"name", "position_weights", "description"})
 
@@ -185,6 +192,9 @@ class Experiment:
         segments estimated apart (``()``: not segmented).
     what_if : tuple of WhatIf
         Layouts that did not run, estimated from the same bids (no share: not in the mixture).
+    scale_covariates : tuple of str
+        Numeric bid-log columns, constant within an auction, that scale every value of the
+        auction (``()``: none; see :mod:`.scale_covariates`).
     """
 
     id: str
@@ -200,6 +210,7 @@ class Experiment:
     max_bid: float | None = None
     segments: tuple[str, ...] = ()
     what_if: tuple[WhatIf, ...] = ()
+    scale_covariates: tuple[str, ...] = ()
 
     @property
     def arm_names(self) -> tuple[str, ...]:
@@ -331,6 +342,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
     segments = _segments(raw.get("segments"), where)
     what_if = _what_ifs(raw.get("what_if"), {a.name for a in arms}, where)
+    covariates = _scale_covariates(raw.get("scale_covariates"), floor, where)
     return Experiment(
         id=exp_id,
         payment_rule=rule,
@@ -345,7 +357,28 @@ def _experiment(raw: Any, where: str) -> Experiment:
         max_bid=max_bid,
         segments=segments,
         what_if=what_if,
+        scale_covariates=covariates,
     )
+
+
+def _scale_covariates(raw: Any, floor: Any, where: str) -> tuple[str, ...]:
+    """The ``scale_covariates`` list: distinct column names outside the contract; refused beside a floor."""
+    if raw is None:
+        return ()
+    if isinstance(raw, (str, bytes)) or not isinstance(raw, Sequence):
+        raise InputError(f"{where}: 'scale_covariates' must be a list of bid-log column names; got {raw!r}")
+    out: list[str] = []
+    for i, name in enumerate(raw):
+        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]{0,62}", name):
+            raise InputError(f"{where}: scale_covariates[{i}] must be a column name (letters, digits, '_'); got {name!r}")
+        if name in BID_CONTRACT or name in out:
+            why = "is a column of the bids data contract" if name in BID_CONTRACT else "is listed twice"
+            raise InputError(f"{where}: scale_covariates[{i}] {name!r} {why}")
+        out.append(name)
+    if out and floor:
+        raise InputError(f"{where}: a floor ({floor!r}) with scale_covariates is not modelled: the floor does not "
+                         "scale with the covariates, so bids are not homogeneous in them; drop one of the two")
+    return tuple(out)
 
 
 def _max_bid(value: Any, floor: Any, where: str) -> float | None:

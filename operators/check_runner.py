@@ -108,7 +108,7 @@ def run_checks(
                                               experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
-    bids = _bids_frame(con, render_sql("check_day_bids", relation=sample_relation or relation))
+    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=sample_relation or relation))
     if counts is not None:
         shard, shards = sample_shard if sample_shard is not None else (None, None)
         sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
@@ -162,8 +162,13 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
     """
     validate_identifier(relation, what="relation")
     relation = with_quality(con, relation)
-    bids = _bids_frame(con, render_sql("check_day_bids", relation=relation))
+    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=relation))
     return bid_quantile_summary(bids, experiment, source=relation)
+
+
+def _day_bids_statement(experiment: Experiment) -> str:
+    """The checks' bids: the contract's columns, or every column when the spec names scale covariates or segments."""
+    return "check_day_bids_every_column" if experiment.scale_covariates or experiment.segments else "check_day_bids"
 
 
 def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:

@@ -282,7 +282,8 @@ def pieces_by_shard(
     shards = list(shards)
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
-        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.segments], source=where)
+        bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.segments,
+                                        *experiment.scale_covariates], source=where)
         try:
             prepared = prepare_bids(bids, experiment, source=where)
         except NothingToEstimate as exc:

@@ -333,7 +333,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     InputError
         The first shard's error (by shard number), the line the local engine gives for that shard.
     """
-    columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.segments] if c in bids.columns]
+    columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.segments, *experiment.scale_covariates]
+               if c in bids.columns]
     if "auction_id" not in columns:  # the shards need it: prepare_bids's line, before any statement names it
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)

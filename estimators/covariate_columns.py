@@ -1,0 +1,90 @@
+"""The spec's ``scale_covariates`` columns of a bid log, validated: numeric, finite, constant within an auction.
+
+:func:`auction_covariates` is called by :func:`~counterbid.estimators.prepare_bids`; every fault is
+one line naming the column and the row (or the auction and its two rows).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+__all__ = ["auction_covariates"]
+
+
+def _row(rows: np.ndarray | None, i: int) -> int:
+    return int(i if rows is None else rows[i])
+
+
+def _value(x) -> str:
+    """A cell value as it reads in an error line (numpy scalars unwrapped)."""
+    return repr(x.item() if isinstance(x, np.generic) else x)
+
+
+def _column(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> np.ndarray:
+    """One covariate column as float64; refuses non-numbers, nulls and infinities naming the first row."""
+    what = f"{source}: scale covariate column {name!r}"
+    if pd.api.types.is_bool_dtype(col):
+        raise InputError(f"{what} must be numeric, not boolean (dtype {col.dtype})")
+    if not pd.api.types.is_numeric_dtype(col):
+        coerced = pd.to_numeric(col, errors="coerce")
+        bad = np.flatnonzero(coerced.isna().to_numpy() & col.notna().to_numpy())
+        if bad.size:
+            i = int(bad[0])
+            raise InputError(f"{what} must be numeric (dtype {col.dtype}); row {_row(rows, i)} holds {_value(col.iloc[i])}")
+        col = coerced
+    x = col.to_numpy(dtype=float, na_value=np.nan)
+    if x.size and not (np.isfinite(x.min()) and np.isfinite(x.max())):
+        for test, kind in ((np.isnan, "null or NaN"), (np.isinf, "infinite")):
+            bad = np.flatnonzero(test(x))
+            if bad.size:
+                raise InputError(f"{what} row {_row(rows, int(bad[0]))} is {kind} ({float(x[bad[0]])!r}); "
+                                 "scale covariates must be finite numbers")
+    return x
+
+
+def auction_covariates(bids: pd.DataFrame, names: Sequence[str], auction: np.ndarray, *, experiment_id: str,
+                       rows: np.ndarray | None = None, source: str = "bids") -> np.ndarray | None:
+    """The covariates of every bid, ``N x p`` float64 (``None`` when ``names`` is empty).
+
+    Parameters
+    ----------
+    bids : pandas.DataFrame
+        The experiment's rows of the bid log.
+    names : sequence of str
+        The spec's ``scale_covariates``.
+    auction : ndarray of int
+        Auction code of each row (0..A-1).
+    experiment_id : str
+    rows : ndarray, optional
+        Row of the caller's frame of each row of ``bids`` (for the error lines; ``None``: the same).
+    source : str
+
+    Raises
+    ------
+    InputError
+        A missing column, a non-numeric, null or infinite value, or an auction whose rows disagree.
+    """
+    if not names:
+        return None
+    out = np.empty((len(bids), len(names)))
+    for k, name in enumerate(names):
+        if name not in bids.columns:
+            raise InputError(f"{source}: scale covariate column {name!r} of experiment {experiment_id!r} is missing")
+        x = _column(bids[name], name, rows, source)
+        first = np.empty(int(auction.max()) + 1)
+        first[auction[::-1]] = x[::-1]  # the first row of each auction
+        split = np.flatnonzero(first[auction] != x)
+        if split.size:
+            i = int(split[0])
+            j = int(np.flatnonzero(auction == auction[i])[0])
+            raise InputError(
+                f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of scale covariate column {name!r} "
+                f"({float(x[j])!r} at row {_row(rows, j)}, {float(x[i])!r} at row {_row(rows, i)}); "
+                "a scale covariate must be constant within an auction")
+        out[:, k] = x
+    return out
