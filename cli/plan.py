@@ -1,4 +1,9 @@
-"""``counterbid plan``: predicted interval half-widths per share after D days, and the smallest share that suffices."""
+"""``counterbid plan``: predicted interval half-widths per share after D days, and the smallest share that suffices.
+
+With ``--lift-half-width`` it ranks candidate layouts instead (the spec's ``what_if`` list, ``--layout``
+and ``--layouts-file``): by their estimated revenue from the ``--bids`` of the running experiment, and by the
+share each would need beside control to settle its lift to that half width in ``--days`` days.
+"""
 
 from __future__ import annotations
 
@@ -28,6 +33,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--anytime-valid", action="store_true", dest="anytime",
                    help="plan for the anytime-valid bounds of the experiment to date at the planned end (valid when "
                         "the results are looked at every day) instead of the fixed interval of one planned look")
+    p.add_argument("--lift-half-width", type=float, metavar="H",
+                   help="rank candidate layouts (the spec's what_if list, --layout, --layouts-file) by estimated revenue "
+                        "from --bids and by the share each needs beside control to settle its lift to +-H (a ratio: "
+                        "0.01 is one percentage point) in --days days; replaces the share plan of the arms")
+    p.add_argument("--layout", action="append", default=[], metavar="NAME=W1,W2,...",
+                   help="a candidate layout: its name and position weights, top first (repeatable)")
+    p.add_argument("--layouts-file", metavar="PATH",
+                   help="YAML list of candidate layouts, each {name, position_weights} as in a spec's what_if list")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--format", choices=("table", "json", "csv"), default="table", dest="output_format")
 
@@ -42,6 +55,10 @@ def run(args: argparse.Namespace) -> int:
 
     if not 0 < args.level < 1:
         raise InputError(f"--level must be in (0, 1); got {args.level}")
+    if args.lift_half_width is not None or args.layout or args.layouts_file:
+        from counterbid.cli.plan_layouts import run_ranking
+
+        return run_ranking(args)
     # every experiment's segment columns too: a segmented pilot is estimated per segment (its pooled rows plan)
     segment_columns = sorted({c for e in load_experiments(args.experiment).values() for c in e.segments})
     bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS, *segment_columns]) if args.bids else None

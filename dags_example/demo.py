@@ -49,6 +49,23 @@ def make_lake(out: Path, *, days: int, auctions_per_day: int, bidders: int, seed
     print(f"bid lake written to {out / 'lake'} in {time.perf_counter() - started:.1f}s", file=sys.stderr, flush=True)
 
 
+def rank_what_ifs(lake: Path, *, days: int = 14, lift_half_width: float = 0.005) -> dict:
+    """Each experiment with what-if layouts: its candidates ranked from the lake's last day of its bids, for
+    ``days`` more days at that day's traffic (the report's "Candidates for the next experiment")."""
+    from counterbid.estimators import BID_COLUMNS, load_experiments
+    from counterbid.estimators.candidates import rank_candidates
+    from counterbid.readers.bid_log import read_bids
+
+    rankings = {}
+    for exp in load_experiments(HERE / "experiments.yaml").values():
+        files = sorted(lake.glob(f"ds=*/{exp.id}.parquet"))
+        if exp.what_if and files:
+            bids = read_bids(files[-1], columns=["experiment_id", *BID_COLUMNS])
+            rankings[exp.id] = rank_candidates(bids, exp, days=days, auctions_per_day=int(bids["auction_id"].nunique()),
+                                               target_half_width=lift_half_width, source=str(files[-1]))
+    return rankings
+
+
 def make_report(out: Path, results: str | None = None) -> None:
     from counterbid.operators.hooks import ResultsHook
     from counterbid.operators.report import cumulative_table, format_cumulative, write_report
@@ -64,7 +81,7 @@ def make_report(out: Path, results: str | None = None) -> None:
         flagged = days[days["worst_status"] != "passed"]
         listed = ", ".join(f"{pd.Timestamp(d).date()} {s}" for d, s in zip(flagged["ds"], flagged["worst_status"]))
         print(f"  {exp_id}: {listed or 'none'}")
-    page = write_report(hook, out / "report")
+    page = write_report(hook, out / "report", candidates=rank_what_ifs(out / "lake"))
     print(f"\nreport: {page}")
 
 

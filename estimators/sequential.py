@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
+from ._validate import check_confidence_level, check_positive
 from .errors import InputError
 from .spec import Experiment
 
@@ -33,13 +34,6 @@ __all__ = [
 
 #: Days combined at the planned last look when the spec gives no ``end`` (four weeks).
 DEFAULT_PLANNED_DAYS = 28
-
-
-def _level(confidence_level) -> float:
-    if isinstance(confidence_level, bool) or not isinstance(confidence_level, (int, float, np.floating)) \
-            or not 0 < float(confidence_level) < 1:
-        raise InputError(f"`confidence_level` must be in (0, 1); got {confidence_level!r}")
-    return float(confidence_level)
 
 
 def mixture_tuning(confidence_level: float = 0.95) -> float:
@@ -66,7 +60,7 @@ def mixture_tuning(confidence_level: float = 0.95) -> float:
        mixture boundary and its tuning for a planned time).
     .. [2] Corless, R. M. et al. (1996). On the Lambert W function. Adv. Comput. Math. 5, 329-359 (from memory).
     """
-    alpha = 1.0 - _level(confidence_level)
+    alpha = 1.0 - check_confidence_level(confidence_level)
     w = special.lambertw(-alpha * alpha / math.e, k=-1)
     return float(-w.real - 1.0)
 
@@ -98,7 +92,7 @@ def anytime_multiplier(information_ratio, *, confidence_level: float = 0.95) -> 
        memory; volume not checked)
        (the asymptotic confidence sequence ``estimate +- std_error x`` this multiplier).
     """
-    alpha = 1.0 - _level(confidence_level)
+    alpha = 1.0 - check_confidence_level(confidence_level)
     r = np.asarray(information_ratio, dtype=float)
     if r.size and not (np.all(np.isfinite(r)) and np.all(r > 0)):
         raise InputError("`information_ratio` must be finite and > 0 (units to date over planned units)")
@@ -180,11 +174,8 @@ def anytime_bounds(estimate, std_error, *, units: float, planned_units: float,
     >>> round(b.multiplier, 3), round(b.width_ratio, 3), round(float(b.low), 4)
     (3.251, 1.659, -0.001)
     """
-    level = _level(confidence_level)
-    for name, value in (("units", units), ("planned_units", planned_units)):
-        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) \
-                or not math.isfinite(value) or value <= 0:
-            raise InputError(f"`{name}` must be a finite number > 0; got {value!r}")
+    level = check_confidence_level(confidence_level)
+    units, planned_units = check_positive("units", units), check_positive("planned_units", planned_units)
     est = np.asarray(estimate, dtype=float)
     se = np.asarray(std_error, dtype=float)
     if est.shape != se.shape:

@@ -84,6 +84,7 @@ __all__ = [
     "load_experiments",
     "parse_day",
     "parse_experiments",
+    "parse_what_ifs",
 ]
 
 #: Payment rules the estimator implements (the one list lives with their weights).
@@ -300,21 +301,13 @@ def _experiment(raw: Any, where: str) -> Experiment:
             raise InputError(f"{aw} ({name}): arms with different floors are not modelled (bids would bunch at "
                              "each arm's floor); set one 'floor' for the whole experiment")
         _refuse_unknown(a, ARM_KEYS, f"{aw} ({name})" if isinstance(name, str) else aw)
-        if not isinstance(name, str) or not _NAME.match(name):
-            raise InputError(
-                f"{aw}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
-                f"not starting with '_' or '-'; got {name!r}"
-            )
+        name, weights = _layout(a, aw)
         if name in {x.name for x in arms}:
             raise InputError(f"{aw}: duplicate arm name {name!r}")
         share = a.get("share")
         if isinstance(share, bool) or not isinstance(share, (int, float)) or not (0 < share <= 1):
             raise InputError(f"{aw} ({name}): 'share' must be a number in (0, 1]; got {share!r}")
-        pw = a.get("position_weights")
-        if pw == "measured":
-            arms.append(Arm(name, float(share), None, measured=True))
-        else:
-            arms.append(Arm(name, float(share), _weights(pw, f"{aw} ({name}) position_weights")))
+        arms.append(Arm(name, float(share), weights, measured=weights is None))
     total = math.fsum(a.share for a in arms)
     if abs(total - 1.0) > SHARE_TOLERANCE:
         raise InputError(f"{where}: arm shares must sum to 1 (within {SHARE_TOLERANCE:g}); they sum to {total:.9g}")
@@ -426,19 +419,47 @@ def _what_ifs(raw: Any, arm_names: set[str], where: str) -> tuple[WhatIf, ...]:
             raise InputError(f"{ww} ({name}): a what-if layout did not run and has no 'share'; "
                              "list it under 'arms' if it ran")
         _refuse_unknown(item, WHAT_IF_KEYS, f"{ww} ({name})" if isinstance(name, str) else ww)
-        if not isinstance(name, str) or not _NAME.match(name):
-            raise InputError(f"{ww}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
-                             f"not starting with '_' or '-'; got {name!r}")
+        name, weights = _layout(item, ww)
         if name in arm_names:
             raise InputError(f"{ww}: name {name!r} is already an arm's; a what-if layout needs its own name")
         if name in {w.name for w in out}:
             raise InputError(f"{ww}: duplicate what-if name {name!r}")
-        pw = item.get("position_weights")
-        if pw == "measured":
+        if weights is None:
             raise InputError(f"{ww} ({name}): position_weights cannot be 'measured' for a layout that did not run "
                              "(it has no clicks); give the weights as numbers")
-        out.append(WhatIf(name, _weights(pw, f"{ww} ({name}) position_weights")))
+        out.append(WhatIf(name, weights))
     return tuple(out)
+
+
+def _layout(raw: Mapping, where: str) -> tuple[str, tuple[float, ...] | None]:
+    """A layout's validated ``name`` and ``position_weights`` (``None`` for ``measured``): arms' and what-ifs'."""
+    name = raw.get("name")
+    if not isinstance(name, str) or not _NAME.match(name):
+        raise InputError(f"{where}: 'name' must be 1-128 characters of letters, digits, '_', '.', '-' "
+                         f"not starting with '_' or '-'; got {name!r}")
+    pw = raw.get("position_weights")
+    if isinstance(pw, str) and pw == "measured":
+        return name, None
+    return name, _weights(pw, f"{where} ({name}) position_weights")
+
+
+def parse_what_ifs(raw: Any, arm_names: Sequence[str] = (), *, source: str = "layouts") -> tuple[WhatIf, ...]:
+    """Validate a list of ``{name, position_weights}`` layouts as a spec's ``what_if`` list.
+
+    Parameters
+    ----------
+    raw : list of mapping
+        As the ``what_if`` key of an experiment (e.g. a candidates file).
+    arm_names : sequence of str
+        Names the layouts must not take (the experiment's arms).
+    source : str
+        Where the list came from, for error messages.
+
+    Returns
+    -------
+    tuple of WhatIf
+    """
+    return _what_ifs(raw, set(arm_names), source)
 
 
 def parse_experiments(document: Any, *, source: str = "spec") -> dict[str, Experiment]:

@@ -60,6 +60,12 @@ def _one_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
 
 
+def _delivery_error(target: str, conn_id: str, failure: BaseException | str) -> AlertDeliveryError:
+    """The one failure line of every target: ``alert to <target> '<conn_id>' not delivered: <reason>``."""
+    reason = failure if isinstance(failure, str) else _reason(failure)
+    return AlertDeliveryError(f"alert to {target} {conn_id!r} not delivered: {reason}")
+
+
 def _reason(exc: BaseException) -> str:
     """``Type: first line`` of ``exc``, and of the error underneath when a hook wrapped it."""
     root = exc
@@ -133,10 +139,9 @@ def post_webhook(conn_id: str, alert: Mapping[str, Any], *, endpoint: str | None
         response = hook.run_with_advanced_retry(dict(retry_args) if retry_args else _http_retry_args(retries),
                                                 endpoint=endpoint, json=body, extra_options=options)
     except Exception as exc:  # noqa: BLE001 (any failure of the request is reported the same way)
-        raise AlertDeliveryError(f"alert to webhook {conn_id!r} not delivered: {_reason(exc)}") from exc
+        raise _delivery_error("webhook", conn_id, exc) from exc
     if not response.ok:
-        raise AlertDeliveryError(f"alert to webhook {conn_id!r} not delivered: HTTP {response.status_code} "
-                                 f"{response.reason}")
+        raise _delivery_error("webhook", conn_id, f"HTTP {response.status_code} {response.reason}")
     return f"HTTP {response.status_code}"
 
 
@@ -173,7 +178,7 @@ def post_slack(conn_id: str, text: str, *, retries: int = 2) -> str:
     try:
         response = SlackWebhookHook(slack_webhook_conn_id=conn_id, retry_handlers=handlers).send(text=text)
     except Exception as exc:  # noqa: BLE001
-        raise AlertDeliveryError(f"alert to slack {conn_id!r} not delivered: {_reason(exc)}") from exc
+        raise _delivery_error("slack", conn_id, exc) from exc
     return f"HTTP {response.status_code}"
 
 
@@ -213,5 +218,5 @@ def mail_alert(conn_id: str, alert: Mapping[str, Any], *, to: Sequence[str] | No
     except InputError:
         raise
     except Exception as exc:  # noqa: BLE001
-        raise AlertDeliveryError(f"alert to smtp {conn_id!r} not delivered: {_reason(exc)}") from exc
+        raise _delivery_error("smtp", conn_id, exc) from exc
     return [recipients] if isinstance(recipients, str) else list(recipients)

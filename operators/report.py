@@ -10,7 +10,9 @@ import datetime as dt
 import html
 import math
 import os
+from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 import matplotlib
 
@@ -27,7 +29,8 @@ from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
     "ANYTIME_NOTE", "ASSUMPTIONS", "EXPECTED_FLAGS", "MIXTURE_GAP_SE", "anytime_caption", "attention_flags", "auction_caption",
-    "cumulative_table", "day_status", "segment_lift_table", "format_cumulative", "interval_caption", "what_if_table", "window_caption", "write_report",
+    "CANDIDATES_NOTE", "candidate_table", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "segment_lift_table", "what_if_table", "window_caption", "write_report",
 ]
 
 #: What every number in the report rests on.
@@ -390,11 +393,52 @@ def _plot_lift(daily: pd.DataFrame, to_date: pd.DataFrame, exp_id: str, target: 
     return title
 
 
+CANDIDATES_NOTE = ("Candidates for the next experiment, ranked by their what-if revenue per auction (the same caution "
+                   "as the layouts that did not run) and by the traffic share each would need, run as an arm beside "
+                   "control, to settle its lift to the stated half width in the stated days. The share reads the "
+                   "lift's spread off the bids that ran in place of the bids bidders would place against that "
+                   "experiment's mixture (docs/method.md, 'The next experiment: the share a candidate needs').")
+_SHARE_TEXT = {"any_share": "any (even {:g})", "out_of_reach": "none reaches it", "thin_support": "thin support: none"}
+
+
+def candidate_table(ranking) -> pd.DataFrame:
+    """A :class:`~counterbid.estimators.candidates.CandidateRanking` as report cells, best revenue first."""
+    t = ranking.table
+    if t.empty:
+        return pd.DataFrame()
+    rows = {}
+    for _, r in t.iterrows():
+        share = f"{r['needed_share']:.3g}" if r["status"] == "ok" else \
+            _SHARE_TEXT[r["status"]].format(r["needed_share"])
+        rows[r["layout"]] = {
+            "revenue rank": "" if pd.isna(r["revenue_rank"]) else int(r["revenue_rank"]),
+            "revenue / auction": _interval(r["revenue_per_auction"], r["revenue_low"], r["revenue_high"]),
+            "lift vs control": _interval(r["lift_vs_control"], r["lift_low"], r["lift_high"], pct=True),
+            "effective share": "n/a" if pd.isna(r["effective_share"]) else f"{r['effective_share']:.3g}",
+            "share needed": share,
+            "share rank": "" if pd.isna(r["share_rank"]) else int(r["share_rank"]),
+            "from": r["origin"],
+        }
+    return pd.DataFrame.from_dict(rows, orient="index")
+
+
+def _candidates_html(ranking) -> str:
+    frame = candidate_table(ranking) if ranking is not None else pd.DataFrame()
+    if frame.empty:
+        return ""
+    return (f"<h3>Candidates for the next experiment</h3><p>Lift half width wanted: "
+            f"&plusmn;{ranking.target_half_width:.2%} in {ranking.days} days of {ranking.auctions_per_day:,} auctions, "
+            f"beside {html.escape(ranking.control_arm)}; {format_level(ranking.confidence_level)} intervals clustered by "
+            f"auction, from {ranking.n_auctions:,} auctions.</p>{_table_html(frame)}"
+            f"<p class='note'>{html.escape(CANDIDATES_NOTE)}</p>")
+
+
 def _table_html(frame: pd.DataFrame, *, index=True) -> str:
     return frame.to_html(index=index, escape=True, border=0, classes="grid", na_rep="")
 
 
-def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auction experiments: per-arm estimates") -> Path:
+def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auction experiments: per-arm estimates",
+                 candidates: Mapping[str, Any] | None = None) -> Path:
     """Write ``out_dir/index.html`` and its PNG plots from the results database.
 
     Parameters
@@ -403,6 +447,10 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     out_dir : path
         Created if missing; files are replaced.
     title : str
+    candidates : mapping, optional
+        Experiment id to its :class:`~counterbid.estimators.candidates.CandidateRanking`
+        (:func:`~counterbid.estimators.candidates.rank_candidates`): the experiment's section then
+        ranks those layouts for the next experiment. Experiments without one show no such section.
 
     Returns
     -------
@@ -512,6 +560,7 @@ the realized per-arm average's are always clustered by auction.</p>
 {weights_note}
 {f"<h3>Lift by segment</h3>{_table_html(segments)}<p class='note'>{html.escape(SEGMENT_NOTE)}</p>" if len(segments) else ""}
 {f"<h3>Layouts that did not run</h3>{_table_html(layouts)}<p class='note'>{html.escape(WHAT_IF_NOTE)}</p>" if len(layouts) else ""}
+{_candidates_html((candidates or {}).get(exp_id))}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}
 <img src="{html.escape(rev_png)}" alt="revenue per auction by day, {html.escape(exp_id)}">
 {f'<img src="{html.escape(lift_png)}" alt="lift by day, {html.escape(exp_id)}">' if has_lift else ""}

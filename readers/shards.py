@@ -21,7 +21,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.dataset as pads
 
-from counterbid.estimators import BID_COLUMNS, MAX_BIDS_PER_SHARD, Experiment, StratumPiece, prepare_bids, stratum_pieces
+from counterbid.estimators import BID_COLUMNS, MAX_BIDS_PER_SHARD, BidderGram, Experiment, StratumPiece, prepare_bids, stratum_pieces
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .bid_log import read_bids
@@ -231,11 +231,16 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
 
 @dataclass(frozen=True)
 class ShardPieces:
-    """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read."""
+    """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read.
+
+    ``gram``: the input's bidder sums as a :class:`~counterbid.estimators.BidderGram` when an
+    engine added them per bidder itself (the Spark engine); the pieces then carry none.
+    """
 
     pieces: list[StratumPiece]
     n_excluded_auctions: int
     shards: int = 1
+    gram: BidderGram | None = None
 
 
 def pieces_by_shard(

@@ -47,10 +47,12 @@ from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .shards import ShardPieces
+from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_gram, partition_gram
 from .shards import max_bids_per_shard as _max_bids_setting
 
 __all__ = [
     "ENGINES",
+    "EngineFailure",
     "SPARK_EXTRA",
     "SPARK_MASTER_ENV",
     "STATEMENT_PARAMETERS",
@@ -74,9 +76,11 @@ _FILES_VIEW = "counterbid_bid_files"
 _ROW_BITS = 40
 #: Session setting under which Spark reads Parquet's nanosecond timestamps (pandas' datetimes) as integers.
 _NANOS_AS_LONG = "spark.sql.legacy.parquet.nanosAsLong"
-#: Columns of each shard's answer.
+#: Columns of each shard's answer (one row), then of its per-bidder rows (:mod:`.spark_bidder_gram`).
 _ANSWER = ("shard long, n_bids long, n_excluded long, single_bidders boolean, error string, warnings array<string>, "
-           "pieces binary")
+           f"pieces binary, with_sums boolean, {BIDDER_COLUMNS}")
+#: Columns of what reaches the driver: the answers, and one Gram row per partition of the bidder rows.
+_COLLECTED = f"{_ANSWER}, {GRAM_COLUMNS}"
 
 
 def require_pyspark():
@@ -187,6 +191,61 @@ def _analysis_error(exc: Exception, source: str) -> InputError:
     return InputError(f"{source}: not a readable Parquet file ({first})")
 
 
+class EngineFailure(InputError):
+    """The Spark engine failed (not the input): one line with the cause, printed as the command's error line."""
+
+
+#: Causes of a failed Spark job, by what its error text holds, first match wins.
+_CAUSES = (
+    (re.compile(r"maxResultSize"), "the results exceed spark.driver.maxResultSize ({detail}); raise it, or 0 for no "
+                                   "limit"),
+    (re.compile(r"OutOfMemoryError|Java heap space|GC overhead limit"),
+     "out of memory in Spark's JVM ({detail}); give the driver or executors more memory "
+     "(spark.driver.memory, spark.executor.memory) or the shards fewer bids"),
+    (re.compile(r"\bMemoryError\b|failed to map segment|Cannot allocate memory|bad_alloc|\[Errno 12\]"),
+     "out of memory in a Python worker ({detail}); raise spark.executor.pyspark.memory or the executors' memory, "
+     "or give the shards fewer bids"),
+    (re.compile(r"ExecutorLostFailure|[Ll]ost executor|Python worker exited unexpectedly|"
+                r"SparkContext was shut down|Connection reset"),
+     "an executor or Python worker was lost ({detail}); run it again, and check the cluster's logs if it recurs"),
+)
+#: The line of Spark's error text that says what happened.
+_DETAIL = re.compile(r"(java\.lang\.OutOfMemoryError[^\n]*|Total size of serialized results[^\n;]*|"
+                     r"ExecutorLostFailure[^\n]*|Python worker exited unexpectedly[^\n]*|"
+                     r"\[[A-Z][A-Z_.]*\][^\n]*)")
+
+
+def engine_failure(exc: Exception, source: str) -> Exception:
+    """One line for a failed Spark job: its cause (out of memory, a lost executor, ...) and Spark's own words.
+
+    Errors of Spark and its Python workers (PySpark's and py4j's exception types) become an
+    :class:`EngineFailure`; anything else is returned unchanged.
+    """
+    if not type(exc).__module__.startswith(("pyspark", "py4j")):
+        return exc
+    text = str(exc)
+    lines = [line.strip() for line in text.strip().splitlines() if line.strip()]
+    if "An exception was thrown from the Python worker" in text and lines:
+        detail = lines[-1]  # the worker's own exception line, after its traceback
+    else:
+        found = _DETAIL.search(text)
+        detail = found.group(1).strip() if found else (lines[0] if lines else type(exc).__name__)
+    if len(detail) > 240:
+        detail = detail[:237] + "..."
+    for pattern, wording in _CAUSES:
+        if pattern.search(text):
+            return EngineFailure(f"{source}: the Spark engine failed: " + wording.format(detail=detail))
+    return EngineFailure(f"{source}: the Spark engine failed ({detail})")
+
+
+def _as_engine_failure(exc: Exception, source: str) -> Exception:
+    """What to raise for ``exc`` inside an ``except`` block: its :func:`engine_failure` line, else ``exc`` itself."""
+    failure = engine_failure(exc, source)
+    if failure is not exc:
+        failure.__cause__, failure.__suppress_context__ = None, True
+    return failure
+
+
 def _quiet_query_loggers() -> None:
     """PySpark's loggers that print every SQL error with its Java stack as JSON on stderr, silenced.
 
@@ -247,7 +306,7 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     except Exception as exc:  # listing the files runs a job: a file Spark cannot read shows up here too
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
 
 
 #: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
@@ -264,8 +323,12 @@ def _shard_names(several: bool):
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
-                  columns: list[str]) -> pa.Table:
-    """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too."""
+                  columns: list[str], sums_apart: bool = False) -> pa.Table:
+    """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too.
+
+    With ``sums_apart``, pieces that carry bidder sums travel without them and the shard's
+    per-bidder totals follow the answer row as rows of their own (:mod:`.spark_bidder_gram`).
+    """
     import pyarrow.compute as pc
 
     from .bid_log import bids_from_arrow
@@ -292,17 +355,39 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         excluded, single_bidders, error = exc.n_excluded_auctions, True, str(exc)
     except InputError as exc:
         error = str(exc)
-    return pa.table({
+    with_sums = bool(pieces) and all(p.bidder_sums is not None for p in pieces)
+    if sums_apart and with_sums:
+        ids, unit, sums = bidder_rows(pieces)
+        pieces = [p.without_bidder_sums() for p in pieces]
+    schema = _answer_schema()
+    answer = pa.table({
         "shard": pa.array([shard], pa.int64()), "n_bids": pa.array([n_bids], pa.int64()),
         "n_excluded": pa.array([excluded], pa.int64()), "single_bidders": pa.array([single_bidders], pa.bool_()),
         "error": pa.array([error], pa.string()),
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
-    })
+        "with_sums": pa.array([with_sums], pa.bool_()),
+        "bidder_id": pa.nulls(1, pa.string()), "bidder_unit": pa.nulls(1, pa.int32()),
+        "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
+    }, schema=schema)
+    if sums_apart and with_sums:
+        return pa.concat_tables([answer, bidder_table(ids, unit, sums, shard, schema)])
+    return answer
+
+
+def _answer_schema(with_gram: bool = False) -> pa.Schema:
+    """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
+    fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
+              ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
+              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_id", pa.string()),
+              ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
+    if with_gram:
+        fields += [("part_bidders", pa.int64()), ("part_unit", pa.int32()), ("part_gram", pa.list_(pa.float64()))]
+    return pa.schema(fields)
 
 
 def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, cluster: str = "auto", day=None,
-                       source: str = "bids") -> ShardPieces:
+                       source: str = "bids", bidder_gram: bool = True, expected_bids: int | None = None) -> ShardPieces:
     """Estimate every shard of a Spark frame of bids in parallel; the pieces, on the driver.
 
     Parameters
@@ -321,17 +406,28 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         Recorded in every piece.
     source : str
         Name of the input in messages; a shard of several is ``"<source> (shard K)"``, as locally.
+    bidder_gram : bool, optional
+        Default True: bidder sums are added per bidder on the executors and only their Gram form
+        reaches the driver (:mod:`.spark_bidder_gram`); the pieces come back without bidder
+        sums. False: the pieces keep their bidder sums (every shard's, on the driver).
+    expected_bids : int, optional
+        Rows of ``bids``: the shards' answers must account for every one of them.
 
     Returns
     -------
     ShardPieces
         As :func:`counterbid.readers.shards.pieces_by_shard`: the pieces by shard, then number of
-        bidders, and the single-bidder auctions left out.
+        bidders, and the single-bidder auctions left out; with ``bidder_gram``, the bidder
+        window of the input (``gram``; ``None`` when some shard's pieces carry no bidder sums,
+        which combine by auction as the local engine's do).
 
     Raises
     ------
     InputError
         The first shard's error (by shard number), the line the local engine gives for that shard.
+    EngineFailure
+        Spark failed (out of memory, a lost executor, a result above ``spark.driver.maxResultSize``):
+        one line with the cause.
     """
     columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.segments, *experiment.scale_covariates]
                if c in bids.columns]
@@ -342,7 +438,12 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
-                             columns=columns)
+                             columns=columns, sums_apart=bidder_gram)
+
+    collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
+
+    def one_partition(batches):  # runs in a Python worker, once per partition of the bidder rows
+        return partition_gram(batches, collected)
 
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
@@ -351,11 +452,22 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
                    .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
         with _quiet_pyspark():
-            answers = sorted(grouped.applyInArrow(one_shard, _ANSWER).collect(), key=lambda r: r["shard"])
+            out = grouped.applyInArrow(one_shard, _ANSWER)
+            if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
+                out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
+            rows = out.collect()
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
+    answers = sorted((r for r in rows if r["n_bids"] is not None), key=lambda r: r["shard"])
+    parts = [(r["part_bidders"], r["part_unit"], r["part_gram"]) for r in rows
+             if bidder_gram and r["part_bidders"] is not None]
+    del rows
+    if expected_bids is not None and sum(int(a["n_bids"]) for a in answers) != int(expected_bids):
+        raise EngineFailure(f"{source}: the Spark engine returned the answers of {sum(int(a['n_bids']) for a in answers)} "
+                            f"of {expected_bids} bids (a task's result was lost); run it again, with more driver "
+                            "memory if it recurs")
     # as locally, a shard is named only when more than one shard holds bids (which only the answers tell)
     named = _shard_names(len(answers) > 1)
     for answer in answers:
@@ -363,15 +475,22 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
             raise InputError(named(answer["error"]))
     pieces: list[StratumPiece] = []
     excluded = 0
+    every_sum = True  # every shard that has pieces sent its bidder sums
     for answer in answers:
         for message in answer["warnings"] or []:
             warnings.warn(named(message), EstimatorWarning, stacklevel=2)
         excluded += int(answer["n_excluded"])
-        pieces += pickle.loads(answer["pieces"])
+        mine = pickle.loads(answer["pieces"])
+        every_sum = every_sum and (not mine or bool(answer["with_sums"]))
+        pieces += mine
     if not pieces:  # as locally: several shards of single-bidder auctions only, or no bids at all
         raise no_pieces_error(source, experiment.id, single_bidders=any(a["single_bidders"] for a in answers),
                               n_excluded_auctions=excluded)
-    return ShardPieces(pieces, excluded, int(shards))
+    gram = None
+    if bidder_gram and every_sum:
+        size = len(pieces[0].sum_labels)
+        gram = combined_gram(parts, size, max(p.bid_exponent for p in pieces))
+    return ShardPieces(pieces, excluded, int(shards), gram=gram)
 
 
 def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):
@@ -396,7 +515,7 @@ def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | 
     except Exception as exc:  # AnalysisException, or py4j's wrapper of Spark's error reading a footer
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
     frame.createOrReplaceTempView(view)
     return frame
 
@@ -428,11 +547,12 @@ def bid_log_pieces_on_spark(spark, path: str, experiment: Experiment, *, max_bid
     except Exception as exc:  # a footer Spark could list but not read
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
-        raise
+        raise _as_engine_failure(exc, source)
     if rows == 0:
         raise InputError(f"{source}: holds no bids (0 rows)")
     shards = n_shards(rows, _max_bids_setting(max_bids_per_shard))
-    return spark_shard_pieces(spark, bids, experiment, shards=shards, cluster=cluster, source=source)
+    return spark_shard_pieces(spark, bids, experiment, shards=shards, cluster=cluster, source=source,
+                              expected_bids=rows)
 
 
 def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, shards: int,
@@ -476,4 +596,6 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
         day = _run_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id)
     except AnalysisException as exc:
         raise _analysis_error(exc, source) from None
-    return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source)
+    # the estimate step stores the day's pieces with their bidder sums (the running window reads them)
+    return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source,
+                              bidder_gram=False)

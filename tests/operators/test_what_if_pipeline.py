@@ -1,5 +1,5 @@
 """What-if layouts through the pipeline steps: staged, estimated, stored (schema version 5), combined to date
-from the stored pieces, and shown in the report's own section."""
+from the stored pieces, and shown in the report's own section (and, when ranked, as candidates)."""
 
 from __future__ import annotations
 
@@ -11,11 +11,12 @@ import pandas as pd
 import pytest
 
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import EstimatorWarning, combine_pieces, parse_experiments, stratum_pieces
+from counterbid.estimators import EstimatorWarning, WhatIf, combine_pieces, parse_experiments, stratum_pieces
+from counterbid.estimators.candidates import rank_candidates
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
-from counterbid.operators.report import WHAT_IF_NOTE, write_report
+from counterbid.operators.report import CANDIDATES_NOTE, WHAT_IF_NOTE, candidate_table, write_report
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.staging import StagedPartition
 
@@ -82,3 +83,26 @@ def test_report_has_a_what_if_section(stored, tmp_path):
     page = write_report(hook, tmp_path).read_text()
     assert "Layouts that did not run" in page and "halfway" in page and "effective share" in page
     assert "respond to each layout as they would if it ran" in WHAT_IF_NOTE and "as they would if it ran" in page
+
+
+def test_report_ranks_candidates_only_when_given(stored, tmp_path):
+    """The ranking of :func:`rank_candidates` on the lake's bids appears in its experiment's section; a
+    report written without it has no such section. Cells: revenue with its interval, the share text
+    by status (a half width no share reaches in one day of 50 auctions: 'none reaches it')."""
+    root, hook, exp = stored
+    bids = pd.read_parquet(root / "bids" / f"ds={START}" / "reedhall.parquet")
+    wide = rank_candidates(bids, exp, [WhatIf("plain-copy", (0.4, 0.2, 0.1))], days=14, auctions_per_day=1500,
+                           target_half_width=0.01)
+    page = write_report(hook, tmp_path / "ranked", candidates={exp.id: wide}).read_text()
+    section = page[page.index("Candidates for the next experiment"):]
+    assert "&plusmn;1.00% in 14 days of 1,500 auctions, beside plain" in section and CANDIDATES_NOTE[:60] in section
+    cells = candidate_table(wide)
+    assert list(cells.index) == list(wide.table["layout"]) and "plain-copy" in section
+    assert cells.loc["plain-copy", "share needed"] == "any (even 0.001)"  # control's own layout: lift 0, no spread
+    top = wide.table.iloc[0]
+    assert cells.iloc[0]["revenue / auction"] == f"{top['revenue_per_auction']:.4f} [{top['revenue_low']:.4f}, " \
+                                                 f"{top['revenue_high']:.4f}]"
+    tight = rank_candidates(bids, exp, days=1, auctions_per_day=50, target_half_width=1e-5)
+    assert set(candidate_table(tight)["share needed"]) == {"none reaches it"}
+    plain = write_report(hook, tmp_path / "plain").read_text()
+    assert "Candidates for the next experiment" not in plain

@@ -1,0 +1,166 @@
+"""Bidder clustering on Spark: per-bidder sums added on the executors, only their Gram form reaches the driver.
+
+Bidder clustering needs ``sum_b U_b U_b'`` over the distinct bidders ``b`` of the input, with
+``U_b = sum_s M_s 2**(e_s - E) S_{b,s}`` (:class:`counterbid.estimators.BidderGram`,
+``docs/method.md``, "Strata, shards and the experiment to date"). A bidder bids in many shards,
+so the shards' sums must meet on the bidder before they are squared. On Spark:
+
+1. each shard's worker adds its pieces' bidder sums per bidder
+   (:func:`counterbid.estimators.bidder_totals`, in units of ``2**e`` with ``e`` the shard's
+   largest bid exponent) and returns them as rows (:func:`bidder_rows`: id text, unit, sums)
+   beside its pieces, which travel without their bidder sums;
+2. Spark repartitions those rows by bidder id, so every bidder's rows meet in one partition;
+   each partition's worker adds them per bidder and returns one row: its bidders' count and
+   ``sum_b U_b U_b'`` in units of ``2**(2 e_p)`` (:func:`partition_gram`);
+3. the driver adds the partitions' forms, each rescaled by a power of two
+   (:func:`combined_gram`; exact unless it under- or overflows).
+
+Driver memory: the pieces without bidder sums, plus one ``(K + 1) x (K + 1)`` matrix per
+partition -- independent of the number of bidders. Step 2's workers hold one partition's rows.
+
+References
+----------
+.. [1] Cameron, A. C. & Miller, D. L. (2015). A practitioner's guide to cluster-robust inference.
+   J. Human Resources 50(2), 317-372 (the cluster-robust sandwich as a sum of outer products).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Iterator, Sequence
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from counterbid.estimators import BidderGram, StratumPiece, bidder_totals
+
+__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_rows", "bidder_table", "combined_gram", "ids_text", "partition_gram"]
+
+#: Columns of a shard's per-bidder rows (null on its answer row).
+BIDDER_COLUMNS = "bidder_id string, bidder_unit int, bidder_sums array<double>"
+#: Columns of a partition's Gram row (null on the answer rows passed through).
+GRAM_COLUMNS = "part_bidders long, part_unit int, part_gram array<double>"
+
+
+def ids_text(ids: np.ndarray) -> pa.Array:
+    """Bidder ids as Arrow text, integers by their decimal text (as ``ids_as_text``, vectorised)."""
+    ids = np.asarray(ids)
+    if ids.dtype.kind in "iu":
+        return pa.array(ids.astype(np.int64)).cast(pa.string())
+    return pa.array([str(int(v)) if isinstance(v, (int, np.integer)) else str(v) for v in ids.tolist()], pa.string())
+
+
+def bidder_rows(pieces: Sequence[StratumPiece]) -> tuple[pa.Array, int, np.ndarray]:
+    """One shard's per-bidder totals: ids as text, their unit exponent and the ``(B, K + 1)`` sums.
+
+    Parameters
+    ----------
+    pieces : sequence of StratumPiece
+        A shard's pieces, every one with bidder sums.
+
+    Returns
+    -------
+    (pyarrow.Array, int, numpy.ndarray)
+        ``U_b`` of the shard's bidders in units of ``2**unit`` bids, ``unit`` the shard's largest
+        bid exponent.
+    """
+    totals = bidder_totals(pieces)
+    return ids_text(totals.bidder_ids), int(totals.bid_exponent), totals.sums
+
+
+def _list_column(matrix: np.ndarray) -> pa.Array:
+    """Rows of a 2-D array as an Arrow list column."""
+    rows, width = matrix.shape
+    offsets = pa.array(np.arange(rows + 1, dtype=np.int32) * width, pa.int32())
+    return pa.ListArray.from_arrays(offsets, pa.array(np.ascontiguousarray(matrix, dtype=float).ravel(), pa.float64()))
+
+
+def bidder_table(ids: pa.Array, unit: int, sums: np.ndarray, shard: int, answer_schema: pa.Schema) -> pa.Table:
+    """The per-bidder rows of one shard, in the answer's schema (answer columns null but ``shard``)."""
+    n = len(ids)
+    columns = {}
+    for field in answer_schema:
+        if field.name == "shard":
+            columns["shard"] = pa.array(np.full(n, shard, dtype=np.int64))
+        elif field.name == "bidder_id":
+            columns["bidder_id"] = ids
+        elif field.name == "bidder_unit":
+            columns["bidder_unit"] = pa.array(np.full(n, unit, dtype=np.int32))
+        elif field.name == "bidder_sums":
+            columns["bidder_sums"] = _list_column(sums)
+        else:
+            columns[field.name] = pa.nulls(n, field.type)
+    return pa.table(columns, schema=answer_schema)
+
+
+def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> Iterator[pa.RecordBatch]:
+    """One partition of the shards' rows, by bidder: answer rows passed through, bidder rows into one Gram row.
+
+    Every bidder's rows are in this partition (Spark partitioned them by ``bidder_id``); they are
+    added per bidder in the partition's largest unit ``2**e_p`` and squared:
+    ``part_gram = sum_b U_b U_b'`` (row-major), ``part_bidders = B_p``, ``part_unit = e_p``.
+    """
+    ids, units, sums = [], [], []
+    for batch in batches:
+        table = pa.Table.from_batches([batch])
+        answer = table.column("bidder_id").is_null()
+        if pc.any(answer).as_py():
+            rows = table.filter(answer)
+            yield from _in_schema(rows, out_schema).to_batches()
+            table = table.filter(pc.invert(answer))
+        if table.num_rows:
+            ids.append(table.column("bidder_id"))
+            units.append(table.column("bidder_unit").to_numpy())
+            flat = table.column("bidder_sums").combine_chunks()
+            sums.append(flat.flatten().to_numpy(zero_copy_only=False).reshape(table.num_rows, -1))
+    if not ids:
+        return
+    unit_of_row = np.concatenate(units)
+    top = int(unit_of_row.max())
+    scaled = np.concatenate(sums) * np.ldexp(1.0, unit_of_row - top)[:, None]
+    codes, uniques = pd.factorize(pa.chunked_array([c for i in ids for c in i.chunks]).to_numpy(zero_copy_only=False))
+    totals = np.zeros((len(uniques), scaled.shape[1]))
+    for j in range(scaled.shape[1]):
+        totals[:, j] = np.bincount(codes, weights=scaled[:, j], minlength=len(uniques))
+    gram = totals.T @ totals
+    row = {field.name: pa.nulls(1, field.type) for field in out_schema}
+    row["part_bidders"] = pa.array([len(uniques)], pa.int64())
+    row["part_unit"] = pa.array([top], pa.int32())
+    row["part_gram"] = _list_column(gram.reshape(1, -1))
+    yield from pa.table(row, schema=out_schema).to_batches()
+
+
+def _in_schema(rows: pa.Table, schema: pa.Schema) -> pa.Table:
+    """``rows`` with ``schema``'s columns: its own where it has them, nulls for the others."""
+    return pa.table({f.name: rows.column(f.name) if f.name in rows.column_names else pa.nulls(rows.num_rows, f.type)
+                     for f in schema}, schema=schema)
+
+
+def combined_gram(parts: Iterable[tuple[int, int, Sequence[float]]], size: int, unit: int) -> BidderGram:
+    """The partitions' ``(bidders, unit, gram)`` added in units of ``2**unit`` bids.
+
+    Parameters
+    ----------
+    parts : iterable of (int, int, sequence of float)
+        Each partition's distinct bidders, unit exponent and row-major ``(size, size)`` form.
+    size : int
+        Revenue labels ``K + 1``.
+    unit : int
+        Unit exponent of the result (at least every partition's).
+
+    Returns
+    -------
+    BidderGram
+
+    References
+    ----------
+    .. [1] Cameron, A. C. & Miller, D. L. (2015). J. Human Resources 50(2), 317-372.
+    """
+    gram = np.zeros((size, size))
+    n_bidders = 0
+    for bidders, part_unit, values in parts:
+        gram += math.ldexp(1.0, 2 * (int(part_unit) - unit)) * np.asarray(values, dtype=float).reshape(size, size)
+        n_bidders += int(bidders)
+    return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=int(unit))

@@ -1,0 +1,179 @@
+"""Bidder clustering on Spark without the bidders on the driver (`readers/spark_bidder_gram.py`), and its failures.
+
+The Spark engine adds each bidder's sums across shards on the executors and sends the driver one
+``(K + 1) x (K + 1)`` Gram form per partition. The steps are checked here without Spark against
+the plain formula (``gram_of(bidder_totals(pieces))``, Cameron & Miller 2015, the cluster-robust
+sandwich as a sum of outer products), then on Spark with about two million distinct bidder ids
+under Spark's default driver settings (1 GiB of driver heap; the per-bidder sums of that many
+bidders used to end in ``java.lang.OutOfMemoryError`` while the driver served them to Python),
+and two real failures of a small session must each end in one line naming the cause.
+
+Tolerances: the Gram route adds the same numbers as the per-bidder route in another order, so
+the two agree to rounding: 1e-12 relative without Spark (a few hundred additions of doubles,
+each off by at most 2**-53), 1e-9 relative across engines, as in `test_spark_shards.py`.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import zlib
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pytest
+import scipy.stats as st
+import yaml
+
+from counterbid.estimators import bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment
+from counterbid.readers.engines import LocalEngine, estimate_bid_log
+from counterbid.readers.spark_bidder_gram import bidder_rows, bidder_table, combined_gram, partition_gram
+from counterbid.readers.spark_shards import _answer_schema
+
+SPEC = """experiments:
+  - id: ledges
+    control_arm: flat
+    arms:
+      - {name: flat, share: 0.55, position_weights: [0.33, 0.16, 0.06]}
+      - {name: tiered, share: 0.45, position_weights: [0.36, 0.12, 0.04]}
+    what_if:
+      - {name: shallow, position_weights: [0.34, 0.14, 0.05]}
+"""
+EXPERIMENT = parse_experiments(yaml.safe_load(SPEC))["ledges"]
+NUMBERS = ["estimate", "std_error", "ci_low", "ci_high"]
+
+
+def _log(n_auctions: int, bidder_pool: int, rng: int = 5) -> pd.DataFrame:
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), EXPERIMENT, n_bidders={3: 0.5, 5: 0.5},
+                               n_auctions=n_auctions, rng=rng, bidder_pool=bidder_pool)
+    bids["bidder_id"] = "seat-" + bids["bidder_id"].astype(str)  # text ids, as when ids are seats
+    return bids
+
+
+def _close(a: pd.DataFrame, b: pd.DataFrame, rtol: float) -> None:
+    assert list(a["arm"]) == list(b["arm"]) and list(a["metric"]) == list(b["metric"])
+    for column in NUMBERS:
+        x, y = a[column].to_numpy(float), b[column].to_numpy(float)
+        assert np.array_equal(np.isnan(x), np.isnan(y)), column
+        ok = ~np.isnan(x)
+        np.testing.assert_allclose(x[ok], y[ok], rtol=rtol, atol=0, err_msg=column)
+
+
+def test_partition_grams_add_up_to_the_plain_form(tmp_path):
+    """Shards' bidder rows, partitioned by bidder and squared per partition, give ``sum_b U_b U_b'``."""
+    path = tmp_path / "bids.parquet"
+    _log(6000, bidder_pool=4000).to_parquet(path, index=False)
+    found = LocalEngine().log_pieces(str(path), EXPERIMENT, max_bids_per_shard=5000, cluster="bidder")
+    assert found.shards == 5
+    schema = _answer_schema()
+    rows = []
+    for shard in sorted({p.key.shard for p in found.pieces}):
+        ids, unit, sums = bidder_rows([p for p in found.pieces if p.key.shard == shard])
+        rows.append(bidder_table(ids, unit, sums, shard, schema))
+    rows = pa.concat_tables(rows)
+    # the same bidder in several shards: what the partition step has to add before squaring
+    assert pd.Series(rows.column("bidder_id").to_pylist()).duplicated().sum() > 1000
+    partition = np.array([zlib.crc32(s.encode()) % 3 for s in rows.column("bidder_id").to_pylist()])
+    out = _answer_schema(with_gram=True)
+    parts = []
+    for k in range(3):
+        batches = rows.filter(pa.array(partition == k)).to_batches(max_chunksize=700)  # a bidder split over batches
+        for batch in partition_gram(iter(batches), out):
+            assert batch.schema == out
+            parts += [(r["part_bidders"], r["part_unit"], r["part_gram"]) for r in batch.to_pylist()]
+    size = len(found.pieces[0].sum_labels)
+    gram = combined_gram(parts, size, max(p.bid_exponent for p in found.pieces))
+    plain = gram_of(bidder_totals(found.pieces))
+    assert gram.n_bidders == plain.n_bidders == len(set(rows.column("bidder_id").to_pylist()))
+    np.testing.assert_allclose(gram.gram, plain.gram, rtol=1e-12, atol=0)
+    by_gram = combine_pieces([p.without_bidder_sums() for p in found.pieces], EXPERIMENT, cluster="auto",
+                             bidder_gram=gram)
+    by_sums = combine_pieces(found.pieces, EXPERIMENT, cluster="auto")
+    assert by_gram.cluster == by_sums.cluster == "bidder"
+    _close(by_gram.table, by_sums.table, 1e-12)
+
+
+def test_a_partition_without_bidder_rows_sends_only_the_answers():
+    schema = _answer_schema(with_gram=True)
+    answer = pa.table({f.name: pa.nulls(1, f.type) for f in _answer_schema()}, schema=_answer_schema())
+    answer = answer.set_column(1, "n_bids", pa.array([7], pa.int64()))
+    out = pa.Table.from_batches(list(partition_gram(iter(answer.to_batches()), schema)), schema=schema)
+    assert out.num_rows == 1 and out.column("n_bids").to_pylist() == [7]
+    assert out.column("part_bidders").to_pylist() == [None]
+
+
+# --- on Spark ----------------------------------------------------------------------------------
+
+#: Runs in a child process: a new local[2] session with Spark's default driver settings (1 GiB heap,
+#: no spark.driver.memory), the log estimated on Spark, the rows written as Parquet.
+_SPARK_CHILD = """
+import sys
+import yaml
+from counterbid.estimators import parse_experiments
+from counterbid.readers.engines import SparkEngine, estimate_bid_log
+from counterbid.readers.spark_shards import spark_session
+spark = spark_session("local[2]")
+assert spark.sparkContext.getConf().get("spark.driver.memory") is None
+exp = parse_experiments(yaml.safe_load(open(sys.argv[1]).read()))["ledges"]
+result = estimate_bid_log(sys.argv[2], exp, engine=SparkEngine(spark), max_bids_per_shard=int(sys.argv[3]))
+result.table.assign(cluster=result.cluster, shards=result.shards).to_parquet(sys.argv[4], index=False)
+"""
+
+
+def _child_env(java_home: str) -> dict:
+    return {**os.environ, "JAVA_HOME": java_home}
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_two_million_distinct_bidders_under_default_driver_settings(tmp_path, java_home):
+    """2M bids, ~1.96M distinct text bidder ids (a few repeat: `auto` clusters by bidder), 3 shards."""
+    bids = _log(500_000, bidder_pool=50_000_000)
+    distinct = bids["bidder_id"].nunique()
+    assert 1_900_000 < distinct < len(bids)
+    log, spec, out = tmp_path / "bids.parquet", tmp_path / "spec.yaml", tmp_path / "spark.parquet"
+    bids.to_parquet(log, index=False)
+    spec.write_text(SPEC)
+    del bids
+    done = subprocess.run([sys.executable, "-c", _SPARK_CHILD, str(spec), str(log), "700000", str(out)],
+                          capture_output=True, text=True, env=_child_env(java_home), timeout=900)
+    assert done.returncode == 0, done.stderr[-3000:]
+    spark_rows = pd.read_parquet(out)
+    local = estimate_bid_log(log, EXPERIMENT, max_bids_per_shard=700_000)
+    assert local.shards == 3 and set(spark_rows["shards"]) == {3}
+    assert local.cluster == "bidder" and set(spark_rows["cluster"]) == {"bidder"}
+    _close(spark_rows, local.table, 1e-9)
+
+
+_FAILURE_CHILD = """
+import sys
+from counterbid.cli import main
+from counterbid.readers.spark_shards import spark_session
+spark_session("local[1]", dict([sys.argv[1].split("=", 1)]))
+sys.exit(main(sys.argv[2:]))
+"""
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+@pytest.mark.parametrize("setting, cause", [
+    # the Python workers' address space capped (RLIMIT_AS): they run out of memory loading numpy/scipy
+    ("spark.executor.pyspark.memory=200m", "out of memory in a Python worker"),
+    # the driver refuses results above 1 KiB (the first job's already)
+    ("spark.driver.maxResultSize=1k", "the results exceed spark.driver.maxResultSize"),
+])
+def test_a_failed_spark_job_reports_its_cause_in_one_line(tmp_path, java_home, setting, cause):
+    log, spec = tmp_path / "bids.parquet", tmp_path / "spec.yaml"
+    _log(20_000, bidder_pool=50_000).to_parquet(log, index=False)
+    spec.write_text(SPEC)
+    done = subprocess.run([sys.executable, "-c", _FAILURE_CHILD, setting, "estimate", "--bids", str(log),
+                           "--experiment", str(spec), "--engine", "spark"],
+                          capture_output=True, text=True, env=_child_env(java_home), timeout=600)
+    assert done.returncode == 2, done.stderr[-3000:]
+    ours = [line for line in done.stderr.splitlines() if line.startswith("counterbid: ")]
+    assert len(ours) == 1, done.stderr[-3000:]
+    assert ours[0].startswith(f"counterbid: error: {log}: the Spark engine failed: {cause}"), ours[0]
+    assert "no shard holds bids" not in done.stderr
+    assert "Traceback" not in done.stderr and "\tat " not in done.stderr  # no Python or Java stack
