@@ -104,6 +104,7 @@ def run(args: argparse.Namespace) -> int:
             "payment_rule": result.payment_rule,
             "floor": result.floor,
             "quality": result.quality,
+            "segments": dict(result.segments),  # auctions per segment; rows with a null segment are pooled
             "rows": json.loads(result.table.to_json(orient="records")),
         }
         print(json.dumps(payload, indent=2))
@@ -122,6 +123,10 @@ def run(args: argparse.Namespace) -> int:
               f"{format_level(result.confidence_level)} intervals clustered by {cluster} "
               f"(they speak for {POPULATION[cluster]})")
         shown = result.to_frame()
+        if result.segments:  # pooled rows (every segment together) first, then each segment's
+            shown["segment"] = shown["segment"].where(shown["segment"].notna(), "(pooled)")
+        else:
+            shown = shown.drop(columns="segment")
         shown.insert(shown.columns.get_loc("ci_high") + 1, "cluster", row_clusters(shown["metric"], cluster))
         print(shown.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
         print("Assumes symmetric bidders in equilibrium against the designed shares, known position weights and the"

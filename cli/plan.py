@@ -48,7 +48,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from counterbid.cli.estimate import _choose_experiment
     from counterbid.readers.bid_log import read_bids
-    from counterbid.estimators import BID_COLUMNS
+    from counterbid.estimators import BID_COLUMNS, load_experiments
     from counterbid.estimators.errors import InputError
     from counterbid.estimators.planner import DEFAULT_SHARES, plan_shares
     from counterbid.estimators.study import VALUE_DISTRIBUTIONS
@@ -59,7 +59,9 @@ def run(args: argparse.Namespace) -> int:
         from counterbid.cli.plan_layouts import run_ranking
 
         return run_ranking(args)
-    bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS]) if args.bids else None
+    # every experiment's segment columns too: a segmented pilot is estimated per segment (its pooled rows plan)
+    segment_columns = sorted({c for e in load_experiments(args.experiment).values() for c in e.segments})
+    bids = read_bids(args.bids, columns=["experiment_id", *BID_COLUMNS, *segment_columns]) if args.bids else None
     import pandas as pd
 
     experiment = _choose_experiment(args.experiment, args.experiment_id, bids if bids is not None else pd.DataFrame())

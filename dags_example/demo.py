@@ -21,6 +21,20 @@ HERE = Path(__file__).resolve().parent
 START = dt.date(2026, 3, 2)
 
 
+def shop_kinds(bidders: int) -> dict:
+    """The two kinds of shop of the maker spotlight (``segments: [shop_kind]``): their own values and bidders.
+
+    Potters bid for fewer, dearer clicks than weavers; estimated pooled, the spread between the
+    kinds would read as competition within an auction (docs/method.md, "Segments").
+    """
+    import scipy.stats as st
+
+    from counterbid.estimators import SimulatedSegment
+
+    return {"weavers": SimulatedSegment(st.lognorm(0.5, scale=0.8), bidders, 0.6),
+            "potters": SimulatedSegment(st.lognorm(0.35, scale=1.4), max(2, bidders - 2), 0.4)}
+
+
 def make_lake(out: Path, *, days: int, auctions_per_day: int, bidders: int, seed: int, warmup_days: int) -> None:
     from counterbid.dags_example.lake import write_bid_lake
     from counterbid.estimators import load_experiments
@@ -30,7 +44,7 @@ def make_lake(out: Path, *, days: int, auctions_per_day: int, bidders: int, seed
     print(f"simulating {days} days of Quillfen bids ({len(experiments)} experiments, {auctions_per_day} auctions "
           f"per experiment per day, {bidders} bidders; first {warmup_days} days not yet adapted)", file=sys.stderr, flush=True)
     write_bid_lake(out / "lake", experiments.values(), start=START, days=days, auctions_per_day=auctions_per_day,
-                   n_bidders=bidders, seed=seed, warmup_days=warmup_days,
+                   n_bidders=bidders, seed=seed, warmup_days=warmup_days, segments=shop_kinds(bidders),
                    progress=lambda line: print("  " + line, file=sys.stderr, flush=True))
     print(f"bid lake written to {out / 'lake'} in {time.perf_counter() - started:.1f}s", file=sys.stderr, flush=True)
 

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from counterbid.estimators import Experiment, simulate_experiment
+from counterbid.estimators import Experiment, simulate_experiment, simulate_segmented_experiment
 
 __all__ = ["click_log", "write_bid_lake"]
 
@@ -52,6 +52,7 @@ def write_bid_lake(
     warmup_days: int = 0,
     clicks_root: str | Path | None = None,
     progress=None,
+    segments=None,
 ) -> list[Path]:
     """Simulate ``days`` days of bids and write ``root/ds=YYYY-MM-DD/<experiment>.parquet``.
 
@@ -76,6 +77,11 @@ def write_bid_lake(
         ``experiment_id, arm, position, impressions, clicks``.
     progress : callable, optional
         Called with one line of text per written file.
+    segments : mapping of str to SimulatedSegment, optional
+        For experiments that declare ``segments``: each segment's values, bidder counts and share
+        of auctions, written to the experiment's first segment column
+        (:func:`~counterbid.estimators.simulate_segmented_experiment`; ``values`` and
+        ``n_bidders`` are then not used for them).
 
     Returns
     -------
@@ -98,8 +104,13 @@ def write_bid_lake(
             beliefs = None
             if d < warmup_days:
                 beliefs = [1.0 if a.name == exp.control_arm else 0.0 for a in exp.arms]
-            frame = simulate_experiment(values, exp, n_bidders=n_bidders, n_auctions=auctions_per_day, rng=rng,
-                                        belief_shares=beliefs, ds=day, first_auction_id=next_id)
+            if segments and exp.segments:
+                frame = simulate_segmented_experiment(segments, exp, n_auctions=auctions_per_day, rng=rng,
+                                                      column=exp.segments[0], belief_shares=beliefs, ds=day,
+                                                      first_auction_id=next_id)
+            else:
+                frame = simulate_experiment(values, exp, n_bidders=n_bidders, n_auctions=auctions_per_day, rng=rng,
+                                            belief_shares=beliefs, ds=day, first_auction_id=next_id)
             next_id += int(auctions_per_day)
             target = root / f"ds={day.isoformat()}" / f"{exp.id}.parquet"
             _write_atomic(frame.drop(columns=["ds"]), target)

@@ -45,10 +45,12 @@ from .sharding import MAX_BIDS_PER_SHARD, n_shards, shard_of
 from .position_weights import measured_position_weights
 from .simulate import (
     BidFunction,
+    SimulatedSegment,
     equilibrium_bid_function,
     expected_revenue_per_auction,
     expected_welfare_per_auction,
     simulate_experiment,
+    simulate_segmented_experiment,
 )
 from .spec import Arm, Experiment, WhatIf, load_experiment, load_experiments, parse_day, parse_experiments
 
@@ -100,7 +102,9 @@ __all__ = [
     "prepare_bids",
     "revenue_weights",
     "shard_of",
+    "SimulatedSegment",
     "simulate_experiment",
+    "simulate_segmented_experiment",
     "stratum_pieces",
     "welfare_weights",
     "worst_failure",

@@ -61,8 +61,10 @@ def estimate_arms(
     Returns
     -------
     ArmEstimates
-        ``table``: one row per arm and metric with columns ``arm, metric, estimate, std_error,
-        ci_low, ci_high, n_auctions, n_bids, status`` (:data:`RESULT_COLUMNS`). Metrics:
+        ``table``: one row per arm and metric with columns ``arm, segment, metric, estimate,
+        std_error, ci_low, ci_high, n_auctions, n_bids, status`` (:data:`RESULT_COLUMNS`;
+        ``segment`` null on the pooled rows; when the experiment declares ``segments`` the same
+        rows follow for each segment, estimated from its own strata). Metrics:
         ``revenue_per_auction`` and ``welfare_per_auction`` (counterfactual: the arm run in
         every auction, bidders adapted to it), ``realized_revenue_per_auction`` (the realized
         per-arm average of realized revenue over the arm's own auctions, for comparison) and
@@ -73,7 +75,8 @@ def estimate_arms(
         ``not_identified``, ``no_interval``, ``no_auctions``. Beside the table the result holds
         ``experiment_id``, ``confidence_level``, ``cluster`` (the unit used), ``n_auctions``,
         ``n_bids``, ``n_excluded_auctions``, ``strata`` (auctions per number of bidders),
-        ``method_version``, ``welfare_identified``, ``payment_rule``, ``floor`` and ``quality``.
+        ``method_version``, ``welfare_identified``, ``payment_rule``, ``floor``, ``quality`` and
+        ``segments`` (auctions per segment).
 
     Raises
     ------

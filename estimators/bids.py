@@ -7,6 +7,7 @@ is the one sort of a stratum's bids (the stable order, without an ``argsort`` of
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -20,9 +21,11 @@ from .spec import Experiment
 
 __all__ = [
     "BID_COLUMNS",
+    "NULL_SEGMENT",
     "PreparedBids",
     "REQUIRED_BID_COLUMNS",
     "prepare_bids",
+    "segment_label",
     "sort_order",
     "sorted_with_order",
 ]
@@ -59,6 +62,11 @@ class PreparedBids:
     n_excluded_bids : int
     has_quality : bool
         Whether the log had a ``quality`` column (``bid`` is then the effective bid).
+    segment : ndarray of int32 or None
+        Per bid, the index into ``segment_names`` of its auction's segment (``None``: the
+        experiment declares no segments).
+    segment_names : tuple of str
+        Label of each segment code (:func:`segment_label`), sorted.
     bidder_ids : ndarray or None
         The log's bidder id of each label (``bidder_ids[bidder[i]]`` is bid ``i``'s bidder id:
         int64 for integer ids, str objects for text), or ``None`` when the labels are the ids
@@ -79,6 +87,8 @@ class PreparedBids:
     n_excluded_bids: int
     has_quality: bool = False
     bidder_ids: np.ndarray | None = None
+    segment: np.ndarray | None = None
+    segment_names: tuple[str, ...] = ()
     covariates: np.ndarray | None = None
 
 
@@ -366,6 +376,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
     del narrow
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
+    segment, segment_names = _segments(bids, experiment, auction, contiguous, rows, source)
     bidder, n_bidder_labels, bidder_ids = _bidder_labels(bids["bidder_id"])
     _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous)
     covariates = auction_covariates(bids, experiment.scale_covariates, auction, experiment_id=experiment.id,
@@ -379,6 +390,7 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         keep = n_bidders >= 2
         auction = pd.factorize(auction[keep], sort=False)[0]
         bid, bidder, arm, position, n_bidders = bid[keep], bidder[keep], arm[keep], position[keep], n_bidders[keep]
+        segment = None if segment is None else segment[keep]
         covariates = None if covariates is None else covariates[keep]
     if bid.size == 0:
         raise no_pieces_error(source, experiment.id, single_bidders=True, n_excluded_auctions=n_excluded)
@@ -394,8 +406,87 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
         n_excluded_bids=n_excluded_bids,
         has_quality=has_quality,
         bidder_ids=bidder_ids,
+        segment=segment,
+        segment_names=segment_names,
         covariates=covariates,
     )
+
+
+#: Label of a null segment value: a segment of its own.
+NULL_SEGMENT = "(null)"
+#: Between the values of several segment columns in a segment's label.
+SEGMENT_SEPARATOR = "|"
+
+
+def segment_label(values) -> str:
+    """The label of one segment: its columns' values as text (``true``/``false`` for booleans, :data:`NULL_SEGMENT`
+    for a null), joined by :data:`SEGMENT_SEPARATOR`."""
+    return SEGMENT_SEPARATOR.join(_segment_text(v) for v in values)
+
+
+def _segment_text(v) -> str:
+    if v is None or v is pd.NA or (isinstance(v, float) and math.isnan(v)):
+        return NULL_SEGMENT
+    if isinstance(v, (bool, np.bool_)):
+        return "true" if v else "false"
+    if isinstance(v, (float, np.floating)):
+        return str(int(v))
+    return str(v.item() if isinstance(v, np.generic) else v)
+
+
+def _segment_column(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> tuple[np.ndarray, list[str]]:
+    """Codes (null: a code of its own) and labels of one segment column; string, integer or boolean only."""
+    kind = pd.api.types.infer_dtype(col, skipna=True)
+    if isinstance(col.dtype, pd.CategoricalDtype):
+        kind = pd.api.types.infer_dtype(col.cat.categories, skipna=True)
+    if pd.api.types.is_float_dtype(col):  # pandas holds integers with nulls as floats
+        values = col.to_numpy(dtype=float, na_value=np.nan)
+        bad = np.flatnonzero(np.isfinite(values) & (values != np.round(values)) | np.isinf(values))
+        if bad.size:
+            raise InputError(f"{source}: segment column {name!r} row {_row(rows, int(bad[0]))} is "
+                             f"{float(values[bad[0]])!r}; segment columns hold strings, integers or booleans")
+        kind = "integer"
+    if kind not in ("string", "integer", "boolean", "empty", "categorical"):
+        raise InputError(f"{source}: segment column {name!r} must hold strings, integers or booleans "
+                         f"(dtype {col.dtype}, values of kind {kind!r})")
+    codes, uniques = pd.factorize(col, sort=False, use_na_sentinel=True)
+    labels = [_segment_text(v) for v in uniques]
+    if (codes < 0).any():
+        codes = np.where(codes < 0, len(labels), codes)
+        labels.append(NULL_SEGMENT)
+    return codes, labels
+
+
+def _segments(bids: pd.DataFrame, experiment: Experiment, auction: np.ndarray, contiguous: bool,
+              rows: np.ndarray | None, source: str) -> tuple[np.ndarray | None, tuple[str, ...]]:
+    """Per bid, the code of its segment (labels sorted); one error naming an auction whose bids disagree."""
+    if not experiment.segments:
+        return None, ()
+    combined, labels = None, None
+    for name in experiment.segments:
+        if name not in bids.columns:
+            raise InputError(f"{source}: segment column {name!r} of experiment {experiment.id!r} is missing")
+        codes, names = _segment_column(bids[name], name, rows, source)
+        first = np.empty(int(auction.max()) + 1, dtype=codes.dtype)
+        first[auction[::-1]] = codes[::-1]  # the first bid of each auction
+        split = np.flatnonzero(first[auction] != codes)
+        if split.size:
+            i = int(split[0])
+            j = int(np.flatnonzero(auction == auction[i])[0])
+            raise InputError(
+                f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of segment column {name!r} "
+                f"({names[codes[j]]!r} at row {_row(rows, j)}, {names[codes[i]]!r} at row {_row(rows, i)}); "
+                "a segment must be constant within an auction")
+        if combined is None:
+            combined, labels = codes.astype(np.int64), names
+        else:
+            pair, uniques = pd.factorize(combined * len(names) + codes, sort=False)
+            labels = [labels[int(u) // len(names)] + SEGMENT_SEPARATOR + names[int(u) % len(names)] for u in uniques]
+            combined = pair.astype(np.int64)
+    order = sorted(range(len(labels)), key=lambda k: labels[k])
+    rank = np.empty(len(labels), dtype=np.int32)
+    rank[order] = np.arange(len(labels), dtype=np.int32)
+    return rank[combined], tuple(labels[k] for k in order)
 
 
 #: The contract's rule for ``quality`` (kind ``numeric``, optional; where present every row > 0).

@@ -873,13 +873,15 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     -------
     CheckResult
         ``observed`` is the pooled correlation ``r`` (:func:`~counterbid.estimators.dependence.
-        auction_dependence`, strata by number of bidders; on homogenised bids,
+        auction_dependence`, strata by number of bidders and, when the experiment declares
+        segments, by segment; on homogenised bids,
         :func:`~counterbid.estimators.scale_covariates.homogenized_bids`, when the spec declares
         ``scale_covariates``), ``threshold`` is ``min_correlation``.
         Fails when ``r`` minus its null mean exceeds ``min_correlation`` and its one-sided p-value
         is below ``alpha``; the severity is ``error`` when it also exceeds ``error_correlation``.
-        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r`` and, on
-        failure, the remedy (:data:`DEPENDENCE_REMEDY`).
+        ``details`` hold ``z``, the p-value, the standard error, each stratum's ``r``
+        (``by_bidders``; ``by_bidders_and_segment`` keyed ``'4 bidders in bulk'`` when segmented)
+        and, on failure, the remedy (:data:`DEPENDENCE_REMEDY`).
 
     Notes
     -----
@@ -892,12 +894,13 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     """
     cfg = _config(config, experiment)["auction_dependence"]
     data = _prepared(bids, experiment, source)
+    stratum, name_of = _dependence_strata(data)
     bid = data.bid
     if data.covariates is not None:  # what the spec models is taken out first: per-stratum homogenised bids
-        bid = homogenized_bids(data.bid, data.covariates, data.n_bidders, source=source)
-    dep = auction_dependence(bid, data.auction, data.n_bidders)
-    per = {s.key: {"correlation": s.correlation, "standard_error": s.standard_error, "auctions": s.n_auctions}
-           for s in dep.strata}
+        bid = homogenized_bids(data.bid, data.covariates, stratum, source=source)
+    dep = auction_dependence(bid, data.auction, stratum)
+    per = {name_of(s.key): {"correlation": s.correlation, "standard_error": s.standard_error,
+                            "auctions": s.n_auctions} for s in dep.strata}
     excess = dep.excess
     passed = not (dep.p_value < cfg["alpha"] and excess > cfg["min_correlation"])
     if not passed and excess > cfg["error_correlation"]:
@@ -905,7 +908,18 @@ def auction_dependence_check(bids, experiment: Experiment, *, config: Mapping[st
     extra = {} if passed else {"remedy": DEPENDENCE_REMEDY}
     return _result("auction_dependence", cfg, passed, dep.correlation, cfg["min_correlation"], z=dep.z,
                    p_value=dep.p_value, standard_error=dep.standard_error, null_mean=dep.null_mean,
-                   error_correlation=cfg["error_correlation"], by_bidders=per, **extra)
+                   error_correlation=cfg["error_correlation"],
+                   **{"by_bidders" if data.segment is None else "by_bidders_and_segment": per}, **extra)
+
+
+def _dependence_strata(data) -> tuple[np.ndarray, Any]:
+    """The dependence check's stratum of every bid -- its number of bidders, and its segment when the
+    experiment declares segments -- and how a stratum key reads in the details."""
+    if data.segment is None:
+        return data.n_bidders, int
+    m = max(len(data.segment_names), 1)
+    stratum = data.n_bidders.astype(np.int64) * m + data.segment
+    return stratum, lambda k: f"{int(k) // m} bidders in {data.segment_names[int(k) % m]}"
 
 
 def equilibrium_checks(bids, experiment: Experiment, *, ds=None, history=None,

@@ -84,6 +84,9 @@ class ArmEstimates:
         Shards the input was estimated in (1 unless an engine split it).
     engine : str
         ``'local'`` or ``'spark'``.
+    segments : mapping of str to int
+        Auctions per segment label, when the strata are segmented (empty otherwise). The table
+        then holds, after the pooled rows (``segment`` null), the same rows for each segment.
     """
 
     table: pd.DataFrame
@@ -101,14 +104,20 @@ class ArmEstimates:
     quality: bool
     shards: int = 1
     engine: str = "local"
+    segments: Mapping[str, int] = dataclasses.field(default_factory=dict)
 
     def to_frame(self) -> pd.DataFrame:
         """A copy of :attr:`table` (the caller may add columns)."""
         return self.table.copy()
 
     def rows(self, metric: str) -> pd.DataFrame:
-        """The rows of one metric, indexed by arm."""
-        return self.table[self.table["metric"] == metric].set_index("arm")
+        """The pooled rows of one metric (every segment together), indexed by arm."""
+        return self.table[(self.table["metric"] == metric) & self.table["segment"].isna()].set_index("arm")
+
+    def segment_rows(self, metric: str) -> pd.DataFrame:
+        """The per-segment rows of one metric, indexed by (segment, arm); empty when not segmented."""
+        t = self.table
+        return t[(t["metric"] == metric) & t["segment"].notna()].set_index(["segment", "arm"])
 
     def on(self, *, shards: int | None = None, engine: str | None = None) -> ArmEstimates:
         """The same estimates, recording the shards and engine that produced them."""
@@ -144,7 +153,8 @@ class BidderGram:
 
 def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, confidence_level: float = 0.95,
                    cluster: str = "auto", n_excluded_auctions: int = 0, source: str = "bids",
-                   bidder_gram: BidderGram | None = None) -> ArmEstimates:
+                   bidder_gram: BidderGram | None = None,
+                   segment_grams: Mapping[str, BidderGram] | None = None) -> ArmEstimates:
     """Combine stratum pieces by their auction counts into per-arm estimates.
 
     Parameters
@@ -170,6 +180,9 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
         The bidder sums of these pieces as running totals (``operators/window_state.py`` keeps
         them for the experiment to date): bidder clustering reads it instead of the pieces'
         bidder sums, which the pieces then need not carry. It must describe exactly these pieces.
+    segment_grams : mapping of str to BidderGram, optional
+        The same per segment label (segmented pieces only): each describes exactly that segment's
+        pieces. A segment without one is clustered from its pieces' bidder sums.
 
     Returns
     -------
@@ -206,16 +219,39 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     confidence_level = check_confidence_level(confidence_level)
     check_cluster(cluster)
     pieces = _checked_pieces(pieces, experiment, source)
+    cluster, _ = _cluster_unit(pieces, cluster, source, bidder_gram)
+    welfare_identified = _warn_about(pieces, source)
+    table = _table(pieces, experiment, cluster, confidence_level, welfare_identified, source, segment=None,
+                   gram=bidder_gram)
+    segments = _segments_of(pieces, source)
+    if segments:
+        grams = _segment_grams(segments, segment_grams, cluster, source)
+        parts = [table] + [
+            _table(group, experiment, cluster, confidence_level,
+                   not any("not_identified" in p.flags for p in group), source, segment=name, gram=grams.get(name))
+            for name, group in segments.items()]
+        table = pd.concat(parts, ignore_index=True)
+    return ArmEstimates(
+        table=table, experiment_id=experiment.id, confidence_level=confidence_level, cluster=cluster,
+        n_auctions=int(sum(p.n_auctions for p in pieces)), n_bids=int(sum(p.n_bids for p in pieces)),
+        n_excluded_auctions=int(n_excluded_auctions), strata=_strata_counts(pieces), method_version=METHOD_VERSION,
+        welfare_identified=welfare_identified, payment_rule=experiment.payment_rule,
+        floor=float(experiment.floor or 0.0), quality=any(p.has_quality for p in pieces),
+        segments={name: int(sum(p.n_auctions for p in group)) for name, group in segments.items()})
+
+
+def _table(pieces: Sequence[StratumPiece], experiment: Experiment, cluster: str, confidence_level: float,
+           welfare_identified: bool, source: str, *, segment: str | None, gram: BidderGram | None) -> pd.DataFrame:
+    """The rows of one combination of pieces (all of them: the pooled rows; one segment's: its rows)."""
     labels = piece_labels(experiment)
     k_arms, k_targets = len(experiment.arms), len(experiment.targets)
     revenue_cols = list(range(k_targets)) + [len(labels) - 1]
     w, exponent = _weights(pieces)
     estimate = _estimates(pieces, w)
-    cluster, n_distinct = _cluster_unit(pieces, cluster, source, bidder_gram)
     totals = scale = sums_gram = None
-    if cluster == "bidder" and bidder_gram is not None:
-        sums_gram = _scaled_gram(bidder_gram, pieces, exponent, len(revenue_cols), source)
-        block = _cr_factor(bidder_gram.n_bidders) * sums_gram if bidder_gram.n_bidders >= 2 else \
+    if cluster == "bidder" and gram is not None:
+        sums_gram = _scaled_gram(gram, pieces, exponent, len(revenue_cols), source)
+        block = _cr_factor(gram.n_bidders) * sums_gram if gram.n_bidders >= 2 else \
             np.full_like(sums_gram, np.nan)
     elif cluster == "bidder":
         block, totals, scale = _bidder_block(pieces, w, len(revenue_cols))
@@ -228,25 +264,47 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     support = _support(pieces, w, k_arms)
     for j in np.flatnonzero(support.thin):  # no number for a layout the bids say too little about
         estimate[[k_arms + j, k_targets + k_arms + j]] = np.nan
-    welfare_identified = _warn_about(pieces, source)
     unit = np.array([math.ldexp(1.0, p.bid_exponent - exponent) for p in pieces])
     realized = combine_realized([(p.realized_sum, p.realized_squares, p.arm_auctions, p.n_bidders) for p in pieces],
                                 unit)
     control = experiment.arm_names.index(experiment.control_arm)
     if sums_gram is not None:
-        lifts = {k: _gram_lift(estimate, sums_gram, bidder_gram.n_bidders, k, control, revenue_cols)
+        lifts = {k: _gram_lift(estimate, sums_gram, gram.n_bidders, k, control, revenue_cols)
                  for k in range(k_targets)}
     else:
         lifts = {k: _lift(estimate, variance, k, control, revenue_cols, totals, scale) for k in range(k_targets)}
     table = _rows(pieces, experiment, estimate, variance, lifts, realized, confidence_level, welfare_identified,
-                  support)
-    table = _in_bid_units(table, exponent, pieces, source)
-    return ArmEstimates(
-        table=table, experiment_id=experiment.id, confidence_level=confidence_level, cluster=cluster,
-        n_auctions=int(sum(p.n_auctions for p in pieces)), n_bids=int(sum(p.n_bids for p in pieces)),
-        n_excluded_auctions=int(n_excluded_auctions), strata=_strata_counts(pieces), method_version=METHOD_VERSION,
-        welfare_identified=welfare_identified, payment_rule=experiment.payment_rule,
-        floor=float(experiment.floor or 0.0), quality=any(p.has_quality for p in pieces))
+                  support, segment)
+    return _in_bid_units(table, exponent, pieces, source)
+
+
+def _segment_grams(segments: Mapping[str, Sequence[StratumPiece]], grams: Mapping[str, BidderGram] | None,
+                   cluster: str, source: str) -> Mapping[str, BidderGram]:
+    """The running bidder totals of each segment; under bidder clustering a segment without them needs bidder sums."""
+    grams = dict(grams or {})
+    unknown = sorted(set(grams) - set(segments))
+    if unknown:
+        raise InputError(f"{source}: bidder totals of segment {unknown[0]!r}, which has no pieces")
+    for name, group in segments.items():
+        if cluster == "bidder" and name not in grams and any(p.bidder_sums is None for p in group):
+            raise InputError(f"{source}: segment {name!r} has neither bidder totals nor bidder sums in every piece; "
+                             "bidder clustering needs one of them")
+    return grams
+
+
+def _segments_of(pieces: Sequence[StratumPiece], source: str) -> dict[str, list[StratumPiece]]:
+    """The pieces of each segment, by segment label ({} when no piece is segmented); mixing is refused."""
+    named = [p for p in pieces if p.key.segment is not None]
+    if not named:
+        return {}
+    if len(named) != len(pieces):
+        plain = next(p for p in pieces if p.key.segment is None)
+        raise InputError(f"{source}: the piece of {plain.key.describe()} has no segment while others have one; "
+                         "estimate every stratum with the same segments to combine them")
+    out: dict[str, list[StratumPiece]] = {}
+    for p in sorted(pieces, key=lambda p: p.key.segment):
+        out.setdefault(p.key.segment, []).append(p)
+    return out
 
 
 @dataclass(frozen=True)
@@ -407,7 +465,7 @@ def _warn_about(pieces: Sequence[StratumPiece], source: str) -> bool:
 
 def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.ndarray, variance: np.ndarray,
           lifts: Mapping[int, tuple[float, float]], realized: RealizedAverages, confidence_level: float,
-          welfare_identified: bool, support: _Support) -> pd.DataFrame:
+          welfare_identified: bool, support: _Support, segment: str | None) -> pd.DataFrame:
     """One row per arm and metric (what-if layouts after the arms, then the mixture's two), with status flags."""
     k_arms, k_targets = len(experiment.arms), len(experiment.targets)
     total_auctions = int(sum(p.n_auctions for p in pieces))
@@ -423,7 +481,7 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
         status = (list(stratum_flags) if counterfactual else []) + list(flags)
         if np.isfinite(est) and not np.isfinite(se):
             status.append("no_interval")
-        rows.append((arm, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok",
+        rows.append((arm, segment, metric, est, se, est - z * se, est + z * se, n_auc, n_b, ",".join(status) or "ok",
                      what_if, share))
 
     def se_of(i: int) -> float:
@@ -455,6 +513,7 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     out = pd.DataFrame(rows, columns=list(RESULT_COLUMNS))
     out["n_auctions"] = out["n_auctions"].astype("int64")
     out["n_bids"] = out["n_bids"].astype("int64")
+    out["segment"] = out["segment"].astype(object)
     out["what_if"] = out["what_if"].astype(bool)
     out["effective_share"] = out["effective_share"].astype(float)
     return out

@@ -55,7 +55,7 @@ STATUS_FLAGS = {
                     "it leans on fewer effective bids than MIN_STRATUM_BIDS (docs/method.md, 'Layouts that did "
                     "not run'): NaN",
 }
-RESULT_COLUMNS = ("arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status",
+RESULT_COLUMNS = ("arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status",
                   "what_if", "effective_share")
 #: Bids are estimated in their own unit when the largest lies in [2**-UNIT_EXPONENT, 2**UNIT_EXPONENT];
 #: otherwise in a power-of-two unit (exact), so no square or sum of bids overflows or underflows.

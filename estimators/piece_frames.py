@@ -27,7 +27,8 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     """Pieces as four plain frames (text, integer, float and bool columns) for a results table.
 
     Text columns have pandas' string dtype (``str``). Every frame starts with the key columns
-    ``day`` (ISO text, missing when the pieces have no day), ``n_bidders``, ``shard``.
+    ``day`` (ISO text, missing when the pieces have no day), ``n_bidders``, ``shard``, ``segment``
+    (the segment label, missing when the experiment declares no segments).
 
     * ``strata``: one row per piece: ``n_auctions, n_bids, max_bid, bid_exponent,
       floor_quantile, has_quality, flags`` (comma-joined, ``''`` for none) and
@@ -53,7 +54,7 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
     pieces = list(pieces)
     strata, arms, cov, sums = [], [], [], []
     for p in pieces:
-        key = {"day": p.day, "n_bidders": p.n_bidders, "shard": p.shard}  # the stored key (no segment yet)
+        key = {"day": p.day, "n_bidders": p.n_bidders, "shard": p.shard, "segment": p.key.segment}
         strata.append({**key, "n_auctions": p.n_auctions, "n_bids": p.n_bids, "max_bid": p.max_bid,
                        "bid_exponent": p.bid_exponent, "floor_quantile": p.floor_quantile,
                        "has_quality": p.has_quality, "flags": ",".join(p.flags),
@@ -90,11 +91,12 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
                 "day": pd.array([p.day], dtype="str").take(np.zeros(rows, dtype=np.intp)),
                 "n_bidders": np.full(rows, p.n_bidders, dtype=np.int64),
                 "shard": np.full(rows, p.shard, dtype=np.int64),
+                "segment": pd.array([p.key.segment], dtype="str").take(np.zeros(rows, dtype=np.intp)),
                 "bidder_id": pd.array(ids_as_text(p.bidder_ids), dtype="str").take(np.tile(np.arange(b), k_targets + 1)),
                 "arm": pd.array(names, dtype="str").take(np.repeat(np.arange(k_targets + 1), b)),
                 "value": p.bidder_sums.T.ravel(),
             }))
-    key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64}
+    key_types = {"day": "str", "n_bidders": np.int64, "shard": np.int64, "segment": "str"}
     columns = {
         "strata": {**key_types, "n_auctions": np.int64, "n_bids": np.int64, "max_bid": float, "bid_exponent": np.int64,
                    "floor_quantile": float, "has_quality": bool, "flags": "str", "n_distinct_bidders": np.int64},
@@ -116,8 +118,9 @@ def pieces_to_frames(pieces: Iterable[StratumPiece]) -> dict[str, pd.DataFrame]:
 def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
     """The pieces :func:`pieces_to_frames` wrote (or the same frames read back from a table).
 
-    Pieces are identified by ``(day, n_bidders, shard)``; bidder ids come back as text. Extra
-    columns (an experiment id, say) are ignored.
+    Pieces are identified by ``(day, n_bidders, shard, segment)``; bidder ids come back as text.
+    Extra columns (an experiment id, say) are ignored; frames without a ``segment`` column
+    (written before segments existed) read as unsegmented.
 
     Parameters
     ----------
@@ -133,12 +136,16 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
     if missing:
         raise InputError(f"piece frames: frame {missing[0]!r} is missing (need {', '.join(PIECE_FRAMES)})")
 
+    def text_or_none(frame: pd.DataFrame, name: str) -> pd.Series:
+        if name not in frame.columns:
+            return pd.Series(["\0none"] * len(frame), dtype=object)
+        return frame[name].astype(object).where(frame[name].notna(), "\0none")
+
     def keyed(frame: pd.DataFrame) -> dict:
         frame = frame.reset_index(drop=True)
-        day = frame["day"].astype(object).where(frame["day"].notna(), "\0none")
-        groups = pd.DataFrame({"day": day, "n": frame["n_bidders"], "s": frame["shard"]}).groupby(
-            ["day", "n", "s"], sort=False).indices
-        return {(None if d == "\0none" else str(d), int(n), int(s)): frame.iloc[idx] for (d, n, s), idx in groups.items()}
+        groups = pd.DataFrame({"day": text_or_none(frame, "day"), "n": frame["n_bidders"], "s": frame["shard"],
+                               "g": text_or_none(frame, "segment")}).groupby(["day", "n", "s", "g"], sort=False).indices
+        return {(_text(d), int(n), int(s), _text(g)): frame.iloc[idx] for (d, n, s, g), idx in groups.items()}
 
     arms_of = keyed(frames["arms"])
     cov_of = keyed(frames["covariance"])
@@ -146,7 +153,8 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
     pieces = []
     for _, row in frames["strata"].reset_index(drop=True).iterrows():
         day = None if pd.isna(row["day"]) else str(row["day"])
-        key = (day, int(row["n_bidders"]), int(row["shard"]))
+        segment = None if "segment" not in row.index or pd.isna(row["segment"]) else str(row["segment"])
+        key = (day, int(row["n_bidders"]), int(row["shard"]), segment)
         where = f"piece {key}"
         if key not in arms_of:
             raise InputError(f"piece frames: {where} has no rows in 'arms'")
@@ -193,7 +201,7 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
             bidder_sums[codes, column] = s["value"].to_numpy(dtype=float)
         flags = tuple(f for f in str(row["flags"] if not pd.isna(row["flags"]) else "").split(",") if f)
         pieces.append(StratumPiece(
-            key=StratumKey(day=day, n_bidders=key[1], shard=key[2]), n_auctions=int(row["n_auctions"]), n_bids=int(row["n_bids"]),
+            key=StratumKey(day=day, n_bidders=key[1], shard=key[2], segment=segment), n_auctions=int(row["n_auctions"]), n_bids=int(row["n_bids"]),
             labels=labels, estimate=estimate, covariance=covariance, bidder_ids=bidder_ids, bidder_sums=bidder_sums,
             arm_auctions=arms["n_auctions"].to_numpy(dtype=np.int64)[:k_arms],
             realized_sum=arms["realized_revenue_sum"].to_numpy(dtype=float)[:k_arms],
@@ -202,6 +210,11 @@ def pieces_from_frames(frames: dict[str, pd.DataFrame]) -> list[StratumPiece]:
             bid_exponent=int(row["bid_exponent"]), has_quality=bool(row["has_quality"]), flags=flags,
             own_variance=own_variance))
     return pieces
+
+
+def _text(value) -> str | None:
+    """A grouped key text back to ``None`` where it stood for a missing value."""
+    return None if value == "\0none" else str(value)
 
 
 def _number(value) -> float:

@@ -89,7 +89,7 @@ class StratumPiece:
     Attributes
     ----------
     key : StratumKey
-        Which stratum: day, number of bidders, shard (and, later, segment); ``n_bidders``,
+        Which stratum: day, number of bidders, shard, segment; ``n_bidders``,
         ``shard`` and ``day`` read through to it.
     n_auctions, n_bids : int
         Auctions (the combine weight ``M_s``) and bids of the stratum.
@@ -226,7 +226,7 @@ class StratumPiece:
 
 def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cluster: str = "auto",
                    source: str = "bids") -> list[StratumPiece]:
-    """Estimate every stratum (number of bidders) of one input alone: one :class:`StratumPiece` each.
+    """Estimate every stratum (number of bidders, and segment when declared) of one input alone: one piece each.
 
     Parameters
     ----------
@@ -249,7 +249,8 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
     Returns
     -------
     list of StratumPiece
-        Sorted by number of bidders.
+        Sorted by number of bidders, then segment label (``key.segment``; ``None`` unless the
+        experiment declares ``segments``).
 
     Warns
     -----
@@ -277,29 +278,39 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
 
 def pieces_of_prepared(data: PreparedBids, experiment: Experiment, *, base: StratumKey, cluster: str, source: str,
                        auction_covariance: bool = True) -> list[StratumPiece]:
-    """The pieces of validated bids, one per number of bidders, keyed like ``base`` (its ``n_bidders`` replaced).
+    """The pieces of validated bids, one per (number of bidders, segment), keyed like ``base`` (``n_bidders`` and
+    ``segment`` replaced).
 
     ``auction_covariance=False`` (``estimate_arms``' shortcut: its pieces never leave the call)
     leaves ``covariance`` NaN when bidder sums are kept, saving a gather and a bincount per metric.
     """
     space = _bidder_space(data, cluster)
-    n_of_auction, strata = _strata(data)
+    stratum_of_auction, strata = _strata(data)
     numbers = []
     buffer = _Buffer()  # one influence buffer of the largest stratum's length, shared by every metric
-    for n, a_n in strata:
-        rows = np.flatnonzero(data.n_bidders == n) if len(strata) > 1 else None
+    for n, seg, _ in strata:
+        rows = _stratum_rows(data, n, seg) if len(strata) > 1 else None
         numbers.append(_stratum_numbers(data, rows, n, experiment, space, buffer, source=source,
                                         auction_covariance=auction_covariance))
     del buffer
-    cells = _realized_cells(data, experiment, n_of_auction, [n for n, _ in strata], [x.exponent for x in numbers])
+    cells = _realized_cells(data, experiment, stratum_of_auction, len(strata), [x.exponent for x in numbers])
     labels = piece_labels(experiment)
     return [StratumPiece(
-        key=dataclasses.replace(base, n_bidders=int(n)), n_auctions=int(a_n), n_bids=int(x.n_bids), labels=labels,
+        key=dataclasses.replace(base, n_bidders=int(n), segment=None if seg < 0 else data.segment_names[seg]),
+        n_auctions=int(a_n), n_bids=int(x.n_bids), labels=labels,
         estimate=x.estimate, covariance=x.covariance, bidder_ids=x.ids, bidder_sums=x.sums,
         arm_auctions=counts, realized_sum=sums, realized_squares=squares, floor_quantile=float(x.floor_quantile),
         max_bid=x.top_bid, bid_exponent=int(x.exponent), has_quality=bool(data.has_quality), flags=x.flags,
         own_variance=x.own_variance, bidder_codes=x.codes, bidder_space=space.token if x.ids is not None else None)
-        for (n, a_n), x, (sums, squares, counts) in zip(strata, numbers, cells)]
+        for (n, seg, a_n), x, (sums, squares, counts) in zip(strata, numbers, cells)]
+
+
+def _stratum_rows(data: PreparedBids, n: int, segment: int) -> np.ndarray:
+    """The bids of the stratum of ``n`` bidders in segment code ``segment`` (-1: not segmented)."""
+    mask = data.n_bidders == n
+    if segment >= 0:
+        mask &= data.segment == segment
+    return np.flatnonzero(mask)
 
 
 @dataclass(frozen=True)
@@ -344,12 +355,25 @@ def _bidder_clusters(bidder: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return codes, np.asarray(uniques)
 
 
-def _strata(data: PreparedBids) -> tuple[np.ndarray, list[tuple[int, int]]]:
-    """The number of bidders of every auction, and (n, auctions) of each stratum, by n."""
+def _strata(data: PreparedBids) -> tuple[np.ndarray, list[tuple[int, int, int]]]:
+    """The stratum index of every auction, and (n, segment code, auctions) of each stratum, by n then segment.
+
+    The segment code is -1 when the experiment declares no segments.
+    """
     n_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
     n_of_auction[data.auction] = data.n_bidders
-    strata, counts = np.unique(n_of_auction, return_counts=True)
-    return n_of_auction, list(zip(strata.tolist(), counts.tolist()))
+    if data.segment is None:
+        key = n_of_auction
+        n_segments = 1
+    else:
+        n_segments = max(len(data.segment_names), 1)
+        segment_of_auction = np.zeros(data.n_auctions, dtype=np.int64)
+        segment_of_auction[data.auction] = data.segment
+        key = n_of_auction * n_segments + segment_of_auction
+    values, stratum_of_auction, counts = np.unique(key, return_inverse=True, return_counts=True)
+    strata = [(int(v) // n_segments, -1 if data.segment is None else int(v) % n_segments, int(c))
+              for v, c in zip(values.tolist(), counts.tolist())]
+    return stratum_of_auction, strata
 
 
 class _Buffer:
@@ -537,7 +561,7 @@ def _warn_degenerate(sorted_bids: np.ndarray, n: int, exponent: int, floor_value
                   stacklevel=5)
 
 
-def _realized_cells(data: PreparedBids, experiment: Experiment, n_of_auction: np.ndarray, strata: list[int],
+def _realized_cells(data: PreparedBids, experiment: Experiment, stratum_of_auction: np.ndarray, n_strata: int,
                     exponents: list[int]) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
     """Realized per-arm sums of each stratum (:func:`._realized.realized_cell`), in each stratum's unit.
 
@@ -556,8 +580,8 @@ def _realized_cells(data: PreparedBids, experiment: Experiment, n_of_auction: np
     else:
         revenue = auction_revenues(data, experiment, floor=floor_bid)
     cells = []
-    for n, exponent in zip(strata, exponents):
-        mask = n_of_auction == n if len(strata) > 1 else None
+    for s, exponent in enumerate(exponents):
+        mask = stratum_of_auction == s if n_strata > 1 else None
         rev = revenue if mask is None else revenue[mask]
         arm_k = arm_of_auction if mask is None else arm_of_auction[mask]
         rev = np.ldexp(rev, top_exponent - exponent) if exponent != top_exponent else rev

@@ -153,7 +153,9 @@ def pilot_values(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
 def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> pd.DataFrame:
     """Per-auction standard deviation ``SE x sqrt(M)`` and estimate, from one simulated experiment."""
     # Calibration bids from the auction that runs: its payment rule and floor (quality factors do
-    # not change revenue's sampling in the model, so none are simulated).
+    # not change revenue's sampling in the model, so none are simulated). The simulated auctions
+    # come from one distribution: no segments.
+    experiment = dataclasses.replace(experiment, segments=())
     bids = simulate_experiment(values, experiment, n_bidders=n_bidders, n_auctions=n_auctions, rng=rng,
                                payment_rule=experiment.payment_rule, floor=experiment.floor or None)
     with warnings.catch_warnings():
@@ -162,7 +164,7 @@ def _sigma(values, experiment: Experiment, n_bidders, n_auctions: int, rng) -> p
 
 
 def _sigma_of(result: pd.DataFrame, n_auctions: int) -> pd.DataFrame:
-    r = result[result["metric"].isin(_METRICS) & (result["arm"] != "_mixture")]
+    r = result[result["metric"].isin(_METRICS) & (result["arm"] != "_mixture") & result["segment"].isna()]  # pooled
     return r.assign(sigma=r["std_error"] * np.sqrt(n_auctions)).set_index(["arm", "metric"])[["estimate", "sigma"]]
 
 

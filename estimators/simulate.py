@@ -27,7 +27,9 @@ __all__ = [
     "expected_revenue_per_auction",
     "expected_welfare_per_auction",
     "floor_quantile",
+    "SimulatedSegment",
     "simulate_experiment",
+    "simulate_segmented_experiment",
 ]
 
 _GRID = 4096
@@ -491,6 +493,78 @@ def simulate_experiment(
         cols += _scale_auctions(out, dict(scale_covariates or {}), float(unobserved_scale_sd), int(n_auctions),
                                 first_auction_id, rng)
     return out[cols].reset_index(drop=True)
+
+
+@dataclass(frozen=True)
+class SimulatedSegment:
+    """One segment of a simulated marketplace: its own values, bidder counts and share of auctions.
+
+    Attributes
+    ----------
+    values : scipy.stats frozen continuous distribution
+        Values per click of the segment's bidders.
+    n_bidders : int or mapping of int to float
+        Bidders per auction of the segment (as :func:`simulate_experiment`).
+    auction_share : float
+        Share of the auctions in this segment (> 0; the shares are normalised).
+    """
+
+    values: object
+    n_bidders: object
+    auction_share: float
+
+
+def simulate_segmented_experiment(segments: Mapping[str, SimulatedSegment], experiment: Experiment, *,
+                                  n_auctions: int, rng: np.random.Generator | int | None = None,
+                                  column: str = "segment", **options) -> pd.DataFrame:
+    """Simulate a log whose auctions fall in segments, each with its own values and bidder counts.
+
+    Bidders of a segment bid the equilibrium of their own segment (they know which segment the
+    auction is in: the segment is observed before the auction). The arm is drawn per auction
+    across segments alike.
+
+    Parameters
+    ----------
+    segments : mapping of str to SimulatedSegment
+        Segment label -> its values, bidder counts and share of auctions.
+    experiment : Experiment
+    n_auctions : int
+        Auctions in all; each segment gets a multinomial draw by its share.
+    rng : numpy Generator or int, optional
+    column : str, optional
+        Name of the segment column of the log. Default ``'segment'``.
+    **options
+        Passed to :func:`simulate_experiment` (``ds``, ``bidder_pool``, ``payment_rule``, ...).
+
+    Returns
+    -------
+    pandas.DataFrame
+        :func:`simulate_experiment`'s columns plus ``column`` (text), auction ids distinct
+        across segments.
+
+    References
+    ----------
+    .. [1] Varian, H. (2007). Position auctions. Int. J. Ind. Organ. 25(6), 1163-1178.
+    """
+    rng = np.random.default_rng(rng)
+    if not segments:
+        raise InputError("`segments` must name at least one segment")
+    names = list(segments)
+    shares = np.array([float(segments[k].auction_share) for k in names])
+    if not np.all(np.isfinite(shares) & (shares > 0)):
+        raise InputError("every segment's `auction_share` must be a finite number > 0")
+    counts = rng.multinomial(int(n_auctions), shares / shares.sum())
+    frames, first = [], int(options.pop("first_auction_id", 0))
+    for name, count in zip(names, counts.tolist()):
+        if count == 0:
+            continue
+        seg = segments[name]
+        frame = simulate_experiment(seg.values, experiment, n_bidders=seg.n_bidders, n_auctions=count, rng=rng,
+                                    first_auction_id=first, **options)
+        frame[column] = name
+        frames.append(frame)
+        first += count
+    return pd.concat(frames, ignore_index=True)
 
 
 def _scale_auctions(out: pd.DataFrame, covariates: dict, sigma: float, n_auctions: int, first_auction_id: int,

@@ -18,6 +18,7 @@ A spec file (YAML) holds one or more experiments::
         checks: {}                 # optional: thresholds for the data checks
         burn_in_days: 2            # optional: leave the first 2 days out of the experiment-to-date numbers
         exclude_days: [2026-03-09] # optional: days left out of the experiment-to-date numbers
+        segments: [category]       # optional: bid-log columns constant within an auction; estimated apart
         scale_covariates: [demand_index]  # optional: numeric auction-level columns values scale with
 
 ``payment_rule`` names the per-click prices of the auctions that ran (pay-your-bid, next-lower
@@ -34,6 +35,10 @@ and the value, and no number is estimated from that input.
 ``burn_in_days`` and ``exclude_days`` shape the analysis window of the experiment-to-date numbers:
 the first ``burn_in_days`` days from ``start`` and every listed day are left out, besides the days
 whose warm-up or drift check failed (the pipeline's default).
+
+``segments`` names columns of the bid log (string, integer or boolean) that are constant within an
+auction: every (day, number of bidders, segment) is estimated as a stratum of its own, so auctions
+whose values come from different distributions are not pooled into one inversion.
 
 ``what_if`` lists layouts that did not run: each gets revenue and welfare per auction and its lift
 against control from the mixture's bids (``docs/method.md``, "Layouts that did not run"). Names must
@@ -91,7 +96,7 @@ _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]{0,127}$")
 #: Keys a spec may hold at each level; anything else is refused (a typo must not be ignored).
 DOCUMENT_KEYS = frozenset({"experiments", "description"})
 EXPERIMENT_KEYS = frozenset({"id", "payment_rule", "control_arm", "arms", "start", "end", "floor", "checks", "description",
-                             "burn_in_days", "exclude_days", "max_bid", "what_if",
+                             "burn_in_days", "exclude_days", "max_bid", "segments", "what_if",
                              "scale_covariates"})
 ARM_KEYS = frozenset({"name", "share", "position_weights", "description"})
 WHAT_IF_KEYS = frozenset({"name", "position_weights", "description"})
@@ -183,6 +188,9 @@ class Experiment:
     max_bid : float or None
         The largest bid the marketplace accepts, in the units of the ``bid`` column (before
         quality); a logged bid above it is refused as bad input. ``None``: no bound.
+    segments : tuple of str
+        Bid-log columns whose values (constant within an auction) split the auctions into
+        segments estimated apart (``()``: not segmented).
     what_if : tuple of WhatIf
         Layouts that did not run, estimated from the same bids (no share: not in the mixture).
     scale_covariates : tuple of str
@@ -201,6 +209,7 @@ class Experiment:
     burn_in_days: int = 0
     exclude_days: tuple[_dt.date, ...] = ()
     max_bid: float | None = None
+    segments: tuple[str, ...] = ()
     what_if: tuple[WhatIf, ...] = ()
     scale_covariates: tuple[str, ...] = ()
 
@@ -221,6 +230,11 @@ class Experiment:
     @property
     def shares(self) -> tuple[float, ...]:
         return tuple(a.share for a in self.arms)
+
+    @property
+    def auction_columns(self) -> tuple[str, ...]:
+        """The log's auction-level columns the spec names: segment columns, then scale covariates."""
+        return tuple(self.segments) + tuple(self.scale_covariates)
 
     def arm(self, name: str) -> Arm:
         for a in self.arms:
@@ -324,6 +338,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
     if isinstance(excluded_raw, (str, bytes)) or not isinstance(excluded_raw, Sequence):
         raise InputError(f"{where}: 'exclude_days' must be a list of dates YYYY-MM-DD; got {excluded_raw!r}")
     excluded = tuple(sorted({parse_day(d, what=f"{where} exclude_days[{i}]") for i, d in enumerate(excluded_raw)}))
+    segments = _segments(raw.get("segments"), where)
     what_if = _what_ifs(raw.get("what_if"), {a.name for a in arms}, where)
     covariates = _scale_covariates(raw.get("scale_covariates"), floor, where)
     return Experiment(
@@ -338,6 +353,7 @@ def _experiment(raw: Any, where: str) -> Experiment:
         burn_in_days=int(burn_in),
         exclude_days=excluded,
         max_bid=max_bid,
+        segments=segments,
         what_if=what_if,
         scale_covariates=covariates,
     )
@@ -372,6 +388,24 @@ def _max_bid(value: Any, floor: Any, where: str) -> float | None:
     if floor is not None and value < floor:
         raise InputError(f"{where}: 'max_bid' {value!r} lies below the floor {floor!r}")
     return float(value)
+
+
+def _segments(raw: Any, where: str) -> tuple[str, ...]:
+    """The ``segments`` list: distinct column names, none of the contract's own columns."""
+    if raw is None:
+        return ()
+    if isinstance(raw, (str, bytes)) or not isinstance(raw, Sequence):
+        raise InputError(f"{where}: 'segments' must be a list of bid-log column names; got {raw!r}")
+    out: list[str] = []
+    for i, name in enumerate(raw):
+        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]{0,62}", name):
+            raise InputError(f"{where}: segments[{i}] must be a column name (letters, digits, '_'); got {name!r}")
+        if name in BID_CONTRACT:
+            raise InputError(f"{where}: segments[{i}] {name!r} is a column of the bids data contract, not a segment")
+        if name in out:
+            raise InputError(f"{where}: segments[{i}] {name!r} is listed twice")
+        out.append(name)
+    return tuple(out)
 
 
 def _what_ifs(raw: Any, arm_names: set[str], where: str) -> tuple[WhatIf, ...]:

@@ -205,8 +205,8 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
 
 
 def _day_bids_statement(experiment: Experiment) -> str:
-    """The checks' bids: the contract's columns, or every column when the spec names scale covariates."""
-    return "check_day_bids_every_column" if experiment.scale_covariates else "check_day_bids"
+    """The checks' bids: the contract's columns, or every column when the spec names scale covariates or segments."""
+    return "check_day_bids_every_column" if experiment.auction_columns else "check_day_bids"
 
 
 #: Rows per batch when the checks' bids are fetched from DuckDB (strings are dictionary-encoded batch by batch).

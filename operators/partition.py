@@ -423,7 +423,7 @@ def estimate_partition(
     results: dict[str, ArmEstimates] = {"day": day_result}
     if to_date_pieces:
         to_date_cluster = cluster
-        if cluster == "bidder" and inputs.gram is None:
+        if cluster == "bidder" and inputs.route == "by_auction":
             # a day of the window was estimated clustered by auction (no bidder sums stored):
             # the days can only be combined by auction; the rows say so in their `cluster` column
             log.warning("%s to %s: a day of the window has no bidder sums; combining by auction", experiment.id, ds)
@@ -452,7 +452,7 @@ def estimate_partition(
         table["computed_at"] = computed_at
         tables[span] = table
         summary[f"{span}_bids"] = result.n_bids
-        rev = table[table["metric"] == "revenue_per_auction"].set_index("arm")["estimate"]
+        rev = table[(table["metric"] == "revenue_per_auction") & table["segment"].isna()].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
     if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
         tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),

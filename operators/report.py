@@ -29,7 +29,8 @@ from .hooks import ResultsHook  # noqa: E402
 
 __all__ = [
     "ANYTIME_NOTE", "ASSUMPTIONS", "EXPECTED_FLAGS", "MIXTURE_GAP_SE", "anytime_caption", "attention_flags", "auction_caption",
-    "CANDIDATES_NOTE", "candidate_table", "cumulative_table", "day_status", "format_cumulative", "interval_caption", "what_if_table", "window_caption", "write_report",
+    "CANDIDATES_NOTE", "candidate_table", "cumulative_table", "day_status", "format_cumulative", "interval_caption",
+    "segment_lift_table", "what_if_table", "window_caption", "write_report",
 ]
 
 #: What every number in the report rests on.
@@ -182,6 +183,46 @@ def what_if_table(rows: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
+SEGMENT_NOTE = ("Each segment's lift is that segment's auctions estimated apart (their own bidder counts and values); "
+                "the pooled column combines every segment by its auctions. A segment's interval is wider than the "
+                "pooled one because it rests on fewer auctions; segments whose lifts differ beyond their intervals "
+                "say the layouts do not rank the same everywhere (docs/method.md, 'Segments').")
+
+
+def _by_segment(rows: pd.DataFrame) -> pd.Series:
+    """Rows of one segment (null segment: pooled rows, and every row stored before schema version 7)."""
+    if "segment" not in rows.columns:
+        return pd.Series(False, index=rows.index)
+    return rows["segment"].notna()
+
+
+def segment_lift_table(rows: pd.DataFrame) -> pd.DataFrame:
+    """Each arm's lift against control per segment and pooled, ``lift [ci_low, ci_high]``.
+
+    Parameters
+    ----------
+    rows : pandas.DataFrame
+        Stored experiment-to-date rows of one experiment (``segment`` null on pooled rows).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per non-control arm, one column per segment (its auctions in the header), then
+        ``pooled``; empty when the rows have no segment.
+    """
+    mine = rows[(rows["metric"] == "revenue_lift_vs_control") & ~_is_what_if(rows)]
+    if not _by_segment(mine).any():
+        return pd.DataFrame()
+    auctions = rows[rows["metric"] == "revenue_per_auction"].groupby(rows["segment"].fillna(""))["n_auctions"].max()
+    out: dict[str, dict[str, str]] = {}
+    for arm, seg, est, lo, hi in zip(mine["arm"], mine["segment"], mine["estimate"], mine["ci_low"], mine["ci_high"]):
+        column = "pooled" if pd.isna(seg) else str(seg)
+        out.setdefault(column, {})[arm] = _interval(est, lo, hi, pct=True)
+    names = sorted(c for c in out if c != "pooled") + ["pooled"]
+    headers = {c: f"{c} ({int(auctions.get('' if c == 'pooled' else c, 0)):,} auctions)" for c in names}
+    return pd.DataFrame(out)[names].fillna("").rename(columns=headers)
+
+
 def _flags(statuses) -> set[str]:
     """Flags of stored statuses (``'ok'`` or comma-joined flags), without ``ok``."""
     return {f for s in statuses for f in str(s).split(",") if f and f != "ok"}
@@ -241,6 +282,8 @@ def format_cumulative(table: pd.DataFrame) -> str:
     """The experiment-to-date table as text, one block per experiment."""
     blocks = []
     for exp_id, rows in table.groupby("experiment_id", sort=True):
+        segments = segment_lift_table(rows)
+        rows = rows[~_by_segment(rows)]
         if _pending(rows):  # warm-up (or every day left out): rows without numbers, saying why
             blocks.append(f"{exp_id}: to {pd.Timestamp(rows['ds'].max()).date()}, no day used yet (status "
                           f"{day_status(rows)})\n" + window_caption(rows))
@@ -252,7 +295,10 @@ def format_cumulative(table: pd.DataFrame) -> str:
         lines = [head, window_caption(rows), anytime_caption(rows)]
         if _has_anytime(rows):
             lines.append(ANYTIME_NOTE)
-        blocks.append("\n".join(lines) + "\n" + _wide(rows).to_string())
+        text = "\n".join(lines) + "\n" + _wide(rows).to_string()
+        if len(segments):
+            text += "\nlift vs control by segment:\n" + segments.to_string()
+        blocks.append(text)
     return "\n\n".join(blocks)
 
 
@@ -420,9 +466,10 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
     auctions_run = []
     for exp_id in hook.fetch_df("report_experiments")["experiment_id"]:
         daily = hook.fetch_df("report_daily_estimates", {"experiment_id": exp_id})
-        daily = daily[~_is_what_if(daily)]  # the arms that ran; what-if layouts have their own section
+        daily = daily[~_is_what_if(daily) & ~_by_segment(daily)]  # the arms that ran, pooled; the rest has its own view
         auctions_run.append(f"{exp_id}: {auction_caption(daily)}")
         to_date = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp_id})
+        to_date = to_date[~_by_segment(to_date)]
         weights = hook.fetch_df("report_position_weights", {"experiment_id": exp_id})
         rev_png, lift_png = f"{exp_id}_revenue.png", f"{exp_id}_lift.png"
         _plot_revenue(daily, exp_id, out / rev_png)
@@ -430,6 +477,8 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         if has_lift:
             _plot_lift(daily, to_date, exp_id, out / lift_png)
         cum = cumulative[cumulative["experiment_id"] == exp_id]
+        segments = segment_lift_table(cum)
+        cum = cum[~_by_segment(cum)]
         layouts = what_if_table(cum)
         cum = cum[~_is_what_if(cum)]
         days = _mixture_days(daily)
@@ -484,6 +533,7 @@ def write_report(hook: ResultsHook, out_dir: str | Path, *, title: str = "Auctio
         window_line = window_caption(cum) if len(cum) else ""
         pending = _pending(cum)
         if pending:  # the latest to-date rows hold no number yet: say why, show no table of n/a
+            segments = segments.iloc[0:0]
             cum_text = (f"<p>Experiment to date, to {pd.Timestamp(cum['ds'].max()).date()}: no day used yet "
                         f"(status {html.escape(day_status(cum))}); the numbers start with the first day the window "
                         f"keeps.</p>")
@@ -508,6 +558,7 @@ the realized per-arm average's are always clustered by auction.</p>
 {_table_html(_wide(cum)) if len(cum) else "<p>No experiment-to-date rows.</p>"}
 {f"<p>{html.escape(anytime_caption(cum))}. <strong>{html.escape(ANYTIME_NOTE)}</strong></p>" if _has_anytime(cum) else ""}
 {weights_note}
+{f"<h3>Lift by segment</h3>{_table_html(segments)}<p class='note'>{html.escape(SEGMENT_NOTE)}</p>" if len(segments) else ""}
 {f"<h3>Layouts that did not run</h3>{_table_html(layouts)}<p class='note'>{html.escape(WHAT_IF_NOTE)}</p>" if len(layouts) else ""}
 {_candidates_html((candidates or {}).get(exp_id))}
 {"".join(f"<p class='note'>{html.escape(n)}</p>" for n in notes)}

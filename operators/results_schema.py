@@ -120,6 +120,11 @@ def _rebuild(version: int, table: str) -> tuple[Statement, ...]:
     )
 
 
+def _keyed_rebuild(version: int, table: str) -> tuple[Statement, ...]:
+    """:func:`_rebuild`, then ``results_v<version>_index_<table>``: a key a primary key cannot hold (a null column)."""
+    return _rebuild(version, table) + (Statement(f"results_v{version}_index_{table}"),)
+
+
 @dataclass(frozen=True)
 class Migration:
     """One step of the results schema: ``statements`` take a database from ``version - 1`` to ``version``."""
@@ -164,6 +169,11 @@ MIGRATIONS = (
                  "only today's bidders",
               (Statement("results_v6_create_bidder_window"), Statement("results_v6_create_bidder_window_gram"),
                Statement("results_v6_create_bidder_window_totals"))),
+    Migration(7, "rows and stored pieces carry the experiment's segment (null: pooled rows, or no segments); the "
+                 "tables are keyed by unique indexes that hold the null segment as one key value",
+              _keyed_rebuild(7, "arm_estimates") + _keyed_rebuild(7, "arm_estimates_to_date")
+              + _keyed_rebuild(7, "stratum_pieces") + _keyed_rebuild(7, "stratum_piece_arms")
+              + _keyed_rebuild(7, "stratum_piece_covariance") + (Statement("results_v7_add_bidder_sums_segment"),)),
     # PostgreSQL only: DuckDB's indexes serve point lookups, not the semi-join on today's bidders
     Migration(8, "an index on the running bidder totals by experiment and bidder id (PostgreSQL): a day reads and "
                  "replaces its own bidders' rows without scanning the experiment's",

@@ -64,7 +64,9 @@ class ToDateInputs:
     route : str
         ``'extended'`` (today's bidders only), ``'stored'`` (today left out: the stored window as it
         is), ``'rebuilt'`` (from every stored piece), or
-        ``'by_auction'`` (no bidder sums needed or available).
+        ``'by_auction'`` (no bidder sums needed or available), or ``'segmented'`` (an experiment
+        with segments: every stored piece with its bidder sums, no running window; its per-segment
+        rows would need a window per segment).
     """
 
     pieces: list[StratumPiece]
@@ -125,6 +127,10 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     window = stored + [p.without_bidder_sums() for p in mine]
     if not window or not with_sums:
         return ToDateInputs(window, None, None, "by_auction")
+    if experiment.segments:  # per-segment rows need each segment's bidder sums: no running window (yet)
+        full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before,
+                                        tables=list(PIECE_TABLES.values()))
+        return ToDateInputs(pieces_of_rows(full) + mine, None, None, "segmented")
     exponent = max(p.bid_exponent for p in window)
     days_text = ",".join(d.isoformat() for d in sorted([*used_before, *([ds] if today_in_window else [])]))
     base = hook.bidder_window(experiment_id=experiment.id)

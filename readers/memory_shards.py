@@ -156,7 +156,7 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     from .shards import ShardPieces
 
     name = str(source or path)
-    columns = ["experiment_id", *BID_COLUMNS, *experiment.scale_covariates]
+    columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
     bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
     shard = row_shards(bids["auction_id"], n_shards)
     order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order

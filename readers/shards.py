@@ -363,7 +363,7 @@ def one_shard_pieces(
     OneShard
     """
     where = str(where or path)
-    bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.scale_covariates], source=where)
+    bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.auction_columns], source=where)
     hashed = _hashed_bidders(bids) if hash_bidders else None
     try:
         prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)

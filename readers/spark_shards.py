@@ -429,7 +429,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         Spark failed (out of memory, a lost executor, a result above ``spark.driver.maxResultSize``):
         one line with the cause.
     """
-    columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.scale_covariates] if c in bids.columns]
+    columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
+               if c in bids.columns]
     if "auction_id" not in columns:  # the shards need it: prepare_bids's line, before any statement names it
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)

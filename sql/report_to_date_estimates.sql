@@ -2,4 +2,4 @@
 select *
 from {{ schema }}.arm_estimates_to_date
 where experiment_id = $experiment_id
-order by ds, arm, metric
+order by ds, segment nulls first, arm, metric

@@ -49,8 +49,8 @@ def test_json_output_has_every_arm_and_metric(files, capsys):
     payload = json.loads(out)
     assert payload["experiment_id"] == "cli-exp" and payload["n_excluded_auctions"] == 0
     rows = payload["rows"]
-    assert set(rows[0]) == {"arm", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids", "status",
-                            "what_if", "effective_share"}
+    assert set(rows[0]) == {"arm", "segment", "metric", "estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids",
+                            "status", "what_if", "effective_share"}
     seen = {(r["arm"], r["metric"]) for r in rows}
     for arm in ("control", "wide", "single"):
         assert (arm, "revenue_per_auction") in seen and (arm, "realized_revenue_per_auction") in seen
@@ -62,8 +62,8 @@ def test_table_and_csv(files, capsys):
     code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
     assert code == 0 and "wide" in out and "revenue_lift_vs_control" in out and "Assumes" in out
     code, out, _ = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv", "--level", "0.9"], capsys)
-    assert code == 0 and out.splitlines()[0] == ("arm,metric,estimate,std_error,ci_low,ci_high,n_auctions,n_bids,status,"
-                                                 "what_if,effective_share")
+    assert code == 0 and out.splitlines()[0] == ("arm,segment,metric,estimate,std_error,ci_low,ci_high,n_auctions,n_bids,"
+                                                 "status,what_if,effective_share")
 
 
 def test_single_bidder_auctions_reported_not_fatal(files, capsys):
@@ -187,3 +187,81 @@ def test_table_says_the_level_and_clustering_used(files, capsys, level, cluster,
     assert len(table) == 13  # 3 arms x 3 metrics + 2 lifts + 2 mixture rows
     for r in table:  # the realized per-arm average is clustered by auction whatever the option says
         assert r[6] == ("auction" if r[1] == "realized_revenue_per_auction" else cluster), r
+
+
+SEGMENTED_SPEC = SPEC.replace("    control_arm: control\n", "    control_arm: control\n    segments: [aisle]\n")
+
+
+@pytest.mark.parametrize("max_bids", [None, "4000"])
+def test_segmented_log_gives_pooled_and_per_segment_rows_in_every_format(tmp_path, capsys, monkeypatch, max_bids):
+    """A segmented log through the command line: JSON rows carry the segment (null on pooled rows)
+    and equal the library's numbers; in several shards the shards' segment pieces combine."""
+    from counterbid.estimators import SimulatedSegment, estimate_arms, simulate_segmented_experiment
+
+    if max_bids:
+        monkeypatch.setenv("COUNTERBID_MAX_BIDS_PER_SHARD", max_bids)
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SEGMENTED_SPEC)
+    exp = parse_experiments(__import__("yaml").safe_load(SEGMENTED_SPEC))["cli-exp"]
+    segments = {"bulk": SimulatedSegment(st.beta(2.0, 5.0, scale=3.0), 4, 0.6),
+                "fresh": SimulatedSegment(st.lognorm(0.5, scale=2.0), 4, 0.4)}
+    bids = simulate_segmented_experiment(segments, exp, n_auctions=3000, rng=3, column="aisle")
+    path = tmp_path / "bids.parquet"
+    bids.to_parquet(path, index=False)
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json",
+                          "--cluster", "auction"], capsys)
+    assert code == 0, err
+    payload = json.loads(out)
+    assert payload["segments"] == {"bulk": int((bids.groupby("auction_id")["aisle"].first() == "bulk").sum()),
+                                   "fresh": int((bids.groupby("auction_id")["aisle"].first() == "fresh").sum())}
+    got = pd.DataFrame(payload["rows"])
+    want = estimate_arms(bids, exp, cluster="auction").table
+    assert got["segment"].isna().sum() == 13 and set(got["segment"].dropna()) == {"bulk", "fresh"}
+    assert got[["arm", "segment", "metric"]].astype(object).fillna("").values.tolist() == \
+        want[["arm", "segment", "metric"]].astype(object).fillna("").values.tolist()
+    if max_bids:  # shards are strata of their own: other numbers, the same shape
+        assert payload["shards"] > 1
+    else:  # JSON carries 10 decimals
+        np.testing.assert_allclose(got["estimate"].to_numpy(float), want["estimate"].to_numpy(float), atol=1e-9)
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 0, err
+    assert "(pooled)" in out and " fresh " in out
+
+
+def test_segment_changing_within_an_auction_is_one_line(tmp_path, capsys):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SEGMENTED_SPEC)
+    exp = parse_experiments(__import__("yaml").safe_load(SEGMENTED_SPEC))["cli-exp"]
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), exp, n_bidders=4, n_auctions=200, rng=4)
+    bids["aisle"] = np.where(np.arange(len(bids)) == 5, "fresh", "bulk")
+    path = tmp_path / "bids.parquet"
+    bids.to_parquet(path, index=False)
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec)], capsys)
+    assert code == 2 and out == ""
+    line = err.strip().splitlines()
+    assert len(line) == 1 and f"auction {bids['auction_id'].iloc[5]} has two values of segment column 'aisle'" in line[0]
+
+
+def test_simulate_writes_segments_that_estimate_reads_back(tmp_path, capsys):
+    """`counterbid simulate --segment ...` writes the spec's segment column; each segment's auctions
+    have its own bidder count, and `estimate` gives its rows."""
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SEGMENTED_SPEC)
+    code, _, err = run(["simulate", "--experiment", str(spec), "--out", str(tmp_path / "lake"), "--auctions-per-day",
+                        "1500", "--segment", "bulk:beta:4:0.6", "--segment", "fresh:lognorm:6:0.4", "--seed", "5"],
+                       capsys)
+    assert code == 0, err
+    path = tmp_path / "lake" / "ds=2026-01-05" / "cli-exp.parquet"
+    bids = pd.read_parquet(path)
+    sizes = bids.groupby("auction_id").agg(aisle=("aisle", "first"), n=("bid", "size"))
+    assert sizes.groupby("aisle")["n"].unique().map(list).to_dict() == {"bulk": [4], "fresh": [6]}
+    assert 0.55 < (sizes["aisle"] == "bulk").mean() < 0.65  # 1,500 auctions: sd of the share 0.013
+    code, out, err = run(["estimate", "--bids", str(path), "--experiment", str(spec), "--format", "json"], capsys)
+    assert code == 0, err
+    assert set(json.loads(out)["segments"]) == {"bulk", "fresh"}
+    for bad, words in ((["--segment", "bulk:gamma:4:0.6"], "expected LABEL:VALUES:BIDDERS:SHARE"),
+                       (["--segment", "bulk:beta:1:0.6"], "BIDDERS must be a whole number >= 2"),
+                       ([], "declares segments (aisle): give them with --segment")):
+        code, out, err = run(["simulate", "--experiment", str(spec), "--out", str(tmp_path / "bad"), *bad], capsys)
+        assert code == 2 and words in err and len(err.strip().splitlines()) == 1, err
+        assert not (tmp_path / "bad").exists()

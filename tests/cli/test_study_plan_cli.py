@@ -173,7 +173,8 @@ def test_plan_for_the_anytime_valid_bounds(capsys):
 def test_plan_from_pilot_bids_table(tmp_path, capsys):
     lake = tmp_path / "lake"
     assert main(["simulate", "--experiment", str(SPEC), "--experiment-id", "maker-spotlight", "--out", str(lake),
-                 "--days", "1", "--auctions-per-day", "3000", "--bidders", "4", "--seed", "2"]) == 0
+                 "--days", "1", "--auctions-per-day", "3000", "--bidders", "4", "--seed", "2",
+                 "--segment", "weavers:lognorm:4:0.6", "--segment", "potters:beta:3:0.4"]) == 0  # the spec's shop kinds
     capsys.readouterr()
     rc = main(["plan", "--experiment", str(SPEC), "--bids", str(lake), "--days", "7", "--auctions-per-day", "2000",
                "--shares", "0.1", "0.3", "--calibration-auctions", "1500", "--target-half-width", "1e-9"])

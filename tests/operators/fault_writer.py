@@ -48,7 +48,8 @@ def partition_tables(experiment_id: str, day: dt.date, rows: int, run_id: str) -
         "estimate": k / 7.0, "std_error": 0.01, "ci_low": k / 7.0 - 0.02, "ci_high": k / 7.0 + 0.02,
         "n_auctions": 1000, "n_bids": 4000, "status": "ok", "confidence_level": 0.95, "cluster": "auction", "payment_rule": "first_price", "floor": 0.0,
         "method_version": "ordstat-1", "run_id": run_id,
-        "computed_at": now, "what_if": False, "effective_share": float("nan")})
+        "computed_at": now, "what_if": False, "effective_share": float("nan"),
+        "segment": None})
     to_date = estimates.assign(first_ds=day - dt.timedelta(days=3), days_used=f"{day - dt.timedelta(days=3)}..{day}",
                                days_left_out="", n_days_used=4, n_days_left_out=0,
                                anytime_low=k / 7.0 - 0.03, anytime_high=k / 7.0 + 0.03, anytime_horizon_auctions=28000)

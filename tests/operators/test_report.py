@@ -265,3 +265,44 @@ def test_the_report_from_postgres_is_the_report_from_duckdb(results, postgres_ur
 
     want, got = page(duck, tmp_path / "duck"), page(pg, tmp_path / "pg")
     assert "tiles" in got and got == want
+
+
+def test_a_segmented_experiment_gets_a_lift_by_segment_view(tmp_path):
+    """Two days of an experiment with two segments through the steps: the report's segment view shows
+    each arm's to-date lift per segment and pooled, the values stored; the rest of the page reads the pooled rows."""
+    import scipy.stats as st
+
+    from counterbid.estimators import SimulatedSegment, simulate_segmented_experiment
+
+    spec = {"experiments": [{**SPEC["experiments"][0], "id": "aisles", "exclude_days": [], "segments": ["kind"],
+                             "checks": {"warmup": {"days": 0}}}]}
+    exp = parse_experiments(spec)["aisles"]
+    kinds = {"glaze": SimulatedSegment(st.gamma(2.5, scale=0.5), 4, 0.5),
+             "yarn": SimulatedSegment(st.lognorm(0.45, scale=1.2), 5, 0.5)}
+    hook = ResultsHook(database=tmp_path / "results.duckdb")
+    for k in range(2):
+        day = START + dt.timedelta(days=k)
+        folder = tmp_path / "bids" / f"ds={day}"
+        folder.mkdir(parents=True)
+        simulate_segmented_experiment(kinds, exp, n_auctions=1200, rng=k, column="kind", first_auction_id=k * 5000) \
+            .to_parquet(folder / "aisles.parquet", index=False)
+        partition.stage_partition(LakeHook(), lake_root=tmp_path / "bids", experiment=exp, ds=day,
+                                  staging_root=tmp_path / "s")
+        staged = StagedPartition.at(tmp_path / "s", exp.id, day)
+        partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
+        partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=tmp_path / "s", run_id=f"r{k}")
+        partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=tmp_path / "s")
+    cum = cumulative_table(hook)
+    view = report.segment_lift_table(cum)
+    assert list(view.index) == ["bold"] and [c.split(" (")[0] for c in view.columns] == ["glaze", "yarn", "pooled"]
+    lift = cum[(cum["metric"] == "revenue_lift_vs_control") & (cum["arm"] == "bold")]
+    for column, seg in zip(view.columns, ["glaze", "yarn", None]):
+        row = lift[lift["segment"].isna()] if seg is None else lift[lift["segment"] == seg]
+        assert view.loc["bold", column] == report._interval(row["estimate"].iloc[0], row["ci_low"].iloc[0],
+                                                             row["ci_high"].iloc[0], pct=True)
+    pooled_auctions = int(cum.loc[(cum["metric"] == "revenue_per_auction") & cum["segment"].isna(), "n_auctions"].max())
+    assert f"pooled ({pooled_auctions:,} auctions)" in view.columns
+    page = write_report(hook, tmp_path / "out").read_text()
+    assert "<h3>Lift by segment</h3>" in page and view.loc["bold", view.columns[0]] in page
+    assert f"{pooled_auctions:,} auctions, each day estimated alone" in page  # the headline counts pooled rows once
+    assert "lift vs control by segment:" in format_cumulative(cum)

@@ -37,6 +37,10 @@ SPEC = {"experiments": [
         {"name": "low", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
         {"name": "steep", "share": 0.3, "position_weights": [0.6, 0.1]},
     ]},
+    {"id": "racks-aisles", "control_arm": "low", "segments": ["aisle", "express"], "arms": [
+        {"name": "low", "share": 0.6, "position_weights": [0.35, 0.15, 0.05]},
+        {"name": "tall", "share": 0.4, "position_weights": [0.30, 0.20, 0.10]},
+    ]},
     {"id": "racks-what-if", "control_arm": "low", "payment_rule": "gsp", "floor": 0.4, "arms": [
         {"name": "low", "share": 0.7, "position_weights": [0.4, 0.2, 0.1]},
         {"name": "steep", "share": 0.3, "position_weights": [0.6, 0.1]},
@@ -86,7 +90,7 @@ def _same_frames(local_result: ArmEstimates, spark_result: ArmEstimates, scenari
         scale = np.where(a == 0, 1.0, np.abs(a))
         largest = max(largest, float(np.max(np.abs(a - b) / scale, initial=0.0)))
     for key in ("cluster", "n_auctions", "n_bids", "n_excluded_auctions", "shards", "payment_rule", "floor", "quality",
-                "strata", "confidence_level", "method_version"):
+                "strata", "confidence_level", "method_version", "segments"):
         assert getattr(spark_result, key) == getattr(local_result, key), key
     assert spark_result.engine == "spark" and local_result.engine == "local"
     print(f"\n[spark vs local] {scenario}: largest relative difference {largest:.3g}")
@@ -137,6 +141,25 @@ def _hive_folder(tmp_path, bids: pd.DataFrame, bid_type: pa.DataType | None = No
             pq.write_table(table, folder / f"ds={day}" / f"part-{part}.parquet")
             k += 1
     return folder
+
+
+def test_segments_of_text_and_nullable_boolean_columns_in_many_shards(spark, tmp_path):
+    """Strata by (n, segment) on Spark's workers: the local engine's rows, per segment and pooled."""
+    from counterbid.estimators import SimulatedSegment, simulate_segmented_experiment
+
+    segments = {"bulk": SimulatedSegment(st.beta(2.0, 5.0, scale=3.0), {3: 0.6, 4: 0.4}, 0.5),
+                "fresh": SimulatedSegment(st.lognorm(0.5, scale=2.0), 4, 0.5)}
+    bids = simulate_segmented_experiment(segments, EXPERIMENTS["racks-aisles"], n_auctions=2000, rng=12,
+                                         column="aisle", bidder_pool=300)
+    express = (bids["auction_id"] % 3).map({0: True, 1: False, 2: None})  # constant within an auction
+    bids["express"] = pd.array(express, dtype="boolean")
+    path = tmp_path / "aisles.parquet"
+    bids.to_parquet(path, index=False)
+    local, local_said, on_spark, spark_said = _both(spark, path, experiment="racks-aisles", max_bids_per_shard=2500)
+    assert local.shards >= 3 and set(local.segments) == {"bulk|(null)", "bulk|false", "bulk|true", "fresh|(null)",
+                                                         "fresh|false", "fresh|true"}
+    _same_frames(local, on_spark, "two segment columns (text, nullable boolean), 6 segments, several shards")
+    assert spark_said == local_said
 
 
 def test_hive_folder_of_several_files_with_decimal_bids(spark, tmp_path):

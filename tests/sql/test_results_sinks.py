@@ -29,7 +29,8 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", to_date=False, status="ok", lev
         row = dict(experiment_id=exp, ds=ds, arm=arm, metric=metric, estimate=est, std_error=0.01,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
                    confidence_level=level, cluster=cluster, payment_rule="first_price", floor=0.0,
-                   method_version="ordstat-1", run_id=run_id, computed_at=NOW, what_if=False, effective_share=np.nan)
+                   method_version="ordstat-1", run_id=run_id, computed_at=NOW, what_if=False, effective_share=np.nan,
+                   segment=None)
         if to_date:
             row.update(first_ds=D1, days_used=f"{D1}..{ds}", days_left_out="", n_days_used=(ds - D1).days + 1,
                        n_days_left_out=0, anytime_low=est - 0.03, anytime_high=est + 0.03,
@@ -204,7 +205,8 @@ def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
             s.execute("results_drop_table", table="counterbid_schema")
     with sink.session() as s:
         assert schema_version(s) == 2  # from the recorded row, or from the columns
-    assert sink.ensure_tables() == [3, 4, 5, 6, 8]  # anytime, warm-up rows, what-if, bidder window, its index (PostgreSQL)
+    # anytime, warm-up rows, what-if, bidder window, segments, the window's index (PostgreSQL)
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6, 7, 8]
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={
         "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
     rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])
@@ -220,10 +222,11 @@ def test_a_database_written_before_versions_at_today_shape_is_recorded_not_rebui
     sink.replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
     with sink.connect() as con:  # as the previous release left it: no version table
         con.execute("drop table main.counterbid_schema")
-    # its columns say version 6 (the last shape unversioned files can have): only later steps run
-    later = [m.version for m in MIGRATIONS if m.version > 6]
+    # its columns say version 7 (segments: the last shape the columns tell apart; version 8 adds only a
+    # PostgreSQL index, created if missing): only later steps run
+    later = [m.version for m in MIGRATIONS if m.version > 7]
     assert sink.ensure_tables() == later
-    assert _table(sink, "counterbid_schema")["version"].tolist() == [6, *later]
+    assert _table(sink, "counterbid_schema")["version"].tolist() == [7, *later]
     assert len(_table(sink, "arm_estimates")) == 4
 
 

@@ -33,7 +33,7 @@ def _rows(exp, ds, *, estimate=1.0, run_id="r1", computed_at=NOW, to_date=False,
                    ci_low=est - 0.02, ci_high=est + 0.02, n_auctions=100, n_bids=400, status=status,
                    confidence_level=level, cluster=cluster, payment_rule=payment_rule, floor=floor,
                    method_version="ordstat-1", run_id=run_id, computed_at=computed_at, what_if=False,
-                   effective_share=np.nan)
+                   effective_share=np.nan, segment=None)
         if to_date:
             row.update(first_ds=D1, days_used=f"{D1}..{ds}" if ds != D1 else str(D1), days_left_out="",
                        n_days_used=(ds - D1).days + 1, n_days_left_out=0, anytime_low=est - 0.03,

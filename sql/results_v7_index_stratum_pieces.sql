@@ -1,0 +1,6 @@
+-- Schema version 7, step 5 of 5 for stratum_pieces: its key, segment included (experiment_id, ds, n_bidders, shard, segment).
+-- A unique index on expressions: the pooled rows (segment null) are one key value, a segment
+-- labelled '' another; a primary key could not hold the null segment.
+create unique index stratum_pieces_key on {{ schema }}.stratum_pieces (
+    experiment_id, ds, n_bidders, shard, (segment is null), coalesce(segment, '')
+)
