@@ -435,6 +435,9 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
+    # a segmented experiment needs one Gram form per segment as well as the pooled one; until the
+    # executors build those, its bidder sums travel with the pieces (driver memory ~ the day's bidders)
+    bidder_gram = bidder_gram and not experiment.segments
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
