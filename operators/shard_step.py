@@ -51,20 +51,30 @@ def _wide_sums(pieces: list[StratumPiece]) -> pa.Table | None:
         if p.bidder_ids is None:
             continue
         columns = {"n_bidders": pa.array(np.full(p.bidder_ids.size, p.n_bidders, dtype=np.int64)),
+                   "segment": pa.array([p.key.segment] * p.bidder_ids.size, type=pa.string()),
                    "bidder_id": pa.array(ids_as_text(p.bidder_ids), type=pa.string())}
         columns |= {f"sum_{c}": pa.array(p.bidder_sums[:, c]) for c in range(p.bidder_sums.shape[1])}
         parts.append(pa.table(columns))
     return pa.concat_tables(parts, promote_options="default") if parts else None
 
 
+def _stratum_rows(wide: pa.Table, piece: StratumPiece):
+    """The mask of ``piece``'s rows in the wide table: its number of bidders and its segment (null: unsegmented)."""
+    same_n = pc.equal(wide.column("n_bidders"), piece.n_bidders)
+    segment = wide.column("segment")
+    same_segment = pc.is_null(segment) if piece.key.segment is None else pc.equal(segment, piece.key.segment)
+    return pc.and_(same_n, pc.fill_null(same_segment, False))
+
+
 def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[StratumPiece]:
     """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text)."""
     out = []
     for p in pieces:
-        rows = wide.filter(pc.equal(wide.column("n_bidders"), p.n_bidders))
+        rows = wide.filter(_stratum_rows(wide, p))
         names = [f"sum_{c}" for c in range(len(p.sum_labels))]
         if rows.num_rows == 0 or any(n not in rows.column_names or rows.column(n).null_count for n in names):
-            raise InputError(f"{where}: no bidder sums for the {p.n_bidders}-bidder stratum; "
+            segment = "" if p.key.segment is None else f" of segment {p.key.segment!r}"
+            raise InputError(f"{where}: no bidder sums for the {p.n_bidders}-bidder stratum{segment}; "
                              "run its 'estimate_shard' task again")
         ids = rows.column("bidder_id").to_numpy(zero_copy_only=False)
         sums = np.column_stack([rows.column(n).to_numpy() for n in names])

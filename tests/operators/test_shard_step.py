@@ -199,3 +199,37 @@ def test_the_shard_operator_names_the_shard_when_it_fails(lake, experiment, tmp_
         run(1)
     with pytest.raises(AirflowFailException, match="`shard` must be a whole number; got 'one'"):
         run("one")
+
+
+def test_segmented_shards_keep_each_segments_bidder_sums(tmp_path):
+    """Several segments in one shard: each piece gets back its own segment's bidder sums.
+
+    The wide file holds every stratum of a shard; two segments with the same number of bidders
+    share a shard, so a stratum read back by number of bidders alone would sum the other segment's
+    bidders into its variance. Bidder clustering is forced so the sums are used; the single task is
+    the reference (1e-12).
+    """
+    import scipy.stats as st
+
+    from counterbid.estimators import SimulatedSegment
+
+    spec = {"experiments": [dict(SPEC["experiments"][0], id="lamps", segments=["aisle"])]}
+    lamps = parse_experiments(spec)["lamps"]
+    aisles = {"upper": SimulatedSegment(st.gamma(3.0, scale=0.4), 4, 0.5),
+              "lower": SimulatedSegment(st.lognorm(0.5, scale=1.2), 4, 0.5)}
+    root = tmp_path / "lake" / "bids"
+    write_bid_lake(root, [lamps], start=START, days=1, auctions_per_day=2400, seed=31, segments=aisles)
+    hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+    stage = tmp_path / "stage"
+    staged, shards = _checked_day(root, lamps, stage, START, 2500)
+    assert shards == 4
+    partition.estimate_partition(hook, experiment=lamps, ds=START, staging_root=stage, run_id="r", cluster="bidder")
+    want = _outputs(staged)
+    for k in range(shards):
+        partition.estimate_partition_shard(lamps, ds=START, staging_root=stage, shard=k, cluster="bidder")
+    partition.estimate_partition(hook, experiment=lamps, ds=START, staging_root=stage, run_id="r", cluster="bidder",
+                                 shard_tasks=True)
+    day = want["estimates_day"]
+    revenue = day["metric"] == "revenue_per_auction"
+    assert set(day["segment"].dropna()) == {"upper", "lower"} and set(day.loc[revenue, "cluster"]) == {"bidder"}
+    _assert_same(_outputs(staged), want)
