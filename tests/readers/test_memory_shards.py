@@ -132,3 +132,39 @@ def test_budget_setting(monkeypatch):
     monkeypatch.setenv(MEMORY_BUDGET_ENV, "lots")
     with pytest.raises(InputError, match=f"^{MEMORY_BUDGET_ENV} must be a whole number of MiB >= 0; got 'lots'$"):
         fits_in_memory(1)
+
+
+def _segmented_and_scaled_logs():
+    """The spec's auction-level columns travel through both splits: segments, then scale covariates."""
+    from counterbid.estimators import SimulatedSegment, simulate_segmented_experiment
+
+    base = SPEC["experiments"][0]
+    spec = {"experiments": [dict(base, id="crates-aisles", segments=["aisle"]),
+                            dict(base, id="crates-scaled", scale_covariates=["crate_size"])]}
+    exps = parse_experiments(spec)
+    aisles = {"dry": SimulatedSegment(st.gamma(3.0, scale=0.4), 3, 0.5),
+              "cold": SimulatedSegment(st.lognorm(0.5, scale=1.2), {3: 0.5, 5: 0.5}, 0.5)}
+    segmented = simulate_segmented_experiment(aisles, exps["crates-aisles"], n_auctions=1800, rng=8, column="aisle",
+                                              bidder_pool=700)
+    scaled = simulate_experiment(st.lognorm(0.5, scale=0.8), exps["crates-scaled"], n_bidders={3: 0.6, 5: 0.4},
+                                 n_auctions=1800, rng=9, bidder_pool=700,
+                                 scale_covariates={"crate_size": (0.5, st.norm(0.0, 1.0))})
+    return [(exps["crates-aisles"], segmented), (exps["crates-scaled"], scaled)]
+
+
+@pytest.mark.parametrize("which", [0, 1], ids=["segments", "scale_covariates"])
+def test_in_memory_split_reads_the_spec_auction_columns(tmp_path, monkeypatch, which):
+    exp, bids = _segmented_and_scaled_logs()[which]
+    path = tmp_path / "log.parquet"
+    bids.to_parquet(path, index=False)
+    monkeypatch.setenv(MEMORY_BUDGET_ENV, "1200")
+    mem = estimate_bid_log(path, exp, max_bids_per_shard=MAX, cluster="bidder")
+    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX)) as shards:
+        found = pieces_by_shard(shards, exp, cluster="bidder", source=str(path))
+    plain = combine_pieces(found.pieces, exp, cluster="bidder", n_excluded_auctions=found.n_excluded_auctions)
+    assert mem.shards == 5 and (set(mem.segments) == {"dry", "cold"} if which == 0 else not mem.segments)
+    keys = ["arm", "segment", "metric", "n_auctions", "n_bids", "status"]
+    assert mem.table[keys].equals(plain.table[keys])
+    for col in ("estimate", "std_error", "ci_low", "ci_high"):
+        np.testing.assert_allclose(mem.table[col].to_numpy(float), plain.table[col].to_numpy(float), rtol=1e-12,
+                                   atol=0, err_msg=col)
