@@ -15,7 +15,7 @@ import pandas as pd
 
 from ._validate import check_experiment
 from .bid_contract import BID_CONTRACT, INTEGER_RANGE
-from .covariate_columns import auction_covariates
+from .covariate_columns import auction_covariates, check_constant_within_auctions
 from .errors import InputError, no_pieces_error
 from .spec import Experiment
 
@@ -467,16 +467,8 @@ def _segments(bids: pd.DataFrame, experiment: Experiment, auction: np.ndarray, c
         if name not in bids.columns:
             raise InputError(f"{source}: segment column {name!r} of experiment {experiment.id!r} is missing")
         codes, names = _segment_column(bids[name], name, rows, source)
-        first = np.empty(int(auction.max()) + 1, dtype=codes.dtype)
-        first[auction[::-1]] = codes[::-1]  # the first bid of each auction
-        split = np.flatnonzero(first[auction] != codes)
-        if split.size:
-            i = int(split[0])
-            j = int(np.flatnonzero(auction == auction[i])[0])
-            raise InputError(
-                f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of segment column {name!r} "
-                f"({names[codes[j]]!r} at row {_row(rows, j)}, {names[codes[i]]!r} at row {_row(rows, i)}); "
-                "a segment must be constant within an auction")
+        check_constant_within_auctions(codes, auction, bids, rows, source=source, kind="segment", name=name,
+                                       shown=lambda k: repr(names[codes[k]]))
         if combined is None:
             combined, labels = codes.astype(np.int64), names
         else:

@@ -6,23 +6,45 @@ one line naming the column and the row (or the auction and its two rows).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["auction_covariates"]
+__all__ = ["auction_covariates", "check_constant_within_auctions"]
 
 
 def _row(rows: np.ndarray | None, i: int) -> int:
+    """Row ``i`` of the validated frame as a row of the caller's frame (``None``: the same)."""
     return int(i if rows is None else rows[i])
 
 
 def _value(x) -> str:
     """A cell value as it reads in an error line (numpy scalars unwrapped)."""
     return repr(x.item() if isinstance(x, np.generic) else x)
+
+
+def check_constant_within_auctions(values: np.ndarray, auction: np.ndarray, bids: pd.DataFrame,
+                                   rows: np.ndarray | None, *, source: str, kind: str, name: str,
+                                   shown: Callable[[int], str]) -> None:
+    """Refuse an auction-level column whose value changes within an auction, in one line.
+
+    The line names the first row whose value differs from its auction's first row, that auction,
+    both rows and both values (``shown(k)``: the value of row ``k`` as it reads); ``kind`` is what
+    the column is ("segment", "scale covariate").
+    """
+    first = np.empty(int(auction.max()) + 1, dtype=values.dtype)
+    first[auction[::-1]] = values[::-1]  # the first row of each auction
+    split = np.flatnonzero(first[auction] != values)
+    if split.size:
+        i = int(split[0])
+        j = int(np.flatnonzero(auction == auction[i])[0])
+        raise InputError(
+            f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of {kind} column {name!r} "
+            f"({shown(j)} at row {_row(rows, j)}, {shown(i)} at row {_row(rows, i)}); "
+            f"a {kind} must be constant within an auction")
 
 
 def _column(col: pd.Series, name: str, rows: np.ndarray | None, source: str) -> np.ndarray:
@@ -76,15 +98,7 @@ def auction_covariates(bids: pd.DataFrame, names: Sequence[str], auction: np.nda
         if name not in bids.columns:
             raise InputError(f"{source}: scale covariate column {name!r} of experiment {experiment_id!r} is missing")
         x = _column(bids[name], name, rows, source)
-        first = np.empty(int(auction.max()) + 1)
-        first[auction[::-1]] = x[::-1]  # the first row of each auction
-        split = np.flatnonzero(first[auction] != x)
-        if split.size:
-            i = int(split[0])
-            j = int(np.flatnonzero(auction == auction[i])[0])
-            raise InputError(
-                f"{source}: auction {_value(bids['auction_id'].iloc[i])} has two values of scale covariate column {name!r} "
-                f"({float(x[j])!r} at row {_row(rows, j)}, {float(x[i])!r} at row {_row(rows, i)}); "
-                "a scale covariate must be constant within an auction")
+        check_constant_within_auctions(x, auction, bids, rows, source=source, kind="scale covariate", name=name,
+                                       shown=lambda k: repr(float(x[k])))
         out[:, k] = x
     return out
