@@ -163,11 +163,16 @@ WHAT_IF_NOTE = ("These layouts did not run: their numbers come from the same bid
                 "(docs/method.md, 'Layouts that did not run').")
 
 
+def _rows_where(rows: pd.DataFrame, column: str, test) -> pd.Series:
+    """``test(rows[column])`` as a row mask; no row when the rows predate ``column``."""
+    if column not in rows.columns:
+        return pd.Series(False, index=rows.index)
+    return test(rows[column])
+
+
 def _is_what_if(rows: pd.DataFrame) -> pd.Series:
     """Rows of layouts that did not run (null on rows stored before schema version 5: arms)."""
-    if "what_if" not in rows.columns:
-        return pd.Series(False, index=rows.index)
-    return rows["what_if"].fillna(False).astype(bool)
+    return _rows_where(rows, "what_if", lambda col: col.fillna(False).astype(bool))
 
 
 def what_if_table(rows: pd.DataFrame) -> pd.DataFrame:
@@ -191,9 +196,7 @@ SEGMENT_NOTE = ("Each segment's lift is that segment's auctions estimated apart 
 
 def _by_segment(rows: pd.DataFrame) -> pd.Series:
     """Rows of one segment (null segment: pooled rows, and every row stored before schema version 7)."""
-    if "segment" not in rows.columns:
-        return pd.Series(False, index=rows.index)
-    return rows["segment"].notna()
+    return _rows_where(rows, "segment", lambda col: col.notna())
 
 
 def segment_lift_table(rows: pd.DataFrame) -> pd.DataFrame:
