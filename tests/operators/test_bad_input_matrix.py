@@ -63,7 +63,8 @@ def _failed(run, step: str) -> None:
     states = {t: s for t, _, s, _ in run.tasks}
     assert run.state == "failed"
     assert states[f"experiment.{step}"] == "failed", states
-    assert states["experiment.write"] in ("upstream_failed", "failed"), states
+    # with the mapped shard tasks between them, a write after a failed step ends skipped or upstream_failed
+    assert states["experiment.write"] in ("upstream_failed", "failed", "skipped"), states
 
 
 def _nothing_written(conf, experiment_id="tiles") -> None:
