@@ -87,11 +87,11 @@ def _check_stored_window(hook, exp):
     base = hook.bidder_window(experiment_id=exp.id)
     if base is None:
         return None
-    days = [dt.date.fromisoformat(d) for d in str(base[0]["days_used"]).split(",")]
+    days = [dt.date.fromisoformat(d) for d in str(base[0]["days_used"].iloc[0]).split(",")]
     stored = hook.stored_piece_frames(experiment_id=exp.id, days=days, tables=list(partition.PIECE_TABLES.values()))
     rebuilt = gram_of(bidder_totals(window_state.pieces_of_rows(stored)))
-    assert int(base[0]["n_distinct_bidders"]) == rebuilt.n_bidders
-    kept = window_state._gram_of_rows(base[1], rebuilt.n_bidders, rebuilt.bid_exponent, exp)
+    assert int(base[0]["n_distinct_bidders"].iloc[0]) == rebuilt.n_bidders
+    kept = window_state._gram_of_rows(base[1][base[1]["segment"].isna()], rebuilt.n_bidders, rebuilt.bid_exponent, exp)
     np.testing.assert_allclose(kept.gram, rebuilt.gram, rtol=1e-12, atol=0)
     return days
 

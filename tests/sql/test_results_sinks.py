@@ -206,7 +206,7 @@ def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
     with sink.session() as s:
         assert schema_version(s) == 2  # from the recorded row, or from the columns
     # anytime, warm-up rows, what-if, bidder window, segments, the window's index (PostgreSQL)
-    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6, 7, 8]
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6, 7, 8, 9]
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={
         "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
     rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])
@@ -222,11 +222,11 @@ def test_a_database_written_before_versions_at_today_shape_is_recorded_not_rebui
     sink.replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
     with sink.connect() as con:  # as the previous release left it: no version table
         con.execute("drop table main.counterbid_schema")
-    # its columns say version 7 (segments: the last shape the columns tell apart; version 8 adds only a
-    # PostgreSQL index, created if missing): only later steps run
-    later = [m.version for m in MIGRATIONS if m.version > 7]
+    # its columns say version 9 (the running bidder window keyed by segment: the last shape the columns
+    # tell apart; version 8 adds only a PostgreSQL index): only later steps run
+    later = [m.version for m in MIGRATIONS if m.version > 9]
     assert sink.ensure_tables() == later
-    assert _table(sink, "counterbid_schema")["version"].tolist() == [7, *later]
+    assert _table(sink, "counterbid_schema")["version"].tolist() == [9, *later]
     assert len(_table(sink, "arm_estimates")) == 4
 
 
