@@ -317,12 +317,16 @@ class ResultsHook(BaseHook):
 
         return self._with_retry(write, what="write")
 
-    def bidder_window(self, *, experiment_id: str) -> tuple[pd.Series, pd.DataFrame] | None:
-        """The stored running bidder window of an experiment (its row, and its Gram rows), or ``None``."""
-        row = self._fetch_if_present("bidder_window", "bidder_window_select", {"experiment_id": experiment_id})
-        if row is None or row.empty:
+    def bidder_window(self, *, experiment_id: str) -> tuple[pd.DataFrame, pd.DataFrame] | None:
+        """The stored running bidder window of an experiment, or ``None``.
+
+        Returns its rows (the pooled one, ``segment`` null, first; then one per segment) and its
+        Gram rows (``segment``, ``arm_i``, ``arm_j``, ``value``).
+        """
+        rows = self._fetch_if_present("bidder_window", "bidder_window_select", {"experiment_id": experiment_id})
+        if rows is None or rows.empty:
             return None
-        return row.iloc[0], self.fetch_df("bidder_window_gram_select", {"experiment_id": experiment_id})
+        return rows, self.fetch_df("bidder_window_gram_select", {"experiment_id": experiment_id})
 
     def bidder_window_totals(self, *, experiment_id: str, today: pa.Table) -> pd.DataFrame:
         """Stored running totals of the bidders in ``today`` (rows of ``bidder_window_totals``), joined in SQL."""

@@ -430,7 +430,7 @@ def estimate_partition(
             to_date_cluster = "auction"
         results["to_date"] = combine_pieces(to_date_pieces, experiment, confidence_level=confidence_level,
                                             cluster=to_date_cluster, source=f"{experiment.id} to {ds}",
-                                            bidder_gram=inputs.gram)
+                                            bidder_gram=inputs.gram, segment_grams=inputs.segment_grams or None)
         horizon = _horizon_auctions(experiment, to_date_pieces, len(window.used))
     tables = {}
     for span, result in results.items():

@@ -178,6 +178,10 @@ MIGRATIONS = (
     Migration(8, "an index on the running bidder totals by experiment and bidder id (PostgreSQL): a day reads and "
                  "replaces its own bidders' rows without scanning the experiment's",
               (Statement("results_v8_index_bidder_window_totals", dialects=("postgres",)),)),
+    Migration(9, "the running bidder window is kept per segment too (segment null: the pooled window), keyed as in "
+                 "version 7; a segmented experiment's to-date rows read only today's bidders",
+              _keyed_rebuild(9, "bidder_window") + _keyed_rebuild(9, "bidder_window_gram")
+              + (Statement("results_v9_add_bidder_window_totals_segment"),)),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version

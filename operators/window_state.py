@@ -12,6 +12,10 @@ that lost or regained a day (burn-in, exclusion, a failed warm-up or drift check
 unit. A day's write drops a stored window that covers it unless it brings the window's update,
 and an update whose base changed since its estimate step is dropped too, so the stored window
 always equals what its days' stored pieces give.
+
+A segmented experiment's window holds, beside the pooled totals (``segment`` null), the same
+totals of each segment's pieces, so its per-segment to-date rows take the same route
+(``combine_pieces(..., segment_grams=...)``; docs/method.md "Segments").
 """
 
 from __future__ import annotations
@@ -19,7 +23,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -58,21 +62,23 @@ class ToDateInputs:
     ----------
     pieces : list of StratumPiece
     gram : BidderGram or None
-        The window's bidder totals (``combine_pieces(..., bidder_gram=gram)``).
+        The window's bidder totals, every segment together (``combine_pieces(..., bidder_gram=gram)``).
     write : WindowWrite or None
         The running window to store with the day.
     route : str
         ``'extended'`` (today's bidders only), ``'stored'`` (today left out: the stored window as it
         is), ``'rebuilt'`` (from every stored piece), or
-        ``'by_auction'`` (no bidder sums needed or available), or ``'segmented'`` (an experiment
-        with segments: every stored piece with its bidder sums, no running window; its per-segment
-        rows would need a window per segment).
+        ``'by_auction'`` (no bidder sums needed or available).
+    segment_grams : dict of str to BidderGram
+        The same per segment label of a segmented experiment
+        (``combine_pieces(..., segment_grams=segment_grams)``); empty otherwise.
     """
 
     pieces: list[StratumPiece]
     gram: BidderGram | None
     write: WindowWrite | None
     route: str
+    segment_grams: dict[str, BidderGram] = field(default_factory=dict)
 
 
 def pieces_of_rows(frames: Mapping[str, pd.DataFrame | None], *, without_sums: bool = False) -> list[StratumPiece]:
@@ -127,36 +133,85 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     window = stored + [p.without_bidder_sums() for p in mine]
     if not window or not with_sums:
         return ToDateInputs(window, None, None, "by_auction")
-    if experiment.segments:  # per-segment rows need each segment's bidder sums: no running window (yet)
-        full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before,
-                                        tables=list(PIECE_TABLES.values()))
-        return ToDateInputs(pieces_of_rows(full) + mine, None, None, "segmented")
     exponent = max(p.bid_exponent for p in window)
     days_text = ",".join(d.isoformat() for d in sorted([*used_before, *([ds] if today_in_window else [])]))
     base = hook.bidder_window(experiment_id=experiment.id)
-    base_days = None if base is None else str(base[0]["days_used"])
+    base_days = None if base is None else str(base[0]["days_used"].iloc[0])
     before_text = ",".join(d.isoformat() for d in sorted(used_before))
-    if base is not None and used_before and base_days == before_text and int(base[0]["bid_exponent"]) == exponent:
-        gram = _gram_of_rows(base[1], int(base[0]["n_distinct_bidders"]), exponent, experiment)
+    if base is not None and used_before and base_days == before_text \
+            and int(base[0]["bid_exponent"].iloc[0]) == exponent and _keys_of(base[0]) == _stored_keys(strata):
+        grams = _grams_of_rows(base[0], base[1], exponent, experiment)
         if not mine:  # today left out: the stored window is the window
-            return ToDateInputs(window, gram, None, "stored")
-        totals = bidder_totals(mine, bid_exponent=exponent)
-        ids = pa.table({"experiment_id": pa.array([experiment.id] * len(totals.bidder_ids), pa.string()),
-                        "bidder_id": pa.array(totals.bidder_ids, pa.string()),
-                        "arm": pa.array([""] * len(totals.bidder_ids), pa.string()),
-                        "value": pa.array(np.zeros(len(totals.bidder_ids)), pa.float64())})  # one row a bidder
-        found = hook.bidder_window_totals(experiment_id=experiment.id, today=ids)
-        before, seen = _before(found, totals, experiment)
-        gram, after = extend_gram(gram, totals, before, seen)
-        write = _window_write(experiment, "extend", base_days, days_text, ds, gram, totals.bidder_ids, after, run_id,
-                              computed_at)
-        return ToDateInputs(window, gram, write, "extended")
+            return _inputs(window, grams, None, "stored")
+        today_totals = _totals_by_key(mine, exponent)
+        found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
+        after = {}
+        for key, totals in today_totals.items():
+            before, seen = _before(_of_key(found, key), totals, experiment)
+            start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
+            grams[key], sums = extend_gram(start, totals, before, seen)
+            after[key] = (totals.bidder_ids, sums)
+        write = _window_write(experiment, "extend", base_days, days_text, ds, grams, after, run_id, computed_at)
+        return _inputs(window, grams, write, "extended")
     full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
-    totals = bidder_totals(pieces_of_rows(full) + mine, bid_exponent=exponent)
-    gram = gram_of(totals)
-    write = _window_write(experiment, "replace", None, days_text, ds, gram, totals.bidder_ids, totals.sums, run_id,
-                          computed_at)
-    return ToDateInputs(window, gram, write, "rebuilt")
+    totals = _totals_by_key(pieces_of_rows(full) + mine, exponent)
+    grams = {key: gram_of(t) for key, t in totals.items()}
+    write = _window_write(experiment, "replace", None, days_text, ds, grams,
+                          {key: (t.bidder_ids, t.sums) for key, t in totals.items()}, run_id, computed_at)
+    return _inputs(window, grams, write, "rebuilt")
+
+
+def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
+    """Pooled form (key ``None``) as ``gram``, the segments' as ``segment_grams``."""
+    return ToDateInputs(window, grams[None], write, route, {k: g for k, g in grams.items() if k is not None})
+
+
+def _totals_by_key(pieces: list[StratumPiece], exponent: int) -> dict[str | None, WindowTotals]:
+    """Bidder totals of every piece (key ``None``) and of each segment's pieces (key: its label)."""
+    out = {None: bidder_totals(pieces, bid_exponent=exponent)}
+    for label in sorted({p.key.segment for p in pieces if p.key.segment is not None}):
+        out[label] = bidder_totals([p for p in pieces if p.key.segment == label], bid_exponent=exponent)
+    return out
+
+
+def _segment_of(value) -> str | None:
+    return None if value is None or pd.isna(value) else str(value)
+
+
+def _keys_of(rows: pd.DataFrame) -> set[str | None]:
+    return {_segment_of(v) for v in rows["segment"]}
+
+
+def _stored_keys(strata: pd.DataFrame | None) -> set[str | None]:
+    """The window keys the stored pieces need: pooled, and each segment of theirs."""
+    return {None} | ({_segment_of(v) for v in strata["segment"]} - {None} if strata is not None else set())
+
+
+def _of_key(frame: pd.DataFrame, key: str | None) -> pd.DataFrame:
+    keys = [_segment_of(v) for v in frame["segment"]] if "segment" in frame else []
+    return frame[[k == key for k in keys]] if len(frame) else frame
+
+
+def _empty_gram(size: int, exponent: int) -> BidderGram:
+    """The form of a segment with no bidder in the stored window yet."""
+    return BidderGram(gram=np.zeros((size, size)), n_bidders=0, bid_exponent=exponent)
+
+
+def _grams_of_rows(rows: pd.DataFrame, gram_rows: pd.DataFrame, exponent: int, experiment: Experiment
+                   ) -> dict[str | None, BidderGram]:
+    """The stored forms by key (``None``: pooled; a segment label)."""
+    return {_segment_of(seg): _gram_of_rows(_of_key(gram_rows, _segment_of(seg)), int(n), exponent, experiment)
+            for seg, n in zip(rows["segment"], rows["n_distinct_bidders"])}
+
+
+def _lookup_rows(experiment: Experiment, totals: Mapping[str | None, WindowTotals]) -> pa.Table:
+    """One row per (segment, bidder) of today: what the stored totals are joined on."""
+    keys = [(key, b) for key, t in totals.items() for b in t.bidder_ids]
+    return pa.table({"experiment_id": pa.array([experiment.id] * len(keys), pa.string()),
+                     "segment": pa.array([k for k, _ in keys], pa.string()),
+                     "bidder_id": pa.array([str(b) for _, b in keys], pa.string()),
+                     "arm": pa.array([""] * len(keys), pa.string()),
+                     "value": pa.array(np.zeros(len(keys)), pa.float64())})
 
 
 def _labels(experiment: Experiment) -> list[str]:
@@ -173,11 +228,12 @@ def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment:
     return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=exponent)
 
 
-def _totals_rows(experiment: Experiment, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
+def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
     labels = _labels(experiment)
     n = len(ids)
     return pa.table({
         "experiment_id": pa.array(np.full(n * len(labels), experiment.id, dtype=object), pa.string()),
+        "segment": pa.array([segment] * (n * len(labels)), pa.string()),
         "bidder_id": pa.array(np.repeat(np.asarray(ids, dtype=object), len(labels)), pa.string()),
         "arm": pa.array(np.tile(np.asarray(labels, dtype=object), n), pa.string()),
         "value": pa.array(sums.ravel(), pa.float64()),
@@ -198,18 +254,23 @@ def _before(found: pd.DataFrame, totals: WindowTotals, experiment: Experiment) -
 
 
 def _window_write(experiment: Experiment, mode: str, base_days: str | None, days_text: str, ds: dt.date,
-                  gram: BidderGram, ids: np.ndarray, sums: np.ndarray, run_id: str, computed_at) -> WindowWrite:
+                  grams: Mapping[str | None, BidderGram], totals: Mapping[str | None, tuple[np.ndarray, np.ndarray]],
+                  run_id: str, computed_at) -> WindowWrite:
+    """The window's rows: per key (``None``: pooled; a segment label) its description, form and totals."""
     labels = _labels(experiment)
     last = max(parse_day(d) for d in days_text.split(","))
+    when = pd.Timestamp(computed_at).to_pydatetime()
     summary = pa.Table.from_pylist([{
-        "experiment_id": experiment.id, "ds": last, "days_used": days_text, "n_distinct_bidders": int(gram.n_bidders),
-        "bid_exponent": int(gram.bid_exponent), "run_id": run_id, "computed_at": pd.Timestamp(computed_at).to_pydatetime()}])
-    pairs = [(a, b, float(gram.gram[i, j])) for i, a in enumerate(labels) for j, b in enumerate(labels)]
-    gram_rows = pa.Table.from_pylist([{"experiment_id": experiment.id, "arm_i": a, "arm_j": b, "value": v}
-                                      for a, b, v in pairs])
+        "experiment_id": experiment.id, "segment": key, "ds": last, "days_used": days_text,
+        "n_distinct_bidders": int(gram.n_bidders), "bid_exponent": int(gram.bid_exponent), "run_id": run_id,
+        "computed_at": when} for key, gram in grams.items()])
+    gram_rows = pa.Table.from_pylist([{"experiment_id": experiment.id, "segment": key, "arm_i": a, "arm_j": b,
+                                       "value": float(gram.gram[i, j])}
+                                      for key, gram in grams.items()
+                                      for i, a in enumerate(labels) for j, b in enumerate(labels)])
+    totals_rows = pa.concat_tables([_totals_rows(experiment, key, ids, sums) for key, (ids, sums) in totals.items()])
     return WindowWrite(mode=mode, base_days=base_days, tables={
-        "bidder_window": summary, "bidder_window_gram": gram_rows,
-        "bidder_window_totals": _totals_rows(experiment, ids, sums)})
+        "bidder_window": summary, "bidder_window_gram": gram_rows, "bidder_window_totals": totals_rows})
 
 
 def stage_window_write(write: WindowWrite | None, folder: Path) -> None:

@@ -1,5 +1,7 @@
--- The stored running bidder window of one experiment (no row: none kept).
+-- The stored running bidder window of one experiment: the pooled row (segment null) first, then one
+-- row per segment of a segmented experiment (no row: none kept).
 select
-    experiment_id, ds, days_used, n_distinct_bidders, bid_exponent
+    experiment_id, segment, ds, days_used, n_distinct_bidders, bid_exponent
 from {{ schema }}.bidder_window
 where experiment_id = $experiment_id
+order by segment nulls first

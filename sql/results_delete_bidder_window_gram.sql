@@ -1,4 +1,4 @@
--- Drop one experiment's running bidder window (bidder_window_gram): before a rebuild, or when it no longer
+-- Drop one experiment's running bidder window (bidder_window_gram), pooled and every segment: before a rebuild, or when it no longer
 -- matches the stored pieces.
 delete from {{ schema }}.bidder_window_gram
 where experiment_id = $experiment_id

@@ -27,6 +27,7 @@ LABELS = ["control", "wide", "five", "_mixture"]
 def _rows(experiment: str, ids: np.ndarray, rng: np.random.Generator) -> pa.Table:
     n = len(ids)
     return pa.table({"experiment_id": pa.array([experiment] * (n * len(LABELS)), pa.string()),
+                     "segment": pa.array([None] * (n * len(LABELS)), pa.string()),  # the pooled window
                      "bidder_id": pa.array(np.repeat(ids, len(LABELS)), pa.string()),
                      "arm": pa.array(np.tile(np.array(LABELS, dtype=object), n), pa.string()),
                      "value": pa.array(rng.random(n * len(LABELS)), pa.float64())})

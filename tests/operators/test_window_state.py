@@ -9,6 +9,12 @@ relative (exact identities; the running form's rounding is of order 1e-16 times 
 form to a lift's variance), and the stored window must equal a rebuild from the stored pieces.
 What it can catch: a day counted twice or missing after a rerun or a left-out day, a returning
 bidder counted as new, a stored window that no longer matches its days' pieces, either sink's SQL.
+
+A segmented experiment (two segments; the second starts on day 2) runs the same days: its pooled
+and per-segment to-date rows must equal the full recombination to 1e-12, and the stored window of
+every key (pooled, each segment) its rebuild from the stored pieces. What that adds: a segment's
+totals mixed with another's or with the pooled ones (a bidder bids in both segments), a segment
+new to the window in the daily update, the segment key of the window tables' SQL.
 """
 
 from __future__ import annotations
@@ -16,10 +22,14 @@ from __future__ import annotations
 import datetime as dt
 
 import numpy as np
+import pandas as pd
 import pytest
 import scipy.stats as st
 
-from counterbid.estimators import bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment
+from counterbid.estimators import (
+    SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment,
+    simulate_segmented_experiment,
+)
 from counterbid.operators import partition, window_state
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
@@ -87,11 +97,11 @@ def _check_stored_window(hook, exp):
     base = hook.bidder_window(experiment_id=exp.id)
     if base is None:
         return None
-    days = [dt.date.fromisoformat(d) for d in str(base[0]["days_used"]).split(",")]
+    days = [dt.date.fromisoformat(d) for d in str(base[0]["days_used"].iloc[0]).split(",")]
     stored = hook.stored_piece_frames(experiment_id=exp.id, days=days, tables=list(partition.PIECE_TABLES.values()))
     rebuilt = gram_of(bidder_totals(window_state.pieces_of_rows(stored)))
-    assert int(base[0]["n_distinct_bidders"]) == rebuilt.n_bidders
-    kept = window_state._gram_of_rows(base[1], rebuilt.n_bidders, rebuilt.bid_exponent, exp)
+    assert int(base[0]["n_distinct_bidders"].iloc[0]) == rebuilt.n_bidders
+    kept = window_state._gram_of_rows(base[1][base[1]["segment"].isna()], rebuilt.n_bidders, rebuilt.bid_exponent, exp)
     np.testing.assert_allclose(kept.gram, rebuilt.gram, rtol=1e-12, atol=0)
     return days
 
@@ -137,3 +147,87 @@ def test_a_write_without_the_window_drops_a_window_that_covers_its_day(lake, tmp
     # the next day rebuilds from the stored pieces
     assert _run_day(hook, lake, exp, stage, DAYS[2], "r-3")["bidder_window"] == "rebuilt"
     assert _check_stored_window(hook, exp) == DAYS[:2]
+
+
+# -- a segmented experiment: pooled and per-segment windows -------------------------------------
+#: Two invented stalls of one market, of different value scales and auction sizes; the bidder ids of
+#: both come from one pool, so a bidder's totals differ between the pooled window and a segment's.
+#: Day 1 has only the first stall: the second's window starts on day 2 (from nothing, in the daily update).
+STALLS = {
+    "awning": SimulatedSegment(st.gamma(3.0, scale=0.4), 4, 0.55),
+    "kiosk": SimulatedSegment(st.lognorm(0.6, scale=1.5), {3: 0.5, 5: 0.5}, 0.45),
+}
+
+
+def _segmented_spec():
+    return parse_experiments({"experiments": [{
+        "id": "stalls", "control_arm": "flat", "start": str(START), "exclude_days": [str(DAYS[2])],
+        "segments": ["stall"], "checks": {"warmup": {"days": 0}},
+        "arms": [{"name": "flat", "share": 0.55, "position_weights": [0.4, 0.2, 0.1]},
+                 {"name": "steep", "share": 0.45, "position_weights": [0.5, 0.18, 0.04]}]}]})["stalls"]
+
+
+@pytest.fixture(scope="module")
+def segmented_lake(tmp_path_factory):
+    root = tmp_path_factory.mktemp("lake") / "bids"
+    exp = _segmented_spec()
+    for k, day in enumerate(DAYS):
+        stalls = {"awning": STALLS["awning"]} if k == 0 else STALLS  # shares are normalised
+        bids = simulate_segmented_experiment(stalls, exp, n_auctions=600, rng=70 + k, column="stall",
+                                             bidder_pool=150, first_auction_id=10_000 * k).drop(columns=["ds"])
+        bids["bidder_id"] = "stand-" + bids["bidder_id"].astype(str)
+        (root / f"ds={day}").mkdir(parents=True)
+        bids.to_parquet(root / f"ds={day}" / "stalls.parquet", index=False)
+    return root
+
+
+def _check_segmented(hook, exp, day, days_used):
+    """To-date rows (pooled and per segment) = the full recombination; each stored window = its rebuild."""
+    stored = hook.stored_piece_frames(experiment_id=exp.id, days=days_used, tables=list(partition.PIECE_TABLES.values()))
+    pieces = window_state.pieces_of_rows(stored)
+    want = combine_pieces(pieces, exp, cluster="auto")
+    assert want.cluster == "bidder" and want.segments  # bidders repeat, and rows per segment
+    rows = hook.fetch_df("report_to_date_estimates", {"experiment_id": exp.id})
+    rows["segment"] = rows["segment"].astype(object).where(rows["segment"].notna(), "(pooled)")
+    got = rows[rows["ds"].dt.date == day].set_index(["segment", "arm", "metric"])
+    want = want.table.assign(segment=lambda t: t["segment"].astype(object).where(t["segment"].notna(), "(pooled)"))
+    want = want.set_index(["segment", "arm", "metric"])
+    assert len(got) == len(want) and set(got.xs("revenue_per_auction", level="metric")["cluster"]) == {"bidder"}
+    assert set(want.index.get_level_values("segment")) == {"(pooled)", "awning", "kiosk"} - (
+        {"kiosk"} if days_used == [DAYS[0]] else set())
+    np.testing.assert_allclose(got.loc[want.index, NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float),
+                               rtol=1e-12, atol=0)
+    base = hook.bidder_window(experiment_id=exp.id)
+    if base is None:
+        return None
+    keys = [None if pd.isna(s) else s for s in base[0]["segment"]]
+    assert keys[0] is None and sorted(keys[1:]) == sorted({p.key.segment for p in pieces})
+    days = [dt.date.fromisoformat(d) for d in str(base[0]["days_used"].iloc[0]).split(",")]
+    window = window_state.pieces_of_rows(hook.stored_piece_frames(experiment_id=exp.id, days=days,
+                                                                  tables=list(partition.PIECE_TABLES.values())))
+    for key, n in zip(keys, base[0]["n_distinct_bidders"]):
+        rebuilt = gram_of(bidder_totals([p for p in window if key is None or p.key.segment == key],
+                                        bid_exponent=max(p.bid_exponent for p in window)))
+        assert int(n) == rebuilt.n_bidders
+        form = base[1][[(None if pd.isna(s) else s) == key for s in base[1]["segment"]]]
+        kept = window_state._gram_of_rows(form, rebuilt.n_bidders, rebuilt.bid_exponent, exp)
+        np.testing.assert_allclose(kept.gram, rebuilt.gram, rtol=1e-12, atol=0)
+    return days
+
+
+def test_a_segmented_experiment_keeps_a_window_per_segment_equal_to_the_full_recombination(sink, segmented_lake,
+                                                                                            tmp_path):
+    exp = _segmented_spec()
+    stage = tmp_path / "stage"
+    used = {DAYS[0]: DAYS[:1], DAYS[1]: DAYS[:2], DAYS[2]: DAYS[:2], DAYS[3]: [DAYS[0], DAYS[1], DAYS[3]],
+            DAYS[4]: [DAYS[0], DAYS[1], DAYS[3], DAYS[4]]}
+    routes = []
+    for day in DAYS:
+        routes.append(_run_day(sink, segmented_lake, exp, stage, day, f"r-{day}")["bidder_window"])
+        assert _check_segmented(sink, exp, day, used[day]) == used[day]
+    # as unsegmented: day 2 extends (its second stall from an empty window), day 3 (excluded) keeps the stored one
+    assert routes == ["rebuilt", "extended", "stored", "extended", "extended"]
+    assert _run_day(sink, segmented_lake, exp, stage, DAYS[1], "again-2")["bidder_window"] == "rebuilt"
+    assert _check_segmented(sink, exp, DAYS[1], used[DAYS[1]]) == used[DAYS[1]]
+    assert _run_day(sink, segmented_lake, exp, stage, DAYS[4], "again-5")["bidder_window"] == "rebuilt"
+    assert _check_segmented(sink, exp, DAYS[4], used[DAYS[4]]) == used[DAYS[4]]
