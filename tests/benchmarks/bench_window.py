@@ -66,6 +66,7 @@ def child(step: str, work: Path, day: str) -> dict:
     from counterbid.estimators import load_experiment
     from counterbid.operators import partition
     from counterbid.operators.hooks import ResultsHook
+    from counterbid.operators.lake_hook import LakeHook
     from counterbid.operators.staging import StagedPartition
 
     exp = load_experiment(work / "spec.yaml")
@@ -78,7 +79,7 @@ def child(step: str, work: Path, day: str) -> dict:
         if step == "write+prepare":  # the previous day's write, then this day's load and validate
             previous = ds - dt.timedelta(days=1)
             partition.write_partition(hook, experiment_id=exp.id, ds=previous, staging_root=stage)
-        partition.stage_partition(hook, lake_root=work / "lake", experiment=exp, ds=ds, staging_root=stage)
+        partition.stage_partition(LakeHook(), lake_root=work / "lake", experiment=exp, ds=ds, staging_root=stage)
         staged = StagedPartition.at(stage, exp.id, ds)
         # the contract suite is not what this measures (and costs as much as the rest on a loaded
         # machine): the day is recorded as checked with no failure, as the validate step would
