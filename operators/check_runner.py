@@ -13,6 +13,7 @@ import logging
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -21,6 +22,7 @@ from counterbid.estimators.checks import (AuctionCounts, CheckResult, bid_quanti
                                           worst_failure)
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
+from counterbid.readers.id_hashes import fnv1a_64
 from counterbid.sql import render_sql, validate_identifier
 
 from .contract import run_contract, with_quality
@@ -124,7 +126,8 @@ def run_checks(
             counts = AuctionCounts.from_frame(_auction_counts(con, pieces), experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
-    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=sample_relation or relation))
+    # with a sample, flagged bids are named from the day's text (the outlier scan): the frame's ids only group
+    bids = _day_bids(con, sample_relation or relation, experiment, hashed_ids=sample_relation is not None)
     if counts is not None:
         shard, shards = sample_shard if sample_shard is not None else (None, None)
         sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
@@ -200,38 +203,67 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
     """
     validate_identifier(relation, what="relation")
     relation = with_quality(con, relation)
-    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=relation))
+    bids = _day_bids(con, relation, experiment, hashed_ids=True)  # the summary reads bids and auction sizes only
     return bid_quantile_summary(bids, experiment, source=relation)
 
 
-def _day_bids_statement(experiment: Experiment) -> str:
-    """The checks' bids: the contract's columns, or every column when the spec names scale covariates or segments."""
-    return "check_day_bids_every_column" if experiment.auction_columns else "check_day_bids"
+#: Id columns the checks' frame may hold as 64-bit hashes of their text (``readers/id_hashes.py``).
+HASHED_ID_COLUMNS = ("auction_id", "bidder_id")
+
+
+def _day_bids(con, relation: str, experiment: Experiment, *, hashed_ids: bool) -> pd.DataFrame:
+    """The checks' bids of ``relation`` (``sql/check_day_bids.sql``): the contract's columns and the
+    experiment's auction-level columns; text ids as 64-bit hashes when ``hashed_ids``.
+
+    Hashed ids serve where the ids only group bids (auction sizes, bidders): 8 bytes a bid instead
+    of a dictionary of text. Two distinct ids share a hash with probability at most
+    ``n (n - 1) / 2**65`` over ``n`` distinct ids (2.7e-8 at 10**6; ``readers/id_hashes.py``).
+    """
+    statement = render_sql("check_day_bids", relation=relation)
+    return _bids_frame(con, statement, {"auction_columns": list(experiment.auction_columns)},
+                       hashed=HASHED_ID_COLUMNS if hashed_ids else ())
 
 
 #: Rows per batch when the checks' bids are fetched from DuckDB (strings are dictionary-encoded batch by batch).
 FETCH_BATCH_ROWS = 1 << 20
 
 
-def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
+def _is_text(column) -> bool:
+    return pa.types.is_string(column.type) or pa.types.is_large_string(column.type)
+
+
+def _hashed(column: pa.Array) -> pa.Array:
+    """FNV-1a hashes (int64) of a text column, one hash per distinct value of the batch (nulls stay null)."""
+    encoded = pc.dictionary_encode(column)
+    indices = encoded.indices
+    codes = indices.fill_null(0).to_numpy(zero_copy_only=False) if indices.null_count else indices.to_numpy()
+    hashes = fnv1a_64(encoded.dictionary) if len(encoded.dictionary) else np.zeros(1, dtype=np.int64)
+    mask = indices.is_null().to_numpy(zero_copy_only=False) if indices.null_count else None
+    return pa.array(hashes[codes], type=pa.int64(), mask=mask)
+
+
+def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None, *,
+                hashed: tuple[str, ...] = ()) -> pd.DataFrame:
     """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects).
 
     Fetched in batches of :data:`FETCH_BATCH_ROWS`, each string column dictionary-encoded as it
     arrives (the dictionaries unified at the end), so that the plain text of the ids is never held
-    for the whole frame at once.
+    for the whole frame at once. Text columns named in ``hashed`` become their 64-bit FNV-1a
+    hashes instead (a null stays null, for the checks to report).
     """
     reader = con.sql(statement, params=dict(params or {})).to_arrow_reader(FETCH_BATCH_ROWS)
     schema, batches = reader.schema, []
     for batch in reader:
-        columns = [pc.dictionary_encode(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
-                   for c in batch.columns]
+        columns = [(_hashed(c) if name in hashed else pc.dictionary_encode(c)) if _is_text(c) else c
+                   for name, c in zip(batch.schema.names, batch.columns)]
         batches.append(pa.RecordBatch.from_arrays(columns, names=batch.schema.names))
     del reader  # DuckDB's result and its buffers go before the frame is built
     if not batches:
         table = schema.empty_table()
         for i, field in enumerate(table.schema):
             if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
-                table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
+                empty = pa.array([], pa.int64()) if field.name in hashed else pc.dictionary_encode(table.column(i))
+                table = table.set_column(i, field.name, empty)
     else:
         table = pa.Table.from_batches(batches).unify_dictionaries()
     del batches
