@@ -128,10 +128,12 @@ def through_dag(lake: Path, spec: Path, work: Path) -> None:
     from counterbid.cli import backfill as bf
 
     samples: list[tuple[float, int, float]] = []
+    loaded: list[tuple[float, frozenset]] = []  # names in sys.modules, sampled: what each task imported
 
     def sample() -> None:
         while True:
             samples.append((time.time(), _rss(), time.process_time()))
+            loaded.append((samples[-1][0], frozenset(sys.modules)))
             time.sleep(0.1)
 
     threading.Thread(target=sample, daemon=True).start()
@@ -146,7 +148,9 @@ def through_dag(lake: Path, spec: Path, work: Path) -> None:
     from airflow.configuration import conf as airflow_conf
     from airflow.dag_processing.dagbag import DagBag
 
+    t0, c0 = time.time(), time.process_time()
     dag = DagBag(dag_folder=airflow_conf.get("core", "dags_folder")).get_dag(bf.DAG_ID)
+    rows.append(_row("DagBag parse (this process)", time.process_time() - c0, time.time() - t0, _rss() / 2**20))
     t0, c0 = time.time(), time.process_time()
     run = dag.test(logical_date=dt.datetime.combine(DAY, dt.time(), tzinfo=dt.timezone.utc), run_conf=conf)
     t1, c1 = time.time(), time.process_time()
@@ -159,11 +163,26 @@ def through_dag(lake: Path, spec: Path, work: Path) -> None:
         inside = [(r, c) for t, r, c in samples if a - 0.05 <= t <= b + 0.05]
         cpu = inside[-1][1] - inside[0][1] if inside else float("nan")
         tasks += cpu if inside else 0.0
-        rows.append(_row(ti.task_id, cpu, ti.duration, max((r for r, _ in inside), default=0) / 2**20, str(ti.state)))
+        rows.append(_row(ti.task_id, cpu, ti.duration, max((r for r, _ in inside), default=0) / 2**20,
+                         f"{ti.state}; {_imported(loaded, a, b)}"))
     rows.append(_row("between tasks (dag.test)", c1 - c0 - tasks, float("nan"), float("nan"),
                      "scheduling, XCom and state in the metadata database"))
     rows.append(_row("dag.test total", c1 - c0, t1 - t0, max(r for _, r, _ in samples) / 2**20, f"state {run.state}"))
     print("\n".join(_table_head() + rows))
+
+
+def _imported(loaded: list[tuple[float, frozenset]], start: float, end: float) -> str:
+    """Modules first imported between ``start`` and ``end``, counted by top-level package (the largest three)."""
+    before = [m for t, m in loaded if t <= start]
+    after = [m for t, m in loaded if t <= end + 0.1]
+    if not before or not after:
+        return "imports unknown"
+    new = after[-1] - before[-1]
+    by_top: dict[str, int] = {}
+    for name in new:
+        by_top[name.split(".")[0]] = by_top.get(name.split(".")[0], 0) + 1
+    top = sorted(by_top.items(), key=lambda kv: -kv[1])[:3]
+    return f"imported {len(new)} modules" + (f" ({', '.join(f'{k} {v}' for k, v in top)})" if top else "")
 
 
 def one_step(step: str, lake: Path, spec: Path, work: Path) -> None:
