@@ -126,12 +126,16 @@ def run_checks(
             counts = AuctionCounts.from_frame(_auction_counts(con, pieces), experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
+    every = 1 if counts is None or sample_shard is None else sample_auctions_every(counts.day_bids, sample_shard[1])
     # with a sample, flagged bids are named from the day's text (the outlier scan): the frame's ids only group
-    bids = _day_bids(con, sample_relation or relation, experiment, hashed_ids=sample_relation is not None)
+    bids = _day_bids(con, sample_relation or relation, experiment, hashed_ids=sample_relation is not None,
+                     auctions_every=every)
     if counts is not None:
         shard, shards = sample_shard if sample_shard is not None else (None, None)
         sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
                   "method": "hash sample of whole auctions (md5 of auction_id)"}
+        if every > 1:
+            sample |= {"auctions_every": every, "method": sample["method"] + f", then 1 auction in {every} (DuckDB hash)"}
         log.info("%s %s: distribution checks on shard %s of %s (%d of %d bids)", experiment.id, day, shard, shards,
                  len(bids), counts.day_bids)
     history = None
@@ -155,6 +159,21 @@ def run_checks(
     if on_bids is not None and worst_failure(results) != "error":
         on_bids(bids)
     return results
+
+
+#: Most bids the distribution checks of a sampled day read: a larger sample shard is cut to whole auctions
+#: whose id hashes to 0 modulo ``ceil(shard bids / this)`` (``sql/check_day_bids.sql``), so the checks'
+#: frame, and the step's peak memory, stay those of about 2M bids whatever ``max_bids_per_shard`` is.
+MAX_SAMPLE_BIDS = 2_000_000
+
+
+def sample_auctions_every(day_bids: int, shards: int) -> int:
+    """1 auction in how many of the sample shard the distribution checks read (1: the whole shard).
+
+    The shards split the day by a hash of the auction id, so a shard holds about ``day_bids / shards`` bids.
+    """
+    per_shard = -(-int(day_bids) // max(int(shards), 1))
+    return max(1, -(-per_shard // MAX_SAMPLE_BIDS))
 
 
 #: Most outlying bids of a day the checks read back (they name ten; the rest only add to the share).
@@ -211,16 +230,18 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
 HASHED_ID_COLUMNS = ("auction_id", "bidder_id")
 
 
-def _day_bids(con, relation: str, experiment: Experiment, *, hashed_ids: bool) -> pd.DataFrame:
+def _day_bids(con, relation: str, experiment: Experiment, *, hashed_ids: bool, auctions_every: int = 1) -> pd.DataFrame:
     """The checks' bids of ``relation`` (``sql/check_day_bids.sql``): the contract's columns and the
-    experiment's auction-level columns; text ids as 64-bit hashes when ``hashed_ids``.
+    experiment's auction-level columns; text ids as 64-bit hashes when ``hashed_ids``; with
+    ``auctions_every`` k > 1, the auctions whose id hashes to 0 modulo k (whole auctions).
 
     Hashed ids serve where the ids only group bids (auction sizes, bidders): 8 bytes a bid instead
     of a dictionary of text. Two distinct ids share a hash with probability at most
     ``n (n - 1) / 2**65`` over ``n`` distinct ids (2.7e-8 at 10**6; ``readers/id_hashes.py``).
     """
     statement = render_sql("check_day_bids", relation=relation)
-    return _bids_frame(con, statement, {"auction_columns": list(experiment.auction_columns)},
+    return _bids_frame(con, statement, {"auction_columns": list(experiment.auction_columns),
+                                        "auctions_every": int(auctions_every)},
                        hashed=HASHED_ID_COLUMNS if hashed_ids else ())
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 
+import duckdb
 import numpy as np
 import pandas as pd
 import pyarrow as pa
@@ -237,3 +238,34 @@ def test_text_ids_reach_the_sample_checks_as_hashes_with_the_text_frames_outcome
     # and the day's stored bid-quantile summary is the text frame's
     summary = pq.read_table(staged.bid_quantiles).to_pandas()
     pd.testing.assert_frame_equal(summary.drop(columns=["experiment_id", "ds"]), bid_quantile_summary(text, experiment))
+
+
+def test_a_large_sample_shard_is_cut_to_one_auction_in_k(hook, text_lake, experiment, tmp_path, monkeypatch):
+    # The distribution checks read at most about MAX_SAMPLE_BIDS bids: a larger sample shard is cut to
+    # whole auctions by a hash of the id. Here 4000-bid shards against a 1500-bid budget: 1 auction in 3.
+    monkeypatch.setattr(check_runner, "MAX_SAMPLE_BIDS", 1500)
+    staged, out = _staged(hook, text_lake, experiment, tmp_path)
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
+    sample = results["shading"].details["sample"]
+    every = check_runner.sample_auctions_every(out["day_bids"], out["shards"])
+    assert every == sample["auctions_every"] == 3
+    shard = _frame(staged.shard(sample["shard"]))
+    con = duckdb.connect()
+    con.register("shard", shard)
+    cut = con.execute("select * from shard where hash(auction_id) % 3 = 0").df()  # the plain cut, by pandas rows
+    assert sample["bids_used"] == len(cut) and len(cut) < len(shard) / 2
+    on_cut = _by_name(equilibrium_checks(cut, experiment, ds=DAY))
+    for name in DISTRIBUTION:
+        assert results[name].observed == on_cut[name].observed, name
+    for name in COUNTING:  # still the whole day's
+        assert "sample" not in results[name].details
+    summary = pq.read_table(staged.bid_quantiles).to_pandas()
+    pd.testing.assert_frame_equal(summary.drop(columns=["experiment_id", "ds"]), bid_quantile_summary(cut, experiment))
+
+
+def test_the_sample_cut_follows_the_shard_size():
+    n = check_runner.MAX_SAMPLE_BIDS
+    assert check_runner.sample_auctions_every(n * 8, 8) == 1  # a shard of the budget: read whole
+    assert check_runner.sample_auctions_every(n * 8 + 1, 8) == 2
+    assert check_runner.sample_auctions_every(30_000_000, 8) == 2  # 3.75M-bid shards: 1 auction in 2
+    assert check_runner.sample_auctions_every(30_000_000, 1) == 15
