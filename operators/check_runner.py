@@ -73,7 +73,10 @@ def run_checks(
         shard of a day staged in several). The counting checks (``sample_ratio``, the minimum
         samples) still count the whole ``relation`` in DuckDB (``sql/check_auction_counts.sql``);
         the distribution checks (``monotone_values``, ``shading``, ``drift``) load only the
-        sample, so the frame in memory is one shard. Default: they load ``relation``.
+        sample, so the frame in memory is one shard, its text ids as 64-bit hashes (flagged bids
+        are named by the whole-day scan), and with ``sample_shard`` a shard above
+        :data:`MAX_SAMPLE_BIDS` bids cut to whole auctions, 1 in k by a hash of the id
+        (``details["sample"]["auctions_every"]``). Default: they load ``relation``.
     sample_shard : (int, int), optional
         ``(shard, shards)`` the sample is, recorded with the bids used and the day's bids in
         ``details["sample"]`` of each distribution check.
