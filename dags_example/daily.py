@@ -45,10 +45,11 @@ from pathlib import Path
 
 from airflow.sdk import dag, task, task_group
 
+# Airflow re-parses this file often (the DAG processor, and every task before it runs): it imports
+# the operators and settings only. The steps, the estimator (scipy) and Great Expectations load in the
+# task that runs them (tests/dags/test_daily_dag.py checks what a parse loads).
 from counterbid.operators.extras import require_extras_for
 from counterbid.operators.notify import CheckAlertNotifier
-from counterbid.estimators import parse_day
-from counterbid.operators.partition import active_experiment_ids
 from counterbid.operators.pipeline import (
     DEFAULT_CLUSTER,
     DEFAULT_CONFIDENCE_LEVEL,
@@ -58,7 +59,6 @@ from counterbid.operators.pipeline import (
     ValidatePartitionOperator,
     WriteEstimatesOperator,
 )
-from counterbid.operators.shard_step import validated_shards
 from counterbid.operators.results_schema import results_target
 
 DAG_ID = "counterbid_daily"
@@ -115,7 +115,9 @@ ALERTS = CheckAlertNotifier(
 def counterbid_daily():
     @task
     def active_experiments(params=None, ds=None) -> list[str]:
-        return active_experiment_ids(params["spec_path"], ds)
+        from counterbid.estimators.spec import load_experiments, parse_day  # the spec alone, not the steps
+
+        return [e.id for e in load_experiments(params["spec_path"]).values() if e.is_active(parse_day(ds))]
 
     steps = {}  # the group's validate and estimate, wired to the shard tasks below
 
@@ -156,6 +158,9 @@ def counterbid_daily():
         # the day (upstream_failed, so the run fails and alerts once, from the shard task).
         @task(trigger_rule="all_done")
         def day_shards(params=None, ds=None, ti=None) -> list[dict]:
+            from counterbid.estimators.days import parse_day
+            from counterbid.operators.shard_step import validated_shards
+
             ids = ti.xcom_pull(task_ids="active_experiments") or []
             passed = [e for i, e in enumerate(ids)
                       if ti.xcom_pull(task_ids="experiment.validate", map_indexes=i) is not None]

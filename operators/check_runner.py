@@ -13,6 +13,7 @@ import logging
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -21,6 +22,7 @@ from counterbid.estimators.checks import (AuctionCounts, CheckResult, bid_quanti
                                           worst_failure)
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment, parse_day
+from counterbid.readers.id_hashes import fnv1a_64
 from counterbid.sql import render_sql, validate_identifier
 
 from .contract import run_contract, with_quality
@@ -71,7 +73,10 @@ def run_checks(
         shard of a day staged in several). The counting checks (``sample_ratio``, the minimum
         samples) still count the whole ``relation`` in DuckDB (``sql/check_auction_counts.sql``);
         the distribution checks (``monotone_values``, ``shading``, ``drift``) load only the
-        sample, so the frame in memory is one shard. Default: they load ``relation``.
+        sample, so the frame in memory is one shard, its text ids as 64-bit hashes (flagged bids
+        are named by the whole-day scan), and with ``sample_shard`` a shard above
+        :data:`MAX_SAMPLE_BIDS` bids cut to whole auctions, 1 in k by a hash of the id
+        (``details["sample"]["auctions_every"]``). Default: they load ``relation``.
     sample_shard : (int, int), optional
         ``(shard, shards)`` the sample is, recorded with the bids used and the day's bids in
         ``details["sample"]`` of each distribution check.
@@ -124,11 +129,16 @@ def run_checks(
             counts = AuctionCounts.from_frame(_auction_counts(con, pieces), experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
-    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=sample_relation or relation))
+    every = 1 if counts is None or sample_shard is None else sample_auctions_every(counts.day_bids, sample_shard[1])
+    # with a sample, flagged bids are named from the day's text (the outlier scan): the frame's ids only group
+    bids = _day_bids(con, sample_relation or relation, experiment, hashed_ids=sample_relation is not None,
+                     auctions_every=every)
     if counts is not None:
         shard, shards = sample_shard if sample_shard is not None else (None, None)
         sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
                   "method": "hash sample of whole auctions (md5 of auction_id)"}
+        if every > 1:
+            sample |= {"auctions_every": every, "method": sample["method"] + f", then 1 auction in {every} (DuckDB hash)"}
         log.info("%s %s: distribution checks on shard %s of %s (%d of %d bids)", experiment.id, day, shard, shards,
                  len(bids), counts.day_bids)
     history = None
@@ -152,6 +162,21 @@ def run_checks(
     if on_bids is not None and worst_failure(results) != "error":
         on_bids(bids)
     return results
+
+
+#: Most bids the distribution checks of a sampled day read: a larger sample shard is cut to whole auctions
+#: whose id hashes to 0 modulo ``ceil(shard bids / this)`` (``sql/check_day_bids.sql``), so the checks'
+#: frame, and the step's peak memory, stay those of about 2M bids whatever ``max_bids_per_shard`` is.
+MAX_SAMPLE_BIDS = 2_000_000
+
+
+def sample_auctions_every(day_bids: int, shards: int) -> int:
+    """1 auction in how many of the sample shard the distribution checks read (1: the whole shard).
+
+    The shards split the day by a hash of the auction id, so a shard holds about ``day_bids / shards`` bids.
+    """
+    per_shard = -(-int(day_bids) // max(int(shards), 1))
+    return max(1, -(-per_shard // MAX_SAMPLE_BIDS))
 
 
 #: Most outlying bids of a day the checks read back (they name ten; the rest only add to the share).
@@ -200,38 +225,69 @@ def day_bid_quantiles(con, relation: str, experiment: Experiment) -> pd.DataFram
     """
     validate_identifier(relation, what="relation")
     relation = with_quality(con, relation)
-    bids = _bids_frame(con, render_sql(_day_bids_statement(experiment), relation=relation))
+    bids = _day_bids(con, relation, experiment, hashed_ids=True)  # the summary reads bids and auction sizes only
     return bid_quantile_summary(bids, experiment, source=relation)
 
 
-def _day_bids_statement(experiment: Experiment) -> str:
-    """The checks' bids: the contract's columns, or every column when the spec names scale covariates or segments."""
-    return "check_day_bids_every_column" if experiment.auction_columns else "check_day_bids"
+#: Id columns the checks' frame may hold as 64-bit hashes of their text (``readers/id_hashes.py``).
+HASHED_ID_COLUMNS = ("auction_id", "bidder_id")
+
+
+def _day_bids(con, relation: str, experiment: Experiment, *, hashed_ids: bool, auctions_every: int = 1) -> pd.DataFrame:
+    """The checks' bids of ``relation`` (``sql/check_day_bids.sql``): the contract's columns and the
+    experiment's auction-level columns; text ids as 64-bit hashes when ``hashed_ids``; with
+    ``auctions_every`` k > 1, the auctions whose id hashes to 0 modulo k (whole auctions).
+
+    Hashed ids serve where the ids only group bids (auction sizes, bidders): 8 bytes a bid instead
+    of a dictionary of text. Two distinct ids share a hash with probability at most
+    ``n (n - 1) / 2**65`` over ``n`` distinct ids (2.7e-8 at 10**6; ``readers/id_hashes.py``).
+    """
+    statement = render_sql("check_day_bids", relation=relation)
+    return _bids_frame(con, statement, {"auction_columns": list(experiment.auction_columns),
+                                        "auctions_every": int(auctions_every)},
+                       hashed=HASHED_ID_COLUMNS if hashed_ids else ())
 
 
 #: Rows per batch when the checks' bids are fetched from DuckDB (strings are dictionary-encoded batch by batch).
 FETCH_BATCH_ROWS = 1 << 20
 
 
-def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
+def _is_text(column) -> bool:
+    return pa.types.is_string(column.type) or pa.types.is_large_string(column.type)
+
+
+def _hashed(column: pa.Array) -> pa.Array:
+    """FNV-1a hashes (int64) of a text column, one hash per distinct value of the batch (nulls stay null)."""
+    encoded = pc.dictionary_encode(column)
+    indices = encoded.indices
+    codes = indices.fill_null(0).to_numpy(zero_copy_only=False) if indices.null_count else indices.to_numpy()
+    hashes = fnv1a_64(encoded.dictionary) if len(encoded.dictionary) else np.zeros(1, dtype=np.int64)
+    mask = indices.is_null().to_numpy(zero_copy_only=False) if indices.null_count else None
+    return pa.array(hashes[codes], type=pa.int64(), mask=mask)
+
+
+def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None, *,
+                hashed: tuple[str, ...] = ()) -> pd.DataFrame:
     """Rows of ``statement`` as a frame with string columns as categoricals (not Python objects).
 
     Fetched in batches of :data:`FETCH_BATCH_ROWS`, each string column dictionary-encoded as it
     arrives (the dictionaries unified at the end), so that the plain text of the ids is never held
-    for the whole frame at once.
+    for the whole frame at once. Text columns named in ``hashed`` become their 64-bit FNV-1a
+    hashes instead (a null stays null, for the checks to report).
     """
     reader = con.sql(statement, params=dict(params or {})).to_arrow_reader(FETCH_BATCH_ROWS)
     schema, batches = reader.schema, []
     for batch in reader:
-        columns = [pc.dictionary_encode(c) if pa.types.is_string(c.type) or pa.types.is_large_string(c.type) else c
-                   for c in batch.columns]
+        columns = [(_hashed(c) if name in hashed else pc.dictionary_encode(c)) if _is_text(c) else c
+                   for name, c in zip(batch.schema.names, batch.columns)]
         batches.append(pa.RecordBatch.from_arrays(columns, names=batch.schema.names))
     del reader  # DuckDB's result and its buffers go before the frame is built
     if not batches:
         table = schema.empty_table()
         for i, field in enumerate(table.schema):
             if pa.types.is_string(field.type) or pa.types.is_large_string(field.type):
-                table = table.set_column(i, field.name, pc.dictionary_encode(table.column(i)))
+                empty = pa.array([], pa.int64()) if field.name in hashed else pc.dictionary_encode(table.column(i))
+                table = table.set_column(i, field.name, empty)
     else:
         table = pa.Table.from_batches(batches).unify_dictionaries()
     del batches

@@ -19,12 +19,14 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Iterable, Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from airflow.sdk import BaseNotifier
 
-from counterbid.estimators.checks import CheckResult, failure_summary, worst_failure
 from counterbid.estimators.errors import InputError
+
+if TYPE_CHECKING:
+    from counterbid.estimators.checks import CheckResult
 
 from . import alert_targets
 
@@ -60,6 +62,9 @@ def build_alert(payload: Mapping[str, Any]) -> dict[str, Any]:
         ``warning`` or ``None``) and ``failed`` (name, severity, observed, threshold of each
         failed check).
     """
+    # imported here: the example DAG builds a notifier when Airflow parses it, and the checks load scipy
+    from counterbid.estimators.checks import CheckResult, failure_summary, worst_failure
+
     try:
         results = [CheckResult(r["check"], r["severity"], bool(r["passed"]), r.get("observed"), r.get("threshold"))
                    for r in payload["results"]]

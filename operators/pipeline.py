@@ -12,21 +12,23 @@ from __future__ import annotations
 import logging
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from airflow.sdk import Asset, BaseOperator
 from airflow.sdk.exceptions import AirflowFailException
 
-from counterbid.estimators import CheckResult, load_experiment, parse_day
-from counterbid.estimators import CLUSTERS
+from counterbid.estimators.constants import CLUSTERS
+from counterbid.estimators.days import parse_day
 from counterbid.estimators.errors import InputError
-from counterbid.readers.shards import max_bids_per_shard as max_bids_setting
 from counterbid.sql import validate_identifier
 
-from . import notify, partition
+from . import notify
 from .hooks import DEFAULT_CONN_ID, ResultsHook
 from .lake_hook import LakeHook
 from .staging import StagedPartition
+
+if TYPE_CHECKING:
+    from counterbid.estimators.checks import CheckResult
 
 __all__ = [
     "DEFAULT_CLUSTER",
@@ -55,6 +57,15 @@ DEFAULT_CONFIDENCE_LEVEL = 0.95
 #: Older estimators reject ``'auto'``, so the default falls back to ``'auction'`` there rather
 #: than break every run; the stored rows say which clustering was used either way.
 DEFAULT_CLUSTER = "auto" if "auto" in CLUSTERS else "auction"
+
+
+def _partition():
+    """The steps themselves (:mod:`counterbid.operators.partition`: the estimator, scipy, the checks),
+    imported when a task runs: Airflow parses the DAG file, which builds these operators, far more
+    often than a task runs."""
+    from . import partition
+
+    return partition
 
 
 def _templated(value: object) -> bool:
@@ -103,6 +114,8 @@ class _PartitionOperator(BaseOperator):
         return parse_day(self.ds)
 
     def experiment(self):
+        from counterbid.estimators.spec import load_experiment
+
         return load_experiment(self.spec_path, self.experiment_id)
 
 
@@ -137,6 +150,8 @@ class LoadPartitionOperator(_PartitionOperator):
     ) -> None:
         super().__init__(**kwargs)
         if not _templated(max_bids_per_shard):
+            from counterbid.readers.shards import max_bids_per_shard as max_bids_setting
+
             max_bids_setting(max_bids_per_shard, what=f"{self.task_id}: `max_bids_per_shard`")
         self.max_bids_per_shard = max_bids_per_shard
         if isinstance(click_window_days, bool) or not isinstance(click_window_days, int) or click_window_days < 1:
@@ -147,7 +162,7 @@ class LoadPartitionOperator(_PartitionOperator):
 
     def execute(self, context) -> dict:
         try:
-            out = partition.stage_partition(self.lake(), lake_root=self.lake_root, experiment=self.experiment(),
+            out = _partition().stage_partition(self.lake(), lake_root=self.lake_root, experiment=self.experiment(),
                                             ds=self.day(), staging_root=self.staging_root,
                                             clicks_root=self.clicks_root or None, click_window_days=self.click_window_days,
                                             max_bids_per_shard=self.max_bids_per_shard)
@@ -180,9 +195,9 @@ class ValidatePartitionOperator(_PartitionOperator):
     def execute(self, context) -> dict:
         experiment, day = self.experiment(), self.day()
         staged = StagedPartition.at(self.staging_root, experiment.id, day)
-        results = partition.run_partition_checks(self.hook(), self.lake(), experiment=experiment, staged=staged, ds=day)
-        status = partition.record_checks(staged, results)
-        partition.store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
+        results = _partition().run_partition_checks(self.hook(), self.lake(), experiment=experiment, staged=staged, ds=day)
+        status = _partition().record_checks(staged, results)
+        _partition().store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
         for r in results:
             (log.info if r.passed else log.warning)("%s", r.describe())
         # The alert notifier (task-level callback) reads the outcomes from here.
@@ -243,7 +258,7 @@ class EstimateArmsOperator(_PartitionOperator):
         """
         try:
             level, cluster = _level(self.confidence_level, self.task_id), _cluster(self.cluster, self.task_id)
-            out = partition.estimate_partition(
+            out = _partition().estimate_partition(
                 self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
                 run_id=run_id, confidence_level=level, cluster=cluster, spark=spark, lake_root=lake_root,
                 shard_tasks=self.shard_tasks and spark is None)
@@ -293,7 +308,7 @@ class EstimateShardOperator(_PartitionOperator):
         except (TypeError, ValueError):
             raise AirflowFailException(f"{self.task_id}: `shard` must be a whole number; got {self.shard!r}") from None
         try:
-            out = partition.estimate_partition_shard(self.experiment(), ds=self.day(), staging_root=self.staging_root,
+            out = _partition().estimate_partition_shard(self.experiment(), ds=self.day(), staging_root=self.staging_root,
                                                      shard=k, cluster=_cluster(self.cluster, self.task_id))
         except InputError as exc:  # the same files fail the same way: no retry
             raise AirflowFailException(str(exc)) from None
@@ -335,7 +350,7 @@ class WriteEstimatesOperator(_PartitionOperator):
         self.cleanup = bool(cleanup)
 
     def execute(self, context) -> dict:
-        counts = partition.write_partition(self.hook(), experiment_id=self.experiment_id, ds=self.day(),
+        counts = _partition().write_partition(self.hook(), experiment_id=self.experiment_id, ds=self.day(),
                                            staging_root=self.staging_root, cleanup=self.cleanup)
         log.info("wrote %s for %s on %s", counts, self.experiment_id, self.ds)
         return counts

@@ -6,10 +6,18 @@ Writes a lake day of ``--millions`` million bids with string ids (auction ``lot-
 * ``--mode dag``: runs ``counterbid_daily`` once with ``dag.test()`` in this process (as
   ``counterbid backfill`` does), sampling this process's RSS and CPU time every 0.1 s, and cuts the
   samples at each task's start and end;
-* ``--mode steps``: runs each step (load, validate, estimate, write) in a child process of its
-  own, as an Airflow worker does, and reports each child's peak RSS (``ru_maxrss``).
+* ``--mode steps``: runs each step (load, validate, estimate, write; ``--steps`` picks some) in a
+  child process of its own, as an Airflow worker does, and reports each child's peak RSS
+  (``ru_maxrss``) and CPU time, the step alone and the whole child with its imports (``os.wait4``).
+
+Both modes first parse the DAG file in a child process of its own, as Airflow's DAG processor and
+every task's runner do, and report that child's CPU time, wall time, peak RSS and which heavy
+libraries the parse loaded. The result is one step table (CPU s = user + sys), headed by the load
+average of the machine before and after: timings on a shared machine are inflated, CPU seconds
+less so.
 
 Usage: python tests/benchmarks/bench_dag_steps.py --data DIR [--millions 1] [--mode dag|steps]
+       [--steps load,validate] [--keep-work]
 """
 
 from __future__ import annotations
@@ -68,6 +76,49 @@ def write_lake(root: Path, millions: int, spec: Path) -> None:
         target.with_suffix(".partial").rename(target)
 
 
+#: Libraries whose import is a large share of a task's fixed cost: which ones a parse of the DAG file loads.
+HEAVY_MODULES = ("scipy", "pandas", "pyarrow", "duckdb", "great_expectations", "sqlalchemy", "pyspark")
+PARSE = """
+import resource, sys, time
+t0, c0 = time.perf_counter(), time.process_time()
+import counterbid.dags_example.daily
+heavy = [m for m in {heavy!r} if m in sys.modules]
+print(f"{{time.perf_counter() - t0:.3f}} {{time.process_time() - c0:.3f}} {{','.join(heavy) or '-'}}")
+"""
+
+
+def _row(step: str, cpu: float, wall: float, rss_mib: float, note: str = "") -> str:
+    return f"| {step:<28} | {cpu:7.2f} | {wall:7.2f} | {rss_mib:7.0f} | {note} |"
+
+
+def _table_head() -> list[str]:
+    return ["| step | CPU s | wall s | peak RSS MiB | note |", "| --- | ---: | ---: | ---: | --- |"]
+
+
+def _loadavg() -> str:
+    return " ".join(f"{x:.2f}" for x in os.getloadavg())
+
+
+def _child(argv: list[str], env: dict | None = None) -> tuple[str, float, float, float]:
+    """Run ``argv``; its stdout, CPU seconds (user + sys, from ``os.wait4``), wall seconds and peak RSS (MiB)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, env=env, text=True)
+    out = proc.stdout.read()
+    _, status, usage = os.wait4(proc.pid, 0)
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    if proc.returncode != 0:
+        raise SystemExit(f"{argv[:3]}...: exit {proc.returncode}")
+    return out, usage.ru_utime + usage.ru_stime, time.perf_counter() - t0, usage.ru_maxrss / 1024
+
+
+def parse_row(env: dict | None = None) -> str:
+    """The DAG file parsed in a fresh interpreter (``env``, default this one's): one table row."""
+    out, cpu, wall, rss = _child([sys.executable, "-c", PARSE.format(heavy=HEAVY_MODULES)], env=env or dict(os.environ))
+    _, import_cpu, heavy = out.split()[-3:]
+    return _row("parse DAG file (child)", cpu, wall, rss,
+                f"import alone {float(import_cpu):.2f}s CPU; loads {heavy}")
+
+
 def _rss() -> int:
     with open("/proc/self/statm") as fh:
         return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
@@ -77,10 +128,12 @@ def through_dag(lake: Path, spec: Path, work: Path) -> None:
     from counterbid.cli import backfill as bf
 
     samples: list[tuple[float, int, float]] = []
+    loaded: list[tuple[float, frozenset]] = []  # names in sys.modules, sampled: what each task imported
 
     def sample() -> None:
         while True:
             samples.append((time.time(), _rss(), time.process_time()))
+            loaded.append((samples[-1][0], frozenset(sys.modules)))
             time.sleep(0.1)
 
     threading.Thread(target=sample, daemon=True).start()
@@ -91,24 +144,49 @@ def through_dag(lake: Path, spec: Path, work: Path) -> None:
                        "COUNTERBID_RESULTS": conf["results_database"], "COUNTERBID_STAGING": conf["staging_root"],
                        "COUNTERBID_CLICKS": "", "COUNTERBID_RETRIES": "0"})
     bf.ensure_metadata()
+    rows = [parse_row()]
     from airflow.configuration import conf as airflow_conf
     from airflow.dag_processing.dagbag import DagBag
 
+    t0, c0 = time.time(), time.process_time()
     dag = DagBag(dag_folder=airflow_conf.get("core", "dags_folder")).get_dag(bf.DAG_ID)
+    rows.append(_row("DagBag parse (this process)", time.process_time() - c0, time.time() - t0, _rss() / 2**20))
     t0, c0 = time.time(), time.process_time()
     run = dag.test(logical_date=dt.datetime.combine(DAY, dt.time(), tzinfo=dt.timezone.utc), run_conf=conf)
     t1, c1 = time.time(), time.process_time()
-    print(f"dag.test {t1 - t0:.1f}s wall, {c1 - c0:.1f}s CPU, state {run.state}, "
-          f"peak RSS {max(r for _, r, _ in samples) / 2**20:.0f} MiB")
-    for ti in sorted(run.get_task_instances(), key=lambda t: t.start_date):
+    tasks = 0.0
+    for ti in sorted(run.get_task_instances(), key=lambda t: t.start_date or dt.datetime.max.replace(tzinfo=dt.timezone.utc)):
+        if ti.start_date is None or ti.end_date is None:
+            rows.append(_row(ti.task_id, float("nan"), float("nan"), float("nan"), f"{ti.state} (not run)"))
+            continue
         a, b = ti.start_date.timestamp(), ti.end_date.timestamp()
         inside = [(r, c) for t, r, c in samples if a - 0.05 <= t <= b + 0.05]
         cpu = inside[-1][1] - inside[0][1] if inside else float("nan")
-        print(f"  {ti.task_id:<28} {ti.duration:7.2f}s wall {cpu:6.2f}s CPU  "
-              f"peak RSS {max((r for r, _ in inside), default=0) / 2**20:6.0f} MiB")
+        tasks += cpu if inside else 0.0
+        rows.append(_row(ti.task_id, cpu, ti.duration, max((r for r, _ in inside), default=0) / 2**20,
+                         f"{ti.state}; {_imported(loaded, a, b)}"))
+    rows.append(_row("between tasks (dag.test)", c1 - c0 - tasks, float("nan"), float("nan"),
+                     "scheduling, XCom and state in the metadata database"))
+    rows.append(_row("dag.test total", c1 - c0, t1 - t0, max(r for _, r, _ in samples) / 2**20, f"state {run.state}"))
+    print("\n".join(_table_head() + rows))
+
+
+def _imported(loaded: list[tuple[float, frozenset]], start: float, end: float) -> str:
+    """Modules first imported between ``start`` and ``end``, counted by top-level package (the largest three)."""
+    before = [m for t, m in loaded if t <= start]
+    after = [m for t, m in loaded if t <= end + 0.1]
+    if not before or not after:
+        return "imports unknown"
+    new = after[-1] - before[-1]
+    by_top: dict[str, int] = {}
+    for name in new:
+        by_top[name.split(".")[0]] = by_top.get(name.split(".")[0], 0) + 1
+    top = sorted(by_top.items(), key=lambda kv: -kv[1])[:3]
+    return f"imported {len(new)} modules" + (f" ({', '.join(f'{k} {v}' for k, v in top)})" if top else "")
 
 
 def one_step(step: str, lake: Path, spec: Path, work: Path) -> None:
+    """One step in this process; prints ``step CPU wall peak-RSS`` (the step alone, imports excluded)."""
     from counterbid.estimators import load_experiment
     from counterbid.operators import partition
     from counterbid.operators.hooks import ResultsHook
@@ -129,8 +207,8 @@ def one_step(step: str, lake: Path, spec: Path, work: Path) -> None:
                                      confidence_level=0.95, cluster="auto")
     else:
         partition.write_partition(hook, experiment_id=exp.id, ds=DAY, staging_root=staging)
-    print(f"  {step:<9} {time.perf_counter() - t0:7.1f}s wall {time.process_time() - c0:7.1f}s CPU  "
-          f"peak RSS {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:6.0f} MiB", flush=True)
+    print(f"{step} {time.process_time() - c0:.3f} {time.perf_counter() - t0:.3f} "
+          f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f}", flush=True)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -138,6 +216,10 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--data", required=True, type=Path)
     p.add_argument("--millions", type=int, default=1)
     p.add_argument("--mode", choices=("dag", "steps"), default="dag")
+    p.add_argument("--steps", default="load,validate,estimate,write",
+                   help="with --mode steps: the steps to run, in order (comma-separated)")
+    p.add_argument("--keep-work", action="store_true",
+                   help="keep the run folder (staged day, results) of an earlier run: e.g. --steps validate again")
     p.add_argument("--step", help=argparse.SUPPRESS)  # a child of --mode steps
     args = p.parse_args(argv)
     spec, lake = args.data / "spec.yaml", args.data / f"lake_{args.millions}M"
@@ -150,15 +232,30 @@ def main(argv: list[str] | None = None) -> int:
     write_lake(lake, args.millions, spec)
     import shutil
 
-    shutil.rmtree(work, ignore_errors=True)
-    work.mkdir()
+    if not args.keep_work:
+        shutil.rmtree(work, ignore_errors=True)
+    work.mkdir(exist_ok=True)
+    print(f"{args.millions}M bids, mode {args.mode}; load average before: {_loadavg()}")
     if args.mode == "dag":
         through_dag(lake, spec, work)
-        return 0
-    for step in ("load", "validate", "estimate", "write"):
-        subprocess.run([sys.executable, __file__, "--data", str(args.data), "--millions", str(args.millions),
-                        "--mode", "steps", "--step", step], check=True)
+    else:
+        through_steps(args, [s.strip() for s in args.steps.split(",") if s.strip()])
+    print(f"load average after: {_loadavg()}")
     return 0
+
+
+def through_steps(args, steps: list[str]) -> None:
+    """Each step in a child process of its own (the parse of the DAG file first): one step table."""
+    from counterbid.cli import backfill as bf
+
+    rows = [parse_row(dict(os.environ, **bf.airflow_environment(args.data / "airflow_parse", dags_folder=bf.dags_folder())))]
+    for step in steps:
+        out, cpu, wall, rss = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
+                                      str(args.millions), "--mode", "steps", "--step", step])
+        name, step_cpu, step_wall, step_rss = out.split()[-4:]
+        rows.append(_row(f"{name} (step alone)", float(step_cpu), float(step_wall), float(step_rss)))
+        rows.append(_row(f"{name} (child with imports)", cpu, wall, rss))
+    print("\n".join(_table_head() + rows))
 
 
 if __name__ == "__main__":

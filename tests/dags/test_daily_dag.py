@@ -22,6 +22,30 @@ DAYS = [START + dt.timedelta(days=k) for k in range(3)]
 VALUES = ["estimate", "std_error", "ci_low", "ci_high", "n_auctions", "n_bids"]
 
 
+#: What a parse of the DAG file must not load: the estimator's scipy, the checks' Great Expectations,
+#: the estimator's steps. Airflow re-parses the file in the DAG processor and before every task.
+NOT_AT_PARSE = ("scipy", "great_expectations", "pyspark", "counterbid.operators.partition",
+                "counterbid.estimators.checks", "counterbid.estimators.pieces", "counterbid.operators.contract")
+
+
+def test_parsing_the_dag_file_loads_no_estimator_scipy_or_great_expectations(tmp_path):
+    # a fresh interpreter, as Airflow's DAG processor and task runner are; the first line lists what loaded
+    import subprocess
+    import sys
+
+    probe = ("import sys; import counterbid.dags_example.daily as d; "
+             f"print(','.join(m for m in {NOT_AT_PARSE!r} if m in sys.modules) or '-'); print(d.DAG_ID)")
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300,
+                          env={**__import__("os").environ, "COUNTERBID_STAGING": str(tmp_path)})
+    assert done.returncode == 0, done.stderr[-2000:]
+    loaded, dag_id = done.stdout.split()[-2:]
+    assert dag_id == DAG_ID and loaded == "-", f"a parse of the DAG file loads {loaded}"
+    # ... while the steps still find them when a task runs
+    from counterbid.operators import pipeline
+
+    assert pipeline._partition().run_partition_checks is not None
+
+
 @pytest.fixture(scope="module")
 def bag(airflow_db):
     from airflow.dag_processing.dagbag import DagBag

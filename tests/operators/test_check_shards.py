@@ -10,8 +10,11 @@ from __future__ import annotations
 
 import datetime as dt
 
+import duckdb
+import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 import pytest
@@ -19,12 +22,13 @@ import pytest
 from counterbid.dags_example.lake import write_bid_lake
 from counterbid.estimators import parse_experiments
 from counterbid.estimators.checks import bid_quantile_summary, equilibrium_checks, sample_ratio_check
-from counterbid.operators import partition
+from counterbid.operators import check_runner, partition
 from counterbid.operators.check_runner import read_check_results, run_checks
 from counterbid.operators.contract import run_contract
 from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.staging import StagedPartition
+from counterbid.readers.id_hashes import fnv1a_64
 
 DAY = dt.date(2026, 5, 4)
 SPEC = {"experiments": [{
@@ -188,3 +192,80 @@ def test_a_bad_quality_in_the_last_shard_is_named_with_its_file_and_row(hook, la
     assert not fault.passed and fault.observed == 1.0
     assert (fault.details["file"], fault.details["first_row"], fault.details["auction_id"]) == (str(path), 11, str(auction))
     assert fault.details["error"].startswith(f"{path}: column 'quality' row 11 (auction {auction}) is 0.0")
+
+
+@pytest.fixture(scope="module")
+def text_lake(tmp_path_factory, lake):
+    """The same two days with text ids (``lot-<n>``, ``seat-<n>``), as logs whose ids are names."""
+    root = tmp_path_factory.mktemp("text_lake")
+    for path in sorted(lake.rglob("*.parquet")):
+        table = pq.read_table(path)
+        for name, prefix in (("auction_id", "lot-"), ("bidder_id", "seat-")):
+            text = pc.binary_join_element_wise(prefix, pc.cast(table[name], pa.string()), "")
+            table = table.set_column(table.schema.get_field_index(name), name, text)
+        target = root / path.relative_to(lake)
+        target.parent.mkdir(parents=True, exist_ok=True)
+        pq.write_table(table, target)
+    return root
+
+
+def test_text_ids_reach_the_sample_checks_as_hashes_with_the_text_frames_outcomes(hook, text_lake, experiment, tmp_path,
+                                                                                 monkeypatch):
+    # Several fetch batches, each with its own dictionary of ids: the hashes must still agree across them.
+    monkeypatch.setattr(check_runner, "FETCH_BATCH_ROWS", 1000)
+    staged, out = _staged(hook, text_lake, experiment, tmp_path)
+    assert out["shards"] == 3
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
+    k = results["shading"].details["sample"]["shard"]
+    text = _frame(staged.shard(k))
+    assert text["auction_id"].astype(str).str.startswith("lot-").all() and len(text) > 3000
+    on_text = _by_name(equilibrium_checks(text, experiment, ds=DAY))  # the plain route: the text ids themselves
+    for name in DISTRIBUTION:
+        assert results[name].observed == on_text[name].observed, name
+        assert {k: v for k, v in results[name].details.items() if k != "sample"} == dict(on_text[name].details), name
+    assert results["auction_dependence"].observed is not None and results["shading"].observed is not None
+    # the frame the checks read holds 64-bit hashes of the ids, equal row by row to the hash of each row's text
+    frames = []
+    with LakeHook().staged_relations(day=staged.day_files, sample=str(staged.shard(k) / "*.parquet")) as con:
+        run_checks(con, "staged_day", experiment, ds=DAY, sample_relation="staged_sample", sample_shard=(k, 3),
+                   on_bids=frames.append)
+    frame = frames[0]
+    for name in ("auction_id", "bidder_id"):
+        assert str(frame[name].dtype) == "int64"
+        by_row = fnv1a_64(pa.array(text[name].astype(str).tolist(), pa.string()))
+        assert np.array_equal(frame[name].to_numpy(), by_row), name
+    assert frame["auction_id"].nunique() == text["auction_id"].nunique()  # no two auctions met on one hash
+    # and the day's stored bid-quantile summary is the text frame's
+    summary = pq.read_table(staged.bid_quantiles).to_pandas()
+    pd.testing.assert_frame_equal(summary.drop(columns=["experiment_id", "ds"]), bid_quantile_summary(text, experiment))
+
+
+def test_a_large_sample_shard_is_cut_to_one_auction_in_k(hook, text_lake, experiment, tmp_path, monkeypatch):
+    # The distribution checks read at most about MAX_SAMPLE_BIDS bids: a larger sample shard is cut to
+    # whole auctions by a hash of the id. Here 4000-bid shards against a 1500-bid budget: 1 auction in 3.
+    monkeypatch.setattr(check_runner, "MAX_SAMPLE_BIDS", 1500)
+    staged, out = _staged(hook, text_lake, experiment, tmp_path)
+    results = _by_name(partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=DAY))
+    sample = results["shading"].details["sample"]
+    every = check_runner.sample_auctions_every(out["day_bids"], out["shards"])
+    assert every == sample["auctions_every"] == 3
+    shard = _frame(staged.shard(sample["shard"]))
+    con = duckdb.connect()
+    con.register("shard", shard)
+    cut = con.execute("select * from shard where hash(auction_id) % 3 = 0").df()  # the plain cut, by pandas rows
+    assert sample["bids_used"] == len(cut) and len(cut) < len(shard) / 2
+    on_cut = _by_name(equilibrium_checks(cut, experiment, ds=DAY))
+    for name in DISTRIBUTION:
+        assert results[name].observed == on_cut[name].observed, name
+    for name in COUNTING:  # still the whole day's
+        assert "sample" not in results[name].details
+    summary = pq.read_table(staged.bid_quantiles).to_pandas()
+    pd.testing.assert_frame_equal(summary.drop(columns=["experiment_id", "ds"]), bid_quantile_summary(cut, experiment))
+
+
+def test_the_sample_cut_follows_the_shard_size():
+    n = check_runner.MAX_SAMPLE_BIDS
+    assert check_runner.sample_auctions_every(n * 8, 8) == 1  # a shard of the budget: read whole
+    assert check_runner.sample_auctions_every(n * 8 + 1, 8) == 2
+    assert check_runner.sample_auctions_every(30_000_000, 8) == 2  # 3.75M-bid shards: 1 auction in 2
+    assert check_runner.sample_auctions_every(30_000_000, 1) == 15

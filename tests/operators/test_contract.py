@@ -136,3 +136,33 @@ def test_schema_failures_stop_before_the_aggregates(clean):
 def test_empty_relation(clean):
     results = _run(clean.iloc[:0])
     assert _failed(results) == ["contract_rows"]
+
+
+def test_a_validated_frame_is_not_kept_by_the_context(clean):
+    # The suite runs once per shard in one context: a data source left registered keeps its batch (the
+    # shard's aggregates), so a day's shards would all stay in memory until the context goes.
+    import gc
+    import weakref
+
+    from counterbid.operators.contract import _context, _validate
+
+    context = _context()
+    suites = build_suites(EXP, context=context)
+    con = duckdb.connect()
+    con.register("day_bids", clean)
+    con.execute("create view day_bids_q as select *, 1.0 as quality from day_bids")
+    from counterbid.sql import render_sql
+
+    frames = [con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"),
+                          {"floor": 0.01, "tie_tolerance": 1e-9}).df() for _ in range(3)]
+    refs = [weakref.ref(f) for f in frames]
+    outcomes = [_validate(context, suites["auctions"], f, f"auctions_{i}") for i, f in enumerate(frames)]
+    assert all(o.success for o in outcomes) and outcomes[0].results[0].result["element_count"] == 400
+    del frames
+    gc.collect()
+    assert sum(r() is not None for r in refs) == 0  # each shard's frame is gone once validated
+    assert list(context.data_sources.all()) == []
+    # a shard's second run under the same name (a rerun in one process) still works
+    again = con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"),
+                        {"floor": 0.01, "tie_tolerance": 1e-9}).df()
+    assert _validate(context, suites["auctions"], again, "auctions_0").success

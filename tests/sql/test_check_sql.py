@@ -76,8 +76,47 @@ def test_check_auction_aggregates_floor_and_quality(con):
 
 
 def test_check_day_bids(con):
-    out = con.execute(render_sql("check_day_bids", relation="day_bids_q")).df()
-    assert list(out.columns) == ["auction_id", "bidder_id", "arm", "bid", "position", "quality"] and len(out) == 9
+    out = con.execute(render_sql("check_day_bids", relation="day_bids_q"), {"auction_columns": [], "auctions_every": 1}).df()
+    assert list(out.columns) == ["auction_id", "bidder_id", "arm", "bid", "position", "quality", "experiment_id"]
+    assert len(out) == 9 and out["quality"].tolist() == [1.0] * 9
+
+
+def test_check_day_bids_adds_the_named_auction_columns_as_logged(con):
+    # One statement for every spec: the auction-level columns the experiment names (segments, scale
+    # covariates) come bound as a list, keep their logged types, and nothing else of the log is read.
+    logged = BIDS.assign(aisle=["dry", "dry", "dry", "cold", "cold", "cold", "dry", "dry", "dry"],
+                         footfall=pd.array([3, 3, 3, 8, 8, 8, 5, 5, 5], dtype="Int16"),
+                         note=["x"] * 9, bid=BIDS["bid"].astype("float32"))
+    con.register("logged", logged)
+    con.execute(render_sql("check_unit_quality", view="logged_q", relation="logged"))
+    sql = render_sql("check_day_bids", relation="logged_q")
+    out = con.execute(sql, {"auction_columns": ["aisle", "footfall"], "auctions_every": 1}).df()
+    assert list(out.columns) == ["auction_id", "bidder_id", "arm", "bid", "position", "quality", "experiment_id",
+                                 "aisle", "footfall"]
+    assert out["aisle"].tolist() == logged["aisle"].tolist() and str(out["footfall"].dtype) == "int16"
+    assert str(out["bid"].dtype) == "float64"  # the contract's bid as double, whatever its logged type
+    only = con.execute(sql, {"auction_columns": ["footfall"], "auctions_every": 1}).df()
+    assert "aisle" not in only.columns and "note" not in only.columns and "footfall" in only.columns
+    # a name the log lacks selects nothing: the checks' bid preparation then names the missing column
+    assert "shelf" not in con.execute(sql, {"auction_columns": ["shelf"], "auctions_every": 1}).df().columns
+
+
+def test_check_day_bids_keeps_one_auction_in_k_whole():
+    # auctions_every k > 1: the auctions whose id hashes to 0 modulo k, every bid of each, about 1 in k
+    c = duckdb.connect()
+    bids = pd.DataFrame({"experiment_id": "e", "auction_id": [f"lot-{a}" for a in range(3000) for _ in range(3)],
+                         "bidder_id": list(range(3)) * 3000, "arm": "a", "bid": 1.0, "position": 1, "quality": 1.0})
+    c.register("many", bids)
+    sql = render_sql("check_day_bids", relation="many")
+    whole = c.execute(sql, {"auction_columns": [], "auctions_every": 1}).df()
+    assert len(whole) == len(bids)
+    for k in (2, 3):
+        part = c.execute(sql, {"auction_columns": [], "auctions_every": k}).df()
+        sizes = part.groupby("auction_id").size()
+        assert (sizes == 3).all()  # whole auctions only
+        kept = set(c.execute("select distinct auction_id from many where hash(auction_id) % $k = 0", {"k": k}).df()["auction_id"])
+        assert set(sizes.index) == kept
+        assert abs(len(sizes) / 3000 - 1 / k) < 4 * (1 / k * (1 - 1 / k) / 3000) ** 0.5  # binomial: about 1 in k
 
 
 def test_check_trailing_bids_window(con):
