@@ -13,8 +13,7 @@ rows keep the order the local engine reads them in (files by path, rows by posit
 pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
-only, which Spark shuffles as a few Arrow payloads per input partition
-(:mod:`counterbid.readers.spark_batches`; the worker puts them in read order);
+only, which Spark hands it already in read order (the sort that groups the shard, one key longer);
 the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
 bidder).
 
@@ -48,7 +47,6 @@ from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .shards import ShardPieces
-from .spark_batches import PAYLOAD_COLUMNS, pack_by_shard, unpack_payloads
 from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_grams, partition_gram
 from .shards import max_bids_per_shard as _max_bids_setting
 
@@ -338,7 +336,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     shard = int(table.column("shard")[0].as_py())
     where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
     order = table.column("bid_order").to_numpy()
-    if (order[1:] < order[:-1]).any():  # the payloads arrive in any order: a copy only when they are not in order
+    if (order[1:] < order[:-1]).any():  # Spark sorts the shard's rows by it already; a copy only if it did not
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
     n_bids = table.num_rows
@@ -441,8 +439,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
 
-    def one_shard(payloads: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
-        return _shard_answer(unpack_payloads(payloads), experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
+    def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
+        return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
                              columns=columns, sums_apart=bidder_gram)
 
     collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
@@ -451,12 +449,13 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         return partition_gram(batches, collected)
 
     try:
-        # only the columns the estimate reads travel (as the local reader reads only those), cut by
-        # shard into a few Arrow payloads per input partition: Spark shuffles those, not every bid
-        # as a row (the shard's worker puts its bids in read order); one task per shard
+        # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
+        # rows of a shard in read order: the sort Spark needs for the groups anyway, one key longer
+        # only the columns the estimate reads travel (as the local reader reads only those)
+        grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
+                   .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
         with _quiet_pyspark():
-            packed = sharded.select(*columns, "shard", "bid_order").mapInArrow(pack_by_shard, PAYLOAD_COLUMNS)
-            out = packed.repartition(int(shards), "shard").groupBy("shard").applyInArrow(one_shard, _ANSWER)
+            out = grouped.applyInArrow(one_shard, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
                 out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
             rows = out.collect()
