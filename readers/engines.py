@@ -170,5 +170,6 @@ def estimate_bid_log(path: str | Path, experiment: Experiment, *, engine: Engine
     engine = engine or LocalEngine()
     found = engine.log_pieces(str(path), experiment, max_bids_per_shard=max_bids_per_shard, cluster=cluster)
     result = combine_pieces(found.pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                            n_excluded_auctions=found.n_excluded_auctions, source=str(path), bidder_gram=found.gram)
+                            n_excluded_auctions=found.n_excluded_auctions, source=str(path), bidder_gram=found.gram,
+                            segment_grams=found.segment_grams)
     return result.on(shards=found.shards, engine=engine.name)

@@ -252,12 +252,14 @@ class ShardPieces:
 
     ``gram``: the input's bidder sums as a :class:`~counterbid.estimators.BidderGram` when an
     engine added them per bidder itself (the Spark engine); the pieces then carry none.
+    ``segment_grams``: the same per segment label, when the pieces are segmented.
     """
 
     pieces: list[StratumPiece]
     n_excluded_auctions: int
     shards: int = 1
     gram: BidderGram | None = None
+    segment_grams: dict[str, BidderGram] | None = None
 
 
 def pieces_by_shard(

@@ -15,8 +15,13 @@ so the shards' sums must meet on the bidder before they are squared. On Spark:
 3. the driver adds the partitions' forms, each rescaled by a power of two
    (:func:`combined_gram`; exact unless it under- or overflows).
 
+A segmented experiment needs one form per segment beside the pooled one. The shard's rows are
+then per (segment, bidder); a partition adds a bidder's rows of all segments into the pooled
+``U_b`` and each segment's rows into that segment's, and returns one Gram row per form
+(:func:`combined_grams` adds them per form on the driver).
+
 Driver memory: the pieces without bidder sums, plus one ``(K + 1) x (K + 1)`` matrix per
-partition -- independent of the number of bidders. Step 2's workers hold one partition's rows.
+partition and form -- independent of the number of bidders. Step 2's workers hold one partition's rows.
 
 References
 ----------
@@ -27,7 +32,7 @@ References
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -36,12 +41,13 @@ import pyarrow.compute as pc
 
 from counterbid.estimators import BidderGram, StratumPiece, bidder_totals
 
-__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_rows", "bidder_table", "combined_gram", "ids_text", "partition_gram"]
+__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_rows", "bidder_table", "combined_gram", "combined_grams", "ids_text", "partition_gram"]
 
-#: Columns of a shard's per-bidder rows (null on its answer row).
-BIDDER_COLUMNS = "bidder_id string, bidder_unit int, bidder_sums array<double>"
-#: Columns of a partition's Gram row (null on the answer rows passed through).
-GRAM_COLUMNS = "part_bidders long, part_unit int, part_gram array<double>"
+#: Columns of a shard's per-bidder rows (null on its answer row); ``bidder_segment`` is null unless segmented.
+BIDDER_COLUMNS = "bidder_id string, bidder_segment string, bidder_unit int, bidder_sums array<double>"
+#: Columns of a partition's Gram rows (null on the answer rows passed through): ``part_segment``
+#: null for the pooled form (every segment together), else the segment label of the form.
+GRAM_COLUMNS = "part_segment string, part_bidders long, part_unit int, part_gram array<double>"
 
 
 def ids_text(ids: np.ndarray) -> pa.Array:
@@ -77,8 +83,12 @@ def _list_column(matrix: np.ndarray) -> pa.Array:
     return pa.ListArray.from_arrays(offsets, pa.array(np.ascontiguousarray(matrix, dtype=float).ravel(), pa.float64()))
 
 
-def bidder_table(ids: pa.Array, unit: int, sums: np.ndarray, shard: int, answer_schema: pa.Schema) -> pa.Table:
-    """The per-bidder rows of one shard, in the answer's schema (answer columns null but ``shard``)."""
+def bidder_table(ids: pa.Array, unit: int, sums: np.ndarray, shard: int, answer_schema: pa.Schema,
+                 segment: str | None = None) -> pa.Table:
+    """The per-bidder rows of one shard (of one segment's pieces when ``segment``), in the answer's schema.
+
+    Answer columns are null but ``shard``; ``bidder_segment`` is ``segment`` (null when not segmented).
+    """
     n = len(ids)
     columns = {}
     for field in answer_schema:
@@ -86,6 +96,8 @@ def bidder_table(ids: pa.Array, unit: int, sums: np.ndarray, shard: int, answer_
             columns["shard"] = pa.array(np.full(n, shard, dtype=np.int64))
         elif field.name == "bidder_id":
             columns["bidder_id"] = ids
+        elif field.name == "bidder_segment":
+            columns["bidder_segment"] = pa.array([segment] * n, pa.string())
         elif field.name == "bidder_unit":
             columns["bidder_unit"] = pa.array(np.full(n, unit, dtype=np.int32))
         elif field.name == "bidder_sums":
@@ -96,13 +108,17 @@ def bidder_table(ids: pa.Array, unit: int, sums: np.ndarray, shard: int, answer_
 
 
 def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> Iterator[pa.RecordBatch]:
-    """One partition of the shards' rows, by bidder: answer rows passed through, bidder rows into one Gram row.
+    """One partition of the shards' rows, by bidder: answer rows passed through, bidder rows into Gram rows.
 
-    Every bidder's rows are in this partition (Spark partitioned them by ``bidder_id``); they are
-    added per bidder in the partition's largest unit ``2**e_p`` and squared:
-    ``part_gram = sum_b U_b U_b'`` (row-major), ``part_bidders = B_p``, ``part_unit = e_p``.
+    Every bidder's rows are in this partition (Spark partitioned them by ``bidder_id``). A row is
+    one bidder's totals over one shard's pieces (of one segment, when the experiment is
+    segmented). The pooled form adds every row of a bidder, whatever its segment (a bidder's
+    ``U_b`` is the sum of its per-segment totals: the strata of the segments partition the
+    strata); each segment's form adds only that segment's rows. Each form is added in its rows'
+    largest unit ``2**e`` and squared: ``part_gram = sum_b U_b U_b'`` (row-major),
+    ``part_bidders = B``, ``part_unit = e``, ``part_segment`` null for the pooled form.
     """
-    ids, units, sums = [], [], []
+    ids, segments, units, sums = [], [], [], []
     for batch in batches:
         table = pa.Table.from_batches([batch])
         answer = table.column("bidder_id").is_null()
@@ -111,31 +127,75 @@ def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> 
             yield from _in_schema(rows, out_schema).to_batches()
             table = table.filter(pc.invert(answer))
         if table.num_rows:
-            ids.append(table.column("bidder_id"))
+            ids.append(table.column("bidder_id").to_numpy())
+            segments.append(table.column("bidder_segment").to_numpy(zero_copy_only=False))
             units.append(table.column("bidder_unit").to_numpy())
             flat = table.column("bidder_sums").combine_chunks()
             sums.append(flat.flatten().to_numpy(zero_copy_only=False).reshape(table.num_rows, -1))
     if not ids:
         return
-    unit_of_row = np.concatenate(units)
-    top = int(unit_of_row.max())
-    scaled = np.concatenate(sums) * np.ldexp(1.0, unit_of_row - top)[:, None]
-    codes, uniques = pd.factorize(pa.chunked_array([c for i in ids for c in i.chunks]).to_numpy(zero_copy_only=False))
+    id_of_row, segment_of_row = np.concatenate(ids), np.concatenate(segments)
+    unit_of_row, sums_of_row = np.concatenate(units), np.concatenate(sums)
+    forms = [(None, slice(None))]
+    labels = pd.unique(segment_of_row[pd.notna(segment_of_row)])
+    forms += [(str(label), segment_of_row == label) for label in sorted(labels)]
+    for label, rows in forms:
+        bidders, unit, gram = _gram_of_rows(id_of_row[rows], unit_of_row[rows], sums_of_row[rows])
+        row = {field.name: pa.nulls(1, field.type) for field in out_schema}
+        row["part_segment"] = pa.array([label], pa.string())
+        row["part_bidders"] = pa.array([bidders], pa.int64())
+        row["part_unit"] = pa.array([unit], pa.int32())
+        row["part_gram"] = _list_column(gram.reshape(1, -1))
+        yield from pa.table(row, schema=out_schema).to_batches()
+
+
+def _gram_of_rows(ids: np.ndarray, units: np.ndarray, sums: np.ndarray) -> tuple[int, int, np.ndarray]:
+    """Rows of (bidder id, unit exponent, sums) added per bidder in their largest unit, then ``sum_b U_b U_b'``."""
+    top = int(units.max())
+    scaled = sums * np.ldexp(1.0, units - top)[:, None]
+    codes, uniques = pd.factorize(ids)
     totals = np.zeros((len(uniques), scaled.shape[1]))
     for j in range(scaled.shape[1]):
         totals[:, j] = np.bincount(codes, weights=scaled[:, j], minlength=len(uniques))
-    gram = totals.T @ totals
-    row = {field.name: pa.nulls(1, field.type) for field in out_schema}
-    row["part_bidders"] = pa.array([len(uniques)], pa.int64())
-    row["part_unit"] = pa.array([top], pa.int32())
-    row["part_gram"] = _list_column(gram.reshape(1, -1))
-    yield from pa.table(row, schema=out_schema).to_batches()
+    return len(uniques), top, totals.T @ totals
 
 
 def _in_schema(rows: pa.Table, schema: pa.Schema) -> pa.Table:
     """``rows`` with ``schema``'s columns: its own where it has them, nulls for the others."""
     return pa.table({f.name: rows.column(f.name) if f.name in rows.column_names else pa.nulls(rows.num_rows, f.type)
                      for f in schema}, schema=schema)
+
+
+def combined_grams(parts: Iterable[tuple[str | None, int, int, Sequence[float]]], size: int,
+                   units: Mapping[str | None, int]) -> dict[str | None, BidderGram]:
+    """The partitions' Gram rows added per form: the pooled one (key ``None``) and each segment's.
+
+    Parameters
+    ----------
+    parts : iterable of (str or None, int, int, sequence of float)
+        Each partition's form: segment label (``None``: pooled), distinct bidders, unit exponent
+        and row-major ``(size, size)`` matrix.
+    size : int
+        Revenue labels ``K + 1``.
+    units : mapping of str or None to int
+        Unit exponent of each form's result (at least its partitions'): the largest bid exponent
+        of the pieces it describes.
+
+    Returns
+    -------
+    dict of str or None to BidderGram
+
+    References
+    ----------
+    .. [1] Cameron, A. C. & Miller, D. L. (2015). J. Human Resources 50(2), 317-372.
+    """
+    by_form: dict[str | None, list] = {}
+    for label, bidders, part_unit, values in parts:
+        by_form.setdefault(label, []).append((bidders, part_unit, values))
+    unknown = sorted(set(by_form) - set(units), key=str)
+    if unknown:
+        raise ValueError(f"Gram rows of segment {unknown[0]!r}, which has no pieces")
+    return {label: combined_gram(by_form.get(label, []), size, units[label]) for label in units}
 
 
 def combined_gram(parts: Iterable[tuple[int, int, Sequence[float]]], size: int, unit: int) -> BidderGram:

@@ -47,7 +47,7 @@ from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .shards import ShardPieces
-from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_gram, partition_gram
+from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_grams, partition_gram
 from .shards import max_bids_per_shard as _max_bids_setting
 
 __all__ = [
@@ -356,10 +356,13 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     except InputError as exc:
         error = str(exc)
     with_sums = bool(pieces) and all(p.bidder_sums is not None for p in pieces)
-    if sums_apart and with_sums:
-        ids, unit, sums = bidder_rows(pieces)
-        pieces = [p.without_bidder_sums() for p in pieces]
     schema = _answer_schema()
+    per_bidder = []
+    if sums_apart and with_sums:  # one set of rows per segment (one set when not segmented)
+        for label in sorted({p.key.segment for p in pieces}, key=lambda v: (v is not None, v or "")):
+            ids, unit, sums = bidder_rows([p for p in pieces if p.key.segment == label])
+            per_bidder.append(bidder_table(ids, unit, sums, shard, schema, segment=label))
+        pieces = [p.without_bidder_sums() for p in pieces]
     answer = pa.table({
         "shard": pa.array([shard], pa.int64()), "n_bids": pa.array([n_bids], pa.int64()),
         "n_excluded": pa.array([excluded], pa.int64()), "single_bidders": pa.array([single_bidders], pa.bool_()),
@@ -367,12 +370,10 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
         "with_sums": pa.array([with_sums], pa.bool_()),
-        "bidder_id": pa.nulls(1, pa.string()), "bidder_unit": pa.nulls(1, pa.int32()),
-        "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
+        "bidder_id": pa.nulls(1, pa.string()), "bidder_segment": pa.nulls(1, pa.string()),
+        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
     }, schema=schema)
-    if sums_apart and with_sums:
-        return pa.concat_tables([answer, bidder_table(ids, unit, sums, shard, schema)])
-    return answer
+    return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
 
 
 def _answer_schema(with_gram: bool = False) -> pa.Schema:
@@ -380,9 +381,10 @@ def _answer_schema(with_gram: bool = False) -> pa.Schema:
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
               ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
               ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_id", pa.string()),
-              ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
+              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
     if with_gram:
-        fields += [("part_bidders", pa.int64()), ("part_unit", pa.int32()), ("part_gram", pa.list_(pa.float64()))]
+        fields += [("part_segment", pa.string()), ("part_bidders", pa.int64()), ("part_unit", pa.int32()),
+                   ("part_gram", pa.list_(pa.float64()))]
     return pa.schema(fields)
 
 
@@ -419,7 +421,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         As :func:`counterbid.readers.shards.pieces_by_shard`: the pieces by shard, then number of
         bidders, and the single-bidder auctions left out; with ``bidder_gram``, the bidder
         window of the input (``gram``; ``None`` when some shard's pieces carry no bidder sums,
-        which combine by auction as the local engine's do).
+        which combine by auction as the local engine's do) and, for a segmented experiment, each
+        segment's (``segment_grams``).
 
     Raises
     ------
@@ -435,9 +438,6 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
-    # a segmented experiment needs one Gram form per segment as well as the pooled one; until the
-    # executors build those, its bidder sums travel with the pieces (driver memory ~ the day's bidders)
-    bidder_gram = bidder_gram and not experiment.segments
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
@@ -464,7 +464,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
             raise _analysis_error(exc, source) from None
         raise _as_engine_failure(exc, source)
     answers = sorted((r for r in rows if r["n_bids"] is not None), key=lambda r: r["shard"])
-    parts = [(r["part_bidders"], r["part_unit"], r["part_gram"]) for r in rows
+    parts = [(r["part_segment"], r["part_bidders"], r["part_unit"], r["part_gram"]) for r in rows
              if bidder_gram and r["part_bidders"] is not None]
     del rows
     if expected_bids is not None and sum(int(a["n_bids"]) for a in answers) != int(expected_bids):
@@ -489,11 +489,14 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     if not pieces:  # as locally: several shards of single-bidder auctions only, or no bids at all
         raise no_pieces_error(source, experiment.id, single_bidders=any(a["single_bidders"] for a in answers),
                               n_excluded_auctions=excluded)
-    gram = None
-    if bidder_gram and every_sum:
-        size = len(pieces[0].sum_labels)
-        gram = combined_gram(parts, size, max(p.bid_exponent for p in pieces))
-    return ShardPieces(pieces, excluded, int(shards), gram=gram)
+    if not (bidder_gram and every_sum):
+        return ShardPieces(pieces, excluded, int(shards))
+    units = {None: max(p.bid_exponent for p in pieces)}
+    for p in pieces:  # each segment's form in the unit of its own pieces (combine_pieces rescales it)
+        if p.key.segment is not None:
+            units[p.key.segment] = max(units.get(p.key.segment, p.bid_exponent), p.bid_exponent)
+    grams = combined_grams(parts, len(pieces[0].sum_labels), units)
+    return ShardPieces(pieces, excluded, int(shards), gram=grams.pop(None), segment_grams=grams or None)
 
 
 def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):

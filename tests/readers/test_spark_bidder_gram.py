@@ -29,7 +29,7 @@ import yaml
 
 from counterbid.estimators import bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
-from counterbid.readers.spark_bidder_gram import bidder_rows, bidder_table, combined_gram, partition_gram
+from counterbid.readers.spark_bidder_gram import bidder_rows, bidder_table, combined_gram, combined_grams, partition_gram
 from counterbid.readers.spark_shards import _answer_schema
 
 SPEC = """experiments:
@@ -92,6 +92,81 @@ def test_partition_grams_add_up_to_the_plain_form(tmp_path):
                              bidder_gram=gram)
     by_sums = combine_pieces(found.pieces, EXPERIMENT, cluster="auto")
     assert by_gram.cluster == by_sums.cluster == "bidder"
+    _close(by_gram.table, by_sums.table, 1e-12)
+
+
+SEGMENTED_SPEC = """experiments:
+  - id: ledges-bays
+    control_arm: flat
+    segments: [bay]
+    arms:
+      - {name: flat, share: 0.5, position_weights: [0.33, 0.16, 0.06]}
+      - {name: tiered, share: 0.5, position_weights: [0.36, 0.12, 0.04]}
+"""
+SEGMENTED = parse_experiments(yaml.safe_load(SEGMENTED_SPEC))["ledges-bays"]
+
+
+def _segmented_log(n_auctions: int, bidder_pool: int, rng: int = 21) -> pd.DataFrame:
+    """Two bays with their own values and bidder counts; bidders (text ids) bid in both bays."""
+    from counterbid.estimators import SimulatedSegment, simulate_segmented_experiment
+
+    bays = {"dock": SimulatedSegment(st.lognorm(0.4, scale=1.5), {3: 0.5, 5: 0.5}, 0.6),
+            "yard": SimulatedSegment(st.gamma(2.0, scale=0.3), {2: 0.3, 4: 0.7}, 0.4)}
+    bids = simulate_segmented_experiment(bays, SEGMENTED, n_auctions=n_auctions, rng=rng, column="bay",
+                                         bidder_pool=bidder_pool)
+    bids["bidder_id"] = "seat-" + bids["bidder_id"].astype(str)
+    return bids
+
+
+def _partition_forms(found, n_partitions: int = 3) -> dict:
+    """The shards' per-(segment, bidder) rows through partition_gram, added per form on the driver."""
+    schema = _answer_schema()
+    rows = []
+    for shard in sorted({p.key.shard for p in found.pieces}):
+        mine = [p for p in found.pieces if p.key.shard == shard]
+        for label in sorted({p.key.segment for p in mine}):
+            ids, unit, sums = bidder_rows([p for p in mine if p.key.segment == label])
+            rows.append(bidder_table(ids, unit, sums, shard, schema, segment=label))
+    rows = pa.concat_tables(rows)
+    by_bidder = pd.Series(rows.column("bidder_id").to_pylist())
+    segment = pd.Series(rows.column("bidder_segment").to_pylist())
+    # the same bidder in both segments: the pooled form must add a bidder's rows across segments
+    assert by_bidder.groupby(by_bidder).transform(lambda s: segment[s.index].nunique()).gt(1).sum() > 500
+    partition = np.array([zlib.crc32(s.encode()) % n_partitions for s in by_bidder])
+    out = _answer_schema(with_gram=True)
+    parts = []
+    for k in range(n_partitions):
+        for batch in partition_gram(iter(rows.filter(pa.array(partition == k)).to_batches(max_chunksize=500)), out):
+            assert batch.schema == out
+            parts += [(r["part_segment"], r["part_bidders"], r["part_unit"], r["part_gram"]) for r in batch.to_pylist()]
+    units = {None: max(p.bid_exponent for p in found.pieces)}
+    for p in found.pieces:
+        units[p.key.segment] = max(units.get(p.key.segment, p.bid_exponent), p.bid_exponent)
+    return combined_grams(parts, len(found.pieces[0].sum_labels), units)
+
+
+def test_segment_forms_add_up_to_each_segments_plain_form(tmp_path):
+    """Per-(segment, bidder) rows give the pooled form and one form per segment, each the plain ``sum_b U_b U_b'``."""
+    path = tmp_path / "bays.parquet"
+    _segmented_log(5000, bidder_pool=2500).to_parquet(path, index=False)
+    found = LocalEngine().log_pieces(str(path), SEGMENTED, max_bids_per_shard=4000, cluster="bidder")
+    assert found.shards >= 4
+    grams = _partition_forms(found)
+    assert set(grams) == {None, "dock", "yard"}
+    plain = {None: gram_of(bidder_totals(found.pieces))}
+    for label in ("dock", "yard"):
+        plain[label] = gram_of(bidder_totals([p for p in found.pieces if p.key.segment == label]))
+    for label, form in plain.items():
+        assert grams[label].n_bidders == form.n_bidders, label
+        assert grams[label].bid_exponent == form.bid_exponent, label
+        np.testing.assert_allclose(grams[label].gram, form.gram, rtol=1e-12, atol=0, err_msg=str(label))
+    # a bidder of both bays counts once in the pooled form, once in each bay's
+    assert grams[None].n_bidders < grams["dock"].n_bidders + grams["yard"].n_bidders
+    pooled = grams.pop(None)
+    by_gram = combine_pieces([p.without_bidder_sums() for p in found.pieces], SEGMENTED, cluster="bidder",
+                             bidder_gram=pooled, segment_grams=grams)
+    by_sums = combine_pieces(found.pieces, SEGMENTED, cluster="bidder")
+    assert set(by_gram.segments) == {"dock", "yard"}
     _close(by_gram.table, by_sums.table, 1e-12)
 
 
@@ -177,3 +252,23 @@ def test_a_failed_spark_job_reports_its_cause_in_one_line(tmp_path, java_home, s
     assert ours[0].startswith(f"counterbid: error: {log}: the Spark engine failed: {cause}"), ours[0]
     assert "no shard holds bids" not in done.stderr
     assert "Traceback" not in done.stderr and "\tat " not in done.stderr  # no Python or Java stack
+
+
+@pytest.mark.spark
+def test_segmented_bidder_clustering_on_spark_equals_the_local_engine(spark, tmp_path):
+    """Segmented, clustered by bidder, several shards: one Gram form per segment from the executors, the local rows."""
+    from counterbid.readers.engines import SparkEngine
+
+    path = tmp_path / "bays.parquet"
+    _segmented_log(4000, bidder_pool=2000).to_parquet(path, index=False)
+    found = SparkEngine(spark).log_pieces(str(path), SEGMENTED, max_bids_per_shard=3500, cluster="bidder")
+    # the Gram route: no piece brought its bidder sums to the driver
+    assert found.shards >= 4 and all(p.bidder_sums is None for p in found.pieces)
+    assert found.gram is not None and set(found.segment_grams) == {"dock", "yard"}
+    local = estimate_bid_log(path, SEGMENTED, max_bids_per_shard=3500, cluster="bidder")
+    on_spark = estimate_bid_log(str(path), SEGMENTED, engine=SparkEngine(spark), max_bids_per_shard=3500,
+                                cluster="bidder")
+    assert local.cluster == on_spark.cluster == "bidder" and local.segments == on_spark.segments
+    assert len(local.table) == len(on_spark.table) and local.table["segment"].notna().any()
+    assert list(local.table["segment"].astype(str)) == list(on_spark.table["segment"].astype(str))
+    _close(on_spark.table, local.table, 1e-9)
