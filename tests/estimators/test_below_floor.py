@@ -193,3 +193,17 @@ def test_a_segment_below_the_floor_has_zero_revenue_and_no_interval():
     assert np.isnan(ebb.loc[("beacon", "revenue_lift_vs_control"), "estimate"])
     pooled = out[out.index.get_level_values(0).isna()] if out.index.get_level_values(0).isna().any() else None
     assert pooled is not None and np.isfinite(pooled["std_error"].to_numpy(float)[:1]).all()
+
+
+def test_the_equilibrium_checks_skip_a_stratum_below_the_floor():
+    """The value inversion needs eligible bids: a stratum without them is listed as skipped, not a failure."""
+    from counterbid.estimators.checks import monotone_values_check, shading_check
+
+    exp, bids = _log("first_price", n_auctions=1600)
+    n = bids.groupby("auction_id")["bid"].transform("size").to_numpy()
+    day = _sink(bids, n == 3)
+    assert (n == 3).sum() >= 1000  # the stratum is large enough to be checked, were its bids eligible
+    for check in (monotone_values_check, shading_check):
+        result = check(day, exp)
+        assert result.details["skipped_strata"] == {"3": 0}, result.details  # JSON-ready keys
+        assert result.observed is not None  # the 5-bidder stratum was checked
