@@ -27,8 +27,8 @@ import pytest
 import scipy.stats as st
 
 from counterbid.estimators import (
-    InputError, allocation_rule, combine_pieces, estimate_arms, parse_experiments, shard_of, simulate_experiment,
-    stratum_pieces,
+    InputError, allocation_rule, bidder_totals, combine_pieces, estimate_arms, gram_of, parse_experiments, shard_of,
+    simulate_experiment, stratum_pieces,
 )
 from counterbid.estimators.allocation import mixture_rule
 from counterbid.estimators.payment_rules import Floor
@@ -121,6 +121,11 @@ def test_a_shard_below_the_floor_keeps_its_auctions_at_zero(rule, cluster):
     else:
         g, g_r = day["bidder_id"].nunique(), day.loc[shard != 1, "bidder_id"].nunique()
         assert g > g_r  # some bidders bid only in the sunk shard: they count, with zero sums
+        gram = gram_of(bidder_totals(pieces))  # the running totals of the experiment to date count them too
+        assert gram.n_bidders == g
+        by_gram = combine_pieces(pieces, exp, cluster=cluster, bidder_gram=gram).table.set_index(["arm", "metric"])
+        np.testing.assert_allclose(by_gram["std_error"].to_numpy(float), whole["std_error"].to_numpy(float),
+                                   rtol=1e-12)
     ratio = m_r / m
     for arm in ["lantern", "beacon", "_mixture"]:
         got, want = whole.loc[(arm, REV)], alone.loc[(arm, REV)]
