@@ -518,14 +518,20 @@ def _refuse_bids_above_max(bid: np.ndarray, experiment: Experiment, rows: np.nda
 
 def _refuse_bids_against_floor(bid: np.ndarray, position: np.ndarray, floor: float, rows: np.ndarray | None,
                                source: str, *, has_quality: bool) -> None:
-    """A sub-floor bid must be unshown (null position), and some bid must reach the floor."""
+    """A sub-floor bid must be unshown (null position).
+
+    Bids that all lie below the floor are no fault of one input: a shard or stratum of a day may hold
+    no eligible bid by chance (its revenue is 0, :mod:`.pieces`); only a day with none at all is
+    refused, where its pieces are combined (:func:`~.combine.combine_pieces`).
+    """
     what = "effective bid (bid x quality)" if has_quality else "bid"
-    if not bid.max() >= floor:
-        raise InputError(f"{source}: the floor {floor!r} lies above every {what} (largest {float(bid.max())!r}); "
-                         "nothing is eligible to estimate from")
     shown = np.flatnonzero((bid < floor) & (position > 0))
     if shown.size:
         i = int(shown[0])
+        if not bid.max() >= floor:  # shown bids, none eligible: most likely a floor the spec states wrongly
+            raise InputError(f"{source}: the floor {floor!r} lies above every {what} (largest {float(bid.max())!r}), "
+                             f"yet row {_row(rows, i)} has position {int(position[i])}; is the spec's floor right? "
+                             "(sub-floor bids are logged with a null position)")
         raise InputError(f"{source}: row {_row(rows, i)} has {what} {float(bid[i])!r} below the floor {floor!r} but "
                          f"position {int(position[i])}; sub-floor bids are logged with a null position")
 

@@ -571,9 +571,14 @@ def _strata_bids(data) -> dict[int, np.ndarray]:
 
 def _inversions(data, experiment: Experiment, cfg: Mapping[str, Any]) -> tuple[list[InferredValues], dict[int, int]]:
     fits, skipped = [], {}
+    floor = float(experiment.floor or 0.0)
     for n, b in _strata_bids(data).items():
         if b.size < cfg["min_bids"]:
             skipped[n] = int(b.size)
+            continue
+        eligible = b.size - int(np.searchsorted(b, floor, side="left")) if floor > 0 else b.size
+        if eligible < 8:  # (almost) every bid below the floor: no values to infer (docs/method.md)
+            skipped[n] = int(eligible)
             continue
         fits.append(inferred_values(b, experiment, n, knots=cfg["knots"], grid=cfg["grid"],
                                     q_low=cfg["q_low"], q_high=cfg["q_high"]))
@@ -599,8 +604,8 @@ def monotone_values_check(bids, experiment: Experiment, *, config: Mapping[str, 
         ``observed`` is the largest (over strata) share of the grid where the implied value has
         fallen: it lies below its running maximum by more than ``tolerance`` times the range of
         the implied values (so sampling wiggles of the spline do not count); ``threshold`` is
-        ``max_falling_share``. Strata with fewer than ``min_bids`` bids
-        are skipped (listed in ``details``).
+        ``max_falling_share``. Strata with fewer than ``min_bids`` bids, or fewer than 8 at or
+        above the floor, are skipped (listed in ``details``).
 
     Notes
     -----

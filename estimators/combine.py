@@ -219,6 +219,7 @@ def combine_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, *, co
     confidence_level = check_confidence_level(confidence_level)
     check_cluster(cluster)
     pieces = _checked_pieces(pieces, experiment, source)
+    _refuse_nothing_eligible(pieces, experiment, source)
     cluster, _ = _cluster_unit(pieces, cluster, source, bidder_gram)
     welfare_identified = _warn_about(pieces, source)
     table = _table(pieces, experiment, cluster, confidence_level, welfare_identified, source, segment=None,
@@ -261,6 +262,8 @@ def _table(pieces: Sequence[StratumPiece], experiment: Experiment, cluster: str,
     variance[np.ix_(revenue_cols, revenue_cols)] = block
     if any("degenerate" in p.flags for p in pieces):
         estimate[:] = np.nan
+    if all(p.below_floor for p in pieces):  # a segment without an eligible bid (a day's are refused): 0, no interval
+        variance[:] = np.nan
     support = _support(pieces, w, k_arms)
     for j in np.flatnonzero(support.thin):  # no number for a layout the bids say too little about
         estimate[[k_arms + j, k_targets + k_arms + j]] = np.nan
@@ -353,6 +356,24 @@ def _checked_pieces(pieces: Iterable[StratumPiece], experiment: Experiment, sour
             raise InputError(f"{source}: two pieces of {p.key.describe()} (the same stratum twice)")
         seen.add(p.key)
     return pieces
+
+
+def _refuse_nothing_eligible(pieces: Sequence[StratumPiece], experiment: Experiment, source: str) -> None:
+    """Refuse pieces none of which holds a bid at or above the floor (every ``q* = 1``).
+
+    Each such piece is an honest 0 with zero influence, but all of them together would publish
+    revenue 0 with a zero-width interval, which the bids cannot support (``q* = 1`` is estimated
+    with variance ``q*(1 - q*)/N = 0``), and the lift would be 0/0 (docs/method.md).
+    """
+    if not experiment.floor or not all(p.below_floor for p in pieces):
+        return
+    what = "effective bid (bid x quality)" if any(p.has_quality for p in pieces) else "bid"
+    days = sorted({p.key.day for p in pieces if p.key.day is not None})
+    when = "" if not days else f" on {days[0]}" if len(days) == 1 else f" on {days[0]} to {days[-1]}"
+    largest = max(float(p.max_bid) for p in pieces)
+    raise InputError(f"{source}: the floor {float(experiment.floor)!r} lies above every {what} of experiment "
+                     f"{experiment.id!r}{when} (largest {largest!r}, {sum(p.n_bids for p in pieces)} bids); "
+                     "nothing is eligible to estimate from")
 
 
 def _weights(pieces: Sequence[StratumPiece]) -> tuple[np.ndarray, int]:

@@ -49,7 +49,7 @@ STATUS_FLAGS = {
     "not_identified": "welfare: the mixture's top (or bottom) positions weigh the same, so values there "
                       "cannot be recovered from bids: NaN",
     "no_interval": "the estimate stands without a standard error or interval (welfare always, see estimate_arms; "
-                   "or fewer than two clusters)",
+                   "or fewer than two clusters; or a segment none of whose bids reaches the floor: revenue 0)",
     "no_auctions": "realized per-arm average of an arm that ran in no auction: NaN",
     "thin_support": "a what-if layout the mixture's bids say too little about: its weights are unbounded, or "
                     "it leans on fewer effective bids than MIN_STRATUM_BIDS (docs/method.md, 'Layouts that did "

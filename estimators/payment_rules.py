@@ -88,7 +88,8 @@ class Floor:
     value : float
         The floor ``r`` (> 0). Bids below it are ineligible.
     quantile : float
-        Its quantile ``q* = F(r)`` in [0, 1): in data, the share of sub-floor bids.
+        Its quantile ``q* = F(r)`` in [0, 1]: in data, the share of sub-floor bids (1: no bid
+        reaches the floor, and every estimate built on it is 0; docs/method.md).
     """
 
     value: float
@@ -98,9 +99,8 @@ class Floor:
         r, qs = float(self.value), float(self.quantile)
         if not np.isfinite(r) or r <= 0:
             raise InputError(f"`floor` must be a finite number > 0; got {self.value!r}")
-        if not (0.0 <= qs < 1.0):
-            raise InputError(
-                f"the floor's quantile must lie in [0, 1); got {self.quantile!r} (a floor above every bid?)")
+        if not (0.0 <= qs <= 1.0):
+            raise InputError(f"the floor's quantile must lie in [0, 1]; got {self.quantile!r}")
 
 
 def _nodes(grid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

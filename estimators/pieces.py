@@ -97,7 +97,7 @@ class StratumPiece:
         The linear quantities, :func:`piece_labels`: revenue per arm, welfare per arm, mixture revenue.
     estimate : ndarray, shape (L,)
         The stratum's estimate of each label (per auction). NaN for a degenerate stratum, and for
-        welfare where it is not identified.
+        welfare where it is not identified; 0 for every label when no bid reaches the floor.
     covariance : ndarray, shape (L, L)
         Auction-clustered covariance of ``estimate`` without small-sample factor,
         ``sum_c S_c S_c'`` over the stratum's auctions with ``S_c`` the auction's summed influence
@@ -118,8 +118,8 @@ class StratumPiece:
         Per arm, the sum of the auctions' realized revenue and the sum of squared deviations of
         the auctions' realized revenue from the arm's mean in this stratum (0 without auctions).
     floor_quantile : float
-        The floor's estimated quantile ``q*`` (share of sub-floor bids); NaN without a floor or
-        when every bid lies below it.
+        The floor's estimated quantile ``q*`` (share of sub-floor bids); NaN without a floor; 1
+        when every bid lies below it (:attr:`below_floor`).
     max_bid : float
         The stratum's largest (effective) bid, in bid units.
     bid_exponent : int
@@ -169,6 +169,11 @@ class StratumPiece:
     @property
     def day(self) -> str | None:
         return self.key.day
+
+    @property
+    def below_floor(self) -> bool:
+        """Whether no bid of the stratum reaches the floor (``q* = 1``): its estimates and sums are 0."""
+        return self.floor_quantile == 1.0
 
     @property
     def sum_labels(self) -> tuple[tuple[str, str], ...]:
@@ -439,6 +444,8 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
             ids, codes = space.ids[present], present
     numbers = _Numbers(big_n, estimate, covariance, ids, None, codes, floor.quantile, top_bid, exponent, (),
                        np.full(k_targets - k_arms, np.nan))
+    if floor_value > 0 and floor.n_below == big_n:  # no eligible bid: revenue and welfare 0, influence 0
+        return _below_floor_numbers(numbers, k_targets, tuple(flags))
     if sorted_bids[0] == sorted_bids[-1]:
         flags.append("degenerate")
         _warn_degenerate(sorted_bids, n, exponent, floor_value, floor.floor is None, source)
@@ -495,6 +502,26 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
         if sums is not None:
             sums[:, t] = np.nan
     numbers.sums, numbers.flags = sums, tuple(flags)
+    return numbers
+
+
+def _below_floor_numbers(numbers: _Numbers, k_targets: int, flags: tuple[str, ...]) -> _Numbers:
+    """A stratum whose every bid lies below the floor: ``q* = 1``, every label 0, every influence 0.
+
+    With ``q* = N/N`` the weighted sum of the clamped bids (all ``r``) is ``n r Omega(1)`` and the
+    floor's term ``-n r Omega(1)`` cancels it (:func:`~.payment_rules.floor_terms`; Myerson's
+    ``r (1 - q*) y(q*)`` and the integral over ``q > q*`` vanish); each bid's influence is the
+    L-statistic's, 0 on equal bids, plus ``floor_slope (1{b < r} - q*) = 0`` (docs/method.md, "A
+    stratum with no bid at the floor"). The kernel gives the same to rounding (tested); here the
+    zeros are exact and no weights are built.
+    """
+    numbers.estimate[:] = 0.0
+    revenue = list(range(k_targets)) + [numbers.estimate.size - 1]
+    numbers.covariance[np.ix_(revenue, revenue)] = 0.0  # welfare rows stay NaN: no interval
+    numbers.own_variance[:] = 0.0
+    numbers.floor_quantile = 1.0
+    numbers.sums = None if numbers.ids is None else np.zeros((numbers.ids.size, k_targets + 1))
+    numbers.flags = flags
     return numbers
 
 

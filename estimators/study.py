@@ -301,7 +301,7 @@ def ordstat_revenue(
     cl = data.auction[order]
     big_n, g = b.size, data.n_auctions
     step = floor_step(b, float(floor)) if floor else FloorStep(None, 0)
-    if floor and step.floor is None:  # every bid below the floor: a degenerate stratum (as in estimate_arms)
+    if floor and step.floor is None:  # every bid below the floor: no number (estimate_arms refuses such an input)
         return OrdstatResult(np.full(len(targets), np.nan), np.full(len(targets), np.nan))
     weights = [_cached_weights(t, mixture, big_n, payment_rule, step.floor) for t in targets]
     se = np.empty(len(targets))

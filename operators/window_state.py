@@ -153,8 +153,9 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
             after[key] = (totals.bidder_ids, sums)
         write = _window_write(experiment, "extend", base_days, days_text, ds, grams, after, run_id, computed_at)
         return _inputs(window, grams, write, "extended")
-    full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
-    totals = _totals_by_key(pieces_of_rows(full) + mine, exponent)
+    # the rebuild needs the bidder sums too: read that one table and reuse the others read above
+    sums = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=[PIECE_TABLES["bidder_sums"]])
+    totals = _totals_by_key(pieces_of_rows({**small, **sums}) + mine, exponent)
     grams = {key: gram_of(t) for key, t in totals.items()}
     write = _window_write(experiment, "replace", None, days_text, ds, grams,
                           {key: (t.bidder_ids, t.sums) for key, t in totals.items()}, run_id, computed_at)

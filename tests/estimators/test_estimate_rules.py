@@ -168,9 +168,15 @@ def test_unknown_rule_refused():
 
 
 def test_floor_above_every_bid_refused():
+    """Shown bids under a floor above them all: the floor is named as the likely fault. Unshown ones: the
+    input has nothing eligible, refused where the whole input is combined (a shard alone is not refused,
+    tests/estimators/test_below_floor.py)."""
     exp, bids = small_log()
-    with pytest.raises(InputError, match="floor 5.0 lies above every bid"):
-        estimate_arms(bids, dataclasses.replace(exp, floor=5.0))
+    high = dataclasses.replace(exp, floor=5.0)
+    with pytest.raises(InputError, match=r"floor 5.0 lies above every bid \(largest .*\), yet row 0 has position"):
+        estimate_arms(bids, high)
+    with pytest.raises(InputError, match=r"floor 5.0 lies above every bid of experiment 'quillfen-rules' \(largest"):
+        estimate_arms(bids.assign(position=np.nan), high)
 
 
 def test_sub_floor_bid_with_a_position_refused():

@@ -251,8 +251,8 @@ def test_bad_inputs():
         revenue_weights(rule, rule, 10, payment_rule="second_price")
     with pytest.raises(InputError, match="floor"):
         revenue_weights(rule, rule, 10, floor=0.5)
-    with pytest.raises(InputError, match="above every bid"):
-        Floor(0.5, 1.0)
+    with pytest.raises(InputError, match=r"quantile must lie in \[0, 1\]; got 1.5"):
+        Floor(0.5, 1.5)
     with pytest.raises(InputError, match="floor"):
         Floor(-1.0, 0.2)
 

@@ -233,3 +233,45 @@ def test_segmented_shards_keep_each_segments_bidder_sums(tmp_path):
     revenue = day["metric"] == "revenue_per_auction"
     assert set(day["segment"].dropna()) == {"upper", "lower"} and set(day.loc[revenue, "cluster"]) == {"bidder"}
     _assert_same(_outputs(staged), want)
+
+
+def test_a_shard_with_no_bid_at_the_floor_gives_the_single_task_rows(tmp_path):
+    """Shard 2 of 4 holds no eligible bid: its task stores zero pieces (``floor_quantile`` 1), and the
+    shard tasks' rows equal the single task's and the estimator's own combination of the shards."""
+    from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
+
+    spec = {"experiments": [dict(SPEC["experiments"][0], id="lanterns-floor", floor=0.35)]}
+    exp = parse_experiments(spec)["lanterns-floor"]
+    lake = tmp_path / "bids"
+    write_bid_lake(lake, [exp], start=START, days=1, auctions_per_day=2400, n_bidders=4, seed=41)
+    path = lake / f"ds={START}" / "lanterns-floor.parquet"
+    frame = pq.read_table(path).to_pandas()
+    shard = shard_of(frame["auction_id"], 4)
+    frame.loc[shard == 2, "bid"] = np.linspace(0.01, 0.34, int((shard == 2).sum()))
+    frame.loc[shard == 2, "position"] = np.nan
+    frame["position"] = frame["position"].astype("Int64")
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), path)
+    hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+    stage = tmp_path / "stage"
+    staged, shards = _checked_day(lake, exp, stage, START, 2500)
+    assert shards == 4
+    single = partition.estimate_partition(hook, experiment=exp, ds=START, staging_root=stage, run_id="r")
+    want = _outputs(staged)
+    for k in range(4):
+        partition.estimate_partition_shard(exp, ds=START, staging_root=stage, shard=k)
+    mapped = partition.estimate_partition(hook, experiment=exp, ds=START, staging_root=stage, run_id="r",
+                                          shard_tasks=True)
+    assert mapped == single
+    got = _outputs(staged)
+    _assert_same(got, want)
+    stored = got["stratum_pieces"]
+    assert set(stored.loc[stored["shard"] == 2, "floor_quantile"]) == {1.0}
+    assert (stored.loc[stored["shard"] != 2, "floor_quantile"] < 1.0).all()
+    pieces = [p for k in range(4) for p in stratum_pieces(frame[shard == k].reset_index(drop=True), exp, shard=k,
+                                                          day=START, cluster="auto")]
+    reference = combine_pieces(pieces, exp, cluster="auto").table
+    rows = got["estimates_day"].merge(reference, on=["arm", "metric"], suffixes=("", "_ref"), validate="one_to_one")
+    assert len(rows) == len(reference)
+    for col in ("estimate", "std_error", "n_auctions"):
+        np.testing.assert_allclose(rows[col].to_numpy(float), rows[f"{col}_ref"].to_numpy(float), rtol=1e-12, atol=0,
+                                   err_msg=col)

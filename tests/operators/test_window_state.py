@@ -149,6 +149,29 @@ def test_a_write_without_the_window_drops_a_window_that_covers_its_day(lake, tmp
     assert _check_stored_window(hook, exp) == DAYS[:2]
 
 
+def test_a_rebuilt_window_reads_each_stored_piece_table_once(lake, tmp_path):
+    """A rerun rebuilds the window from the stored pieces: the strata, arms and covariance rows read for
+    the to-date pieces serve the rebuild too; only the bidder sums are read in addition."""
+    exp = _spec()
+    hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+    stage = tmp_path / "stage"
+    for day in DAYS[:3]:
+        _run_day(hook, lake, exp, stage, day, f"r-{day}")
+    reads = []
+    plain = hook.stored_piece_frames
+
+    def counted(**kw):
+        reads.extend(kw["tables"])
+        return plain(**kw)
+
+    hook.stored_piece_frames = counted  # the real hook, its reads listed
+    assert _run_day(hook, lake, exp, stage, DAYS[1], "again-2")["bidder_window"] == "rebuilt"
+    assert sorted(reads) == sorted(partition.PIECE_TABLES.values()), reads
+    del hook.stored_piece_frames
+    _check_against_full_recombination(hook, exp, DAYS[1], DAYS[:2])
+    assert _check_stored_window(hook, exp) == DAYS[:2]
+
+
 # -- a segmented experiment: pooled and per-segment windows -------------------------------------
 #: Two invented stalls of one market, of different value scales and auction sizes; the bidder ids of
 #: both come from one pool, so a bidder's totals differ between the pooled window and a segment's.

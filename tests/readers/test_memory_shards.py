@@ -18,7 +18,9 @@ import pandas as pd
 import pytest
 import scipy.stats as st
 
-from counterbid.estimators import combine_pieces, n_shards, parse_experiments, shard_of, simulate_experiment
+from counterbid.estimators import (
+    combine_pieces, n_shards, parse_experiments, shard_of, simulate_experiment, stratum_pieces,
+)
 from counterbid.estimators.errors import InputError
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
 from counterbid.readers.shards import bid_log_rows, pieces_by_shard, staged_bid_log_shards
@@ -168,3 +170,44 @@ def test_in_memory_split_reads_the_spec_auction_columns(tmp_path, monkeypatch, w
     for col in ("estimate", "std_error", "ci_low", "ci_high"):
         np.testing.assert_allclose(mem.table[col].to_numpy(float), plain.table[col].to_numpy(float), rtol=1e-12,
                                    atol=0, err_msg=col)
+
+
+FLOORED = parse_experiments({"experiments": [dict(SPEC["experiments"][0], id="crates-floor", floor=0.45)]})["crates-floor"]
+
+
+def _sunk_log(n_shards: int, sunk: int) -> pd.DataFrame:
+    """A floored log whose auctions of shard ``sunk`` all bid below the floor (unshown, as logged)."""
+    bids = simulate_experiment(st.lognorm(0.5, scale=0.8), FLOORED, n_bidders={3: 0.6, 5: 0.4},
+                               n_auctions=1800, rng=31, bidder_pool=700, floor=FLOORED.floor, payment_rule="gsp")
+    bids["auction_id"] = "crate-" + bids["auction_id"].astype(str)
+    bids["bidder_id"] = "stall-" + bids["bidder_id"].astype(str)
+    rows = shard_of(bids["auction_id"], n_shards) == sunk
+    bids.loc[rows, "bid"] = np.linspace(0.05, 0.44, int(rows.sum()))
+    bids.loc[rows, "position"] = np.nan
+    return bids
+
+
+@pytest.mark.parametrize("cluster", ["auto", "auction"])
+def test_a_shard_with_no_bid_at_the_floor_gives_the_same_day_on_every_split(tmp_path, monkeypatch, cluster):
+    """Shard 2 holds no eligible bid: it counts at revenue 0 on the in-memory split, the hashed-id file
+    split and the plain split alike, which equal the estimator's own combination of the shards (1e-12)."""
+    bids = _sunk_log(5, 2)
+    path = tmp_path / "floor.parquet"
+    bids.to_parquet(path, index=False)
+    results = {}
+    for name, budget in (("memory", "1200"), ("files", "0")):
+        monkeypatch.setenv(MEMORY_BUDGET_ENV, budget)
+        results[name] = estimate_bid_log(path, FLOORED, max_bids_per_shard=MAX, cluster=cluster)
+    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX)) as shards:
+        found = pieces_by_shard(shards, FLOORED, cluster=cluster, source=str(path))
+    assert {p.shard for p in found.pieces if p.below_floor} == {2}
+    plain = combine_pieces(found.pieces, FLOORED, cluster=cluster, n_excluded_auctions=found.n_excluded_auctions)
+    shard = shard_of(bids["auction_id"], 5)
+    own = [p for k in range(5) for p in stratum_pieces(bids[shard == k], FLOORED, shard=k, cluster=cluster)]
+    reference = combine_pieces(own, FLOORED, cluster=cluster, n_excluded_auctions=found.n_excluded_auctions)
+    _same_numbers(plain, reference)
+    for result in results.values():
+        assert result.shards == 5
+        _same_numbers(result, reference)
+    revenue = reference.table[reference.table["metric"] == "revenue_per_auction"]
+    assert set(revenue["n_auctions"]) == {bids["auction_id"].nunique()}  # shard 2's auctions count

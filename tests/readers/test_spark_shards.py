@@ -21,7 +21,9 @@ import pyarrow.parquet as pq
 import pytest
 import scipy.stats as st
 
-from counterbid.estimators import ArmEstimates, EstimatorWarning, parse_experiments, shard_of, simulate_experiment
+from counterbid.estimators import (
+    ArmEstimates, EstimatorWarning, combine_pieces, parse_experiments, shard_of, simulate_experiment, stratum_pieces,
+)
 from counterbid.estimators.errors import InputError
 from counterbid.readers.engines import SparkEngine, estimate_bid_log
 from counterbid.readers.spark_shards import _read_parquet, _with_shards
@@ -340,3 +342,25 @@ def test_a_lake_day_gives_the_pieces_the_local_staging_gives(spark, tmp_path):
     with pytest.raises(InputError) as missing:
         lake_partition_pieces_on_spark(spark, str(lake), experiment=exp, ds=dt.date(2026, 3, 9), shards=1)
     assert str(missing.value) == f"{lake}: partition ds=2026-03-09 is missing (no such folder)"
+
+
+def test_a_shard_with_no_bid_at_the_floor(spark, tmp_path):
+    """Shard 1 of 3 holds no eligible bid: both engines count it at revenue 0, and the local engine's rows
+    are the estimator's own combination of the shards (1e-12)."""
+    exp = EXPERIMENTS["racks-gsp"]
+    bids = _log(1500, rng=13, experiment="racks-gsp", bidder_pool=400)
+    bids["auction_id"] = "lot-" + bids["auction_id"].astype(str)
+    shard = shard_of(bids["auction_id"], 3)
+    bids.loc[shard == 1, "bid"] = np.linspace(0.02, 0.39, int((shard == 1).sum()))
+    bids.loc[shard == 1, "position"] = np.nan
+    path = tmp_path / "sunk.parquet"
+    bids.to_parquet(path, index=False)
+    local, local_said, on_spark, spark_said = _both(spark, path, "racks-gsp", max_bids_per_shard=len(bids) // 3 + 1)
+    assert local.shards == 3 and local.cluster == "bidder"
+    _same_frames(local, on_spark, "gsp, floor 0.4, shard 1 of 3 below the floor")
+    assert spark_said == local_said
+    pieces = [p for k in range(3) for p in stratum_pieces(bids[shard == k], exp, shard=k, cluster="bidder")]
+    assert {p.shard for p in pieces if p.below_floor} == {1}
+    want = combine_pieces(pieces, exp, cluster="bidder").table
+    for col in ("estimate", "std_error"):
+        np.testing.assert_allclose(local.table[col].to_numpy(float), want[col].to_numpy(float), rtol=1e-12, atol=0)
