@@ -21,12 +21,10 @@ simulate_experiment, equilibrium_bid_function, expected_revenue_per_auction
     Equilibrium simulator (tests, demo).
 """
 
-from __future__ import annotations
-
-from importlib import import_module
+import importlib
 from typing import TYPE_CHECKING
 
-if TYPE_CHECKING:  # the same names, for type checkers and editors
+if TYPE_CHECKING:  # the names below, for type checkers; at run time each module loads on first use
     from .allocation import AllocationRule, allocation_rule, derivative_ratio, mixture_rule
     from .arms import estimate_arms
     from .bids import BID_COLUMNS, PreparedBids, prepare_bids
@@ -60,65 +58,34 @@ if TYPE_CHECKING:  # the same names, for type checkers and editors
     )
     from .spec import Arm, Experiment, WhatIf, load_experiment, load_experiments, parse_day, parse_experiments
 
-#: Where each public name lives: imported on first use (PEP 562), so that importing one light
-#: submodule (``errors``, ``spec``, ``constants``) does not load the estimator and scipy with it;
-#: the example DAG's file, which Airflow re-parses, and the command line import little.
-_EXPORTS = {
-    "AllocationRule": "allocation",
-    "allocation_rule": "allocation",
-    "derivative_ratio": "allocation",
-    "mixture_rule": "allocation",
-    "estimate_arms": "arms",
-    "BID_COLUMNS": "bids",
-    "PreparedBids": "bids",
-    "prepare_bids": "bids",
-    "CheckResult": "checks",
-    "worst_failure": "checks",
-    "ArmEstimates": "combine",
-    "BidderGram": "combine",
-    "combine_pieces": "combine",
-    "CLUSTERS": "constants",
-    "METHOD_VERSION": "constants",
-    "METRICS": "constants",
-    "MIN_STRATUM_BIDS": "constants",
-    "MIXTURE_ARM": "constants",
-    "RESULT_COLUMNS": "constants",
-    "STATUS_FLAGS": "constants",
-    "piece_labels": "constants",
-    "EstimatorWarning": "errors",
-    "InputError": "errors",
-    "revenue_weights": "order_weights",
-    "welfare_weights": "order_weights",
-    "PIECE_FRAMES": "piece_frames",
-    "pieces_from_frames": "piece_frames",
-    "pieces_to_frames": "piece_frames",
-    "StratumKey": "pieces",
-    "StratumPiece": "pieces",
-    "stratum_pieces": "pieces",
-    "WindowTotals": "window_totals",
-    "bidder_totals": "window_totals",
-    "extend_gram": "window_totals",
-    "gram_of": "window_totals",
-    "MAX_BIDS_PER_SHARD": "sharding",
-    "n_shards": "sharding",
-    "shard_of": "sharding",
-    "measured_position_weights": "position_weights",
-    "BidFunction": "simulate",
-    "SimulatedSegment": "simulate",
-    "equilibrium_bid_function": "simulate",
-    "expected_revenue_per_auction": "simulate",
-    "expected_welfare_per_auction": "simulate",
-    "simulate_experiment": "simulate",
-    "simulate_segmented_experiment": "simulate",
-    "Arm": "spec",
-    "Experiment": "spec",
-    "WhatIf": "spec",
-    "load_experiment": "spec",
-    "load_experiments": "spec",
-    "parse_day": "spec",
-    "parse_experiments": "spec",
+#: Where each public name lives. A command imports only what it uses: ``counterbid estimate`` never
+#: loads the checks, the simulator or the study (and SciPy's statistics with them); PEP 562.
+_MODULES: dict[str, tuple[str, ...]] = {
+    "allocation": ("AllocationRule", "allocation_rule", "derivative_ratio", "mixture_rule"),
+    "arms": ("estimate_arms",),
+    "bids": ("BID_COLUMNS", "PreparedBids", "prepare_bids"),
+    "checks": ("CheckResult", "worst_failure"),
+    "combine": ("ArmEstimates", "BidderGram", "combine_pieces"),
+    "constants": (
+        "CLUSTERS", "METHOD_VERSION", "METRICS", "MIN_STRATUM_BIDS", "MIXTURE_ARM", "RESULT_COLUMNS",
+        "STATUS_FLAGS", "piece_labels",
+    ),
+    "errors": ("EstimatorWarning", "InputError"),
+    "order_weights": ("revenue_weights", "welfare_weights"),
+    "piece_frames": ("PIECE_FRAMES", "pieces_from_frames", "pieces_to_frames"),
+    "pieces": ("StratumKey", "StratumPiece", "stratum_pieces"),
+    "window_totals": ("WindowTotals", "bidder_totals", "extend_gram", "gram_of"),
+    "sharding": ("MAX_BIDS_PER_SHARD", "n_shards", "shard_of"),
+    "position_weights": ("measured_position_weights",),
+    "simulate": (
+        "BidFunction", "SimulatedSegment", "equilibrium_bid_function", "expected_revenue_per_auction",
+        "expected_welfare_per_auction", "simulate_experiment", "simulate_segmented_experiment",
+    ),
+    "spec": (
+        "Arm", "Experiment", "WhatIf", "load_experiment", "load_experiments", "parse_day", "parse_experiments",
+    ),
 }
-
+_SOURCES = {name: module for module, names in _MODULES.items() for name in names}
 
 __all__ = [
     "AllocationRule",
@@ -178,13 +145,13 @@ __all__ = [
 
 
 def __getattr__(name: str):
-    module = _EXPORTS.get(name)
+    module = _SOURCES.get(name)
     if module is None:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    value = getattr(import_module(f".{module}", __name__), name)
-    globals()[name] = value  # later lookups are plain attribute reads
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value  # once loaded, a plain attribute
     return value
 
 
 def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(_EXPORTS))
+    return sorted(set(globals()) | set(__all__))

@@ -8,8 +8,10 @@ weights ``w`` its expected clicks are the Bernstein polynomial
 
 Non-increasing weights make the coefficients ``c_j`` non-decreasing, so ``x`` is non-decreasing.
 Mixtures of arms are Bernstein polynomials with share-weighted coefficients. All evaluation goes
-through ``scipy.stats.binom`` (log-pmf where ratios are formed), which keeps it stable for n up to
-several hundred.
+through the binomial distribution's pmf, survival function and log-pmf (log-space where ratios are
+formed), which keeps it stable for n up to several hundred; they are computed with ``scipy.special``
+(:func:`_binom_pmf`, :func:`_binom_sf`, :func:`_binom_logpmf`), so that importing an allocation rule
+does not load ``scipy.stats``; the tests check them against ``scipy.stats.binom``.
 """
 
 from __future__ import annotations
@@ -18,7 +20,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 from .errors import InputError
 
@@ -63,7 +65,7 @@ class AllocationRule:
         if m == 0:
             return np.full(q.shape, self.position_weights[0])
         j = np.arange(m + 1)
-        return stats.binom.pmf(j, m, q[..., None]) @ self.coefficients
+        return _binom_pmf(j, m, q[..., None]) @ self.coefficients
 
     def derivative(self, q) -> np.ndarray:
         """``x'(q)``."""
@@ -72,7 +74,7 @@ class AllocationRule:
         if m == 0:
             return np.zeros(q.shape)
         j = np.arange(m)
-        return m * (stats.binom.pmf(j, m - 1, q[..., None]) @ self.derivative_coefficients)
+        return m * (_binom_pmf(j, m - 1, q[..., None]) @ self.derivative_coefficients)
 
     def integral(self, q) -> np.ndarray:
         """``X(q) = int_0^q x(r) dr``.
@@ -82,7 +84,7 @@ class AllocationRule:
         q = _as_q(q)
         m = self.n_bidders - 1
         j = np.arange(m + 1)
-        return (stats.binom.sf(j, m + 1, q[..., None]) @ self.coefficients) / (m + 1)
+        return (_binom_sf(j, m + 1, q[..., None]) @ self.coefficients) / (m + 1)
 
     def log_value(self, q) -> np.ndarray:
         """``log x(q)``, accurate where ``x`` underflows (``-inf`` where it is exactly 0)."""
@@ -102,6 +104,22 @@ class AllocationRule:
         return f"AllocationRule(n={self.n_bidders}, w={np.round(self.position_weights, 4).tolist()})"
 
 
+def _binom_pmf(k: np.ndarray, m: int, q: np.ndarray) -> np.ndarray:
+    """``C(m, k) q^k (1 - q)^(m - k)``: the Binomial(m, q) pmf at integers ``0 <= k <= m``."""
+    return special.binom(m, k) * q**k * (1.0 - q) ** (m - k)
+
+
+def _binom_sf(k: np.ndarray, m: int, q: np.ndarray) -> np.ndarray:
+    """``P(Binomial(m, q) > k)`` at integers ``0 <= k <= m`` (the regularised incomplete beta function)."""
+    return special.bdtrc(k, m, q)
+
+
+def _binom_logpmf(k: np.ndarray, m: int, q: np.ndarray) -> np.ndarray:
+    """``log C(m, k) + k log q + (m - k) log(1 - q)`` (``-inf`` where the pmf is 0), as ``scipy.stats`` forms it."""
+    combiln = special.gammaln(m + 1) - (special.gammaln(k + 1) + special.gammaln(m - k + 1))
+    return combiln + special.xlogy(k, q) + special.xlog1py(m - k, -q)
+
+
 def _as_q(q) -> np.ndarray:
     q = np.asarray(q, dtype=float)
     if q.size and (np.nanmin(q) < 0 or np.nanmax(q) > 1):
@@ -114,7 +132,7 @@ def _log_bernstein(coef: np.ndarray, m: int, q: np.ndarray) -> np.ndarray:
     support = np.flatnonzero(coef > 0)
     if support.size == 0:
         return np.full(q.shape, -np.inf)
-    logb = stats.binom.logpmf(support, m, q[..., None])
+    logb = _binom_logpmf(support, m, q[..., None])
     return special.logsumexp(logb, b=coef[support], axis=-1)
 
 
@@ -207,7 +225,7 @@ def derivative_ratio(numerator: AllocationRule, denominator: AllocationRule, q) 
     support = np.flatnonzero((dx > 0) | (dy > 0))
     if not np.any(dx > 0):
         return np.zeros(q.shape)
-    logb = stats.binom.logpmf(support, m - 1, q[..., None])
+    logb = _binom_logpmf(support, m - 1, q[..., None])
     den_mask = dx[support] > 0
     scale = np.max(np.where(den_mask, logb, -np.inf), axis=-1, keepdims=True)
     basis = np.exp(logb - scale)

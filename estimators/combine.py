@@ -37,7 +37,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from ._ids import ids_as_text
 from ._realized import RealizedAverages, combine_realized
@@ -494,7 +494,7 @@ def _rows(pieces: Sequence[StratumPiece], experiment: Experiment, estimate: np.n
     degenerate = any("degenerate" in p.flags for p in pieces)
     stratum_flags = (["few_bids"] if any("few_bids" in p.flags for p in pieces) else []) + \
         (["degenerate"] if degenerate else [])
-    z = float(stats.norm.ppf(0.5 + confidence_level / 2))
+    z = float(special.ndtri(0.5 + confidence_level / 2))  # the normal quantile (scipy.stats.norm.ppf)
     rows: list[tuple] = []
 
     def emit(arm: str, metric: str, est: float, se: float, n_auc: int, n_b: int, *, counterfactual: bool = True,

@@ -493,7 +493,7 @@ def _stratum_numbers(data: PreparedBids, rows: np.ndarray | None, n: int, experi
         own = auction_sums[k_targets:]
         numbers.own_variance = np.einsum("ij,ij->i", own, own)
     if sums is not None:
-        sums[:, k_targets] = sums[:, :k_arms] @ shares
+        sums[:, k_targets] = np.einsum("ij,j->i", sums[:, :k_arms], shares)  # not BLAS: no threads to wake
     for j in np.flatnonzero(~bounded):  # unbounded weights: no number for this layout
         t = k_arms + j
         estimate[[t, k_targets + t]] = np.nan

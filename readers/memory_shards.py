@@ -11,8 +11,9 @@ their order in the shard file. Bidder ids travel as the day's dictionary codes (
 per distinct id of the log, the same label in every shard), so shards meet on integers when they
 are combined and no Python string is made per id.
 
-Every shard is validated and estimated exactly as :func:`~counterbid.readers.shards.pieces_by_shard`
-does it for a shard file, under the same name (``<log> (shard K)``). Bad input takes the plain path:
+Every shard is validated and estimated by the same per-shard body as a shard file
+(:func:`~counterbid.readers.shards.one_shard_pieces`, given the shard's rows instead of its path),
+under the same name (``<log> (shard K)``). Bad input takes the plain path:
 on any :class:`~counterbid.estimators.errors.InputError` the caller runs the file-based split, so the
 message (its shard and row numbers) is the one that path gives.
 """
@@ -26,8 +27,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from counterbid.estimators import BID_COLUMNS, Experiment, StratumPiece, prepare_bids, stratum_pieces
-from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
+from counterbid.estimators import BID_COLUMNS, Experiment, StratumPiece
+from counterbid.estimators.errors import InputError, no_pieces_error
 
 from .bid_log import read_bids
 
@@ -153,7 +154,7 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     InputError
         Whatever the input's first fault; the caller then runs the file-based split for its message.
     """
-    from .shards import ShardPieces
+    from .shards import ShardPieces, one_shard_pieces
 
     name = str(source or path)
     columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
@@ -169,20 +170,12 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
         warnings.simplefilter("always")
         for k in present:
             where = name if len(present) == 1 else f"{name} (shard {k})"
-            part = bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True)
-            try:
-                prepared = prepare_bids(part, experiment, source=where)
-            except NothingToEstimate as exc:
-                if len(present) == 1:
-                    raise
-                excluded += exc.n_excluded_auctions
-                single_bidders = True
-                continue
-            finally:
-                del part
-            excluded += int(prepared.n_excluded_auctions)
-            pieces += stratum_pieces(prepared, experiment, shard=k, cluster=cluster, source=where)
-            del prepared
+            # the shard's rows in log order, as the file-based split writes them; the same per-shard body
+            found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
+                                     cluster=cluster, where=where, alone=len(present) == 1)
+            pieces += found.pieces
+            excluded += found.n_excluded_auctions
+            single_bidders = single_bidders or found.single_bidders_only
     if not pieces:
         raise no_pieces_error(name, experiment.id, single_bidders=single_bidders, n_excluded_auctions=excluded)
     for w in said:  # only once the whole log went through: a failed attempt says nothing

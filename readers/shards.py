@@ -18,6 +18,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+import pandas as pd
 import pyarrow as pa
 import pyarrow.dataset as pads
 
@@ -233,8 +234,6 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
 
 def _hashed_bidders(bids):
     """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is."""
-    import pandas as pd
-
     from .id_hashes import fnv1a_64
 
     col = bids["bidder_id"] if "bidder_id" in bids.columns else None
@@ -328,7 +327,7 @@ class OneShard:
 
 def one_shard_pieces(
     k: int,
-    path: str | Path,
+    bids: str | Path | pd.DataFrame,
     experiment: Experiment,
     *,
     cluster: str = "auto",
@@ -339,19 +338,24 @@ def one_shard_pieces(
 ) -> OneShard:
     """Read, validate and estimate one shard; keep only its stratum pieces.
 
+    The one per-shard body of the local engine: the file-based split passes each shard's file,
+    the in-memory split (:func:`~counterbid.readers.memory_shards.pieces_in_memory`) each shard's
+    rows of the day's frame.
+
     Parameters
     ----------
     k : int
         The shard's number (recorded in every piece).
-    path : str or Path
-        Its Parquet file or folder.
+    bids : str, Path or pandas.DataFrame
+        Its Parquet file or folder, or its rows already read (as :func:`~.bid_log.read_bids`
+        returns them; the frame is dropped once validated, so pass the only reference).
     experiment : Experiment
         With measured position weights already filled.
     cluster : {'auto', 'auction', 'bidder'}
     day : date-like, optional
         Recorded in every piece.
     where : str, optional
-        Name of the shard in messages (default: its path).
+        Name of the shard in messages (default: its path, or ``bids`` for a frame).
     alone : bool
         The shard is the whole input: a shard of single-bidder auctions only is then an error
         (``NothingToEstimate``); otherwise they are left out and counted, the other shards hold
@@ -364,8 +368,10 @@ def one_shard_pieces(
     -------
     OneShard
     """
-    where = str(where or path)
-    bids = read_bids(path, columns=["experiment_id", *BID_COLUMNS, *experiment.auction_columns], source=where)
+    in_memory = isinstance(bids, pd.DataFrame)
+    where = str(where or ("bids" if in_memory else bids))
+    if not in_memory:
+        bids = read_bids(bids, columns=["experiment_id", *BID_COLUMNS, *experiment.auction_columns], source=where)
     hashed = _hashed_bidders(bids) if hash_bidders else None
     try:
         prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)

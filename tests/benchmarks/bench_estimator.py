@@ -260,7 +260,8 @@ def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600
         stdout, stderr = out.read(), err.read()
     if proc.returncode != 0:
         raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}")
-    result = {"wall": wall, "rss_mib": usage.ru_maxrss / 1024.0, "stdout": stdout, "stderr": stderr, **sampled}
+    result = {"wall": wall, "cpu": usage.ru_utime + usage.ru_stime, "rss_mib": usage.ru_maxrss / 1024.0,
+              "stdout": stdout, "stderr": stderr, **sampled}
     try:  # a child's one JSON line, or a command's whole JSON output
         result.update(json.loads(stdout.strip().splitlines()[-1]))
     except (ValueError, IndexError):
@@ -373,7 +374,9 @@ def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
 
 
 #: How the issue table's columns are measured.
-ISSUE_TABLE_NOTE = ("peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a driver, "
+ISSUE_TABLE_NOTE = ("CPU s: user + system seconds of the command's process and the children it reaped (os.wait4; "
+                    "on a shared machine wall time waits for cores, CPU time does not); "
+                    "peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a driver, "
                     "a JVM and Python workers); bids/s per core: bids / wall / cores, the local engine counted as "
                     "one core, Spark as its master's task threads with the session start (row 'Spark session "
                     "start' in the notes) taken out of its wall time.")
@@ -391,15 +394,16 @@ def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spa
     spark = kind.startswith("cli_spark")
     engine = f"spark {SPARK_MASTER_IN_USE[0]}" if spark else "local"
     if r is None:
-        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} | – | – | – |"
+        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} | – | – | – | – | – |"
     ratio = r["wall"] / floor["wall"] if floor else float("nan")
     if spark:
         busy = r["wall"] - (spark_start["wall"] if spark_start else 0.0)
         per_core = millions * 1e6 / busy / _spark_cores(SPARK_MASTER_IN_USE[0])
     else:
         per_core = millions * 1e6 / r["wall"]
+    cpu_ratio = r["cpu"] / floor["cpu"] if floor else float("nan")
     return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '?')} | {r['wall']:.2f} | {ratio:.2f} | "
-            f"{r['tree_pss_mib']:.0f} | {per_core:,.0f} |")
+            f"{r['cpu']:.2f} | {cpu_ratio:.2f} | {r['tree_pss_mib']:.0f} | {per_core:,.0f} |")
 
 
 #: The master of this run's Spark rows (set by ``main``).
@@ -410,7 +414,7 @@ def repeated(argv: list[str], times: int, **options) -> dict:
     """Median wall, work and peak memory of ``times`` runs of one child (the other fields of the last)."""
     runs = [run_child(argv, **options) for _ in range(times)]
     out = dict(runs[-1])
-    for field in ("wall", "work", "rss_mib", "tree_pss_mib", "tree_rss_mib"):
+    for field in ("wall", "cpu", "work", "rss_mib", "tree_pss_mib", "tree_rss_mib"):
         if field not in out:
             continue
         values = [r.get(field, float("nan")) for r in runs]
@@ -521,7 +525,8 @@ def main(argv: list[str] | None = None) -> int:
                                     f"{r['rss_mib']:.0f} | {r['tree_pss_mib']:.0f} ({roles}) | "
                                     f"{r['tree_rss_mib']:.0f} | {r['tree_processes']} |")
             rows[kind] = r
-            print(f"{millions}M {kind}: wall {r['wall']:.2f}s {r['walls']} work {r.get('work', float('nan')):.2f}s "
+            print(f"{millions}M {kind}: wall {r['wall']:.2f}s {r['walls']} cpu {r['cpu']:.2f}s "
+                  f"work {r.get('work', float('nan')):.2f}s "
                   f"rss {r['rss_mib']:.0f} MiB {({k: v for k, v in r.items() if k in ('read', 'sort', 'estimate')})}",
                   file=sys.stderr, flush=True)
         floor = rows.get("floor")
@@ -542,8 +547,9 @@ def main(argv: list[str] | None = None) -> int:
                      f"({d['steps']}); process wall {d['wall']:.1f} s incl. Airflow metadata migration, "
                      f"peak RSS {d['rss_mib']:.0f} MiB")
     issue_table = [f"`counterbid estimate --format json` against the floor (a), same run; {ISSUE_TABLE_NOTE}", "",
-                   "| bids | ids | engine | shards | wall s | wall / floor | peak memory MiB | bids/s per core |",
-                   "|---:|---|---|---:|---:|---:|---:|---:|", *issue_rows, ""]
+                   "| bids | ids | engine | shards | wall s | wall / floor | CPU s | CPU / floor | peak memory MiB | "
+                   "bids/s per core |",
+                   "|---:|---|---|---:|---:|---:|---:|---:|---:|---:|", *issue_rows, ""]
     sections = issue_table + lines + [""] + [f"* {n}" for n in notes]
     if len(engine_lines) > 2:
         sections += ["", f"Engines: `counterbid estimate --format json`, local engine against `--engine spark "

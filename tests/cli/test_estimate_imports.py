@@ -1,0 +1,67 @@
+"""`counterbid estimate` leaves unloaded what it does not use (process start dominates a 1M-bid run).
+
+A real process estimates a small log and reports the modules it ended with: the statistical
+checks, the simulator, the study, ``scipy.stats``, Airflow and the operators stay out; DuckDB
+stays out while the log is one shard (it computes the shard hash only when there are several).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+import scipy.stats as st
+
+from counterbid.estimators import parse_experiments, simulate_experiment
+
+SPEC = """experiments:
+  - id: lean-run
+    control_arm: low
+    arms:
+      - {name: low, share: 0.6, position_weights: [0.5, 0.25, 0.1]}
+      - {name: steep, share: 0.4, position_weights: [0.7, 0.1]}
+"""
+
+PROBE = """
+import json, sys
+from counterbid.cli import main
+code = main(sys.argv[1:])
+print(json.dumps({"code": code, "modules": sorted(sys.modules)}))
+"""
+
+NEVER = ("scipy.stats", "scipy.optimize", "scipy.interpolate", "airflow", "counterbid.operators",
+         "counterbid.estimators.checks",
+         "counterbid.estimators.simulate", "counterbid.estimators.study", "counterbid.estimators.two_step")
+
+
+@pytest.fixture
+def small_log(tmp_path):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text(SPEC)
+    exp = parse_experiments(__import__("yaml").safe_load(SPEC))["lean-run"]
+    bids = simulate_experiment(st.lognorm(0.4, scale=1.3), exp, n_bidders=4, n_auctions=2500, rng=8)
+    bids["bidder_id"] = "seat-" + (bids["bidder_id"] % 400).astype(str)  # text ids that repeat
+    path = tmp_path / "bids.parquet"
+    bids.to_parquet(path, index=False)
+    return spec, path, len(bids)
+
+
+def _loaded(*argv) -> dict:
+    proc = subprocess.run([sys.executable, "-c", PROBE, *argv], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+@pytest.mark.parametrize("shards", [1, 3])
+def test_estimate_loads_no_module_it_does_not_use(small_log, shards):
+    spec, path, n_bids = small_log
+    found = _loaded("estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv",
+                    "--max-bids-per-shard", str(-(-n_bids // shards)))
+    assert found["code"] == 0
+    modules = set(found["modules"])
+    assert "counterbid.estimators.pieces" in modules  # it did estimate
+    loaded = sorted(m for m in modules if any(m == name or m.startswith(name + ".") for name in NEVER))
+    assert loaded == []
+    assert ("duckdb" in modules) == (shards > 1)
