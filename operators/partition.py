@@ -12,6 +12,7 @@ import datetime as dt
 import json
 import logging
 import shutil
+import tempfile
 from collections.abc import Mapping
 from dataclasses import asdict
 from pathlib import Path
@@ -390,13 +391,15 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    if shard_tasks:
-        found = shard_task_pieces(staged, experiment, cluster=cluster)
+    if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
+        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
+            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder))
     else:
         found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
     pieces = found.pieces
     day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
+                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day),
+                                bidder_gram=found.gram, segment_grams=found.segment_grams)
     if day_result.cluster == "auction":  # bidder sums not used: not stored either
         pieces = [p.without_bidder_sums() for p in pieces]
     frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)

@@ -153,7 +153,9 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
             after[key] = (totals.bidder_ids, sums)
         write = _window_write(experiment, "extend", base_days, days_text, ds, grams, after, run_id, computed_at)
         return _inputs(window, grams, write, "extended")
-    full = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=list(PIECE_TABLES.values()))
+    # the small tables are already here: read only the bidder sums, not every table a second time
+    full = {**small, **hook.stored_piece_frames(experiment_id=experiment.id, days=used_before,
+                                                tables=["stratum_piece_bidder_sums"])}
     totals = _totals_by_key(pieces_of_rows(full) + mine, exponent)
     grams = {key: gram_of(t) for key, t in totals.items()}
     write = _window_write(experiment, "replace", None, days_text, ds, grams,
