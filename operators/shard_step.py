@@ -169,10 +169,11 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
         The clustering the shard tasks must have used.
 
     spill_folder : Path, optional
-        An empty folder: each shard's bidder sums, keyed by the 64-bit hash of the id text, are
-        also set aside there (:class:`~counterbid.readers.bidder_spill.BidderSpill`) and added
-        into the day's bidder forms bucket by bucket, at most ``max_spill_rows`` rows at a time:
-        the day's rows then need no matching of text ids across shards.
+        An empty folder (used when the day has several shards): each shard's bidder sums, keyed
+        by the 64-bit hash of the id text, are also set aside there
+        (:class:`~counterbid.readers.bidder_spill.BidderSpill`) and added into the day's bidder
+        forms bucket by bucket, at most ``max_spill_rows`` rows at a time: the day's rows then
+        need no matching of text ids across shards.
     max_spill_rows : int
 
     Returns
@@ -191,7 +192,8 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
     staged.require(staged.day, step="load")
     shards = staged.shards()
     pieces, excluded, single_bidders = [], 0, False
-    spill = None if spill_folder is None else BidderSpill(Path(spill_folder), max_rows=max_spill_rows)
+    # one shard is the day: its sums are bounded by the shard already and combine as the single task's
+    spill = None if spill_folder is None or len(shards) < 2 else BidderSpill(Path(spill_folder), max_rows=max_spill_rows)
     for k in shards:
         folder = shard_pieces_folder(staged, k)
         if not (folder / RECORD).exists():
