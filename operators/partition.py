@@ -12,10 +12,12 @@ import datetime as dt
 import json
 import logging
 import shutil
+import tempfile
 from collections.abc import Mapping
 from dataclasses import asdict
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -41,6 +43,7 @@ from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedD
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.readers.shards import write_shards
 
+from .bidder_sum_rows import write_bidder_sum_rows
 from .check_runner import run_checks, write_check_results
 from .hooks import ResultsHook
 from .lake_hook import LakeHook
@@ -287,10 +290,19 @@ def _failed_today(staged: StagedPartition) -> list[str]:
 
 
 def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.date, run_id: str,
-                   computed_at) -> dict[str, pd.DataFrame]:
-    """The pieces as rows of the results tables, keyed by (experiment, ds, n_bidders, shard)."""
+                   computed_at, with_sums: bool = True) -> dict[str, pd.DataFrame]:
+    """The pieces as rows of the results tables, keyed by (experiment, ds, n_bidders, shard).
+
+    ``with_sums=False``: no bidder-sum rows (:func:`.bidder_sum_rows.write_bidder_sum_rows` stages
+    them); the strata rows still count each piece's distinct bidders.
+    """
     out = {}
-    for name, frame in pieces_to_frames(pieces).items():
+    frames = pieces_to_frames(pieces if with_sums else [p.without_bidder_sums() for p in pieces])
+    if not with_sums:
+        frames.pop("bidder_sums")
+        frames["strata"]["n_distinct_bidders"] = np.array(
+            [-1 if p.bidder_ids is None else p.bidder_ids.size for p in pieces], dtype=np.int64)
+    for name, frame in frames.items():
         frame = frame.drop(columns=["day"], errors="ignore")
         frame.insert(0, "experiment_id", experiment_id)
         frame.insert(1, "ds", ds)
@@ -390,18 +402,24 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
-    if shard_tasks:
-        found = shard_task_pieces(staged, experiment, cluster=cluster)
+    if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
+        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
+            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder))
     else:
         found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
     pieces = found.pieces
     day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
-                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day))
+                                n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day),
+                                bidder_gram=found.gram, segment_grams=found.segment_grams)
     if day_result.cluster == "auction":  # bidder sums not used: not stored either
         pieces = [p.without_bidder_sums() for p in pieces]
-    frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
+    frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at,
+                            with_sums=False)
     for table, frame in frames.items():
         write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
+    sums_table = PIECE_TABLES["bidder_sums"]  # label by label, never the day's rows at once
+    write_bidder_sum_rows(pieces, staged.folder / f"{sums_table}.parquet", experiment_id=experiment.id, ds=ds,
+                          run_id=run_id, computed_at=computed_at)
 
     # The analysis window: earlier days with stored pieces, minus burn-in, excluded and failed days.
     earlier = hook.stored_piece_days(experiment_id=experiment.id, ds=ds)

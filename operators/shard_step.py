@@ -32,6 +32,8 @@ import pyarrow.parquet as pq
 from counterbid.estimators import PIECE_FRAMES, Experiment, StratumPiece, pieces_from_frames, pieces_to_frames
 from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.errors import InputError, no_pieces_error
+from counterbid.readers.bidder_spill import MAX_SPILL_ROWS, BidderSpill
+from counterbid.readers.id_hashes import fnv1a_64
 from counterbid.readers.shards import ShardPieces, one_shard_pieces
 
 from .staging import StagedPartition, replace_folder, write_json
@@ -146,7 +148,17 @@ def estimate_shard(experiment: Experiment, *, ds: dt.date, staging_root: str | P
     return {"experiment_id": experiment.id, "ds": ds.isoformat(), **record, "folder": str(target)}
 
 
-def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluster: str) -> ShardPieces:
+def _hashed(pieces: list[StratumPiece], wide: pa.Table) -> list[StratumPiece]:
+    """The pieces with their text bidder ids replaced by 64-bit hashes of the text (no Python string made)."""
+    out = []
+    for p in pieces:
+        ids = wide.filter(_stratum_rows(wide, p)).column("bidder_id")
+        out.append(dataclasses.replace(p, bidder_ids=fnv1a_64(ids), bidder_codes=None, bidder_space=None))
+    return out
+
+
+def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluster: str,
+                      spill_folder: Path | None = None, max_spill_rows: int = MAX_SPILL_ROWS) -> ShardPieces:
     """Every staged shard's pieces, as the shard tasks stored them (what the estimate step combines).
 
     Parameters
@@ -156,10 +168,19 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
     cluster : {'auto', 'auction', 'bidder'}
         The clustering the shard tasks must have used.
 
+    spill_folder : Path, optional
+        An empty folder (used when the day has several shards): each shard's bidder sums, keyed
+        by the 64-bit hash of the id text, are also set aside there
+        (:class:`~counterbid.readers.bidder_spill.BidderSpill`) and added into the day's bidder
+        forms bucket by bucket, at most ``max_spill_rows`` rows at a time: the day's rows then
+        need no matching of text ids across shards.
+    max_spill_rows : int
+
     Returns
     -------
     ShardPieces
-        By shard, then number of bidders; bidder ids as text.
+        By shard, then number of bidders; bidder ids as text; with ``spill_folder``, the day's
+        bidder forms (``gram``, ``segment_grams``) when every piece carries bidder sums.
 
     Raises
     ------
@@ -171,6 +192,8 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
     staged.require(staged.day, step="load")
     shards = staged.shards()
     pieces, excluded, single_bidders = [], 0, False
+    # one shard is the day: its sums are bounded by the shard already and combine as the single task's
+    spill = None if spill_folder is None or len(shards) < 2 else BidderSpill(Path(spill_folder), max_rows=max_spill_rows)
     for k in shards:
         folder = shard_pieces_folder(staged, k)
         if not (folder / RECORD).exists():
@@ -188,13 +211,22 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
                                        for name in PIECE_FRAMES})
             with_sums = set(record.get("bidder_sums", []))
             if with_sums:
-                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], pq.read_table(folder / WIDE_SUMS), folder)
+                wide = pq.read_table(folder / WIDE_SUMS)
+                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], wide, folder)
                 mine = kept + [p for p in mine if p.n_bidders not in with_sums]
+                if spill is not None:
+                    spill.add(_hashed(kept, wide) + [p for p in mine if p.n_bidders not in with_sums])
+                del wide
+            elif spill is not None:
+                spill.add(mine)
             pieces += sorted(mine, key=lambda p: p.n_bidders)
     if not pieces:
         raise no_pieces_error(str(staged.day), experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)
-    return ShardPieces(pieces, excluded, len(shards))
+    grams = spill.grams() if spill is not None and cluster != "auction" else None
+    if grams is None:
+        return ShardPieces(pieces, excluded, len(shards))
+    return ShardPieces(pieces, excluded, len(shards), gram=grams[0], segment_grams=grams[1] or None)
 
 
 def validated_shards(staging_root: str | Path, ds: dt.date, experiment_ids: Iterable[str]) -> list[dict]:

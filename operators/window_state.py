@@ -34,6 +34,7 @@ import pyarrow.parquet as pq
 from counterbid.estimators import (
     BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
 )
+from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.constants import REVENUE, piece_labels
 from counterbid.estimators.days import parse_day
 from counterbid.estimators.window_totals import WindowTotals
@@ -207,12 +208,11 @@ def _grams_of_rows(rows: pd.DataFrame, gram_rows: pd.DataFrame, exponent: int, e
 
 def _lookup_rows(experiment: Experiment, totals: Mapping[str | None, WindowTotals]) -> pa.Table:
     """One row per (segment, bidder) of today: what the stored totals are joined on."""
-    keys = [(key, b) for key, t in totals.items() for b in t.bidder_ids]
-    return pa.table({"experiment_id": pa.array([experiment.id] * len(keys), pa.string()),
-                     "segment": pa.array([k for k, _ in keys], pa.string()),
-                     "bidder_id": pa.array([str(b) for _, b in keys], pa.string()),
-                     "arm": pa.array([""] * len(keys), pa.string()),
-                     "value": pa.array(np.zeros(len(keys)), pa.float64())})
+    return pa.concat_tables([
+        pa.table({"experiment_id": _repeated(experiment.id, t.bidder_ids.size), "segment": _repeated(key, t.bidder_ids.size),
+                  "bidder_id": pa.array(ids_as_text(t.bidder_ids), pa.string()), "arm": _repeated("", t.bidder_ids.size),
+                  "value": pa.array(np.zeros(t.bidder_ids.size), pa.float64())})
+        for key, t in totals.items()])
 
 
 def _labels(experiment: Experiment) -> list[str]:
@@ -229,16 +229,23 @@ def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment:
     return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=exponent)
 
 
+def _repeated(value: str | None, n: int) -> pa.Array:
+    """``value`` (``None``: null) ``n`` times as Arrow text, without a Python list of ``n`` items."""
+    if value is None:
+        return pa.nulls(n, pa.string())
+    return pa.array([value], pa.string()).take(pa.array(np.zeros(n, dtype=np.int32)))
+
+
 def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
+    """One row per (bidder, label), label by label: every label's chunk shares the one Arrow copy of the ids."""
     labels = _labels(experiment)
     n = len(ids)
-    return pa.table({
-        "experiment_id": pa.array(np.full(n * len(labels), experiment.id, dtype=object), pa.string()),
-        "segment": pa.array([segment] * (n * len(labels)), pa.string()),
-        "bidder_id": pa.array(np.repeat(np.asarray(ids, dtype=object), len(labels)), pa.string()),
-        "arm": pa.array(np.tile(np.asarray(labels, dtype=object), n), pa.string()),
-        "value": pa.array(sums.ravel(), pa.float64()),
-    })
+    text = pa.array(ids_as_text(np.asarray(ids)), pa.string())
+    chunks = [pa.table({"experiment_id": _repeated(experiment.id, n), "segment": _repeated(segment, n),
+                        "bidder_id": text, "arm": _repeated(label, n),
+                        "value": pa.array(np.ascontiguousarray(sums[:, j]), pa.float64())})
+              for j, label in enumerate(labels)]
+    return pa.concat_tables(chunks)
 
 
 def _before(found: pd.DataFrame, totals: WindowTotals, experiment: Experiment) -> tuple[np.ndarray, np.ndarray]:

@@ -12,6 +12,7 @@ command line (:func:`estimate_bid_log`) and the pipeline's estimate step
 from __future__ import annotations
 
 import datetime as dt
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Protocol
@@ -19,6 +20,7 @@ from typing import Protocol
 from counterbid.estimators import ArmEstimates, Experiment, combine_pieces, n_shards
 from counterbid.estimators.errors import InputError
 
+from .bidder_spill import MAX_SPILL_ROWS, BidderSpill
 from .memory_shards import fits_in_memory, pieces_in_memory
 from .shards import ShardPieces, bid_log_rows, column_names, pieces_by_shard, staged_bid_log_shards
 from .shards import max_bids_per_shard as max_bids_setting
@@ -72,11 +74,14 @@ class LocalEngine:
 
     A log of several shards that fits the memory budget is read once and split in memory
     (:func:`~counterbid.readers.memory_shards.pieces_in_memory`); a larger one is split by DuckDB into
-    shard files, each read, estimated and freed in turn. Bad input always gets the file-based
+    shard files, each read, estimated and freed in turn, its bidder sums set aside on disk
+    (:class:`~counterbid.readers.bidder_spill.BidderSpill`, at most ``max_spill_rows`` rows added
+    up at once). Bad input always gets the file-based
     split's message: the in-memory attempt gives way to it on any input error.
     """
 
     name: str = "local"
+    max_spill_rows: int = MAX_SPILL_ROWS
 
     def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
                    cluster: str = "auto") -> ShardPieces:
@@ -89,10 +94,18 @@ class LocalEngine:
                 return pieces_in_memory(path, experiment, shards, cluster=cluster, source=str(path))
             except InputError:
                 pass  # the file-based split below names the fault, its shard and row, as it always has
-        with staged_bid_log_shards(path, shards) as shard_list:
+        with staged_bid_log_shards(path, shards) as shard_list, tempfile.TemporaryDirectory(
+                prefix="counterbid-bidder-sums-") as spill_folder:
+            # several shards: each shard's bidder sums go to disk as it is done and are added
+            # bucket by bucket at the end, so memory is set by a shard, not by the day's bidders
+            spill = BidderSpill(Path(spill_folder), max_rows=self.max_spill_rows) if shards > 1 else None
             found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path),
-                                    hash_bidders=shards > 1)
-        return ShardPieces(found.pieces, found.n_excluded_auctions, shards)
+                                    hash_bidders=shards > 1, spill=spill)
+            grams = spill.grams() if spill is not None and cluster != "auction" else None
+        if grams is None:
+            return ShardPieces(found.pieces, found.n_excluded_auctions, shards)
+        return ShardPieces(found.pieces, found.n_excluded_auctions, shards, gram=grams[0],
+                           segment_grams=grams[1] or None)
 
     def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:
         return pieces_by_shard(day.shards, experiment, cluster=cluster, day=day.ds, source=day.source)

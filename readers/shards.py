@@ -250,8 +250,9 @@ class ShardPieces:
     """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read.
 
     ``gram``: the input's bidder sums as a :class:`~counterbid.estimators.BidderGram` when an
-    engine added them per bidder itself (the Spark engine); the pieces then carry none.
-    ``segment_grams``: the same per segment label, when the pieces are segmented.
+    engine added them per bidder itself (the Spark engine, or the local engine's
+    :class:`~counterbid.readers.bidder_spill.BidderSpill`); the pieces then carry none.
+    ``segment_grams``: the same per segment label of a segmented input.
     """
 
     pieces: list[StratumPiece]
@@ -269,6 +270,7 @@ def pieces_by_shard(
     day=None,
     source: str | None = None,
     hash_bidders: bool = False,
+    spill=None,
 ) -> ShardPieces:
     """Read, validate and estimate each shard alone; keep only its stratum pieces.
 
@@ -293,6 +295,10 @@ def pieces_by_shard(
         of a shard hashed once), so that shards combine on integers. Only for pieces that are
         combined and dropped (the command line's); stored pieces keep the text. Messages still
         quote the text.
+    spill : BidderSpill, optional
+        Set each shard's bidder sums aside there as the shard is done
+        (:class:`~counterbid.readers.bidder_spill.BidderSpill`): the pieces returned carry none,
+        and ``spill.grams()`` gives the day's bidder forms, so memory is not set by the day's bidders.
 
     Notes
     -----
@@ -307,9 +313,10 @@ def pieces_by_shard(
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         found = one_shard_pieces(k, path, experiment, cluster=cluster, day=day, where=where, alone=len(shards) == 1,
                                  hash_bidders=hash_bidders)
-        pieces += found.pieces
+        pieces += found.pieces if spill is None else spill.add(found.pieces)
         excluded += found.n_excluded_auctions
         single_bidders = single_bidders or found.single_bidders_only
+        del found  # with a spill, this shard's bidder sums are on disk only
     if not pieces:
         raise no_pieces_error(source or "bids", experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)

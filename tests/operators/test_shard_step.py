@@ -275,3 +275,25 @@ def test_a_shard_with_no_bid_at_the_floor_gives_the_single_task_rows(tmp_path):
     for col in ("estimate", "std_error", "n_auctions"):
         np.testing.assert_allclose(rows[col].to_numpy(float), rows[f"{col}_ref"].to_numpy(float), rtol=1e-12, atol=0,
                                    err_msg=col)
+
+
+def test_the_days_bidder_form_in_one_bucket_per_pass_equals_the_text_recombination(lake, experiment, tmp_path):
+    """The estimate step adds the shards' bidder sums bucket by bucket on 64-bit hashes of the id
+    text; forced to one bucket per pass (``max_spill_rows=1``: hundreds of passes) its form equals
+    the plain one, every piece's sums matched on their text and squared (``bidder_totals`` and
+    ``gram_of``), to 1e-12, and counts the same distinct bidders."""
+    from counterbid.estimators import bidder_totals, gram_of
+    from counterbid.operators.shard_step import shard_task_pieces
+
+    stage = tmp_path / "stage"
+    staged, shards = _checked_day(lake, experiment, stage, START, 2500)
+    for k in range(shards):
+        partition.estimate_partition_shard(experiment, ds=START, staging_root=stage, shard=k, cluster="bidder")
+    experiment, _ = partition.staged_experiment(experiment, staged)
+    (tmp_path / "spill").mkdir()
+    forced = shard_task_pieces(staged, experiment, cluster="bidder", spill_folder=tmp_path / "spill", max_spill_rows=1)
+    plain = shard_task_pieces(staged, experiment, cluster="bidder")
+    assert plain.gram is None and forced.gram is not None
+    want = gram_of(bidder_totals(plain.pieces, bid_exponent=forced.gram.bid_exponent))
+    assert forced.gram.n_bidders == want.n_bidders < sum(p.n_bids for p in plain.pieces)
+    np.testing.assert_allclose(forced.gram.gram, want.gram, rtol=1e-12, atol=0)

@@ -98,11 +98,17 @@ def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypa
     assert mem.shards == hashed.shards == 5 and mem.cluster == hashed.cluster == plain.cluster
     assert mem.cluster == ("auction" if cluster == "auction" else "bidder")
     if cluster != "auction":  # each shortcut really ran: integer ids where the plain path has text
-        assert all(p.bidder_ids.dtype == np.int64 for p in mem_pieces.pieces + hashed_pieces.pieces)
+        assert all(p.bidder_ids.dtype == np.int64 for p in mem_pieces.pieces)
         assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
         sizes = [p.bidder_ids.size for p in plain_pieces.pieces]
-        assert [p.bidder_ids.size for p in mem_pieces.pieces] == sizes == [p.bidder_ids.size for p in
-                                                                           hashed_pieces.pieces]
+        assert [p.bidder_ids.size for p in mem_pieces.pieces] == sizes
+        # the file-based split set its hashed sums aside shard by shard: the pieces keep none, the
+        # bidder form counts the plain path's distinct bidders
+        assert all(p.bidder_ids is None for p in hashed_pieces.pieces)
+        distinct = pd.unique(np.concatenate([p.bidder_ids for p in plain_pieces.pieces])).size
+        assert hashed_pieces.gram.n_bidders == distinct
+    else:
+        assert hashed_pieces.gram is None
     assert [p.key for p in mem_pieces.pieces] == [p.key for p in plain_pieces.pieces]
     assert mem_pieces.n_excluded_auctions == plain_pieces.n_excluded_auctions > 0
     _same_numbers(mem, plain)
