@@ -233,8 +233,8 @@ def _gsp_bid_function(values, rule: AllocationRule, q: np.ndarray, r: float) -> 
     (``rho = q0/q1``), linear in ``S1``: each step solves one scalar equation.
     """
     n = rule.n_bidders
-    if n == 1:
-        return _GspBidFunction(grid=q, bids=_values_at(values, q), rest=np.zeros_like(q), values=values, rule=rule)
+    if n == 1:  # the price is the floor whatever the bid: bidding the value is weakly dominant, b = v
+        return _GspBidFunction(grid=q, bids=_values_at(values, q), rest=np.zeros_like(q), values=values)
     w = rule.position_weights
     if not np.any(w[: n - 1] > 0):
         raise InputError("gsp: no position above the last is shown, so no bid is ever priced")

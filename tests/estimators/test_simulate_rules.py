@@ -312,3 +312,24 @@ def test_bad_inputs():
         simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=100, quality=st.uniform(1, 2), rng=1)
     with pytest.raises(InputError, match="floor"):
         expected_revenue_per_auction(st.uniform(0, 1), [1.0], 3, floor=-0.1)
+
+
+@pytest.mark.parametrize("payment_rule", ["first_price", "gsp", "vcg"])
+def test_a_lone_bidder_above_the_floor_bids_a_price_it_pays(payment_rule):
+    """One bidder: the price is the floor whatever the bid (pay-your-bid: the bid is the floor;
+    next-price and VCG: bidding the value is weakly dominant, so b = v). Every shown bid reaches
+    the floor, and the mean revenue per auction is r (1 - F(r)) w_1 (a lone bidder pays the reserve: common practice),
+    within 4 standard errors of its own sampling spread."""
+    log = simulate_experiment(VALUES, experiment(), n_bidders=1, n_auctions=20_000, rng=11,
+                              payment_rule=payment_rule, floor=FLOOR)
+    shown = log["position"].notna().to_numpy()
+    assert shown.any() and (log.loc[shown, "bid"] >= FLOOR * (1 - 1e-12)).all()
+    if payment_rule == "first_price":
+        np.testing.assert_allclose(log.loc[shown, "bid"], FLOOR, rtol=1e-9)
+    else:
+        np.testing.assert_allclose(log.loc[shown, "bid"], log.loc[shown, "value"], rtol=1e-9)
+    top = np.array([w[0] for w in ARMS.values()])[(log["arm"] == "steep").to_numpy().astype(int)]
+    per_auction = np.where(shown, FLOOR * top, 0.0)  # each shown bidder pays the floor per click
+    truth = FLOOR * VALUES.sf(FLOOR) * float(np.dot(SHARES, [w[0] for w in ARMS.values()]))
+    se = per_auction.std(ddof=1) / np.sqrt(per_auction.size)
+    assert abs(per_auction.mean() - truth) < 4 * se
