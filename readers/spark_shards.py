@@ -486,10 +486,10 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
-        # rows of a shard in read order: the sort Spark needs for the groups anyway, one key longer
+        # Spark sorts each partition by the shard alone (one integer key: a radix sort, no row
+        # compared); the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
-        grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
-                   .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
+        grouped = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard").groupBy("shard")
         with _quiet_pyspark():
             out = grouped.applyInArrow(one_shard, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
