@@ -13,8 +13,8 @@ rows keep the order the local engine reads them in (files by path, rows by posit
 pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
-only, which Spark hands it already in read order (the sort that groups the shard, one key longer);
-the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
+only, plus a copy of it when the rows reach it out of read order (Spark sorts them by shard alone:
+the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
 bidder).
 
 Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
@@ -372,7 +372,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     shard = int(table.column("shard")[0].as_py())
     where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
     order = table.column("bid_order").to_numpy()
-    if (order[1:] < order[:-1]).any():  # Spark sorts the shard's rows by it already; a copy only if it did not
+    if (order[1:] < order[:-1]).any():  # Spark grouped the rows by shard only: read order here (a copy)
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
     n_bids = table.num_rows
