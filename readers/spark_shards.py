@@ -13,8 +13,8 @@ rows keep the order the local engine reads them in (files by path, rows by posit
 pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
-only, which Spark hands it already in read order (the sort that groups the shard, one key longer);
-the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
+only, plus a copy of it when the rows reach it out of read order (Spark sorts them by shard alone:
+the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
 bidder).
 
 Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
@@ -269,7 +269,6 @@ def _quiet_pyspark():
 
 #: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
 STATEMENT_PARAMETERS = {
-    "spark_bid_files": frozenset(),
     "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
     "spark_lake_partition": frozenset({"ds", "experiment_id"}),
 }
@@ -297,16 +296,53 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     try:
         # a staged day's shard=K folders give a `shard` column: recomputed here
         bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)
-        # by the path itself, as Arrow lists a folder: Spark's file names are URIs (a space is %20)
-        files = sorted((r[0] for r in _run_sql(spark, "spark_bid_files").collect()), key=unquote)
-        spark.createDataFrame([(f, k) for k, f in enumerate(files)], "bid_file string, file_rank long") \
-            .createOrReplaceTempView(_FILES_VIEW)
+        spark.createDataFrame(_ranked_files(bids), "bid_file string, file_rank long").createOrReplaceTempView(_FILES_VIEW)
         sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
-    except Exception as exc:  # listing the files runs a job: a file Spark cannot read shows up here too
+    except Exception as exc:  # AnalysisException of the statement, or py4j's wrapper of Spark's error
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
         raise _as_engine_failure(exc, source)
+
+
+#: A URI of no authority as ``inputFiles()`` spells it (``file:///x``); Spark's file metadata spells it ``file:/x``.
+_EMPTY_AUTHORITY = re.compile(r"^([A-Za-z][A-Za-z0-9+.-]*):///")
+
+
+def _ranked_files(bids) -> list[tuple[str, int]]:
+    """The files ``bids`` is read from, each ranked by its path, as ``(file, rank)`` rows.
+
+    From the frame's own file listing (``inputFiles()``: no job, no row read), ranked by the path
+    itself, as Arrow lists a folder (Spark's file names are URIs: a space is ``%20``). A file
+    appears under both spellings of a URI of no authority (``file:///x`` and ``file:/x``, the
+    latter being how ``_metadata.file_path`` names it), with one rank, so the join matches either.
+    """
+    files = sorted({_EMPTY_AUTHORITY.sub(r"\1:/", f) for f in bids.inputFiles()}, key=unquote)
+    rows = []
+    for rank, name in enumerate(files):
+        rows.append((name, rank))
+        other = re.sub(r"^([A-Za-z][A-Za-z0-9+.-]*):/(?!/)", r"\1:///", name)
+        if other != name:
+            rows.append((other, rank))
+    return rows
+
+
+def _footer_rows(bids) -> int | None:
+    """Rows of the local Parquet files ``bids`` reads, added from their footers; ``None`` when a file is not local
+    or its footer does not read (Spark counts them then)."""
+    import pyarrow.parquet as pq
+    from urllib.parse import urlparse
+
+    total = 0
+    for name in bids.inputFiles():
+        uri = urlparse(name)
+        if uri.scheme != "file":
+            return None
+        try:
+            total += pq.read_metadata(unquote(uri.path)).num_rows
+        except Exception:  # pyarrow cannot read a footer Spark could: Spark's count names the problem
+            return None
+    return total
 
 
 #: Brackets the shard number in a worker's messages until the driver knows how many shards hold bids.
@@ -336,7 +372,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     shard = int(table.column("shard")[0].as_py())
     where = f"{source}{_SHARD_MARK}{shard}{_SHARD_MARK}" if multi else source  # named on the driver
     order = table.column("bid_order").to_numpy()
-    if (order[1:] < order[:-1]).any():  # Spark sorts the shard's rows by it already; a copy only if it did not
+    if (order[1:] < order[:-1]).any():  # Spark grouped the rows by shard only: read order here (a copy)
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
     n_bids = table.num_rows
@@ -450,10 +486,10 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     try:
         # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
-        # rows of a shard in read order: the sort Spark needs for the groups anyway, one key longer
+        # Spark sorts each partition by the shard alone (one integer key: a radix sort, no row
+        # compared); the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
-        grouped = (sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard")
-                   .sortWithinPartitions("shard", "bid_order").groupBy("shard"))
+        grouped = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard").groupBy("shard")
         with _quiet_pyspark():
             out = grouped.applyInArrow(one_shard, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
@@ -548,8 +584,9 @@ def bid_log_pieces_on_spark(spark, path: str, experiment: Experiment, *, max_bid
     """
     source = str(path)
     bids = _read_parquet(spark, source, source=source, view="counterbid_bid_log")
-    try:
-        rows = bids.count()
+    try:  # the footers' row counts when the files are local: no Spark job
+        rows = _footer_rows(bids)
+        rows = bids.count() if rows is None else rows
     except Exception as exc:  # a footer Spark could list but not read
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
