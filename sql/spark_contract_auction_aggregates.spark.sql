@@ -36,9 +36,11 @@ select
     -- smallest and largest arm name: both must be arms of the spec
     min(arm) as arm_min,
     max(arm) as arm_max,
-    count(distinct arm) as n_arms,
+    -- distinct values as the size of their set (nulls left out, as `count(distinct ...)` does): two
+    -- distinct counts in one aggregate would make Spark expand every row once per counted column
+    cast(size(collect_set(arm)) as bigint) as n_arms,
     count(*) as n_bids,
-    count(distinct bidder_id) as n_bidders,
+    cast(size(collect_set(bidder_id)) as bigint) as n_bidders,
     count(*) filter (where experiment_id is null or bidder_id is null or arm is null) as null_keys,
     -- invalid bid or quality, or a sub-floor effective bid that was shown
     count(*) filter (
