@@ -7,6 +7,9 @@ the same counts: the two routes share one suite, so a rule that fires on one fir
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import duckdb
 import numpy as np
 import pandas as pd
@@ -112,9 +115,10 @@ def _outbid_the_top(f):
          "contract_bidder_unique"),
         (_other_arm, "contract_one_arm"),
         (_outbid_the_top, "contract_rank_by_bid"),
+        (lambda f: f.assign(quality=np.where(_first_auction(f), 0.0, 1.25)), "contract_bids_valid"),
     ],
     ids=["null-bid", "negative-bid", "shown-below-floor", "null-bidder", "arm-not-in-spec", "bidder-twice",
-         "two-arms", "outbid-at-a-worse-position"],
+         "two-arms", "outbid-at-a-worse-position", "zero-quality"],
 )
 def test_a_broken_contract_fails_with_the_duckdb_check_names(spark, tmp_path, clean, mutate, expected):
     local, on_spark = _both(spark, tmp_path, mutate(clean.copy()))
@@ -156,6 +160,18 @@ def test_auction_counts_on_spark_equal_the_duckdb_counts(spark, tmp_path, clean)
     counts = spark_auction_counts(spark, day)
     assert set(counts["n_bidders"]) == {2, 3}
     pd.testing.assert_frame_equal(counts, expected.astype(counts.dtypes.to_dict()), check_dtype=True)
+
+
+def test_great_expectations_without_spark_support_is_one_clear_line(java_home):
+    # GE probes for pyspark once, when it is imported: imported without it, its Spark source cannot work
+    code = ("import sys; sys.modules['pyspark'] = None\n"
+            "import great_expectations\n"
+            "del sys.modules['pyspark']\n"
+            "from counterbid.estimators.errors import InputError\n"
+            "from counterbid.operators.spark_contract import _gx_with_spark\n"
+            "try:\n    _gx_with_spark()\nexcept InputError as exc:\n    print(exc)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip()
+    assert out.startswith("the contract on Spark needs Great Expectations imported after pyspark")
 
 
 @pytest.mark.parametrize(("spark_type", "duckdb_type"), [
