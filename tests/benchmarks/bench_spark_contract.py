@@ -12,7 +12,7 @@ Writes (or reuses) a lake day of ``--millions`` million bids with string ids
 
 Reported per route: the child's CPU seconds (user + sys) and peak RSS from ``os.wait4`` (the
 Python process: for Spark, the driver's Python side, what the Airflow worker's task process
-holds), the step alone (after imports and, for Spark, after the session started), and for Spark
+holds; "Python peak RSS" is the child's own ``ru_maxrss``, without any process it reaped), the step alone (after imports and, for Spark, after the session started), and for Spark
 the JVM's own CPU seconds and peak RSS (``/proc/<pid>``, read before it stops; in local mode the
 executors live in that JVM). The load average is printed before and after.
 
@@ -96,12 +96,14 @@ def main(argv: list[str] | None = None) -> int:
     lake = args.data / f"lake_{args.millions}m"
     write_lake(lake, args.millions, spec)
     print(f"load average before: {_loadavg()}")
-    rows = ["| route | child CPU s | child wall s | child peak RSS MiB | step CPU s | step wall s | JVM CPU s | "
-            "JVM peak RSS MiB | auctions | failed |", "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
+    rows = ["| route | child CPU s | child wall s | child peak RSS MiB | Python peak RSS MiB | step CPU s | step wall s | "
+            "JVM CPU s | JVM peak RSS MiB | auctions | failed |",
+            "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
     for route in ("duckdb", "spark"):
         r = _run(route, lake, spec)
         jvm = (f"{r['jvm_cpu']:.2f} | {r['jvm_hwm_mib']:.0f}" if "jvm_cpu" in r else "- | -")
-        rows.append(f"| {route} | {r['cpu']:.2f} | {r['wall']:.2f} | {r['rss_mib']:.0f} | {r['step_cpu']:.2f} | "
+        rows.append(f"| {route} | {r['cpu']:.2f} | {r['wall']:.2f} | {r['rss_mib']:.0f} | {r['self_rss_mib']:.0f} | "
+                    f"{r['step_cpu']:.2f} | "
                     f"{r['step_wall']:.2f} | {jvm} | {r['auctions']} | {','.join(r['failed']) or '-'} |")
     print(f"load average after: {_loadavg()}")
     print(f"{args.millions}M bids, string ids")
