@@ -1,8 +1,8 @@
 """The Spark engine's statements (``sql/*.spark.sql``): one Spark SQL statement each, binding what the engine binds.
 
 No Spark runs here: sqlglot parses the text as Spark SQL, and the ``:name`` parameters it finds
-must be exactly the ones :mod:`counterbid.readers.spark_shards` binds (which it checks itself on
-every call), so a renamed parameter fails here instead of in a Spark job.
+must be exactly the ones :mod:`counterbid.readers.spark_shards` (or, for the contract's statements,
+:mod:`counterbid.operators.spark_contract`) binds (which it checks itself on every call), so a renamed parameter fails here instead of in a Spark job.
 """
 
 from __future__ import annotations
@@ -10,13 +10,17 @@ from __future__ import annotations
 import pytest
 import sqlglot
 
-from counterbid.readers.spark_shards import STATEMENT_PARAMETERS
+from counterbid.operators.spark_contract import CONTRACT_STATEMENT_PARAMETERS
+from counterbid.readers.spark_shards import STATEMENT_PARAMETERS as ENGINE_STATEMENT_PARAMETERS
 from counterbid.sql import ENGINE_DIALECTS, dialect_files, load_sql, parameter_names, sql_names, statement
 
 SPARK_NAMES = sql_names("spark")
+#: Every Spark statement and its parameters: the engine's and the contract's (no name in both).
+STATEMENT_PARAMETERS = ENGINE_STATEMENT_PARAMETERS | CONTRACT_STATEMENT_PARAMETERS
 
 
 def test_the_engine_runs_every_spark_statement_and_no_other():
+    assert not set(ENGINE_STATEMENT_PARAMETERS) & set(CONTRACT_STATEMENT_PARAMETERS)
     assert ENGINE_DIALECTS == ("spark",)
     assert SPARK_NAMES == dialect_files()["spark"] == sorted(STATEMENT_PARAMETERS)
     # engine statements are never transpiled: a shared DuckDB source has no Spark text
