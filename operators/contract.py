@@ -153,15 +153,18 @@ def build_suites(experiment: Experiment, *, config: Mapping[str, Any] | None = N
     return {"schema": schema, "auctions": auctions}
 
 
-def _validate(context, suite, frame: pd.DataFrame, name: str):
+def _validate(context, suite, frame, name: str, *, source_kind: str = "pandas"):
     """Run ``suite`` on ``frame``, then drop the data source and validation definition it added.
+
+    ``source_kind``: ``'pandas'`` for a pandas frame, ``'spark'`` for a Spark DataFrame (the
+    validation then runs on the executors; :mod:`.spark_contract`).
 
     A data source's execution engine keeps the batches it loaded, i.e. the frame, for as long as
     the source is registered: left in place, every shard's aggregates would stay in memory until the
     context goes (about 100 MiB per 750k-auction shard with text ids), so the day would pile up.
     """
     gx = _gx()
-    source = context.data_sources.add_pandas(f"{name}_source")
+    source = getattr(context.data_sources, f"add_{source_kind}")(f"{name}_source")
     try:
         batch = source.add_dataframe_asset(name).add_batch_definition_whole_dataframe(f"{name}_batch")
         definition = context.validation_definitions.add(

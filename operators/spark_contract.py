@@ -31,7 +31,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.spec import Experiment
 from counterbid.sql import statement
 
-from .contract import CONTRACT_CHECKS, _RESULT_FORMAT, _context, _fold, _gx, build_suites
+from .contract import CONTRACT_CHECKS, _RESULT_FORMAT, _context, _fold, _gx, _validate, build_suites
 
 __all__ = ["CONTRACT_STATEMENT_PARAMETERS", "duckdb_type_name", "lake_day_on_spark", "run_contract_on_spark",
            "spark_auction_counts"]
@@ -106,19 +106,9 @@ def _register(bids) -> None:
 
 
 def _validate_spark(context, suite, frame, name: str):
-    """Run ``suite`` on the Spark DataFrame ``frame``; the data source and validation definition are dropped after."""
-    gx = _gx_with_spark()
-    source = context.data_sources.add_spark(f"{name}_source")
-    try:
-        batch = source.add_dataframe_asset(name).add_batch_definition_whole_dataframe(f"{name}_batch")
-        definition = context.validation_definitions.add(
-            gx.ValidationDefinition(name=f"{name}_validation", data=batch, suite=suite))
-        try:
-            return definition.run(batch_parameters={"dataframe": frame}, result_format=_RESULT_FORMAT)
-        finally:
-            context.validation_definitions.delete(f"{name}_validation")
-    finally:
-        context.data_sources.delete(f"{name}_source")
+    """Run ``suite`` on the Spark DataFrame ``frame`` (:func:`.contract._validate` with a Spark data source)."""
+    _gx_with_spark()
+    return _validate(context, suite, frame, name, source_kind="spark")
 
 
 def run_contract_on_spark(spark, bids, experiment: Experiment, *, config: Mapping[str, Any] | None = None,
