@@ -209,17 +209,7 @@ def lake_day_on_spark(spark, lake_root: str, *, experiment: Experiment, ds):
     InputError
         The day's folder is missing or unreadable, or the lake has no ``experiment_id`` column.
     """
-    from counterbid.readers.spark_shards import _read_parquet
-    from counterbid.readers.spark_shards import _run_sql as _engine_sql
+    from counterbid.readers.spark_shards import lake_day_frame
 
-    source = f"{lake_root} ds={ds}"
-    root = str(lake_root).rstrip("/")
-    try:
-        lake = _read_parquet(spark, f"{root}/ds={ds}", base_path=root, source=source, view="counterbid_lake")
-    except InputError as exc:
-        if str(exc).endswith(": no such file or folder"):
-            raise InputError(f"{lake_root}: partition ds={ds} is missing (no such folder)") from None
-        raise
-    if "ds" not in lake.columns or "experiment_id" not in lake.columns:
-        raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
-    return _engine_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id).drop("bid_file", "bid_row")
+    frame = lake_day_frame(spark, lake_root, experiment=experiment, ds=ds, source=f"{lake_root} ds={ds}")
+    return frame.drop("bid_file", "bid_row")

@@ -623,11 +623,29 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     -------
     ShardPieces
     """
+    source = source or f"{lake_root} ds={ds}"
+    day = lake_day_frame(spark, lake_root, experiment=experiment, ds=ds, source=source)
+    # the estimate step stores the day's pieces with their bidder sums (the running window reads them)
+    return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source,
+                              bidder_gram=False)
+
+
+def lake_day_frame(spark, lake_root: str, *, experiment: Experiment, ds, source: str):
+    """One experiment's day of the Hive-partitioned lake as a Spark DataFrame (not collected).
+
+    Spark lists only the ``ds=<day>`` folder under ``lake_root`` (a lake of many days is neither
+    listed nor its footers read) and keeps the experiment's rows (``sql/spark_lake_partition.spark.sql``,
+    with the ``bid_file`` and ``bid_row`` columns of the read order).
+
+    Raises
+    ------
+    InputError
+        The day's folder is missing or unreadable, or the lake has no ``experiment_id`` column.
+    """
     from pyspark.sql.utils import AnalysisException
 
-    source = source or f"{lake_root} ds={ds}"
     root = str(lake_root).rstrip("/")
-    try:  # the day's folder only: a lake of many days is neither listed nor its footers read
+    try:
         lake = _read_parquet(spark, f"{root}/ds={ds}", base_path=root, source=source, view="counterbid_lake")
     except InputError as exc:
         if str(exc).endswith(": no such file or folder"):
@@ -636,9 +654,6 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     if "ds" not in lake.columns or "experiment_id" not in lake.columns:
         raise InputError(f"{lake_root}: the bid lake needs ds=YYYY-MM-DD folders and an 'experiment_id' column")
     try:
-        day = _run_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id)
+        return _run_sql(spark, "spark_lake_partition", ds=ds, experiment_id=experiment.id)
     except AnalysisException as exc:
         raise _analysis_error(exc, source) from None
-    # the estimate step stores the day's pieces with their bidder sums (the running window reads them)
-    return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source,
-                              bidder_gram=False)
