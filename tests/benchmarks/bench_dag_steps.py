@@ -9,6 +9,9 @@ Writes a lake day of ``--millions`` million bids with string ids (auction ``lot-
 * ``--mode steps``: runs each step (load, validate, estimate, write; ``--steps`` picks some) in a
   child process of its own, as an Airflow worker does, and reports each child's peak RSS
   (``ru_maxrss``) and CPU time, the step alone and the whole child with its imports (``os.wait4``).
+  ``shards`` runs the DAG's mapped ``estimate_shard`` task once per staged shard, each in a child of
+  its own, and ``combine`` the estimate step that combines their pieces (as the daily DAG on the
+  local engine does); ``estimate`` estimates every shard inside one step instead.
 
 Both modes first parse the DAG file in a child process of its own, as Airflow's DAG processor and
 every task's runner do, and report that child's CPU time, wall time, peak RSS and which heavy
@@ -205,6 +208,12 @@ def one_step(step: str, lake: Path, spec: Path, work: Path) -> None:
     elif step == "estimate":
         partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=staging, run_id="bench",
                                      confidence_level=0.95, cluster="auto")
+    elif step.startswith("estimate_shard_"):  # one mapped shard task
+        partition.estimate_partition_shard(exp, ds=DAY, staging_root=staging, shard=int(step.rsplit("_", 1)[1]),
+                                           cluster="auto")
+    elif step == "combine":  # the estimate step after the shard tasks: combines their stored pieces
+        partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=staging, run_id="bench",
+                                     confidence_level=0.95, cluster="auto", shard_tasks=True)
     else:
         partition.write_partition(hook, experiment_id=exp.id, ds=DAY, staging_root=staging)
     print(f"{step} {time.process_time() - c0:.3f} {time.perf_counter() - t0:.3f} "
@@ -216,8 +225,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--data", required=True, type=Path)
     p.add_argument("--millions", type=int, default=1)
     p.add_argument("--mode", choices=("dag", "steps"), default="dag")
-    p.add_argument("--steps", default="load,validate,estimate,write",
-                   help="with --mode steps: the steps to run, in order (comma-separated)")
+    p.add_argument("--steps", default="load,validate,shards,combine,write",
+                   help="with --mode steps: the steps to run, in order (comma-separated): load, validate, "
+                        "shards (one child per staged shard), combine, estimate (every shard in one step), write")
     p.add_argument("--keep-work", action="store_true",
                    help="keep the run folder (staged day, results) of an earlier run: e.g. --steps validate again")
     p.add_argument("--step", help=argparse.SUPPRESS)  # a child of --mode steps
@@ -249,13 +259,25 @@ def through_steps(args, steps: list[str]) -> None:
     from counterbid.cli import backfill as bf
 
     rows = [parse_row(dict(os.environ, **bf.airflow_environment(args.data / "airflow_parse", dags_folder=bf.dags_folder())))]
-    for step in steps:
+    for step in _expanded(steps, args):
         out, cpu, wall, rss = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
                                       str(args.millions), "--mode", "steps", "--step", step])
         name, step_cpu, step_wall, step_rss = out.split()[-4:]
         rows.append(_row(f"{name} (step alone)", float(step_cpu), float(step_wall), float(step_rss)))
         rows.append(_row(f"{name} (child with imports)", cpu, wall, rss))
     print("\n".join(_table_head() + rows))
+
+
+def _expanded(steps: list[str], args) -> list[str]:
+    """``shards`` as one ``estimate_shard_K`` per shard staged when it is reached (after the load step ran)."""
+    for step in steps:
+        if step != "shards":
+            yield step
+            continue
+        from counterbid.operators.staging import StagedPartition
+
+        work = args.data / f"run_{args.millions}M_{args.mode}"
+        yield from (f"estimate_shard_{k}" for k in StagedPartition.at(work / "staging", "shelfmix", DAY).shards())
 
 
 if __name__ == "__main__":
