@@ -23,12 +23,12 @@ from counterbid.estimators.errors import InputError
 from counterbid.sql import validate_identifier
 
 from . import notify
-from .hooks import DEFAULT_CONN_ID, ResultsHook
-from .lake_hook import LakeHook
-from .staging import StagedPartition
 
 if TYPE_CHECKING:
     from counterbid.estimators.checks import CheckResult
+
+    from .hooks import ResultsHook
+    from .lake_hook import LakeHook
 
 __all__ = [
     "DEFAULT_CLUSTER",
@@ -68,6 +68,13 @@ def _partition():
     return partition
 
 
+#: Connection id of the results sink unless an operator names another: the value of
+#: :data:`counterbid.operators.hooks.DEFAULT_CONN_ID`, spelled here so that building the operators
+#: (every parse of the DAG file, and every task process before its task) leaves the hooks, DuckDB,
+#: pandas and pyarrow unloaded; tests/operators/test_operators.py checks that the two agree.
+DEFAULT_CONN_ID = "counterbid_results"
+
+
 def _templated(value: object) -> bool:
     """A value Airflow will render (a Jinja template), checked only when the task runs."""
     return isinstance(value, str) and "{{" in value
@@ -103,11 +110,15 @@ class _PartitionOperator(BaseOperator):
 
     def hook(self) -> ResultsHook:
         """The results sink (a DuckDB file or PostgreSQL)."""
+        from .hooks import ResultsHook
+
         return ResultsHook(database=self.results_database or None, counterbid_conn_id=self.results_conn_id,
                            schema=self.results_schema)
 
     def lake(self) -> LakeHook:
         """In-memory DuckDB reads of the lake, the click log and the staged files."""
+        from .lake_hook import LakeHook
+
         return LakeHook()
 
     def day(self):
@@ -194,6 +205,8 @@ class ValidatePartitionOperator(_PartitionOperator):
 
     def execute(self, context) -> dict:
         experiment, day = self.experiment(), self.day()
+        from .staging import StagedPartition
+
         staged = StagedPartition.at(self.staging_root, experiment.id, day)
         results = _partition().run_partition_checks(self.hook(), self.lake(), experiment=experiment, staged=staged, ds=day)
         status = _partition().record_checks(staged, results)

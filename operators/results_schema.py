@@ -22,14 +22,15 @@ import re
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 from urllib.parse import urlsplit, urlunsplit
-
-import pandas as pd
-import pyarrow as pa
 
 from counterbid.estimators.errors import InputError
 from counterbid.sql import has_dialect_file, load_sql, statement, validate_identifier
+
+if TYPE_CHECKING:  # imported where used: a parse of the DAG file (results_target) leaves them unloaded
+    import pandas as pd
+    import pyarrow as pa
 
 __all__ = [
     "MIGRATIONS", "RESULTS_TABLES", "RESULTS_VIEWS", "SCHEMA_VERSION", "DuckDBSession", "Migration",
@@ -361,6 +362,8 @@ class PostgresSession(ResultsSession):
         return self.con.execute(self.sql(name, **identifiers), None if params is None else dict(params))
 
     def fetch_df(self, name, params=None):
+        import pandas as pd
+
         cur = self.execute(name, params)
         frame = pd.DataFrame.from_records(cur.fetchall(), columns=[d.name for d in cur.description])
         return _like_duckdb(frame)
@@ -388,6 +391,8 @@ class PostgresSession(ResultsSession):
 def _like_duckdb(frame: pd.DataFrame) -> pd.DataFrame:
     """Columns of date objects as ``datetime64`` and decimals as floats, as DuckDB's ``.df()`` gives them."""
     import decimal
+
+    import pandas as pd
 
     for name in frame.columns:
         sample = frame[name].dropna()

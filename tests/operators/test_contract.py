@@ -166,3 +166,35 @@ def test_a_validated_frame_is_not_kept_by_the_context(clean):
     again = con.execute(render_sql("check_auction_aggregates", relation="day_bids_q"),
                         {"floor": 0.01, "tie_tolerance": 1e-9}).df()
     assert _validate(context, suites["auctions"], again, "auctions_0").success
+
+
+def test_the_contract_runs_without_loading_what_gx_would_only_draw_with(tmp_path):
+    # a fresh interpreter, as a validate task is: the suite runs for real (a broken rule is caught), altair
+    # is never loaded, and a later `import altair` in the same process gets the real library
+    import subprocess
+    import sys
+
+    probe = """
+import sys
+import duckdb, pandas as pd
+from counterbid.estimators import parse_experiments
+from counterbid.operators.contract import run_contract
+exp = parse_experiments({"experiments": [{"id": "perch", "control_arm": "a", "arms": [
+    {"name": "a", "share": 0.5, "position_weights": [0.3, 0.1]},
+    {"name": "b", "share": 0.5, "position_weights": [0.3, 0.2]}]}]})["perch"]
+frame = pd.DataFrame({"experiment_id": "perch", "auction_id": ["u1", "u1", "u2", "u2"],
+                      "bidder_id": ["k1", "k2", "k1", "k1"], "arm": ["a", "a", "b", "b"],
+                      "bid": [1.0, 0.5, 0.9, 0.4], "position": [1, 2, 1, 2]})
+con = duckdb.connect()
+con.register("bids", frame)
+failed = sorted(r.check for r in run_contract(con, "bids", exp) if not r.passed)
+print(",".join(failed))
+print("altair" in sys.modules)
+import altair
+print(hasattr(altair, "Chart"))
+"""
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300, cwd=tmp_path)
+    assert done.returncode == 0, done.stderr[-2000:]
+    failed, loaded, real = done.stdout.split()[-3:]
+    assert failed == "contract_bidder_unique"  # auction u2 has one bidder twice
+    assert loaded == "False" and real == "True"

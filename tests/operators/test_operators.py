@@ -134,3 +134,12 @@ def test_airflow_lists_the_provider_and_its_connection_type():
     assert manager.providers["counterbid"].data["package-name"] == "counterbid"
     types = {c["connection-type"]: c["hook-class-name"] for c in manager.providers["counterbid"].data["connection-types"]}
     assert types == {"counterbid_duckdb": "counterbid.operators.hooks.ResultsHook"}
+
+
+def test_the_operators_default_connection_is_the_results_hooks():
+    # pipeline.py spells the id itself (building the operators leaves the hooks unloaded): the two must agree
+    from counterbid.operators import hooks, pipeline
+
+    op = WriteEstimatesOperator(task_id="write_default_conn", **COMMON)
+    assert pipeline.DEFAULT_CONN_ID == hooks.DEFAULT_CONN_ID
+    assert op.hook().counterbid_conn_id == hooks.DEFAULT_CONN_ID
