@@ -172,11 +172,13 @@ class LoadPartitionOperator(_PartitionOperator):
         self.click_window_days = click_window_days
 
     def execute(self, context) -> dict:
+        from .load_step import stage_partition  # not partition: the load task leaves the estimator and checks unloaded
+
         try:
-            out = _partition().stage_partition(self.lake(), lake_root=self.lake_root, experiment=self.experiment(),
-                                            ds=self.day(), staging_root=self.staging_root,
-                                            clicks_root=self.clicks_root or None, click_window_days=self.click_window_days,
-                                            max_bids_per_shard=self.max_bids_per_shard)
+            out = stage_partition(self.lake(), lake_root=self.lake_root, experiment=self.experiment(),
+                                  ds=self.day(), staging_root=self.staging_root,
+                                  clicks_root=self.clicks_root or None, click_window_days=self.click_window_days,
+                                  max_bids_per_shard=self.max_bids_per_shard)
         except InputError as exc:  # the same files fail the same way: no retry
             raise AirflowFailException(str(exc)) from None
         log.info("staged %s bids of %s on %s in %s shard(s) of at most %s bids in %s", out["day_bids"],

@@ -143,3 +143,31 @@ def test_the_operators_default_connection_is_the_results_hooks():
     op = WriteEstimatesOperator(task_id="write_default_conn", **COMMON)
     assert pipeline.DEFAULT_CONN_ID == hooks.DEFAULT_CONN_ID
     assert op.hook().counterbid_conn_id == hooks.DEFAULT_CONN_ID
+
+
+def test_the_load_task_stages_a_day_without_loading_the_later_steps(tmp_path):
+    # a fresh interpreter, as a task process is: the load operator stages the day (its shards and
+    # manifest are there) and leaves the estimator's steps, the checks and scipy.stats unloaded
+    import subprocess
+    import sys
+
+    lake, spec = tmp_path / "bids", tmp_path / "spec.yaml"
+    spec.write_text(SPEC_TEXT)
+    write_bid_lake(lake, load_experiments(spec).values(), start=START, days=1, auctions_per_day=300, n_bidders=3, seed=5)
+    probe = f"""
+import sys
+from counterbid.operators.pipeline import LoadPartitionOperator
+op = LoadPartitionOperator(task_id="load", experiment_id="tiles", spec_path={str(spec)!r},
+                           staging_root={str(tmp_path / 'stage')!r}, lake_root={str(lake)!r}, ds="{START}")
+out = op.execute({{}})
+print(out["day_bids"], out["shards"])
+print(",".join(m for m in ("counterbid.operators.partition", "counterbid.operators.check_runner",
+                           "counterbid.estimators.checks", "scipy.stats") if m in sys.modules) or "-")
+"""
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    counts, loaded = done.stdout.split("\n")[-3:-1]
+    bids, shards = map(int, counts.split())
+    assert bids > 0 and shards == 1
+    assert sorted(p.name for p in (tmp_path / "stage" / "tiles").glob("ds=*")) == [f"ds={START}"]
+    assert loaded == "-"
