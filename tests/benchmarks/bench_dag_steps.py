@@ -258,14 +258,16 @@ def through_steps(args, steps: list[str]) -> None:
     """Each step in a child process of its own (the parse of the DAG file first): one step table."""
     from counterbid.cli import backfill as bf
 
-    rows = [parse_row(dict(os.environ, **bf.airflow_environment(args.data / "airflow_parse", dags_folder=bf.dags_folder())))]
+    # each row as soon as its step ends: a long day's table is not lost with a step that fails
+    print("\n".join(_table_head()), flush=True)
+    print(parse_row(dict(os.environ, **bf.airflow_environment(args.data / "airflow_parse", dags_folder=bf.dags_folder()))),
+          flush=True)
     for step in _expanded(steps, args):
         out, cpu, wall, rss = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
                                       str(args.millions), "--mode", "steps", "--step", step])
         name, step_cpu, step_wall, step_rss = out.split()[-4:]
-        rows.append(_row(f"{name} (step alone)", float(step_cpu), float(step_wall), float(step_rss)))
-        rows.append(_row(f"{name} (child with imports)", cpu, wall, rss))
-    print("\n".join(_table_head() + rows))
+        print(_row(f"{name} (step alone)", float(step_cpu), float(step_wall), float(step_rss)), flush=True)
+        print(_row(f"{name} (child with imports)", cpu, wall, rss), flush=True)
 
 
 def _expanded(steps: list[str], args) -> list[str]:
