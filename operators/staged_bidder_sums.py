@@ -5,7 +5,8 @@ themselves (:class:`ShardRowsSink`, the columns and row order of
 :func:`~counterbid.operators.bidder_sum_rows.write_bidder_sum_rows`): one file per shard, in a
 folder at the path where the local route stages its one file. The write step reads either alike
 (``pyarrow.parquet.read_table`` of a file or of a folder of files). Only the pieces, without their
-bidder sums, and the day's bidder forms reach the driver.
+bidder sums, and the day's bidder forms reach the driver. On a cluster the staging folder must
+therefore be a path the executors and the Airflow worker share.
 
 The running window (:mod:`counterbid.operators.window_state`) adds today's bidder sums to the
 stored totals; :func:`pieces_with_staged_sums` reads them back from those files, one shard's file

@@ -14,8 +14,9 @@ pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
 only, plus a copy of it when the rows reach it out of read order (Spark sorts them by shard alone:
-the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
-bidder).
+the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum) and, when clustering by bidder, the Gram
+forms of the bidders' sums (:mod:`.spark_bidder_gram`); the DAG's estimate step has the executors
+store the per-bidder rows themselves (``bidder_rows_sink``), so they never reach the driver.
 
 Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
 a shard is named only when several hold bids; a bid without an auction id is refused by shard 0's
