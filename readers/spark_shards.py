@@ -234,7 +234,10 @@ def engine_failure(exc: Exception, source: str) -> Exception:
     if len(detail) > 240:
         detail = detail[:237] + "..."
     for pattern, wording in _CAUSES:
-        if pattern.search(text):
+        found = pattern.search(text)
+        if found:
+            if _DETAIL.search(text) is None:  # Spark's own line of the cause, not py4j's "error while calling"
+                detail = next((line for line in lines if found.group(0) in line), detail)[:240]
             return EngineFailure(f"{source}: the Spark engine failed: " + wording.format(detail=detail))
     return EngineFailure(f"{source}: the Spark engine failed ({detail})")
 
