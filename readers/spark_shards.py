@@ -236,7 +236,8 @@ def engine_failure(exc: Exception, source: str) -> Exception:
     for pattern, wording in _CAUSES:
         found = pattern.search(text)
         if found:
-            if _DETAIL.search(text) is None:  # Spark's own line of the cause, not py4j's "error while calling"
+            if "An exception was thrown from the Python worker" not in text and _DETAIL.search(text) is None:
+                # Spark's own line of the cause, not py4j's "An error occurred while calling ..."
                 detail = next((line for line in lines if found.group(0) in line), detail)[:240]
             return EngineFailure(f"{source}: the Spark engine failed: " + wording.format(detail=detail))
     return EngineFailure(f"{source}: the Spark engine failed ({detail})")
