@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+import shutil
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -83,6 +84,8 @@ def write_bidder_sum_rows(pieces: Sequence[StratumPiece], target: Path, *, exper
                                                 schema=BIDDER_SUM_SCHEMA))
                     rows += b
                 del ids, constant
+        if target.is_dir():  # the Spark route's folder of shard files, staged by an earlier run
+            shutil.rmtree(target)
         os.replace(tmp, target)  # readers see the old file or the new one, never half of one
     finally:
         Path(tmp).unlink(missing_ok=True)

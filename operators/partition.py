@@ -11,6 +11,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import logging
+import os
 import shutil
 import tempfile
 from collections.abc import Mapping
@@ -38,6 +39,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.sequential import planned_days
 from counterbid.estimators.window import WINDOW_CHECKS, analysis_window, pending_status
 from counterbid.readers.engines import Engine, LocalEngine, SparkEngine, StagedDay
+from counterbid.readers.spark_shards import EngineFailure
 
 from .bidder_sum_rows import write_bidder_sum_rows
 from .check_runner import run_checks, write_check_results
@@ -46,6 +48,7 @@ from .lake_hook import LakeHook
 from .load_step import MissingPartitionError, stage_measured_weights, stage_partition
 from .schema_gate import schema_gate
 from .shard_step import estimate_shard, shard_task_pieces
+from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, pieces_with_staged_sums, staged_shards
 from .staging import StagedPartition, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
@@ -194,18 +197,23 @@ def _failed_today(staged: StagedPartition) -> list[str]:
 
 
 def _stored_frames(pieces: list[StratumPiece], *, experiment_id: str, ds: dt.date, run_id: str,
-                   computed_at, with_sums: bool = True) -> dict[str, pd.DataFrame]:
+                   computed_at, with_sums: bool = True,
+                   distinct_bidders: Mapping[tuple, int] | None = None) -> dict[str, pd.DataFrame]:
     """The pieces as rows of the results tables, keyed by (experiment, ds, n_bidders, shard).
 
     ``with_sums=False``: no bidder-sum rows (:func:`.bidder_sum_rows.write_bidder_sum_rows` stages
-    them); the strata rows still count each piece's distinct bidders.
+    them); the strata rows still count each piece's distinct bidders, from its bidder ids or, for
+    pieces whose sums were staged elsewhere, from ``distinct_bidders`` ((shard, n_bidders, segment)
+    to count; -1 for a piece without sums).
     """
     out = {}
     frames = pieces_to_frames(pieces if with_sums else [p.without_bidder_sums() for p in pieces])
     if not with_sums:
         frames.pop("bidder_sums")
         frames["strata"]["n_distinct_bidders"] = np.array(
-            [-1 if p.bidder_ids is None else p.bidder_ids.size for p in pieces], dtype=np.int64)
+            [(-1 if p.bidder_ids is None else p.bidder_ids.size) if distinct_bidders is None
+             else distinct_bidders.get((int(p.shard), int(p.n_bidders), p.key.segment), -1) for p in pieces],
+            dtype=np.int64)
     for name, frame in frames.items():
         frame = frame.drop(columns=["day"], errors="ignore")
         frame.insert(0, "experiment_id", experiment_id)
@@ -226,6 +234,34 @@ def _staged_day(staged: StagedPartition, ds: dt.date, *, manifest: bool) -> Stag
     recorded = json.loads(staged.require(staged.day_manifest, step="load").read_text(encoding="utf-8"))
     return StagedDay(ds=ds, shards=shards, n_shards=int(recorded["shards"]), staged_bids=int(recorded["day_bids"]),
                      source=str(staged.day))
+
+
+def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, experiment: Experiment, *, cluster: str,
+                      target: Path, run_id: str, computed_at):
+    """The day's pieces on Spark, their bidder sums staged at ``target`` by the executors (a folder of shard files).
+
+    Returns the pieces (without bidder sums, with the day's bidder forms when every piece had
+    them) and the distinct bidders of each piece whose sums were staged (``None`` when none were).
+    The folder replaces what an earlier run staged at ``target`` only once every shard is done.
+    """
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.spark")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True)
+    sink = ShardRowsSink(str(tmp), experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
+    try:
+        found = engine.day_pieces(_staged_day(staged, ds, manifest=True), experiment, cluster=cluster,
+                                  bidder_rows_sink=sink)
+        if found.gram is None:  # some shard kept no bidder sums: the day combines by auction, as locally
+            return found, None
+        missing = sorted({int(p.shard) for p in found.pieces} - staged_shards(tmp))
+        if missing:
+            raise EngineFailure(f"{staged.day}: the Spark engine lost the staged bidder sums of shard {missing[0]} "
+                                "(a task's output is missing); run the estimate step again")
+        distinct = distinct_bidders(tmp)
+        install_folder(tmp, target)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return found, distinct
 
 
 def _engine(spark, lake_root) -> Engine:
@@ -306,24 +342,30 @@ def estimate_partition(
                 clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
                 first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
                 run_id=run_id, computed_at=computed_at))
+    sums_file = staged.folder / f"{PIECE_TABLES['bidder_sums']}.parquet"
+    distinct = None  # on Spark: the pieces' distinct bidders, counted by the executors that staged their sums
     if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
         with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
             found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder))
+    elif engine.name == "spark":
+        found, distinct = _spark_day_pieces(engine, staged, ds, experiment, cluster=cluster, target=sums_file,
+                                            run_id=run_id, computed_at=computed_at)
     else:
-        found = engine.day_pieces(_staged_day(staged, ds, manifest=engine.name == "spark"), experiment, cluster=cluster)
+        found = engine.day_pieces(_staged_day(staged, ds, manifest=False), experiment, cluster=cluster)
     pieces = found.pieces
     day_result = combine_pieces(pieces, experiment, confidence_level=confidence_level, cluster=cluster,
                                 n_excluded_auctions=found.n_excluded_auctions, source=str(staged.day),
                                 bidder_gram=found.gram, segment_grams=found.segment_grams)
     if day_result.cluster == "auction":  # bidder sums not used: not stored either
         pieces = [p.without_bidder_sums() for p in pieces]
+        distinct = None
     frames = _stored_frames(pieces, experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at,
-                            with_sums=False)
+                            with_sums=False, distinct_bidders=distinct)
     for table, frame in frames.items():
         write_parquet(pa.Table.from_pandas(frame, preserve_index=False), staged.folder / f"{table}.parquet")
-    sums_table = PIECE_TABLES["bidder_sums"]  # label by label, never the day's rows at once
-    write_bidder_sum_rows(pieces, staged.folder / f"{sums_table}.parquet", experiment_id=experiment.id, ds=ds,
-                          run_id=run_id, computed_at=computed_at)
+    if distinct is None:  # label by label, never the day's rows at once (on Spark: the executors wrote them)
+        write_bidder_sum_rows(pieces, sums_file, experiment_id=experiment.id, ds=ds, run_id=run_id,
+                              computed_at=computed_at)
 
     # The analysis window: earlier days with stored pieces, minus burn-in, excluded and failed days.
     earlier = hook.stored_piece_days(experiment_id=experiment.id, ds=ds)
@@ -331,6 +373,8 @@ def estimate_partition(
     failed[ds] = failed_today
     window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
     used_before = [d for d in window.used if d != ds]
+    if distinct is not None and ds in window.used:  # the running window adds today's sums: read back shard by shard
+        pieces = pieces_with_staged_sums(pieces, sums_file)
     # the stored pieces' small tables, and the running bidder window (read for today's bidders only
     # when the window is the stored one plus today; rebuilt from the stored pieces otherwise)
     inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,

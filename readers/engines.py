@@ -133,20 +133,24 @@ class SparkEngine:
         return bid_log_pieces_on_spark(self.spark, str(path), experiment, max_bids_per_shard=max_bids_per_shard,
                                        cluster=cluster)
 
-    def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto") -> ShardPieces:
+    def day_pieces(self, day: StagedDay, experiment: Experiment, *, cluster: str = "auto",
+                   bidder_rows_sink=None) -> ShardPieces:
         """The day's pieces from the lake, in the load step's shards.
 
         Messages name the staged day, as the local engine's do (a shard's row numbers count from
         the start of that shard, which is the staged shard file). Spark reads the lake again, so
         it must find the bids the load step staged and the validate step checked: a different
-        count means the partition changed in between.
+        count means the partition changed in between. With ``bidder_rows_sink`` the executors
+        store the pieces' bidder sums through it and only the day's bidder forms reach the driver
+        (:func:`~counterbid.readers.spark_shards.lake_partition_pieces_on_spark`).
         """
         from .spark_shards import lake_partition_pieces_on_spark
 
         if self.lake_root in (None, ""):
             raise InputError("the Spark engine reads the day from the bid lake: `lake_root` is required")
         found = lake_partition_pieces_on_spark(self.spark, str(self.lake_root), experiment=experiment, ds=day.ds,
-                                               shards=day.n_shards, cluster=cluster, source=day.source)
+                                               shards=day.n_shards, cluster=cluster, source=day.source,
+                                               bidder_rows_sink=bidder_rows_sink)
         # every single-bidder auction left out is one bid; every other bid is in a piece
         seen = sum(p.n_bids for p in found.pieces) + found.n_excluded_auctions
         if seen != int(day.staged_bids):

@@ -14,8 +14,9 @@ pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
 only, plus a copy of it when the rows reach it out of read order (Spark sorts them by shard alone:
-the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum, plus per-bidder sums when clustering by
-bidder).
+the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum) and, when clustering by bidder, the Gram
+forms of the bidders' sums (:mod:`.spark_bidder_gram`); the DAG's estimate step has the executors
+store the per-bidder rows themselves (``bidder_rows_sink``), so they never reach the driver.
 
 Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
 a shard is named only when several hold bids; a bid without an auction id is refused by shard 0's
@@ -233,7 +234,11 @@ def engine_failure(exc: Exception, source: str) -> Exception:
     if len(detail) > 240:
         detail = detail[:237] + "..."
     for pattern, wording in _CAUSES:
-        if pattern.search(text):
+        found = pattern.search(text)
+        if found:
+            if "An exception was thrown from the Python worker" not in text and _DETAIL.search(text) is None:
+                # Spark's own line of the cause, not py4j's "An error occurred while calling ..."
+                detail = next((line for line in lines if found.group(0) in line), detail)[:240]
             return EngineFailure(f"{source}: the Spark engine failed: " + wording.format(detail=detail))
     return EngineFailure(f"{source}: the Spark engine failed ({detail})")
 
@@ -359,11 +364,13 @@ def _shard_names(several: bool):
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
-                  columns: list[str], sums_apart: bool = False) -> pa.Table:
+                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None) -> pa.Table:
     """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too.
 
     With ``sums_apart``, pieces that carry bidder sums travel without them and the shard's
     per-bidder totals follow the answer row as rows of their own (:mod:`.spark_bidder_gram`).
+    With ``bidder_rows_sink`` too, the worker first hands the shard's pieces, with their bidder
+    sums, to ``bidder_rows_sink(shard, pieces)`` (which stores them: the sums never reach the driver).
     """
     import pyarrow.compute as pc
 
@@ -394,6 +401,8 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     with_sums = bool(pieces) and all(p.bidder_sums is not None for p in pieces)
     schema = _answer_schema()
     per_bidder = []
+    if sums_apart and with_sums and bidder_rows_sink is not None:
+        bidder_rows_sink(shard, pieces)
     if sums_apart and with_sums:  # one set of rows per segment (one set when not segmented)
         for label in sorted({p.key.segment for p in pieces}, key=lambda v: (v is not None, v or "")):
             ids, unit, sums = bidder_rows([p for p in pieces if p.key.segment == label])
@@ -425,7 +434,8 @@ def _answer_schema(with_gram: bool = False) -> pa.Schema:
 
 
 def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, cluster: str = "auto", day=None,
-                       source: str = "bids", bidder_gram: bool = True, expected_bids: int | None = None) -> ShardPieces:
+                       source: str = "bids", bidder_gram: bool = True, expected_bids: int | None = None,
+                       bidder_rows_sink=None) -> ShardPieces:
     """Estimate every shard of a Spark frame of bids in parallel; the pieces, on the driver.
 
     Parameters
@@ -450,6 +460,10 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         sums. False: the pieces keep their bidder sums (every shard's, on the driver).
     expected_bids : int, optional
         Rows of ``bids``: the shards' answers must account for every one of them.
+    bidder_rows_sink : callable, optional
+        With ``bidder_gram``: called in the worker of each shard whose pieces carry bidder sums,
+        as ``bidder_rows_sink(shard, pieces)``, before they travel without them; it must be
+        picklable and store what it needs where the caller can read it (a folder every executor sees).
 
     Returns
     -------
@@ -477,7 +491,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
-                             columns=columns, sums_apart=bidder_gram)
+                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink)
 
     collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
 
@@ -494,7 +508,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
             out = grouped.applyInArrow(one_shard, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
                 out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
-            rows = out.collect()
+            rows = _collect(out)
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
             raise _analysis_error(exc, source) from None
@@ -507,6 +521,9 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         raise EngineFailure(f"{source}: the Spark engine returned the answers of {sum(int(a['n_bids']) for a in answers)} "
                             f"of {expected_bids} bids (a task's result was lost); run it again, with more driver "
                             "memory if it recurs")
+    if not answers:  # a non-empty input gives every shard an answer: none arrived, so the results were lost
+        raise EngineFailure(f"{source}: the Spark engine returned no shard's answer (the results were lost on the way "
+                            "to the driver); run it again, with more driver memory if it recurs")
     # as locally, a shard is named only when more than one shard holds bids (which only the answers tell)
     named = _shard_names(len(answers) > 1)
     for answer in answers:
@@ -533,6 +550,29 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
             units[p.key.segment] = max(units.get(p.key.segment, p.bid_exponent), p.bid_exponent)
     grams = combined_grams(parts, len(pieces[0].sum_labels), units)
     return ShardPieces(pieces, excluded, int(shards), gram=grams.pop(None), segment_grams=grams or None)
+
+
+def _collect(frame) -> list:
+    """``frame.collect()``, and the error of the driver's thread that served the rows, if it failed.
+
+    PySpark's ``collect`` reads the rows from a socket that a driver thread fills; when that
+    thread fails (``java.lang.OutOfMemoryError`` while serializing them, say) the socket just
+    closes and ``collect`` returns the rows read so far. Asking the thread for its result raises
+    its error instead (as PySpark's own Arrow collection does). Spark Connect frames collect as usual.
+    """
+    if not hasattr(frame, "_jdf"):
+        return frame.collect()
+    from pyspark.serializers import BatchedSerializer, CPickleSerializer
+    from pyspark.traceback_utils import SCCallSiteSync
+    from pyspark.util import _load_from_socket
+
+    with SCCallSiteSync(frame.sparkSession.sparkContext):
+        sock_info = frame._jdf.collectToPython()
+    with _load_from_socket(sock_info, BatchedSerializer(CPickleSerializer())) as stream:
+        rows = list(stream)
+    if len(sock_info) > 2:
+        sock_info[2].getResult()  # raises the serving thread's error (py4j's wrapper of it)
+    return rows
 
 
 def _read_parquet(spark, path: str, *, source: str, view: str, base_path: str | None = None):
@@ -599,7 +639,8 @@ def bid_log_pieces_on_spark(spark, path: str, experiment: Experiment, *, max_bid
 
 
 def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, shards: int,
-                                   cluster: str = "auto", source: str | None = None) -> ShardPieces:
+                                   cluster: str = "auto", source: str | None = None,
+                                   bidder_rows_sink=None) -> ShardPieces:
     """The pieces of one (experiment, day) of the Hive-partitioned bid lake, estimated on Spark.
 
     Spark reads the day's files under ``lake_root`` itself (only the ``ds=<day>`` folder is listed)
@@ -618,6 +659,10 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     cluster : {'auto', 'auction', 'bidder'}
     source : str, optional
         Name of the partition in messages (default ``"<lake_root> ds=<day>"``).
+    bidder_rows_sink : callable, optional
+        Where each shard's worker stores its pieces' bidder sums (see :func:`spark_shard_pieces`):
+        the pieces then come back without them, with the day's bidder forms (``gram``,
+        ``segment_grams``). Without it the pieces keep their bidder sums (every shard's, on the driver).
 
     Returns
     -------
@@ -625,9 +670,8 @@ def lake_partition_pieces_on_spark(spark, lake_root: str, *, experiment: Experim
     """
     source = source or f"{lake_root} ds={ds}"
     day = lake_day_frame(spark, lake_root, experiment=experiment, ds=ds, source=source)
-    # the estimate step stores the day's pieces with their bidder sums (the running window reads them)
     return spark_shard_pieces(spark, day, experiment, shards=shards, cluster=cluster, day=ds, source=source,
-                              bidder_gram=False)
+                              bidder_gram=bidder_rows_sink is not None, bidder_rows_sink=bidder_rows_sink)
 
 
 def lake_day_frame(spark, lake_root: str, *, experiment: Experiment, ds, source: str):
