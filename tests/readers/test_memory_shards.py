@@ -24,7 +24,9 @@ from counterbid.estimators import (
 from counterbid.estimators.errors import InputError
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
 from counterbid.readers.shards import bid_log_rows, pieces_by_shard, staged_bid_log_shards
-from counterbid.readers.memory_shards import MEMORY_BUDGET_ENV, fits_in_memory, memory_budget_mib, row_shards
+from counterbid.readers.memory_shards import (
+    MEMORY_BUDGET_ENV, factorized_in_order, fits_in_memory, memory_budget_mib, row_shards,
+)
 
 SPEC = {"experiments": [
     {"id": "crates", "control_arm": "flat", "payment_rule": "gsp", "arms": [
@@ -61,9 +63,23 @@ def test_row_shards_are_the_md5_rule_of_each_id(n):
     rng = np.random.default_rng(n)
     ints = pd.Series(rng.permutation(np.repeat(rng.integers(-10**12, 10**12, 400), 3)))
     assert row_shards(ints, n).tolist() == [_md5_shard(str(v), n) for v in ints]
+    runs = pd.Series(np.sort(ints.to_numpy()))  # a log written auction by auction: ids in runs
+    assert row_shards(runs, n).tolist() == [_md5_shard(str(v), n) for v in runs]
     nullable = ints.astype("Int64")
     nullable[5] = pd.NA
     assert row_shards(nullable, n)[5] == 0 and row_shards(nullable, n)[6] == _md5_shard(str(ints[6]), n)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_runs_factorize_as_pandas_does(seed):
+    """Ids that never decrease (runs) take the no-hash path; the plain formula is ``pd.factorize``."""
+    rng = np.random.default_rng(seed)
+    ids = np.repeat(np.cumsum(rng.integers(1, 1_000, 500)) - 10**6, rng.integers(1, 9, 500))
+    shuffled = rng.permutation(ids)  # not in runs: pandas' own path
+    for values in (ids, shuffled, ids[:1], ids[:0]):
+        codes, uniques = factorized_in_order(values)
+        want_codes, want_uniques = pd.factorize(values, sort=False)
+        assert np.array_equal(codes, want_codes) and np.array_equal(uniques, want_uniques)
 
 
 def _estimates(path, monkeypatch, budget: str, **kw):
