@@ -144,6 +144,25 @@ def _integer_bidders(bids: pd.DataFrame) -> pd.DataFrame:
     return bids
 
 
+def _shard_pieces(bids: pd.DataFrame, order: np.ndarray, bounds: np.ndarray, present: list[int],
+                  experiment: Experiment, cluster: str, name: str, *, auction_covariance: bool):
+    """Every present shard's pieces, single-bidder auctions left out, and whether some shard held nothing else."""
+    from .shards import one_shard_pieces
+
+    pieces: list[StratumPiece] = []
+    excluded, single_bidders = 0, False
+    for k in present:
+        where = name if len(present) == 1 else f"{name} (shard {k})"
+        # the shard's rows in log order, as the file-based split writes them; the same per-shard body
+        found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
+                                 cluster=cluster, where=where, alone=len(present) == 1,
+                                 auction_covariance=auction_covariance)
+        pieces += found.pieces
+        excluded += found.n_excluded_auctions
+        single_bidders = single_bidders or found.single_bidders_only
+    return pieces, excluded, single_bidders
+
+
 def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *, cluster: str = "auto",
                      source: str | None = None):
     """The pieces of every shard of a log split in memory (see the module notes).
@@ -170,7 +189,7 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     InputError
         Whatever the input's first fault; the caller then runs the file-based split for its message.
     """
-    from .shards import ShardPieces, one_shard_pieces
+    from .shards import ShardPieces
 
     name = str(source or path)
     columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
@@ -180,18 +199,17 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     bounds = np.searchsorted(shard[order], np.arange(int(n_shards) + 1))
     del shard
     present = [k for k in range(int(n_shards)) if bounds[k + 1] > bounds[k]]
-    pieces: list[StratumPiece] = []
-    excluded, single_bidders = 0, False
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
-        for k in present:
-            where = name if len(present) == 1 else f"{name} (shard {k})"
-            # the shard's rows in log order, as the file-based split writes them; the same per-shard body
-            found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
-                                     cluster=cluster, where=where, alone=len(present) == 1)
-            pieces += found.pieces
-            excluded += found.n_excluded_auctions
-            single_bidders = single_bidders or found.single_bidders_only
+        # Pieces that keep bidder sums are combined by bidder: their auction-clustered covariance
+        # (a gather and a bincount per metric) is left out. Only `auto` can still end up clustering
+        # by auction -- when some shard's bidders repeat and another's do not -- and then every
+        # shard is estimated again with it.
+        found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=False)
+        if cluster == "auto" and len({p.bidder_sums is None for p in found[0]}) > 1:
+            del said[:]
+            found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=True)
+    pieces, excluded, single_bidders = found
     if not pieces:
         raise no_pieces_error(name, experiment.id, single_bidders=single_bidders, n_excluded_auctions=excluded)
     for w in said:  # only once the whole log went through: a failed attempt says nothing

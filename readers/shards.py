@@ -342,6 +342,7 @@ def one_shard_pieces(
     where: str | None = None,
     alone: bool = True,
     hash_bidders: bool = False,
+    auction_covariance: bool = True,
 ) -> OneShard:
     """Read, validate and estimate one shard; keep only its stratum pieces.
 
@@ -370,6 +371,9 @@ def one_shard_pieces(
     hash_bidders : bool
         Text bidder ids as 64-bit hashes of their text (distinct ids hashed once; see
         :mod:`counterbid.readers.id_hashes`); a bad input's message still quotes the id's text.
+    auction_covariance : bool
+        False: a piece that keeps bidder sums leaves its auction-clustered covariance NaN
+        (:func:`~counterbid.estimators.stratum_pieces`); only for pieces combined by bidder and dropped.
 
     Returns
     -------
@@ -393,4 +397,5 @@ def one_shard_pieces(
     finally:
         del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
     excluded = int(prepared.n_excluded_auctions)
-    return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where), excluded)
+    return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where,
+                                   auction_covariance=auction_covariance), excluded)

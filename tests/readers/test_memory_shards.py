@@ -131,6 +131,27 @@ def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypa
     _same_numbers(hashed, plain)  # no collision among 700 ids: the same clusters, the same SEs
 
 
+def test_auto_with_repeats_in_some_shards_only_clusters_by_auction_as_the_plain_split(tmp_path, monkeypatch):
+    """The in-memory split leaves out the auction covariance of pieces with bidder sums; when `auto`
+    then combines by auction (a shard whose bidders never repeat keeps no sums), it estimates again."""
+    bids = _log(rng=8)
+    shard = shard_of(bids["auction_id"], 5)
+    lonely = shard == 2  # every bid of shard 2 by a bidder of its own: no repeats there
+    bids.loc[lonely, "bidder_id"] = "lone-" + pd.Series(np.arange(int(lonely.sum())), index=bids.index[lonely]).astype(str)
+    path = tmp_path / "mixed.parquet"
+    bids.to_parquet(path, index=False)
+    mem_pieces, mem = _estimates(path, monkeypatch, "1200", cluster="auto")
+    plain_pieces, plain = _plain(path, "auto")
+    kept = {p.key.shard: p.bidder_sums is not None for p in plain_pieces.pieces}
+    assert not kept[2] and kept[0]  # the plain split's pieces are mixed, as intended
+    assert mem.cluster == plain.cluster == "auction"
+    assert all(np.isfinite(p.covariance[0, 0]) for p in mem_pieces.pieces)
+    _same_numbers(mem, plain)
+    _, bidder = _estimates(path, monkeypatch, "1200", cluster="bidder")  # forced: sums everywhere, by bidder
+    assert bidder.cluster == "bidder" and _plain(path, "bidder")[1].cluster == "bidder"
+    _same_numbers(bidder, _plain(path, "bidder")[1])
+
+
 def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch):
     bids = _log(rng=5)
     shard = shard_of(bids["auction_id"], 5)
