@@ -196,7 +196,8 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
     shard = row_shards(bids["auction_id"], n_shards)
     order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
-    bounds = np.searchsorted(shard[order], np.arange(int(n_shards) + 1))
+    # where each shard's rows start in that order: the counts' running sum (no gather of the shard column)
+    bounds = np.concatenate([[0], np.cumsum(np.bincount(shard, minlength=int(n_shards)))])
     del shard
     present = [k for k in range(int(n_shards)) if bounds[k + 1] > bounds[k]]
     with warnings.catch_warnings(record=True) as said:

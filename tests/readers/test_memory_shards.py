@@ -152,6 +152,34 @@ def test_auto_with_repeats_in_some_shards_only_clusters_by_auction_as_the_plain_
     _same_numbers(bidder, _plain(path, "bidder")[1])
 
 
+@pytest.mark.parametrize("cluster", ["auto", "bidder"])
+def test_one_shard_with_coded_bidders_equals_the_text_ids(tmp_path, cluster):
+    """A log of one shard: its bidders meet on their dictionary codes; the plain formula keys them by text."""
+    bids = _log(n_auctions=900, rng=13)
+    path = tmp_path / "one.parquet"
+    bids.to_parquet(path, index=False)
+    found = LocalEngine().log_pieces(str(path), EXP, max_bids_per_shard=10**6, cluster=cluster)
+    coded = estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)
+    plain_pieces = pieces_by_shard([(0, path)], EXP, cluster=cluster, source=str(path))
+    plain = combine_pieces(plain_pieces.pieces, EXP, cluster=cluster, n_excluded_auctions=plain_pieces.n_excluded_auctions)
+    assert found.shards == coded.shards == 1 and coded.cluster == plain.cluster == "bidder"
+    assert all(p.bidder_ids.dtype == np.int64 for p in found.pieces)  # the shortcut ran
+    assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
+    assert [p.bidder_ids.size for p in found.pieces] == [p.bidder_ids.size for p in plain_pieces.pieces]
+    _same_numbers(coded, plain)
+    bad = bids.copy()
+    bad.loc[7, "bidder_id"] = None
+    bad.to_parquet(path, index=False)
+    with pytest.raises(InputError, match=r"column 'bidder_id' row 7 is null"):
+        estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)
+    twice = bids.copy()
+    row = int(np.flatnonzero(twice["auction_id"].to_numpy() == twice.loc[0, "auction_id"])[1])
+    twice.loc[row, "bidder_id"] = twice.loc[0, "bidder_id"]
+    twice.to_parquet(path, index=False)
+    with pytest.raises(InputError, match=rf"bidder '?{twice.loc[0, 'bidder_id']}'? bids twice .*rows 0 and {row}"):
+        estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)  # the message quotes the text
+
+
 def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch):
     bids = _log(rng=5)
     shard = shard_of(bids["auction_id"], 5)
