@@ -131,7 +131,8 @@ def _repeats_by_sort(auction: np.ndarray, bidder: np.ndarray) -> bool:
 
 @pytest.mark.parametrize("seed", range(6))
 def test_neighbour_duplicate_check_is_the_sort_of_every_pair(seed):
-    """Runs of 1..12 bids; bidders from pools of many sizes, so that some logs repeat a bidder in a run and some do not."""
+    """Runs of 1..12 bids; bidders from pools of many sizes, so that some logs repeat a bidder in a run
+    and some do not."""
     rng = np.random.default_rng(seed)
     sizes = rng.integers(1, 13, size=400)
     auction = np.repeat(np.arange(sizes.size), sizes)

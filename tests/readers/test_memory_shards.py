@@ -137,7 +137,8 @@ def test_auto_with_repeats_in_some_shards_only_clusters_by_auction_as_the_plain_
     bids = _log(rng=8)
     shard = shard_of(bids["auction_id"], 5)
     lonely = shard == 2  # every bid of shard 2 by a bidder of its own: no repeats there
-    bids.loc[lonely, "bidder_id"] = "lone-" + pd.Series(np.arange(int(lonely.sum())), index=bids.index[lonely]).astype(str)
+    own = pd.Series(np.arange(int(lonely.sum())), index=bids.index[lonely])
+    bids.loc[lonely, "bidder_id"] = "lone-" + own.astype(str)
     path = tmp_path / "mixed.parquet"
     bids.to_parquet(path, index=False)
     mem_pieces, mem = _estimates(path, monkeypatch, "1200", cluster="auto")
@@ -161,7 +162,8 @@ def test_one_shard_with_coded_bidders_equals_the_text_ids(tmp_path, cluster):
     found = LocalEngine().log_pieces(str(path), EXP, max_bids_per_shard=10**6, cluster=cluster)
     coded = estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)
     plain_pieces = pieces_by_shard([(0, path)], EXP, cluster=cluster, source=str(path))
-    plain = combine_pieces(plain_pieces.pieces, EXP, cluster=cluster, n_excluded_auctions=plain_pieces.n_excluded_auctions)
+    plain = combine_pieces(plain_pieces.pieces, EXP, cluster=cluster,
+                           n_excluded_auctions=plain_pieces.n_excluded_auctions)
     assert found.shards == coded.shards == 1 and coded.cluster == plain.cluster == "bidder"
     assert all(p.bidder_ids.dtype == np.int64 for p in found.pieces)  # the shortcut ran
     assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
