@@ -201,18 +201,46 @@ def _id_array(values) -> np.ndarray:
 
 #: Rows per block of the duplicate-bidder check on logs written auction by auction.
 _PAIR_BLOCK = 2**20
+#: Longest auction (in bids) for which the duplicate-bidder check of a log written auction by auction
+#: compares each bid with the next ones of its run instead of sorting: ``longest - 1`` passes of two
+#: comparisons over the rows, against a sort of the packed pairs.
+_NEIGHBOUR_CHECK_MAX_RUN = 16
+
+
+def _repeats_within_runs(auction: np.ndarray, bidder: np.ndarray, longest: int) -> bool:
+    """Whether two rows of one run of equal auction codes carry the same bidder label.
+
+    For rows in runs (a log written auction by auction) of at most ``longest`` rows, two rows of
+    one auction are at most ``longest - 1`` rows apart, so comparing every row with the ``d``-th
+    next for ``d = 1 .. longest - 1`` finds every repeated (auction, bidder) pair; no sort.
+    """
+    for d in range(1, int(longest)):
+        same = np.equal(auction[d:], auction[:-d])
+        same &= np.equal(bidder[d:], bidder[:-d])
+        if same.any():
+            return True
+    return False
 
 
 def _refuse_repeated_bidders(auction: np.ndarray, bidder: np.ndarray, n_bidder_labels: int, bids: pd.DataFrame,
-                             rows: np.ndarray | None, source: str, *, contiguous: bool) -> None:
+                             rows: np.ndarray | None, source: str, *, contiguous: bool,
+                             longest: int | None = None) -> None:
     """Raise when a bidder bids twice in one auction (duplicate rows of the log, say).
 
     Pairs are packed into one int64 key ``auction * B + bidder``; a duplicate is an equal
     neighbour after sorting (``np.sort``; which of two equal keys comes first does not matter).
     When the auction codes never decrease (a log written auction by auction) a duplicate can
-    only sit inside one run of rows, so the keys are sorted a block of whole auctions at a time.
+    only sit inside one run of rows: with runs of at most :data:`_NEIGHBOUR_CHECK_MAX_RUN` rows
+    (``longest``, the largest auction) each row is compared with the next ones of its run
+    (:func:`_repeats_within_runs`), else the keys are sorted a block of whole auctions at a time.
+    Whichever way finds a duplicate, the message comes from the sort of every pair (the first
+    row whose pair repeats), so it does not depend on the way.
     """
     n = auction.size
+    if contiguous and longest is not None and longest <= _NEIGHBOUR_CHECK_MAX_RUN:
+        if not _repeats_within_runs(auction, bidder, longest):
+            return
+        contiguous = False  # a duplicate: the plain check below names it
     n_auction_codes = int(auction[-1] if contiguous else auction.max()) + 1
     packable = n_auction_codes * max(n_bidder_labels, 1) < 2**62
     if packable and contiguous:
@@ -371,14 +399,16 @@ def prepare_bids(bids: pd.DataFrame, experiment: Experiment, *, source: str = "b
             f"{experiment.arm_names[arm[i]]!r} at row {_row(rows, i)})"
         )
     del split
-    narrow = counts.astype(np.uint8 if counts.max() < 2**8 else np.int32)
+    longest = int(counts.max())
+    narrow = counts.astype(np.uint8 if longest < 2**8 else np.int32)
     n_bidders = np.repeat(narrow, counts) if contiguous else narrow[auction]
     del narrow
     n_excluded = int(np.count_nonzero(counts == 1))
     del counts
     segment, segment_names = _segments(bids, experiment, auction, contiguous, rows, source)
     bidder, n_bidder_labels, bidder_ids = _bidder_labels(bids["bidder_id"])
-    _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous)
+    _refuse_repeated_bidders(auction, bidder, n_bidder_labels, bids, rows, source, contiguous=contiguous,
+                             longest=longest)
     covariates = auction_covariates(bids, experiment.scale_covariates, auction, experiment_id=experiment.id,
                                     rows=rows, source=source)
     if covariates is not None and not low > 0:  # homogenising takes the log of every (effective) bid

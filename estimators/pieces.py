@@ -230,7 +230,7 @@ class StratumPiece:
 
 
 def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cluster: str = "auto",
-                   source: str = "bids") -> list[StratumPiece]:
+                   source: str = "bids", auction_covariance: bool = True) -> list[StratumPiece]:
     """Estimate every stratum (number of bidders, and segment when declared) of one input alone: one piece each.
 
     Parameters
@@ -250,6 +250,9 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
         some bidder id of the input appears in more than one auction (as ``estimate_arms``).
     source : str, optional
         Name of the input in error messages and warnings.
+    auction_covariance : bool, optional
+        Default True. False leaves a piece's revenue covariance NaN when it keeps bidder sums
+        (as :func:`pieces_of_prepared`): only for pieces combined with bidder clustering and dropped.
 
     Returns
     -------
@@ -278,7 +281,7 @@ def stratum_pieces(bids, experiment: Experiment, *, shard: int = 0, day=None, cl
     day_text = None if day is None else parse_day(day, what="day").isoformat()
     data = bids if isinstance(bids, PreparedBids) else prepare_bids(bids, experiment, source=source)
     return pieces_of_prepared(data, experiment, base=StratumKey(day=day_text, n_bidders=0, shard=int(shard)),
-                              cluster=cluster, source=source)
+                              cluster=cluster, source=source, auction_covariance=auction_covariance)
 
 
 def pieces_of_prepared(data: PreparedBids, experiment: Experiment, *, base: StratumKey, cluster: str, source: str,

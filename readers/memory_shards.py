@@ -87,6 +87,22 @@ def _distinct_shards(ids, n_shards: int) -> np.ndarray:
     return np.asarray(found, dtype=np.int64)
 
 
+def factorized_in_order(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``pd.factorize(values, sort=False)`` of integers; without hashing when they never decrease.
+
+    A log written auction by auction holds each auction id in one run of rows: when the ids never
+    decrease, the distinct ids are the runs' first values (already distinct, as they increase) and
+    a row's code is the number of runs before its own, the numbers factorize gives.
+    """
+    if values.size > 1 and bool(np.all(values[1:] >= values[:-1])):
+        change = values[1:] != values[:-1]
+        codes = np.empty(values.size, dtype=np.int64)
+        codes[0] = 0
+        np.cumsum(change, out=codes[1:])
+        return codes, values[np.concatenate([[0], np.flatnonzero(change) + 1])]
+    return pd.factorize(values, sort=False)
+
+
 def row_shards(auction_ids: pd.Series, n_shards: int) -> np.ndarray:
     """The shard of every row's auction, hashing each distinct id once (null: shard 0).
 
@@ -107,7 +123,7 @@ def row_shards(auction_ids: pd.Series, n_shards: int) -> np.ndarray:
         return out
     nulls = auction_ids.isna().to_numpy() if auction_ids.hasnans else None
     values = auction_ids.to_numpy(dtype=np.int64, na_value=0) if nulls is not None else auction_ids.to_numpy()
-    codes, uniques = pd.factorize(values, sort=False)
+    codes, uniques = factorized_in_order(values)
     out = _distinct_shards(np.asarray(uniques, dtype=np.int64), n_shards).astype(np.int16)[codes]
     if nulls is not None:
         out[nulls] = 0
@@ -126,6 +142,25 @@ def _integer_bidders(bids: pd.DataFrame) -> pd.DataFrame:
         if codes.size and codes.min() >= 0:
             return bids.assign(bidder_id=codes)
     return bids
+
+
+def _shard_pieces(bids: pd.DataFrame, order: np.ndarray, bounds: np.ndarray, present: list[int],
+                  experiment: Experiment, cluster: str, name: str, *, auction_covariance: bool):
+    """Every present shard's pieces, single-bidder auctions left out, and whether some shard held nothing else."""
+    from .shards import one_shard_pieces
+
+    pieces: list[StratumPiece] = []
+    excluded, single_bidders = 0, False
+    for k in present:
+        where = name if len(present) == 1 else f"{name} (shard {k})"
+        # the shard's rows in log order, as the file-based split writes them; the same per-shard body
+        found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
+                                 cluster=cluster, where=where, alone=len(present) == 1,
+                                 auction_covariance=auction_covariance)
+        pieces += found.pieces
+        excluded += found.n_excluded_auctions
+        single_bidders = single_bidders or found.single_bidders_only
+    return pieces, excluded, single_bidders
 
 
 def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *, cluster: str = "auto",
@@ -154,28 +189,28 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     InputError
         Whatever the input's first fault; the caller then runs the file-based split for its message.
     """
-    from .shards import ShardPieces, one_shard_pieces
+    from .shards import ShardPieces
 
     name = str(source or path)
     columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
     bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
     shard = row_shards(bids["auction_id"], n_shards)
     order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
-    bounds = np.searchsorted(shard[order], np.arange(int(n_shards) + 1))
+    # where each shard's rows start in that order: the counts' running sum (no gather of the shard column)
+    bounds = np.concatenate([[0], np.cumsum(np.bincount(shard, minlength=int(n_shards)))])
     del shard
     present = [k for k in range(int(n_shards)) if bounds[k + 1] > bounds[k]]
-    pieces: list[StratumPiece] = []
-    excluded, single_bidders = 0, False
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
-        for k in present:
-            where = name if len(present) == 1 else f"{name} (shard {k})"
-            # the shard's rows in log order, as the file-based split writes them; the same per-shard body
-            found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
-                                     cluster=cluster, where=where, alone=len(present) == 1)
-            pieces += found.pieces
-            excluded += found.n_excluded_auctions
-            single_bidders = single_bidders or found.single_bidders_only
+        # Pieces that keep bidder sums are combined by bidder: their auction-clustered covariance
+        # (a gather and a bincount per metric) is left out. Only `auto` can still end up clustering
+        # by auction -- when some shard's bidders repeat and another's do not -- and then every
+        # shard is estimated again with it.
+        found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=False)
+        if cluster == "auto" and len({p.bidder_sums is None for p in found[0]}) > 1:
+            del said[:]
+            found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=True)
+    pieces, excluded, single_bidders = found
     if not pieces:
         raise no_pieces_error(name, experiment.id, single_bidders=single_bidders, n_excluded_auctions=excluded)
     for w in said:  # only once the whole log went through: a failed attempt says nothing

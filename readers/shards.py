@@ -245,6 +245,21 @@ def _hashed_bidders(bids):
     return bids.assign(bidder_id=fnv1a_64(pa.array(col.cat.categories, type=pa.large_string()))[codes])
 
 
+def _coded_bidders(bids):
+    """``bids`` with text bidder ids replaced by their categorical codes (no null); else ``None``.
+
+    Within one input the codes label the distinct ids one to one, so an input estimated alone (one
+    shard: the whole log) needs neither the text nor a hash; no Python string is made per id.
+    """
+    col = bids["bidder_id"] if "bidder_id" in bids.columns else None
+    if col is None or not isinstance(col.dtype, pd.CategoricalDtype):
+        return None
+    codes = col.cat.codes.to_numpy()
+    if not codes.size or codes.min() < 0:  # nulls: the validation names them
+        return None
+    return bids.assign(bidder_id=codes)
+
+
 @dataclass(frozen=True)
 class ShardPieces:
     """The stratum pieces of every shard of an input, the single-bidder auctions left out, and the shards read.
@@ -270,6 +285,7 @@ def pieces_by_shard(
     day=None,
     source: str | None = None,
     hash_bidders: bool = False,
+    code_bidders: bool = False,
     spill=None,
 ) -> ShardPieces:
     """Read, validate and estimate each shard alone; keep only its stratum pieces.
@@ -295,6 +311,9 @@ def pieces_by_shard(
         of a shard hashed once), so that shards combine on integers. Only for pieces that are
         combined and dropped (the command line's); stored pieces keep the text. Messages still
         quote the text.
+    code_bidders : bool, optional
+        Text bidder ids as their dictionary codes (:func:`_coded_bidders`): for one shard holding the
+        whole input, whose pieces are combined and dropped (the command line's). Messages quote the text.
     spill : BidderSpill, optional
         Set each shard's bidder sums aside there as the shard is done
         (:class:`~counterbid.readers.bidder_spill.BidderSpill`): the pieces returned carry none,
@@ -312,7 +331,7 @@ def pieces_by_shard(
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         found = one_shard_pieces(k, path, experiment, cluster=cluster, day=day, where=where, alone=len(shards) == 1,
-                                 hash_bidders=hash_bidders)
+                                 hash_bidders=hash_bidders, code_bidders=code_bidders and len(shards) == 1)
         pieces += found.pieces if spill is None else spill.add(found.pieces)
         excluded += found.n_excluded_auctions
         single_bidders = single_bidders or found.single_bidders_only
@@ -342,6 +361,8 @@ def one_shard_pieces(
     where: str | None = None,
     alone: bool = True,
     hash_bidders: bool = False,
+    code_bidders: bool = False,
+    auction_covariance: bool = True,
 ) -> OneShard:
     """Read, validate and estimate one shard; keep only its stratum pieces.
 
@@ -370,6 +391,12 @@ def one_shard_pieces(
     hash_bidders : bool
         Text bidder ids as 64-bit hashes of their text (distinct ids hashed once; see
         :mod:`counterbid.readers.id_hashes`); a bad input's message still quotes the id's text.
+    code_bidders : bool
+        Text bidder ids as their dictionary codes, for a shard that is the whole input (see
+        :func:`pieces_by_shard`); a bad input's message still quotes the id's text.
+    auction_covariance : bool
+        False: a piece that keeps bidder sums leaves its auction-clustered covariance NaN
+        (:func:`~counterbid.estimators.stratum_pieces`); only for pieces combined by bidder and dropped.
 
     Returns
     -------
@@ -379,7 +406,7 @@ def one_shard_pieces(
     where = str(where or ("bids" if in_memory else bids))
     if not in_memory:
         bids = read_bids(bids, columns=["experiment_id", *BID_COLUMNS, *experiment.auction_columns], source=where)
-    hashed = _hashed_bidders(bids) if hash_bidders else None
+    hashed = _hashed_bidders(bids) if hash_bidders else _coded_bidders(bids) if code_bidders else None
     try:
         prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)
     except NothingToEstimate as exc:
@@ -393,4 +420,5 @@ def one_shard_pieces(
     finally:
         del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
     excluded = int(prepared.n_excluded_auctions)
-    return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where), excluded)
+    return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where,
+                                   auction_covariance=auction_covariance), excluded)

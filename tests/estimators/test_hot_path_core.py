@@ -111,11 +111,51 @@ def test_prepared_bids_and_categorical_columns_give_the_same_rows():
     pd.testing.assert_frame_equal(estimate_arms(shuffled, exp).table, plain.table)
 
 
-def test_duplicate_bidder_is_found_across_check_blocks(monkeypatch):
+@pytest.mark.parametrize("neighbour_max_run", [0, 16], ids=["sorted-blocks", "neighbours"])
+def test_duplicate_bidder_is_found_across_check_blocks(monkeypatch, neighbour_max_run):
     monkeypatch.setattr(bids_module, "_PAIR_BLOCK", 1_000)
+    monkeypatch.setattr(bids_module, "_NEIGHBOUR_CHECK_MAX_RUN", neighbour_max_run)
     exp = _experiment()
     bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=3, n_auctions=2_000, rng=7)
     estimate_arms(bids, exp)  # clean: passes block by block
     dup = pd.concat([bids.iloc[:4_500], bids.iloc[[4_499]], bids.iloc[4_500:]], ignore_index=True)
     with pytest.raises(InputError, match=r"bids twice in auction .*rows 4499 and 4500"):
         estimate_arms(dup, exp)
+
+
+def _repeats_by_sort(auction: np.ndarray, bidder: np.ndarray) -> bool:
+    """The plain check: an (auction, bidder) pair that occurs twice, by one sort of every packed pair."""
+    pair = np.sort(auction.astype(np.int64) * (int(bidder.max()) + 1) + bidder)
+    return bool((pair[1:] == pair[:-1]).any())
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_neighbour_duplicate_check_is_the_sort_of_every_pair(seed):
+    """Runs of 1..12 bids; bidders from pools of many sizes, so that some logs repeat a bidder in a run
+    and some do not."""
+    rng = np.random.default_rng(seed)
+    sizes = rng.integers(1, 13, size=400)
+    auction = np.repeat(np.arange(sizes.size), sizes)
+    found = []
+    for trial in range(40):
+        bidder = rng.integers(0, int(10 ** rng.uniform(2, 6)), size=auction.size)  # pools of 100 to 1M bidders
+        longest = int(sizes.max())
+        expected = _repeats_by_sort(auction, bidder)
+        assert bids_module._repeats_within_runs(auction, bidder, longest) == expected
+        found.append(expected)
+    assert any(found) and not all(found)  # both outcomes were exercised
+
+
+def test_neighbour_check_names_the_same_rows_as_the_sorted_check(monkeypatch):
+    exp = _experiment()
+    bids = simulate_experiment(st.uniform(0, 1), exp, n_bidders=4, n_auctions=3_000, rng=11)
+    # the bidder of row 1 again at row 3: same auction, two rows apart
+    dup = bids.copy()
+    dup.loc[3, "bidder_id"] = dup.loc[1, "bidder_id"]
+    messages = []
+    for max_run in (0, 16):
+        monkeypatch.setattr(bids_module, "_NEIGHBOUR_CHECK_MAX_RUN", max_run)
+        with pytest.raises(InputError, match=r"bids twice in auction .*rows 1 and 3") as caught:
+            prepare_bids(dup, exp)
+        messages.append(str(caught.value))
+    assert messages[0] == messages[1]

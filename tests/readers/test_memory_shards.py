@@ -24,7 +24,9 @@ from counterbid.estimators import (
 from counterbid.estimators.errors import InputError
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
 from counterbid.readers.shards import bid_log_rows, pieces_by_shard, staged_bid_log_shards
-from counterbid.readers.memory_shards import MEMORY_BUDGET_ENV, fits_in_memory, memory_budget_mib, row_shards
+from counterbid.readers.memory_shards import (
+    MEMORY_BUDGET_ENV, factorized_in_order, fits_in_memory, memory_budget_mib, row_shards,
+)
 
 SPEC = {"experiments": [
     {"id": "crates", "control_arm": "flat", "payment_rule": "gsp", "arms": [
@@ -61,9 +63,23 @@ def test_row_shards_are_the_md5_rule_of_each_id(n):
     rng = np.random.default_rng(n)
     ints = pd.Series(rng.permutation(np.repeat(rng.integers(-10**12, 10**12, 400), 3)))
     assert row_shards(ints, n).tolist() == [_md5_shard(str(v), n) for v in ints]
+    runs = pd.Series(np.sort(ints.to_numpy()))  # a log written auction by auction: ids in runs
+    assert row_shards(runs, n).tolist() == [_md5_shard(str(v), n) for v in runs]
     nullable = ints.astype("Int64")
     nullable[5] = pd.NA
     assert row_shards(nullable, n)[5] == 0 and row_shards(nullable, n)[6] == _md5_shard(str(ints[6]), n)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_runs_factorize_as_pandas_does(seed):
+    """Ids that never decrease (runs) take the no-hash path; the plain formula is ``pd.factorize``."""
+    rng = np.random.default_rng(seed)
+    ids = np.repeat(np.cumsum(rng.integers(1, 1_000, 500)) - 10**6, rng.integers(1, 9, 500))
+    shuffled = rng.permutation(ids)  # not in runs: pandas' own path
+    for values in (ids, shuffled, ids[:1], ids[:0]):
+        codes, uniques = factorized_in_order(values)
+        want_codes, want_uniques = pd.factorize(values, sort=False)
+        assert np.array_equal(codes, want_codes) and np.array_equal(uniques, want_uniques)
 
 
 def _estimates(path, monkeypatch, budget: str, **kw):
@@ -113,6 +129,57 @@ def test_in_memory_split_and_hashed_ids_equal_the_plain_split(tmp_path, monkeypa
     assert mem_pieces.n_excluded_auctions == plain_pieces.n_excluded_auctions > 0
     _same_numbers(mem, plain)
     _same_numbers(hashed, plain)  # no collision among 700 ids: the same clusters, the same SEs
+
+
+def test_auto_with_repeats_in_some_shards_only_clusters_by_auction_as_the_plain_split(tmp_path, monkeypatch):
+    """The in-memory split leaves out the auction covariance of pieces with bidder sums; when `auto`
+    then combines by auction (a shard whose bidders never repeat keeps no sums), it estimates again."""
+    bids = _log(rng=8)
+    shard = shard_of(bids["auction_id"], 5)
+    lonely = shard == 2  # every bid of shard 2 by a bidder of its own: no repeats there
+    own = pd.Series(np.arange(int(lonely.sum())), index=bids.index[lonely])
+    bids.loc[lonely, "bidder_id"] = "lone-" + own.astype(str)
+    path = tmp_path / "mixed.parquet"
+    bids.to_parquet(path, index=False)
+    mem_pieces, mem = _estimates(path, monkeypatch, "1200", cluster="auto")
+    plain_pieces, plain = _plain(path, "auto")
+    kept = {p.key.shard: p.bidder_sums is not None for p in plain_pieces.pieces}
+    assert not kept[2] and kept[0]  # the plain split's pieces are mixed, as intended
+    assert mem.cluster == plain.cluster == "auction"
+    assert all(np.isfinite(p.covariance[0, 0]) for p in mem_pieces.pieces)
+    _same_numbers(mem, plain)
+    _, bidder = _estimates(path, monkeypatch, "1200", cluster="bidder")  # forced: sums everywhere, by bidder
+    assert bidder.cluster == "bidder" and _plain(path, "bidder")[1].cluster == "bidder"
+    _same_numbers(bidder, _plain(path, "bidder")[1])
+
+
+@pytest.mark.parametrize("cluster", ["auto", "bidder"])
+def test_one_shard_with_coded_bidders_equals_the_text_ids(tmp_path, cluster):
+    """A log of one shard: its bidders meet on their dictionary codes; the plain formula keys them by text."""
+    bids = _log(n_auctions=900, rng=13)
+    path = tmp_path / "one.parquet"
+    bids.to_parquet(path, index=False)
+    found = LocalEngine().log_pieces(str(path), EXP, max_bids_per_shard=10**6, cluster=cluster)
+    coded = estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)
+    plain_pieces = pieces_by_shard([(0, path)], EXP, cluster=cluster, source=str(path))
+    plain = combine_pieces(plain_pieces.pieces, EXP, cluster=cluster,
+                           n_excluded_auctions=plain_pieces.n_excluded_auctions)
+    assert found.shards == coded.shards == 1 and coded.cluster == plain.cluster == "bidder"
+    assert all(p.bidder_ids.dtype == np.int64 for p in found.pieces)  # the shortcut ran
+    assert all(p.bidder_ids.dtype == object for p in plain_pieces.pieces)
+    assert [p.bidder_ids.size for p in found.pieces] == [p.bidder_ids.size for p in plain_pieces.pieces]
+    _same_numbers(coded, plain)
+    bad = bids.copy()
+    bad.loc[7, "bidder_id"] = None
+    bad.to_parquet(path, index=False)
+    with pytest.raises(InputError, match=r"column 'bidder_id' row 7 is null"):
+        estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)
+    twice = bids.copy()
+    row = int(np.flatnonzero(twice["auction_id"].to_numpy() == twice.loc[0, "auction_id"])[1])
+    twice.loc[row, "bidder_id"] = twice.loc[0, "bidder_id"]
+    twice.to_parquet(path, index=False)
+    with pytest.raises(InputError, match=rf"bidder '?{twice.loc[0, 'bidder_id']}'? bids twice .*rows 0 and {row}"):
+        estimate_bid_log(path, EXP, max_bids_per_shard=10**6, cluster=cluster)  # the message quotes the text
 
 
 def test_bad_row_in_a_later_shard_gets_the_file_split_line(tmp_path, monkeypatch):
