@@ -35,7 +35,8 @@ from counterbid.estimators.errors import InputError
 from counterbid.readers.shards import max_bids_per_shard as max_bids_per_shard_setting
 from counterbid.sql import statement
 
-from .check_runner import MAX_FLAGGED_BIDS, MAX_SAMPLE_BIDS, run_checks, sample_auctions_every
+from . import check_runner
+from .check_runner import MAX_FLAGGED_BIDS, run_checks, sample_auctions_every
 from .hooks import ResultsHook
 from .lake_hook import LakeHook
 from .partition import (MissingPartitionError, stage_bid_quantiles, stage_measured_weights, staged_experiment,
@@ -261,7 +262,7 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
         return results + contract
     shards, day_bids = int(manifest["shards"]), int(manifest["day_bids"])
     _check_day(spark, bids, shards=shards)
-    sampled = shards > 1 or day_bids > MAX_SAMPLE_BIDS
+    sampled = shards > 1 or day_bids > check_runner.MAX_SAMPLE_BIDS
     counts = sample = None
     every = 1
     if sampled:
