@@ -45,7 +45,7 @@ from .schema_gate import gate_checks
 from .spark_contract import duckdb_type_name, run_contract_on_spark, spark_auction_counts
 from .staging import StagedPartition, replace_folder, write_json
 
-__all__ = ["SPARK_DAY", "changed_files", "read_spark_day", "record_spark_day", "run_spark_partition_checks"]
+__all__ = ["CHECK_STATEMENT_PARAMETERS", "SPARK_DAY", "changed_files", "read_spark_day", "record_spark_day", "run_spark_partition_checks"]
 
 log = logging.getLogger(__name__)
 
@@ -54,6 +54,27 @@ SPARK_DAY = "spark"
 #: Views the statements of this module read.
 GATE_VIEW, GATE_VALUES_VIEW = "counterbid_gate_bids", "counterbid_gate_values"
 SOURCE_VIEW, DAY_VIEW, FENCES_VIEW = "counterbid_check_source", "counterbid_check_day", "counterbid_outlier_fences"
+#: Every statement this module runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
+CHECK_STATEMENT_PARAMETERS = {
+    "spark_gate_arm_counts": frozenset(),
+    "spark_gate_null_counts": frozenset(),
+    "spark_gate_quality_faults": frozenset(),
+    "spark_gate_integer_range": frozenset({"low", "high"}),
+    "spark_check_day": frozenset({"n_shards"}),
+    "spark_check_shard_auctions": frozenset(),
+    "spark_check_sample_bids": frozenset({"sample_shard", "auctions_every"}),
+    "spark_check_bids_above_fence": frozenset({"max_flagged"}),
+}
+
+
+def _run_sql(spark, name: str, **args):
+    """Spark's frame of ``sql/<name>.spark.sql`` with ``args`` bound (exactly its parameters)."""
+    if set(args) != CHECK_STATEMENT_PARAMETERS[name]:  # a programming error, not an input's
+        raise ValueError(f"statement {name!r} binds {sorted(CHECK_STATEMENT_PARAMETERS[name])}; got {sorted(args)}")
+    text = statement(name, dialect="spark")
+    return spark.sql(text, args=args) if args else spark.sql(text)
+
+
 #: Columns the distribution checks read (``sql/check_day_bids.sql``), besides the experiment's auction columns.
 SAMPLE_COLUMNS = ("experiment_id", "auction_id", "bidder_id", "arm", "bid", "position", "quality")
 
@@ -152,7 +173,7 @@ class SparkGateInputs:
 
     def _frame(self, name: str, **args) -> pd.DataFrame:
         self.day.createOrReplaceTempView(GATE_VIEW)
-        return self.spark.sql(statement(name, dialect="spark"), args=args).toPandas()
+        return _run_sql(self.spark, name, **args).toPandas()
 
     def columns(self) -> dict[str, str]:
         return {name: duckdb_type_name(kind) for name, kind in self.spark_columns.items()}
@@ -160,8 +181,7 @@ class SparkGateInputs:
     def integer_range(self, column: str) -> tuple[int, str | None]:
         self.day.select(self.day[column].alias("gate_value")).createOrReplaceTempView(GATE_VALUES_VIEW)
         low, high = INTEGER_RANGE
-        (row,) = self.spark.sql(statement("spark_gate_integer_range", dialect="spark"),
-                                args={"low": str(low), "high": str(high)}).collect()
+        (row,) = _run_sql(self.spark, "spark_gate_integer_range", low=str(low), high=str(high)).collect()
         return int(row["outside"]), row["example"]
 
     def arm_counts(self) -> pd.DataFrame:
@@ -186,7 +206,7 @@ def _check_day(spark, bids, *, shards: int):
     if "quality" not in bids.columns:
         bids = bids.withColumn("quality", F.lit(1.0).cast("double"))
     bids.createOrReplaceTempView(SOURCE_VIEW)
-    day = spark.sql(statement("spark_check_day", dialect="spark"), args={"n_shards": int(shards)})
+    day = _run_sql(spark, "spark_check_day", n_shards=int(shards))
     day.createOrReplaceTempView(DAY_VIEW)
     return day
 
@@ -198,8 +218,7 @@ def _outlier_scan(spark):
         table = pd.DataFrame({"n_bidders": pd.Series(list(fences), dtype="int64"),
                               "fence": pd.Series(list(fences.values()), dtype="float64")})
         spark.createDataFrame(table, "n_bidders long, fence double").createOrReplaceTempView(FENCES_VIEW)
-        found = spark.sql(statement("spark_check_bids_above_fence", dialect="spark"),
-                          args={"max_flagged": MAX_FLAGGED_BIDS}).toPandas()
+        found = _run_sql(spark, "spark_check_bids_above_fence", max_flagged=MAX_FLAGGED_BIDS).toPandas()
         return found.astype({"n_bidders": "int64", "bid": "float64", "effective_bid": "float64"})
 
     return scan
@@ -209,8 +228,7 @@ def _sample_table(spark, experiment: Experiment, *, sample: int, every: int):
     """The sample's bids (shard ``sample``, 1 auction in ``every``) as an Arrow table on the driver."""
     day = spark.table(DAY_VIEW)
     wanted = [c for c in (*SAMPLE_COLUMNS, *experiment.auction_columns) if c in day.columns]
-    frame = spark.sql(statement("spark_check_sample_bids", dialect="spark"),
-                      args={"sample_shard": int(sample), "auctions_every": int(every)})
+    frame = _run_sql(spark, "spark_check_sample_bids", sample_shard=int(sample), auctions_every=int(every))
     return frame.select(*dict.fromkeys(wanted)).toArrow()
 
 
@@ -267,7 +285,7 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
     every = 1
     if sampled:
         counts = spark_auction_counts(spark, bids)
-        estimable = [int(r["shard"]) for r in spark.sql(statement("spark_check_shard_auctions", dialect="spark")).collect()]
+        estimable = [int(r["shard"]) for r in _run_sql(spark, "spark_check_shard_auctions").collect()]
         sample = estimable[0] if estimable else 0
         every = sample_auctions_every(day_bids, shards)
     table = _sample_table(spark, experiment, sample=sample or 0, every=every)

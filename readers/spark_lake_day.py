@@ -17,8 +17,10 @@ from counterbid.sql import statement
 
 from .spark_shards import _analysis_error, _as_engine_failure, _is_read_failure, lake_day_frame
 
-__all__ = ["DayFile", "LakeDay", "lake_day_on_spark"]
+__all__ = ["DAY_FILES_STATEMENT_PARAMETERS", "DayFile", "LakeDay", "lake_day_on_spark"]
 
+#: The statement this module runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
+DAY_FILES_STATEMENT_PARAMETERS = {"spark_lake_day_files": frozenset({"experiment_id"})}
 #: The view ``sql/spark_lake_day_files.spark.sql`` reads.
 FILES_VIEW = "counterbid_day_files"
 #: Columns Spark adds to the day's rows (file and row of each bid), not the log's.
@@ -93,8 +95,8 @@ def lake_day_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, sour
         files = spark.read.option("mergeSchema", "true").option("basePath", root).parquet(f"{root}/ds={ds}")
         files.select(files["_metadata.file_path"].alias("bid_file"), files["_metadata.file_size"].alias("file_size"),
                      "experiment_id").createOrReplaceTempView(FILES_VIEW)
-        rows = spark.sql(statement("spark_lake_day_files", dialect="spark"),
-                         args={"experiment_id": experiment.id}).collect()
+        args = {"experiment_id": experiment.id}  # exactly DAY_FILES_STATEMENT_PARAMETERS' names
+        rows = spark.sql(statement("spark_lake_day_files", dialect="spark"), args=args).collect()
     except Exception as exc:  # a footer Spark lists but cannot read shows up when the job runs
         if _is_read_failure(exc):
             raise _analysis_error(exc, source) from None
