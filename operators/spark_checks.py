@@ -23,6 +23,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import logging
+import time
 from dataclasses import dataclass
 from typing import Any
 
@@ -266,8 +267,10 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
 
     manifest = read_spark_day(staged)
     source = f"{lake_root} ds={ds}"
+    phase = _Phases(f"{experiment.id} {ds}")
     day = lake_day_frame(spark, lake_root, experiment=experiment, ds=ds, source=source)
     results = gate_checks(SparkGateInputs(spark, day, manifest["columns"]), experiment=experiment)
+    phase("schema gate")
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
@@ -275,6 +278,7 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
     staged.bid_quantiles.unlink(missing_ok=True)
     bids = day.drop("bid_file", "bid_row")
     contract = run_contract_on_spark(spark, bids, experiment, source=source)
+    phase("contract suite")
     if worst_failure(contract) == "error":  # run_checks stops here too: the statistical checks' inputs are not trustworthy
         log.warning("%s %s: contract failed; statistical checks not run", experiment.id, ds)
         return results + contract
@@ -288,7 +292,9 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
         estimable = [int(r["shard"]) for r in _run_sql(spark, "spark_check_shard_auctions").collect()]
         sample = estimable[0] if estimable else 0
         every = sample_auctions_every(day_bids, shards)
+    phase("auction counts and sample shard")
     table = _sample_table(spark, experiment, sample=sample or 0, every=every)
+    phase("sample to the driver")
     log.info("%s %s: %d of %d bids to the driver for the distribution checks (shard %s of %s, 1 auction in %d)",
              experiment.id, ds, table.num_rows, day_bids, sample, shards, every)
     summaries: list[pd.DataFrame] = []
@@ -308,5 +314,18 @@ def run_spark_partition_checks(spark, hook: ResultsHook, *, lake_root: str, expe
                                    contract=contract, auction_counts=counts,
                                    outlier_scan=_outlier_scan(spark) if sampled else None))
     del table
+    phase("statistical checks")
     stage_bid_quantiles(staged, summaries, results, experiment_id=experiment.id, ds=ds)
     return results
+
+
+class _Phases:
+    """Logs each phase's wall and driver CPU seconds (where a validate step's time goes)."""
+
+    def __init__(self, where: str) -> None:
+        self.where, self.wall, self.cpu = where, time.perf_counter(), time.process_time()
+
+    def __call__(self, name: str) -> None:
+        wall, cpu = time.perf_counter(), time.process_time()
+        log.info("%s: %s took %.2f s (driver CPU %.2f s)", self.where, name, wall - self.wall, cpu - self.cpu)
+        self.wall, self.cpu = wall, cpu

@@ -161,6 +161,10 @@ def main(argv: list[str] | None = None) -> int:
     args = p.parse_args(argv)
     spec, lake = args.data / "spec.yaml", args.data / f"lake_{args.millions}M"
     if args.step:
+        import logging
+
+        # the steps' own lines (the Spark validate step logs where its time goes) to stderr
+        logging.basicConfig(level=logging.INFO, stream=sys.stderr, format="%(name)s: %(message)s")
         engine = args.engine
         answer = one_step(args.step, engine, lake, spec, args.data / f"run_{args.millions}M_{engine}_steps")
         print(ANSWER + json.dumps(answer), flush=True)
