@@ -31,10 +31,16 @@ the day's partition of ``lake_root`` itself, splits it into the shards the load 
 estimates them in parallel; the numbers and stored rows are the local engine's). With ``spark``,
 ``COUNTERBID_SPARK_CONN`` names the Airflow connection of the cluster (host = master URL, extras =
 Spark settings; a ``spark_connect`` connection for Spark Connect); empty = a ``local[*]`` session
-in the worker. The load and validate steps are the same with either engine (they stage and check
-the day with DuckDB); Spark's executors read the lake at ``COUNTERBID_SPARK_LAKE`` (the run
-parameter ``spark_lake_root``), by default ``lake_root`` itself -- set it when Spark names the same
-store differently (``s3a://`` for DuckDB's ``s3://``).
+in the worker. With ``spark`` the load and validate steps run on the same session too, and no
+step copies the day onto the worker: load records the day's files (paths, sizes, rows), column
+types, bids and shards (``SparkLoadPartitionOperator``); validate runs the schema gate and
+counting checks in Spark SQL, the contract suite through Great Expectations' Spark data source,
+and the distribution checks on a bounded hash sample of whole auctions, the only bids that reach
+the worker (``SparkValidatePartitionOperator``); estimate refuses a day whose files changed
+after load. With ``local`` they stage and check the day with DuckDB. Spark's executors read the
+lake at ``COUNTERBID_SPARK_LAKE`` (the run parameter ``spark_lake_root``), by default
+``lake_root`` itself -- set it when Spark names the same store differently (``s3a://`` for
+DuckDB's ``s3://``).
 """
 
 from __future__ import annotations
@@ -129,19 +135,25 @@ def counterbid_daily():
             "staging_root": "{{ params.staging_root }}",
             "results_database": "{{ params.results_database }}",
         }
-        # measured position weights come from the click log here, once per (experiment, day)
-        load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}",
-                                     clicks_root="{{ params.clicks_root }}",
-                                     max_bids_per_shard="{{ params.max_bids_per_shard }}", **paths)
-        # Warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert).
-        validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
+        # measured position weights come from the click log in the load step, once per (experiment, day);
+        # in validate, warnings pass with the status flag 'warning' and still alert; errors fail the task (and alert)
+        shard_setting = "{{ params.max_bids_per_shard }}"
         options = {"confidence_level": "{{ params.confidence_level }}", "cluster": "{{ params.cluster }}", **paths}
-        if ENGINE == "spark":  # Spark reads the day from the lake; the provider builds the session from the connection
-            from counterbid.operators.spark_pipeline import SparkEstimateArmsOperator
+        if ENGINE == "spark":  # Spark reads the day from the lake in every step; nothing of it is staged on the worker
+            from counterbid.operators.spark_pipeline import (SparkEstimateArmsOperator, SparkLoadPartitionOperator,
+                                                             SparkValidatePartitionOperator)
 
-            estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root="{{ params.spark_lake_root or params.lake_root }}",
-                                                 conn_id=SPARK_CONN, **options)
+            spark_lake = "{{ params.spark_lake_root or params.lake_root }}"
+            load = SparkLoadPartitionOperator(task_id="load", lake_root=spark_lake, clicks_root="{{ params.clicks_root }}",
+                                              max_bids_per_shard=shard_setting, conn_id=SPARK_CONN, **paths)
+            validate = SparkValidatePartitionOperator(task_id="validate", lake_root=spark_lake, conn_id=SPARK_CONN,
+                                                      on_success_callback=ALERTS, **paths)
+            estimate = SparkEstimateArmsOperator(task_id="estimate", lake_root=spark_lake, conn_id=SPARK_CONN, **options)
         else:  # the shard tasks below estimated the shards; this step combines their pieces
+            load = LoadPartitionOperator(task_id="load", lake_root="{{ params.lake_root }}",
+                                         clicks_root="{{ params.clicks_root }}", max_bids_per_shard=shard_setting,
+                                         **paths)
+            validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
             estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write

@@ -46,6 +46,9 @@ def run_checks(
     sample_shard: tuple[int, int] | None = None,
     shard_relations: Mapping[str, str] | None = None,
     on_bids: Callable[[pd.DataFrame], None] | None = None,
+    contract: list[CheckResult] | None = None,
+    auction_counts: pd.DataFrame | None = None,
+    outlier_scan: Callable[[Mapping[int, float]], pd.DataFrame] | None = None,
 ) -> list[CheckResult]:
     """Every data check of one experiment's day: the contract suite, then the statistical checks.
 
@@ -91,6 +94,17 @@ def run_checks(
         they ran and no ``error`` check failed: what the pipeline summarises for later days' drift
         check (:func:`~counterbid.estimators.checks.bid_quantile_summary`) without reading the
         bids a second time.
+    contract : list of CheckResult, optional
+        The contract suite's outcomes, run elsewhere on the same day (the Spark validate step:
+        :func:`counterbid.operators.spark_contract.run_contract_on_spark`); default: run here on
+        ``relation`` (or ``shard_relations``).
+    auction_counts : pandas.DataFrame, optional
+        With ``sample_relation``: the whole day's auctions per arm and number of bidders (columns
+        ``arm``, ``n_bidders``, ``n_auctions``), counted elsewhere (Spark SQL); default: counted here.
+    outlier_scan : callable, optional
+        With ``sample_relation``: given the sample's outlier fences (number of bidders -> fence),
+        the whole day's bids above them (the frame of ``sql/check_bids_above_fence.sql``), found
+        elsewhere; default: scanned here.
 
     Returns
     -------
@@ -112,7 +126,8 @@ def run_checks(
         validate_identifier(name, what="shard relation")
     day = parse_day(ds)
     cfg = check_config(experiment.checks, config, source=f"experiment {experiment.id!r} checks")
-    results = run_contract(con, relation, experiment, config=cfg, shards=shard_relations)
+    results = (list(contract) if contract is not None
+               else run_contract(con, relation, experiment, config=cfg, shards=shard_relations))
     pieces = list(shard_relations) if shard_relations else [relation]
     if not any(r.check == "contract_types" and not r.passed for r in results):  # the columns are there
         relation = with_quality(con, relation)  # quality 1 when the log has none: every check ranks by bid x quality
@@ -126,7 +141,8 @@ def run_checks(
     counts = sample = None
     if sample_relation is not None:
         try:  # the whole day's auctions per arm and number of bidders, counted in DuckDB
-            counts = AuctionCounts.from_frame(_auction_counts(con, pieces), experiment, source=relation)
+            counted = auction_counts if auction_counts is not None else _auction_counts(con, pieces)
+            counts = AuctionCounts.from_frame(counted, experiment, source=relation)
         except InputError as exc:
             return results + [CheckResult("equilibrium_inputs", "error", False, None, None, {"error": str(exc)})]
     every = 1 if counts is None or sample_shard is None else sample_auctions_every(counts.day_bids, sample_shard[1])
@@ -138,7 +154,7 @@ def run_checks(
         sample = {"shard": shard, "shards": shards, "bids_used": len(bids), "day_bids": counts.day_bids,
                   "method": "hash sample of whole auctions (md5 of auction_id)"}
         if every > 1:
-            sample |= {"auctions_every": every, "method": sample["method"] + f", then 1 auction in {every} (DuckDB hash)"}
+            sample |= {"auctions_every": every, "method": sample["method"] + f", then 1 auction in {every} (md5 of auction_id, hex digits 9-16)"}
         log.info("%s %s: distribution checks on shard %s of %s (%d of %d bids)", experiment.id, day, shard, shards,
                  len(bids), counts.day_bids)
     history = None
@@ -152,7 +168,8 @@ def run_checks(
             history = None
     elif history_quantiles is not None and not history_quantiles.empty:
         history = history_quantiles
-    outliers = None if sample_relation is None else (lambda fences: _bids_above_fences(con, pieces, fences))
+    outliers = None if sample_relation is None else (
+        outlier_scan or (lambda fences: _bids_above_fences(con, pieces, fences)))
     try:
         results += equilibrium_checks(bids, experiment, ds=day, history=history, config=cfg,
                                       source=sample_relation or relation, counts=counts, sample=sample,
@@ -165,7 +182,8 @@ def run_checks(
 
 
 #: Most bids the distribution checks of a sampled day read: a larger sample shard is cut to whole auctions
-#: whose id hashes to 0 modulo ``ceil(shard bids / this)`` (``sql/check_day_bids.sql``), so the checks'
+#: whose cut key (md5 of the id, hex digits 9-16) is 0 modulo ``ceil(shard bids / this)`` (``sql/check_day_bids.sql``;
+#: the Spark validate step cuts by the same rule), so the checks'
 #: frame, and the step's peak memory, stay those of about 2M bids whatever ``max_bids_per_shard`` is.
 MAX_SAMPLE_BIDS = 2_000_000
 

@@ -64,8 +64,10 @@ __all__ = [
     "run_partition_checks",
     "stage_measured_weights",
     "stage_partition",
+    "stage_bid_quantiles",
     "staged_experiment",
     "store_checks",
+    "trailing_history",
     "write_partition",
 ]
 
@@ -121,15 +123,7 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
     if worst_failure(results) == "error":
         return results
     experiment, _ = staged_experiment(experiment, staged)
-    cfg = check_config(experiment.checks, source=f"experiment {experiment.id!r} checks")
-    first = ds - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
-    history = hook.trailing_bid_quantiles(experiment_id=experiment.id, first_day=first, ds=ds)
-    if history is not None:  # compare with the trailing days of the analysis window only
-        history_days = [parse_day(d) for d in history["ds"]]
-        failed = hook.window_failures(experiment_id=experiment.id, ds=ds, checks=list(WINDOW_CHECKS))
-        kept = set(analysis_window(history_days, experiment, failed_checks=failed).used)
-        history = history[[d in kept for d in history_days]]
-        history = None if history.empty else history
+    history = trailing_history(hook, experiment=experiment, ds=ds)
     staged.bid_quantiles.unlink(missing_ok=True)
     shards = staged.shards()
     # several shards: the distribution checks and the summary read one shard alone (a hash sample of
@@ -151,12 +145,35 @@ def run_partition_checks(hook: ResultsHook, lake: LakeHook, *, experiment: Exper
                                    sample_relation="staged_sample" if sampled else None,
                                    sample_shard=(sample, len(shards)) if sampled else None,
                                    shard_relations=by_shard, on_bids=summarise))
+    stage_bid_quantiles(staged, summaries, results, experiment_id=experiment.id, ds=ds)
+    return results
+
+
+def trailing_history(hook: ResultsHook, *, experiment: Experiment, ds: dt.date) -> pd.DataFrame | None:
+    """The stored bid-quantile summaries the drift check compares ``ds`` with (both engines' validate step).
+
+    The ``drift.trailing_days`` days before ``ds`` that are in the analysis window; ``None`` when there is none.
+    """
+    cfg = check_config(experiment.checks, source=f"experiment {experiment.id!r} checks")
+    first = ds - dt.timedelta(days=int(cfg["drift"]["trailing_days"]))
+    history = hook.trailing_bid_quantiles(experiment_id=experiment.id, first_day=first, ds=ds)
+    if history is not None:  # compare with the trailing days of the analysis window only
+        history_days = [parse_day(d) for d in history["ds"]]
+        failed = hook.window_failures(experiment_id=experiment.id, ds=ds, checks=list(WINDOW_CHECKS))
+        kept = set(analysis_window(history_days, experiment, failed_checks=failed).used)
+        history = history[[d in kept for d in history_days]]
+        history = None if history.empty else history
+    return history
+
+
+def stage_bid_quantiles(staged: StagedPartition, summaries: list[pd.DataFrame], results: list[CheckResult], *,
+                        experiment_id: str, ds: dt.date) -> None:
+    """Stage the day's bid-quantile summary for the write step, when one was made and no error check failed."""
     if summaries and worst_failure(results) != "error":
         summary = summaries[0]
-        summary.insert(0, "experiment_id", experiment.id)
+        summary.insert(0, "experiment_id", experiment_id)
         summary.insert(1, "ds", ds)
         write_parquet(pa.Table.from_pandas(summary, preserve_index=False), staged.bid_quantiles)
-    return results
 
 
 def store_checks(hook: ResultsHook, results: list[CheckResult], *, experiment_id: str, ds: dt.date, run_id: str) -> None:

@@ -211,12 +211,18 @@ class ValidatePartitionOperator(_PartitionOperator):
 
         staged = StagedPartition.at(self.staging_root, experiment.id, day)
         results = _partition().run_partition_checks(self.hook(), self.lake(), experiment=experiment, staged=staged, ds=day)
+        return self.recorded(results, staged=staged, run_id=str(context["run_id"]), ti=context["ti"])
+
+    def recorded(self, results: Sequence[CheckResult], *, staged: StagedPartition, run_id: str, ti) -> dict:
+        """Record the outcomes (beside the staged day, the ``data_checks`` table, XCom for the alert) and fail
+        listing every failed ``error`` check: the same rows and alert text whichever engine ran the checks."""
+        experiment, day = self.experiment(), self.day()
         status = _partition().record_checks(staged, results)
-        _partition().store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=str(context["run_id"]))
+        _partition().store_checks(self.hook(), results, experiment_id=experiment.id, ds=day, run_id=run_id)
         for r in results:
             (log.info if r.passed else log.warning)("%s", r.describe())
         # The alert notifier (task-level callback) reads the outcomes from here.
-        context["ti"].xcom_push(key=notify.XCOM_KEY, value=notify.check_payload(results, experiment_id=experiment.id, ds=day))
+        ti.xcom_push(key=notify.XCOM_KEY, value=notify.check_payload(results, experiment_id=experiment.id, ds=day))
         message = failed_checks_message(results, where=f"experiment {experiment.id!r} on {day}")
         if message:
             raise AirflowFailException(message)  # the same data fails the same way: no retry

@@ -12,6 +12,7 @@ import datetime as dt
 import json
 import math
 import re
+import threading
 from pathlib import Path
 
 import duckdb
@@ -20,6 +21,10 @@ import pandas as pd
 import pytest
 import scipy.stats as st
 import yaml
+
+# before any test imports Great Expectations: its Spark support (the Spark validate step's contract) is probed
+# once, at import; Airflow runs each task in a process of its own, dag.test() runs them all in this one
+pytest.importorskip("pyspark")
 
 from counterbid.cli.backfill import DAG_ID, run_days
 from counterbid.dags_example.lake import write_bid_lake
@@ -70,6 +75,38 @@ def _stored(path) -> dict[str, pd.DataFrame]:
             keys = [c for c in frame.columns if not pd.api.types.is_float_dtype(frame[c])]
             out[name] = frame.sort_values(keys).reset_index(drop=True)
     return out
+
+
+def _stored_checks(con) -> pd.DataFrame:
+    """The stored check outcomes (details and provenance aside), by day and check."""
+    return con.execute('select ds, "check", severity, passed, observed, threshold from data_checks '
+                       'order by ds, "check"').df()
+
+
+class StagingWatch:
+    """Looks at the staging folder every few milliseconds while a DAG runs (a thread): the bid files and the day
+    manifests it ever saw there. The local load step's shard files stay from load to write, so they are seen."""
+
+    def __init__(self, root: Path) -> None:
+        self.root, self.bid_files, self.manifests = root, set(), set()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._watch, daemon=True)
+
+    def _watch(self) -> None:
+        while not self._stop.wait(0.01):
+            for path in self.root.glob("*/ds=*/day/**/*"):  # <experiment>/ds=<day>/day: what the load step wrote
+                if path.name == "shards.json":
+                    self.manifests.add(str(path))
+                elif path.suffix == ".parquet":
+                    self.bid_files.add(str(path))
+
+    def __enter__(self) -> "StagingWatch":
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join(timeout=30)
 
 
 def _estimate_summaries(days: list[dt.date]) -> list[dict]:
@@ -123,11 +160,12 @@ def test_spark_engine_stores_the_local_engines_rows(spark_engine, airflow_db, tm
                    n_bidders={4: 0.5, 6: 0.5}, seed=5)
     conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec), "staging_root": str(tmp_path / "stage"),
             "clicks_root": "", "max_bids_per_shard": "1000"}  # about 2 500 bids a day: 3 shards
-    results = {}
+    results, watched = {}, {}
     for engine in ("local", "spark"):
         spark_engine(engine)
         results[engine] = tmp_path / f"{engine}.duckdb"
-        runs = run_days(DAYS, conf={**conf, "results_database": str(results[engine])})
+        with StagingWatch(tmp_path / "stage") as watched[engine]:
+            runs = run_days(DAYS, conf={**conf, "results_database": str(results[engine])})
         assert [r.state for r in runs] == ["success"] * len(DAYS), [r.line() for r in runs]
         # the estimate ran on the engine asked for, in 3 shards: its summary (XCom) says so
         assert [(s["engine"], s["shards"]) for s in _estimate_summaries(DAYS)] == [(engine, 3)] * len(DAYS)
@@ -137,6 +175,18 @@ def test_spark_engine_stores_the_local_engines_rows(spark_engine, airflow_db, tm
     assert len(local["stratum_piece_bidder_sums"]) > 0  # bidder ids repeat: clustered by bidder, sums stored
     assert set(local["arm_estimates_to_date"]["n_days_used"]) == {1, 2}
     largest = {name: _largest_relative_difference(spark[name], local[name], name) for name in ESTIMATE_TABLES}
+    # the checks ran on Spark (load and validate too): the same stored outcomes and day summaries for the drift check
+    with duckdb.connect(str(results["local"]), read_only=True) as a, duckdb.connect(str(results["spark"]),
+                                                                                      read_only=True) as b:
+        pd.testing.assert_frame_equal(_stored_checks(b), _stored_checks(a), rtol=RTOL)
+        assert len(_stored_checks(a)) > 10 and _stored_checks(a)["passed"].all()
+        quantiles = [c.execute("select * exclude (run_id, computed_at) from bid_quantiles order by all").df()
+                     for c in (a, b)]
+        assert len(quantiles[0]) > 0
+        largest["bid_quantiles"] = _largest_relative_difference(quantiles[1], quantiles[0], "bid_quantiles")
+    # no step of the Spark setting copied the day onto the worker: the staging folder held its manifest, no bids
+    assert watched["local"].bid_files and watched["local"].manifests  # the watch sees the local route's shards
+    assert watched["spark"].manifests and not watched["spark"].bid_files, watched["spark"].bid_files
     record_property("spark_vs_local_largest_relative_difference", max(largest.values()))
     print(f"\nlargest relative difference, Spark vs local: {largest}")
 
@@ -189,10 +239,11 @@ def test_a_shard_of_single_bidder_auctions_is_left_out_on_both_engines(spark_eng
 
 
 def test_bad_bids_stop_both_settings_at_validate_with_the_same_line(spark_engine, airflow_db, tmp_path, capfd, caplog):
-    """Bad bids never reach Spark: the validate step, shared by both settings, refuses the day with
-    the same line, and the estimate and write steps do not run (nothing is written). Bad input that
-    reaches the estimate step itself ends in the local engine's line on Spark too
-    (``tests/readers/test_spark_shards.py``, ``tests/operators/test_spark_estimate.py``)."""
+    """A negative bid: the Spark validate step refuses the day as the local one does -- the same failing
+    checks with the same counts and offending auction, the same stored check rows -- and the estimate and
+    write steps do not run (nothing is written). Bad input that reaches the estimate step itself ends in
+    the local engine's line on Spark too (``tests/readers/test_spark_shards.py``,
+    ``tests/operators/test_spark_estimate.py``)."""
     spec = tmp_path / "spec.yaml"
     spec.write_text(yaml.safe_dump(SPEC))
     experiment = parse_experiments(SPEC)["tiles"]
@@ -203,7 +254,7 @@ def test_bad_bids_stop_both_settings_at_validate_with_the_same_line(spark_engine
     frame.to_parquet(day_file, index=False)
     conf = {"lake_root": str(tmp_path / "bids"), "spec_path": str(spec), "staging_root": str(tmp_path / "stage"),
             "clicks_root": "", "max_bids_per_shard": "400"}
-    lines = {}
+    lines, checks, auctions = {}, {}, {}
     for engine in ("local", "spark"):
         spark_engine(engine)
         capfd.readouterr()
@@ -217,14 +268,21 @@ def test_bad_bids_stop_both_settings_at_validate_with_the_same_line(spark_engine
         assert states["experiment.estimate"] == ("skipped" if engine == "local" else "upstream_failed"), states
         assert engine == "spark" or states["day_settled"] == "upstream_failed", states
         text = out.out + out.err + caplog.text
-        found = sorted(set(re.findall(r"contract_bids_valid \[error\] FAILED: [^\n]*", text)))
+        # the alert's line up to its details (the local route's details also name the staged shard file)
+        found = sorted(set(re.findall(r"contract_bids_valid \[error\] FAILED: [^{\n]*", text)))
         assert found, text[-3000:]
         lines[engine] = found
         with duckdb.connect(str(tmp_path / f"{engine}.duckdb"), read_only=True) as con:
             tables = {r[0] for r in con.execute("select table_name from information_schema.tables").fetchall()}
             if "arm_estimates" in tables:
                 assert con.execute("select count(*) from arm_estimates").fetchone()[0] == 0  # nothing half-written
+            checks[engine] = _stored_checks(con)
+            (details,) = con.execute("select details from data_checks where \"check\" = 'contract_bids_valid'").fetchone()
+            auctions[engine] = [e["auction_id"] for f in json.loads(details)["failures"] for e in f["examples"]]
     assert lines["spark"] == lines["local"]
+    pd.testing.assert_frame_equal(checks["spark"], checks["local"])
+    assert not checks["local"]["passed"].all() and "contract_bids_valid" in set(checks["local"]["check"])
+    assert auctions["spark"] == auctions["local"] == [int(frame.loc[frame.index[123], "auction_id"])]
 
 
 def test_engine_setting_picks_the_estimate_operator(spark_engine, airflow_db, monkeypatch):

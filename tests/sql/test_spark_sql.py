@@ -2,7 +2,8 @@
 
 No Spark runs here: sqlglot parses the text as Spark SQL, and the ``:name`` parameters it finds
 must be exactly the ones :mod:`counterbid.readers.spark_shards` (or, for the contract's statements,
-:mod:`counterbid.operators.spark_contract`) binds (which it checks itself on every call), so a renamed parameter fails here instead of in a Spark job.
+:mod:`counterbid.operators.spark_contract`; for the Spark load and validate steps',
+:mod:`counterbid.readers.spark_lake_day` and :mod:`counterbid.operators.spark_checks`) binds (which it checks itself on every call), so a renamed parameter fails here instead of in a Spark job.
 """
 
 from __future__ import annotations
@@ -10,17 +11,22 @@ from __future__ import annotations
 import pytest
 import sqlglot
 
+from counterbid.operators.spark_checks import CHECK_STATEMENT_PARAMETERS
 from counterbid.operators.spark_contract import CONTRACT_STATEMENT_PARAMETERS
+from counterbid.readers.spark_lake_day import DAY_FILES_STATEMENT_PARAMETERS
 from counterbid.readers.spark_shards import STATEMENT_PARAMETERS as ENGINE_STATEMENT_PARAMETERS
 from counterbid.sql import ENGINE_DIALECTS, dialect_files, load_sql, parameter_names, sql_names, statement
 
 SPARK_NAMES = sql_names("spark")
 #: Every Spark statement and its parameters: the engine's and the contract's (no name in both).
-STATEMENT_PARAMETERS = ENGINE_STATEMENT_PARAMETERS | CONTRACT_STATEMENT_PARAMETERS
+STATEMENT_PARAMETERS = (ENGINE_STATEMENT_PARAMETERS | CONTRACT_STATEMENT_PARAMETERS | CHECK_STATEMENT_PARAMETERS
+                        | DAY_FILES_STATEMENT_PARAMETERS)
 
 
 def test_the_engine_runs_every_spark_statement_and_no_other():
-    assert not set(ENGINE_STATEMENT_PARAMETERS) & set(CONTRACT_STATEMENT_PARAMETERS)
+    tables = (ENGINE_STATEMENT_PARAMETERS, CONTRACT_STATEMENT_PARAMETERS, CHECK_STATEMENT_PARAMETERS,
+              DAY_FILES_STATEMENT_PARAMETERS)
+    assert sum(len(t) for t in tables) == len(STATEMENT_PARAMETERS)  # no statement in two tables
     assert ENGINE_DIALECTS == ("spark",)
     assert SPARK_NAMES == dialect_files()["spark"] == sorted(STATEMENT_PARAMETERS)
     # engine statements are never transpiled: a shared DuckDB source has no Spark text
