@@ -4,7 +4,7 @@ Bidder clustering of the experiment to date needs every window day's bidder sums
 bidder. Instead of reading them all back every day, the results database keeps the window's
 running totals ``U_b`` per bidder with their Gram form and distinct-bidder count
 (``bidder_window*`` tables; :mod:`counterbid.estimators.window_totals`). A day whose window is the
-stored one plus today (the daily run) reads only today's bidders' totals (a join on today's ids in
+stored one plus today (the daily run) reads only today's bidders' totals (a join on an integer key of today's ids in
 SQL) and writes them back with today added: its cost follows today's bidders, not the
 experiment's age. Anything else is rebuilt from the stored pieces, exactly as the full
 recombination: the first day, a rerun of a day the window already holds, an earlier day, a window
@@ -148,17 +148,11 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
         grams = _grams_of_rows(base[0], base[1], exponent, experiment)
         if not mine:  # today left out: the stored window is the window
             return _inputs(window, grams, None, "stored")
-        today_totals = _totals_by_key(mine, exponent)
-        found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
-        after = {}
-        for key, totals in today_totals.items():
-            before, seen = _before(*_stored_of_key(found, key, len(order)), totals, _permutation(order, experiment))
-            start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
-            grams[key], sums = extend_gram(start, totals, before, seen)
-            after[key] = (totals.bidder_ids, sums)
-        write = _window_write(experiment, "extend", base_days, days_text, ds, grams, after, run_id, computed_at,
-                              order=order)
-        return _inputs(window, grams, write, "extended")
+        extended = _extended(hook, experiment, mine, grams, order, exponent)
+        if extended is not None:
+            write = _window_write(experiment, "extend", base_days, days_text, ds, grams, extended, run_id, computed_at,
+                                  order=order)
+            return _inputs(window, grams, write, "extended")
     # the rebuild needs the bidder sums too: read that one table and reuse the others read above
     sums = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=[PIECE_TABLES["bidder_sums"]])
     totals = _totals_by_key(pieces_of_rows({**small, **sums}) + mine, exponent)
@@ -166,6 +160,28 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     write = _window_write(experiment, "replace", None, days_text, ds, grams,
                           {key: (t.bidder_ids, t.sums) for key, t in totals.items()}, run_id, computed_at)
     return _inputs(window, grams, write, "rebuilt")
+
+
+def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], grams: dict,
+              order: list[str], exponent: int) -> dict | None:
+    """Extend ``grams`` in place by today's pieces; today's bidders' totals after the day, by key.
+
+    ``None`` (``grams`` untouched: the caller rebuilds) when two of the rows found share an integer
+    key: two distinct ids collided on it, and only a rebuild (on the id text) keeps them apart.
+    """
+    today_totals = _totals_by_key(mine, exponent)
+    found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
+    pairs = pd.DataFrame({"segment": found.column("segment").to_pandas(), "key": found.column("bidder_key").to_pandas()})
+    if pairs.duplicated().any():
+        return None
+    after, updated = {}, {}
+    for key, totals in today_totals.items():
+        before, seen = _before(*_stored_of_key(found, key, len(order)), totals, _permutation(order, experiment))
+        start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
+        updated[key], sums = extend_gram(start, totals, before, seen)
+        after[key] = (totals.bidder_ids, sums)
+    grams.update(updated)
+    return after
 
 
 def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
@@ -234,11 +250,15 @@ def _permutation(order: list[str], experiment: Experiment) -> np.ndarray:
 
 def _stored_of_key(found: pa.Table, key: str | None, width: int) -> tuple[np.ndarray, np.ndarray]:
     """Bidder ids and ``(n, width)`` stored totals (in the stored label order) of one key's found rows."""
-    segment = found.column("segment")
+    if found.num_rows == 0:
+        return np.array([], dtype=object), np.zeros((0, width))
+    segment = found.column("segment").cast(pa.string())
     mask = pc.is_null(segment) if key is None else pc.fill_null(pc.equal(segment, key), False)
     part = found.filter(mask)
+    if part.num_rows == 0:
+        return np.array([], dtype=object), np.zeros((0, width))
     sums = part.column("sums")
-    if part.num_rows and pc.any(pc.not_equal(pc.list_value_length(sums), width)).as_py():
+    if pc.any(pc.not_equal(pc.list_value_length(sums), width)).as_py():
         raise InputError(f"bidder window: stored totals of segment {key!r} do not hold {width} labels each; "
                          "delete the experiment's bidder_window rows to rebuild it")
     values = pc.list_flatten(sums).to_numpy(zero_copy_only=False).astype(float, copy=False)

@@ -318,3 +318,23 @@ def test_a_version_9_window_with_rows_migrates_and_extends_to_the_same_numbers(s
     forms = [h.bidder_window(experiment_id=exp.id)[1].assign(segment=lambda t: t["segment"].fillna("(pooled)"))
              .set_index(["segment", "arm_i", "arm_j"]).sort_index()["value"] for h in (legacy, sink)]
     np.testing.assert_allclose(forms[0].to_numpy(), forms[1].to_numpy(), rtol=1e-12, atol=0)
+
+
+def test_two_ids_on_one_stored_key_send_the_day_to_a_rebuild(sink, lake, tmp_path):
+    """A stored row of another id under the integer key of one of today's bidders (what an md5 collision
+    leaves): the daily update would mix the two bidders' totals, so the day rebuilds from the pieces and
+    still gives the full recombination."""
+    exp = _spec()
+    stage = tmp_path / "stage"
+    for day in DAYS[:2]:
+        _run_day(sink, lake, exp, stage, day, f"r-{day}")
+    with sink.connect() as con:  # a copy of one stored bidder's row under a text id of no bidder
+        con.execute("insert into main.bidder_window_totals (experiment_id, segment, bidder_key, bidder_id, sums)"
+                    " select experiment_id, segment, bidder_key, 'seat-none', sums from main.bidder_window_totals"
+                    " where bidder_id = 'seat-1'")
+    assert _run_day(sink, lake, exp, stage, DAYS[3], "r-4")["bidder_window"] == "rebuilt"
+    _check_against_full_recombination(sink, exp, DAYS[3], [DAYS[0], DAYS[1], DAYS[3]])
+    assert _check_stored_window(sink, exp) == [DAYS[0], DAYS[1], DAYS[3]]
+    with sink.connect() as con:
+        assert con.execute("select count(*) from main.bidder_window_totals where bidder_id = 'seat-none'"
+                           ).fetchone()[0] == 0
