@@ -3,9 +3,10 @@
 A 12-day lake of one experiment (the three-arm spec of ``bench_estimator.py``, 5 bidders an
 auction) whose bidder ids are mostly distinct strings (drawn from a pool of 20x the day's bids, so
 a few repeat and ``auto`` clusters by bidder), run day by day through the pipeline's steps on one
-DuckDB results file: the estimate step alone in a child process (its wall time and peak RSS
-from ``os.wait4``), the previous day's write with this day's load in another (the validate step
-is recorded as passed without running the contract suite: it does not touch the to-date rows). ``--code`` points the
+DuckDB results file: the estimate step alone in a child process (its wall time, CPU seconds and
+peak RSS from ``os.wait4``), the day's write in another (the same), and the day's load in a third
+(the validate step is recorded as passed without running the contract suite: it does not touch
+the to-date rows). ``--code`` points the
 children at another checkout's packages (a folder holding ``counterbid/<package>`` links), so the
 same lake measures the code before and after a change.
 
