@@ -26,6 +26,7 @@ import pyarrow as pa
 from airflow.sdk import BaseHook
 
 from counterbid.estimators.errors import InputError
+from counterbid.readers.memory_shards import memory_budget_mib
 from counterbid.sql import validate_identifier
 
 from .extras import require_extra
@@ -80,6 +81,53 @@ def create_database_file(path: Path) -> None:
         tmp.with_name(tmp.name + ".wal").unlink(missing_ok=True)
 
 
+#: Least DuckDB ``memory_limit`` of a results connection, in MiB.
+RESULTS_MEMORY_FLOOR_MIB = 1024
+
+
+def _whole(value: object, *, what: str, least: int) -> int:
+    if isinstance(value, bool) or not str(value).strip().isdigit() or int(str(value).strip()) < least:
+        raise InputError(f"`{what}` must be a whole number >= {least}; got {value!r}")
+    return int(str(value).strip())
+
+
+def results_memory_mib(value: object = None) -> int:
+    """DuckDB's ``memory_limit`` for the results file, in MiB.
+
+    Parameters
+    ----------
+    value : int, optional
+        The limit (>= 1); default the memory budget
+        (:func:`counterbid.readers.memory_shards.memory_budget_mib`, ``$COUNTERBID_MEMORY_BUDGET_MIB``),
+        at least :data:`RESULTS_MEMORY_FLOOR_MIB` (300 MiB ran out of memory in a 1M-bid day's write
+        transaction after 9 days of mostly new bidders).
+
+    Returns
+    -------
+    int
+    """
+    if value is not None:
+        return _whole(value, what="memory_limit_mib", least=1)
+    return max(RESULTS_MEMORY_FLOOR_MIB, memory_budget_mib())
+
+
+def _open_duckdb(path: str, read_only: bool, memory_mib: int, threads: int):
+    """A connection to the results file whose database caps its buffer memory and threads.
+
+    DuckDB keeps one database per file and process: when this process already holds the file open
+    under other settings (a caller's own ``duckdb.connect``), the connection joins that database
+    and its settings.
+    """
+    config = {"memory_limit": f"{int(memory_mib)}MiB", "threads": int(threads)}
+    try:
+        return duckdb.connect(path, read_only=read_only, config=config)
+    except duckdb.ConnectionException as exc:
+        if "different configuration" not in str(exc):
+            raise
+        log.debug("results file %s is already open in this process; its settings apply", path)
+        return duckdb.connect(path, read_only=read_only)
+
+
 class ResultsHook(BaseHook):
     """Access to the results database (DuckDB file or PostgreSQL): connections, migrations, writes, reads.
 
@@ -98,6 +146,12 @@ class ResultsHook(BaseHook):
         created if missing).
     lock_timeout : float, optional
         Seconds to keep retrying when another process holds the DuckDB file lock.
+    memory_limit_mib : int, optional
+        DuckDB's ``memory_limit`` on a results file's connections, in MiB (default
+        :func:`results_memory_mib`: ``$COUNTERBID_MEMORY_BUDGET_MIB``, at least
+        :data:`RESULTS_MEMORY_FLOOR_MIB`); DuckDB spills to ``<file>.tmp`` beyond it.
+    threads : int, optional
+        DuckDB's ``threads`` on those connections (default: 2, or fewer CPUs).
 
     Notes
     -----
@@ -124,8 +178,12 @@ class ResultsHook(BaseHook):
         counterbid_conn_id: str | None = None,
         schema: str = "main",
         lock_timeout: float = 120.0,
+        memory_limit_mib: int | None = None,
+        threads: int | None = None,
     ) -> None:
         super().__init__()
+        self.memory_limit_mib = results_memory_mib(memory_limit_mib)
+        self.threads = _whole(threads, what="threads", least=1) if threads is not None else min(2, os.cpu_count() or 1)
         self.counterbid_conn_id = counterbid_conn_id or DEFAULT_CONN_ID
         self.schema = validate_identifier(schema, what="results schema")
         if not (isinstance(lock_timeout, (int, float)) and lock_timeout >= 0):
@@ -178,7 +236,8 @@ class ResultsHook(BaseHook):
         else:
             if not read_only:
                 create_database_file(Path(self.database))
-            con = self._retry_on_lock(lambda: duckdb.connect(self.database, read_only=read_only), what="open")
+            con = self._retry_on_lock(lambda: _open_duckdb(self.database, read_only, self.memory_limit_mib, self.threads),
+                                      what="open")
         try:
             yield con
         finally:
@@ -328,15 +387,19 @@ class ResultsHook(BaseHook):
             return None
         return rows, self.fetch_df("bidder_window_gram_select", {"experiment_id": experiment_id})
 
-    def bidder_window_totals(self, *, experiment_id: str, today: pa.Table) -> pd.DataFrame:
-        """Stored running totals of the bidders in ``today`` (rows of ``bidder_window_totals``), joined in SQL."""
+    def bidder_window_totals(self, *, experiment_id: str, today: pa.Table) -> pa.Table:
+        """Stored running totals of the bidders in ``today`` (rows of ``bidder_window_totals``), joined in SQL.
+
+        Returns ``segment``, ``bidder_id`` and ``sums`` (a list per bidder, in the window's
+        ``sum_labels`` order) of the (segment, bidder) pairs of ``today`` the window holds.
+        """
         dest = WINDOW_TABLES[-1]
 
         def run():
             with self.session(read_only=True) as s:
                 check_readable(s)
                 with s.transaction(), s.incoming(dest, today):
-                    return s.fetch_df("bidder_window_totals_select_incoming", {"experiment_id": experiment_id})
+                    return s.fetch_arrow("bidder_window_totals_select_incoming", {"experiment_id": experiment_id})
 
         return self._with_retry(run, what="read")
 

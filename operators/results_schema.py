@@ -183,6 +183,12 @@ MIGRATIONS = (
                  "version 7; a segmented experiment's to-date rows read only today's bidders",
               _keyed_rebuild(9, "bidder_window") + _keyed_rebuild(9, "bidder_window_gram")
               + (Statement("results_v9_add_bidder_window_totals_segment"),)),
+    Migration(10, "the running bidder totals are one row per (segment, bidder) with every revenue label's total in "
+                  "one list column, looked up by an integer key (63 bits of the id's md5); the window records the "
+                  "labels' order",
+              (Statement("results_v10_add_window_sum_labels"), Statement("results_v10_fill_window_sum_labels"))
+              + _rebuild(10, "bidder_window_totals")
+              + (Statement("results_v10_index_bidder_window_totals", dialects=("postgres",)),)),
 )
 #: Version of the results schema this code writes and reads.
 SCHEMA_VERSION = MIGRATIONS[-1].version
@@ -291,6 +297,10 @@ class ResultsSession:
     def fetch_df(self, name: str, params: Mapping[str, Any] | None = None) -> pd.DataFrame:
         raise NotImplementedError
 
+    def fetch_arrow(self, name: str, params: Mapping[str, Any] | None = None) -> pa.Table:
+        """The rows of a read statement as an Arrow table (list columns as Arrow lists)."""
+        raise NotImplementedError
+
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:
         raise NotImplementedError
@@ -331,6 +341,9 @@ class DuckDBSession(ResultsSession):
     def fetch_df(self, name, params=None):
         return self.execute(name, params).df()
 
+    def fetch_arrow(self, name, params=None):
+        return self.con.sql(self.sql(name), params=dict(params or {})).to_arrow_table()
+
     @contextlib.contextmanager
     def transaction(self):
         self.con.execute("begin transaction")
@@ -367,6 +380,11 @@ class PostgresSession(ResultsSession):
         cur = self.execute(name, params)
         frame = pd.DataFrame.from_records(cur.fetchall(), columns=[d.name for d in cur.description])
         return _like_duckdb(frame)
+
+    def fetch_arrow(self, name, params=None):
+        cur = self.execute(name, params)
+        columns = list(zip(*cur.fetchall())) or [()] * len(cur.description)
+        return pa.table({d.name: pa.array(list(values)) for d, values in zip(cur.description, columns)})
 
     @contextlib.contextmanager
     def transaction(self):

@@ -4,7 +4,7 @@ Bidder clustering of the experiment to date needs every window day's bidder sums
 bidder. Instead of reading them all back every day, the results database keeps the window's
 running totals ``U_b`` per bidder with their Gram form and distinct-bidder count
 (``bidder_window*`` tables; :mod:`counterbid.estimators.window_totals`). A day whose window is the
-stored one plus today (the daily run) reads only today's bidders' totals (a join on today's ids in
+stored one plus today (the daily run) reads only today's bidders' totals (a join on an integer key of today's ids in
 SQL) and writes them back with today added: its cost follows today's bidders, not the
 experiment's age. Anything else is rebuilt from the stored pieces, exactly as the full
 recombination: the first day, a rerun of a day the window already holds, an earlier day, a window
@@ -29,6 +29,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from counterbid.estimators import (
@@ -37,6 +38,7 @@ from counterbid.estimators import (
 from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.constants import REVENUE, piece_labels
 from counterbid.estimators.days import parse_day
+from counterbid.estimators.errors import InputError
 from counterbid.estimators.window_totals import WindowTotals
 
 from .hooks import ResultsHook
@@ -139,21 +141,18 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     base = hook.bidder_window(experiment_id=experiment.id)
     base_days = None if base is None else str(base[0]["days_used"].iloc[0])
     before_text = ",".join(d.isoformat() for d in sorted(used_before))
-    if base is not None and used_before and base_days == before_text \
+    order = None if base is None else _sum_order(base[0])
+    if base is not None and used_before and base_days == before_text and order is not None \
+            and sorted(order) == sorted(_labels(experiment)) \
             and int(base[0]["bid_exponent"].iloc[0]) == exponent and _keys_of(base[0]) == _stored_keys(strata):
         grams = _grams_of_rows(base[0], base[1], exponent, experiment)
         if not mine:  # today left out: the stored window is the window
             return _inputs(window, grams, None, "stored")
-        today_totals = _totals_by_key(mine, exponent)
-        found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
-        after = {}
-        for key, totals in today_totals.items():
-            before, seen = _before(_of_key(found, key), totals, experiment)
-            start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
-            grams[key], sums = extend_gram(start, totals, before, seen)
-            after[key] = (totals.bidder_ids, sums)
-        write = _window_write(experiment, "extend", base_days, days_text, ds, grams, after, run_id, computed_at)
-        return _inputs(window, grams, write, "extended")
+        extended = _extended(hook, experiment, mine, grams, order, exponent)
+        if extended is not None:
+            write = _window_write(experiment, "extend", base_days, days_text, ds, grams, extended, run_id, computed_at,
+                                  order=order)
+            return _inputs(window, grams, write, "extended")
     # the rebuild needs the bidder sums too: read that one table and reuse the others read above
     sums = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=[PIECE_TABLES["bidder_sums"]])
     totals = _totals_by_key(pieces_of_rows({**small, **sums}) + mine, exponent)
@@ -161,6 +160,28 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     write = _window_write(experiment, "replace", None, days_text, ds, grams,
                           {key: (t.bidder_ids, t.sums) for key, t in totals.items()}, run_id, computed_at)
     return _inputs(window, grams, write, "rebuilt")
+
+
+def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], grams: dict,
+              order: list[str], exponent: int) -> dict | None:
+    """Extend ``grams`` in place by today's pieces; today's bidders' totals after the day, by key.
+
+    ``None`` (``grams`` untouched: the caller rebuilds) when two of the rows found share an integer
+    key: two distinct ids collided on it, and only a rebuild (on the id text) keeps them apart.
+    """
+    today_totals = _totals_by_key(mine, exponent)
+    found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
+    pairs = pd.DataFrame({"segment": found.column("segment").to_pandas(), "key": found.column("bidder_key").to_pandas()})
+    if pairs.duplicated().any():
+        return None
+    after, updated = {}, {}
+    for key, totals in today_totals.items():
+        before, seen = _before(*_stored_of_key(found, key, len(order)), totals, _permutation(order, experiment))
+        start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
+        updated[key], sums = extend_gram(start, totals, before, seen)
+        after[key] = (totals.bidder_ids, sums)
+    grams.update(updated)
+    return after
 
 
 def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
@@ -207,12 +228,41 @@ def _grams_of_rows(rows: pd.DataFrame, gram_rows: pd.DataFrame, exponent: int, e
 
 
 def _lookup_rows(experiment: Experiment, totals: Mapping[str | None, WindowTotals]) -> pa.Table:
-    """One row per (segment, bidder) of today: what the stored totals are joined on."""
+    """One row per (segment, bidder) of today: what the stored totals are joined on (SQL computes the key)."""
     return pa.concat_tables([
         pa.table({"experiment_id": _repeated(experiment.id, t.bidder_ids.size), "segment": _repeated(key, t.bidder_ids.size),
-                  "bidder_id": pa.array(ids_as_text(t.bidder_ids), pa.string()), "arm": _repeated("", t.bidder_ids.size),
-                  "value": pa.array(np.zeros(t.bidder_ids.size), pa.float64())})
+                  "bidder_key": pa.nulls(t.bidder_ids.size, pa.int64()),
+                  "bidder_id": pa.array(ids_as_text(t.bidder_ids), pa.string()),
+                  "sums": pa.nulls(t.bidder_ids.size, pa.list_(pa.float64()))})
         for key, t in totals.items()])
+
+
+def _sum_order(rows: pd.DataFrame) -> list[str] | None:
+    """The order of the revenue labels in the stored totals' ``sums`` (``None``: not recorded)."""
+    value = rows["sum_labels"].iloc[0] if "sum_labels" in rows and len(rows) else None
+    return None if value is None or pd.isna(value) or not str(value) else str(value).split(",")
+
+
+def _permutation(order: list[str], experiment: Experiment) -> np.ndarray:
+    """Positions in ``order`` (the stored ``sums``) of the experiment's labels, in the experiment's order."""
+    return np.array([order.index(label) for label in _labels(experiment)], dtype=np.intp)
+
+
+def _stored_of_key(found: pa.Table, key: str | None, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """Bidder ids and ``(n, width)`` stored totals (in the stored label order) of one key's found rows."""
+    if found.num_rows == 0:
+        return np.array([], dtype=object), np.zeros((0, width))
+    segment = found.column("segment").cast(pa.string())
+    mask = pc.is_null(segment) if key is None else pc.fill_null(pc.equal(segment, key), False)
+    part = found.filter(mask)
+    if part.num_rows == 0:
+        return np.array([], dtype=object), np.zeros((0, width))
+    sums = part.column("sums")
+    if pc.any(pc.not_equal(pc.list_value_length(sums), width)).as_py():
+        raise InputError(f"bidder window: stored totals of segment {key!r} do not hold {width} labels each; "
+                         "delete the experiment's bidder_window rows to rebuild it")
+    values = pc.list_flatten(sums).to_numpy(zero_copy_only=False).astype(float, copy=False)
+    return part.column("bidder_id").to_numpy(zero_copy_only=False), values.reshape(part.num_rows, width)
 
 
 def _labels(experiment: Experiment) -> list[str]:
@@ -237,46 +287,59 @@ def _repeated(value: str | None, n: int) -> pa.Array:
 
 
 def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
-    """One row per (bidder, label), label by label: every label's chunk shares the one Arrow copy of the ids."""
-    labels = _labels(experiment)
-    n = len(ids)
-    text = pa.array(ids_as_text(np.asarray(ids)), pa.string())
-    chunks = [pa.table({"experiment_id": _repeated(experiment.id, n), "segment": _repeated(segment, n),
-                        "bidder_id": text, "arm": _repeated(label, n),
-                        "value": pa.array(np.ascontiguousarray(sums[:, j]), pa.float64())})
-              for j, label in enumerate(labels)]
-    return pa.concat_tables(chunks)
+    """One row per bidder, every label's total in the list column ``sums`` (columns of ``sums`` in stored order)."""
+    n, width = sums.shape
+    values = pa.array(np.ascontiguousarray(sums, dtype=float).reshape(-1), pa.float64())
+    offsets = pa.array(np.arange(0, n * width + 1, width, dtype=np.int32), pa.int32())
+    return pa.table({"experiment_id": _repeated(experiment.id, n), "segment": _repeated(segment, n),
+                     "bidder_key": pa.nulls(n, pa.int64()),
+                     "bidder_id": pa.array(ids_as_text(np.asarray(ids)), pa.string()),
+                     "sums": pa.ListArray.from_arrays(offsets, values)})
 
 
-def _before(found: pd.DataFrame, totals: WindowTotals, experiment: Experiment) -> tuple[np.ndarray, np.ndarray]:
-    """The stored totals of today's bidders in today's row order (zeros, unseen, for new bidders)."""
+def _before(ids: np.ndarray, stored: np.ndarray, totals: WindowTotals, permutation: np.ndarray
+            ) -> tuple[np.ndarray, np.ndarray]:
+    """The stored totals of today's bidders in today's row order (zeros, unseen, for new bidders).
+
+    ``ids`` and ``stored`` are the found rows (``stored`` in the stored label order); column ``j`` of
+    the result is label ``j`` of the experiment, ``stored[:, permutation[j]]``.
+    """
     before = np.zeros_like(totals.sums)
     seen = np.zeros(totals.sums.shape[0], dtype=bool)
-    if found.empty:
+    if len(ids) == 0:
         return before, seen
-    rows = pd.Index(totals.bidder_ids).get_indexer(found["bidder_id"].astype(str))
-    cols = pd.Index(_labels(experiment)).get_indexer(found["arm"].astype(str))
-    before[rows, cols] = found["value"].to_numpy(dtype=float)
+    rows = pd.Index(totals.bidder_ids).get_indexer(pd.Index(ids).astype(str))
+    if (rows < 0).any():
+        raise InputError("bidder window: the stored totals returned a bidder that is not today's")
+    before[rows] = stored[:, permutation]
     seen[rows] = True
     return before, seen
 
 
 def _window_write(experiment: Experiment, mode: str, base_days: str | None, days_text: str, ds: dt.date,
                   grams: Mapping[str | None, BidderGram], totals: Mapping[str | None, tuple[np.ndarray, np.ndarray]],
-                  run_id: str, computed_at) -> WindowWrite:
-    """The window's rows: per key (``None``: pooled; a segment label) its description, form and totals."""
+                  run_id: str, computed_at, *, order: list[str] | None = None) -> WindowWrite:
+    """The window's rows: per key (``None``: pooled; a segment label) its description, form and totals.
+
+    ``order``: the label order of the stored totals' ``sums`` (an extension keeps the stored one;
+    default the experiment's).
+    """
     labels = _labels(experiment)
+    order = list(order or labels)
+    columns = [labels.index(label) for label in order]
     last = max(parse_day(d) for d in days_text.split(","))
     when = pd.Timestamp(computed_at).to_pydatetime()
     summary = pa.Table.from_pylist([{
         "experiment_id": experiment.id, "segment": key, "ds": last, "days_used": days_text,
-        "n_distinct_bidders": int(gram.n_bidders), "bid_exponent": int(gram.bid_exponent), "run_id": run_id,
+        "n_distinct_bidders": int(gram.n_bidders), "bid_exponent": int(gram.bid_exponent),
+        "sum_labels": ",".join(order), "run_id": run_id,
         "computed_at": when} for key, gram in grams.items()])
     gram_rows = pa.Table.from_pylist([{"experiment_id": experiment.id, "segment": key, "arm_i": a, "arm_j": b,
                                        "value": float(gram.gram[i, j])}
                                       for key, gram in grams.items()
                                       for i, a in enumerate(labels) for j, b in enumerate(labels)])
-    totals_rows = pa.concat_tables([_totals_rows(experiment, key, ids, sums) for key, (ids, sums) in totals.items()])
+    totals_rows = pa.concat_tables([_totals_rows(experiment, key, ids, np.asarray(sums)[:, columns])
+                                    for key, (ids, sums) in totals.items()])
     return WindowWrite(mode=mode, base_days=base_days, tables={
         "bidder_window": summary, "bidder_window_gram": gram_rows, "bidder_window_totals": totals_rows})
 

@@ -3,7 +3,8 @@
 -- 3 when the to-date rows also carry the anytime-valid bounds, 4 when the to-date table's first_ds
 -- is nullable as well (warm-up rows without a first day used), 5 when estimates carry what_if,
 -- 6 when the running bidder window table exists, 7 when estimates carry segment (8 adds only a
--- PostgreSQL index, not told apart), 9 when the running bidder window carries segment too.
+-- PostgreSQL index, not told apart), 9 when the running bidder window carries segment too, 10 when it
+-- records the order of its totals' labels (one row per bidder).
 with source as (
     select table_name, column_name, is_nullable
     from information_schema.columns
@@ -23,6 +24,7 @@ select
         when count(*) filter (where table_name = 'bidder_window') = 0 then 5
         when count(*) filter (where table_name = 'arm_estimates' and column_name = 'segment') = 0 then 6
         when count(*) filter (where table_name = 'bidder_window' and column_name = 'segment') = 0 then 7
-        else 9
+        when count(*) filter (where table_name = 'bidder_window' and column_name = 'sum_labels') = 0 then 9
+        else 10
     end as version
 from source

@@ -3,9 +3,10 @@
 A 12-day lake of one experiment (the three-arm spec of ``bench_estimator.py``, 5 bidders an
 auction) whose bidder ids are mostly distinct strings (drawn from a pool of 20x the day's bids, so
 a few repeat and ``auto`` clusters by bidder), run day by day through the pipeline's steps on one
-DuckDB results file: the estimate step alone in a child process (its wall time and peak RSS
-from ``os.wait4``), the previous day's write with this day's load in another (the validate step
-is recorded as passed without running the contract suite: it does not touch the to-date rows). ``--code`` points the
+DuckDB results file: the estimate step alone in a child process (its wall time, CPU seconds and
+peak RSS from ``os.wait4``), the day's write in another (the same), and the day's load in a third
+(the validate step is recorded as passed without running the contract suite: it does not touch
+the to-date rows). ``--code`` points the
 children at another checkout's packages (a folder holding ``counterbid/<package>`` links), so the
 same lake measures the code before and after a change.
 
@@ -105,7 +106,8 @@ def run_child(argv: list[str], env: dict) -> dict:
         text = out.read()
     if status != 0:
         raise SystemExit(f"child {argv[3:]} failed with status {status}")
-    return json.loads(text.strip().splitlines()[-1]) | {"wall": wall, "rss_mib": usage.ru_maxrss / 1024}
+    return json.loads(text.strip().splitlines()[-1]) | {"wall": wall, "rss_mib": usage.ru_maxrss / 1024,
+                                                        "cpu": usage.ru_utime + usage.ru_stime}
 
 
 def main() -> None:
@@ -131,21 +133,25 @@ def main() -> None:
         env["PYTHONPATH"] = f"{args.code}{os.pathsep}{env.get('PYTHONPATH', '')}"
     me = [sys.executable, str(Path(__file__).resolve()), "--child"]
     print(f"## {args.label}: {args.days} days of {args.bids_per_day} bids\n")
-    print("| day | route | estimate wall s | estimate work s | estimate peak RSS MiB | to-date bids |")
-    print("|---:|---|---:|---:|---:|---:|")
+    print("| day | route | estimate wall s | estimate CPU s | estimate peak RSS MiB | write CPU s | write peak RSS MiB "
+          "| to-date bids | load avg |")
+    print("|---:|---|---:|---:|---:|---:|---:|---:|---:|")
     rows = []
     for k in range(args.days):
         day = str(START + dt.timedelta(days=k))
-        run_child([*me, "prepare" if k == 0 else "write+prepare", str(work), day], env)
+        run_child([*me, "prepare", str(work), day], env)
         r = run_child([*me, "estimate", str(work), day], env)
+        # the day's write in a process of its own (CPU and peak RSS of the write step alone)
+        w = run_child([*me, "write", str(work), day], env)
+        r |= {"write_cpu": w["cpu"], "write_rss": w["rss_mib"]}
         rows.append(r)
-        print(f"| {k + 1} | {r['route']} | {r['wall']:.1f} | {r['work']:.1f} | {r['rss_mib']:.0f} | {r['to_date_bids']} |",
-              flush=True)
-    run_child([*me, "write", str(work), day], env)
+        print(f"| {k + 1} | {r['route']} | {r['wall']:.1f} | {r['cpu']:.1f} | {r['rss_mib']:.0f} | {w['cpu']:.1f} "
+              f"| {w['rss_mib']:.0f} | {r['to_date_bids']} | {os.getloadavg()[0]:.2f} |", flush=True)
     first, last = rows[:3], rows[-3:]
     mean = lambda rs, key: sum(r[key] for r in rs) / len(rs)  # noqa: E731
-    print(f"\nfirst three days: estimate work {mean(first, 'work'):.1f} s, peak RSS {mean(first, 'rss_mib'):.0f} MiB; "
-          f"last three: {mean(last, 'work'):.1f} s, {mean(last, 'rss_mib'):.0f} MiB")
+    print(f"\nfirst three days: estimate CPU {mean(first, 'cpu'):.1f} s, peak RSS {mean(first, 'rss_mib'):.0f} MiB, "
+          f"write CPU {mean(first, 'write_cpu'):.1f} s; last three: {mean(last, 'cpu'):.1f} s, "
+          f"{mean(last, 'rss_mib'):.0f} MiB, write CPU {mean(last, 'write_cpu'):.1f} s")
 
 
 if __name__ == "__main__":

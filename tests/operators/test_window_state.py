@@ -254,3 +254,87 @@ def test_a_segmented_experiment_keeps_a_window_per_segment_equal_to_the_full_rec
     assert _check_segmented(sink, exp, DAYS[1], used[DAYS[1]]) == used[DAYS[1]]
     assert _run_day(sink, segmented_lake, exp, stage, DAYS[4], "again-5")["bidder_window"] == "rebuilt"
     assert _check_segmented(sink, exp, DAYS[4], used[DAYS[4]]) == used[DAYS[4]]
+
+
+# -- migration 10: the version-9 window (one row per bidder and label) becomes one row per bidder --------
+#: The results tables whose version-9 and version-10 columns are the same (copied as they are).
+SAME_SHAPE = ("arm_estimates", "arm_estimates_to_date", "arm_position_weights", "stratum_pieces", "stratum_piece_arms",
+              "stratum_piece_covariance", "stratum_piece_bidder_sums", "bid_quantiles", "data_checks",
+              "bidder_window_gram")
+
+
+def _as_version_9(hook, schema):
+    """Schema ``schema`` of the same database at version 9, holding ``main``'s rows in version 9's shape."""
+    from counterbid.operators.results_schema import MIGRATIONS
+
+    legacy = ResultsHook(database=hook.database, schema=schema, lock_timeout=5)
+    when = pd.Timestamp("2026-06-01 00:00", tz="UTC").to_pydatetime()
+    with legacy.session() as s, s.transaction():
+        s.execute("results_create_schema")
+        s.execute("results_create_schema_version")
+        for step in MIGRATIONS[:9]:
+            for stmt in step.statements:
+                if stmt.dialects is None or legacy.dialect in stmt.dialects:
+                    s.execute(stmt.name, **dict(stmt.identifiers))
+            s.execute("results_record_version", {"version": step.version, "migrated_at": when})
+    with hook.connect() as con:
+        for table in SAME_SHAPE:
+            con.execute(f"insert into {schema}.{table} select * from main.{table}")
+        con.execute(f"insert into {schema}.bidder_window select experiment_id, segment, ds, days_used, n_distinct_bidders,"
+                    " bid_exponent, run_id, computed_at from main.bidder_window")
+        # one row per (segment, bidder, label): the label names zipped with the list of totals
+        con.execute(f"insert into {schema}.bidder_window_totals (experiment_id, bidder_id, arm, value, segment)"
+                    " select t.experiment_id, t.bidder_id, unnest(string_to_array(w.sum_labels, ',')), unnest(t.sums),"
+                    " t.segment from main.bidder_window_totals as t inner join"
+                    " (select distinct experiment_id, sum_labels from main.bidder_window) as w"
+                    " on w.experiment_id = t.experiment_id")
+    return legacy
+
+
+def test_a_version_9_window_with_rows_migrates_and_extends_to_the_same_numbers(sink, segmented_lake, tmp_path):
+    """Days 1-2 stored at version 9 (one row per bidder and label), migrated to version 10: day 4 extends the
+    migrated window and gives the to-date rows of the same day on a database that was never migrated (1e-12),
+    and the full recombination; the stored windows agree after the day."""
+    exp = _segmented_spec()
+    for day in DAYS[:2]:
+        _run_day(sink, segmented_lake, exp, tmp_path / "stage", day, f"r-{day}")
+    legacy = _as_version_9(sink, "legacy")
+    with legacy.connect() as con:
+        long_rows = con.execute("select count(*) from legacy.bidder_window_totals").fetchone()[0]
+        wide_rows = con.execute("select count(*) from main.bidder_window_totals").fetchone()[0]
+    assert long_rows == 3 * wide_rows > 0  # three revenue labels: flat, steep, the mixture
+    assert legacy.ensure_tables() == [10]
+    # the version-9 rows carry no label order: the migration records the names' byte order
+    assert legacy.bidder_window(experiment_id=exp.id)[0]["sum_labels"].tolist() == ["_mixture,flat,steep"] * 3
+    day = DAYS[3]
+    assert _run_day(legacy, segmented_lake, exp, tmp_path / "stage-legacy", day, "r-4")["bidder_window"] == "extended"
+    assert _run_day(sink, segmented_lake, exp, tmp_path / "stage", day, "r-4")["bidder_window"] == "extended"
+    assert _check_segmented(legacy, exp, day, [DAYS[0], DAYS[1], day]) == [DAYS[0], DAYS[1], day]
+    rows = [h.fetch_df("report_to_date_estimates", {"experiment_id": exp.id}) for h in (legacy, sink)]
+    got, want = (r[r["ds"].dt.date == day].assign(segment=lambda t: t["segment"].fillna("(pooled)"))
+                 .set_index(["segment", "arm", "metric"]).sort_index() for r in rows)
+    assert got.index.equals(want.index) and len(got) > 0
+    np.testing.assert_allclose(got[NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float), rtol=1e-12, atol=0)
+    forms = [h.bidder_window(experiment_id=exp.id)[1].assign(segment=lambda t: t["segment"].fillna("(pooled)"))
+             .set_index(["segment", "arm_i", "arm_j"]).sort_index()["value"] for h in (legacy, sink)]
+    np.testing.assert_allclose(forms[0].to_numpy(), forms[1].to_numpy(), rtol=1e-12, atol=0)
+
+
+def test_two_ids_on_one_stored_key_send_the_day_to_a_rebuild(sink, lake, tmp_path):
+    """A stored row of another id under the integer key of one of today's bidders (what an md5 collision
+    leaves): the daily update would mix the two bidders' totals, so the day rebuilds from the pieces and
+    still gives the full recombination."""
+    exp = _spec()
+    stage = tmp_path / "stage"
+    for day in DAYS[:2]:
+        _run_day(sink, lake, exp, stage, day, f"r-{day}")
+    with sink.connect() as con:  # a copy of one stored bidder's row under a text id of no bidder
+        con.execute("insert into main.bidder_window_totals (experiment_id, segment, bidder_key, bidder_id, sums)"
+                    " select experiment_id, segment, bidder_key, 'seat-none', sums from main.bidder_window_totals"
+                    " where bidder_id = 'seat-1'")
+    assert _run_day(sink, lake, exp, stage, DAYS[3], "r-4")["bidder_window"] == "rebuilt"
+    _check_against_full_recombination(sink, exp, DAYS[3], [DAYS[0], DAYS[1], DAYS[3]])
+    assert _check_stored_window(sink, exp) == [DAYS[0], DAYS[1], DAYS[3]]
+    with sink.connect() as con:
+        assert con.execute("select count(*) from main.bidder_window_totals where bidder_id = 'seat-none'"
+                           ).fetchone()[0] == 0

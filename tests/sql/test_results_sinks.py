@@ -205,8 +205,9 @@ def test_a_version_2_database_gets_the_anytime_columns_in_place(sink, recorded):
             s.execute("results_drop_table", table="counterbid_schema")
     with sink.session() as s:
         assert schema_version(s) == 2  # from the recorded row, or from the columns
-    # anytime, warm-up rows, what-if, bidder window, segments, the window's index (PostgreSQL), the window per segment
-    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6, 7, 8, 9]
+    # anytime, warm-up rows, what-if, bidder window, segments, the window's index (PostgreSQL), the window per segment,
+    # the window's totals one row per bidder
+    assert sink.ensure_tables() == [m.version for m in MIGRATIONS[2:]] == [3, 4, 5, 6, 7, 8, 9, 10]
     sink.replace_partition(experiment_id="tiles", ds=D2, tables={
         "arm_estimates_to_date": _rows("tiles", D2, estimate=2.0, to_date=True)})
     rows = _table(sink, "arm_estimates_to_date").set_index(["ds", "arm", "metric"])
@@ -222,11 +223,11 @@ def test_a_database_written_before_versions_at_today_shape_is_recorded_not_rebui
     sink.replace_partition(experiment_id="tiles", ds=D1, tables={"arm_estimates": _rows("tiles", D1)})
     with sink.connect() as con:  # as the previous release left it: no version table
         con.execute("drop table main.counterbid_schema")
-    # its columns say version 9 (the running bidder window keyed by segment: the last shape the columns
+    # its columns say version 10 (the running bidder window records its totals' label order: the last shape the columns
     # tell apart; version 8 adds only a PostgreSQL index): only later steps run
-    later = [m.version for m in MIGRATIONS if m.version > 9]
+    later = [m.version for m in MIGRATIONS if m.version > 10]
     assert sink.ensure_tables() == later
-    assert _table(sink, "counterbid_schema")["version"].tolist() == [9, *later]
+    assert _table(sink, "counterbid_schema")["version"].tolist() == [10, *later]
     assert len(_table(sink, "arm_estimates")) == 4
 
 
@@ -293,21 +294,23 @@ def test_a_version_8_running_window_becomes_the_pooled_window_of_version_9(sink)
         for arm, v in (("bold", 2.0), ("_mixture", 1.0)):
             con.execute(f"insert into main.bidder_window_totals values ({mark}, {mark}, {mark}, {mark})",
                         ["tiles", "stand-7", arm, v])
-    assert sink.ensure_tables() == [9]
+    assert sink.ensure_tables() == [9, 10]
     rows, gram = sink.bidder_window(experiment_id="tiles")
     assert rows["segment"].isna().all() and rows["days_used"].tolist() == [D1.isoformat()]
+    assert rows["sum_labels"].tolist() == ["_mixture,bold"]  # version 10: the labels' order in each bidder's list
     assert gram["segment"].isna().all() and sorted(gram["value"]) == [1.0, 2.0, 2.0, 4.0]
-    today = pa.table({"experiment_id": ["tiles"], "segment": pa.array([None], pa.string()), "bidder_id": ["stand-7"],
-                      "arm": [""], "value": [0.0]})
+    today = pa.table({"experiment_id": ["tiles"], "segment": pa.array([None], pa.string()),
+                      "bidder_key": pa.array([None], pa.int64()), "bidder_id": ["stand-7"],
+                      "sums": pa.array([None], pa.list_(pa.float64()))})
     found = sink.bidder_window_totals(experiment_id="tiles", today=today)
-    assert sorted(found["value"]) == [1.0, 2.0] and found["segment"].isna().all()
+    assert found.column("sums").to_pylist() == [[1.0, 2.0]] and found.column("segment").null_count == 1
     # a segment's window beside the pooled one is a key of its own; a second pooled row is not
     labelled = today.set_column(1, "segment", pa.array(["awning"], pa.string()))
-    assert sink.bidder_window_totals(experiment_id="tiles", today=labelled).empty  # totals match on the segment
+    assert sink.bidder_window_totals(experiment_id="tiles", today=labelled).num_rows == 0  # totals match on the segment
     with sink.connect() as con:
-        con.execute(f"insert into main.bidder_window values ({', '.join([mark] * 8)})",
-                    ["tiles", "awning", D1, D1.isoformat(), 1, 0, "r1", NOW.to_pydatetime()])
+        con.execute(f"insert into main.bidder_window values ({', '.join([mark] * 9)})",
+                    ["tiles", "awning", D1, D1.isoformat(), 1, 0, "r1", NOW.to_pydatetime(), None])
     with pytest.raises(Exception, match="(?i)duplicate|unique|constraint"), sink.connect() as con:
-        con.execute(f"insert into main.bidder_window values ({', '.join([mark] * 8)})",
-                    ["tiles", None, D1, D1.isoformat(), 1, 0, "r2", NOW.to_pydatetime()])
+        con.execute(f"insert into main.bidder_window values ({', '.join([mark] * 9)})",
+                    ["tiles", None, D1, D1.isoformat(), 1, 0, "r2", NOW.to_pydatetime(), None])
     assert len(sink.bidder_window(experiment_id="tiles")[0]) == 2

@@ -1,0 +1,18 @@
+-- The stored totals of today's bidders only: the (segment, bidder) pairs of the temporary table
+-- `incoming` (today's totals; segment null: pooled) matched on the segment and the integer bidder key
+-- (by index bidder_window_totals_by_key); bidders not seen before in that segment have no row.
+-- `sums` is in the order of the window's sum_labels; two rows of one (segment, bidder_key): ids collided.
+with today as (
+    select
+        segment,
+        bidder_id,
+        ((('x' || left(md5(bidder_id), 16))::bit(64)) >> 1)::bigint as bidder_key
+    from incoming
+)
+
+select
+    d.segment, d.bidder_id, d.bidder_key, t.sums
+from {{ schema }}.bidder_window_totals as t
+inner join today as d
+    on t.bidder_key = d.bidder_key and t.segment is not distinct from d.segment
+where t.experiment_id = %(experiment_id)s

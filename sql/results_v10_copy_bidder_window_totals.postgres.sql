@@ -1,0 +1,12 @@
+-- Schema version 10, step 2 of 4 for bidder_window_totals: each (experiment, segment, bidder)'s
+-- version-9 rows (one per revenue label) become one row, the labels' totals in the byte order of
+-- their names (the order results_v10_add_window_sum_labels records).
+insert into {{ schema }}.bidder_window_totals_next (experiment_id, segment, bidder_key, bidder_id, sums)
+select
+    experiment_id,
+    segment,
+    ((('x' || left(md5(bidder_id), 16))::bit(64)) >> 1)::bigint as bidder_key,
+    bidder_id,
+    array_agg(value order by arm collate "C") as sums
+from {{ schema }}.bidder_window_totals
+group by experiment_id, segment, bidder_id
