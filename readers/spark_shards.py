@@ -3,8 +3,9 @@
 The same work as :mod:`counterbid.readers.shards`, spread over a Spark cluster. Spark reads the
 Parquet input itself (a path, a folder or an object-store URL its file system understands), gives
 every bid the shard of its auction by the same stable hash as the local engine
-(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.shard_of`), and runs one
-Python task per shard (``groupBy('shard').applyInArrow``) that converts the shard's rows as the
+(``sql/spark_bids_with_shard.spark.sql``; :func:`counterbid.estimators.shard_of`), puts each
+shard in a partition of its own (no sort, no grouping in Spark) and runs one Python task per
+partition (``mapInArrow``) that converts the shard's rows as the
 local reader does (:func:`counterbid.readers.bid_log.bids_from_arrow`), validates them
 (:func:`~counterbid.estimators.prepare_bids`) and returns its stratum pieces
 (:func:`~counterbid.estimators.stratum_pieces`). Only the pieces travel back to the driver,
@@ -13,10 +14,11 @@ rows keep the order the local engine reads them in (files by path, rows by posit
 pieces, the numbers and the row named by an error are the local engine's.
 
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
-only, plus a copy of it when the rows reach it out of read order (Spark sorts them by shard alone:
-the worker puts them in read order by their key); the driver holds the pieces (a few numbers per stratum) and, when clustering by bidder, the Gram
-forms of the bidders' sums (:mod:`.spark_bidder_gram`); the DAG's estimate step has the executors
-store the per-bidder rows themselves (``bidder_rows_sink``), so they never reach the driver.
+only, plus a copy of it when the rows reach it out of read order (Spark's shuffle delivers them
+in no set order: the worker puts them in read order by their key); the driver holds the pieces (a few
+numbers per stratum) and, when clustering by bidder, the Gram forms of the bidders' sums
+(:mod:`.spark_bidder_gram`); the DAG's estimate step has the executors store the per-bidder rows
+themselves (``bidder_rows_sink``), so they never reach the driver.
 
 Input the two engines read alike: a bad row is named by its shard and its row there, as locally;
 a shard is named only when several hold bids; a bid without an auction id is refused by shard 0's
@@ -275,6 +277,7 @@ def _quiet_pyspark():
 #: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
 STATEMENT_PARAMETERS = {
     "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
+    "spark_shard_partition_keys": frozenset({"candidates", "n_shards"}),
     "spark_lake_partition": frozenset({"ds", "experiment_id"}),
 }
 
@@ -421,6 +424,53 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
 
 
+def _partition_answers(batches, one_shard):
+    """The answers of the shards in one partition of the bids (one shard, but any number is answered alike).
+
+    ``batches`` are the partition's Arrow record batches; every shard among them is answered by
+    ``one_shard`` (its rows in the order they arrived), shards by number.
+    """
+    import pyarrow.compute as pc
+
+    batches = [b for b in batches if b.num_rows]
+    if not batches:
+        return
+    table = pa.Table.from_batches(batches)
+    del batches
+    found = pc.unique(table.column("shard")).to_pylist()
+    if len(found) == 1:  # the usual case: the partition is the shard
+        held = [table]
+        del table
+        yield from one_shard(held.pop()).to_batches()
+        return
+    for shard in sorted(found):
+        yield from one_shard(table.filter(pc.equal(table.column("shard"), shard))).to_batches()
+
+
+#: Keys searched per partition for each partition's key (a partition left without one has a chance
+#: of about ``n * exp(-64)``; its shards then share partitions, which the workers answer alike).
+_KEYS_PER_PARTITION = 64
+
+
+def _partition_key(spark, shards: int):
+    """The column that puts each shard in the partition numbered like it under ``repartition(shards, key)``.
+
+    Spark's hash repartition by the shard itself would put two shards in one partition and leave
+    another empty about as often as not (``pmod(hash(shard), n)`` is no permutation); keyed by
+    ``sql/spark_shard_partition_keys.spark.sql``'s key of partition ``k``, shard ``k``'s rows go to
+    partition ``k``. Falls back to the shard itself when some partition has no key.
+    """
+    from pyspark.sql import functions as F
+
+    rows = _run_sql(spark, "spark_shard_partition_keys", n_shards=int(shards),
+                    candidates=_KEYS_PER_PARTITION * int(shards)).collect()
+    keys = {int(r["shard"]): int(r["partition_key"]) for r in rows}
+    if len(keys) < int(shards):
+        return F.col("shard")
+    table = F.array(*[F.lit(keys[k]).cast("bigint") for k in range(int(shards))])
+    return F.element_at(table, F.col("shard").cast("int") + 1)
+
+
 def _answer_schema(with_gram: bool = False) -> pa.Schema:
     """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
@@ -498,14 +548,16 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
     def one_partition(batches):  # runs in a Python worker, once per partition of the bidder rows
         return partition_gram(batches, collected)
 
+    def one_partition_of_bids(batches):  # runs in a Python worker, once per partition: its shard(s)
+        return _partition_answers(batches, one_shard)
+
     try:
-        # one task per shard (not spark.sql.shuffle.partitions tasks, most of them empty)
-        # Spark sorts each partition by the shard alone (one integer key: a radix sort, no row
-        # compared); the shard's task puts its rows in read order by their key (_shard_answer)
+        # one task per shard, each shard in a partition of its own (_partition_key): no sort and no
+        # grouping in Spark; the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
-        grouped = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), "shard").groupBy("shard")
+        parts = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
         with _quiet_pyspark():
-            out = grouped.applyInArrow(one_shard, _ANSWER)
+            out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
                 out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
             rows = _collect(out)

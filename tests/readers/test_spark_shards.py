@@ -364,3 +364,41 @@ def test_a_shard_with_no_bid_at_the_floor(spark, tmp_path):
     want = combine_pieces(pieces, exp, cluster="bidder").table
     for col in ("estimate", "std_error"):
         np.testing.assert_allclose(local.table[col].to_numpy(float), want[col].to_numpy(float), rtol=1e-12, atol=0)
+
+
+@pytest.mark.parametrize("shards", [3, 7, 40])
+def test_every_shard_gets_a_partition_of_its_own(spark, shards):
+    # the shards' partition keys put shard k's rows in partition k, and only there; Spark's hash of
+    # the shard itself would not (two of 0..2 share a partition under pmod(hash(shard), 3))
+    from pyspark.sql import functions as F
+
+    from counterbid.readers.spark_shards import _partition_key
+
+    rows = spark.range(0, 20 * shards).withColumn("shard", F.pmod(F.col("id") * 7919, F.lit(shards)))
+    placed = rows.repartition(shards, _partition_key(spark, shards)).select(
+        "shard", F.spark_partition_id().alias("partition")).distinct().collect()
+    assert sorted((r["shard"], r["partition"]) for r in placed) == [(k, k) for k in range(shards)]
+    by_shard = rows.repartition(shards, "shard").select("shard", F.spark_partition_id().alias("partition")).distinct()
+    if shards == 3:  # what the key avoids: some partition holds two shards
+        assert by_shard.select("partition").distinct().count() < shards
+
+
+def test_a_partition_of_several_shards_answers_each_in_arrival_order():
+    # the fallback when some partition has no key: a worker answers every shard it was sent, by
+    # number, each with its rows in the order they arrived
+    from counterbid.readers.spark_shards import _partition_answers
+
+    shard = [2, 0, 2, 2, 0, 1]
+    batches = [pa.record_batch({"shard": pa.array(shard[:4], pa.int64()), "row": pa.array(range(4), pa.int64())}),
+               pa.record_batch({"shard": pa.array([], pa.int64()), "row": pa.array([], pa.int64())}),
+               pa.record_batch({"shard": pa.array(shard[4:], pa.int64()), "row": pa.array(range(4, 6), pa.int64())})]
+    seen = []
+
+    def answer(table):
+        seen.append((table.column("shard").to_pylist(), table.column("row").to_pylist()))
+        return pa.table({"shard": [table.column("shard")[0].as_py()], "n": [table.num_rows]})
+
+    out = pa.Table.from_batches(list(_partition_answers(iter(batches), answer)))
+    assert out.to_pylist() == [{"shard": 0, "n": 2}, {"shard": 1, "n": 1}, {"shard": 2, "n": 3}]
+    assert seen == [([0, 0], [1, 4]), ([1], [5]), ([2, 2, 2], [0, 2, 3])]
+    assert list(_partition_answers(iter([]), answer)) == []  # an empty partition answers nothing
