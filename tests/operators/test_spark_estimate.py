@@ -94,7 +94,13 @@ def _counter_lake(root, exp, segmented: bool):
 
 
 def _sorted_rows(table: pa.Table) -> pd.DataFrame:
+    """The rows in a set order; a list column (the window's label totals) becomes one float column per entry."""
     frame = table.to_pandas().drop(columns=["run_id", "computed_at"], errors="ignore")
+    for name in [f.name for f in table.schema if pa.types.is_list(f.type) or pa.types.is_large_list(f.type)]:
+        if name in frame:
+            spread = pd.DataFrame(np.vstack(frame[name].to_numpy()) if len(frame) else np.empty((0, 0)),
+                                  index=frame.index).add_prefix(f"{name}[").add_suffix("]")
+            frame = pd.concat([frame.drop(columns=[name]), spread.astype(float)], axis=1)
     keys = [c for c in frame.columns if not pd.api.types.is_float_dtype(frame[c])]
     return frame.sort_values(keys, na_position="first").reset_index(drop=True)
 
