@@ -3,8 +3,8 @@
 A *sink* is where the results tables live: an embedded DuckDB file (``duckdb``) or a PostgreSQL
 database (``postgres``). Everything that differs between the two is the SQL dialect (handled by
 :func:`counterbid.sql.statement`: sqlglot transpiles the DuckDB sources, or a per-dialect file)
-and how rows reach the server (DuckDB reads the Arrow table registered as ``incoming``;
-PostgreSQL receives them by COPY into a temporary table of that name). The code that writes,
+and how rows reach the server (DuckDB scans the Arrow table or staged Parquet dataset registered as
+``incoming``; PostgreSQL receives them by COPY, batch by batch, into a temporary table of that name). The code that writes,
 migrates and reads is written once, against :class:`ResultsSession`.
 
 Migrations. The schema's version is the highest row of ``counterbid_schema``. :data:`MIGRATIONS`
@@ -27,6 +27,7 @@ from urllib.parse import urlsplit, urlunsplit
 
 import pandas as pd
 import pyarrow as pa
+import pyarrow.dataset as pads
 
 from counterbid.estimators.errors import InputError
 from counterbid.sql import has_dialect_file, load_sql, statement, validate_identifier
@@ -34,8 +35,34 @@ from counterbid.sql import has_dialect_file, load_sql, statement, validate_ident
 __all__ = [
     "MIGRATIONS", "RESULTS_TABLES", "RESULTS_VIEWS", "SCHEMA_VERSION", "DuckDBSession", "Migration",
     "POSTGRES_SCHEMES", "PostgresSession", "ResultsSession", "ResultsTable", "WINDOW_TABLES", "WindowWrite", "ResultsTarget", "Statement", "as_session",
-    "migrate", "results_target", "schema_version",
+    "migrate", "results_target", "schema_version", "WRITE_BATCH_ROWS", "staged_rows", "row_count", "row_batches",
 ]
+
+#: Rows per batch when rows travel to a sink: what one write holds in memory at a time, whatever
+#: the day's size (a staged Parquet dataset is read batch by batch, never whole).
+WRITE_BATCH_ROWS = 65_536
+
+
+def staged_rows(path: str | Path) -> pads.Dataset:
+    """The rows of a staged Parquet file, to be written without reading them whole."""
+    return pads.dataset(str(path), format="parquet")
+
+
+def row_count(rows: pa.Table | pads.Dataset) -> int:
+    """Rows of an Arrow table or a staged dataset (a dataset's from its Parquet footers)."""
+    return rows.num_rows if isinstance(rows, pa.Table) else rows.count_rows()
+
+
+def row_batches(rows: pa.Table | pads.Dataset, batch_rows: int | None = None) -> Iterator[pa.RecordBatch]:
+    """``rows`` as record batches of at most ``batch_rows`` rows (default :data:`WRITE_BATCH_ROWS`)."""
+    size = WRITE_BATCH_ROWS if batch_rows is None else int(batch_rows)
+    if size < 1:
+        raise InputError(f"row_batches: batch_rows must be at least 1, got {size}")
+    if isinstance(rows, pa.Table):
+        yield from rows.to_batches(max_chunksize=size)
+        return
+    for batch in rows.to_batches(batch_size=size):
+        yield from (batch.slice(at, size) for at in range(0, batch.num_rows, size))
 
 _PLACEHOLDER = re.compile(r"\{\{\s*([A-Za-z_][A-Za-z0-9_]*)\s*\}\}")
 
@@ -305,14 +332,18 @@ class ResultsSession:
         raise NotImplementedError
         yield
 
-    def insert_rows(self, dest: ResultsTable, rows: pa.Table, params: Mapping[str, Any]) -> None:
-        """Run ``results_insert_<dest>`` over ``rows`` (visible to it as ``incoming``)."""
+    def insert_rows(self, dest: ResultsTable, rows: pa.Table | pads.Dataset, params: Mapping[str, Any]) -> None:
+        """Run ``results_insert_<dest>`` over ``rows`` (visible to it as ``incoming``).
+
+        ``rows``: an Arrow table, or a staged Parquet dataset (:func:`staged_rows`) that travels
+        to the sink in batches of :data:`WRITE_BATCH_ROWS` rows, inside the caller's transaction.
+        """
         with self.incoming(dest, rows):
             self.execute(f"results_insert_{dest.destination}", params)
 
     @contextlib.contextmanager
-    def incoming(self, dest: ResultsTable, rows: pa.Table) -> Iterator[None]:
-        """``rows`` (columns of ``dest``'s table) visible to statements as ``incoming`` (PostgreSQL: in a transaction)."""
+    def incoming(self, dest: ResultsTable, rows: pa.Table | pads.Dataset) -> Iterator[None]:
+        """``rows`` (columns of ``dest``'s table; a table or a staged dataset) visible to statements as ``incoming`` (PostgreSQL: in a transaction)."""
         raise NotImplementedError
         yield
 
@@ -392,13 +423,14 @@ class PostgresSession(ResultsSession):
     def incoming(self, dest, rows):
         self.execute("results_stage_incoming", table=dest.table)
         columns = [r[0] for r in self.execute("results_table_columns", {"schema": self.schema, "table": dest.table}).fetchall()]
-        missing = [c for c in columns if c not in rows.column_names]
+        given = rows.column_names if isinstance(rows, pa.Table) else rows.schema.names
+        missing = [c for c in columns if c not in given]
         if missing:
             raise InputError(f"{self.where}: rows for table {dest.table} lack column(s) {', '.join(missing)}")
-        values = [rows.column(c).to_pylist() for c in columns]
         with self.con.cursor() as cur, cur.copy(self.sql("results_copy_incoming")) as copy:
-            for row in zip(*values):
-                copy.write_row(row)
+            for batch in row_batches(rows):  # one batch's Python values at a time, never the whole day's
+                for row in zip(*(batch.column(c).to_pylist() for c in columns)):
+                    copy.write_row(row)
         yield
         self.execute("results_drop_incoming")
 
