@@ -3,8 +3,8 @@
 A *sink* is where the results tables live: an embedded DuckDB file (``duckdb``) or a PostgreSQL
 database (``postgres``). Everything that differs between the two is the SQL dialect (handled by
 :func:`counterbid.sql.statement`: sqlglot transpiles the DuckDB sources, or a per-dialect file)
-and how rows reach the server (DuckDB scans the Arrow table or staged Parquet dataset registered as
-``incoming``; PostgreSQL receives them by COPY, batch by batch, into a temporary table of that name). The code that writes,
+and how rows reach the server (DuckDB scans the Arrow table registered as ``incoming``, or a staged
+Parquet file with its own reader through a temporary view of that name; PostgreSQL receives them by COPY, batch by batch, into a temporary table of that name). The code that writes,
 migrates and reads is written once, against :class:`ResultsSession`.
 
 Migrations. The schema's version is the highest row of ``counterbid_schema``. :data:`MIGRATIONS`
@@ -386,6 +386,11 @@ class DuckDBSession(ResultsSession):
 
     @contextlib.contextmanager
     def incoming(self, dest, rows):
+        if isinstance(rows, pads.FileSystemDataset):  # staged Parquet: DuckDB's own reader, row group by row group
+            self.con.read_parquet(list(rows.files)).create_view("incoming", replace=True)
+            yield
+            self.execute("results_drop_incoming_view")
+            return
         self.con.register("incoming", rows)  # left registered on failure: the connection is closed
         yield
         self.con.unregister("incoming")

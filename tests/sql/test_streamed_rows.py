@@ -2,8 +2,8 @@
 
 A day's bidder sums (text ids, some bidders in a segment) are written once from a whole Arrow table
 and once, over the same partition, from the staged Parquet file with the batch size forced to 37
-rows, so the rows travel in at least 28 batches (DuckDB scans the file as a dataset; PostgreSQL receives
-one COPY fed batch by batch). The stored rows must be the same. A file whose last batch breaks a
+rows, so the rows travel in at least 28 batches (DuckDB reads the file with its own Parquet reader; PostgreSQL
+receives one COPY fed batch by batch). The stored rows must be the same. A file whose last batch breaks a
 NOT NULL column must leave the stored rows as they were: the batches are one transaction.
 What it can catch: a batch dropped, repeated or cut short, a whole-table path the staged file does
 not fit (the old write read ``num_rows`` and every column of a table), a half-written day.
@@ -83,6 +83,7 @@ def test_a_staged_file_in_small_batches_stores_what_one_insert_stores(sink, tmp_
     assert sink.replace_partition(experiment_id="kites", ds=DAY,
                                   tables={"stratum_piece_bidder_sums": staged}) == {"stratum_piece_bidder_sums": N_ROWS}
     pd.testing.assert_frame_equal(_stored(sink), one_shot)
+    assert not sink.table_exists("incoming")  # the staged file's view went with the write
 
 
 def test_a_bad_row_in_the_last_batch_leaves_the_day_as_it_was(sink, tmp_path, monkeypatch):
