@@ -12,7 +12,9 @@ two arms, a segment on every fifth row) as Parquet, then writes it with
 Reports each child's peak RSS (``ru_maxrss``), CPU seconds (user + sys, ``os.wait4``) and wall
 time, with the load average before and after. ``--postgres URL`` adds a PostgreSQL sink.
 
-Usage: python tests/benchmarks/bench_write_stream.py --work DIR [--millions 10] [--postgres URL]
+``--hows whole`` with ``PYTHONPATH`` on a checkout of an earlier commit measures that commit's write.
+
+Usage: python tests/benchmarks/bench_write_stream.py --work DIR [--millions 10] [--postgres URL] [--hows stream,whole]
 """
 
 from __future__ import annotations
@@ -70,9 +72,13 @@ def child(how: str, database: str, staged: Path) -> None:
     import pyarrow.parquet as pq
 
     from counterbid.operators.hooks import ResultsHook
-    from counterbid.operators.results_schema import staged_rows
 
-    rows = pq.read_table(staged) if how == "whole" else staged_rows(staged)
+    if how == "whole":
+        rows = pq.read_table(staged)
+    else:
+        from counterbid.operators.results_schema import staged_rows
+
+        rows = staged_rows(staged)
     counts = ResultsHook(database=database).replace_partition(experiment_id="quarry", ds=DAY,
                                                               tables={"stratum_piece_bidder_sums": rows})
     print(counts["stratum_piece_bidder_sums"])
@@ -95,6 +101,7 @@ def main() -> None:
     parser.add_argument("--work", type=Path)
     parser.add_argument("--millions", type=float, default=10.0)
     parser.add_argument("--postgres")
+    parser.add_argument("--hows", default="stream,whole", help="comma-separated: stream, whole")
     parser.add_argument("--child", choices=["whole", "stream"])
     parser.add_argument("--database")
     parser.add_argument("--staged", type=Path)
@@ -109,7 +116,7 @@ def main() -> None:
     sinks = [("duckdb", str(args.work / "results.duckdb"))] + ([("postgres", args.postgres)] if args.postgres else [])
     print(f"{'sink':9} {'rows':>10} {'how':7} {'wall s':>8} {'CPU s':>8} {'peak RSS MiB':>13}")
     for name, database in sinks:
-        for how in ("stream", "whole"):
+        for how in args.hows.split(","):
             r = run(how, database, staged)
             print(f"{name:9} {r['rows']:>10} {how:7} {r['wall_s']:8.1f} {r['cpu_s']:8.1f} {r['peak_rss_mib']:13.0f}")
     print(f"load average after: {os.getloadavg()}")
