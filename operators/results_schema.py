@@ -106,11 +106,13 @@ class WindowWrite:
     ``mode`` ``'extend'``: ``tables['bidder_window_totals']`` holds today's bidders only, and the
     update applies only when the stored window's ``days_used`` is still ``base_days`` (else the
     stored window is dropped: rebuilt on the next day). ``'replace'``: every row of the window.
+    Tables are Arrow tables as computed, or the staged Parquet files (:func:`staged_rows`) when the
+    write step loads them.
     """
 
     mode: str
     base_days: str | None
-    tables: Mapping[str, pa.Table]
+    tables: Mapping[str, pa.Table | pads.Dataset]
 
 
 #: Views over the tables, in creation order: (view name, create statement).
