@@ -28,6 +28,7 @@ from urllib.parse import urlsplit, urlunsplit
 import pandas as pd
 import pyarrow as pa
 import pyarrow.dataset as pads
+import pyarrow.parquet as pq
 
 from counterbid.estimators.errors import InputError
 from counterbid.sql import has_dialect_file, load_sql, statement, validate_identifier
@@ -61,7 +62,12 @@ def row_batches(rows: pa.Table | pads.Dataset, batch_rows: int | None = None) ->
     if isinstance(rows, pa.Table):
         yield from rows.to_batches(max_chunksize=size)
         return
-    for batch in rows.to_batches(batch_size=size):
+    if isinstance(rows, pads.FileSystemDataset):  # one file, one row group at a time: no read-ahead of the day
+        for path in rows.files:
+            with pq.ParquetFile(path) as staged:
+                yield from staged.iter_batches(batch_size=size)
+        return
+    for batch in rows.to_batches(batch_size=size, batch_readahead=1, fragment_readahead=1):
         yield from (batch.slice(at, size) for at in range(0, batch.num_rows, size))
 
 _PLACEHOLDER = re.compile(r"\{\{\s*([A-Za-z_][A-Za-z0-9_]*)\s*\}\}")
