@@ -209,7 +209,7 @@ def run(args: argparse.Namespace) -> int:
     if end < start:
         raise InputError(f"--end {end} is before --start {start}")
     load_experiments(args.experiments)  # fail early, with the spec's own message
-    from counterbid.operators.results_schema import results_target
+    from counterbid.operators.results_target import results_target
 
     target = results_target(args.results, what="--results")
     from counterbid.operators.extras import require_extras_for

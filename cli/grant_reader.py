@@ -13,7 +13,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from counterbid.operators.results_schema import results_target
+    from counterbid.operators.results_target import results_target
 
     target = results_target(args.results, what="--results")
     if target.dialect != "postgres":

@@ -65,7 +65,7 @@ from counterbid.operators.pipeline import (
     ValidatePartitionOperator,
     WriteEstimatesOperator,
 )
-from counterbid.operators.results_schema import results_target
+from counterbid.operators.results_target import results_target
 
 DAG_ID = "counterbid_daily"
 HERE = Path(__file__).resolve().parent

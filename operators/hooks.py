@@ -23,6 +23,7 @@ from typing import Any
 import duckdb
 import pandas as pd
 import pyarrow as pa
+import pyarrow.dataset as pads
 from airflow.sdk import BaseHook
 
 from counterbid.estimators.errors import InputError
@@ -33,7 +34,7 @@ from .extras import require_extra
 from .results_schema import (
     POSTGRES_SCHEMES, RESULTS_TABLES, WINDOW_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget,
     WindowWrite, check_readable,
-    migrate, results_target, statement_for,
+    migrate, results_target, row_count, statement_for,
 )
 
 __all__ = [
@@ -326,7 +327,7 @@ class ResultsHook(BaseHook):
         *,
         experiment_id: str,
         ds: dt.date,
-        tables: Mapping[str, pa.Table | None],
+        tables: Mapping[str, pa.Table | pads.Dataset | None],
         window: WindowWrite | None = None,
     ) -> dict[str, int]:
         """Replace every row of one (experiment, day) in one transaction (delete, then insert).
@@ -339,7 +340,9 @@ class ResultsHook(BaseHook):
             Keys among the destinations of
             :data:`~counterbid.operators.results_schema.RESULTS_TABLES` (``arm_estimates``,
             ``arm_estimates_to_date``, ``position_weights``, the stratum-piece tables, ``bid_quantiles``);
-            each table holds that destination's columns. Duplicate keys are dropped in SQL. ``None``
+            each table holds that destination's columns; a staged Parquet dataset
+            (:func:`~counterbid.operators.results_schema.staged_rows`) travels in bounded batches,
+            in the same transaction. Duplicate keys are dropped in SQL. ``None``
             deletes the destination's rows of the (experiment, day) and inserts none.
         window : WindowWrite, optional
             The running bidder window the day's estimate step computed, written in the same
@@ -370,7 +373,7 @@ class ResultsHook(BaseHook):
                             counts[dest] = 0
                             continue
                         s.insert_rows(known[dest], table, params)
-                        counts[dest] = table.num_rows
+                        counts[dest] = row_count(table)
                     counts.update(_write_window(s, experiment_id=experiment_id, ds=ds, window=window))
                 return counts
 
@@ -488,5 +491,5 @@ def _write_window(s: ResultsSession, *, experiment_id: str, ds: dt.date, window:
                 incoming = dest.destination == "bidder_window_totals"
                 s.execute(f"results_delete_{dest.destination}{'_incoming' if incoming else ''}", by_experiment)
             s.execute(f"results_insert_{dest.destination}", by_experiment)
-        counts[dest.destination] = rows.num_rows
+        counts[dest.destination] = row_count(rows)
     return counts

@@ -51,6 +51,7 @@ from .shard_step import estimate_shard, shard_task_pieces
 from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, pieces_with_staged_sums, staged_shards
 from .staging import StagedPartition, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
+from .results_schema import staged_rows
 from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
 
 __all__ = [
@@ -510,8 +511,8 @@ def write_partition(
         "arm_estimates": pq.read_table(staged.require(staged.estimates_day, step="estimate")),
         "position_weights": pq.read_table(staged.require(staged.weights, step="estimate")),
     }
-    for table in PIECE_TABLES.values():
-        tables[table] = pq.read_table(staged.require(staged.folder / f"{table}.parquet", step="estimate"))
+    for table in PIECE_TABLES.values():  # the per-bidder rows among them: streamed from the file, never read whole
+        tables[table] = staged_rows(staged.require(staged.folder / f"{table}.parquet", step="estimate"))
     # optional: absent when every day so far is left out / when the validate step stopped early
     tables["arm_estimates_to_date"] = (pq.read_table(staged.estimates_to_date) if staged.estimates_to_date.exists()
                                        else None)

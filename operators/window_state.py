@@ -30,7 +30,6 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
 from counterbid.estimators import (
     BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
@@ -42,7 +41,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.window_totals import WindowTotals
 
 from .hooks import ResultsHook
-from .results_schema import WINDOW_TABLES, WindowWrite
+from .results_schema import WINDOW_TABLES, WindowWrite, staged_rows
 from .staging import write_json, write_parquet
 
 __all__ = ["ToDateInputs", "load_window_write", "stage_window_write", "to_date_inputs"]
@@ -362,4 +361,4 @@ def load_window_write(folder: Path) -> WindowWrite | None:
         return None
     meta = json.loads(manifest.read_text(encoding="utf-8"))
     return WindowWrite(mode=meta["mode"], base_days=meta["base_days"],
-                       tables={d.destination: pq.read_table(folder / f"{d.destination}.parquet") for d in WINDOW_TABLES})
+                       tables={d.destination: staged_rows(folder / f"{d.destination}.parquet") for d in WINDOW_TABLES})

@@ -338,3 +338,50 @@ def test_two_ids_on_one_stored_key_send_the_day_to_a_rebuild(sink, lake, tmp_pat
     with sink.connect() as con:
         assert con.execute("select count(*) from main.bidder_window_totals where bidder_id = 'seat-none'"
                            ).fetchone()[0] == 0
+
+
+class _WatchedHook(ResultsHook):
+    """A real DuckDB results hook that notes the kind of rows each write is handed."""
+
+    def __init__(self, **kw):
+        super().__init__(**kw)
+        self.handed: list[dict[str, str]] = []
+
+    def replace_partition(self, *, experiment_id, ds, tables, window=None):
+        kinds = {dest: type(rows).__name__ for dest, rows in tables.items() if rows is not None}
+        kinds.update({f"window:{dest}": type(rows).__name__ for dest, rows in (window.tables if window else {}).items()})
+        self.handed.append(kinds)
+        return super().replace_partition(experiment_id=experiment_id, ds=ds, tables=tables, window=window)
+
+
+def _stored_bidder_rows(hook, exp):
+    with hook.connect(read_only=True) as con:
+        sums = con.execute("select * exclude (computed_at, run_id) from stratum_piece_bidder_sums "
+                           "where experiment_id = ? order by ds, n_bidders, segment nulls first, shard, bidder_id, arm",
+                           [exp.id]).df()
+        totals = con.execute("select * from bidder_window_totals where experiment_id = ? "
+                             "order by segment nulls first, bidder_id", [exp.id]).df()
+    return sums, totals
+
+
+def test_the_write_step_streams_staged_bidder_rows_in_small_batches_to_the_same_rows(lake, tmp_path, monkeypatch):
+    """The write step hands the sink the staged per-bidder files (datasets, never whole tables); with the
+    batch size forced to 50 rows (several batches per table) the stored bidder sums and window totals
+    equal those of a write in one batch, day by day through an extend."""
+    from counterbid.operators import results_schema
+
+    exp = _spec()
+    whole = ResultsHook(database=tmp_path / "whole.duckdb", lock_timeout=5)
+    for day in DAYS[:2]:
+        _run_day(whole, lake, exp, tmp_path / "stage-whole", day, f"r-{day}")
+    monkeypatch.setattr(results_schema, "WRITE_BATCH_ROWS", 50)
+    watched = _WatchedHook(database=tmp_path / "batched.duckdb", lock_timeout=5)
+    for day in DAYS[:2]:
+        _run_day(watched, lake, exp, tmp_path / "stage-batched", day, f"r-{day}")
+    for kinds in watched.handed:
+        assert kinds["stratum_piece_bidder_sums"] == "FileSystemDataset"
+        assert kinds["window:bidder_window_totals"] == "FileSystemDataset"
+    want, got = _stored_bidder_rows(whole, exp), _stored_bidder_rows(watched, exp)
+    assert len(got[0]) > 4 * 50 and len(got[1]) > 50  # several batches of each table
+    for w, g in zip(want, got):
+        pd.testing.assert_frame_equal(g, w)

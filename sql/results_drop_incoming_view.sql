@@ -1,0 +1,2 @@
+-- After the insert: the temporary view over a staged Parquet file that served as `incoming` (DuckDB).
+drop view incoming
