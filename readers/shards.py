@@ -232,16 +232,25 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
         yield shard_folders(Path(tmp) / "day")
 
 
-def _hashed_bidders(bids):
-    """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is."""
-    from .id_hashes import fnv1a_64
-
+def _bidder_codes(bids):
+    """The categorical codes of ``bids``' text bidder ids and the column, or ``None`` (no such column, a null)."""
     col = bids["bidder_id"] if "bidder_id" in bids.columns else None
     if col is None or not isinstance(col.dtype, pd.CategoricalDtype):
         return None
     codes = col.cat.codes.to_numpy()
     if not codes.size or codes.min() < 0:  # nulls: the validation names them
         return None
+    return codes, col
+
+
+def _hashed_bidders(bids):
+    """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is."""
+    from .id_hashes import fnv1a_64
+
+    coded = _bidder_codes(bids)
+    if coded is None:
+        return None
+    codes, col = coded
     return bids.assign(bidder_id=fnv1a_64(pa.array(col.cat.categories, type=pa.large_string()))[codes])
 
 
@@ -251,13 +260,8 @@ def _coded_bidders(bids):
     Within one input the codes label the distinct ids one to one, so an input estimated alone (one
     shard: the whole log) needs neither the text nor a hash; no Python string is made per id.
     """
-    col = bids["bidder_id"] if "bidder_id" in bids.columns else None
-    if col is None or not isinstance(col.dtype, pd.CategoricalDtype):
-        return None
-    codes = col.cat.codes.to_numpy()
-    if not codes.size or codes.min() < 0:  # nulls: the validation names them
-        return None
-    return bids.assign(bidder_id=codes)
+    coded = _bidder_codes(bids)
+    return None if coded is None else bids.assign(bidder_id=coded[0])
 
 
 @dataclass(frozen=True)
