@@ -111,12 +111,12 @@ def record_spark_day(spark, lake: LakeHook, *, lake_root: str, experiment: Exper
     InputError
         The day cannot be read, or has no ``experiment_id`` column.
     """
-    from counterbid.readers.spark_lake_day import lake_day_on_spark
+    from counterbid.readers.spark_lake_day import lake_day_files
 
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
     try:
-        day = lake_day_on_spark(spark, lake_root, experiment=experiment, ds=ds)
+        day = lake_day_files(spark, lake_root, experiment=experiment, ds=ds)
     except InputError as exc:
         if _missing(exc):  # late data: retried, and nothing of an earlier try is left
             replace_folder(lambda folder: folder.mkdir(), staged.day)

@@ -44,7 +44,7 @@ def _unchanged_day(task: "SparkEstimateArmsOperator", spark) -> None:
     has no fingerprint: its shards are checked by their bids, as before)."""
     import json
 
-    from counterbid.readers.spark_lake_day import lake_day_on_spark
+    from counterbid.readers.spark_lake_day import lake_day_files
 
     from .spark_checks import SPARK_DAY, changed_files
 
@@ -56,7 +56,7 @@ def _unchanged_day(task: "SparkEstimateArmsOperator", spark) -> None:
     if manifest.get("engine") != SPARK_DAY:
         return
     try:
-        found = lake_day_on_spark(spark, task.lake_root, experiment=experiment, ds=day).fingerprint()
+        found = lake_day_files(spark, task.lake_root, experiment=experiment, ds=day).fingerprint()
     except InputError as exc:
         raise AirflowFailException(str(exc)) from None
     change = changed_files(manifest["files"], found)

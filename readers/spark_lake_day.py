@@ -17,7 +17,7 @@ from counterbid.sql import statement
 
 from .spark_shards import _analysis_error, _as_engine_failure, _is_read_failure, lake_day_frame
 
-__all__ = ["DAY_FILES_STATEMENT_PARAMETERS", "DayFile", "LakeDay", "lake_day_on_spark"]
+__all__ = ["DAY_FILES_STATEMENT_PARAMETERS", "DayFile", "LakeDay", "lake_day_files"]
 
 #: The statement this module runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
 DAY_FILES_STATEMENT_PARAMETERS = {"spark_lake_day_files": frozenset({"experiment_id"})}
@@ -62,7 +62,7 @@ class LakeDay:
         return [asdict(f) for f in self.files]
 
 
-def lake_day_on_spark(spark, lake_root: str, *, experiment: Experiment, ds, source: str | None = None) -> LakeDay:
+def lake_day_files(spark, lake_root: str, *, experiment: Experiment, ds, source: str | None = None) -> LakeDay:
     """The fingerprint and column types of one experiment's day of the Hive-partitioned lake, read on Spark.
 
     Parameters

@@ -120,9 +120,9 @@ def one_step(step: str, engine: str, lake: Path, spec: Path, work: Path) -> dict
     elif step == "estimate":
         if spark is not None:
             from counterbid.operators.spark_checks import changed_files, read_spark_day
-            from counterbid.readers.spark_lake_day import lake_day_on_spark
+            from counterbid.readers.spark_lake_day import lake_day_files
 
-            found = lake_day_on_spark(spark, str(lake), experiment=exp, ds=DAY).fingerprint()
+            found = lake_day_files(spark, str(lake), experiment=exp, ds=DAY).fingerprint()
             assert changed_files(read_spark_day(staged)["files"], found) is None
         partition.estimate_partition(hook, experiment=exp, ds=DAY, staging_root=staging, run_id="bench",
                                      confidence_level=0.95, cluster="auto", spark=spark,

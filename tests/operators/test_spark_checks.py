@@ -25,7 +25,7 @@ from counterbid.operators.schema_gate import schema_gate  # noqa: E402
 from counterbid.operators.spark_checks import (SparkGateInputs, changed_files, gate_checks,  # noqa: E402
                                                read_spark_day, record_spark_day, run_spark_partition_checks)
 from counterbid.operators.staging import StagedPartition  # noqa: E402
-from counterbid.readers.spark_lake_day import lake_day_on_spark  # noqa: E402
+from counterbid.readers.spark_lake_day import lake_day_files  # noqa: E402
 from counterbid.readers.spark_shards import lake_day_frame  # noqa: E402
 
 pytestmark = pytest.mark.spark
@@ -132,8 +132,8 @@ def test_a_missing_partition_is_late_data_and_a_changed_day_is_seen(spark, lake,
                            staging_root=str(tmp_path / "stage"))
     recorded = read_spark_day(StagedPartition.at(tmp_path / "stage", EXP.id, DAY))["files"]
     assert out["day_bids"] == sum(f["experiment_rows"] for f in recorded) == 4800
-    assert changed_files(recorded, lake_day_on_spark(spark, str(lake), experiment=EXP, ds=DAY).fingerprint()) is None
+    assert changed_files(recorded, lake_day_files(spark, str(lake), experiment=EXP, ds=DAY).fingerprint()) is None
     first = next((lake / f"ds={DAY}").glob("*.parquet"))
     pd.read_parquet(first).head(8).to_parquet(first.with_name("late-part.parquet"), index=False)
-    change = changed_files(recorded, lake_day_on_spark(spark, str(lake), experiment=EXP, ds=DAY).fingerprint())
+    change = changed_files(recorded, lake_day_files(spark, str(lake), experiment=EXP, ds=DAY).fingerprint())
     assert change is not None and change.startswith("1 file(s) added") and "late-part.parquet" in change
