@@ -21,7 +21,7 @@ import pyarrow.dataset as pads
 from counterbid.estimators.bid_contract import BID_CONTRACT, INTEGER_RANGE, ColumnRule
 from counterbid.estimators.errors import InputError
 
-__all__ = ["BATCH_ROWS", "arrow_kind", "bids_from_arrow", "read_bids", "run_codes"]
+__all__ = ["BATCH_ROWS", "arrow_kind", "bids_from_arrow", "read_bids"]
 
 #: Rows converted at a time; the frame's columns are filled in place, batch by batch.
 BATCH_ROWS = 2**20
@@ -331,17 +331,7 @@ class _Column:
             self.chunks.append(array)
 
     def _encoded(self) -> pd.Categorical:
-        """Plain strings: Arrow's ``dictionary_encode`` of the whole column (one hash table, one dictionary).
-
-        A column written in runs (a log written auction by auction holds each auction id in one run
-        of rows) is coded from its runs instead (:func:`run_codes`): the same codes and dictionary,
-        with only the runs' first values hashed.
-        """
-        runs = run_codes(pa.chunked_array(self.chunks, type=self.chunks[0].type))
-        if runs is not None:
-            self.chunks.clear()
-            codes, words = runs
-            return _from_unique_codes(codes, pd.Index(words.to_pandas(), copy=False))
+        """Plain strings: Arrow's ``dictionary_encode`` of the whole column (one hash table, one dictionary)."""
         encoded = pc.dictionary_encode(pa.chunked_array(self.chunks))
         self.chunks.clear()
         words = encoded.chunk(0).dictionary if encoded.num_chunks else pa.array([], pa.string())
@@ -381,58 +371,6 @@ class _Column:
         if self.values is None:  # no rows reached this column
             self.values = np.zeros(self.n_rows, dtype=np.int8)
         return self.values if self.mask is None else pd.arrays.IntegerArray(self.values, self.mask)
-
-
-#: Run coding is tried when the runs of the column's first :data:`HEAD_ROWS` rows average at least
-#: this many rows (ids that change on almost every row -- bidder ids -- go straight to ``dictionary_encode``).
-MIN_ROWS_PER_RUN = 2
-HEAD_ROWS = 4096
-
-
-def run_codes(strings: pa.ChunkedArray) -> tuple[np.ndarray, pa.Array] | None:
-    """Codes and dictionary of a text column in which every distinct value fills one run of rows, else ``None``.
-
-    ``pc.dictionary_encode`` codes values in order of first appearance. When each value occupies
-    one run of consecutive rows, the runs' first values are the dictionary (in that order) and a
-    row's code is the number of runs before its own: a comparison of neighbouring rows and one
-    running sum, with only the runs' values hashed (to check that no value comes back after a
-    run of another). ``None`` -- the caller encodes as usual -- when the column holds a null,
-    when a value comes back, or when the first rows change value on most rows.
-
-    Parameters
-    ----------
-    strings : pyarrow.ChunkedArray of string or large_string
-
-    Returns
-    -------
-    (codes, dictionary) or None
-        ``codes``: int8..int64 (the narrowest holding the runs), as ``dictionary_encode``'s indices;
-        ``dictionary``: the distinct values in order of first appearance.
-    """
-    n = len(strings)
-    if n < 2 or strings.null_count or not (pa.types.is_string(strings.type) or pa.types.is_large_string(strings.type)):
-        return None
-    head = strings.slice(0, HEAD_ROWS).combine_chunks()
-    if int(pc.sum(pc.not_equal(head[1:], head[:-1])).as_py() or 0) + 1 > len(head) / MIN_ROWS_PER_RUN:
-        return None  # most neighbouring rows differ: not a column written in runs
-    chunks = [c for c in strings.chunks if len(c)]
-    change = np.empty(n - 1, dtype=bool)  # change[i]: row i + 1 starts a run
-    at, previous = 0, None
-    for chunk in chunks:  # chunk by chunk: no copy of the column's strings
-        if previous is not None:
-            change[at - 1] = previous != chunk[0].as_py()
-        if len(chunk) > 1:
-            change[at:at + len(chunk) - 1] = pc.not_equal(chunk[1:], chunk[:-1]).to_numpy(zero_copy_only=False)
-        at += len(chunk)
-        previous = chunk[len(chunk) - 1].as_py()
-    starts = np.concatenate([[0], np.flatnonzero(change) + 1])
-    words = pc.take(strings, pa.array(starts)).combine_chunks()
-    if pc.count_distinct(words).as_py() != len(words):  # some value comes back in a later run
-        return None
-    codes = np.empty(n, dtype=_narrowest(-1, len(words)))
-    codes[0] = 0
-    np.cumsum(change, out=codes[1:])
-    return codes, words
 
 
 def _from_unique_codes(codes: np.ndarray, categories: pd.Index) -> pd.Categorical:

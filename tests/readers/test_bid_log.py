@@ -7,7 +7,6 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
@@ -98,55 +97,3 @@ def test_a_file_inside_a_key_value_folder_keeps_its_own_columns(tmp_path):
     pq.write_table(table, folder / "day.parquet")
     frame = io.read_bids(folder / "day.parquet")
     assert pd.Timestamp(frame["ds"].iloc[0]).date() == dt.date(2026, 3, 2)
-
-
-def _plain_codes(strings: pa.ChunkedArray):
-    """The plain route: Arrow's dictionary_encode of the whole column (codes, dictionary)."""
-    encoded = pc.dictionary_encode(strings)
-    codes = np.concatenate([c.indices.fill_null(-1).to_numpy(zero_copy_only=False) for c in encoded.chunks])
-    return codes, encoded.chunk(0).dictionary.to_pylist()
-
-
-def _lot_numbers(n_lots, seed):
-    """Text ids in runs of 1..7 rows, each id in one run only, as a log written lot by lot holds them."""
-    rng = np.random.default_rng(seed)
-    lengths = rng.integers(1, 8, n_lots)
-    labels = rng.permutation(n_lots * 3)[:n_lots]  # distinct, in no order
-    return [f"lot-{v:x}" for v in np.repeat(labels, lengths)]
-
-
-@pytest.mark.parametrize("chunk_rows", [1, 5, 64, 10_000])
-def test_run_codes_are_dictionary_encode_codes(chunk_rows):
-    rows = _lot_numbers(900, 11)
-    strings = pa.chunked_array([pa.array(rows[i:i + chunk_rows]) for i in range(0, len(rows), chunk_rows)])
-    found = io.run_codes(strings)
-    assert found is not None
-    codes, words = found
-    want_codes, want_words = _plain_codes(strings)
-    np.testing.assert_array_equal(codes, want_codes)
-    assert words.to_pylist() == want_words
-
-
-def test_run_codes_refuse_a_value_that_comes_back_a_null_and_ids_that_change_every_row():
-    rows = _lot_numbers(200, 12)
-    back = rows + [rows[0]]  # the first id again after the others: one run of it is not its only one
-    assert io.run_codes(pa.chunked_array([pa.array(back)])) is None
-    assert io.run_codes(pa.chunked_array([pa.array(rows[:50] + [None] + rows[50:])])) is None
-    every_row = [f"seat-{i}" for i in range(500)]
-    assert io.run_codes(pa.chunked_array([pa.array(every_row)])) is None
-
-
-def test_text_ids_in_runs_read_as_the_plain_encoding_gives(tmp_path, monkeypatch):
-    monkeypatch.setattr(io, "BATCH_ROWS", 333)  # runs cut by batch ends
-    rows = _lot_numbers(1_000, 13)
-    n = len(rows)
-    rng = np.random.default_rng(14)
-    table = pa.table({"auction_id": pa.array(rows), "bidder_id": pa.array([f"seat-{v}" for v in rng.integers(0, 10**6, n)]),
-                      "bid": pa.array(rng.lognormal(0, 0.5, n))})
-    pq.write_table(table, tmp_path / "bids.parquet", row_group_size=400)
-    frame = io.read_bids(tmp_path / "bids.parquet")
-    _same_values(frame, table)
-    for name in ("auction_id", "bidder_id"):
-        codes, words = _plain_codes(table.column(name))
-        np.testing.assert_array_equal(frame[name].cat.codes.to_numpy(), codes)
-        assert list(frame[name].cat.categories) == words
