@@ -8,6 +8,7 @@ stays out while the log is one shard (it computes the shard hash only when there
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 
@@ -28,7 +29,8 @@ PROBE = """
 import json, sys
 from counterbid.cli import main
 code = main(sys.argv[1:])
-print(json.dumps({"code": code, "modules": sorted(sys.modules)}))
+pool = sys.modules["pyarrow"].default_memory_pool().backend_name if "pyarrow" in sys.modules else None
+print(json.dumps({"code": code, "modules": sorted(sys.modules), "pool": pool}))
 """
 
 NEVER = ("scipy.stats", "scipy.optimize", "scipy.interpolate", "airflow", "counterbid.operators",
@@ -48,8 +50,8 @@ def small_log(tmp_path):
     return spec, path, len(bids)
 
 
-def _loaded(*argv) -> dict:
-    proc = subprocess.run([sys.executable, "-c", PROBE, *argv], capture_output=True, text=True, timeout=300)
+def _loaded(*argv, env=None) -> dict:
+    proc = subprocess.run([sys.executable, "-c", PROBE, *argv], capture_output=True, text=True, timeout=300, env=env)
     assert proc.returncode == 0, proc.stderr
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
@@ -65,3 +67,14 @@ def test_estimate_loads_no_module_it_does_not_use(small_log, shards):
     loaded = sorted(m for m in modules if any(m == name or m.startswith(name + ".") for name in NEVER))
     assert loaded == []
     assert ("duckdb" in modules) == (shards > 1)
+
+
+@pytest.mark.parametrize("asked", [None, "mimalloc"])
+def test_estimate_reads_with_the_c_library_allocator_unless_told(small_log, asked):
+    spec, path, _ = small_log
+    env = {k: v for k, v in os.environ.items() if k != "ARROW_DEFAULT_MEMORY_POOL"}
+    if asked:
+        env["ARROW_DEFAULT_MEMORY_POOL"] = asked
+    found = _loaded("estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv", env=env)
+    assert found["code"] == 0
+    assert found["pool"] == (asked or "system")
