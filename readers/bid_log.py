@@ -21,7 +21,7 @@ import pyarrow.dataset as pads
 from counterbid.estimators.bid_contract import BID_CONTRACT, INTEGER_RANGE, ColumnRule
 from counterbid.estimators.errors import InputError
 
-__all__ = ["BATCH_ROWS", "arrow_kind", "bids_from_arrow", "read_bids"]
+__all__ = ["BATCH_ROWS", "arrow_kind", "bids_from_arrow", "read_bids", "text_identity_columns"]
 
 #: Rows converted at a time; the frame's columns are filled in place, batch by batch.
 BATCH_ROWS = 2**20
@@ -148,6 +148,21 @@ def read_bids(path: str | Path, columns: list[str] | None = None, *, source: str
 #: dictionary-encoded once over the whole column, which costs less than unifying every row group's
 #: dictionary when most values are distinct.
 IDENTITY_COLUMNS = ("auction_id", "bidder_id")
+
+
+def text_identity_columns(path: str | Path) -> list[str]:
+    """The identity columns (:data:`IDENTITY_COLUMNS`) a bid log stores as text, from its schema only.
+
+    These are the columns :func:`read_bids` dictionary-encodes over the whole column (one Arrow hash
+    table each); an unreadable or missing log gives ``[]`` (reading it names the fault).
+    """
+    path = Path(path)
+    try:
+        schema = pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None).schema
+    except (pa.ArrowInvalid, pa.ArrowIOError, OSError, ValueError):
+        return []
+    return [n for n in IDENTITY_COLUMNS if n in schema.names and arrow_kind(schema.field(n).type) == "text"
+            and not pa.types.is_dictionary(schema.field(n).type)]
 
 
 def _label_columns(schema: pa.Schema, wanted: list[str]) -> list[str]:

@@ -70,11 +70,20 @@ def test_estimate_loads_no_module_it_does_not_use(small_log, shards):
 
 
 @pytest.mark.parametrize("asked", [None, "mimalloc"])
-def test_estimate_reads_with_the_c_library_allocator_unless_told(small_log, asked):
+@pytest.mark.parametrize("text_ids", [True, False])
+def test_text_ids_are_read_with_the_c_library_allocator_unless_told(small_log, tmp_path, asked, text_ids):
     spec, path, _ = small_log
+    if not text_ids:  # the same log with integer bidder ids: Arrow's default pool stays
+        import pandas as pd
+
+        bids = pd.read_parquet(path)
+        bids["bidder_id"] = bids["bidder_id"].str.removeprefix("seat-").astype("int64")
+        path = tmp_path / "integer_ids.parquet"
+        bids.to_parquet(path, index=False)
     env = {k: v for k, v in os.environ.items() if k != "ARROW_DEFAULT_MEMORY_POOL"}
     if asked:
         env["ARROW_DEFAULT_MEMORY_POOL"] = asked
     found = _loaded("estimate", "--bids", str(path), "--experiment", str(spec), "--format", "csv", env=env)
     assert found["code"] == 0
-    assert found["pool"] == (asked or "system")
+    default = __import__("pyarrow").default_memory_pool().backend_name  # Arrow's own choice
+    assert found["pool"] == (asked or ("system" if text_ids else default))

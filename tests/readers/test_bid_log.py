@@ -7,6 +7,7 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
@@ -97,3 +98,14 @@ def test_a_file_inside_a_key_value_folder_keeps_its_own_columns(tmp_path):
     pq.write_table(table, folder / "day.parquet")
     frame = io.read_bids(folder / "day.parquet")
     assert pd.Timestamp(frame["ds"].iloc[0]).date() == dt.date(2026, 3, 2)
+
+
+def test_text_identity_columns_from_the_schema(tmp_path):
+    table = pa.table({"auction_id": pa.array([7, 7, 9], pa.int64()), "bidder_id": pa.array(["kiosk-a", "kiosk-b", "kiosk-a"]),
+                      "arm": pa.array(["wide", "wide", "five"]), "bid": pa.array([1.0, 2.0, 3.0])})
+    pq.write_table(table, tmp_path / "text.parquet")
+    assert io.text_identity_columns(tmp_path / "text.parquet") == ["bidder_id"]
+    coded = table.set_column(1, "bidder_id", pc.dictionary_encode(table.column("bidder_id")))
+    pq.write_table(coded, tmp_path / "coded.parquet", store_schema=True)
+    assert io.text_identity_columns(tmp_path / "coded.parquet") == []  # stored as a dictionary: no whole-column encoding
+    assert io.text_identity_columns(tmp_path / "missing.parquet") == []
