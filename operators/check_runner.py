@@ -334,8 +334,9 @@ def frame_of(table: pa.Table) -> pd.DataFrame:
 
 def _categorical(column: pa.ChunkedArray) -> pd.Categorical:
     """One dictionary column as a pandas Categorical: codes from the indices (null: -1), categories the dictionary."""
-    if column.num_chunks == 0 or len(column.chunk(0).dictionary) == 0:  # nothing to hash: Arrow's own conversion
-        return column.to_pandas().array
+    first = column.chunk(0).dictionary if column.num_chunks else None
+    if first is None or len(first) == 0 or any(c.dictionary.null_count for c in column.chunks):
+        return column.to_pandas().array  # nothing to hash, or a null category pandas refuses: Arrow's own conversion
     merged = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
     categories = pd.Index(merged.dictionary.to_pandas())
     dtype = pd.CategoricalDtype._from_fastpath(categories, bool(column.type.ordered))

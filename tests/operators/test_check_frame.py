@@ -55,6 +55,14 @@ def test_frame_of_an_empty_dictionary_column():
     _same(frame_of(empty), empty.to_pandas())
 
 
+def test_frame_of_refuses_a_null_category_as_arrow_does():
+    column = pa.DictionaryArray.from_arrays(pa.array([0, 1, 0], pa.int32()), pa.array(["kiln", None]))
+    with pytest.raises(ValueError, match="categories cannot be null"):
+        pa.table({"arm": column}).to_pandas()
+    with pytest.raises(ValueError, match="categories cannot be null"):
+        frame_of(pa.table({"arm": column}))
+
+
 def test_checks_frame_from_duckdb_equals_arrows_conversion(tmp_path):
     """The checks' frame of a real DuckDB relation, fetched in several batches, as to_pandas would build it."""
     rng = np.random.default_rng(11)
