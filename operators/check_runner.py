@@ -28,7 +28,7 @@ from counterbid.sql import render_sql, validate_identifier
 from .contract import run_contract, with_quality
 from .results_schema import as_session, migrate
 
-__all__ = ["day_bid_quantiles", "read_check_results", "run_checks", "write_check_results"]
+__all__ = ["day_bid_quantiles", "frame_of", "read_check_results", "run_checks", "write_check_results"]
 
 log = logging.getLogger(__name__)
 
@@ -309,11 +309,42 @@ def _bids_frame(con, statement: str, params: Mapping[str, Any] | None = None, *,
     else:
         table = pa.Table.from_batches(batches).unify_dictionaries()
     del batches
-    # each Arrow column is released as soon as pandas holds it (one copy of the frame at a time)
-    frame = table.to_pandas(self_destruct=True, split_blocks=True)
+    frame = frame_of(table)
     del table
     pa.default_memory_pool().release_unused()  # hand the Arrow buffers back before the checks allocate theirs
     return frame
+
+
+def frame_of(table: pa.Table) -> pd.DataFrame:
+    """``table.to_pandas()`` with its dictionary columns as categoricals built straight from the dictionary.
+
+    Arrow's conversion checks that each dictionary's values are distinct (a hash of every text
+    value: about 1 s for a 1M-bid day's bidder ids) and copies them; an Arrow dictionary, unified
+    across batches, is distinct by construction, so the categories are taken as they are (sharing
+    Arrow's buffers, as do the codes). The same frame, values, dtypes and codes
+    (tests/operators/test_check_frame.py checks it against ``to_pandas``); other columns convert as
+    ``to_pandas`` converts them.
+    """
+    columns = {}
+    for name, column in zip(table.schema.names, table.columns):
+        columns[name] = (_categorical(column) if pa.types.is_dictionary(column.type)
+                         else column.to_pandas())
+    return pd.DataFrame(columns, index=pd.RangeIndex(table.num_rows))
+
+
+def _categorical(column: pa.ChunkedArray) -> pd.Categorical:
+    """One dictionary column as a pandas Categorical: codes from the indices (null: -1), categories the dictionary."""
+    first = column.chunk(0).dictionary if column.num_chunks else None
+    if first is None or len(first) == 0 or any(c.dictionary.null_count for c in column.chunks):
+        return column.to_pandas().array  # nothing to hash, or a null category pandas refuses: Arrow's own conversion
+    merged = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
+    categories = pd.Index(merged.dictionary.to_pandas())
+    dtype = pd.CategoricalDtype._from_fastpath(categories, bool(column.type.ordered))
+    indices = merged.indices.fill_null(-1) if merged.indices.null_count else merged.indices
+    codes = indices.to_numpy(zero_copy_only=False)
+    if not codes.flags.writeable:  # a view of Arrow's buffer: pandas may write to its codes
+        codes = codes.copy()
+    return pd.Categorical.from_codes(codes, dtype=dtype, validate=False)
 
 
 def write_check_results(

@@ -98,6 +98,9 @@ def _gx():
         stand_ins = {} if "pyspark" in sys.modules else {"pyspark": None}  # `import pyspark` raises ImportError
         stand_ins |= {name: _NotLoaded(name) for name in UNUSED_BY_CONTRACT if name not in sys.modules}
         sys.modules.update(stand_ins)
+        # GE's import logs one INFO line per API function it skips documenting (about 150 lines in every
+        # validate task's log, each a record through Airflow's log pipeline): its warnings still show.
+        logging.getLogger("great_expectations._docs_decorators").setLevel(logging.WARNING)
         try:
             import great_expectations  # noqa: F401
         finally:

@@ -51,8 +51,8 @@ from .shard_step import estimate_shard, shard_task_pieces
 from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, pieces_with_staged_sums, staged_shards
 from .staging import StagedPartition, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
-from .results_schema import staged_rows
-from .window_state import PIECE_TABLES, load_window_write, stage_window_write, to_date_inputs
+from .window_state import PIECE_TABLES, stage_window_write, to_date_inputs
+from .write_step import write_partition
 
 __all__ = [
     "MissingPartitionError",
@@ -491,41 +491,3 @@ def _pending_rows(day: pd.DataFrame, window, status: str) -> pd.DataFrame:
     rows["n_days_left_out"] = len(window.left_out)
     rows["anytime_horizon_auctions"] = pd.array([None] * len(rows), dtype="Int64")
     return rows
-
-
-def write_partition(
-    hook: ResultsHook, *, experiment_id: str, ds: dt.date, staging_root: str | Path, cleanup: bool = True
-) -> dict[str, int]:
-    """Replace the (experiment, day)'s rows of every results table in one transaction.
-
-    The day's estimates, its experiment-to-date estimates (none when every day so far is left
-    out of the window: rows without numbers saying why), position weights, stratum pieces and bid-quantile summary.
-
-    Returns
-    -------
-    dict of str to int
-        Rows written per table.
-    """
-    staged = StagedPartition.at(staging_root, experiment_id, ds)
-    tables: dict[str, pa.Table] = {
-        "arm_estimates": pq.read_table(staged.require(staged.estimates_day, step="estimate")),
-        "position_weights": pq.read_table(staged.require(staged.weights, step="estimate")),
-    }
-    for table in PIECE_TABLES.values():  # the per-bidder rows among them: streamed from the file, never read whole
-        tables[table] = staged_rows(staged.require(staged.folder / f"{table}.parquet", step="estimate"))
-    # optional: absent when every day so far is left out / when the validate step stopped early
-    tables["arm_estimates_to_date"] = (pq.read_table(staged.estimates_to_date) if staged.estimates_to_date.exists()
-                                       else None)
-    tables["bid_quantiles"] = None
-    if staged.bid_quantiles.exists():  # staged by 'validate'; stamped with the estimate's provenance
-        quantiles, day = pq.read_table(staged.bid_quantiles), tables["arm_estimates"]
-        for name in ("run_id", "computed_at"):
-            value = day.column(name)[0] if day.num_rows else None
-            quantiles = quantiles.append_column(name, pa.array([value.as_py() if value is not None else None] * quantiles.num_rows,
-                                                               type=day.schema.field(name).type))
-        tables["bid_quantiles"] = quantiles
-    counts = hook.replace_partition(experiment_id=experiment_id, ds=ds, tables=tables,
-                                    window=load_window_write(staged.folder))
-    if cleanup:
-        shutil.rmtree(staged.folder, ignore_errors=True)
-    return counts

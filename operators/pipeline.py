@@ -371,7 +371,9 @@ class WriteEstimatesOperator(_PartitionOperator):
         self.cleanup = bool(cleanup)
 
     def execute(self, context) -> dict:
-        counts = _partition().write_partition(self.hook(), experiment_id=self.experiment_id, ds=self.day(),
-                                           staging_root=self.staging_root, cleanup=self.cleanup)
+        from .write_step import write_partition  # not partition: the write task leaves the checks and scipy.stats unloaded
+
+        counts = write_partition(self.hook(), experiment_id=self.experiment_id, ds=self.day(),
+                                 staging_root=self.staging_root, cleanup=self.cleanup)
         log.info("wrote %s for %s on %s", counts, self.experiment_id, self.ds)
         return counts

@@ -171,3 +171,45 @@ print(",".join(m for m in ("counterbid.operators.partition", "counterbid.operato
     assert bids > 0 and shards == 1
     assert sorted(p.name for p in (tmp_path / "stage" / "tiles").glob("ds=*")) == [f"ds={START}"]
     assert loaded == "-"
+
+
+def test_the_write_task_stores_a_day_without_loading_the_checks(tmp_path):
+    # a fresh interpreter, as a task process is: the write operator stores the staged day (every
+    # results table its rows) and leaves the partition steps, the checks and scipy.stats unloaded
+    import subprocess
+    import sys
+
+    from counterbid.operators import partition
+    from counterbid.operators.hooks import ResultsHook
+    from counterbid.operators.lake_hook import LakeHook
+    from counterbid.operators.staging import StagedPartition
+
+    lake, spec, stage, results = tmp_path / "bids", tmp_path / "spec.yaml", tmp_path / "stage", tmp_path / "r.duckdb"
+    spec.write_text(SPEC_TEXT)
+    experiment = load_experiments(spec)["tiles"]
+    write_bid_lake(lake, [experiment], start=START, days=1, auctions_per_day=400, n_bidders=3, seed=9)
+    hook = ResultsHook(database=str(results))
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=experiment, ds=START, staging_root=stage)
+    staged = StagedPartition.at(stage, "tiles", START)
+    checks = partition.run_partition_checks(hook, LakeHook(), experiment=experiment, staged=staged, ds=START)
+    partition.record_checks(staged, checks)
+    partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=stage, run_id="w1")
+    probe = f"""
+import json, sys
+from counterbid.operators.pipeline import WriteEstimatesOperator
+op = WriteEstimatesOperator(task_id="write", experiment_id="tiles", spec_path={str(spec)!r},
+                            staging_root={str(stage)!r}, results_database={str(results)!r}, ds="{START}")
+print(json.dumps(op.execute({{}})))
+print(",".join(m for m in ("counterbid.operators.partition", "counterbid.operators.check_runner",
+                           "counterbid.estimators.checks", "scipy.stats") if m in sys.modules) or "-")
+"""
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    counts, loaded = done.stdout.split("\n")[-3:-1]
+    counts = json.loads(counts)
+    with duckdb.connect(str(results), read_only=True) as con:
+        for table in ("arm_estimates", "stratum_pieces", "stratum_piece_bidder_sums", "bid_quantiles"):
+            stored = con.execute(f"select count(*) from {table} where experiment_id = 'tiles'").fetchone()[0]
+            assert stored == counts[table] > 0, table
+    assert not staged.folder.exists()  # cleaned up after the commit
+    assert loaded == "-"
