@@ -44,7 +44,10 @@ demo: $(STAMP)
 # BENCH_ARGS passes options, e.g. BENCH_ARGS='--data /tmp/bench --sizes 1,10 --skip cli_spark,cli_spark_text'
 # (rows: floor,input,cli,cli_text,cli_spark,cli_spark_text,estimate,sql_realized,pandas,dag,compare).
 BENCH_ARGS ?=
+# The package is byte-compiled first, as an installed wheel is (under PYTHONDONTWRITEBYTECODE every
+# command would otherwise compile counterbid's modules again at its start).
 bench: $(STAMP) $(JAVA_HOME_FILE)
+	$(PY) -m compileall -q estimators readers operators cli
 	JAVA_HOME=$$(cat $(JAVA_HOME_FILE)) $(PY) tests/benchmarks/bench_estimator.py --out bench_results.md $(BENCH_ARGS)
 
 bench-strata: $(STAMP)
