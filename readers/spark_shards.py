@@ -50,6 +50,7 @@ from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .shards import ShardPieces
+from .spark_label_codes import coded_label_columns, decoded_labels, listed_words
 from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_grams, partition_gram
 from .shards import max_bids_per_shard as _max_bids_setting
 
@@ -367,7 +368,7 @@ def _shard_names(several: bool):
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
-                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None) -> pa.Table:
+                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None, coded=None) -> pa.Table:
     """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too.
 
     With ``sums_apart``, pieces that carry bidder sums travel without them and the shard's
@@ -385,6 +386,8 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     if (order[1:] < order[:-1]).any():  # Spark grouped the rows by shard only: read order here (a copy)
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
+    if coded:
+        table = decoded_labels(table, coded)
     n_bids = table.num_rows
     error, pieces, excluded, caught_messages, single_bidders = None, [], 0, [], False
     try:
@@ -538,10 +541,12 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
+    # the text labels (arm, experiment id) cross the shuffle as codes of the experiment's words
+    selected, coded = coded_label_columns(sharded, columns, listed_words(experiment))
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
-                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink)
+                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink, coded=coded)
 
     collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
 
@@ -555,7 +560,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         # one task per shard, each shard in a partition of its own (_partition_key): no sort and no
         # grouping in Spark; the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
-        parts = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
+        parts = sharded.select(*selected, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
         with _quiet_pyspark():
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver

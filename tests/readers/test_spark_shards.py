@@ -211,8 +211,8 @@ def _later_shard_row(bids: pd.DataFrame, n_shards: int) -> tuple[int, int]:
     return int(np.flatnonzero(shard == k)[shard.tolist().count(k) // 2]), k
 
 
-@pytest.mark.parametrize("kind", ["negative bid", "NaN bid", "duplicate bidder", "unknown arm", "no arm column",
-                                  "position as text", "negative bid, one shard of three holds every auction"])
+@pytest.mark.parametrize("kind", ["negative bid", "NaN bid", "duplicate bidder", "unknown arm", "null arm",
+                                  "no arm column", "position as text", "negative bid, one shard of three holds every auction"])
 def test_bad_rows_give_the_local_line(spark, tmp_path, kind):
     bids = _log(1000, rng=3)
     row, k = _later_shard_row(bids, 3)
@@ -234,6 +234,9 @@ def test_bad_rows_give_the_local_line(spark, tmp_path, kind):
         bids.loc[row, "bidder_id"] = bids.loc[same, "bidder_id"]
     elif kind == "unknown arm":
         bids.loc[bids["auction_id"] == bids.loc[row, "auction_id"], "arm"] = "sideways"
+    elif kind == "null arm":  # neither a listed arm name nor an unlisted text: no code and no text on Spark
+        bids["arm"] = bids["arm"].astype(object)
+        bids.loc[row, "arm"] = None
     elif kind == "no arm column":
         bids = bids.drop(columns=["arm"])
     elif kind == "position as text":
