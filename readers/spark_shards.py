@@ -278,6 +278,7 @@ def _quiet_pyspark():
 #: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
 STATEMENT_PARAMETERS = {
     "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
+    "spark_bids_with_shard_one_file": frozenset({"n_shards"}),
     "spark_shard_partition_keys": frozenset({"candidates", "n_shards"}),
     "spark_lake_partition": frozenset({"ds", "experiment_id"}),
 }
@@ -300,12 +301,18 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     are read). The read-order key ranks each row by its file's path, then by its row in the file:
     the order in which the local engine reads the same input (Arrow lists a folder's files by their
     whole path; DuckDB's glob of a split log does too while the files sit at one depth under
-    folders whose names sort alike either way, the usual ``key=value/part-N`` layout).
+    folders whose names sort alike either way, the usual ``key=value/part-N`` layout). An input
+    of one file needs no ranking: its key is the row (``sql/spark_bids_with_shard_one_file.spark.sql``,
+    which neither reads the file's name per row nor joins on it).
     """
     try:
         # a staged day's shard=K folders give a `shard` column: recomputed here
         bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)
-        spark.createDataFrame(_ranked_files(bids), "bid_file string, file_rank long").createOrReplaceTempView(_FILES_VIEW)
+        ranked = _ranked_files(bids)
+        if len({rank for _, rank in ranked}) == 1:
+            sharded = _run_sql(spark, "spark_bids_with_shard_one_file", n_shards=int(shards))
+            return sharded.drop("bid_file", "bid_row")
+        spark.createDataFrame(ranked, "bid_file string, file_rank long").createOrReplaceTempView(_FILES_VIEW)
         sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
     except Exception as exc:  # AnalysisException of the statement, or py4j's wrapper of Spark's error
