@@ -428,7 +428,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
         "with_sums": pa.array([with_sums], pa.bool_()),
-        "bidder_id": pa.nulls(1, pa.string()), "bidder_segment": pa.nulls(1, pa.string()),
+        "bidder_key": pa.nulls(1, pa.int64()), "bidder_segment": pa.nulls(1, pa.string()),
         "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
     }, schema=schema)
     return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
@@ -485,7 +485,7 @@ def _answer_schema(with_gram: bool = False) -> pa.Schema:
     """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
               ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
-              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_id", pa.string()),
+              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_key", pa.int64()),
               ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
     if with_gram:
         fields += [("part_segment", pa.string()), ("part_bidders", pa.int64()), ("part_unit", pa.int32()),
@@ -571,7 +571,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         with _quiet_pyspark():
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
-                out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
+                out = out.repartition(int(shards), "bidder_key").mapInArrow(one_partition, _COLLECTED)
             rows = _collect(out)
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):
