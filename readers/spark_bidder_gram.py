@@ -52,7 +52,9 @@ __all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_keys", "bidder_rows", "bidd
            "ids_text", "partition_gram"]
 
 #: Columns of a shard's per-bidder rows (null on its answer row); ``bidder_segment`` is null unless segmented.
-BIDDER_COLUMNS = "bidder_key long, bidder_segment string, bidder_unit int, bidder_sums array<double>"
+#: ``bidder_sums`` holds a row's ``K + 1`` float64 sums as bytes (little-endian): Spark moves a binary
+#: value as one copy, an array of doubles element by element.
+BIDDER_COLUMNS = "bidder_key long, bidder_segment string, bidder_unit int, bidder_sums binary"
 #: Columns of a partition's Gram rows (null on the answer rows passed through): ``part_segment``
 #: null for the pooled form (every segment together), else the segment label of the form.
 GRAM_COLUMNS = "part_segment string, part_bidders long, part_unit int, part_gram array<double>"
@@ -121,6 +123,28 @@ def bidder_rows(pieces: Sequence[StratumPiece]) -> tuple[np.ndarray, int, np.nda
     return uniques.astype(np.int64), int(unit), sums.T.copy()
 
 
+def _bytes_column(matrix: np.ndarray) -> pa.Array:
+    """Rows of a 2-D float array as an Arrow binary column, each row's values as little-endian float64 bytes."""
+    rows, width = matrix.shape
+    data = np.ascontiguousarray(matrix, dtype="<f8")
+    offsets = np.arange(rows + 1, dtype=np.int32) * (width * 8)
+    return pa.Array.from_buffers(pa.binary(), rows, [None, pa.py_buffer(offsets), pa.py_buffer(data)])
+
+
+def _bytes_rows(column: pa.Array) -> np.ndarray:
+    """The ``(rows, K + 1)`` float64 matrix of a binary column of :func:`_bytes_column` (no nulls; every row one width)."""
+    wide = pa.types.is_large_binary(column.type)
+    offsets = np.frombuffer(column.buffers()[1], dtype=np.int64 if wide else np.int32)
+    offsets = offsets[column.offset:column.offset + len(column) + 1].astype(np.int64)
+    lengths = np.diff(offsets)
+    if len(column) == 0:
+        return np.zeros((0, 0))
+    if not (lengths == lengths[0]).all() or lengths[0] % 8:
+        raise ValueError("bidder sums: the rows do not all hold the same number of float64 values")
+    data = np.frombuffer(column.buffers()[2], dtype=np.uint8)[offsets[0]:offsets[-1]]
+    return data.view("<f8").reshape(len(column), int(lengths[0]) // 8).astype(float)
+
+
 def _list_column(matrix: np.ndarray) -> pa.Array:
     """Rows of a 2-D array as an Arrow list column."""
     rows, width = matrix.shape
@@ -146,7 +170,7 @@ def bidder_table(keys: np.ndarray, unit: int, sums: np.ndarray, shard: int, answ
         elif field.name == "bidder_unit":
             columns["bidder_unit"] = pa.array(np.full(n, unit, dtype=np.int32))
         elif field.name == "bidder_sums":
-            columns["bidder_sums"] = _list_column(sums)
+            columns["bidder_sums"] = _bytes_column(sums)
         else:
             columns[field.name] = pa.nulls(n, field.type)
     return pa.table(columns, schema=answer_schema)
@@ -175,8 +199,7 @@ def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> 
             ids.append(table.column("bidder_key").to_numpy())
             segments.append(table.column("bidder_segment").to_numpy(zero_copy_only=False))
             units.append(table.column("bidder_unit").to_numpy())
-            flat = table.column("bidder_sums").combine_chunks()
-            sums.append(flat.flatten().to_numpy(zero_copy_only=False).reshape(table.num_rows, -1))
+            sums.append(_bytes_rows(table.column("bidder_sums").combine_chunks()))
     if not ids:
         return
     id_of_row, segment_of_row = np.concatenate(ids), np.concatenate(segments)

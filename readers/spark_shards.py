@@ -13,6 +13,10 @@ which combines them (:func:`~counterbid.estimators.combine_pieces`). Inside a sh
 rows keep the order the local engine reads them in (files by path, rows by position), so the
 pieces, the numbers and the row named by an error are the local engine's.
 
+What crosses the shuffle: the contract's columns only, the text labels ``arm`` and
+``experiment_id`` as codes of the experiment's words (:mod:`.spark_label_codes`), decoded in the
+shard's worker; an input of one file is ordered by its row alone (no file name per row).
+
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
 only, plus a copy of it when the rows reach it out of read order (Spark's shuffle delivers them
 in no set order: the worker puts them in read order by their key); the driver holds the pieces (a few
@@ -429,7 +433,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
         "with_sums": pa.array([with_sums], pa.bool_()),
         "bidder_key": pa.nulls(1, pa.int64()), "bidder_segment": pa.nulls(1, pa.string()),
-        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
+        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.binary()),
     }, schema=schema)
     return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
 
@@ -486,7 +490,7 @@ def _answer_schema(with_gram: bool = False) -> pa.Schema:
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
               ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
               ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_key", pa.int64()),
-              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
+              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.binary())]
     if with_gram:
         fields += [("part_segment", pa.string()), ("part_bidders", pa.int64()), ("part_unit", pa.int32()),
                    ("part_gram", pa.list_(pa.float64()))]

@@ -297,3 +297,19 @@ def test_segmented_bidder_clustering_on_spark_equals_the_local_engine(spark, tmp
     assert len(local.table) == len(on_spark.table) and local.table["segment"].notna().any()
     assert list(local.table["segment"].astype(str)) == list(on_spark.table["segment"].astype(str))
     _close(on_spark.table, local.table, 1e-9)
+
+
+def test_sums_as_bytes_come_back_as_the_same_matrix():
+    # the bidder rows' sums travel as one binary value per row; read back from any slice, in either offset width
+    from counterbid.readers.spark_bidder_gram import _bytes_column, _bytes_rows
+
+    sums = np.random.default_rng(3).normal(size=(257, 6)) * np.ldexp(1.0, np.arange(-3, 3))
+    sums[5, 2], sums[9, 0] = -0.0, np.finfo(float).tiny
+    column = _bytes_column(sums)
+    assert column.type == pa.binary() and len(column) == 257
+    np.testing.assert_array_equal(_bytes_rows(column), sums)
+    np.testing.assert_array_equal(_bytes_rows(column.slice(100, 57)), sums[100:157])
+    np.testing.assert_array_equal(_bytes_rows(column.cast(pa.large_binary()).slice(3)), sums[3:])
+    assert column.to_pylist()[7] == sums[7].astype("<f8").tobytes()
+    with pytest.raises(ValueError, match="same number"):
+        _bytes_rows(pa.array([b"\0" * 8, b"\0" * 16], pa.binary()))
