@@ -13,6 +13,10 @@ which combines them (:func:`~counterbid.estimators.combine_pieces`). Inside a sh
 rows keep the order the local engine reads them in (files by path, rows by position), so the
 pieces, the numbers and the row named by an error are the local engine's.
 
+What crosses the shuffle: the contract's columns only, the text labels ``arm`` and
+``experiment_id`` as codes of the experiment's words (:mod:`.spark_label_codes`), decoded in the
+shard's worker; an input of one file is ordered by its row alone (no file name per row).
+
 Memory: a Python worker holds one shard (set by ``max_bids_per_shard``), of the contract's columns
 only, plus a copy of it when the rows reach it out of read order (Spark's shuffle delivers them
 in no set order: the worker puts them in read order by their key); the driver holds the pieces (a few
@@ -50,6 +54,7 @@ from counterbid.estimators.bids import REQUIRED_BID_COLUMNS
 from counterbid.estimators.errors import InputError, NothingToEstimate, no_pieces_error
 
 from .shards import ShardPieces
+from .spark_label_codes import coded_label_columns, decoded_labels, listed_words
 from .spark_bidder_gram import BIDDER_COLUMNS, GRAM_COLUMNS, bidder_rows, bidder_table, combined_grams, partition_gram
 from .shards import max_bids_per_shard as _max_bids_setting
 
@@ -277,6 +282,7 @@ def _quiet_pyspark():
 #: Every statement the engine runs (``sql/<name>.spark.sql``) and the ``:name`` parameters it binds.
 STATEMENT_PARAMETERS = {
     "spark_bids_with_shard": frozenset({"n_shards", "row_bits"}),
+    "spark_bids_with_shard_one_file": frozenset({"n_shards"}),
     "spark_shard_partition_keys": frozenset({"candidates", "n_shards"}),
     "spark_lake_partition": frozenset({"ds", "experiment_id"}),
 }
@@ -299,12 +305,18 @@ def _with_shards(spark, bids, *, shards: int, source: str):
     are read). The read-order key ranks each row by its file's path, then by its row in the file:
     the order in which the local engine reads the same input (Arrow lists a folder's files by their
     whole path; DuckDB's glob of a split log does too while the files sit at one depth under
-    folders whose names sort alike either way, the usual ``key=value/part-N`` layout).
+    folders whose names sort alike either way, the usual ``key=value/part-N`` layout). An input
+    of one file needs no ranking: its key is the row (``sql/spark_bids_with_shard_one_file.spark.sql``,
+    which neither reads the file's name per row nor joins on it).
     """
     try:
         # a staged day's shard=K folders give a `shard` column: recomputed here
         bids.drop("shard", "bid_order").createOrReplaceTempView(_BIDS_VIEW)
-        spark.createDataFrame(_ranked_files(bids), "bid_file string, file_rank long").createOrReplaceTempView(_FILES_VIEW)
+        ranked = _ranked_files(bids)
+        if len({rank for _, rank in ranked}) == 1:
+            sharded = _run_sql(spark, "spark_bids_with_shard_one_file", n_shards=int(shards))
+            return sharded.drop("bid_file", "bid_row")
+        spark.createDataFrame(ranked, "bid_file string, file_rank long").createOrReplaceTempView(_FILES_VIEW)
         sharded = _run_sql(spark, "spark_bids_with_shard", n_shards=int(shards), row_bits=_ROW_BITS)
         return sharded.drop("bid_file", "bid_row")
     except Exception as exc:  # AnalysisException of the statement, or py4j's wrapper of Spark's error
@@ -367,7 +379,7 @@ def _shard_names(several: bool):
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
-                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None) -> pa.Table:
+                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None, coded=None) -> pa.Table:
     """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too.
 
     With ``sums_apart``, pieces that carry bidder sums travel without them and the shard's
@@ -385,6 +397,8 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     if (order[1:] < order[:-1]).any():  # Spark grouped the rows by shard only: read order here (a copy)
         table = table.take(pc.sort_indices(table.column("bid_order")))
     del order
+    if coded:
+        table = decoded_labels(table, coded)
     n_bids = table.num_rows
     error, pieces, excluded, caught_messages, single_bidders = None, [], 0, [], False
     try:
@@ -418,8 +432,8 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
         "with_sums": pa.array([with_sums], pa.bool_()),
-        "bidder_id": pa.nulls(1, pa.string()), "bidder_segment": pa.nulls(1, pa.string()),
-        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.list_(pa.float64())),
+        "bidder_key": pa.nulls(1, pa.int64()), "bidder_segment": pa.nulls(1, pa.string()),
+        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.binary()),
     }, schema=schema)
     return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
 
@@ -475,8 +489,8 @@ def _answer_schema(with_gram: bool = False) -> pa.Schema:
     """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
               ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
-              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_id", pa.string()),
-              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.list_(pa.float64()))]
+              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_key", pa.int64()),
+              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.binary())]
     if with_gram:
         fields += [("part_segment", pa.string()), ("part_bidders", pa.int64()), ("part_unit", pa.int32()),
                    ("part_gram", pa.list_(pa.float64()))]
@@ -538,10 +552,12 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         raise InputError(f"{source}: column 'auction_id' is missing (required: {', '.join(REQUIRED_BID_COLUMNS)})")
     sharded = _with_shards(spark, bids, shards=shards, source=source)
     multi = shards > 1
+    # the text labels (arm, experiment id) cross the shuffle as codes of the experiment's words
+    selected, coded = coded_label_columns(sharded, columns, listed_words(experiment))
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
-                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink)
+                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink, coded=coded)
 
     collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
 
@@ -555,11 +571,11 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         # one task per shard, each shard in a partition of its own (_partition_key): no sort and no
         # grouping in Spark; the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
-        parts = sharded.select(*columns, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
+        parts = sharded.select(*selected, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
         with _quiet_pyspark():
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
             if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
-                out = out.repartition(int(shards), "bidder_id").mapInArrow(one_partition, _COLLECTED)
+                out = out.repartition(int(shards), "bidder_key").mapInArrow(one_partition, _COLLECTED)
             rows = _collect(out)
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):

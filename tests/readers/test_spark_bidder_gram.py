@@ -18,7 +18,6 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
-import zlib
 
 import numpy as np
 import pandas as pd
@@ -27,9 +26,14 @@ import pytest
 import scipy.stats as st
 import yaml
 
-from counterbid.estimators import bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_experiment
+from counterbid.estimators import (
+    bidder_totals, combine_pieces, gram_of, parse_experiments, prepare_bids, simulate_experiment, stratum_pieces,
+)
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
-from counterbid.readers.spark_bidder_gram import bidder_rows, bidder_table, combined_gram, combined_grams, partition_gram
+from counterbid.readers.id_hashes import fnv1a_64
+from counterbid.readers.spark_bidder_gram import (
+    bidder_keys, bidder_rows, bidder_table, combined_gram, combined_grams, partition_gram,
+)
 from counterbid.readers.spark_shards import _answer_schema
 
 SPEC = """experiments:
@@ -61,6 +65,27 @@ def _close(a: pd.DataFrame, b: pd.DataFrame, rtol: float) -> None:
         np.testing.assert_allclose(x[ok], y[ok], rtol=rtol, atol=0, err_msg=column)
 
 
+@pytest.mark.parametrize("ids", ["text", "integer"])
+def test_keyed_bidder_rows_are_the_plain_totals_by_id_text(ids):
+    """One shard's rows keyed by 64-bit keys against ``bidder_totals``, where bidders meet on their id's text."""
+    bids = _log(3000, bidder_pool=1500, rng=9)
+    if ids == "integer":
+        bids["bidder_id"] = bids["bidder_id"].str.slice(5).astype(np.int64) * 7_000_001  # beyond int32 too
+    prepared = prepare_bids(bids, EXPERIMENT)
+    pieces = stratum_pieces(prepared, EXPERIMENT, cluster="bidder")
+    assert len(pieces) > 1 and all(p.bidder_sums is not None for p in pieces)
+    keys, unit, sums = bidder_rows(pieces)
+    plain = bidder_totals(pieces)
+    assert unit == plain.bid_exponent and sums.shape == plain.sums.shape
+    texts = pa.array([str(v) for v in plain.bidder_ids], pa.string())
+    expected_keys = fnv1a_64(texts) if ids == "text" else np.array([int(v) for v in plain.bidder_ids], np.int64)
+    assert len(np.unique(keys)) == len(keys)  # no two of these ids share a key
+    order = pd.Index(keys).get_indexer(expected_keys)
+    assert (order >= 0).all()
+    np.testing.assert_allclose(sums[order], plain.sums, rtol=1e-12, atol=0)
+    np.testing.assert_array_equal(bidder_keys(np.array(list(texts.to_pylist()), dtype=object)), fnv1a_64(texts))
+
+
 def test_partition_grams_add_up_to_the_plain_form(tmp_path):
     """Shards' bidder rows, partitioned by bidder and squared per partition, give ``sum_b U_b U_b'``."""
     path = tmp_path / "bids.parquet"
@@ -74,8 +99,8 @@ def test_partition_grams_add_up_to_the_plain_form(tmp_path):
         rows.append(bidder_table(ids, unit, sums, shard, schema))
     rows = pa.concat_tables(rows)
     # the same bidder in several shards: what the partition step has to add before squaring
-    assert pd.Series(rows.column("bidder_id").to_pylist()).duplicated().sum() > 1000
-    partition = np.array([zlib.crc32(s.encode()) % 3 for s in rows.column("bidder_id").to_pylist()])
+    assert pd.Series(rows.column("bidder_key").to_pylist()).duplicated().sum() > 1000
+    partition = np.array([int(s) % 3 for s in rows.column("bidder_key").to_pylist()])
     out = _answer_schema(with_gram=True)
     parts = []
     for k in range(3):
@@ -86,7 +111,7 @@ def test_partition_grams_add_up_to_the_plain_form(tmp_path):
     size = len(found.pieces[0].sum_labels)
     gram = combined_gram(parts, size, max(p.bid_exponent for p in found.pieces))
     plain = gram_of(bidder_totals(found.pieces))
-    assert gram.n_bidders == plain.n_bidders == len(set(rows.column("bidder_id").to_pylist()))
+    assert gram.n_bidders == plain.n_bidders == len(set(rows.column("bidder_key").to_pylist()))
     np.testing.assert_allclose(gram.gram, plain.gram, rtol=1e-12, atol=0)
     by_gram = combine_pieces([p.without_bidder_sums() for p in found.pieces], EXPERIMENT, cluster="auto",
                              bidder_gram=gram)
@@ -128,11 +153,11 @@ def _partition_forms(found, n_partitions: int = 3) -> dict:
             ids, unit, sums = bidder_rows([p for p in mine if p.key.segment == label])
             rows.append(bidder_table(ids, unit, sums, shard, schema, segment=label))
     rows = pa.concat_tables(rows)
-    by_bidder = pd.Series(rows.column("bidder_id").to_pylist())
+    by_bidder = pd.Series(rows.column("bidder_key").to_pylist())
     segment = pd.Series(rows.column("bidder_segment").to_pylist())
     # the same bidder in both segments: the pooled form must add a bidder's rows across segments
     assert by_bidder.groupby(by_bidder).transform(lambda s: segment[s.index].nunique()).gt(1).sum() > 500
-    partition = np.array([zlib.crc32(s.encode()) % n_partitions for s in by_bidder])
+    partition = np.array([int(s) % n_partitions for s in by_bidder])
     out = _answer_schema(with_gram=True)
     parts = []
     for k in range(n_partitions):
@@ -272,3 +297,19 @@ def test_segmented_bidder_clustering_on_spark_equals_the_local_engine(spark, tmp
     assert len(local.table) == len(on_spark.table) and local.table["segment"].notna().any()
     assert list(local.table["segment"].astype(str)) == list(on_spark.table["segment"].astype(str))
     _close(on_spark.table, local.table, 1e-9)
+
+
+def test_sums_as_bytes_come_back_as_the_same_matrix():
+    # the bidder rows' sums travel as one binary value per row; read back from any slice, in either offset width
+    from counterbid.readers.spark_bidder_gram import _bytes_column, _bytes_rows
+
+    sums = np.random.default_rng(3).normal(size=(257, 6)) * np.ldexp(1.0, np.arange(-3, 3))
+    sums[5, 2], sums[9, 0] = -0.0, np.finfo(float).tiny
+    column = _bytes_column(sums)
+    assert column.type == pa.binary() and len(column) == 257
+    np.testing.assert_array_equal(_bytes_rows(column), sums)
+    np.testing.assert_array_equal(_bytes_rows(column.slice(100, 57)), sums[100:157])
+    np.testing.assert_array_equal(_bytes_rows(column.cast(pa.large_binary()).slice(3)), sums[3:])
+    assert column.to_pylist()[7] == sums[7].astype("<f8").tobytes()
+    with pytest.raises(ValueError, match="same number"):
+        _bytes_rows(pa.array([b"\0" * 8, b"\0" * 16], pa.binary()))

@@ -211,8 +211,8 @@ def _later_shard_row(bids: pd.DataFrame, n_shards: int) -> tuple[int, int]:
     return int(np.flatnonzero(shard == k)[shard.tolist().count(k) // 2]), k
 
 
-@pytest.mark.parametrize("kind", ["negative bid", "NaN bid", "duplicate bidder", "unknown arm", "no arm column",
-                                  "position as text", "negative bid, one shard of three holds every auction"])
+@pytest.mark.parametrize("kind", ["negative bid", "NaN bid", "duplicate bidder", "unknown arm", "null arm",
+                                  "no arm column", "position as text", "negative bid, one shard of three holds every auction"])
 def test_bad_rows_give_the_local_line(spark, tmp_path, kind):
     bids = _log(1000, rng=3)
     row, k = _later_shard_row(bids, 3)
@@ -234,6 +234,9 @@ def test_bad_rows_give_the_local_line(spark, tmp_path, kind):
         bids.loc[row, "bidder_id"] = bids.loc[same, "bidder_id"]
     elif kind == "unknown arm":
         bids.loc[bids["auction_id"] == bids.loc[row, "auction_id"], "arm"] = "sideways"
+    elif kind == "null arm":  # neither a listed arm name nor an unlisted text: no code and no text on Spark
+        bids["arm"] = bids["arm"].astype(object)
+        bids.loc[row, "arm"] = None
     elif kind == "no arm column":
         bids = bids.drop(columns=["arm"])
     elif kind == "position as text":
@@ -309,6 +312,33 @@ def test_read_order_is_the_order_of_the_paths(spark, tmp_path):
     assert got.column("auction_id").to_pylist() == arrow_order.to_pylist()
     # as paths 'a b' < 'a!b' < 'a-b' < 'a/' < 'b/' (the order written); as URIs 'a!b' would come first
     assert arrow_order.to_pylist() == [k for k in range(5) for _ in range(k + 2)]
+
+
+def test_one_file_shortcut_gives_the_joined_statements_shards_and_order(spark, tmp_path):
+    # an input of one file skips the ranking join; the plain statement (join on the ranked files) is its test
+    from counterbid.readers.spark_shards import _ROW_BITS, _run_sql
+
+    bids = _log(900, rng=8)
+    bids["auction_id"] = bids["auction_id"].astype("Int64")
+    bids.loc[17, "auction_id"] = pd.NA  # a bid without an auction id: shard 0 on both routes
+    path = tmp_path / "one file.parquet"
+    bids.to_parquet(path, index=False, row_group_size=700)  # several row groups: row numbers run across them
+    read = _read_parquet(spark, str(path), source=str(path), view="counterbid_test_one_file")
+    short = _with_shards(spark, read, shards=5, source=str(path)).select("auction_id", "bidder_id", "shard", "bid_order")
+    assert "bid_file" not in short.columns
+    spark.createDataFrame([(f, 0) for f in {read.inputFiles()[0], *(r[0] for r in read.select("bid_file").distinct().collect())}],
+                          "bid_file string, file_rank long").createOrReplaceTempView("counterbid_bid_files")
+    read.drop("shard", "bid_order").createOrReplaceTempView("counterbid_bids")
+    plain = _run_sql(spark, "spark_bids_with_shard", n_shards=5, row_bits=_ROW_BITS).select(
+        "auction_id", "bidder_id", "shard", "bid_order")
+    got, want = short.toArrow().sort_by("bid_order"), plain.toArrow().sort_by("bid_order")
+    assert got.num_rows == want.num_rows == len(bids)
+    assert got.to_pydict() == want.to_pydict()  # (the key is nullable on one route only)
+    assert got.column("bid_order").to_pylist() == list(range(len(bids)))
+    expected = np.zeros(len(bids), dtype=np.int64)
+    present = bids["auction_id"].notna().to_numpy()
+    expected[present] = shard_of(bids["auction_id"][present].astype(np.int64), 5)
+    assert got.column("shard").to_pylist() == expected.tolist()
 
 
 def test_a_lake_day_gives_the_pieces_the_local_staging_gives(spark, tmp_path):
