@@ -282,6 +282,32 @@ def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, expe
     return found, distinct
 
 
+def _shard_task_day(staged: StagedPartition, experiment: Experiment, ds: dt.date, *, cluster: str, target: Path,
+                    run_id: str, computed_at):
+    """The pieces the shard tasks stored; with several shards, their bidder sums staged at ``target`` shard by shard.
+
+    As on Spark (:func:`_spark_day_pieces`): the rows of ``stratum_piece_bidder_sums`` go to a folder
+    of one file per shard, written from each shard's stored sums in turn, and the pieces come back
+    without sums, with the day's bidder forms; the distinct bidders of each piece whose sums were
+    staged (``None`` when none were: one shard, or a piece without sums).
+    """
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.shards")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True)
+    sink = ShardRowsSink(str(tmp), experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
+    try:
+        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
+            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder),
+                                      bidder_rows_sink=sink)
+        if not staged_shards(tmp):  # the pieces kept their sums (or had none)
+            return found, None
+        distinct = distinct_bidders(tmp)
+        install_folder(tmp, target)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return found, distinct
+
+
 def _engine(spark, lake_root) -> Engine:
     if spark is None:
         return LocalEngine()
@@ -363,8 +389,8 @@ def estimate_partition(
     sums_file = staged.folder / f"{PIECE_TABLES['bidder_sums']}.parquet"
     distinct = None  # on Spark: the pieces' distinct bidders, counted by the executors that staged their sums
     if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
-        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
-            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder))
+        found, distinct = _shard_task_day(staged, experiment, ds, cluster=cluster, target=sums_file, run_id=run_id,
+                                          computed_at=computed_at)
     elif engine.name == "spark":
         found, distinct = _spark_day_pieces(engine, staged, ds, experiment, cluster=cluster, target=sums_file,
                                             run_id=run_id, computed_at=computed_at)
