@@ -48,7 +48,7 @@ from .lake_hook import LakeHook
 from .load_step import MissingPartitionError, stage_measured_weights, stage_partition
 from .schema_gate import schema_gate
 from .shard_step import estimate_shard, shard_task_pieces
-from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, pieces_with_staged_sums, staged_shards
+from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, staged_shards
 from .staging import StagedPartition, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 from .results_schema import staged_rows
@@ -417,15 +417,16 @@ def estimate_partition(
     failed[ds] = failed_today
     window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
     used_before = [d for d in window.used if d != ds]
-    if distinct is not None and ds in window.used:  # the running window adds today's sums: read back shard by shard
-        pieces = pieces_with_staged_sums(pieces, sums_file)
-    # the stored pieces' small tables, and the running bidder window (read for today's bidders only
-    # when the window is the stored one plus today; rebuilt from the stored pieces otherwise)
-    inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
-                            today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
-                            computed_at=computed_at)
+    # the stored pieces' small tables, and the running bidder window (read for today's bidders only,
+    # bucket by bucket, when the window is the stored one plus today; rebuilt from the stored pieces
+    # otherwise); today's sums staged by shard (Spark, shard tasks) are read back one shard at a time
+    with tempfile.TemporaryDirectory(prefix=".window-", dir=staged.folder) as work:
+        inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
+                                today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
+                                computed_at=computed_at, today_sums=None if distinct is None else sums_file,
+                                work_folder=Path(work))
+        stage_window_write(inputs.write, staged.folder)
     to_date_pieces = inputs.pieces
-    stage_window_write(inputs.write, staged.folder)
 
     summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": found.shards,
                "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out,

@@ -1,0 +1,181 @@
+"""Today's bidder totals for the running window, one bucket of bidders at a time.
+
+The daily update of the running window (:mod:`counterbid.operators.window_state`, route
+``extended``) looks up today's bidders in ``bidder_window_totals``, adds today's sums and stages
+their new totals. Done for the whole day at once, it holds every one of today's ids as text
+several times over. Here today's per-bidder rows are set aside on disk first, one group of pieces
+(one shard) at a time, split by the bucket of the 64-bit FNV-1a hash of the id text
+(:func:`counterbid.readers.id_hashes.fnv1a_64`,
+:func:`counterbid.estimators.keyed_gram.bucket_of`): every row of one bidder lies in one bucket,
+whatever its shard or stratum, so a bucket's totals (:func:`bucket_totals`) are those bidders'
+whole-day totals, and the update runs bucket by bucket with memory set by a bucket. Rows are
+weighted by their stratum on the way (``M_s 2**(e_s - e)``, as
+:func:`counterbid.estimators.bidder_totals` weights them) and kept in the order they came, so each
+bidder's total adds its pieces in the order the plain formula adds them.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.feather as feather
+
+from counterbid.estimators import StratumPiece
+from counterbid.estimators._ids import ids_as_text
+from counterbid.estimators.errors import InputError
+from counterbid.estimators.keyed_gram import bucket_of
+from counterbid.estimators.window_totals import WindowTotals
+from counterbid.readers.id_hashes import fnv1a_64
+
+__all__ = ["WINDOW_BUCKET_ROWS", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals"]
+
+#: Today's (piece, bidder) rows looked up and added in one bucket, on average (about 100 bytes a
+#: row with its id text and four labels, a few copies while grouping: well under 0.5 GiB).
+WINDOW_BUCKET_ROWS = 1_000_000
+#: At most ``2**MAX_BITS`` buckets (a folder of files per bucket).
+MAX_BITS = 10
+
+
+def bucket_bits(n_rows: int, bucket_rows: int) -> int:
+    """The least ``bits`` with ``n_rows / 2**bits <= bucket_rows`` (at most :data:`MAX_BITS`).
+
+    Parameters
+    ----------
+    n_rows : int
+        Today's (piece, bidder) rows.
+    bucket_rows : int
+        Rows wanted per bucket, on average; at least 1.
+
+    Returns
+    -------
+    int
+    """
+    if int(bucket_rows) < 1:
+        raise InputError(f"bidder window: rows per bucket must be at least 1, got {bucket_rows}")
+    need = max(1, math.ceil(int(n_rows) / int(bucket_rows)))
+    return min(MAX_BITS, (need - 1).bit_length())
+
+
+@dataclass(frozen=True)
+class TodayRows:
+    """Today's weighted per-bidder rows in ``folder``: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
+
+    Attributes
+    ----------
+    folder : Path
+    bits : int
+        ``2**bits`` buckets.
+    width : int
+        Sum columns (``sum_0 ..``), the experiment's revenue labels in its order.
+    segments : list of str
+        Today's segment labels (each a key of its own besides the pooled one).
+    bid_exponent : int
+        Unit of the weighted sums.
+    """
+
+    folder: Path
+    bits: int
+    width: int
+    segments: list[str]
+    bid_exponent: int
+
+    def buckets(self) -> Iterator[Path]:
+        """The folders of the buckets holding rows, in bucket order."""
+        yield from sorted(self.folder.glob("bucket-*"))
+
+
+def _repeated(value: str | None, n: int) -> pa.Array:
+    if value is None:
+        return pa.nulls(n, pa.string())
+    return pa.array([value], pa.string()).take(pa.array(np.zeros(n, dtype=np.int32)))
+
+
+def _weighted(pieces: Sequence[StratumPiece], exponent: int) -> pa.Table | None:
+    """One group's rows: segment, id text and each label's sum times the piece's weight."""
+    parts = []
+    for p in pieces:
+        if p.bidder_ids is None or p.bidder_sums is None:
+            raise InputError(f"bidder window: the piece of {p.key.describe()} has no bidder sums")
+        if p.bid_exponent > exponent:
+            raise InputError(f"bidder totals: a piece is in units of 2**{p.bid_exponent} bids, above 2**{exponent}")
+        n = int(p.bidder_ids.size)
+        w = p.n_auctions * math.ldexp(1.0, p.bid_exponent - exponent)
+        columns = {"segment": _repeated(p.key.segment, n),
+                   "bidder_id": pa.array(ids_as_text(p.bidder_ids), pa.string())}
+        columns |= {f"sum_{j}": pa.array(w * p.bidder_sums[:, j], pa.float64()) for j in range(p.bidder_sums.shape[1])}
+        parts.append(pa.table(columns))
+    return pa.concat_tables(parts) if parts else None
+
+
+def bucket_today(groups: Iterable[Sequence[StratumPiece]], folder: Path, *, exponent: int, bits: int) -> TodayRows:
+    """Set today's per-bidder rows aside in ``folder``, one group of pieces (e.g. a shard) at a time.
+
+    Parameters
+    ----------
+    groups : iterable of sequences of StratumPiece
+        Today's pieces, with bidder sums, in the order the plain totals add them; each group is
+        read, split and written before the next is asked for.
+    folder : Path
+        An empty folder (this function's).
+    exponent : int
+        Unit of the totals (the window's).
+    bits : int
+        ``2**bits`` buckets (:func:`bucket_bits`).
+
+    Returns
+    -------
+    TodayRows
+    """
+    width, segments = None, set()
+    for g, pieces in enumerate(groups):
+        table = _weighted(pieces, exponent)
+        if table is None:
+            continue
+        width = table.num_columns - 2
+        segments |= {p.key.segment for p in pieces if p.key.segment is not None}
+        bucket = bucket_of(fnv1a_64(table.column("bidder_id")), bits)
+        order = np.argsort(bucket, kind="stable")  # within a bucket, rows keep the pieces' order
+        bounds = np.searchsorted(bucket[order], np.arange(2 ** bits + 1))
+        table = table.take(pa.array(order))
+        del bucket, order
+        for b in np.flatnonzero(np.diff(bounds)):
+            place = folder / f"bucket-{int(b):05d}"
+            place.mkdir(parents=True, exist_ok=True)
+            feather.write_feather(table.slice(int(bounds[b]), int(bounds[b + 1] - bounds[b])),
+                                  place / f"group-{g:05d}.arrow", compression="uncompressed")
+        del table
+    return TodayRows(Path(folder), bits, width or 0, sorted(segments), exponent)
+
+
+def bucket_totals(rows: TodayRows, bucket: Path) -> dict[str | None, WindowTotals]:
+    """The whole-day totals of one bucket's bidders: pooled (key ``None``) and per segment.
+
+    Parameters
+    ----------
+    rows : TodayRows
+    bucket : Path
+        One of :meth:`TodayRows.buckets`.
+
+    Returns
+    -------
+    dict of (str or None) to WindowTotals
+        Bidders in first-seen order; a key without rows in the bucket is absent.
+    """
+    table = pa.concat_tables([feather.read_table(f) for f in sorted(bucket.glob("group-*.arrow"))])
+    out = {}
+    for key in [None, *rows.segments]:
+        part = table if key is None else table.filter(pc.fill_null(pc.equal(table.column("segment"), key), False))
+        if part.num_rows == 0:
+            continue
+        codes, uniques = pd.factorize(part.column("bidder_id").to_numpy(zero_copy_only=False), sort=False)
+        sums = np.column_stack([np.bincount(codes, weights=part.column(f"sum_{j}").to_numpy(), minlength=len(uniques))
+                                for j in range(rows.width)])
+        out[key] = WindowTotals(bidder_ids=np.asarray(uniques, dtype=object), sums=sums, bid_exponent=rows.bid_exponent)
+    return out
