@@ -170,6 +170,13 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
             write = _window_write(experiment, "extend", base_days, days_text, ds, grams, None, run_id, computed_at,
                                   order=order, totals_rows=extended)
             return _inputs(window, grams, write, "extended")
+    if not used_before:  # today alone: its totals, bucket by bucket as a daily update from an empty window
+        grams: dict = {}
+        rows = _extended_in(hook, experiment, mine, today_sums, grams, _labels(experiment), exponent, work_folder,
+                            lookup=False)
+        write = _window_write(experiment, "replace", None, days_text, ds, grams, None, run_id, computed_at,
+                              totals_rows=rows)
+        return _inputs(window, grams, write, "rebuilt")
     # the rebuild needs the bidder sums too: read that one table and reuse the others read above
     if today_sums is not None:
         mine = pieces_with_staged_sums(mine, today_sums)
@@ -196,17 +203,18 @@ def _today_rows(mine: list[StratumPiece], today_sums: Path | None) -> int:
 
 
 def _extended_in(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], today_sums: Path | None,
-                 grams: dict, order: list[str], exponent: int, work_folder: Path | None) -> pa.Table | pads.Dataset | None:
+                 grams: dict, order: list[str], exponent: int, work_folder: Path | None, *,
+                 lookup: bool = True) -> pa.Table | pads.Dataset | None:
     """:func:`_extended` in ``work_folder`` (the staged totals as a dataset), or in a temporary one (read back)."""
     if work_folder is not None:
-        return _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work_folder))
+        return _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work_folder), lookup=lookup)
     with tempfile.TemporaryDirectory(prefix="counterbid-window-") as work:
-        found = _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work))
+        found = _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work), lookup=lookup)
         return None if found is None else found.to_table()
 
 
 def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], today_sums: Path | None,
-              grams: dict, order: list[str], exponent: int, work: Path) -> pads.Dataset | None:
+              grams: dict, order: list[str], exponent: int, work: Path, *, lookup: bool = True) -> pads.Dataset | None:
     """Extend ``grams`` by today's pieces, bucket by bucket of bidders; today's bidders' totals after the day.
 
     Today's rows are set aside by bucket (:mod:`.window_buckets`); each bucket's bidders are looked
@@ -216,6 +224,7 @@ def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece
 
     ``None`` (``grams`` untouched: the caller rebuilds) when two of the rows found share an integer
     key: two distinct ids collided on it, and only a rebuild (on the id text) keeps them apart.
+    ``lookup=False``: the window holds no bidder yet (``grams`` empty): nothing is looked up.
     """
     bits = bucket_bits(_today_rows(mine, today_sums), window_buckets.WINDOW_BUCKET_ROWS)
     rows = bucket_today(_today_groups(mine, today_sums), work / "today", exponent=exponent, bits=bits)
@@ -228,22 +237,28 @@ def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece
     try:
         for bucket in rows.buckets():
             today_totals = bucket_totals(rows, bucket)
-            found = hook.bidder_window_totals(experiment_id=experiment.id,
-                                              today=_lookup_rows(experiment, today_totals))
-            pairs = pd.DataFrame({"segment": found.column("segment").to_pandas(),
-                                  "key": found.column("bidder_key").to_pandas()})
-            if pairs.duplicated().any():
+            found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals)
+                                              ) if lookup else None
+            if found is not None and _collided(found):
                 return None
             for key, totals in today_totals.items():
-                before, seen = _before(*_stored_of_key(found, key, len(order)), totals, permutation)
+                stored = _stored_of_key(found, key, len(order)) if found is not None else (
+                    np.array([], dtype=object), np.zeros((0, len(order))))
+                before, seen = _before(*stored, totals, permutation)
                 start = running.get(key, _empty_gram(len(labels), exponent))
                 running[key], sums = extend_gram(start, totals, before, seen)
                 writer.write_table(_totals_rows(experiment, key, totals.bidder_ids, sums[:, columns]))
             del today_totals, found
     finally:
         writer.close()
-    grams.update(running)
+    grams.update({k: running[k] for k in sorted(running, key=lambda k: (k is not None, k or ""))})  # pooled first
     return staged_rows(target)
+
+
+def _collided(found: pa.Table) -> bool:
+    """Two found rows on one (segment, integer key): two distinct ids collided on the key."""
+    pairs = pd.DataFrame({"segment": found.column("segment").to_pandas(), "key": found.column("bidder_key").to_pandas()})
+    return bool(pairs.duplicated().any())
 
 
 def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
