@@ -26,6 +26,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.feather as feather
+import pyarrow.parquet as pq
 
 from counterbid.estimators import StratumPiece
 from counterbid.estimators._ids import ids_as_text
@@ -34,7 +35,8 @@ from counterbid.estimators.keyed_gram import bucket_of
 from counterbid.estimators.window_totals import WindowTotals
 from counterbid.readers.id_hashes import fnv1a_64
 
-__all__ = ["WINDOW_BUCKET_ROWS", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals"]
+__all__ = ["WINDOW_BUCKET_ROWS", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
+           "staged_piece_rows"]
 
 #: Today's (piece, bidder) rows looked up and added in one bucket, on average (about 100 bytes a
 #: row with its id text and four labels, a few copies while grouping: well under 0.5 GiB).
@@ -97,29 +99,88 @@ def _repeated(value: str | None, n: int) -> pa.Array:
     return pa.array([value], pa.string()).take(pa.array(np.zeros(n, dtype=np.int32)))
 
 
-def _weighted(pieces: Sequence[StratumPiece], exponent: int) -> pa.Table | None:
+@dataclass(frozen=True)
+class PieceRows:
+    """One piece's bidders: its segment, weight inputs, ids as Arrow text and ``(B, K + 1)`` sums."""
+
+    segment: str | None
+    n_auctions: int
+    bid_exponent: int
+    bidder_ids: pa.Array | pa.ChunkedArray
+    sums: np.ndarray
+
+    @classmethod
+    def of(cls, piece: StratumPiece) -> PieceRows:
+        """A piece that carries its bidder sums."""
+        if piece.bidder_ids is None or piece.bidder_sums is None:
+            raise InputError(f"bidder window: the piece of {piece.key.describe()} has no bidder sums")
+        return cls(piece.key.segment, int(piece.n_auctions), int(piece.bid_exponent),
+                   pa.array(ids_as_text(piece.bidder_ids), pa.string()), piece.bidder_sums)
+
+
+def _weighted(pieces: Iterable[PieceRows | StratumPiece], exponent: int) -> pa.Table | None:
     """One group's rows: segment, id text and each label's sum times the piece's weight."""
     parts = []
     for p in pieces:
-        if p.bidder_ids is None or p.bidder_sums is None:
-            raise InputError(f"bidder window: the piece of {p.key.describe()} has no bidder sums")
+        p = p if isinstance(p, PieceRows) else PieceRows.of(p)
         if p.bid_exponent > exponent:
             raise InputError(f"bidder totals: a piece is in units of 2**{p.bid_exponent} bids, above 2**{exponent}")
-        n = int(p.bidder_ids.size)
+        n = len(p.bidder_ids)
         w = p.n_auctions * math.ldexp(1.0, p.bid_exponent - exponent)
-        columns = {"segment": _repeated(p.key.segment, n),
-                   "bidder_id": pa.array(ids_as_text(p.bidder_ids), pa.string())}
-        columns |= {f"sum_{j}": pa.array(w * p.bidder_sums[:, j], pa.float64()) for j in range(p.bidder_sums.shape[1])}
+        columns = {"segment": _repeated(p.segment, n), "bidder_id": p.bidder_ids.cast(pa.string())}
+        columns |= {f"sum_{j}": pa.array(w * p.sums[:, j], pa.float64()) for j in range(p.sums.shape[1])}
         parts.append(pa.table(columns))
+        del p
     return pa.concat_tables(parts) if parts else None
 
 
-def bucket_today(groups: Iterable[Sequence[StratumPiece]], folder: Path, *, exponent: int, bits: int) -> TodayRows:
+def staged_piece_rows(pieces: Sequence[StratumPiece], path: Path) -> Iterator[PieceRows]:
+    """The pieces' bidder rows from one shard's staged ``stratum_piece_bidder_sums`` file, label by label.
+
+    Each label's rows of a piece are read alone (row groups pruned by the piece's number of
+    bidders, segment and label), so memory is one label's column of one piece, with the ids kept
+    as Arrow text (the rows of every label hold the same ids in the same order).
+
+    Parameters
+    ----------
+    pieces : sequence of StratumPiece
+        One shard's pieces (their sums staged in ``path``).
+    path : Path
+
+    Yields
+    ------
+    PieceRows
+
+    Raises
+    ------
+    InputError
+        A piece lacks rows of a label, or its labels hold different numbers of rows: one line naming it.
+    """
+    for piece in pieces:
+        segment = pc.field("segment")
+        same = pc.field("n_bidders") == int(piece.n_bidders)
+        same = same & (segment.is_null() if piece.key.segment is None else segment == piece.key.segment)
+        ids, columns = None, []
+        for label, _ in piece.sum_labels:
+            rows = pq.read_table(path, columns=["bidder_id", "value"], filters=same & (pc.field("arm") == label)) \
+                if path.exists() else None
+            if rows is None or rows.num_rows == 0 or (ids is not None and rows.num_rows != len(ids)):
+                where = "" if piece.key.segment is None else f" of segment {piece.key.segment!r}"
+                raise InputError(f"{path}: no staged bidder sums for the {piece.n_bidders}-bidder stratum{where} of "
+                                 f"shard {piece.shard}; run the estimate step again")
+            ids = rows.column("bidder_id") if ids is None else ids
+            columns.append(rows.column("value").to_numpy())
+            del rows
+        yield PieceRows(piece.key.segment, int(piece.n_auctions), int(piece.bid_exponent), ids,
+                        np.column_stack(columns))
+
+
+def bucket_today(groups: Iterable[Iterable[PieceRows | StratumPiece]], folder: Path, *, exponent: int, bits: int) -> TodayRows:
     """Set today's per-bidder rows aside in ``folder``, one group of pieces (e.g. a shard) at a time.
 
     Parameters
     ----------
-    groups : iterable of sequences of StratumPiece
+    groups : iterable of iterables of PieceRows or StratumPiece
         Today's pieces, with bidder sums, in the order the plain totals add them; each group is
         read, split and written before the next is asked for.
     folder : Path
@@ -139,7 +200,7 @@ def bucket_today(groups: Iterable[Sequence[StratumPiece]], folder: Path, *, expo
         if table is None:
             continue
         width = table.num_columns - 2
-        segments |= {p.key.segment for p in pieces if p.key.segment is not None}
+        segments |= set(pc.unique(table.column("segment")).drop_null().to_pylist())
         bucket = bucket_of(fnv1a_64(table.column("bidder_id")), bits)
         order = np.argsort(bucket, kind="stable")  # within a bucket, rows keep the pieces' order
         bounds = np.searchsorted(bucket[order], np.arange(2 ** bits + 1))

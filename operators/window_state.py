@@ -27,7 +27,7 @@ import datetime as dt
 import json
 import shutil
 import tempfile
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -50,9 +50,9 @@ from counterbid.estimators.window_totals import WindowTotals
 from . import window_buckets
 from .hooks import ResultsHook
 from .results_schema import WINDOW_TABLES, WindowWrite, staged_rows
-from .staged_bidder_sums import distinct_bidders, pieces_with_staged_sums
+from .staged_bidder_sums import distinct_bidders, pieces_with_staged_sums, shard_file
 from .staging import write_json, write_parquet
-from .window_buckets import bucket_bits, bucket_today, bucket_totals
+from .window_buckets import bucket_bits, bucket_today, bucket_totals, staged_piece_rows
 
 __all__ = ["ToDateInputs", "load_window_write", "stage_window_write", "to_date_inputs"]
 
@@ -191,11 +191,11 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     return _inputs(window, grams, write, "rebuilt")
 
 
-def _today_groups(mine: list[StratumPiece], today_sums: Path | None) -> Iterator[list[StratumPiece]]:
-    """Today's pieces with their bidder sums, one shard at a time (read from ``today_sums`` when staged)."""
+def _today_groups(mine: list[StratumPiece], today_sums: Path | None) -> Iterator[Iterable]:
+    """Today's pieces with their bidder sums, one shard at a time (read label by label from ``today_sums`` when staged)."""
     for shard in sorted({int(p.shard) for p in mine}):
         group = [p for p in mine if int(p.shard) == shard]
-        yield group if today_sums is None else pieces_with_staged_sums(group, today_sums)
+        yield group if today_sums is None else staged_piece_rows(group, shard_file(today_sums, shard))
 
 
 def _today_rows(mine: list[StratumPiece], today_sums: Path | None) -> int:
