@@ -68,8 +68,11 @@ def _stratum_rows(wide: pa.Table, piece: StratumPiece):
     return pc.and_(same_n, pc.fill_null(same_segment, False))
 
 
-def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[StratumPiece]:
-    """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text)."""
+def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path, *, arrow_ids: bool = False) -> list[StratumPiece]:
+    """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text).
+
+    ``arrow_ids``: the ids stay an Arrow string column (for a rows sink; no Python string per bidder).
+    """
     out = []
     for p in pieces:
         rows = wide.filter(_stratum_rows(wide, p))
@@ -78,7 +81,7 @@ def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[
             segment = "" if p.key.segment is None else f" of segment {p.key.segment!r}"
             raise InputError(f"{where}: no bidder sums for the {p.n_bidders}-bidder stratum{segment}; "
                              "run its 'estimate_shard' task again")
-        ids = rows.column("bidder_id").to_numpy(zero_copy_only=False)
+        ids = rows.column("bidder_id") if arrow_ids else rows.column("bidder_id").to_numpy(zero_copy_only=False)
         sums = np.column_stack([rows.column(n).to_numpy() for n in names])
         out.append(dataclasses.replace(p, bidder_ids=ids, bidder_sums=sums))
     return out
@@ -235,7 +238,7 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
             with_sums = set(record.get("bidder_sums", []))
             if with_sums:
                 wide = pq.read_table(folder / WIDE_SUMS)
-                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], wide, folder)
+                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], wide, folder, arrow_ids=apart)
                 mine = kept + [p for p in mine if p.n_bidders not in with_sums]
                 if spill is not None:
                     spill.add(_hashed(kept, wide) + [p for p in mine if p.n_bidders not in with_sums])

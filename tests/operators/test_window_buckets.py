@@ -21,10 +21,12 @@ segment's rows mixed with another's, the combine step keeping per-bidder rows in
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import scipy.stats as st
@@ -183,10 +185,13 @@ def test_the_combine_step_hands_each_shards_bidder_rows_on_and_keeps_none(lake, 
     found = shard_task_pieces(staged, exp, cluster="auto", spill_folder=tmp_path / "spill",
                               bidder_rows_sink=lambda shard, pieces: handed.append((shard, pieces)))
     assert [s for s, _ in handed] == [0, 1, 2, 3]
-    assert all(p.bidder_sums is not None for _, pieces in handed for p in pieces)
+    # handed with their sums, the ids as an Arrow text column (no Python string per bidder)
+    assert all(p.bidder_sums is not None and isinstance(p.bidder_ids, pa.ChunkedArray)
+               for _, pieces in handed for p in pieces)
     assert found.gram is not None and all(p.bidder_sums is None and p.bidder_ids is None for p in found.pieces)
     # the day's form from the spill = the plain form of the handed pieces (bidders met on their text)
-    plain = gram_of(bidder_totals([p for _, pieces in handed for p in pieces], bid_exponent=found.gram.bid_exponent))
+    as_text = [dataclasses.replace(p, bidder_ids=p.bidder_ids.to_numpy()) for _, pieces in handed for p in pieces]
+    plain = gram_of(bidder_totals(as_text, bid_exponent=found.gram.bid_exponent))
     assert found.gram.n_bidders == plain.n_bidders
     np.testing.assert_allclose(found.gram.gram, plain.gram, rtol=1e-12, atol=0)
 
