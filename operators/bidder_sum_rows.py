@@ -42,6 +42,13 @@ def _repeated(value, n: int, type_: pa.DataType) -> pa.Array:
     return pa.array([value], type_).take(pa.array(np.zeros(n, dtype=np.int32)))
 
 
+def _id_text(ids) -> pa.Array | pa.ChunkedArray:
+    """Bidder ids as Arrow text: an Arrow string column as it is (no Python strings), else from the id array."""
+    if isinstance(ids, (pa.Array, pa.ChunkedArray)):
+        return ids.cast(pa.large_string())
+    return pa.array(ids_as_text(ids), pa.large_string())
+
+
 def write_bidder_sum_rows(pieces: Sequence[StratumPiece], target: Path, *, experiment_id: str, ds: dt.date,
                           run_id: str, computed_at) -> int:
     """Write the pieces' bidder sums as rows of ``stratum_piece_bidder_sums`` to ``target`` (atomically).
@@ -49,7 +56,8 @@ def write_bidder_sum_rows(pieces: Sequence[StratumPiece], target: Path, *, exper
     Parameters
     ----------
     pieces : sequence of StratumPiece
-        Pieces without bidder sums add no rows.
+        Pieces without bidder sums add no rows; ``bidder_ids`` may be an Arrow string column
+        (written as it is, without a Python string per bidder).
     target : Path
     experiment_id : str
     ds : datetime.date
@@ -69,8 +77,8 @@ def write_bidder_sum_rows(pieces: Sequence[StratumPiece], target: Path, *, exper
             for p in pieces:
                 if p.bidder_ids is None:
                     continue
-                b = int(p.bidder_ids.size)
-                ids = pa.array(ids_as_text(p.bidder_ids), pa.large_string())
+                b = len(p.bidder_ids)
+                ids = _id_text(p.bidder_ids)
                 constant = {"experiment_id": _repeated(experiment_id, b, pa.large_string()),
                             "ds": _repeated(ds, b, pa.date32()), "n_bidders": _repeated(p.n_bidders, b, pa.int64()),
                             "shard": _repeated(p.shard, b, pa.int64()),

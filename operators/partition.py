@@ -48,7 +48,7 @@ from .lake_hook import LakeHook
 from .load_step import MissingPartitionError, stage_measured_weights, stage_partition
 from .schema_gate import schema_gate
 from .shard_step import estimate_shard, shard_task_pieces
-from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, pieces_with_staged_sums, staged_shards
+from .staged_bidder_sums import ShardRowsSink, distinct_bidders, install_folder, staged_shards
 from .staging import StagedPartition, write_json, write_parquet
 from .stored_rows import check_flags, stored_status, with_anytime_columns, with_stored_columns
 from .window_state import PIECE_TABLES, stage_window_write, to_date_inputs
@@ -282,6 +282,32 @@ def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, expe
     return found, distinct
 
 
+def _shard_task_day(staged: StagedPartition, experiment: Experiment, ds: dt.date, *, cluster: str, target: Path,
+                    run_id: str, computed_at):
+    """The pieces the shard tasks stored; with several shards, their bidder sums staged at ``target`` shard by shard.
+
+    As on Spark (:func:`_spark_day_pieces`): the rows of ``stratum_piece_bidder_sums`` go to a folder
+    of one file per shard, written from each shard's stored sums in turn, and the pieces come back
+    without sums, with the day's bidder forms; the distinct bidders of each piece whose sums were
+    staged (``None`` when none were: one shard, or a piece without sums).
+    """
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.shards")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True)
+    sink = ShardRowsSink(str(tmp), experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
+    try:
+        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
+            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder),
+                                      bidder_rows_sink=sink)
+        if not staged_shards(tmp):  # the pieces kept their sums (or had none)
+            return found, None
+        distinct = distinct_bidders(tmp)
+        install_folder(tmp, target)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return found, distinct
+
+
 def _engine(spark, lake_root) -> Engine:
     if spark is None:
         return LocalEngine()
@@ -363,8 +389,8 @@ def estimate_partition(
     sums_file = staged.folder / f"{PIECE_TABLES['bidder_sums']}.parquet"
     distinct = None  # on Spark: the pieces' distinct bidders, counted by the executors that staged their sums
     if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
-        with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
-            found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder))
+        found, distinct = _shard_task_day(staged, experiment, ds, cluster=cluster, target=sums_file, run_id=run_id,
+                                          computed_at=computed_at)
     elif engine.name == "spark":
         found, distinct = _spark_day_pieces(engine, staged, ds, experiment, cluster=cluster, target=sums_file,
                                             run_id=run_id, computed_at=computed_at)
@@ -391,15 +417,16 @@ def estimate_partition(
     failed[ds] = failed_today
     window = analysis_window([*earlier, ds], experiment, failed_checks=failed)
     used_before = [d for d in window.used if d != ds]
-    if distinct is not None and ds in window.used:  # the running window adds today's sums: read back shard by shard
-        pieces = pieces_with_staged_sums(pieces, sums_file)
-    # the stored pieces' small tables, and the running bidder window (read for today's bidders only
-    # when the window is the stored one plus today; rebuilt from the stored pieces otherwise)
-    inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
-                            today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
-                            computed_at=computed_at)
+    # the stored pieces' small tables, and the running bidder window (read for today's bidders only,
+    # bucket by bucket, when the window is the stored one plus today; rebuilt from the stored pieces
+    # otherwise); today's sums staged by shard (Spark, shard tasks) are read back one shard at a time
+    with tempfile.TemporaryDirectory(prefix=".window-", dir=staged.folder) as work:
+        inputs = to_date_inputs(hook, experiment=experiment, used_before=used_before, today=pieces,
+                                today_in_window=ds in window.used, ds=ds, cluster=cluster, run_id=run_id,
+                                computed_at=computed_at, today_sums=None if distinct is None else sums_file,
+                                work_folder=Path(work))
+        stage_window_write(inputs.write, staged.folder)
     to_date_pieces = inputs.pieces
-    stage_window_write(inputs.write, staged.folder)
 
     summary = {"experiment_id": experiment.id, "ds": ds.isoformat(), "status": status, "shards": found.shards,
                "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out,

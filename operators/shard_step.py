@@ -21,7 +21,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import json
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from pathlib import Path
 
 import numpy as np
@@ -68,8 +68,11 @@ def _stratum_rows(wide: pa.Table, piece: StratumPiece):
     return pc.and_(same_n, pc.fill_null(same_segment, False))
 
 
-def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[StratumPiece]:
-    """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text)."""
+def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path, *, arrow_ids: bool = False) -> list[StratumPiece]:
+    """The pieces with the bidder sums of :func:`_wide_sums` put back (bidder ids as text).
+
+    ``arrow_ids``: the ids stay an Arrow string column (for a rows sink; no Python string per bidder).
+    """
     out = []
     for p in pieces:
         rows = wide.filter(_stratum_rows(wide, p))
@@ -78,7 +81,7 @@ def _with_sums(pieces: list[StratumPiece], wide: pa.Table, where: Path) -> list[
             segment = "" if p.key.segment is None else f" of segment {p.key.segment!r}"
             raise InputError(f"{where}: no bidder sums for the {p.n_bidders}-bidder stratum{segment}; "
                              "run its 'estimate_shard' task again")
-        ids = rows.column("bidder_id").to_numpy(zero_copy_only=False)
+        ids = rows.column("bidder_id") if arrow_ids else rows.column("bidder_id").to_numpy(zero_copy_only=False)
         sums = np.column_stack([rows.column(n).to_numpy() for n in names])
         out.append(dataclasses.replace(p, bidder_ids=ids, bidder_sums=sums))
     return out
@@ -157,8 +160,28 @@ def _hashed(pieces: list[StratumPiece], wide: pa.Table) -> list[StratumPiece]:
     return out
 
 
+def _shard_record(staged: StagedPartition, experiment: Experiment, k: int, n_shards: int, cluster: str) -> dict:
+    """Shard ``k``'s record, refused (one line) when missing or estimated with another clustering."""
+    folder = shard_pieces_folder(staged, k)
+    if not (folder / RECORD).exists():
+        raise InputError(f"{folder}: the pieces of shard {k} of {n_shards} of experiment {experiment.id!r} "
+                         "are missing; run its 'estimate_shard' task first")
+    record = json.loads((folder / RECORD).read_text(encoding="utf-8"))
+    if record.get("cluster") != cluster or int(record.get("shards", -1)) != n_shards:
+        raise InputError(f"{folder}: the pieces of shard {k} were estimated with cluster "
+                         f"{record.get('cluster')!r} over {record.get('shards')} shard(s), not {cluster!r} over "
+                         f"{n_shards}; run its 'estimate_shard' task again")
+    return record
+
+
+def _all_with_sums(record: dict) -> bool:
+    """Whether every piece of a shard's record kept bidder sums."""
+    return len(record.get("bidder_sums", [])) == int(record["pieces"])
+
+
 def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluster: str,
-                      spill_folder: Path | None = None, max_spill_rows: int = MAX_SPILL_ROWS) -> ShardPieces:
+                      spill_folder: Path | None = None, max_spill_rows: int = MAX_SPILL_ROWS,
+                      bidder_rows_sink: Callable[[int, list[StratumPiece]], object] | None = None) -> ShardPieces:
     """Every staged shard's pieces, as the shard tasks stored them (what the estimate step combines).
 
     Parameters
@@ -175,12 +198,19 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
         forms bucket by bucket, at most ``max_spill_rows`` rows at a time: the day's rows then
         need no matching of text ids across shards.
     max_spill_rows : int
+    bidder_rows_sink : callable, optional
+        With ``spill_folder``, a day of several shards and every piece with bidder sums: each
+        shard's pieces, with their sums (bidder ids as text), go to ``bidder_rows_sink(shard,
+        pieces)`` one shard at a time (e.g. a
+        :class:`~counterbid.operators.staged_bidder_sums.ShardRowsSink`), and the pieces returned
+        carry none: the step then holds one shard's bidders at a time, never the day's.
 
     Returns
     -------
     ShardPieces
-        By shard, then number of bidders; bidder ids as text; with ``spill_folder``, the day's
-        bidder forms (``gram``, ``segment_grams``) when every piece carries bidder sums.
+        By shard, then number of bidders; bidder ids as text (none when the sink took them); with
+        ``spill_folder``, the day's bidder forms (``gram``, ``segment_grams``) when every piece
+        carries bidder sums.
 
     Raises
     ------
@@ -191,19 +221,15 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
     """
     staged.require(staged.day, step="load")
     shards = staged.shards()
+    records = {k: _shard_record(staged, experiment, k, len(shards), cluster) for k in shards}
     pieces, excluded, single_bidders = [], 0, False
     # one shard is the day: its sums are bounded by the shard already and combine as the single task's
     spill = None if spill_folder is None or len(shards) < 2 else BidderSpill(Path(spill_folder), max_rows=max_spill_rows)
+    # every piece with sums: they go to the sink shard by shard and the day combines from the spill's forms
+    apart = bidder_rows_sink is not None and spill is not None and cluster != "auction" \
+        and all(_all_with_sums(r) for r in records.values())
     for k in shards:
-        folder = shard_pieces_folder(staged, k)
-        if not (folder / RECORD).exists():
-            raise InputError(f"{folder}: the pieces of shard {k} of {len(shards)} of experiment {experiment.id!r} "
-                             "are missing; run its 'estimate_shard' task first")
-        record = json.loads((folder / RECORD).read_text(encoding="utf-8"))
-        if record.get("cluster") != cluster or int(record.get("shards", -1)) != len(shards):
-            raise InputError(f"{folder}: the pieces of shard {k} were estimated with cluster "
-                             f"{record.get('cluster')!r} over {record.get('shards')} shard(s), not {cluster!r} over "
-                             f"{len(shards)}; run its 'estimate_shard' task again")
+        folder, record = shard_pieces_folder(staged, k), records[k]
         excluded += int(record["excluded_auctions"])
         single_bidders = single_bidders or bool(record["single_bidders_only"])
         if int(record["pieces"]):
@@ -212,14 +238,18 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
             with_sums = set(record.get("bidder_sums", []))
             if with_sums:
                 wide = pq.read_table(folder / WIDE_SUMS)
-                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], wide, folder)
+                kept = _with_sums([p for p in mine if p.n_bidders in with_sums], wide, folder, arrow_ids=apart)
                 mine = kept + [p for p in mine if p.n_bidders not in with_sums]
                 if spill is not None:
                     spill.add(_hashed(kept, wide) + [p for p in mine if p.n_bidders not in with_sums])
-                del wide
+                del wide, kept
             elif spill is not None:
                 spill.add(mine)
-            pieces += sorted(mine, key=lambda p: p.n_bidders)
+            mine = sorted(mine, key=lambda p: p.n_bidders)
+            if apart:  # this shard's rows to the sink; the pieces keep only their small parts
+                bidder_rows_sink(int(k), mine)
+                mine = [p.without_bidder_sums() for p in mine]
+            pieces += mine
     if not pieces:
         raise no_pieces_error(str(staged.day), experiment.id, single_bidders=single_bidders,
                               n_excluded_auctions=excluded)

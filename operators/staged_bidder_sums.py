@@ -69,7 +69,7 @@ class ShardRowsSink:
         target.parent.mkdir(parents=True, exist_ok=True)
         rows = write_bidder_sum_rows(pieces, target, experiment_id=self.experiment_id, ds=self.ds,
                                      run_id=self.run_id, computed_at=self.computed_at)
-        counts = [[int(p.n_bidders), p.key.segment, int(p.bidder_ids.size)] for p in pieces if p.bidder_ids is not None]
+        counts = [[int(p.n_bidders), p.key.segment, len(p.bidder_ids)] for p in pieces if p.bidder_ids is not None]
         counts_file = _counts_file(Path(self.folder), shard)
         tmp = counts_file.with_name(f".{counts_file.name}.{os.getpid()}.tmp")
         tmp.write_text(json.dumps(counts), encoding="utf-8")

@@ -6,8 +6,11 @@ running totals ``U_b`` per bidder with their Gram form and distinct-bidder count
 (``bidder_window*`` tables; :mod:`counterbid.estimators.window_totals`). A day whose window is the
 stored one plus today (the daily run) reads only today's bidders' totals (a join on an integer key of today's ids in
 SQL) and writes them back with today added: its cost follows today's bidders, not the
-experiment's age. Anything else is rebuilt from the stored pieces, exactly as the full
-recombination: the first day, a rerun of a day the window already holds, an earlier day, a window
+experiment's age. It runs one bucket of bidders at a time (:mod:`.window_buckets`: today's rows
+set aside by the hash of the id text, then looked up, added and staged bucket by bucket), so its
+memory is a bucket's, not the day's; the first day of a window (nothing stored before it) builds
+its totals the same way, from an empty window. Anything else is rebuilt from the stored pieces,
+exactly as the full recombination: a rerun of a day the window already holds, an earlier day, a window
 that lost or regained a day (burn-in, exclusion, a failed warm-up or drift check), a change of bid
 unit. A day's write drops a stored window that covers it unless it brings the window's update,
 and an update whose base changed since its estimate step is dropped too, so the stored window
@@ -22,7 +25,9 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-from collections.abc import Mapping
+import shutil
+import tempfile
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -30,6 +35,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.dataset as pads
+import pyarrow.parquet as pq
 
 from counterbid.estimators import (
     BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
@@ -40,9 +47,12 @@ from counterbid.estimators.days import parse_day
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.window_totals import WindowTotals
 
+from . import window_buckets
 from .hooks import ResultsHook
 from .results_schema import WINDOW_TABLES, WindowWrite, staged_rows
+from .staged_bidder_sums import distinct_bidders, pieces_with_staged_sums, shard_file
 from .staging import write_json, write_parquet
+from .window_buckets import bucket_bits, bucket_today, bucket_totals, staged_piece_rows
 
 __all__ = ["ToDateInputs", "load_window_write", "stage_window_write", "to_date_inputs"]
 
@@ -103,7 +113,8 @@ def pieces_of_rows(frames: Mapping[str, pd.DataFrame | None], *, without_sums: b
 
 
 def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: list[dt.date], today: list[StratumPiece],
-                   today_in_window: bool, ds: dt.date, cluster: str, run_id: str, computed_at) -> ToDateInputs:
+                   today_in_window: bool, ds: dt.date, cluster: str, run_id: str, computed_at,
+                   today_sums: Path | None = None, work_folder: Path | None = None) -> ToDateInputs:
     """The pieces (and bidder window) the experiment-to-date rows of ``ds`` combine.
 
     Parameters
@@ -120,6 +131,16 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     cluster : {'auto', 'auction', 'bidder'}
     run_id : str
     computed_at : timestamp
+    today_sums : Path, optional
+        Today's pieces carry no bidder sums: their ``stratum_piece_bidder_sums`` rows are staged
+        in this folder, one file per shard
+        (:class:`~counterbid.operators.staged_bidder_sums.ShardRowsSink`), and are read from
+        there one shard at a time.
+    work_folder : Path, optional
+        Where the daily update sets today's rows aside by bucket and stages the new totals
+        (a folder of the caller's, e.g. inside the staging folder, so that
+        :func:`stage_window_write` moves the file); without it a temporary folder is used and the
+        totals are read back into memory.
 
     Returns
     -------
@@ -131,7 +152,7 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     mine = today if today_in_window else []
     strata = small.get("stratum_pieces")
     with_sums = cluster != "auction" and (strata is None or bool((strata["n_distinct_bidders"] >= 0).all())) \
-        and all(p.bidder_sums is not None for p in mine)
+        and (today_sums is not None or all(p.bidder_sums is not None for p in mine))
     window = stored + [p.without_bidder_sums() for p in mine]
     if not window or not with_sums:
         return ToDateInputs(window, None, None, "by_auction")
@@ -147,12 +168,21 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
         grams = _grams_of_rows(base[0], base[1], exponent, experiment)
         if not mine:  # today left out: the stored window is the window
             return _inputs(window, grams, None, "stored")
-        extended = _extended(hook, experiment, mine, grams, order, exponent)
+        extended = _extended_in(hook, experiment, mine, today_sums, grams, order, exponent, work_folder)
         if extended is not None:
-            write = _window_write(experiment, "extend", base_days, days_text, ds, grams, extended, run_id, computed_at,
-                                  order=order)
+            write = _window_write(experiment, "extend", base_days, days_text, ds, grams, None, run_id, computed_at,
+                                  order=order, totals_rows=extended)
             return _inputs(window, grams, write, "extended")
+    if not used_before:  # today alone: its totals, bucket by bucket as a daily update from an empty window
+        grams: dict = {}
+        rows = _extended_in(hook, experiment, mine, today_sums, grams, _labels(experiment), exponent, work_folder,
+                            lookup=False)
+        write = _window_write(experiment, "replace", None, days_text, ds, grams, None, run_id, computed_at,
+                              totals_rows=rows)
+        return _inputs(window, grams, write, "rebuilt")
     # the rebuild needs the bidder sums too: read that one table and reuse the others read above
+    if today_sums is not None:
+        mine = pieces_with_staged_sums(mine, today_sums)
     sums = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=[PIECE_TABLES["bidder_sums"]])
     totals = _totals_by_key(pieces_of_rows({**small, **sums}) + mine, exponent)
     grams = {key: gram_of(t) for key, t in totals.items()}
@@ -161,26 +191,77 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
     return _inputs(window, grams, write, "rebuilt")
 
 
-def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], grams: dict,
-              order: list[str], exponent: int) -> dict | None:
-    """Extend ``grams`` in place by today's pieces; today's bidders' totals after the day, by key.
+def _today_groups(mine: list[StratumPiece], today_sums: Path | None) -> Iterator[Iterable]:
+    """Today's pieces with their bidder sums, one shard at a time (read label by label from ``today_sums`` when staged)."""
+    for shard in sorted({int(p.shard) for p in mine}):
+        group = [p for p in mine if int(p.shard) == shard]
+        yield group if today_sums is None else staged_piece_rows(group, shard_file(today_sums, shard))
+
+
+def _today_rows(mine: list[StratumPiece], today_sums: Path | None) -> int:
+    """Today's (piece, bidder) rows: from the pieces, or from the counts staged beside their sums."""
+    if today_sums is None:
+        return sum(int(p.bidder_ids.size) for p in mine)
+    return sum(distinct_bidders(today_sums).values())
+
+
+def _extended_in(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], today_sums: Path | None,
+                 grams: dict, order: list[str], exponent: int, work_folder: Path | None, *,
+                 lookup: bool = True) -> pa.Table | pads.Dataset | None:
+    """:func:`_extended` in ``work_folder`` (the staged totals as a dataset), or in a temporary one (read back)."""
+    if work_folder is not None:
+        return _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work_folder), lookup=lookup)
+    with tempfile.TemporaryDirectory(prefix="counterbid-window-") as work:
+        found = _extended(hook, experiment, mine, today_sums, grams, order, exponent, Path(work), lookup=lookup)
+        return None if found is None else found.to_table()
+
+
+def _extended(hook: ResultsHook, experiment: Experiment, mine: list[StratumPiece], today_sums: Path | None,
+              grams: dict, order: list[str], exponent: int, work: Path, *, lookup: bool = True) -> pads.Dataset | None:
+    """Extend ``grams`` by today's pieces, bucket by bucket of bidders; today's bidders' totals after the day.
+
+    Today's rows are set aside by bucket (:mod:`.window_buckets`); each bucket's bidders are looked
+    up (a join on their integer key in SQL), extended (:func:`extend_gram`, which adds over
+    disjoint sets of bidders) and their new totals appended to ``work/bidder_window_totals.parquet``
+    (columns of ``sums`` in the stored ``order``): memory is set by a bucket, not by the day.
 
     ``None`` (``grams`` untouched: the caller rebuilds) when two of the rows found share an integer
     key: two distinct ids collided on it, and only a rebuild (on the id text) keeps them apart.
+    ``lookup=False``: the window holds no bidder yet (``grams`` empty): nothing is looked up.
     """
-    today_totals = _totals_by_key(mine, exponent)
-    found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals))
+    bits = bucket_bits(_today_rows(mine, today_sums), window_buckets.WINDOW_BUCKET_ROWS)
+    rows = bucket_today(_today_groups(mine, today_sums), work / "today", exponent=exponent, bits=bits)
+    labels = _labels(experiment)
+    permutation, columns = _permutation(order, experiment), [labels.index(label) for label in order]
+    running = dict(grams)
+    target = work / "bidder_window_totals.parquet"
+    writer = pq.ParquetWriter(target, _totals_rows(experiment, None, np.array([], dtype=object),
+                                                   np.zeros((0, len(order)))).schema)
+    try:
+        for bucket in rows.buckets():
+            today_totals = bucket_totals(rows, bucket)
+            found = hook.bidder_window_totals(experiment_id=experiment.id, today=_lookup_rows(experiment, today_totals)
+                                              ) if lookup else None
+            if found is not None and _collided(found):
+                return None
+            for key, totals in today_totals.items():
+                stored = _stored_of_key(found, key, len(order)) if found is not None else (
+                    np.array([], dtype=object), np.zeros((0, len(order))))
+                before, seen = _before(*stored, totals, permutation)
+                start = running.get(key, _empty_gram(len(labels), exponent))
+                running[key], sums = extend_gram(start, totals, before, seen)
+                writer.write_table(_totals_rows(experiment, key, totals.bidder_ids, sums[:, columns]))
+            del today_totals, found
+    finally:
+        writer.close()
+    grams.update({k: running[k] for k in sorted(running, key=lambda k: (k is not None, k or ""))})  # pooled first
+    return staged_rows(target)
+
+
+def _collided(found: pa.Table) -> bool:
+    """Two found rows on one (segment, integer key): two distinct ids collided on the key."""
     pairs = pd.DataFrame({"segment": found.column("segment").to_pandas(), "key": found.column("bidder_key").to_pandas()})
-    if pairs.duplicated().any():
-        return None
-    after, updated = {}, {}
-    for key, totals in today_totals.items():
-        before, seen = _before(*_stored_of_key(found, key, len(order)), totals, _permutation(order, experiment))
-        start = grams.get(key, _empty_gram(len(_labels(experiment)), exponent))
-        updated[key], sums = extend_gram(start, totals, before, seen)
-        after[key] = (totals.bidder_ids, sums)
-    grams.update(updated)
-    return after
+    return bool(pairs.duplicated().any())
 
 
 def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
@@ -317,11 +398,12 @@ def _before(ids: np.ndarray, stored: np.ndarray, totals: WindowTotals, permutati
 
 def _window_write(experiment: Experiment, mode: str, base_days: str | None, days_text: str, ds: dt.date,
                   grams: Mapping[str | None, BidderGram], totals: Mapping[str | None, tuple[np.ndarray, np.ndarray]],
-                  run_id: str, computed_at, *, order: list[str] | None = None) -> WindowWrite:
+                  run_id: str, computed_at, *, order: list[str] | None = None,
+                  totals_rows: pa.Table | pads.Dataset | None = None) -> WindowWrite:
     """The window's rows: per key (``None``: pooled; a segment label) its description, form and totals.
 
     ``order``: the label order of the stored totals' ``sums`` (an extension keeps the stored one;
-    default the experiment's).
+    default the experiment's). ``totals_rows``: the totals' rows as already staged (``totals`` unused).
     """
     labels = _labels(experiment)
     order = list(order or labels)
@@ -337,8 +419,9 @@ def _window_write(experiment: Experiment, mode: str, base_days: str | None, days
                                        "value": float(gram.gram[i, j])}
                                       for key, gram in grams.items()
                                       for i, a in enumerate(labels) for j, b in enumerate(labels)])
-    totals_rows = pa.concat_tables([_totals_rows(experiment, key, ids, np.asarray(sums)[:, columns])
-                                    for key, (ids, sums) in totals.items()])
+    if totals_rows is None:
+        totals_rows = pa.concat_tables([_totals_rows(experiment, key, ids, np.asarray(sums)[:, columns])
+                                        for key, (ids, sums) in totals.items()])
     return WindowWrite(mode=mode, base_days=base_days, tables={
         "bidder_window": summary, "bidder_window_gram": gram_rows, "bidder_window_totals": totals_rows})
 
@@ -350,7 +433,11 @@ def stage_window_write(write: WindowWrite | None, folder: Path) -> None:
         manifest.unlink(missing_ok=True)
         return
     for dest in WINDOW_TABLES:
-        write_parquet(write.tables[dest.destination], folder / f"{dest.destination}.parquet")
+        rows, target = write.tables[dest.destination], folder / f"{dest.destination}.parquet"
+        if isinstance(rows, pads.FileSystemDataset) and len(rows.files) == 1:  # staged already: moved, not read
+            shutil.move(rows.files[0], target)
+        else:
+            write_parquet(rows if isinstance(rows, pa.Table) else rows.to_table(), target)
     write_json({"mode": write.mode, "base_days": write.base_days}, manifest)
 
 
