@@ -83,15 +83,21 @@ def sink(request, tmp_path):
     return ResultsHook(database=request.getfixturevalue("postgres_url"))
 
 
-def _run_day(hook, lake, exp, stage, day):
-    """Load (four shards), the schema gate, one task per shard, the combining estimate, the write."""
+def _shards_estimated(lake, stage, exp, day) -> StagedPartition:
+    """One day loaded in four shards, through the schema gate, each shard estimated by its own task."""
     out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage,
                                     max_bids_per_shard=SHARD_BIDS)
     assert out["shards"] == 4
     staged = StagedPartition.at(stage, exp.id, day)
     partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
-    for k in range(out["shards"]):
+    for k in range(4):
         partition.estimate_partition_shard(exp, ds=day, staging_root=stage, shard=k)
+    return staged
+
+
+def _run_day(hook, lake, exp, stage, day):
+    """Load (four shards), the schema gate, one task per shard, the combining estimate, the write."""
+    staged = _shards_estimated(lake, stage, exp, day)
     summary = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=f"r-{day}",
                                            shard_tasks=True)
     sums = staged.folder / f"{partition.PIECE_TABLES['bidder_sums']}.parquet"
@@ -173,13 +179,7 @@ def test_a_bucketed_daily_update_over_shard_tasks_gives_the_plain_totals_and_row
 
 def test_the_combine_step_hands_each_shards_bidder_rows_on_and_keeps_none(lake, tmp_path):
     exp = _spec()
-    stage = tmp_path / "stage"
-    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAYS[0], staging_root=stage,
-                              max_bids_per_shard=SHARD_BIDS)
-    staged = StagedPartition.at(stage, exp.id, DAYS[0])
-    partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
-    for k in range(4):
-        partition.estimate_partition_shard(exp, ds=DAYS[0], staging_root=stage, shard=k)
+    staged = _shards_estimated(lake, tmp_path / "stage", exp, DAYS[0])
     handed = []
     (tmp_path / "spill").mkdir()
     found = shard_task_pieces(staged, exp, cluster="auto", spill_folder=tmp_path / "spill",
@@ -200,13 +200,7 @@ def test_the_combine_step_hands_each_shards_bidder_rows_on_and_keeps_none(lake, 
 def test_bucket_totals_add_up_to_the_plain_totals(lake, tmp_path, bits):
     """Over every bucket, the totals of each key are ``bidder_totals`` of today's pieces: same bidders, 1e-12."""
     exp = _spec()
-    stage = tmp_path / "stage"
-    partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=DAYS[1], staging_root=stage,
-                              max_bids_per_shard=SHARD_BIDS)
-    staged = StagedPartition.at(stage, exp.id, DAYS[1])
-    partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
-    for k in range(4):
-        partition.estimate_partition_shard(exp, ds=DAYS[1], staging_root=stage, shard=k)
+    staged = _shards_estimated(lake, tmp_path / "stage", exp, DAYS[1])
     pieces = shard_task_pieces(staged, exp, cluster="auto").pieces
     exponent = max(p.bid_exponent for p in pieces) + 1  # a window in a larger unit than today's
     rows = bucket_today(([p for p in pieces if p.shard == k] for k in range(4)), tmp_path / "rows",
