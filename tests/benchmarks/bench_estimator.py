@@ -450,15 +450,15 @@ ISSUE_TABLE_NOTE = ("CPU s: user + system seconds of every process of the comman
                     "reaped, os.wait4, plus the orphans this benchmark reaps as a subreaper: the JVM of the Spark "
                     "rows; 'JVM CPU s' is that orphaned part; on a shared machine wall time waits for cores, CPU time "
                     "does not); peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a "
-                    "driver, a JVM and Python workers), and the peak RSS of the driver (the command's own process) "
-                    "and of the JVM with its Python workers, each its own peak; bids/s per core: bids / wall / "
+                    "driver, a JVM and Python workers), and the peak RSS of the driver (the command's own process), "
+                    "of the JVM and of the Python workers (summed), each its own peak; bids/s per core: bids / wall / "
                     "cores, the local engine counted as one core, Spark as its master's task threads with the "
                     "session start (row 'Spark session start' in the notes) taken out of its wall time; bids per "
                     "CPU s: bids / CPU s (whole tree, session start included); load: 1-minute load average before "
                     "and after the row.")
 ISSUE_TABLE_HEAD = ["| bids | ids | engine | shards | wall s | wall / floor | CPU s | CPU / floor | JVM CPU s | "
-                    "peak PSS MiB | driver peak RSS MiB | JVM peak RSS MiB | bids/s per core | bids per CPU s | load |",
-                    "|---:|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|"]
+                    "peak PSS MiB | driver peak RSS MiB | JVM peak RSS MiB | Python workers peak RSS MiB | bids/s per core | bids per CPU s | load |",
+                    "|---:|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|"]
 
 
 def _spark_cores(master: str) -> int:
@@ -473,7 +473,7 @@ def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spa
     spark = kind.startswith("cli_spark")
     engine = f"spark {SPARK_MASTER_IN_USE[0]}" if spark else "local" if kind != "floor" else "floor: DuckDB + np.sort"
     if r is None:
-        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} |" + " – |" * 10
+        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} |" + " – |" * 11
     ratio = r["wall"] / floor["wall"] if floor else float("nan")
     if spark:
         busy = r["wall"] - (spark_start["wall"] if spark_start else 0.0)
@@ -482,12 +482,12 @@ def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spa
         per_core = millions * 1e6 / r["wall"]
     cpu_ratio = r["cpu"] / floor["cpu"] if floor else float("nan")
     by_role = r.get("peak_rss_by_role_mib", {})
-    jvm_rss = by_role.get("jvm", 0) + by_role.get("workers", 0)
+    jvm_rss = f"{by_role.get('jvm', 0):.0f} | {by_role.get('workers', 0):.0f}" if spark else "– | –"
     orphans = f"{r.get('cpu_orphans', 0.0):.2f}" + ("" if r.get("cpu_complete", True) else " (incomplete)")
     load = r.get("load", (float("nan"), float("nan")))
-    return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '?')} | {r['wall']:.2f} | {ratio:.2f} | "
+    return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '–')} | {r['wall']:.2f} | {ratio:.2f} | "
             f"{r['cpu']:.2f} | {cpu_ratio:.2f} | {orphans if spark else '–'} | {r['tree_pss_mib']:.0f} | "
-            f"{by_role.get('driver', 0):.0f} | {f'{jvm_rss:.0f}' if spark else '–'} | {per_core:,.0f} | "
+            f"{by_role.get('driver', 0):.0f} | {jvm_rss} | {per_core:,.0f} | "
             f"{millions * 1e6 / r['cpu']:,.0f} | {load[0]:.1f}→{load[1]:.1f} |")
 
 
