@@ -111,3 +111,19 @@ def test_compare_frames_finds_the_largest_relative_difference_and_text_changes()
     assert found["text_differences"] == 1
     assert any("NaN on one side" in q for q in found["problems"])
     assert compare_frames(local, spark.iloc[:2])["problems"]  # a missing row is a difference, not a pass
+
+
+def test_a_failed_dag_step_reports_its_error_line_cpu_and_peak_rss():
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_dag_steps import StepFailed, _child
+
+    hungry = ("import numpy as np, sys; a = np.ones(200 * 2**20 // 8); "
+              "raise SystemExit('staging/part-007.parquet: column bid is not a number')")
+    try:
+        _child([sys.executable, "-c", hungry])
+    except StepFailed as failed:
+        assert failed.exit_code == 1
+        assert failed.last_line == "staging/part-007.parquet: column bid is not a number"
+        assert failed.rss_mib > 200 and failed.cpu > 0
+    else:
+        raise AssertionError("a failing step must raise StepFailed")
