@@ -102,16 +102,41 @@ def _loadavg() -> str:
     return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
+class StepFailed(SystemExit):
+    """A child that exited non-zero: its last line of stderr, exit code, CPU seconds, wall and peak RSS."""
+
+    def __init__(self, argv: list[str], code: int, last_line: str, cpu: float, wall: float, rss_mib: float):
+        self.exit_code, self.last_line, self.cpu, self.wall, self.rss_mib = code, last_line, cpu, wall, rss_mib
+        super().__init__(f"{argv[:3]}...: exit {code}: {last_line}")
+
+
+def last_error_line(stderr: str) -> str:
+    """The last non-blank line of a child's stderr (a traceback's last line names the error)."""
+    lines = [line.strip() for line in stderr.splitlines() if line.strip()]
+    return lines[-1][:300] if lines else "(no stderr)"
+
+
 def _child(argv: list[str], env: dict | None = None) -> tuple[str, float, float, float]:
-    """Run ``argv``; its stdout, CPU seconds (user + sys, from ``os.wait4``), wall seconds and peak RSS (MiB)."""
+    """Run ``argv``; its stdout, CPU seconds (user + sys, from ``os.wait4``), wall seconds and peak RSS (MiB).
+
+    The child's stderr is passed on to this process's stderr; a non-zero exit raises :class:`StepFailed`.
+    """
+    import tempfile
+
     t0 = time.perf_counter()
-    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, env=env, text=True)
-    out = proc.stdout.read()
-    _, status, usage = os.wait4(proc.pid, 0)
+    with tempfile.TemporaryFile("w+") as err:
+        proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=err, env=env, text=True)
+        out = proc.stdout.read()
+        _, status, usage = os.wait4(proc.pid, 0)
+        err.seek(0)
+        stderr = err.read()
+    sys.stderr.write(stderr)
+    sys.stderr.flush()
     proc.returncode = os.waitstatus_to_exitcode(status)
+    cpu, wall, rss = usage.ru_utime + usage.ru_stime, time.perf_counter() - t0, usage.ru_maxrss / 1024
     if proc.returncode != 0:
-        raise SystemExit(f"{argv[:3]}...: exit {proc.returncode}")
-    return out, usage.ru_utime + usage.ru_stime, time.perf_counter() - t0, usage.ru_maxrss / 1024
+        raise StepFailed(argv, proc.returncode, last_error_line(stderr), cpu, wall, rss)
+    return out, cpu, wall, rss
 
 
 def parse_row(env: dict | None = None) -> str:
@@ -263,8 +288,13 @@ def through_steps(args, steps: list[str]) -> None:
     print(parse_row(dict(os.environ, **bf.airflow_environment(args.data / "airflow_parse", dags_folder=bf.dags_folder()))),
           flush=True)
     for step in _expanded(steps, args):
-        out, cpu, wall, rss = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
-                                      str(args.millions), "--mode", "steps", "--step", step])
+        try:
+            out, cpu, wall, rss = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
+                                          str(args.millions), "--mode", "steps", "--step", step])
+        except StepFailed as failed:  # the row says what failed and at what cost; the later steps need this one
+            print(_row(f"{step} FAILED (exit {failed.exit_code})", failed.cpu, failed.wall, failed.rss_mib,
+                       failed.last_line.replace("|", "/")), flush=True)
+            raise
         name, step_cpu, step_wall, step_rss = out.split()[-4:]
         print(_row(f"{name} (step alone)", float(step_cpu), float(step_wall), float(step_rss)), flush=True)
         print(_row(f"{name} (child with imports)", cpu, wall, rss), flush=True)

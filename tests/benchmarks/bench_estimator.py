@@ -45,6 +45,7 @@ import argparse
 import json
 import os
 import re
+import resource
 import statistics
 import subprocess
 import sys
@@ -181,6 +182,7 @@ class ProcessTreeMemory:
         self.max_processes = 0
         self.java_args: list[str] = []
         self.peak_roles: dict[str, float] = {}  # PSS by role at the peak sample
+        self.peak_role_rss: dict[str, float] = {}  # each role's own peak RSS (summed over its processes)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, daemon=True)
         self._thread.start()
@@ -216,6 +218,7 @@ class ProcessTreeMemory:
                 break
             pss = rss = 0
             roles: dict[str, float] = {}
+            role_rss: dict[str, float] = {}
             for proc in tree:
                 try:
                     p, r = self._pss_rss(proc.pid)
@@ -228,6 +231,9 @@ class ProcessTreeMemory:
                     continue
                 pss, rss = pss + p, rss + r
                 roles[role] = roles.get(role, 0.0) + p
+                role_rss[role] = role_rss.get(role, 0.0) + r
+            for role, value in role_rss.items():
+                self.peak_role_rss[role] = max(self.peak_role_rss.get(role, 0.0), value)
             if pss > self.peak_pss:
                 self.peak_roles = roles
             self.peak_pss, self.peak_rss = max(self.peak_pss, pss), max(self.peak_rss, rss)
@@ -239,29 +245,95 @@ class ProcessTreeMemory:
         self._thread.join()
         return {"tree_pss_mib": self.peak_pss / 2**20, "tree_rss_mib": self.peak_rss / 2**20,
                 "tree_processes": self.max_processes, "java_xmx": " ".join(self.java_args),
-                "peak_roles_mib": {k: round(v / 2**20) for k, v in self.peak_roles.items()}}
+                "peak_roles_mib": {k: round(v / 2**20) for k, v in self.peak_roles.items()},
+                "peak_rss_by_role_mib": {k: round(v / 2**20) for k, v in self.peak_role_rss.items()}}
+
+
+PR_SET_CHILD_SUBREAPER = 36
+
+
+def become_subreaper() -> bool:
+    """Make this process the reaper of its orphaned descendants (Linux ``prctl``); False where unsupported.
+
+    A PySpark driver does not wait for the JVM it launched: the JVM outlives it by a moment and is
+    reparented to init, so its CPU time never reaches ``os.wait4`` of the command. As a subreaper
+    this process inherits such orphans, reaps them and so counts their CPU (:func:`reap_orphans`).
+    """
+    import ctypes
+
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(PR_SET_CHILD_SUBREAPER, 1, 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
+
+
+def _children() -> set[int]:
+    import psutil
+
+    return {c.pid for c in psutil.Process().children()}
+
+
+def reap_orphans(earlier: set[int], timeout: float = 120.0) -> tuple[float, bool]:
+    """Wait for every child of this process not in ``earlier`` (the orphans a command left behind).
+
+    Returns their CPU seconds (user + sys, with what they reaped) and whether all ended in time;
+    children this process had before (``earlier``) are left to whoever started them.
+    """
+    cpu, deadline = 0.0, time.monotonic() + timeout
+    while True:
+        left = _children() - earlier
+        if not left:
+            return cpu, True
+        for pid in left:
+            try:
+                done, _, usage = os.wait4(pid, os.WNOHANG)
+            except ChildProcessError:
+                continue
+            if done:
+                cpu += usage.ru_utime + usage.ru_stime
+        if time.monotonic() > deadline:
+            return cpu, False
+        time.sleep(0.05)
 
 
 def run_child(argv: list[str], *, env: dict | None = None, timeout: float = 3600, tree: bool = False) -> dict:
-    """Run ``argv`` as a child; wall seconds, peak RSS (MiB) from wait4, and its JSON stdout.
+    """Run ``argv`` as a child; wall seconds, CPU seconds, peak RSS (MiB) from wait4, and its JSON stdout.
 
-    With ``tree=True`` also the peak memory of the child and all its descendants
-    (:class:`ProcessTreeMemory`: ``tree_pss_mib``, ``tree_rss_mib``, ``tree_processes``).
+    ``cpu`` is the user + system time of the whole process tree: the child with what it reaped, plus
+    (this process being a subreaper, :func:`become_subreaper`) every orphan it left, such as the JVM
+    of a PySpark driver (``cpu_orphans``: that part; ``cpu_complete``: False if an orphan outlived the
+    wait). With ``tree=True`` also the peak memory of the child and all its descendants
+    (:class:`ProcessTreeMemory`: ``tree_pss_mib``, ``tree_rss_mib``, ``tree_processes``,
+    ``peak_rss_by_role_mib``). The 1-minute load average before and after is ``load``.
+    A failed child raises ``SystemExit`` whose last line is the child's last line of stderr followed
+    by its exit code, CPU seconds and peak memory.
     """
+    subreaper, earlier = become_subreaper(), _children()
+    load_before = os.getloadavg()[0]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     started = time.perf_counter()
     with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
         proc = subprocess.Popen(argv, stdout=out, stderr=err, env=env, text=True)
         sampler = ProcessTreeMemory(proc.pid) if tree else None
         _, status, usage = os.wait4(proc.pid, 0)
         wall = time.perf_counter() - started
+        orphans_cpu, complete = reap_orphans(earlier) if subreaper else (0.0, False)
         sampled = sampler.stop() if sampler else {}
         proc.returncode = os.waitstatus_to_exitcode(status)
         out.seek(0), err.seek(0)
         stdout, stderr = out.read(), err.read()
-    if proc.returncode != 0:
-        raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}")
-    result = {"wall": wall, "cpu": usage.ru_utime + usage.ru_stime, "rss_mib": usage.ru_maxrss / 1024.0,
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    result = {"wall": wall, "cpu": cpu, "cpu_orphans": orphans_cpu, "cpu_complete": complete,
+              "rss_mib": usage.ru_maxrss / 1024.0, "load": (load_before, os.getloadavg()[0]),
               "stdout": stdout, "stderr": stderr, **sampled}
+    if proc.returncode != 0:
+        lines = [line for line in stderr.strip().splitlines() if line.strip()] or ["(no stderr)"]
+        memory = f"; tree peak PSS {result['tree_pss_mib']:.0f} MiB" if tree else ""
+        raise SystemExit(f"{' '.join(argv[:4])}... exited {proc.returncode}: {stderr[-2000:]}\n"
+                         f"{lines[-1].strip()[:240]} [exit {proc.returncode} after {wall:.0f} s, CPU {cpu:.1f} s, "
+                         f"peak RSS {result['rss_mib']:.0f} MiB{memory}]")
     try:  # a child's one JSON line, or a command's whole JSON output
         result.update(json.loads(stdout.strip().splitlines()[-1]))
     except (ValueError, IndexError):
@@ -374,12 +446,19 @@ def dag_day(folder: Path, bids_1m: Path, spec_path: Path) -> dict:
 
 
 #: How the issue table's columns are measured.
-ISSUE_TABLE_NOTE = ("CPU s: user + system seconds of the command's process and the children it reaped (os.wait4; "
-                    "on a shared machine wall time waits for cores, CPU time does not); "
-                    "peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a driver, "
-                    "a JVM and Python workers); bids/s per core: bids / wall / cores, the local engine counted as "
-                    "one core, Spark as its master's task threads with the session start (row 'Spark session "
-                    "start' in the notes) taken out of its wall time.")
+ISSUE_TABLE_NOTE = ("CPU s: user + system seconds of every process of the command's tree (the command and what it "
+                    "reaped, os.wait4, plus the orphans this benchmark reaps as a subreaper: the JVM of the Spark "
+                    "rows; 'JVM CPU s' is that orphaned part; on a shared machine wall time waits for cores, CPU time "
+                    "does not); peak memory: the process tree's peak PSS (sampled every 50 ms: the Spark engine is a "
+                    "driver, a JVM and Python workers), and the peak RSS of the driver (the command's own process), "
+                    "of the JVM and of the Python workers (summed), each its own peak; bids/s per core: bids / wall / "
+                    "cores, the local engine counted as one core, Spark as its master's task threads with the "
+                    "session start (row 'Spark session start' in the notes) taken out of its wall time; bids per "
+                    "CPU s: bids / CPU s (whole tree, session start included); load: 1-minute load average before "
+                    "and after the row.")
+ISSUE_TABLE_HEAD = ["| bids | ids | engine | shards | wall s | wall / floor | CPU s | CPU / floor | JVM CPU s | "
+                    "peak PSS MiB | driver peak RSS MiB | JVM peak RSS MiB | Python workers peak RSS MiB | bids/s per core | bids per CPU s | load |",
+                    "|---:|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|"]
 
 
 def _spark_cores(master: str) -> int:
@@ -392,9 +471,9 @@ def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spa
     """One row of the issue's table: size, ids, engine, wall, ratio to the floor, memory, bids/s per core."""
     ids = "string" if kind.endswith("_text") else "integer"
     spark = kind.startswith("cli_spark")
-    engine = f"spark {SPARK_MASTER_IN_USE[0]}" if spark else "local"
+    engine = f"spark {SPARK_MASTER_IN_USE[0]}" if spark else "local" if kind != "floor" else "floor: DuckDB + np.sort"
     if r is None:
-        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} | – | – | – | – | – |"
+        return f"| {millions}M | {ids} | {engine} | – | failed: {failed} |" + " – |" * 11
     ratio = r["wall"] / floor["wall"] if floor else float("nan")
     if spark:
         busy = r["wall"] - (spark_start["wall"] if spark_start else 0.0)
@@ -402,8 +481,14 @@ def _issue_row(millions: int, kind: str, r: dict | None, floor: dict | None, spa
     else:
         per_core = millions * 1e6 / r["wall"]
     cpu_ratio = r["cpu"] / floor["cpu"] if floor else float("nan")
-    return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '?')} | {r['wall']:.2f} | {ratio:.2f} | "
-            f"{r['cpu']:.2f} | {cpu_ratio:.2f} | {r['tree_pss_mib']:.0f} | {per_core:,.0f} |")
+    by_role = r.get("peak_rss_by_role_mib", {})
+    jvm_rss = f"{by_role.get('jvm', 0):.0f} | {by_role.get('workers', 0):.0f}" if spark else "– | –"
+    orphans = f"{r.get('cpu_orphans', 0.0):.2f}" + ("" if r.get("cpu_complete", True) else " (incomplete)")
+    load = r.get("load", (float("nan"), float("nan")))
+    return (f"| {millions}M | {ids} | {engine} | {r.get('shards', '–')} | {r['wall']:.2f} | {ratio:.2f} | "
+            f"{r['cpu']:.2f} | {cpu_ratio:.2f} | {orphans if spark else '–'} | {r['tree_pss_mib']:.0f} | "
+            f"{by_role.get('driver', 0):.0f} | {jvm_rss} | {per_core:,.0f} | "
+            f"{millions * 1e6 / r['cpu']:,.0f} | {load[0]:.1f}→{load[1]:.1f} |")
 
 
 #: The master of this run's Spark rows (set by ``main``).
@@ -414,7 +499,7 @@ def repeated(argv: list[str], times: int, **options) -> dict:
     """Median wall, work and peak memory of ``times`` runs of one child (the other fields of the last)."""
     runs = [run_child(argv, **options) for _ in range(times)]
     out = dict(runs[-1])
-    for field in ("wall", "cpu", "work", "rss_mib", "tree_pss_mib", "tree_rss_mib"):
+    for field in ("wall", "cpu", "cpu_orphans", "work", "rss_mib", "tree_pss_mib", "tree_rss_mib"):
         if field not in out:
             continue
         values = [r.get(field, float("nan")) for r in runs]
@@ -508,16 +593,18 @@ def main(argv: list[str] | None = None) -> int:
                     options["env"] = spark_env
             else:
                 argv = [*me, "--child", kind, str(path), str(spec_path)]
+                options["tree"] = kind == "floor"  # the floor's row in the issue table has the same columns
             try:
                 r = repeated(argv, 1 if kind == "pandas" else args.repeat, **options)
             except SystemExit as exc:  # a failed row is reported, not the end of the benchmark
                 failed = str(exc).strip().splitlines()[-1][:300] if str(exc).strip() else "failed"
                 issue_rows.append(_issue_row(millions, kind, None, rows.get("floor"), spark_start, failed=failed))
-                print(f"{millions}M {kind}: FAILED {failed}", file=sys.stderr, flush=True)
+                print(f"{millions}M {kind}: FAILED {exc}", file=sys.stderr, flush=True)
                 continue
             if kind.startswith("cli"):
                 r["work"] = float("nan")
-                issue_rows.append(_issue_row(millions, kind, r, rows.get("floor"), spark_start))
+            if kind.startswith("cli") or kind == "floor":
+                issue_rows.append(_issue_row(millions, kind, r, r if kind == "floor" else rows.get("floor"), spark_start))
             if kind in ("cli", "cli_spark"):
                 engine = "local (default shards)" if kind == "cli" else f"spark {args.spark_master} ({r['java_xmx']})"
                 roles = ", ".join(f"{k} {v}" for k, v in sorted(r["peak_roles_mib"].items()))
@@ -547,9 +634,7 @@ def main(argv: list[str] | None = None) -> int:
                      f"({d['steps']}); process wall {d['wall']:.1f} s incl. Airflow metadata migration, "
                      f"peak RSS {d['rss_mib']:.0f} MiB")
     issue_table = [f"`counterbid estimate --format json` against the floor (a), same run; {ISSUE_TABLE_NOTE}", "",
-                   "| bids | ids | engine | shards | wall s | wall / floor | CPU s | CPU / floor | peak memory MiB | "
-                   "bids/s per core |",
-                   "|---:|---|---|---:|---:|---:|---:|---:|---:|---:|", *issue_rows, ""]
+                   *ISSUE_TABLE_HEAD, *issue_rows, ""]
     sections = issue_table + lines + [""] + [f"* {n}" for n in notes]
     if len(engine_lines) > 2:
         sections += ["", f"Engines: `counterbid estimate --format json`, local engine against `--engine spark "

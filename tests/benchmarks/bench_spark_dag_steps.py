@@ -27,7 +27,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_dag_steps import DAY, SPEC, write_lake  # noqa: E402  (the same simulated day)
+from bench_dag_steps import DAY, SPEC, StepFailed, last_error_line, write_lake  # noqa: E402  (the same simulated day)
 
 STEPS = ("load", "validate", "estimate", "write")
 #: Marks the child's answer line among whatever else it prints.
@@ -57,13 +57,18 @@ def _descendants() -> list[int]:
 
 
 def _usage(pids: list[int]) -> tuple[float, float]:
-    """CPU seconds (user + sys) of ``pids`` together, and the largest peak RSS among them (MiB)."""
+    """CPU seconds (user + sys) of ``pids`` together, and the largest peak RSS among them (MiB).
+
+    Each process's own time and that of the children it already reaped (``cutime``, ``cstime``: the
+    Python workers that ended under the PySpark daemon): a living process's reaped children are no
+    longer among ``pids``, so nothing is counted twice.
+    """
     ticks, cpu, peak = os.sysconf("SC_CLK_TCK"), 0.0, 0.0
     for pid in pids:
         try:
             with open(f"/proc/{pid}/stat") as fh:
                 fields = fh.read().rsplit(")", 1)[1].split()
-            cpu += (int(fields[11]) + int(fields[12])) / ticks
+            cpu += sum(int(f) for f in fields[11:15]) / ticks  # utime, stime, cutime, cstime
             with open(f"/proc/{pid}/status") as fh:
                 hwm = next((line for line in fh if line.startswith("VmHWM:")), "VmHWM: 0 kB")
             peak = max(peak, int(hwm.split()[1]) / 1024)
@@ -142,12 +147,21 @@ def one_step(step: str, engine: str, lake: Path, spec: Path, work: Path) -> dict
 
 def _child(argv: list[str]) -> tuple[dict, float, float]:
     """Run a step child; its answer, and its own CPU seconds (``os.wait4``, waited-for children included) and wall."""
+    import tempfile
+
     t0 = time.perf_counter()
-    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, text=True)
-    out = proc.stdout.read()
-    _, status, usage = os.wait4(proc.pid, 0)
-    if os.waitstatus_to_exitcode(status) != 0:
-        raise SystemExit(f"{argv[2:]}: exit {os.waitstatus_to_exitcode(status)}")
+    with tempfile.TemporaryFile("w+") as err:
+        proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=err, text=True)
+        out = proc.stdout.read()
+        _, status, usage = os.wait4(proc.pid, 0)
+        err.seek(0)
+        stderr = err.read()
+    sys.stderr.write(stderr)  # the steps' own log lines
+    sys.stderr.flush()
+    code = os.waitstatus_to_exitcode(status)
+    if code != 0:
+        raise StepFailed(argv[2:], code, last_error_line(stderr), usage.ru_utime + usage.ru_stime,
+                         time.perf_counter() - t0, usage.ru_maxrss / 1024)
     answer = json.loads(next(line for line in out.splitlines() if line.startswith(ANSWER))[len(ANSWER):])
     return answer, usage.ru_utime + usage.ru_stime, time.perf_counter() - t0
 
@@ -182,8 +196,14 @@ def main(argv: list[str] | None = None) -> int:
         shutil.rmtree(work, ignore_errors=True)
         work.mkdir()
         for step in STEPS:
-            got, child_cpu, _ = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
-                                        str(args.millions), "--engine", engine, "--step", step])
+            try:
+                got, child_cpu, _ = _child([sys.executable, __file__, "--data", str(args.data), "--millions",
+                                            str(args.millions), "--engine", engine, "--step", step])
+            except StepFailed as failed:  # the later steps need this one: the row, then the next engine
+                print(f"| {engine} | {step} FAILED (exit {failed.exit_code}) | – | {failed.rss_mib:.0f} (child) | – | – | "
+                      f"{failed.wall:.2f} (child) | {failed.cpu:.2f} | {failed.last_line.replace('|', '/')} |",
+                      flush=True)
+                break
             jvm = ((f"{got['jvm_cpu']:.2f} (+{got.get('jvm_start_cpu', float('nan')):.1f} start)",
                     f"{got['jvm_peak_mib']:.0f}") if "jvm_cpu" in got else ("-", "-"))
             print(f"| {engine} | {step} | {got['cpu']:.2f} | {got['rss_mib']:.0f} | {jvm[0]} | {jvm[1]} | "

@@ -43,6 +43,45 @@ def test_tree_memory_sums_the_processes_where_ru_maxrss_takes_the_largest():
     assert r["tree_rss_mib"] >= r["tree_pss_mib"] - 1
     assert r["tree_processes"] == 3
     assert r["peak_roles_mib"]["workers"] > 600
+    # each role's own peak RSS: the two grandchildren's arrays summed, the child itself small
+    assert r["peak_rss_by_role_mib"]["workers"] > 600
+    assert r["peak_rss_by_role_mib"]["driver"] < 200
+
+
+#: A child that starts a grandchild it never waits for and exits at once; the grandchild, orphaned,
+#: spins for about a second of CPU (as a PySpark driver leaves its JVM behind).
+_ORPHAN = """
+import subprocess, sys
+spin = "import time\\nend = time.process_time() + 1.0\\nwhile time.process_time() < end: pass"
+subprocess.Popen([sys.executable, "-c", spin])
+"""
+_MEASURE_ORPHAN = _MEASURE.replace(repr(_TREE), repr(_ORPHAN)).replace(", tree=True", "")
+
+
+def test_cpu_counts_the_orphan_a_child_leaves_behind():
+    r = json.loads(subprocess.run([sys.executable, "-c", _MEASURE_ORPHAN], check=True, capture_output=True,
+                                  text=True, timeout=300).stdout)
+    assert r["cpu_complete"]
+    # os.wait4 of the child alone sees only its own start-up; the orphan's spin is reaped here
+    assert r["cpu_orphans"] >= 0.95
+    assert r["cpu"] >= r["cpu_orphans"] + 0.01
+
+
+_FAILING = "import sys; print('step one fine', file=sys.stderr); print('bids.parquet: no column bid', file=sys.stderr); sys.exit(3)"
+
+
+_MEASURE_FAILING = _MEASURE.replace(
+    f"r = run_child([sys.executable, \"-c\", {_TREE!r}], tree=True)\nprint(json.dumps({{k: v for k, v in r.items() if k not in (\"stdout\", \"stderr\")}}))",
+    f"try:\n    run_child([sys.executable, '-c', {_FAILING!r}])\nexcept SystemExit as exc:\n    print(json.dumps(str(exc)))")
+
+
+def test_a_failed_child_ends_with_its_last_error_line_and_its_measurements():
+    # in a fresh interpreter: run_child makes its process a subreaper
+    out = subprocess.run([sys.executable, "-c", _MEASURE_FAILING], check=True, capture_output=True, text=True,
+                         timeout=300).stdout
+    last = json.loads(out).strip().splitlines()[-1]
+    assert last.startswith("bids.parquet: no column bid [exit 3 after ")
+    assert "peak RSS" in last and "CPU" in last
 
 
 def _frame():
@@ -72,3 +111,19 @@ def test_compare_frames_finds_the_largest_relative_difference_and_text_changes()
     assert found["text_differences"] == 1
     assert any("NaN on one side" in q for q in found["problems"])
     assert compare_frames(local, spark.iloc[:2])["problems"]  # a missing row is a difference, not a pass
+
+
+def test_a_failed_dag_step_reports_its_error_line_cpu_and_peak_rss():
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_dag_steps import StepFailed, _child
+
+    hungry = ("import numpy as np, sys; a = np.ones(200 * 2**20 // 8); "
+              "raise SystemExit('staging/part-007.parquet: column bid is not a number')")
+    try:
+        _child([sys.executable, "-c", hungry])
+    except StepFailed as failed:
+        assert failed.exit_code == 1
+        assert failed.last_line == "staging/part-007.parquet: column bid is not a number"
+        assert failed.rss_mib > 200 and failed.cpu > 0
+    else:
+        raise AssertionError("a failing step must raise StepFailed")
