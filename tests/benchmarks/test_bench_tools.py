@@ -12,12 +12,23 @@ import pandas as pd
 
 from .compare_engines import compare_frames
 
-#: A child that starts two grandchildren at once, each holding 300 MiB of touched memory for a second.
+#: A child that starts two grandchildren at once, each holding 300 MiB of touched memory for a second
+#: after both hold it (a file each in a shared folder is the meeting point: under load one grandchild's
+#: numpy import can outlast the other's whole life).
 _TREE = """
-import subprocess, sys
-grandchild = "import numpy as np, time; a = np.ones(300 * 2**20 // 8); time.sleep(1.0)"
-running = [subprocess.Popen([sys.executable, "-c", grandchild]) for _ in range(2)]
-assert all(p.wait(timeout=120) == 0 for p in running)
+import subprocess, sys, tempfile
+grandchild = '''
+import numpy as np, os, sys, time
+a = np.ones(300 * 2**20 // 8)
+open(os.path.join(sys.argv[1], str(os.getpid())), "w").close()
+give_up = time.monotonic() + 120
+while len(os.listdir(sys.argv[1])) < 2 and time.monotonic() < give_up:
+    time.sleep(0.01)
+time.sleep(1.0)
+'''
+meeting = tempfile.mkdtemp()
+running = [subprocess.Popen([sys.executable, "-c", grandchild, meeting]) for _ in range(2)]
+assert all(p.wait(timeout=180) == 0 for p in running)
 """
 
 
