@@ -134,3 +134,13 @@ def postgres_url(postgres_server):
     yield url
     with psycopg.connect(postgres_server, autocommit=True) as admin:
         admin.execute(f'drop database if exists "{name}" with (force)')
+
+
+@pytest.fixture(params=["duckdb", pytest.param("postgres", marks=pytest.mark.postgres)])
+def sink(request, tmp_path):
+    """A results hook on an empty DuckDB file or an empty PostgreSQL database (the test runs on each)."""
+    from counterbid.operators.hooks import ResultsHook
+
+    if request.param == "duckdb":
+        return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
+    return ResultsHook(database=request.getfixturevalue("postgres_url"))

@@ -35,7 +35,6 @@ from counterbid.estimators import (
     SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_segmented_experiment,
 )
 from counterbid.operators import partition, window_buckets, window_state
-from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.lake_hook import LakeHook
 from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.shard_step import shard_task_pieces
@@ -74,13 +73,6 @@ def lake(tmp_path_factory):
         (root / f"ds={day}").mkdir(parents=True)
         bids.to_parquet(root / f"ds={day}" / "kettles.parquet", index=False)
     return root
-
-
-@pytest.fixture(params=["duckdb", pytest.param("postgres", marks=pytest.mark.postgres)])
-def sink(request, tmp_path):
-    if request.param == "duckdb":
-        return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
-    return ResultsHook(database=request.getfixturevalue("postgres_url"))
 
 
 def _shards_estimated(lake, stage, exp, day) -> StagedPartition:

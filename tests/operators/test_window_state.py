@@ -63,13 +63,6 @@ def lake(tmp_path_factory):
     return root
 
 
-@pytest.fixture(params=["duckdb", pytest.param("postgres", marks=pytest.mark.postgres)])
-def sink(request, tmp_path):
-    if request.param == "duckdb":
-        return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
-    return ResultsHook(database=request.getfixturevalue("postgres_url"))
-
-
 def _run_day(hook, lake, exp, stage, day, run):
     partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage)
     staged = StagedPartition.at(stage, exp.id, day)

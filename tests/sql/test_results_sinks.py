@@ -64,14 +64,6 @@ def _table(hook, name, schema="main"):
     return frame
 
 
-@pytest.fixture(params=["duckdb", pytest.param("postgres", marks=pytest.mark.postgres)])
-def sink(request, tmp_path):
-    """A results hook on an empty DuckDB file or an empty PostgreSQL database."""
-    if request.param == "duckdb":
-        return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
-    return ResultsHook(database=request.getfixturevalue("postgres_url"))
-
-
 def _write_days(hook):
     for exp, ds, est in (("tiles", D1, 1.0), ("tiles", D2, 2.0), ("banners", D1, 3.0)):
         hook.replace_partition(experiment_id=exp, ds=ds, tables={

@@ -21,19 +21,11 @@ import pyarrow.parquet as pq
 import pytest
 
 from counterbid.operators import results_schema
-from counterbid.operators.hooks import ResultsHook
 from counterbid.operators.results_schema import row_batches, row_count, staged_rows
 
 DAY = dt.date(2026, 7, 14)
 WHEN = pd.Timestamp("2026-07-15 02:00", tz="UTC")
 N_ROWS, SMALL_BATCH = 1000, 37
-
-
-@pytest.fixture(params=["duckdb", pytest.param("postgres", marks=pytest.mark.postgres)])
-def sink(request, tmp_path):
-    if request.param == "duckdb":
-        return ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
-    return ResultsHook(database=request.getfixturevalue("postgres_url"))
 
 
 def _bidder_sums(*, broken_at: int | None = None) -> pa.Table:
