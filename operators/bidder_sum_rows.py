@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 from counterbid.estimators import StratumPiece
 from counterbid.estimators._ids import ids_as_text
 
-__all__ = ["BIDDER_SUM_SCHEMA", "write_bidder_sum_rows"]
+__all__ = ["BIDDER_SUM_SCHEMA", "repeated", "write_bidder_sum_rows"]
 
 #: Columns of the staged ``stratum_piece_bidder_sums`` rows (as the frame's conversion gave them).
 BIDDER_SUM_SCHEMA = pa.schema([
@@ -35,8 +35,8 @@ BIDDER_SUM_SCHEMA = pa.schema([
 ])
 
 
-def _repeated(value, n: int, type_: pa.DataType) -> pa.Array:
-    """``value`` ``n`` times (``None``: nulls), without a Python list of ``n`` items."""
+def repeated(value, n: int, type_: pa.DataType = pa.string()) -> pa.Array:
+    """``value`` ``n`` times as an Arrow array of ``type_`` (``None``: nulls), without a Python list of ``n`` items."""
     if value is None:
         return pa.nulls(n, type_)
     return pa.array([value], type_).take(pa.array(np.zeros(n, dtype=np.int32)))
@@ -79,14 +79,14 @@ def write_bidder_sum_rows(pieces: Sequence[StratumPiece], target: Path, *, exper
                     continue
                 b = len(p.bidder_ids)
                 ids = _id_text(p.bidder_ids)
-                constant = {"experiment_id": _repeated(experiment_id, b, pa.large_string()),
-                            "ds": _repeated(ds, b, pa.date32()), "n_bidders": _repeated(p.n_bidders, b, pa.int64()),
-                            "shard": _repeated(p.shard, b, pa.int64()),
-                            "segment": _repeated(p.key.segment, b, pa.large_string()),
-                            "run_id": _repeated(run_id, b, pa.large_string()),
-                            "computed_at": _repeated(when, b, BIDDER_SUM_SCHEMA.field("computed_at").type)}
+                constant = {"experiment_id": repeated(experiment_id, b, pa.large_string()),
+                            "ds": repeated(ds, b, pa.date32()), "n_bidders": repeated(p.n_bidders, b, pa.int64()),
+                            "shard": repeated(p.shard, b, pa.int64()),
+                            "segment": repeated(p.key.segment, b, pa.large_string()),
+                            "run_id": repeated(run_id, b, pa.large_string()),
+                            "computed_at": repeated(when, b, BIDDER_SUM_SCHEMA.field("computed_at").type)}
                 for j, (arm, _) in enumerate(p.sum_labels):  # label by label: the frame's row order
-                    columns = {**constant, "bidder_id": ids, "arm": _repeated(arm, b, pa.large_string()),
+                    columns = {**constant, "bidder_id": ids, "arm": repeated(arm, b, pa.large_string()),
                                "value": pa.array(np.ascontiguousarray(p.bidder_sums[:, j]), pa.float64())}
                     writer.write_table(pa.table([columns[f.name] for f in BIDDER_SUM_SCHEMA],
                                                 schema=BIDDER_SUM_SCHEMA))

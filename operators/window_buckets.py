@@ -35,6 +35,8 @@ from counterbid.estimators.keyed_gram import bucket_of
 from counterbid.estimators.window_totals import WindowTotals
 from counterbid.readers.id_hashes import fnv1a_64
 
+from .bidder_sum_rows import repeated
+
 __all__ = ["WINDOW_BUCKET_ROWS", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
            "staged_piece_rows"]
 
@@ -93,12 +95,6 @@ class TodayRows:
         yield from sorted(self.folder.glob("bucket-*"))
 
 
-def _repeated(value: str | None, n: int) -> pa.Array:
-    if value is None:
-        return pa.nulls(n, pa.string())
-    return pa.array([value], pa.string()).take(pa.array(np.zeros(n, dtype=np.int32)))
-
-
 @dataclass(frozen=True)
 class PieceRows:
     """One piece's bidders: its segment, weight inputs, ids as Arrow text and ``(B, K + 1)`` sums."""
@@ -127,7 +123,7 @@ def _weighted(pieces: Iterable[PieceRows | StratumPiece], exponent: int) -> pa.T
             raise InputError(f"bidder totals: a piece is in units of 2**{p.bid_exponent} bids, above 2**{exponent}")
         n = len(p.bidder_ids)
         w = p.n_auctions * math.ldexp(1.0, p.bid_exponent - exponent)
-        columns = {"segment": _repeated(p.segment, n), "bidder_id": p.bidder_ids.cast(pa.string())}
+        columns = {"segment": repeated(p.segment, n), "bidder_id": p.bidder_ids.cast(pa.string())}
         columns |= {f"sum_{j}": pa.array(w * p.sums[:, j], pa.float64()) for j in range(p.sums.shape[1])}
         parts.append(pa.table(columns))
         del p

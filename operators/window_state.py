@@ -48,6 +48,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.window_totals import WindowTotals
 
 from . import window_buckets
+from .bidder_sum_rows import repeated
 from .hooks import ResultsHook
 from .results_schema import WINDOW_TABLES, WindowWrite, staged_rows
 from .staged_bidder_sums import distinct_bidders, pieces_with_staged_sums, shard_file
@@ -310,7 +311,7 @@ def _grams_of_rows(rows: pd.DataFrame, gram_rows: pd.DataFrame, exponent: int, e
 def _lookup_rows(experiment: Experiment, totals: Mapping[str | None, WindowTotals]) -> pa.Table:
     """One row per (segment, bidder) of today: what the stored totals are joined on (SQL computes the key)."""
     return pa.concat_tables([
-        pa.table({"experiment_id": _repeated(experiment.id, t.bidder_ids.size), "segment": _repeated(key, t.bidder_ids.size),
+        pa.table({"experiment_id": repeated(experiment.id, t.bidder_ids.size), "segment": repeated(key, t.bidder_ids.size),
                   "bidder_key": pa.nulls(t.bidder_ids.size, pa.int64()),
                   "bidder_id": pa.array(ids_as_text(t.bidder_ids), pa.string()),
                   "sums": pa.nulls(t.bidder_ids.size, pa.list_(pa.float64()))})
@@ -359,19 +360,12 @@ def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment:
     return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=exponent)
 
 
-def _repeated(value: str | None, n: int) -> pa.Array:
-    """``value`` (``None``: null) ``n`` times as Arrow text, without a Python list of ``n`` items."""
-    if value is None:
-        return pa.nulls(n, pa.string())
-    return pa.array([value], pa.string()).take(pa.array(np.zeros(n, dtype=np.int32)))
-
-
 def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
     """One row per bidder, every label's total in the list column ``sums`` (columns of ``sums`` in stored order)."""
     n, width = sums.shape
     values = pa.array(np.ascontiguousarray(sums, dtype=float).reshape(-1), pa.float64())
     offsets = pa.array(np.arange(0, n * width + 1, width, dtype=np.int32), pa.int32())
-    return pa.table({"experiment_id": _repeated(experiment.id, n), "segment": _repeated(segment, n),
+    return pa.table({"experiment_id": repeated(experiment.id, n), "segment": repeated(segment, n),
                      "bidder_key": pa.nulls(n, pa.int64()),
                      "bidder_id": pa.array(ids_as_text(np.asarray(ids)), pa.string()),
                      "sums": pa.ListArray.from_arrays(offsets, values)})
