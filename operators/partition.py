@@ -8,6 +8,7 @@ results database in one transaction and removes the folder.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import json
 import logging
@@ -254,6 +255,18 @@ def _staged_day(staged: StagedPartition, ds: dt.date, *, manifest: bool) -> Stag
                      source=str(staged.day))
 
 
+@contextlib.contextmanager
+def _sums_staging(target: Path, tag: str, experiment_id: str, ds: dt.date, run_id: str, computed_at):
+    """A fresh folder beside ``target`` and a sink staging each shard's bidder-sum rows in it (removed after)."""
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.{tag}")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True)
+    try:
+        yield tmp, ShardRowsSink(str(tmp), experiment_id=experiment_id, ds=ds, run_id=run_id, computed_at=computed_at)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
 def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, experiment: Experiment, *, cluster: str,
                       target: Path, run_id: str, computed_at):
     """The day's pieces on Spark, their bidder sums staged at ``target`` by the executors (a folder of shard files).
@@ -262,11 +275,7 @@ def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, expe
     them) and the distinct bidders of each piece whose sums were staged (``None`` when none were).
     The folder replaces what an earlier run staged at ``target`` only once every shard is done.
     """
-    tmp = target.with_name(f".{target.name}.{os.getpid()}.spark")
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir(parents=True)
-    sink = ShardRowsSink(str(tmp), experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
-    try:
+    with _sums_staging(target, "spark", experiment.id, ds, run_id, computed_at) as (tmp, sink):
         found = engine.day_pieces(_staged_day(staged, ds, manifest=True), experiment, cluster=cluster,
                                   bidder_rows_sink=sink)
         if found.gram is None:  # some shard kept no bidder sums: the day combines by auction, as locally
@@ -277,8 +286,6 @@ def _spark_day_pieces(engine: Engine, staged: StagedPartition, ds: dt.date, expe
                                 "(a task's output is missing); run the estimate step again")
         distinct = distinct_bidders(tmp)
         install_folder(tmp, target)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
     return found, distinct
 
 
@@ -291,11 +298,7 @@ def _shard_task_day(staged: StagedPartition, experiment: Experiment, ds: dt.date
     without sums, with the day's bidder forms; the distinct bidders of each piece whose sums were
     staged (``None`` when none were: one shard, or a piece without sums).
     """
-    tmp = target.with_name(f".{target.name}.{os.getpid()}.shards")
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir(parents=True)
-    sink = ShardRowsSink(str(tmp), experiment_id=experiment.id, ds=ds, run_id=run_id, computed_at=computed_at)
-    try:
+    with _sums_staging(target, "shards", experiment.id, ds, run_id, computed_at) as (tmp, sink):
         with tempfile.TemporaryDirectory(prefix="counterbid-bidder-sums-") as spill_folder:
             found = shard_task_pieces(staged, experiment, cluster=cluster, spill_folder=Path(spill_folder),
                                       bidder_rows_sink=sink)
@@ -303,8 +306,6 @@ def _shard_task_day(staged: StagedPartition, experiment: Experiment, ds: dt.date
             return found, None
         distinct = distinct_bidders(tmp)
         install_folder(tmp, target)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
     return found, distinct
 
 
