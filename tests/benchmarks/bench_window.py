@@ -6,12 +6,17 @@ a few repeat and ``auto`` clusters by bidder), run day by day through the pipeli
 DuckDB results file: the estimate step alone in a child process (its wall time, CPU seconds and
 peak RSS from ``os.wait4``), the day's write in another (the same), and the day's load in a third
 (the validate step is recorded as passed without running the contract suite: it does not touch
-the to-date rows). ``--code`` points the
+the to-date rows). ``--route shard-tasks`` estimates the day as the daily DAG on the local engine
+(and so ``counterbid backfill``) does: one child per staged shard (the mapped ``estimate_shard``
+task), then the estimate step combining their pieces (``shard_tasks=True``) in another; the
+estimate columns are then the shard children's and the combining child's CPU summed, and the
+largest of their peak RSS. The default, ``single-task``, estimates every shard inside the estimate
+step. ``--code`` points the
 children at another checkout's packages (a folder holding ``counterbid/<package>`` links), so the
 same lake measures the code before and after a change.
 
 Usage: python tests/benchmarks/bench_window.py [--days 12] [--bids-per-day 1000000] [--data DIR]
-       [--code DIR] [--label after]
+       [--code DIR] [--label after] [--route single-task|shard-tasks]
 """
 
 from __future__ import annotations
@@ -85,8 +90,12 @@ def child(step: str, work: Path, day: str) -> dict:
         # the contract suite is not what this measures (and costs as much as the rest on a loaded
         # machine): the day is recorded as checked with no failure, as the validate step would
         out["status"] = partition.record_checks(staged, [])
-    elif step == "estimate":
-        summary = partition.estimate_partition(hook, experiment=exp, ds=ds, staging_root=stage, run_id=f"bench-{day}")
+    elif step.startswith("shard:"):  # one mapped shard task of the daily DAG
+        out["shard"] = partition.estimate_partition_shard(exp, ds=ds, staging_root=stage,
+                                                          shard=int(step.split(":", 1)[1]))["shard"]
+    elif step in ("estimate", "combine"):  # combine: the estimate step after the shard tasks
+        summary = partition.estimate_partition(hook, experiment=exp, ds=ds, staging_root=stage, run_id=f"bench-{day}",
+                                               shard_tasks=step == "combine")
         out["route"] = summary.get("bidder_window", "-")
         out["to_date_bids"] = summary.get("to_date_bids")
         out["control"] = summary.get("to_date_revenue_per_auction", {}).get("control")
@@ -110,6 +119,33 @@ def run_child(argv: list[str], env: dict) -> dict:
                                                         "cpu": usage.ru_utime + usage.ru_stime}
 
 
+def estimate_children(me: list[str], work: Path, day: str, env: dict, route: str) -> dict:
+    """The day's estimate by ``route``: the estimate step's result, with CPU summed and peak RSS the largest
+    over its children (``shard_cpu`` and ``shard_rss_mib``: the shard children's part; ``shards``: how many)."""
+    if route == "single-task":
+        return run_child([*me, "estimate", str(work), day], env) | {"shards": None, "shard_cpu": 0.0, "shard_rss_mib": 0.0}
+    shards = [run_child([*me, f"shard:{k}", str(work), day], env) for k in staged_shards(work / "stage", day)]
+    return combined(shards, run_child([*me, "combine", str(work), day], env))
+
+
+def staged_shards(stage: Path, day: str) -> list[int]:
+    """The shards the load step staged for ``day`` (``stage/bench/ds=DAY/day/shard=K``), ascending; read from
+    the folder names, so this small parent process imports no part of the library (its children's peak RSS
+    would start from it)."""
+    found = (stage / "bench" / f"ds={day}" / "day").glob("shard=*")
+    return sorted(int(p.name.split("=", 1)[1]) for p in found if p.is_dir() and p.name.split("=", 1)[1].isdigit())
+
+
+def combined(shards: list[dict], combine: dict) -> dict:
+    """The combining child's result with the shard children's CPU and wall added and the largest peak RSS."""
+    shard_cpu = sum(s["cpu"] for s in shards)
+    shard_rss = max((s["rss_mib"] for s in shards), default=0.0)
+    return combine | {"shards": len(shards), "shard_cpu": shard_cpu, "shard_rss_mib": shard_rss,
+                      "combine_cpu": combine["cpu"], "combine_rss_mib": combine["rss_mib"],
+                      "cpu": combine["cpu"] + shard_cpu, "wall": combine["wall"] + sum(s["wall"] for s in shards),
+                      "rss_mib": max(combine["rss_mib"], shard_rss)}
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--days", type=int, default=12)
@@ -117,6 +153,7 @@ def main() -> None:
     ap.add_argument("--data", type=Path, default=None)
     ap.add_argument("--code", type=Path, default=None)
     ap.add_argument("--label", default="this checkout")
+    ap.add_argument("--route", choices=("single-task", "shard-tasks"), default="single-task")
     ap.add_argument("--child", nargs=3)
     args = ap.parse_args()
     if args.child:
@@ -133,19 +170,21 @@ def main() -> None:
         env["PYTHONPATH"] = f"{args.code}{os.pathsep}{env.get('PYTHONPATH', '')}"
     me = [sys.executable, str(Path(__file__).resolve()), "--child"]
     print(f"## {args.label}: {args.days} days of {args.bids_per_day} bids\n")
-    print("| day | route | estimate wall s | estimate CPU s | estimate peak RSS MiB | write CPU s | write peak RSS MiB "
-          "| to-date bids | load avg |")
-    print("|---:|---|---:|---:|---:|---:|---:|---:|---:|")
+    print(f"estimate route: {args.route}\n")
+    print("| day | route | estimate wall s | estimate CPU s | estimate peak RSS MiB | of which shard tasks CPU s "
+          "/ peak RSS MiB | write CPU s | write peak RSS MiB | to-date bids | load avg |")
+    print("|---:|---|---:|---:|---:|---|---:|---:|---:|---:|")
     rows = []
     for k in range(args.days):
         day = str(START + dt.timedelta(days=k))
         run_child([*me, "prepare", str(work), day], env)
-        r = run_child([*me, "estimate", str(work), day], env)
+        r = estimate_children(me, work, day, env, args.route)
         # the day's write in a process of its own (CPU and peak RSS of the write step alone)
         w = run_child([*me, "write", str(work), day], env)
         r |= {"write_cpu": w["cpu"], "write_rss": w["rss_mib"]}
         rows.append(r)
-        print(f"| {k + 1} | {r['route']} | {r['wall']:.1f} | {r['cpu']:.1f} | {r['rss_mib']:.0f} | {w['cpu']:.1f} "
+        shard_part = "-" if r["shards"] is None else f"{r['shard_cpu']:.1f} / {r['shard_rss_mib']:.0f} ({r['shards']})"
+        print(f"| {k + 1} | {r['route']} | {r['wall']:.1f} | {r['cpu']:.1f} | {r['rss_mib']:.0f} | {shard_part} | {w['cpu']:.1f} "
               f"| {w['rss_mib']:.0f} | {r['to_date_bids']} | {os.getloadavg()[0]:.2f} |", flush=True)
     first, last = rows[:3], rows[-3:]
     mean = lambda rs, key: sum(r[key] for r in rs) / len(rs)  # noqa: E731

@@ -138,3 +138,24 @@ def test_a_failed_dag_step_reports_its_error_line_cpu_and_peak_rss():
         assert failed.rss_mib > 200 and failed.cpu > 0
     else:
         raise AssertionError("a failing step must raise StepFailed")
+
+
+def test_the_window_bench_adds_the_shard_tasks_to_the_estimate_step_it_reports(tmp_path):
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_window import combined, staged_shards
+
+    day = tmp_path / "bench" / "ds=2026-03-04" / "day"
+    for name in ("shard=10", "shard=2", "shard=0"):
+        (day / name).mkdir(parents=True)
+    (day / "shard=3.partial").mkdir()
+    (day / "shards.json").write_text("{}")
+    assert staged_shards(tmp_path, "2026-03-04") == [0, 2, 10]  # numeric order, staged folders only
+    assert staged_shards(tmp_path, "2026-03-05") == []
+
+    shards = [{"cpu": 2.5, "wall": 3.0, "rss_mib": 900.0}, {"cpu": 1.5, "wall": 2.0, "rss_mib": 700.0}]
+    combine = {"cpu": 4.0, "wall": 6.0, "rss_mib": 800.0, "route": "extended", "to_date_bids": 3_000_000}
+    r = combined(shards, combine)
+    assert (r["cpu"], r["wall"], r["rss_mib"]) == (8.0, 11.0, 900.0)  # CPU and wall summed, the largest peak
+    assert (r["shard_cpu"], r["shard_rss_mib"], r["shards"]) == (4.0, 900.0, 2)
+    assert (r["combine_cpu"], r["combine_rss_mib"]) == (4.0, 800.0)
+    assert r["route"] == "extended" and r["to_date_bids"] == 3_000_000
