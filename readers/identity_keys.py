@@ -241,18 +241,18 @@ def keyed_bids(path: str | Path, columns: list[str], *, source: str | None = Non
         dataset = pads.dataset(str(path), format="parquet", partitioning="hive" if path.is_dir() else None)
         if not _keyed_columns(dataset) or not {"auction_id", "bidder_id"} <= set(columns):
             return None
-        files = list(dataset.files)
         n_rows = dataset.count_rows()
+        runs = _runs_of(dataset, n_rows)  # first: a log not written in runs costs only this read
+        if runs is None:
+            return None
         with ThreadPoolExecutor(1) as pool:  # DuckDB and Arrow both work without the GIL
-            bidders = pool.submit(_bidder_labels, files, bidder_keys_only)
-            runs = _runs_of(dataset, n_rows)
-            others = None if runs is None else read_bids(
-                path, columns=[c for c in columns if c not in ("auction_id", "bidder_id")], source=source,
-                threads=threads)
+            bidders = pool.submit(_bidder_labels, list(dataset.files), bidder_keys_only)
+            others = read_bids(path, columns=[c for c in columns if c not in ("auction_id", "bidder_id")],
+                               source=source, threads=threads)
             bidder = bidders.result()
     except (InputError, pa.ArrowException, OSError, ValueError):
         return None
-    if runs is None or bidder is None or others is None or len(bidder) != n_rows or len(others) != n_rows:
+    if bidder is None or len(bidder) != n_rows or len(others) != n_rows:
         return None
     frame = others.assign(auction_id=runs.codes, bidder_id=bidder)
     return KeyedBids(frame, runs.ids)
