@@ -77,11 +77,15 @@ class LocalEngine:
     shard files, each read, estimated and freed in turn, its bidder sums set aside on disk
     (:class:`~counterbid.readers.bidder_spill.BidderSpill`, at most ``max_spill_rows`` rows added
     up at once). Bad input always gets the file-based
-    split's message: the in-memory attempt gives way to it on any input error.
+    split's message: the in-memory attempt gives way to it on any input error. ``keyed_ids``: text
+    auction and bidder ids of a log read in memory or in one piece become integers without a
+    dictionary of their text (:mod:`~counterbid.readers.identity_keys`); False keeps the dictionary
+    codes (the reference of the keyed reader in the tests).
     """
 
     name: str = "local"
     max_spill_rows: int = MAX_SPILL_ROWS
+    keyed_ids: bool = True
 
     def log_pieces(self, path: str, experiment: Experiment, *, max_bids_per_shard: int | None = None,
                    cluster: str = "auto") -> ShardPieces:
@@ -91,7 +95,8 @@ class LocalEngine:
             shards = 1  # nothing to shard by: the validation of the whole log names the missing column
         if shards > 1 and fits_in_memory(rows):
             try:
-                return pieces_in_memory(path, experiment, shards, cluster=cluster, source=str(path))
+                return pieces_in_memory(path, experiment, shards, cluster=cluster, source=str(path),
+                                        keyed_ids=self.keyed_ids)
             except InputError:
                 pass  # the file-based split below names the fault, its shard and row, as it always has
         with staged_bid_log_shards(path, shards) as shard_list, tempfile.TemporaryDirectory(
@@ -100,7 +105,8 @@ class LocalEngine:
             # bucket by bucket at the end, so memory is set by a shard, not by the day's bidders
             spill = BidderSpill(Path(spill_folder), max_rows=self.max_spill_rows) if shards > 1 else None
             found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path),
-                                    hash_bidders=shards > 1, code_bidders=shards == 1, spill=spill)
+                                    hash_bidders=shards > 1, code_bidders=shards == 1, spill=spill,
+                                    keyed_ids=self.keyed_ids)
             grams = spill.grams() if spill is not None and cluster != "auction" else None
         if grams is None:
             return ShardPieces(found.pieces, found.n_excluded_auctions, shards)

@@ -76,7 +76,7 @@ def _distinct_shards(ids, n_shards: int) -> np.ndarray:
 
     from counterbid.sql import load_sql
 
-    distinct_ids = pa.table({"id": pa.array(ids)})  # noqa: F841 -- scanned by name below
+    distinct_ids = pa.table({"id": ids if isinstance(ids, pa.Array) else pa.array(ids)})  # noqa: F841 -- scanned by name below
     con = duckdb.connect()
     try:
         con.register("distinct_ids", distinct_ids)
@@ -163,8 +163,28 @@ def _shard_pieces(bids: pd.DataFrame, order: np.ndarray, bounds: np.ndarray, pre
     return pieces, excluded, single_bidders
 
 
+def _keyed_or_plain(path, columns: list[str], n_shards: int, name: str, keyed_ids: bool):
+    """The day's frame with integer auction and bidder ids, and every row's shard.
+
+    With ``keyed_ids`` text ids are read by :func:`~counterbid.readers.identity_keys.keyed_bids`
+    (auction runs, bidder keys; the md5 shard of each run's id); otherwise, or when that reader gives
+    way, by :func:`~counterbid.readers.bid_log.read_bids` (dictionary codes): the same codes, the
+    same shards.
+    """
+    keyed = None
+    if keyed_ids:
+        from .identity_keys import keyed_bids
+
+        keyed = keyed_bids(path, columns, source=name, threads=READ_THREADS)
+    if keyed is None:
+        bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
+        return bids, row_shards(bids["auction_id"], n_shards)
+    per_auction = _distinct_shards(keyed.auction_ids, n_shards).astype(np.int16)
+    return keyed.bids, per_auction[keyed.bids["auction_id"].to_numpy()]
+
+
 def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *, cluster: str = "auto",
-                     source: str | None = None):
+                     source: str | None = None, keyed_ids: bool = True):
     """The pieces of every shard of a log split in memory (see the module notes).
 
     Parameters
@@ -177,6 +197,9 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     cluster : {'auto', 'auction', 'bidder'}
     source : str, optional
         Name of the input in messages (default ``path``).
+    keyed_ids : bool
+        Text ids through :func:`~counterbid.readers.identity_keys.keyed_bids` (default); False
+        reads them as dictionary codes (the plain reader, the reference in the tests).
 
     Returns
     -------
@@ -193,8 +216,7 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
 
     name = str(source or path)
     columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
-    bids = _integer_bidders(read_bids(path, columns=columns, source=name, threads=READ_THREADS))
-    shard = row_shards(bids["auction_id"], n_shards)
+    bids, shard = _keyed_or_plain(path, columns, n_shards, name, keyed_ids)
     order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
     # where each shard's rows start in that order: the counts' running sum (no gather of the shard column)
     bounds = np.concatenate([[0], np.cumsum(np.bincount(shard, minlength=int(n_shards)))])

@@ -243,15 +243,23 @@ def _bidder_codes(bids):
     return codes, col
 
 
-def _hashed_bidders(bids):
-    """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is."""
-    from .id_hashes import fnv1a_64
+def _hashed_bidders(bids, keyed: bool = False):
+    """``bids`` with text bidder ids replaced by their 64-bit hashes (distinct ids hashed once); else as is.
+
+    The hash is FNV-1a (:mod:`.id_hashes`), or with ``keyed`` DuckDB's key of the text
+    (:func:`~counterbid.readers.identity_keys.id_keys`): the key the keyed reader gives the same
+    id in the other shards of the run.
+    """
+    if keyed:
+        from .identity_keys import id_keys as hash_of
+    else:
+        from .id_hashes import fnv1a_64 as hash_of
 
     coded = _bidder_codes(bids)
     if coded is None:
         return None
     codes, col = coded
-    return bids.assign(bidder_id=fnv1a_64(pa.array(col.cat.categories, type=pa.large_string()))[codes])
+    return bids.assign(bidder_id=hash_of(pa.array(col.cat.categories, type=pa.large_string()))[codes])
 
 
 def _coded_bidders(bids):
@@ -291,6 +299,7 @@ def pieces_by_shard(
     hash_bidders: bool = False,
     code_bidders: bool = False,
     spill=None,
+    keyed_ids: bool = False,
 ) -> ShardPieces:
     """Read, validate and estimate each shard alone; keep only its stratum pieces.
 
@@ -322,6 +331,9 @@ def pieces_by_shard(
         Set each shard's bidder sums aside there as the shard is done
         (:class:`~counterbid.readers.bidder_spill.BidderSpill`): the pieces returned carry none,
         and ``spill.grams()`` gives the day's bidder forms, so memory is not set by the day's bidders.
+    keyed_ids : bool, optional
+        With ``code_bidders`` or ``hash_bidders``: text ids read by
+        :func:`~counterbid.readers.identity_keys.keyed_bids` (see :func:`one_shard_pieces`).
 
     Notes
     -----
@@ -335,7 +347,8 @@ def pieces_by_shard(
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         found = one_shard_pieces(k, path, experiment, cluster=cluster, day=day, where=where, alone=len(shards) == 1,
-                                 hash_bidders=hash_bidders, code_bidders=code_bidders and len(shards) == 1)
+                                 hash_bidders=hash_bidders, code_bidders=code_bidders and len(shards) == 1,
+                                 keyed_ids=keyed_ids)
         pieces += found.pieces if spill is None else spill.add(found.pieces)
         excluded += found.n_excluded_auctions
         single_bidders = single_bidders or found.single_bidders_only
@@ -367,6 +380,7 @@ def one_shard_pieces(
     hash_bidders: bool = False,
     code_bidders: bool = False,
     auction_covariance: bool = True,
+    keyed_ids: bool = False,
 ) -> OneShard:
     """Read, validate and estimate one shard; keep only its stratum pieces.
 
@@ -401,6 +415,12 @@ def one_shard_pieces(
     auction_covariance : bool
         False: a piece that keeps bidder sums leaves its auction-clustered covariance NaN
         (:func:`~counterbid.estimators.stratum_pieces`); only for pieces combined by bidder and dropped.
+    keyed_ids : bool
+        With ``code_bidders`` or ``hash_bidders`` and a path: text auction and bidder ids read as
+        integers without a dictionary of their text (:func:`~counterbid.readers.identity_keys.keyed_bids`:
+        the same codes, or DuckDB's 64-bit key of each bidder id); any fault is then read again by the
+        plain reader, whose message quotes the text (its hashed bidders then take DuckDB's key too,
+        so every shard of a run agrees).
 
     Returns
     -------
@@ -408,9 +428,22 @@ def one_shard_pieces(
     """
     in_memory = isinstance(bids, pd.DataFrame)
     where = str(where or ("bids" if in_memory else bids))
+    columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
+    if not in_memory and keyed_ids and (code_bidders or hash_bidders):
+        from .identity_keys import keyed_bids
+
+        keyed = keyed_bids(bids, columns, source=where, bidder_keys_only=not code_bidders)
+        if keyed is not None:
+            try:
+                prepared = prepare_bids(keyed.bids, experiment, source=where)
+            except InputError:  # NothingToEstimate too: the plain reader says it as it always has
+                prepared = None
+            del keyed
+            if prepared is not None:
+                return _one_shard_of(prepared, k, experiment, cluster, day, where, auction_covariance)
     if not in_memory:
-        bids = read_bids(bids, columns=["experiment_id", *BID_COLUMNS, *experiment.auction_columns], source=where)
-    hashed = _hashed_bidders(bids) if hash_bidders else _coded_bidders(bids) if code_bidders else None
+        bids = read_bids(bids, columns=columns, source=where)
+    hashed = _hashed_bidders(bids, keyed_ids) if hash_bidders else _coded_bidders(bids) if code_bidders else None
     try:
         prepared = prepare_bids(bids if hashed is None else hashed, experiment, source=where)
     except NothingToEstimate as exc:
@@ -423,6 +456,12 @@ def one_shard_pieces(
         raise
     finally:
         del bids, hashed  # only the validated arrays from here on: one shard bounds the memory
+    return _one_shard_of(prepared, k, experiment, cluster, day, where, auction_covariance)
+
+
+def _one_shard_of(prepared, k: int, experiment: Experiment, cluster: str, day, where: str,
+                  auction_covariance: bool) -> OneShard:
+    """One shard's pieces from its validated bids."""
     excluded = int(prepared.n_excluded_auctions)
     return OneShard(stratum_pieces(prepared, experiment, shard=k, day=day, cluster=cluster, source=where,
                                    auction_covariance=auction_covariance), excluded)

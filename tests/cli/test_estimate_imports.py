@@ -2,7 +2,8 @@
 
 A real process estimates a small log and reports the modules it ended with: the statistical
 checks, the simulator, the study, ``scipy.stats``, Airflow and the operators stay out; DuckDB
-stays out while the log is one shard (it computes the shard hash only when there are several).
+stays out while the log is one shard and its auction ids are integers (it computes the shard hash
+only when there are several, and keys text ids only when both identity columns are text).
 """
 
 from __future__ import annotations
