@@ -23,9 +23,10 @@ by its own ``airflow backfill create --max-active-runs``, not by this: pass 1 th
 clustering each stored row used are written beside it.
 
 Engine of the estimate step (read when the DAG is parsed only): ``COUNTERBID_ENGINE`` ``local``
-(the default: one mapped task per staged shard, ``estimate_shard``, estimates it and stages its
-pieces; the ``experiment.estimate`` step combines them, so an executor with several workers spreads
-a large day over them) or ``spark`` (the
+(the default: a day staged in several shards gets one mapped task per shard, ``estimate_shard``,
+which estimates it and stages its pieces; the ``experiment.estimate`` step combines them, so an
+executor with several workers spreads a large day over them; a day of one shard is estimated by the
+``experiment.estimate`` step itself) or ``spark`` (the
 ``spark`` extra: ``SparkEstimateArmsOperator``, through the Apache Spark provider; Spark reads
 the day's partition of ``lake_root`` itself, splits it into the shards the load step staged and
 estimates them in parallel; the numbers and stored rows are the local engine's). With ``spark``,
@@ -154,7 +155,8 @@ def counterbid_daily():
                                          clicks_root="{{ params.clicks_root }}", max_bids_per_shard=shard_setting,
                                          **paths)
             validate = ValidatePartitionOperator(task_id="validate", on_success_callback=ALERTS, **paths)
-            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, **options)
+            # a day of one shard maps no shard task (estimated here): the shard tasks may be skipped, not failed
+            estimate = EstimateArmsOperator(task_id="estimate", shard_tasks=True, trigger_rule="none_failed", **options)
         write = WriteEstimatesOperator(task_id="write", **paths)
         load >> validate >> estimate >> write
         steps.update(validate=validate, estimate=estimate, write=write)
@@ -164,10 +166,12 @@ def counterbid_daily():
     if ENGINE == "local":
         # Airflow cannot map a task inside a mapped group, so the shards of every experiment of the
         # day are one mapped task between the group's validate and estimate steps, listed after every
-        # validate step has ended (all_done), for the experiments whose checks passed only. A failed
-        # experiment's estimate is upstream_failed through its own validate step and the others go
-        # on; a shard task that fails after its retries holds back every experiment's estimate of
-        # the day (upstream_failed, so the run fails and alerts once, from the shard task).
+        # validate step has ended (all_done), for the experiments whose checks passed and that staged
+        # several shards (a one-shard day is estimated by its estimate step; when no experiment has
+        # several, no shard task is mapped and the estimate steps, trigger rule none_failed, still run).
+        # A failed experiment's estimate is upstream_failed through its own validate step and the
+        # others go on; a shard task that fails after its retries holds back every experiment's
+        # estimate of the day (upstream_failed, so the run fails and alerts once, from the shard task).
         @task(trigger_rule="all_done")
         def day_shards(params=None, ds=None, ti=None) -> list[dict]:
             from counterbid.estimators.days import parse_day
@@ -187,7 +191,7 @@ def counterbid_daily():
         estimate_shard >> steps["estimate"]
 
         # Airflow judges a run by its last tasks. When no experiment passes its checks, no shard task
-        # is mapped and the steps after it are skipped, which alone would end the run as a success:
+        # is mapped and no estimate or write runs, which alone could end the run as a success:
         # this last task is upstream_failed whenever a validate step failed (no task runs, no alert).
         @task
         def day_settled() -> None:

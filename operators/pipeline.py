@@ -68,6 +68,14 @@ def _partition():
     return partition
 
 
+def _estimate_step():
+    """The estimate step and its shard tasks (:mod:`counterbid.operators.estimate_step`), imported when
+    a task runs: without the data checks (and ``scipy.stats``) that :mod:`.partition` loads for validate."""
+    from . import estimate_step
+
+    return estimate_step
+
+
 #: Connection id of the results sink unless an operator names another: the value of
 #: :data:`counterbid.operators.hooks.DEFAULT_CONN_ID`, spelled here so that building the operators
 #: (every parse of the DAG file, and every task process before its task) leaves the hooks, DuckDB,
@@ -245,7 +253,8 @@ class EstimateArmsOperator(_PartitionOperator):
     shard_tasks : bool
         The day's shards were estimated by :class:`EstimateShardOperator` tasks (one mapped task
         per shard): combine the pieces they stored instead of estimating the shards here (the
-        same rows; a shard whose pieces are missing fails the task, naming it).
+        same rows; a shard whose pieces are missing fails the task, naming it). A day staged as
+        one shard has no shard task and is estimated here.
     """
 
     template_fields: Sequence[str] = (*_PartitionOperator.template_fields, "confidence_level", "cluster")
@@ -279,7 +288,7 @@ class EstimateArmsOperator(_PartitionOperator):
         """
         try:
             level, cluster = _level(self.confidence_level, self.task_id), _cluster(self.cluster, self.task_id)
-            out = _partition().estimate_partition(
+            out = _estimate_step().estimate_partition(
                 self.hook(), experiment=self.experiment(), ds=self.day(), staging_root=self.staging_root,
                 run_id=run_id, confidence_level=level, cluster=cluster, spark=spark, lake_root=lake_root,
                 shard_tasks=self.shard_tasks and spark is None)
@@ -329,7 +338,7 @@ class EstimateShardOperator(_PartitionOperator):
         except (TypeError, ValueError):
             raise AirflowFailException(f"{self.task_id}: `shard` must be a whole number; got {self.shard!r}") from None
         try:
-            out = _partition().estimate_partition_shard(self.experiment(), ds=self.day(), staging_root=self.staging_root,
+            out = _estimate_step().estimate_partition_shard(self.experiment(), ds=self.day(), staging_root=self.staging_root,
                                                      shard=k, cluster=_cluster(self.cluster, self.task_id))
         except InputError as exc:  # the same files fail the same way: no retry
             raise AirflowFailException(str(exc)) from None

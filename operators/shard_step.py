@@ -1,8 +1,8 @@
 """One staged shard of a day as a task of its own: estimate it, store its pieces, and read every shard's back.
 
-With the local engine the daily DAG maps one task over each staged shard
-(:class:`counterbid.operators.pipeline.EstimateShardOperator`), so a Celery or Kubernetes
-executor spreads a large day over workers. Each shard task reads only its shard, estimates its
+With the local engine the daily DAG maps one task over each staged shard of a day staged in
+several (:class:`counterbid.operators.pipeline.EstimateShardOperator`), so a Celery or Kubernetes
+executor spreads a large day over workers; a day of one shard is estimated by its estimate step. Each shard task reads only its shard, estimates its
 strata (:func:`counterbid.readers.shards.one_shard_pieces`) and stores the pieces as Parquet
 frames (:func:`counterbid.estimators.pieces_to_frames`) in ``day/pieces/shard=K/`` of the staging
 folder, with a small record (``shard.json``); the per-bidder sums, when kept, go to one wide file
@@ -260,9 +260,11 @@ def shard_task_pieces(staged: StagedPartition, experiment: Experiment, *, cluste
 
 
 def validated_shards(staging_root: str | Path, ds: dt.date, experiment_ids: Iterable[str]) -> list[dict]:
-    """One ``{"experiment_id", "shard"}`` per staged shard of each experiment given (validated this run).
+    """One ``{"experiment_id", "shard"}`` per staged shard of each experiment given that staged several.
 
-    What the DAG maps the shard tasks over.
+    What the DAG maps the shard tasks over. A day staged as one shard fits one task's memory
+    budget: its estimate step estimates it (``estimate_partition(shard_tasks=True)`` does so for a
+    one-shard day), so it gets no shard task, and its bidder sums are not stored and read back.
 
     Parameters
     ----------
@@ -274,7 +276,7 @@ def validated_shards(staging_root: str | Path, ds: dt.date, experiment_ids: Iter
     Returns
     -------
     list of dict
-        By experiment, then shard: small, fit for XCom.
+        By experiment, then shard: small, fit for XCom. Empty when every experiment staged one shard.
     """
-    return [{"experiment_id": e, "shard": k} for e in experiment_ids
-            for k in StagedPartition.at(staging_root, e, ds).shards()]
+    staged = {e: StagedPartition.at(staging_root, e, ds).shards() for e in experiment_ids}
+    return [{"experiment_id": e, "shard": k} for e, shards in staged.items() if len(shards) > 1 for k in shards]

@@ -301,15 +301,16 @@ def through_steps(args, steps: list[str]) -> None:
 
 
 def _expanded(steps: list[str], args) -> list[str]:
-    """``shards`` as one ``estimate_shard_K`` per shard staged when it is reached (after the load step ran)."""
+    """``shards`` as one ``estimate_shard_K`` per shard the DAG maps a task over when it is reached (after
+    the load step ran): none for a day staged as one shard, which the estimate step estimates itself."""
     for step in steps:
         if step != "shards":
             yield step
             continue
-        from counterbid.operators.staging import StagedPartition
+        from counterbid.operators.shard_step import validated_shards
 
         work = args.data / f"run_{args.millions}M_{args.mode}"
-        yield from (f"estimate_shard_{k}" for k in StagedPartition.at(work / "staging", "shelfmix", DAY).shards())
+        yield from (f"estimate_shard_{s['shard']}" for s in validated_shards(work / "staging", DAY, ["shelfmix"]))
 
 
 if __name__ == "__main__":

@@ -78,6 +78,8 @@ def test_dag_imports_without_errors_or_cycles(bag):
     assert dag.get_task("day_settled").upstream_task_ids == {"experiment.validate", "experiment.write"}
     assert dag.get_task("experiment.estimate").upstream_task_ids == {"active_experiments", "experiment.validate",
                                                                       "estimate_shard"}
+    # a day of one shard maps no shard task (skipped): the estimate step still runs, never after a failure
+    assert dag.get_task("experiment.estimate").trigger_rule == "none_failed"
     assert dag.get_task("experiment.write").upstream_task_ids == {"active_experiments", "experiment.estimate"}
 
 
@@ -121,6 +123,11 @@ def test_three_days_match_estimate_arms_and_the_pieces_of_the_window(three_days)
     days in the window (the first day is a warm-up day, left out), computed here from the lake."""
     root, conf, experiments, runs = three_days
     assert [r.state for r in runs] == ["success"] * 3, [r.line() for r in runs]
+    for run in runs:  # each day is one shard: no shard task is mapped; each experiment's estimate step estimates it
+        states = sorted((task_id, state) for task_id, _, state, _ in run.tasks
+                        if task_id in ("estimate_shard", "experiment.estimate"))
+        assert states == [("estimate_shard", "skipped"), ("experiment.estimate", "success"),
+                          ("experiment.estimate", "success")], run.tasks
     daily = _table(conf["results_database"], "arm_estimates")
     to_date = _table(conf["results_database"], "arm_estimates_to_date")
     lake = _lake(root)

@@ -263,9 +263,9 @@ def test_bad_bids_stop_both_settings_at_validate_with_the_same_line(spark_engine
         out = capfd.readouterr()
         states = {t: s for t, _, s, _ in run.tasks}
         assert run.state == "failed" and states["experiment.validate"] == "failed", states
-        # local engine: no experiment passed, so no shard task is mapped and Airflow skips the steps
-        # after the shard tasks (day_settled fails the run instead); Spark has no shard tasks
-        assert states["experiment.estimate"] == ("skipped" if engine == "local" else "upstream_failed"), states
+        # both engines: the estimate step is held back by its failed validate step (local engine: no
+        # experiment passed, so no shard task is mapped either, and day_settled fails the run too)
+        assert states["experiment.estimate"] == "upstream_failed", states
         assert engine == "spark" or states["day_settled"] == "upstream_failed", states
         text = out.out + out.err + caplog.text
         # the alert's line up to its details (the local route's details also name the staged shard file)

@@ -113,6 +113,13 @@ def test_bounds_are_estimate_plus_minus_multiplier_times_se():
     np.testing.assert_allclose(ratios, [1.6588, 1.5708, 1.5486], atol=1e-4)
 
 
+@pytest.mark.parametrize("level", [0.5, 0.8, 0.9, 0.95, 0.975, 0.99, 0.999])
+def test_fixed_multiplier_is_the_normal_quantile_to_the_last_bit(level):
+    # computed with scipy.special.ndtri (the estimate step leaves scipy.stats unloaded): the plain formula
+    b = anytime_bounds(0.0, 1.0, units=7, planned_units=28, confidence_level=level)
+    assert b.fixed_multiplier == float(st.norm.ppf(0.5 + level / 2))
+
+
 @pytest.mark.parametrize("kwargs, match", [
     (dict(units=0, planned_units=10), "`units` must be a finite number > 0"),
     (dict(units=5, planned_units=float("nan")), "`planned_units` must be a finite number > 0"),

@@ -173,6 +173,45 @@ print(",".join(m for m in ("counterbid.operators.partition", "counterbid.operato
     assert loaded == "-"
 
 
+def test_the_estimate_task_estimates_a_one_shard_day_without_loading_the_checks(tmp_path):
+    # a fresh interpreter, as a task process is: the DAG's estimate operator (shard tasks on) estimates a
+    # day staged as one shard itself -- no shard task ran -- and leaves the checks, scipy.stats and Great
+    # Expectations unloaded
+    import subprocess
+    import sys
+
+    from counterbid.operators import partition
+    from counterbid.operators.hooks import ResultsHook
+    from counterbid.operators.lake_hook import LakeHook
+    from counterbid.operators.staging import StagedPartition
+
+    lake, spec, stage, results = tmp_path / "bids", tmp_path / "spec.yaml", tmp_path / "stage", tmp_path / "r.duckdb"
+    spec.write_text(SPEC_TEXT)
+    experiment = load_experiments(spec)["tiles"]
+    write_bid_lake(lake, [experiment], start=START, days=1, auctions_per_day=400, n_bidders=3, seed=9)
+    partition.stage_partition(LakeHook(), lake_root=lake, experiment=experiment, ds=START, staging_root=stage)
+    staged = StagedPartition.at(stage, "tiles", START)
+    checks = partition.run_partition_checks(ResultsHook(database=str(results)), LakeHook(), experiment=experiment,
+                                            staged=staged, ds=START)
+    partition.record_checks(staged, checks)
+    probe = f"""
+import json, sys
+from counterbid.operators.pipeline import EstimateArmsOperator
+op = EstimateArmsOperator(task_id="estimate", experiment_id="tiles", spec_path={str(spec)!r}, shard_tasks=True,
+                          staging_root={str(stage)!r}, results_database={str(results)!r}, ds="{START}")
+print(json.dumps(op.execute({{"run_id": "e1"}})))
+print(",".join(m for m in ("counterbid.operators.partition", "counterbid.operators.check_runner",
+                           "counterbid.estimators.checks", "scipy.stats", "great_expectations") if m in sys.modules) or "-")
+"""
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    summary, loaded = done.stdout.split("\n")[-3:-1]
+    summary = json.loads(summary)
+    assert summary["shards"] == 1 and summary["day_bids"] == 1200 and summary["engine"] == "local"
+    assert staged.estimates_day.exists() and not (staged.day / "pieces").exists()
+    assert loaded == "-"
+
+
 def test_the_write_task_stores_a_day_without_loading_the_checks(tmp_path):
     # a fresh interpreter, as a task process is: the write operator stores the staged day (every
     # results table its rows) and leaves the partition steps, the checks and scipy.stats unloaded

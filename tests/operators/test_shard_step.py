@@ -108,16 +108,27 @@ def test_shard_tasks_give_the_single_task_rows(lake, experiment, tmp_path, clust
     assert sorted(want["stratum_pieces"]["shard"].unique()) == [0, 1, 2, 3]
 
 
-def test_one_shard_is_one_task_and_gives_the_single_task_rows(lake, experiment, tmp_path):
+def test_one_shard_has_no_shard_task_and_the_estimate_step_gives_the_single_task_rows(lake, experiment, tmp_path):
+    """A day staged as one shard maps no shard task: the estimate step estimates it itself (nothing of it
+    is stored as pieces and read back), the single task's rows; a day of several shards still needs every
+    shard task's pieces."""
     hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
     stage = tmp_path / "stage"
     staged, shards = _checked_day(lake, experiment, stage, START, None)
-    assert shards == 1 and validated_shards(stage, START, ["lanterns"]) == [{"experiment_id": "lanterns", "shard": 0}]
+    assert shards == 1 and validated_shards(stage, START, ["lanterns"]) == []
     partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=stage, run_id="r")
     want = _outputs(staged)
-    partition.estimate_partition_shard(experiment, ds=START, staging_root=stage, shard=0)
+    assert len(want["stratum_piece_bidder_sums"]) > 0  # bidder ids repeat: 'auto' clusters by bidder
     partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=stage, run_id="r", shard_tasks=True)
+    assert not (staged.day / "pieces").exists()
     _assert_same(_outputs(staged), want)
+    # an experiment of several shards beside it is listed shard by shard, and its shard tasks stay required
+    other = tmp_path / "stage-two"
+    _checked_day(lake, experiment, other, START, 5000)
+    assert validated_shards(other, START, ["lanterns"]) == [{"experiment_id": "lanterns", "shard": k} for k in (0, 1)]
+    with pytest.raises(InputError, match="the pieces of shard 0 of 2 of experiment 'lanterns' are missing"):
+        partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=other, run_id="r",
+                                     shard_tasks=True)
 
 
 def test_a_retried_shard_replaces_its_pieces_and_a_missing_shard_is_named(lake, experiment, tmp_path):
