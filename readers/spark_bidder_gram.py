@@ -52,8 +52,8 @@ from counterbid.estimators import BidderGram, StratumPiece
 
 from .id_hashes import fnv1a_64
 
-__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_buckets", "bidder_keys", "bidder_rows", "bidder_table", "combined_gram",
-           "combined_grams", "ids_text", "partition_gram"]
+__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_buckets", "bidder_keys", "bidder_rows", "bidder_table",
+           "combined_gram", "combined_grams", "ids_text", "partition_gram"]
 
 #: Columns of a shard's packed bidder rows (null on its answer row), one row per (segment, bucket):
 #: ``bidder_bucket`` the bucket, ``bidder_segment`` null unless segmented, ``bidder_unit`` the unit

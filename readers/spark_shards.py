@@ -472,12 +472,14 @@ _PARTITION_KEYS: dict[int, dict[int, int]] = {}
 
 
 def _partition_key(spark, shards: int, column: str = "shard"):
-    """The column that puts each shard (each value ``k`` of ``column``) in partition ``k`` under ``repartition(shards, key)``.
+    """The column that puts each value ``k`` of ``column`` in partition ``k`` under ``repartition(shards, key)``.
 
     Spark's hash repartition by the shard itself would put two shards in one partition and leave
     another empty about as often as not (``pmod(hash(shard), n)`` is no permutation); keyed by
     ``sql/spark_shard_partition_keys.spark.sql``'s key of partition ``k``, shard ``k``'s rows go to
-    partition ``k``. Falls back to the shard itself when some partition has no key.
+    partition ``k``. Falls back to ``column`` itself when some partition has no key. The Gram step
+    places the bidder buckets the same way (``column="bidder_bucket"``). A null value (an answer
+    row of the Gram step) goes to one partition, whichever.
     """
     from pyspark.sql import functions as F
 
@@ -583,7 +585,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         parts = sharded.select(*selected, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
         with _quiet_pyspark():
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
-            if bidder_gram:  # bucket k's rows (every row of its bidders) in partition k: one Gram row each to the driver
+            if bidder_gram:  # bucket k's rows (all of its bidders') in partition k: one Gram row each to the driver
                 out = out.repartition(int(shards), _partition_key(spark, shards, "bidder_bucket"))
                 out = out.mapInArrow(one_partition, _COLLECTED)
             rows = _collect(out)

@@ -312,7 +312,7 @@ def test_segmented_bidder_clustering_on_spark_equals_the_local_engine(spark, tmp
 
 
 def test_packed_rows_hold_every_bidder_once_in_its_bucket():
-    """A shard's keys and sums packed per bucket unpack to the same rows, each key in the bucket of its unsigned value."""
+    """A shard's keys and sums packed per bucket unpack to the same rows, each key in its unsigned value's bucket."""
     rng = np.random.default_rng(3)
     keys = rng.integers(np.iinfo(np.int64).min, np.iinfo(np.int64).max, size=2001, dtype=np.int64)
     keys[:3] = [-1, 0, np.iinfo(np.int64).min]  # negative keys: buckets of the unsigned value
@@ -320,11 +320,13 @@ def test_packed_rows_hold_every_bidder_once_in_its_bucket():
     sums[5, 2], sums[9, 0] = -0.0, np.finfo(float).tiny
     rows = bidder_table(keys, -4, sums, 7, _answer_schema(), segment="dock", buckets=5)
     assert rows.num_rows == 5 and rows.column("shard").to_pylist() == [7] * 5
-    assert rows.column("bidder_unit").to_pylist() == [-4] * 5 and rows.column("bidder_segment").to_pylist() == ["dock"] * 5
+    assert rows.column("bidder_unit").to_pylist() == [-4] * 5
+    assert rows.column("bidder_segment").to_pylist() == ["dock"] * 5
     assert rows.column("n_bids").null_count == 5
     got_keys, got_sums = [], []
-    for bucket, packed_keys, packed_sums in zip(rows.column("bidder_bucket").to_pylist(),
-                                                rows.column("bidder_keys").to_pylist(), rows.column("bidder_sums").to_pylist()):
+    packed = zip(rows.column("bidder_bucket").to_pylist(), rows.column("bidder_keys").to_pylist(),
+                 rows.column("bidder_sums").to_pylist())
+    for bucket, packed_keys, packed_sums in packed:
         mine = np.frombuffer(packed_keys, "<i8")
         assert ((mine.view(np.uint64) % np.uint64(5)) == bucket).all()
         got_keys.append(mine)
@@ -359,8 +361,9 @@ def test_the_partition_form_does_not_depend_on_the_order_rows_arrive_in(tmp_path
         np.testing.assert_array_equal(form, forms[0])
     plain = gram_of(bidder_totals(found.pieces))
     size = len(found.pieces[0].sum_labels)
-    np.testing.assert_allclose(combined_gram([(plain.n_bidders, int(got.column("part_unit")[0].as_py()), forms[0])], size,
-                                             plain.bid_exponent).gram, plain.gram, rtol=1e-12, atol=0)
+    unit = int(got.column("part_unit")[0].as_py())
+    gram = combined_gram([(plain.n_bidders, unit, forms[0])], size, plain.bid_exponent)
+    np.testing.assert_allclose(gram.gram, plain.gram, rtol=1e-12, atol=0)
 
 
 def test_packed_sums_of_another_width_are_refused():
