@@ -189,7 +189,9 @@ def bidder_table(keys: np.ndarray, unit: int, sums: np.ndarray, shard: int, answ
         ``bidder_keys`` and ``bidder_sums`` the bucket's keys and sums, in the order of ``keys``.
     """
     keys = np.asarray(keys, dtype=np.int64)
-    sums = np.asarray(sums, dtype=float).reshape(len(keys), -1)
+    sums = np.asarray(sums, dtype=float)
+    if sums.ndim != 2 or sums.shape[0] != keys.size:
+        raise ValueError(f"bidder rows: sums of shape {sums.shape} for {keys.size} keys")
     bucket = bidder_buckets(keys, buckets)
     order = np.argsort(bucket, kind="stable")  # each bucket's rows keep their order
     bounds = np.searchsorted(bucket[order], np.arange(int(buckets) + 1))

@@ -372,3 +372,6 @@ def test_packed_sums_of_another_width_are_refused():
                              bidder_table(np.arange(4, 8), 0, np.ones((4, 2)), 1, schema)])
     with pytest.raises(ValueError, match="same number of values"):
         list(partition_gram(iter(rows.to_batches()), _answer_schema(with_gram=True)))
+    with pytest.raises(ValueError, match="sums of shape"):
+        bidder_table(np.arange(3), 0, np.ones(3), 0, schema)
+    assert bidder_table(np.zeros(0, np.int64), 0, np.zeros((0, 3)), 0, schema, buckets=4).num_rows == 0
