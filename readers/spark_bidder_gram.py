@@ -7,16 +7,20 @@ so the shards' sums must meet on the bidder before they are squared. On Spark:
 
 1. each shard's worker adds its pieces' bidder sums per bidder (in units of ``2**e`` with ``e``
    the shard's largest bid exponent: :func:`bidder_rows`, whose plain formula is
-   :func:`counterbid.estimators.bidder_totals` on the ids' text) and returns them as rows
-   (bidder key, unit, sums) beside its pieces, which travel without their bidder sums. The key
+   :func:`counterbid.estimators.bidder_totals` on the ids' text) and returns them beside its
+   pieces, which travel without their bidder sums, as a few rows of packed columns: one row per
+   bidder bucket (the key modulo the number of buckets, :func:`bidder_buckets`) holding that
+   bucket's keys and sums as two binary values (:func:`bidder_table`). Spark then moves a handful of
+   large values per shard, not one row per bidder (most bidders of a text-id day bid once). The key
    is a 64-bit integer: an integer id itself, a text id's FNV-1a hash
    (:func:`counterbid.readers.id_hashes.fnv1a_64`), so the shuffle moves no text; one input
    has one type of bidder id (Spark reads it with one schema). Two text ids of one hash would
    be one bidder of the Gram form, with probability at most ``n (n - 1) / 2**65`` for ``n``
    distinct ids (the birthday bound; 2.7e-4 at 10**8 ids), as on the local engine's shards;
-2. Spark repartitions those rows by bidder key, so every bidder's rows meet in one partition;
-   each partition's worker adds them per bidder and returns one row: its bidders' count and
-   ``sum_b U_b U_b'`` in units of ``2**(2 e_p)`` (:func:`partition_gram`);
+2. Spark repartitions those rows by bucket, so every bidder's rows meet in one partition;
+   each partition's worker unpacks them, adds them per bidder (shards in ascending order, so the
+   result does not depend on the order in which the shuffle delivers them) and returns one row:
+   its bidders' count and ``sum_b U_b U_b'`` in units of ``2**(2 e_p)`` (:func:`partition_gram`);
 3. the driver adds the partitions' forms, each rescaled by a power of two
    (:func:`combined_gram`; exact unless it under- or overflows).
 
@@ -48,13 +52,15 @@ from counterbid.estimators import BidderGram, StratumPiece
 
 from .id_hashes import fnv1a_64
 
-__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_keys", "bidder_rows", "bidder_table", "combined_gram", "combined_grams",
-           "ids_text", "partition_gram"]
+__all__ = ["BIDDER_COLUMNS", "GRAM_COLUMNS", "bidder_buckets", "bidder_keys", "bidder_rows", "bidder_table",
+           "combined_gram", "combined_grams", "ids_text", "partition_gram"]
 
-#: Columns of a shard's per-bidder rows (null on its answer row); ``bidder_segment`` is null unless segmented.
-#: ``bidder_sums`` holds a row's ``K + 1`` float64 sums as bytes (little-endian): Spark moves a binary
-#: value as one copy, an array of doubles element by element.
-BIDDER_COLUMNS = "bidder_key long, bidder_segment string, bidder_unit int, bidder_sums binary"
+#: Columns of a shard's packed bidder rows (null on its answer row), one row per (segment, bucket):
+#: ``bidder_bucket`` the bucket, ``bidder_segment`` null unless segmented, ``bidder_unit`` the unit
+#: exponent of the sums, ``bidder_keys`` the bucket's ``B`` int64 keys and ``bidder_sums`` their
+#: ``B x (K + 1)`` float64 sums (row-major), both as little-endian bytes: Spark moves a binary value
+#: as one copy, where one row per bidder costs it a row's work per bidder.
+BIDDER_COLUMNS = "bidder_bucket int, bidder_segment string, bidder_unit int, bidder_keys binary, bidder_sums binary"
 #: Columns of a partition's Gram rows (null on the answer rows passed through): ``part_segment``
 #: null for the pooled form (every segment together), else the segment label of the form.
 GRAM_COLUMNS = "part_segment string, part_bidders long, part_unit int, part_gram array<double>"
@@ -123,26 +129,30 @@ def bidder_rows(pieces: Sequence[StratumPiece]) -> tuple[np.ndarray, int, np.nda
     return uniques.astype(np.int64), int(unit), sums.T.copy()
 
 
-def _bytes_column(matrix: np.ndarray) -> pa.Array:
-    """Rows of a 2-D float array as an Arrow binary column, each row's values as little-endian float64 bytes."""
-    rows, width = matrix.shape
-    data = np.ascontiguousarray(matrix, dtype="<f8")
-    offsets = np.arange(rows + 1, dtype=np.int32) * (width * 8)
-    return pa.Array.from_buffers(pa.binary(), rows, [None, pa.py_buffer(offsets), pa.py_buffer(data)])
+def bidder_buckets(keys: np.ndarray, buckets: int) -> np.ndarray:
+    """The bucket ``0 .. buckets - 1`` of each 64-bit bidder key: the key as an unsigned integer, modulo ``buckets``.
+
+    Every shard puts a bidder in the same bucket, so a bucket's rows of all shards hold every row
+    of its bidders.
+    """
+    if int(buckets) < 1:
+        raise ValueError(f"bidder buckets: need at least one, got {buckets}")
+    return (np.asarray(keys, dtype=np.int64).view(np.uint64) % np.uint64(int(buckets))).astype(np.int32)
 
 
-def _bytes_rows(column: pa.Array) -> np.ndarray:
-    """The ``(rows, K + 1)`` float64 matrix of a binary column of :func:`_bytes_column` (no nulls; every row one width)."""
-    wide = pa.types.is_large_binary(column.type)
-    offsets = np.frombuffer(column.buffers()[1], dtype=np.int64 if wide else np.int32)
-    offsets = offsets[column.offset:column.offset + len(column) + 1].astype(np.int64)
-    lengths = np.diff(offsets)
-    if len(column) == 0:
-        return np.zeros((0, 0))
-    if not (lengths == lengths[0]).all() or lengths[0] % 8:
-        raise ValueError("bidder sums: the rows do not all hold the same number of float64 values")
-    data = np.frombuffer(column.buffers()[2], dtype=np.uint8)[offsets[0]:offsets[-1]]
-    return data.view("<f8").reshape(len(column), int(lengths[0]) // 8).astype(float)
+def _packed(values: np.ndarray, dtype: str) -> bytes:
+    """``values`` as little-endian bytes of ``dtype`` (row-major)."""
+    return np.ascontiguousarray(values, dtype=dtype).tobytes()
+
+
+def _unpacked(value: pa.Scalar, dtype: str) -> np.ndarray:
+    """The values of one binary value of :func:`_packed` (no copy), flat; empty when null."""
+    if not value.is_valid:
+        return np.zeros(0, dtype=dtype)
+    buffer = value.as_buffer()
+    if buffer.size % np.dtype(dtype).itemsize:
+        raise ValueError(f"bidder rows: a packed value of {buffer.size} bytes is not a whole number of {dtype} values")
+    return np.frombuffer(buffer, dtype=dtype)
 
 
 def _list_column(matrix: np.ndarray) -> pa.Array:
@@ -153,57 +163,101 @@ def _list_column(matrix: np.ndarray) -> pa.Array:
 
 
 def bidder_table(keys: np.ndarray, unit: int, sums: np.ndarray, shard: int, answer_schema: pa.Schema,
-                 segment: str | None = None) -> pa.Table:
-    """The per-bidder rows of one shard (of one segment's pieces when ``segment``), in the answer's schema.
+                 segment: str | None = None, buckets: int = 1) -> pa.Table:
+    """One shard's bidder rows (of one segment's pieces when ``segment``), packed per bucket, in the answer's schema.
 
-    Answer columns are null but ``shard``; ``bidder_segment`` is ``segment`` (null when not segmented).
+    Parameters
+    ----------
+    keys : numpy.ndarray of int64
+        The shard's ``B`` bidder keys (:func:`bidder_rows`).
+    unit : int
+        Unit exponent of ``sums``.
+    sums : numpy.ndarray
+        ``(B, K + 1)`` sums, row ``i`` bidder ``keys[i]``'s.
+    shard : int
+    answer_schema : pyarrow.Schema
+        Columns of the answer (:data:`BIDDER_COLUMNS` among them).
+    segment : str, optional
+        The segment of the rows (null when not segmented).
+    buckets : int
+        Number of buckets (:func:`bidder_buckets`); the Gram step's partitions.
+
+    Returns
+    -------
+    pyarrow.Table
+        One row per bucket holding some of the keys: answer columns null but ``shard``;
+        ``bidder_keys`` and ``bidder_sums`` the bucket's keys and sums, in the order of ``keys``.
     """
-    n = len(keys)
+    keys = np.asarray(keys, dtype=np.int64)
+    sums = np.asarray(sums, dtype=float)
+    if sums.ndim != 2 or sums.shape[0] != keys.size:
+        raise ValueError(f"bidder rows: sums of shape {sums.shape} for {keys.size} keys")
+    bucket = bidder_buckets(keys, buckets)
+    order = np.argsort(bucket, kind="stable")  # each bucket's rows keep their order
+    bounds = np.searchsorted(bucket[order], np.arange(int(buckets) + 1))
+    held = [b for b in range(int(buckets)) if bounds[b + 1] > bounds[b]]
+    n = len(held)
     columns = {}
     for field in answer_schema:
         if field.name == "shard":
             columns["shard"] = pa.array(np.full(n, shard, dtype=np.int64))
-        elif field.name == "bidder_key":
-            columns["bidder_key"] = pa.array(np.asarray(keys, dtype=np.int64), pa.int64())
+        elif field.name == "bidder_bucket":
+            columns["bidder_bucket"] = pa.array(np.asarray(held, dtype=np.int32), pa.int32())
         elif field.name == "bidder_segment":
             columns["bidder_segment"] = pa.array([segment] * n, pa.string())
         elif field.name == "bidder_unit":
             columns["bidder_unit"] = pa.array(np.full(n, unit, dtype=np.int32))
+        elif field.name == "bidder_keys":
+            columns["bidder_keys"] = pa.array([_packed(keys[order[bounds[b]:bounds[b + 1]]], "<i8") for b in held],
+                                              pa.binary())
         elif field.name == "bidder_sums":
-            columns["bidder_sums"] = _bytes_column(sums)
+            columns["bidder_sums"] = pa.array([_packed(sums[order[bounds[b]:bounds[b + 1]]], "<f8") for b in held],
+                                              pa.binary())
         else:
             columns[field.name] = pa.nulls(n, field.type)
     return pa.table(columns, schema=answer_schema)
 
 
 def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> Iterator[pa.RecordBatch]:
-    """One partition of the shards' rows, by bidder: answer rows passed through, bidder rows into Gram rows.
+    """One partition of the shards' rows, by bucket: answer rows passed through, bidder rows into Gram rows.
 
-    Every bidder's rows are in this partition (Spark partitioned them by ``bidder_key``). A row is
-    one bidder's totals over one shard's pieces (of one segment, when the experiment is
-    segmented). The pooled form adds every row of a bidder, whatever its segment (a bidder's
-    ``U_b`` is the sum of its per-segment totals: the strata of the segments partition the
-    strata); each segment's form adds only that segment's rows. Each form is added in its rows'
-    largest unit ``2**e`` and squared: ``part_gram = sum_b U_b U_b'`` (row-major),
-    ``part_bidders = B``, ``part_unit = e``, ``part_segment`` null for the pooled form.
+    Every bidder's rows are in this partition (Spark partitioned them by ``bidder_bucket``). A
+    packed row holds one shard's totals of its bidders of one bucket (of one segment, when the
+    experiment is segmented). The pooled form adds every total of a bidder, whatever its segment
+    (a bidder's ``U_b`` is the sum of its per-segment totals: the strata of the segments partition
+    the strata); each segment's form adds only that segment's totals. Rows are unpacked in order of
+    shard, segment and bucket, whatever order they arrived in, so a bidder's totals are added in one
+    order. Each form is added in its rows' largest unit ``2**e`` and squared: ``part_gram = sum_b
+    U_b U_b'`` (row-major), ``part_bidders = B``, ``part_unit = e``, ``part_segment`` null for the
+    pooled form.
     """
-    ids, segments, units, sums = [], [], [], []
+    packed = []
     for batch in batches:
         table = pa.Table.from_batches([batch])
-        answer = table.column("bidder_key").is_null()
+        answer = table.column("bidder_keys").is_null()
         if pc.any(answer).as_py():
             rows = table.filter(answer)
             yield from _in_schema(rows, out_schema).to_batches()
             table = table.filter(pc.invert(answer))
-        if table.num_rows:
-            ids.append(table.column("bidder_key").to_numpy())
-            segments.append(table.column("bidder_segment").to_numpy(zero_copy_only=False))
-            units.append(table.column("bidder_unit").to_numpy())
-            sums.append(_bytes_rows(table.column("bidder_sums").combine_chunks()))
-    if not ids:
+        for i in range(table.num_rows):
+            segment = table.column("bidder_segment")[i].as_py()
+            packed.append(((int(table.column("shard")[i].as_py()), segment is not None, segment or "",
+                            int(table.column("bidder_bucket")[i].as_py())),
+                           segment, int(table.column("bidder_unit")[i].as_py()),
+                           _unpacked(table.column("bidder_keys")[i], "<i8"),
+                           _unpacked(table.column("bidder_sums")[i], "<f8")))
+    packed = [row for row in packed if row[3].size]
+    if not packed:
         return
-    id_of_row, segment_of_row = np.concatenate(ids), np.concatenate(segments)
-    unit_of_row, sums_of_row = np.concatenate(units), np.concatenate(sums)
+    packed.sort(key=lambda row: row[0])
+    width = packed[0][4].size // packed[0][3].size
+    if any(row[4].size != row[3].size * width for row in packed):
+        raise ValueError("bidder rows: the packed sums do not all hold the same number of values per bidder")
+    id_of_row = np.concatenate([row[3] for row in packed])
+    segment_of_row = np.repeat(np.array([row[1] for row in packed], dtype=object), [row[3].size for row in packed])
+    unit_of_row = np.repeat(np.array([row[2] for row in packed], dtype=np.int64), [row[3].size for row in packed])
+    sums_of_row = np.concatenate([row[4].reshape(-1, width) for row in packed])
+    del packed
     forms = [(None, slice(None))]
     labels = pd.unique(segment_of_row[pd.notna(segment_of_row)])
     forms += [(str(label), segment_of_row == label) for label in sorted(labels)]

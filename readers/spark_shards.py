@@ -379,11 +379,13 @@ def _shard_names(several: bool):
 
 
 def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day, source: str, multi: bool,
-                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None, coded=None) -> pa.Table:
+                  columns: list[str], sums_apart: bool = False, bidder_rows_sink=None, coded=None,
+                  buckets: int = 1) -> pa.Table:
     """One shard, in a Spark worker: its rows in read order, validated and estimated; an error is an answer too.
 
     With ``sums_apart``, pieces that carry bidder sums travel without them and the shard's
-    per-bidder totals follow the answer row as rows of their own (:mod:`.spark_bidder_gram`).
+    per-bidder totals follow the answer row, packed in one row per bidder bucket of ``buckets``
+    (:func:`~.spark_bidder_gram.bidder_table`).
     With ``bidder_rows_sink`` too, the worker first hands the shard's pieces, with their bidder
     sums, to ``bidder_rows_sink(shard, pieces)`` (which stores them: the sums never reach the driver).
     """
@@ -423,7 +425,7 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
     if sums_apart and with_sums:  # one set of rows per segment (one set when not segmented)
         for label in sorted({p.key.segment for p in pieces}, key=lambda v: (v is not None, v or "")):
             ids, unit, sums = bidder_rows([p for p in pieces if p.key.segment == label])
-            per_bidder.append(bidder_table(ids, unit, sums, shard, schema, segment=label))
+            per_bidder.append(bidder_table(ids, unit, sums, shard, schema, segment=label, buckets=buckets))
         pieces = [p.without_bidder_sums() for p in pieces]
     answer = pa.table({
         "shard": pa.array([shard], pa.int64()), "n_bids": pa.array([n_bids], pa.int64()),
@@ -432,8 +434,9 @@ def _shard_answer(table: pa.Table, *, experiment: Experiment, cluster: str, day,
         "warnings": pa.array([caught_messages], pa.list_(pa.string())),
         "pieces": pa.array([pickle.dumps(pieces, protocol=pickle.HIGHEST_PROTOCOL)], pa.binary()),
         "with_sums": pa.array([with_sums], pa.bool_()),
-        "bidder_key": pa.nulls(1, pa.int64()), "bidder_segment": pa.nulls(1, pa.string()),
-        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_sums": pa.nulls(1, pa.binary()),
+        "bidder_bucket": pa.nulls(1, pa.int32()), "bidder_segment": pa.nulls(1, pa.string()),
+        "bidder_unit": pa.nulls(1, pa.int32()), "bidder_keys": pa.nulls(1, pa.binary()),
+        "bidder_sums": pa.nulls(1, pa.binary()),
     }, schema=schema)
     return pa.concat_tables([answer, *per_bidder]) if per_bidder else answer
 
@@ -464,33 +467,40 @@ def _partition_answers(batches, one_shard):
 #: Keys searched per partition for each partition's key (a partition left without one has a chance
 #: of about ``n * exp(-64)``; its shards then share partitions, which the workers answer alike).
 _KEYS_PER_PARTITION = 64
+#: Each number of partitions' keys, once found (by partition).
+_PARTITION_KEYS: dict[int, dict[int, int]] = {}
 
 
-def _partition_key(spark, shards: int):
-    """The column that puts each shard in the partition numbered like it under ``repartition(shards, key)``.
+def _partition_key(spark, shards: int, column: str = "shard"):
+    """The column that puts each value ``k`` of ``column`` in partition ``k`` under ``repartition(shards, key)``.
 
     Spark's hash repartition by the shard itself would put two shards in one partition and leave
     another empty about as often as not (``pmod(hash(shard), n)`` is no permutation); keyed by
     ``sql/spark_shard_partition_keys.spark.sql``'s key of partition ``k``, shard ``k``'s rows go to
-    partition ``k``. Falls back to the shard itself when some partition has no key.
+    partition ``k``. Falls back to ``column`` itself when some partition has no key. The Gram step
+    places the bidder buckets the same way (``column="bidder_bucket"``). A null value (an answer
+    row of the Gram step) goes to one partition, whichever.
     """
     from pyspark.sql import functions as F
 
-    rows = _run_sql(spark, "spark_shard_partition_keys", n_shards=int(shards),
-                    candidates=_KEYS_PER_PARTITION * int(shards)).collect()
-    keys = {int(r["shard"]): int(r["partition_key"]) for r in rows}
+    keys = _PARTITION_KEYS.get(int(shards))
+    if keys is None:  # Spark's hash is fixed (Murmur3, seed 42): the same keys in every session
+        rows = _run_sql(spark, "spark_shard_partition_keys", n_shards=int(shards),
+                        candidates=_KEYS_PER_PARTITION * int(shards)).collect()
+        keys = _PARTITION_KEYS[int(shards)] = {int(r["shard"]): int(r["partition_key"]) for r in rows}
     if len(keys) < int(shards):
-        return F.col("shard")
+        return F.col(column)
     table = F.array(*[F.lit(keys[k]).cast("bigint") for k in range(int(shards))])
-    return F.element_at(table, F.col("shard").cast("int") + 1)
+    return F.element_at(table, F.col(column).cast("int") + 1)
 
 
 def _answer_schema(with_gram: bool = False) -> pa.Schema:
     """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
               ("single_bidders", pa.bool_()), ("error", pa.string()), ("warnings", pa.list_(pa.string())),
-              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_key", pa.int64()),
-              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_sums", pa.binary())]
+              ("pieces", pa.binary()), ("with_sums", pa.bool_()), ("bidder_bucket", pa.int32()),
+              ("bidder_segment", pa.string()), ("bidder_unit", pa.int32()), ("bidder_keys", pa.binary()),
+              ("bidder_sums", pa.binary())]
     if with_gram:
         fields += [("part_segment", pa.string()), ("part_bidders", pa.int64()), ("part_unit", pa.int32()),
                    ("part_gram", pa.list_(pa.float64()))]
@@ -557,7 +567,8 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
 
     def one_shard(table: pa.Table) -> pa.Table:  # runs in a Python worker, once per shard
         return _shard_answer(table, experiment=experiment, cluster=cluster, day=day, source=source, multi=multi,
-                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink, coded=coded)
+                             columns=columns, sums_apart=bidder_gram, bidder_rows_sink=bidder_rows_sink, coded=coded,
+                             buckets=int(shards))
 
     collected = _answer_schema(with_gram=True)  # on the driver: the workers receive it with the function
 
@@ -574,8 +585,9 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         parts = sharded.select(*selected, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
         with _quiet_pyspark():
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
-            if bidder_gram:  # every bidder's rows in one partition: one Gram row per partition to the driver
-                out = out.repartition(int(shards), "bidder_key").mapInArrow(one_partition, _COLLECTED)
+            if bidder_gram:  # bucket k's rows (all of its bidders') in partition k: one Gram row each to the driver
+                out = out.repartition(int(shards), _partition_key(spark, shards, "bidder_bucket"))
+                out = out.mapInArrow(one_partition, _COLLECTED)
             rows = _collect(out)
     except Exception as exc:  # a file Spark cannot read shows up only when the job runs
         if _READ_FAILURES.search(str(exc)):

@@ -32,7 +32,7 @@ from counterbid.estimators import (
 from counterbid.readers.engines import LocalEngine, estimate_bid_log
 from counterbid.readers.id_hashes import fnv1a_64
 from counterbid.readers.spark_bidder_gram import (
-    bidder_keys, bidder_rows, bidder_table, combined_gram, combined_grams, partition_gram,
+    bidder_buckets, bidder_keys, bidder_rows, bidder_table, combined_gram, combined_grams, partition_gram,
 )
 from counterbid.readers.spark_shards import _answer_schema
 
@@ -63,6 +63,16 @@ def _close(a: pd.DataFrame, b: pd.DataFrame, rtol: float) -> None:
         assert np.array_equal(np.isnan(x), np.isnan(y)), column
         ok = ~np.isnan(x)
         np.testing.assert_allclose(x[ok], y[ok], rtol=rtol, atol=0, err_msg=column)
+
+
+def _keys_of(rows: pa.Table) -> np.ndarray:
+    """Every bidder key of packed bidder rows, row after row."""
+    return np.concatenate([np.frombuffer(v, "<i8") for v in rows.column("bidder_keys").to_pylist()])
+
+
+def _counts_of(rows: pa.Table) -> list[int]:
+    """Keys held by each packed bidder row."""
+    return [len(v) // 8 for v in rows.column("bidder_keys").to_pylist()]
 
 
 @pytest.mark.parametrize("ids", ["text", "integer"])
@@ -96,22 +106,24 @@ def test_partition_grams_add_up_to_the_plain_form(tmp_path):
     rows = []
     for shard in sorted({p.key.shard for p in found.pieces}):
         ids, unit, sums = bidder_rows([p for p in found.pieces if p.key.shard == shard])
-        rows.append(bidder_table(ids, unit, sums, shard, schema))
+        rows.append(bidder_table(ids, unit, sums, shard, schema, buckets=3))
     rows = pa.concat_tables(rows)
+    keys = _keys_of(rows)
     # the same bidder in several shards: what the partition step has to add before squaring
-    assert pd.Series(rows.column("bidder_key").to_pylist()).duplicated().sum() > 1000
-    partition = np.array([int(s) % 3 for s in rows.column("bidder_key").to_pylist()])
+    assert pd.Series(keys).duplicated().sum() > 1000
+    partition = np.array(rows.column("bidder_bucket").to_pylist())
+    assert sorted(set(partition)) == [0, 1, 2] and rows.num_rows <= 3 * found.shards  # packed: a row per bucket
     out = _answer_schema(with_gram=True)
     parts = []
     for k in range(3):
-        batches = rows.filter(pa.array(partition == k)).to_batches(max_chunksize=700)  # a bidder split over batches
+        batches = rows.filter(pa.array(partition == k)).to_batches(max_chunksize=2)  # a bucket split over batches
         for batch in partition_gram(iter(batches), out):
             assert batch.schema == out
             parts += [(r["part_bidders"], r["part_unit"], r["part_gram"]) for r in batch.to_pylist()]
     size = len(found.pieces[0].sum_labels)
     gram = combined_gram(parts, size, max(p.bid_exponent for p in found.pieces))
     plain = gram_of(bidder_totals(found.pieces))
-    assert gram.n_bidders == plain.n_bidders == len(set(rows.column("bidder_key").to_pylist()))
+    assert gram.n_bidders == plain.n_bidders == len(set(keys))
     np.testing.assert_allclose(gram.gram, plain.gram, rtol=1e-12, atol=0)
     by_gram = combine_pieces([p.without_bidder_sums() for p in found.pieces], EXPERIMENT, cluster="auto",
                              bidder_gram=gram)
@@ -151,17 +163,17 @@ def _partition_forms(found, n_partitions: int = 3) -> dict:
         mine = [p for p in found.pieces if p.key.shard == shard]
         for label in sorted({p.key.segment for p in mine}):
             ids, unit, sums = bidder_rows([p for p in mine if p.key.segment == label])
-            rows.append(bidder_table(ids, unit, sums, shard, schema, segment=label))
+            rows.append(bidder_table(ids, unit, sums, shard, schema, segment=label, buckets=n_partitions))
     rows = pa.concat_tables(rows)
-    by_bidder = pd.Series(rows.column("bidder_key").to_pylist())
-    segment = pd.Series(rows.column("bidder_segment").to_pylist())
+    by_bidder = pd.Series(_keys_of(rows))
+    segment = pd.Series(np.repeat(rows.column("bidder_segment").to_pylist(), _counts_of(rows)))
     # the same bidder in both segments: the pooled form must add a bidder's rows across segments
     assert by_bidder.groupby(by_bidder).transform(lambda s: segment[s.index].nunique()).gt(1).sum() > 500
-    partition = np.array([int(s) % n_partitions for s in by_bidder])
+    partition = np.array(rows.column("bidder_bucket").to_pylist())
     out = _answer_schema(with_gram=True)
     parts = []
     for k in range(n_partitions):
-        for batch in partition_gram(iter(rows.filter(pa.array(partition == k)).to_batches(max_chunksize=500)), out):
+        for batch in partition_gram(iter(rows.filter(pa.array(partition == k)).to_batches(max_chunksize=3)), out):
             assert batch.schema == out
             parts += [(r["part_segment"], r["part_bidders"], r["part_unit"], r["part_gram"]) for r in batch.to_pylist()]
     units = {None: max(p.bid_exponent for p in found.pieces)}
@@ -299,17 +311,67 @@ def test_segmented_bidder_clustering_on_spark_equals_the_local_engine(spark, tmp
     _close(on_spark.table, local.table, 1e-9)
 
 
-def test_sums_as_bytes_come_back_as_the_same_matrix():
-    # the bidder rows' sums travel as one binary value per row; read back from any slice, in either offset width
-    from counterbid.readers.spark_bidder_gram import _bytes_column, _bytes_rows
-
-    sums = np.random.default_rng(3).normal(size=(257, 6)) * np.ldexp(1.0, np.arange(-3, 3))
+def test_packed_rows_hold_every_bidder_once_in_its_bucket():
+    """A shard's keys and sums packed per bucket unpack to the same rows, each key in its unsigned value's bucket."""
+    rng = np.random.default_rng(3)
+    keys = rng.integers(np.iinfo(np.int64).min, np.iinfo(np.int64).max, size=2001, dtype=np.int64)
+    keys[:3] = [-1, 0, np.iinfo(np.int64).min]  # negative keys: buckets of the unsigned value
+    sums = rng.normal(size=(keys.size, 6)) * np.ldexp(1.0, np.arange(-3, 3))
     sums[5, 2], sums[9, 0] = -0.0, np.finfo(float).tiny
-    column = _bytes_column(sums)
-    assert column.type == pa.binary() and len(column) == 257
-    np.testing.assert_array_equal(_bytes_rows(column), sums)
-    np.testing.assert_array_equal(_bytes_rows(column.slice(100, 57)), sums[100:157])
-    np.testing.assert_array_equal(_bytes_rows(column.cast(pa.large_binary()).slice(3)), sums[3:])
-    assert column.to_pylist()[7] == sums[7].astype("<f8").tobytes()
-    with pytest.raises(ValueError, match="same number"):
-        _bytes_rows(pa.array([b"\0" * 8, b"\0" * 16], pa.binary()))
+    rows = bidder_table(keys, -4, sums, 7, _answer_schema(), segment="dock", buckets=5)
+    assert rows.num_rows == 5 and rows.column("shard").to_pylist() == [7] * 5
+    assert rows.column("bidder_unit").to_pylist() == [-4] * 5
+    assert rows.column("bidder_segment").to_pylist() == ["dock"] * 5
+    assert rows.column("n_bids").null_count == 5
+    got_keys, got_sums = [], []
+    packed = zip(rows.column("bidder_bucket").to_pylist(), rows.column("bidder_keys").to_pylist(),
+                 rows.column("bidder_sums").to_pylist())
+    for bucket, packed_keys, packed_sums in packed:
+        mine = np.frombuffer(packed_keys, "<i8")
+        assert ((mine.view(np.uint64) % np.uint64(5)) == bucket).all()
+        got_keys.append(mine)
+        got_sums.append(np.frombuffer(packed_sums, "<f8").reshape(mine.size, 6))
+    order = np.argsort(np.concatenate(got_keys), kind="stable")
+    want = np.argsort(keys, kind="stable")
+    np.testing.assert_array_equal(np.concatenate(got_keys)[order], keys[want])
+    np.testing.assert_array_equal(np.concatenate(got_sums)[order], sums[want])  # bit for bit, -0.0 and tiny too
+    assert (bidder_buckets(keys, 5) == keys.view(np.uint64) % np.uint64(5)).all()
+    with pytest.raises(ValueError, match="at least one"):
+        bidder_buckets(keys, 0)
+
+
+def test_the_partition_form_does_not_depend_on_the_order_rows_arrive_in(tmp_path):
+    """Spark's shuffle delivers a partition's rows in no set order: the form is the same, bit for bit, in any order."""
+    path = tmp_path / "bids.parquet"
+    _log(6000, bidder_pool=3000, rng=12).to_parquet(path, index=False)
+    found = LocalEngine().log_pieces(str(path), EXPERIMENT, max_bids_per_shard=4000, cluster="bidder")
+    assert found.shards >= 4
+    schema, out = _answer_schema(), _answer_schema(with_gram=True)
+    rows = []
+    for shard in sorted({p.key.shard for p in found.pieces}):
+        ids, unit, sums = bidder_rows([p for p in found.pieces if p.key.shard == shard])
+        rows.append(bidder_table(ids, unit, sums, shard, schema, buckets=1))
+    rows = pa.concat_tables(rows)
+    forms = []
+    for seed in range(4):
+        shuffled = rows.take(np.random.default_rng(seed).permutation(rows.num_rows))
+        got = pa.Table.from_batches(list(partition_gram(iter(shuffled.to_batches(max_chunksize=1)), out)), schema=out)
+        forms.append(np.array(got.column("part_gram").to_pylist()[0]))
+    for form in forms[1:]:
+        np.testing.assert_array_equal(form, forms[0])
+    plain = gram_of(bidder_totals(found.pieces))
+    size = len(found.pieces[0].sum_labels)
+    unit = int(got.column("part_unit")[0].as_py())
+    gram = combined_gram([(plain.n_bidders, unit, forms[0])], size, plain.bid_exponent)
+    np.testing.assert_allclose(gram.gram, plain.gram, rtol=1e-12, atol=0)
+
+
+def test_packed_sums_of_another_width_are_refused():
+    schema = _answer_schema()
+    rows = pa.concat_tables([bidder_table(np.arange(4), 0, np.ones((4, 3)), 0, schema),
+                             bidder_table(np.arange(4, 8), 0, np.ones((4, 2)), 1, schema)])
+    with pytest.raises(ValueError, match="same number of values"):
+        list(partition_gram(iter(rows.to_batches()), _answer_schema(with_gram=True)))
+    with pytest.raises(ValueError, match="sums of shape"):
+        bidder_table(np.arange(3), 0, np.ones(3), 0, schema)
+    assert bidder_table(np.zeros(0, np.int64), 0, np.zeros((0, 3)), 0, schema, buckets=4).num_rows == 0
