@@ -84,6 +84,8 @@ def create_database_file(path: Path) -> None:
 
 #: Least DuckDB ``memory_limit`` of a results connection, in MiB.
 RESULTS_MEMORY_FLOOR_MIB = 1024
+#: Least DuckDB ``memory_limit`` of the write transaction's connection, in MiB.
+RESULTS_WRITE_FLOOR_MIB = 768
 
 
 def _whole(value: object, *, what: str, least: int) -> int:
@@ -110,6 +112,31 @@ def results_memory_mib(value: object = None) -> int:
     if value is not None:
         return _whole(value, what="memory_limit_mib", least=1)
     return max(RESULTS_MEMORY_FLOOR_MIB, memory_budget_mib())
+
+
+def results_write_memory_mib(value: object = None) -> int:
+    """DuckDB's ``memory_limit`` for the results file during a day's write transaction, in MiB.
+
+    The write inserts the day's staged rows (tens of millions of per-bidder rows on a large day)
+    with DuckDB's own Parquet reader; full row groups go to the results file as they fill, and what
+    DuckDB keeps beyond the limit is its cache of those blocks, evicted or spilled to
+    ``<file>.tmp``. The write's process also holds the interpreter and its imports (about 0.35 GiB),
+    so its limit is lower than the other connections'.
+
+    Parameters
+    ----------
+    value : int, optional
+        The limit (>= 1); default half the memory budget
+        (:func:`counterbid.readers.memory_shards.memory_budget_mib`, ``$COUNTERBID_MEMORY_BUDGET_MIB``),
+        at least :data:`RESULTS_WRITE_FLOOR_MIB`.
+
+    Returns
+    -------
+    int
+    """
+    if value is not None:
+        return _whole(value, what="write_memory_limit_mib", least=1)
+    return max(RESULTS_WRITE_FLOOR_MIB, memory_budget_mib() // 2)
 
 
 def _open_duckdb(path: str, read_only: bool, memory_mib: int, threads: int):
@@ -151,6 +178,9 @@ class ResultsHook(BaseHook):
         DuckDB's ``memory_limit`` on a results file's connections, in MiB (default
         :func:`results_memory_mib`: ``$COUNTERBID_MEMORY_BUDGET_MIB``, at least
         :data:`RESULTS_MEMORY_FLOOR_MIB`); DuckDB spills to ``<file>.tmp`` beyond it.
+    write_memory_limit_mib : int, optional
+        The same for the connection of :meth:`replace_partition` (default ``memory_limit_mib``
+        when given, else :func:`results_write_memory_mib`).
     threads : int, optional
         DuckDB's ``threads`` on those connections (default: 2, or fewer CPUs).
 
@@ -181,9 +211,12 @@ class ResultsHook(BaseHook):
         lock_timeout: float = 120.0,
         memory_limit_mib: int | None = None,
         threads: int | None = None,
+        write_memory_limit_mib: int | None = None,
     ) -> None:
         super().__init__()
         self.memory_limit_mib = results_memory_mib(memory_limit_mib)
+        self.write_memory_limit_mib = results_write_memory_mib(
+            write_memory_limit_mib if write_memory_limit_mib is not None else memory_limit_mib)
         self.threads = _whole(threads, what="threads", least=1) if threads is not None else min(2, os.cpu_count() or 1)
         self.counterbid_conn_id = counterbid_conn_id or DEFAULT_CONN_ID
         self.schema = validate_identifier(schema, what="results schema")
@@ -227,18 +260,19 @@ class ResultsHook(BaseHook):
 
     # -- connections -------------------------------------------------------------------------
     @contextlib.contextmanager
-    def connect(self, *, read_only: bool = False) -> Iterator[Any]:
+    def connect(self, *, read_only: bool = False, memory_mib: int | None = None) -> Iterator[Any]:
         """A short-lived connection: DuckDB (retrying while another process holds the file) or psycopg.
 
         A psycopg connection is in autocommit mode; use ``con.transaction()`` for a transaction.
+        ``memory_mib``: DuckDB's ``memory_limit`` of this connection (default ``memory_limit_mib``).
         """
         if self.dialect == "postgres":
             con = self._postgres_connection()
         else:
             if not read_only:
                 create_database_file(Path(self.database))
-            con = self._retry_on_lock(lambda: _open_duckdb(self.database, read_only, self.memory_limit_mib, self.threads),
-                                      what="open")
+            limit = self.memory_limit_mib if memory_mib is None else int(memory_mib)
+            con = self._retry_on_lock(lambda: _open_duckdb(self.database, read_only, limit, self.threads), what="open")
         try:
             yield con
         finally:
@@ -259,10 +293,10 @@ class ResultsHook(BaseHook):
         return con
 
     @contextlib.contextmanager
-    def session(self, *, read_only: bool = False) -> Iterator[ResultsSession]:
+    def session(self, *, read_only: bool = False, memory_mib: int | None = None) -> Iterator[ResultsSession]:
         """A :class:`~counterbid.operators.results_schema.ResultsSession` in this sink's dialect."""
         kind = PostgresSession if self.dialect == "postgres" else DuckDBSession
-        with self.connect(read_only=read_only) as con:
+        with self.connect(read_only=read_only, memory_mib=memory_mib) as con:
             yield kind(con, schema=self.schema, sql=self.sql, where=self.where)
 
     def _retry_on_lock(self, action, *, what: str):
@@ -362,7 +396,7 @@ class ResultsHook(BaseHook):
         params = {"experiment_id": experiment_id, "ds": ds}
 
         def write() -> dict[str, int]:
-            with self.session() as s:
+            with self.session(memory_mib=self.write_memory_limit_mib) as s:
                 migrate(s)
                 counts = {}
                 with s.transaction():

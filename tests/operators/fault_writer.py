@@ -84,12 +84,12 @@ class _HoldingHook(ResultsHook):
         self.inserts = 0
         self.backend_pid = None
 
-    def session(self, *, read_only: bool = False):
+    def session(self, *, read_only: bool = False, **options):
         import contextlib
 
         @contextlib.contextmanager
         def opened():
-            with super(_HoldingHook, self).session(read_only=read_only) as s:
+            with super(_HoldingHook, self).session(read_only=read_only, **options) as s:
                 if s.dialect == "postgres" and not read_only:
                     self.backend_pid = s.con.info.backend_pid
                 yield s
