@@ -69,10 +69,15 @@ def stage_partition(
     staged = StagedPartition.at(staging_root, experiment.id, ds)
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
     day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
-    if day_rows == 0 and "://" not in str(lake_root) and not (Path(lake_root) / f"ds={ds}").exists():
+    day_folder = Path(lake_root) / f"ds={ds}"
+    if day_rows == 0 and "://" not in str(lake_root) and not day_folder.exists():
         # Late data looks like this: raised as a retryable failure that names the folder.
         shutil.rmtree(staged.day, ignore_errors=True)
         raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
+    if day_rows == 0 and "://" not in str(lake_root) and _linked_parquet(day_folder):
+        # DuckDB's recursive glob does not enter linked folders: the day would read as empty
+        raise InputError(f"{day_folder}: holds Parquet files behind a symbolic link, which the lake's read "
+                         "(DuckDB's recursive glob) does not follow; copy or mount the files into the lake instead")
     shards = n_shards(day_rows, max_bids)
 
     def fill(folder: Path) -> None:  # one batch in memory; an empty day gives one empty shard, for the gate
@@ -87,6 +92,15 @@ def stage_partition(
                                       click_window_days=click_window_days)
     return {"day_bids": day_rows, "shards": shards, "max_bids_per_shard": max_bids, "folder": str(staged.folder),
             "measured_arms": [] if measured is None else list(dict.fromkeys(measured["arm"]))}
+
+
+def _linked_parquet(folder: Path) -> bool:
+    """Whether ``folder`` is, or holds, a symbolic link behind which Parquet files lie."""
+    if not folder.is_dir():
+        return False
+    if folder.is_symlink():
+        return any(folder.rglob("*.parquet"))
+    return any(p.is_symlink() and any(p.rglob("*.parquet")) for p in folder.rglob("*") if p.is_dir())
 
 
 def stage_measured_weights(

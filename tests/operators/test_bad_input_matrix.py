@@ -94,6 +94,21 @@ def test_missing_partition(airflow_db, tmp_path, capfd, caplog):
     _nothing_written(conf)
 
 
+def test_partition_behind_a_symbolic_link(airflow_db, tmp_path, capfd, caplog):
+    def linked(day):  # the day's files live elsewhere; the lake holds a link to their folder
+        elsewhere = tmp_path / "elsewhere"
+        elsewhere.mkdir()
+        _bids().to_parquet(elsewhere / "tiles.parquet", index=False)
+        day.rmdir()
+        day.symlink_to(elsewhere, target_is_directory=True)
+
+    run, conf, text = _pipeline(tmp_path, (capfd, caplog), linked)
+    _failed(run, "load")  # not read as an empty day: one line naming the linked folder
+    line = _one_line(text, r"Exception: .*holds Parquet files behind a symbolic link")
+    assert f"ds={DAY}" in line
+    _nothing_written(conf)
+
+
 def test_empty_partition(airflow_db, tmp_path, capfd, caplog):
     run, conf, text = _pipeline(tmp_path, (capfd, caplog), lambda day: _bids().iloc[:0].to_parquet(day / "tiles.parquet"))
     _failed(run, "validate")
