@@ -85,15 +85,24 @@ def id_keys(ids: pa.Array) -> np.ndarray:
     ndarray of int64
         The same key ``sql/bid_log_bidder_keys.sql`` gives the same text.
     """
+    return _keys_of("bid_log_id_keys", "id_key", candidate_ids=pa.table({"id": ids}))
+
+
+def _keys_of(statement: str, column: str, params: dict | None = None, **relations) -> np.ndarray:
+    """One DuckDB statement's 64-bit key column as int64 (the same bits), ``relations`` registered by name."""
     from counterbid.sql import load_sql
 
-    candidate_ids = pa.table({"id": ids})  # noqa: F841 -- scanned by name below
     con = _duckdb().connect(config={"threads": BIDDER_KEY_THREADS})
     try:
-        con.register("candidate_ids", candidate_ids)
-        keys = con.execute(load_sql("bid_log_id_keys")).fetchnumpy()["id_key"]
+        for name, table in relations.items():
+            con.register(name, table)
+        keys = con.execute(load_sql(statement), params or {}).fetchnumpy()[column]
     finally:
         con.close()
+    if isinstance(keys, np.ma.MaskedArray):  # nulls: the caller's plain reader names them
+        if keys.mask is not np.ma.nomask and bool(np.any(keys.mask)):
+            raise ValueError(f"{statement}: a null key")
+        keys = keys.data
     return np.asarray(keys, dtype=np.uint64).view(np.int64)
 
 
@@ -160,21 +169,10 @@ def bidder_keys(files: list[str]) -> np.ndarray | None:
     ndarray of int64, or None
         ``None`` when an id is null or DuckDB cannot read the files (the plain reader names the fault).
     """
-    from counterbid.sql import load_sql
-
-    duckdb = _duckdb()
-    con = duckdb.connect(config={"threads": BIDDER_KEY_THREADS})
     try:
-        keys = con.execute(load_sql("bid_log_bidder_keys"), {"files": list(files)}).fetchnumpy()["bidder_key"]
-    except duckdb.Error:
+        return _keys_of("bid_log_bidder_keys", "bidder_key", {"files": list(files)})
+    except (_duckdb().Error, ValueError):
         return None
-    finally:
-        con.close()
-    if isinstance(keys, np.ma.MaskedArray):
-        if keys.mask is not np.ma.nomask and bool(np.any(keys.mask)):
-            return None
-        keys = keys.data
-    return np.asarray(keys, dtype=np.uint64).view(np.int64)
 
 
 def _codes_of_keys(keys: np.ndarray) -> np.ndarray:
