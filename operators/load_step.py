@@ -70,13 +70,15 @@ def stage_partition(
     max_bids = max_bids_per_shard_setting(max_bids_per_shard)
     day_rows = lake.lake_count_partition(lake_root, experiment_id=experiment.id, ds=ds)
     day_folder = Path(lake_root) / f"ds={ds}"
-    if day_rows == 0 and "://" not in str(lake_root):
-        if not day_folder.exists():
+    if "://" not in str(lake_root):
+        if day_rows == 0 and not day_folder.exists():
             # Late data looks like this: raised as a retryable failure that names the folder.
             shutil.rmtree(staged.day, ignore_errors=True)
             raise MissingPartitionError(f"{lake_root}: partition ds={ds} is missing (no such folder)")
         if _linked_parquet(day_folder):
-            # DuckDB's recursive glob does not enter linked folders: the day would read as empty
+            # DuckDB's recursive glob does not enter linked folders: the day would read as empty, or
+            # short by the linked part's bids; refused whole, and no earlier staging of the day outlives it
+            shutil.rmtree(staged.day, ignore_errors=True)
             raise InputError(f"{day_folder}: holds Parquet files behind a symbolic link, which the lake's read "
                              "(DuckDB's recursive glob) does not follow; copy or mount the files into the lake instead")
     shards = n_shards(day_rows, max_bids)

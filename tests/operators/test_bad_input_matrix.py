@@ -109,6 +109,23 @@ def test_partition_behind_a_symbolic_link(airflow_db, tmp_path, capfd, caplog):
     _nothing_written(conf)
 
 
+def test_partition_partly_behind_a_symbolic_link(airflow_db, tmp_path, capfd, caplog):
+    def half_linked(day):  # half the day's bids in the lake, half in a linked folder that the glob skips
+        bids = _bids()
+        half = len(bids) // 2
+        bids.iloc[:half].to_parquet(day / "tiles.parquet", index=False)
+        elsewhere = tmp_path / "elsewhere"
+        elsewhere.mkdir()
+        bids.iloc[half:].to_parquet(elsewhere / "tiles.parquet", index=False)
+        (day / "late").symlink_to(elsewhere, target_is_directory=True)
+
+    run, conf, text = _pipeline(tmp_path, (capfd, caplog), half_linked)
+    _failed(run, "load")  # not estimated on the half the lake's read reaches
+    line = _one_line(text, r"Exception: .*holds Parquet files behind a symbolic link")
+    assert f"ds={DAY}" in line
+    _nothing_written(conf)
+
+
 def test_empty_partition(airflow_db, tmp_path, capfd, caplog):
     run, conf, text = _pipeline(tmp_path, (capfd, caplog), lambda day: _bids().iloc[:0].to_parquet(day / "tiles.parquet"))
     _failed(run, "validate")

@@ -86,6 +86,32 @@ def test_stage_writes_only_the_day_split_into_shards_by_auction(hook, lake, expe
     assert len(_shard_frame(staged, 0)) == len(lake_day)
 
 
+def test_a_day_partly_behind_a_symbolic_link_is_refused_and_its_earlier_staging_removed(experiment, tmp_path):
+    """The lake's recursive glob skips a linked sub-folder: half the day would be staged without a word."""
+    write_bid_lake(tmp_path / "bids", [experiment], start=START, days=1, auctions_per_day=300, n_bidders=3, seed=5)
+    day = tmp_path / "bids" / f"ds={START}"
+    lake_root = tmp_path / "bids"
+    out = partition.stage_partition(LakeHook(), lake_root=lake_root, experiment=experiment, ds=START,
+                                    staging_root=tmp_path / "stage")
+    staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
+    assert staged.day.exists() and out["day_bids"] > 0
+    files = sorted(day.rglob("*.parquet"))
+    table = pads.dataset([str(f) for f in files], format="parquet").to_table()
+    for f in files:
+        f.unlink()
+    half = table.num_rows // 2
+    pq.write_table(table.slice(0, half), day / "kept.parquet")
+    (tmp_path / "elsewhere").mkdir()
+    pq.write_table(table.slice(half), tmp_path / "elsewhere" / "part.parquet")
+    (day / "late").symlink_to(tmp_path / "elsewhere", target_is_directory=True)
+    assert LakeHook().lake_count_partition(lake_root, experiment_id="tiles", ds=START) == half  # the glob's blind spot
+    with pytest.raises(InputError, match="symbolic link") as err:
+        partition.stage_partition(LakeHook(), lake_root=lake_root, experiment=experiment, ds=START,
+                                  staging_root=tmp_path / "stage")
+    assert "\n" not in str(err.value) and f"ds={START}" in str(err.value)
+    assert not staged.day.exists()  # the earlier load's staged day does not outlive the refusal
+
+
 def test_schema_gate_passes_good_data(hook, lake, experiment, tmp_path):
     _stage(hook, lake, experiment, tmp_path, START)
     staged = StagedPartition.at(tmp_path / "stage", "tiles", START)
