@@ -124,8 +124,15 @@ def estimate_children(me: list[str], work: Path, day: str, env: dict, route: str
     over its children (``shard_cpu`` and ``shard_rss_mib``: the shard children's part; ``shards``: how many)."""
     if route == "single-task":
         return run_child([*me, "estimate", str(work), day], env) | {"shards": None, "shard_cpu": 0.0, "shard_rss_mib": 0.0}
-    shards = [run_child([*me, f"shard:{k}", str(work), day], env) for k in staged_shards(work / "stage", day)]
+    shards = [run_child([*me, f"shard:{k}", str(work), day], env) for k in shard_tasks(work / "stage", day)]
     return combined(shards, run_child([*me, "combine", str(work), day], env))
+
+
+def shard_tasks(stage: Path, day: str) -> list[int]:
+    """The shards the DAG runs a shard task for: every staged shard of a day of two or more; none for a
+    one-shard day, which the estimate step estimates itself (the DAG marks its shard task skipped)."""
+    shards = staged_shards(stage, day)
+    return shards if len(shards) > 1 else []
 
 
 def staged_shards(stage: Path, day: str) -> list[int]:

@@ -142,7 +142,7 @@ def test_a_failed_dag_step_reports_its_error_line_cpu_and_peak_rss():
 
 def test_the_window_bench_adds_the_shard_tasks_to_the_estimate_step_it_reports(tmp_path):
     sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from bench_window import combined, staged_shards
+    from bench_window import combined, shard_tasks, staged_shards
 
     day = tmp_path / "bench" / "ds=2026-03-04" / "day"
     for name in ("shard=10", "shard=2", "shard=0"):
@@ -151,6 +151,9 @@ def test_the_window_bench_adds_the_shard_tasks_to_the_estimate_step_it_reports(t
     (day / "shards.json").write_text("{}")
     assert staged_shards(tmp_path, "2026-03-04") == [0, 2, 10]  # numeric order, staged folders only
     assert staged_shards(tmp_path, "2026-03-05") == []
+    assert shard_tasks(tmp_path, "2026-03-04") == [0, 2, 10]
+    (tmp_path / "bench" / "ds=2026-03-06" / "day" / "shard=0").mkdir(parents=True)
+    assert staged_shards(tmp_path, "2026-03-06") == [0] and shard_tasks(tmp_path, "2026-03-06") == []  # as the DAG
 
     shards = [{"cpu": 2.5, "wall": 3.0, "rss_mib": 900.0}, {"cpu": 1.5, "wall": 2.0, "rss_mib": 700.0}]
     combine = {"cpu": 4.0, "wall": 6.0, "rss_mib": 800.0, "route": "extended", "to_date_bids": 3_000_000}
