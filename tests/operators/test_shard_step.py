@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from counterbid.dags_example.lake import write_bid_lake
-from counterbid.estimators import parse_experiments
+from counterbid.estimators import estimate_arms, parse_experiments
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition
 from counterbid.operators.hooks import ResultsHook
@@ -129,6 +129,18 @@ def test_one_shard_has_no_shard_task_and_the_estimate_step_gives_the_single_task
     with pytest.raises(InputError, match="the pieces of shard 0 of 2 of experiment 'lanterns' are missing"):
         partition.estimate_partition(hook, experiment=experiment, ds=START, staging_root=other, run_id="r",
                                      shard_tasks=True)
+    # the independent reference: the estimator itself on the staged day's bids (what `counterbid
+    # estimate` computes), not the estimate step on another route
+    bids = pq.read_table(staged.shard(0)).to_pandas()
+    reference = estimate_arms(bids, experiment).to_frame()
+    got = want["estimates_day"]
+    assert len(got) == len(reference) > 0
+    key = ["arm", "metric"]
+    merged = got.merge(reference, on=key, suffixes=("", "_ref"), validate="one_to_one")
+    assert len(merged) == len(reference)
+    for col in ("estimate", "std_error", "ci_low", "ci_high"):
+        np.testing.assert_allclose(merged[col].to_numpy(float), merged[f"{col}_ref"].to_numpy(float), rtol=1e-12,
+                                   atol=0, err_msg=col)
 
 
 def test_a_retried_shard_replaces_its_pieces_and_a_missing_shard_is_named(lake, experiment, tmp_path):
