@@ -105,7 +105,8 @@ class LocalEngine:
             # bucket by bucket at the end, so memory is set by a shard, not by the day's bidders
             spill = BidderSpill(Path(spill_folder), max_rows=self.max_spill_rows) if shards > 1 else None
             found = pieces_by_shard(shard_list, experiment, cluster=cluster, source=str(path),
-                                    hash_bidders=shards > 1, code_bidders=shards == 1, spill=spill,
+                                    hash_bidders=shards > 1 and cluster != "auction",
+                                    code_bidders=shards == 1 or cluster == "auction", spill=spill,
                                     keyed_ids=self.keyed_ids)
             grams = spill.grams() if spill is not None and cluster != "auction" else None
         if grams is None:

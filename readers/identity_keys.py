@@ -18,9 +18,12 @@ Identity needs less than that, and :func:`keyed_bids` reads the two identity col
   bidder-clustered variance; with ``n`` distinct ids its probability is at most
   ``n (n - 1) / 2**65`` (2.7e-4 at 10**8 ids, 2.7e-8 at 10**6; docs/method.md, "Bidder ids"). The
   estimates themselves do not use bidder ids. Two colliding bidders in one auction look like a
-  duplicate bid: validation refuses the keyed frame and the caller runs the plain reader, which
-  either names a real duplicate or estimates without the collision. DuckDB's key is compared only
-  within one run of a command, never stored.
+  duplicate bid: validation refuses the keyed frame. A day read whole then goes to the plain reader,
+  which either names a real duplicate or estimates without the collision; a day read shard file by
+  shard file keys bidders alike in every shard, so there the shard's text is checked and, if it
+  holds no duplicate, the command stops with one line naming the collision
+  (:func:`~counterbid.readers.shards.one_shard_pieces`). DuckDB's key is compared only within one
+  run of a command, never stored.
 
 Every fault gives way to the plain reader (:func:`keyed_bids` returns ``None``), whose messages
 quote the text; the plain reader is also the reference of this one in the tests (the same codes).

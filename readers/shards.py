@@ -326,7 +326,9 @@ def pieces_by_shard(
         quote the text.
     code_bidders : bool, optional
         Text bidder ids as their dictionary codes (:func:`_coded_bidders`): for one shard holding the
-        whole input, whose pieces are combined and dropped (the command line's). Messages quote the text.
+        whole input, whose pieces are combined and dropped (the command line's), or for shards
+        clustered by auction (``cluster='auction'``: no bidder is met across shards, so codes local
+        to a shard serve and no hash can collide). Messages quote the text.
     spill : BidderSpill, optional
         Set each shard's bidder sums aside there as the shard is done
         (:class:`~counterbid.readers.bidder_spill.BidderSpill`): the pieces returned carry none,
@@ -347,7 +349,8 @@ def pieces_by_shard(
     for k, path in shards:
         where = str(source or path) if len(shards) == 1 else f"{source or path} (shard {k})"
         found = one_shard_pieces(k, path, experiment, cluster=cluster, day=day, where=where, alone=len(shards) == 1,
-                                 hash_bidders=hash_bidders, code_bidders=code_bidders and len(shards) == 1,
+                                 hash_bidders=hash_bidders,
+                                 code_bidders=code_bidders and (len(shards) == 1 or cluster == "auction"),
                                  keyed_ids=keyed_ids)
         pieces += found.pieces if spill is None else spill.add(found.pieces)
         excluded += found.n_excluded_auctions
@@ -453,6 +456,10 @@ def one_shard_pieces(
     except InputError:
         if hashed is not None:
             prepare_bids(bids, experiment, source=where)  # the message quotes the id's text
+            if hash_bidders:  # the text is sound: two distinct ids of one auction share a 64-bit key
+                raise InputError(f"{where}: two distinct bidder ids of one auction share a 64-bit key (a hash "
+                                 "collision, odds about 2**-64 per pair of bidders); estimate this log with "
+                                 "cluster 'auction', which does not key bidders across shards") from None
         raise
     finally:
         del bids, hashed  # only the validated arrays from here on: one shard bounds the memory

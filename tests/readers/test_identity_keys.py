@@ -179,3 +179,35 @@ def test_bad_input_gets_the_plain_readers_line(tmp_path, monkeypatch, fault):
     line = lines.pop()
     assert "\n" not in line and line.startswith(str(path))
     assert ("is null" in line) if fault == "null bidder" else ("hauler-" in line or "pallet-" in line)
+
+
+@pytest.mark.parametrize("keyed", [True, False])
+def test_a_key_collision_inside_one_auction_is_named_not_reported_as_a_duplicate(tmp_path, monkeypatch, keyed):
+    """Shard files key bidders by a 64-bit hash of the text (DuckDB's, or FNV-1a off the keyed reader).
+    A real collision cannot be built, so the hash is replaced by one that sends two ids of one auction
+    to one key: the error names the collision, never a duplicate bid the log does not hold."""
+    import counterbid.readers.id_hashes as id_hashes
+    import counterbid.readers.identity_keys as identity_keys
+
+    bids = _log(rng=8)
+    auction = bids.loc[bids.groupby("auction_id")["bidder_id"].transform("size") >= 2, "auction_id"].iloc[0]
+    pair = bids.loc[bids["auction_id"] == auction, "bidder_id"].iloc[:2].tolist()
+    path = _write(bids, tmp_path / "log.parquet")
+    module, name = (identity_keys, "id_keys") if keyed else (id_hashes, "fnv1a_64")
+    real = getattr(module, name)
+
+    def colliding(ids, *args, **kwargs):
+        keys = np.asarray(real(ids, *args, **kwargs)).copy()
+        text = np.asarray(pa.array(ids).to_pylist(), dtype=object)
+        keys[text == pair[1]] = keys[text == pair[0]][0] if (text == pair[0]).any() else keys[text == pair[1]]
+        return keys
+
+    monkeypatch.setattr(module, name, colliding)
+    monkeypatch.setattr(identity_keys, "keyed_bids", lambda *a, **kw: None)  # the day is read shard by shard
+    line = _error_line(path, LocalEngine(keyed_ids=keyed), monkeypatch, "0")
+    assert "\n" not in line and "share a 64-bit key" in line and "cluster 'auction'" in line, line
+    assert "twice" not in line
+    # and the log estimates by auction, which keys no bidder
+    monkeypatch.setenv(MEMORY_BUDGET_ENV, "0")
+    assert estimate_bid_log(path, EXP, engine=LocalEngine(keyed_ids=keyed), max_bids_per_shard=1200,
+                            cluster="auction").cluster == "auction"
