@@ -47,6 +47,13 @@ log = logging.getLogger(__name__)
 def staged_experiment(experiment: Experiment, staged: StagedPartition) -> tuple[Experiment, pd.DataFrame | None]:
     """``experiment`` with its ``measured`` arms filled from the weights the load step staged.
 
+    Parameters
+    ----------
+    experiment : Experiment
+        The spec's experiment; arms whose position weights are ``measured`` are filled.
+    staged : StagedPartition
+        The (experiment, day) staging folder the load step wrote.
+
     Returns
     -------
     (Experiment, pandas.DataFrame or None)
@@ -63,7 +70,23 @@ def staged_experiment(experiment: Experiment, staged: StagedPartition) -> tuple[
 
 
 def load_checks(staged: StagedPartition) -> str:
-    """Status recorded by the validate step (``'ok'`` or ``'warning'``); refuses ``'error'``."""
+    """Status recorded by the validate step (``'ok'`` or ``'warning'``); refuses ``'error'``.
+
+    Parameters
+    ----------
+    staged : StagedPartition
+        The (experiment, day) staging folder; its ``checks.json`` must exist (the validate step ran).
+
+    Returns
+    -------
+    str
+        ``'ok'`` or ``'warning'``.
+
+    Raises
+    ------
+    InputError
+        The checks ended with any other status: the partition is not estimated.
+    """
     payload = json.loads(staged.require(staged.checks, step="validate").read_text(encoding="utf-8"))
     status = payload.get("status")
     if status not in ("ok", "warning"):
@@ -353,6 +376,19 @@ def estimate_partition_shard(experiment: Experiment, *, ds: dt.date, staging_roo
     Refuses a partition whose checks failed (:func:`load_checks`); fills measured position
     weights from staging; then :func:`counterbid.operators.shard_step.estimate_shard`. A rerun
     replaces the shard's pieces.
+
+    Parameters
+    ----------
+    experiment : Experiment
+        The spec's experiment.
+    ds : datetime.date
+        The day.
+    staging_root : str or Path
+        Root of the staging folders (the load step's).
+    shard : int
+        The staged shard to estimate.
+    cluster : {'auto', 'auction', 'bidder'}
+        Clustering of the standard errors, as for the estimate step.
 
     Returns
     -------
