@@ -265,17 +265,7 @@ def estimate_partition(
     failed_today = _failed_today(staged)
     computed_at = pd.Timestamp.now(tz="UTC")
     experiment, measured = staged_experiment(experiment, staged)
-    weights_rows = []
-    for arm in experiment.arms:
-        mine = None if measured is None else measured[measured["arm"] == arm.name].sort_values("position")
-        m = mine is not None and len(mine) > 0
-        for k, w in enumerate(arm.position_weights, start=1):
-            weights_rows.append(dict(
-                experiment_id=experiment.id, ds=ds, arm=arm.name, position=k, weight=float(w),
-                source="measured" if m else "spec", impressions=int(mine["impressions"].iloc[k - 1]) if m else None,
-                clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
-                first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
-                run_id=run_id, computed_at=computed_at))
+    weights_rows = _weight_rows(experiment, measured, ds=ds, run_id=run_id, computed_at=computed_at)
     sums_file = staged.folder / f"{PIECE_TABLES['bidder_sums']}.parquet"
     distinct = None  # on Spark: the pieces' distinct bidders, counted by the executors that staged their sums
     if shard_tasks:  # the day's bidder forms added bucket by bucket from hashed ids, not by matching text
@@ -322,6 +312,7 @@ def estimate_partition(
                "engine": engine.name, "days_used": window.days_used, "days_left_out": window.days_left_out,
                "bidder_window": inputs.route}
     results: dict[str, ArmEstimates] = {"day": day_result}
+    horizon = None
     if to_date_pieces:
         to_date_cluster = cluster
         if cluster == "bidder" and inputs.route == "by_auction":
@@ -333,10 +324,48 @@ def estimate_partition(
                                             cluster=to_date_cluster, source=f"{experiment.id} to {ds}",
                                             bidder_gram=inputs.gram, segment_grams=inputs.segment_grams or None)
         horizon = _horizon_auctions(experiment, to_date_pieces, len(window.used))
+    tables = _result_tables(results, summary, experiment_id=experiment.id, ds=ds, window=window, status=status,
+                            failed_today=failed_today, horizon=horizon, run_id=run_id, computed_at=computed_at)
+    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
+        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
+                                                                              flags=check_flags(failed_today)))
+        summary["to_date_status"] = pending_status(window)
+    write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
+    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
+    if not window.used:  # first_ds is all null: keep its type a date for both sinks
+        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
+                                     pa.nulls(to_date.num_rows, type=pa.date32()))
+    write_parquet(to_date, staged.estimates_to_date)
+    write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
+    return summary
+
+
+def _weight_rows(experiment: Experiment, measured: pd.DataFrame | None, *, ds: dt.date, run_id: str,
+                 computed_at) -> list[dict]:
+    """The position weights the day was estimated with, one row per (arm, position): the spec's or the measured."""
+    rows = []
+    for arm in experiment.arms:
+        mine = None if measured is None else measured[measured["arm"] == arm.name].sort_values("position")
+        m = mine is not None and len(mine) > 0
+        for k, w in enumerate(arm.position_weights, start=1):
+            rows.append(dict(
+                experiment_id=experiment.id, ds=ds, arm=arm.name, position=k, weight=float(w),
+                source="measured" if m else "spec", impressions=int(mine["impressions"].iloc[k - 1]) if m else None,
+                clicks=int(mine["clicks"].iloc[k - 1]) if m else None,
+                first_click_ds=mine["first_click_ds"].iloc[k - 1] if m else None,
+                run_id=run_id, computed_at=computed_at))
+    return rows
+
+
+def _result_tables(results: dict[str, ArmEstimates], summary: dict, *, experiment_id: str, ds: dt.date, window,
+                   status: str, failed_today: list[str], horizon: int | None, run_id: str,
+                   computed_at) -> dict[str, pd.DataFrame]:
+    """The day's and the experiment-to-date rows as stored (keys, window, status flags, anytime bounds,
+    provenance); each span's bids and pooled revenue per arm are added to ``summary``."""
     tables = {}
     for span, result in results.items():
         table = result.to_frame()
-        table.insert(0, "experiment_id", experiment.id)
+        table.insert(0, "experiment_id", experiment_id)
         table.insert(1, "ds", ds)
         if span == "to_date":
             table.insert(2, "first_ds", window.used[0] if window.used else None)
@@ -355,18 +384,7 @@ def estimate_partition(
         summary[f"{span}_bids"] = result.n_bids
         rev = table[(table["metric"] == "revenue_per_auction") & table["segment"].isna()].set_index("arm")["estimate"]
         summary[f"{span}_revenue_per_auction"] = {k: round(float(v), 6) for k, v in rev.items()}
-    if "to_date" not in tables:  # no day of the window is used yet: rows without numbers, saying why
-        tables["to_date"] = _pending_rows(tables["day"], window, stored_status(status, pending_status(window),
-                                                                              flags=check_flags(failed_today)))
-        summary["to_date_status"] = pending_status(window)
-    write_parquet(pa.Table.from_pandas(tables["day"], preserve_index=False), staged.estimates_day)
-    to_date = pa.Table.from_pandas(tables["to_date"], preserve_index=False)
-    if not window.used:  # first_ds is all null: keep its type a date for both sinks
-        to_date = to_date.set_column(to_date.schema.get_field_index("first_ds"), "first_ds",
-                                     pa.nulls(to_date.num_rows, type=pa.date32()))
-    write_parquet(to_date, staged.estimates_to_date)
-    write_parquet(pa.Table.from_pylist(weights_rows), staged.weights)
-    return summary
+    return tables
 
 
 def estimate_partition_shard(experiment: Experiment, *, ds: dt.date, staging_root: str | Path, shard: int,
