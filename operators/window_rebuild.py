@@ -41,9 +41,9 @@ __all__ = ["GATHER_ROWS", "REBUILD_BUCKET_ROWS", "PieceRanks", "WindowRows", "bu
 
 #: Long rows (one per piece, bidder and label) of the window added up in one bucket, on average
 #: (about 35 bytes a row, a few copies while ordering and adding: a few hundred MiB).
-REBUILD_BUCKET_ROWS = 2_000_000
+REBUILD_BUCKET_ROWS = 1_000_000
 #: Long rows gathered from the sink before they are split by bucket and written (one group of files).
-GATHER_ROWS = 2_000_000
+GATHER_ROWS = 1_000_000
 #: Rows of a record batch read from the sink.
 STREAM_BATCH_ROWS = 262_144
 _NO_SEGMENT = -1

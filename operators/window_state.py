@@ -10,7 +10,9 @@ experiment's age. It runs one bucket of bidders at a time (:mod:`.window_buckets
 set aside by the hash of the id text, then looked up, added and staged bucket by bucket), so its
 memory is a bucket's, not the day's; the first day of a window (nothing stored before it) builds
 its totals the same way, from an empty window. Anything else is rebuilt from the stored pieces,
-exactly as the full recombination: a rerun of a day the window already holds, an earlier day, a window
+exactly as the full recombination, and also bucket by bucket (:mod:`.window_rebuild`: the stored
+bidder sums streamed from the sink and set aside with today's by bucket, so its memory is a
+bucket's, not the window's): a rerun of a day the window already holds, an earlier day, a window
 that lost or regained a day (burn-in, exclusion, a failed warm-up or drift check), a change of bid
 unit. A day's write drops a stored window that covers it unless it brings the window's update,
 and an update whose base changed since its estimate step is dropped too, so the stored window

@@ -66,7 +66,7 @@ def rerun(data: Path, stored: list[int], code: Path | None, label: str) -> None:
     print("| stored days | route | estimate wall s | estimate CPU s | estimate peak RSS MiB | load avg before / after |")
     print("|---:|---|---:|---:|---:|---|")
     for n in stored:
-        work = data / f"rerun-{n}"
+        work = data / f"rerun-{label.replace(' ', '-')}-{n}"
         shutil.rmtree(work, ignore_errors=True)
         work.mkdir(parents=True)
         (work / "spec.yaml").write_text(SPEC)
