@@ -33,7 +33,7 @@ from counterbid.sql import validate_identifier
 from .extras import require_extra
 from .results_schema import (
     POSTGRES_SCHEMES, RESULTS_TABLES, WINDOW_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget,
-    WindowWrite, check_readable,
+    WRITE_BATCH_ROWS, WindowWrite, check_readable,
     migrate, results_target, row_count, statement_for,
 )
 
@@ -475,6 +475,32 @@ class ResultsHook(BaseHook):
                                                                 {"experiment_id": experiment_id, "days": list(days)})
             out[table] = None if rows is None or rows.empty else rows
         return out
+
+    def stored_bidder_sum_batches(self, *, experiment_id: str, days: list[dt.date],
+                                  batch_rows: int = WRITE_BATCH_ROWS) -> Iterator[pa.RecordBatch]:
+        """Stored ``stratum_piece_bidder_sums`` rows of the given days, streamed in record batches.
+
+        Parameters
+        ----------
+        experiment_id : str
+        days : list of datetime.date
+        batch_rows : int, optional
+            Rows per batch, at most (default
+            :data:`~counterbid.operators.results_schema.WRITE_BATCH_ROWS`).
+
+        Yields
+        ------
+        pyarrow.RecordBatch
+            Columns ``ds``, ``n_bidders``, ``segment``, ``shard``, ``bidder_id``, ``arm``, ``value``, in no
+            particular order; one connection (DuckDB: read-only; PostgreSQL: a server-side cursor)
+            stays open while the batches are read.
+        """
+        if not days or not self.table_exists("stratum_piece_bidder_sums"):
+            return
+        with self.session(read_only=True) as s:
+            check_readable(s)
+            yield from s.fetch_batches("stratum_piece_bidder_sums_select_stream",
+                                       {"experiment_id": experiment_id, "days": list(days)}, batch_rows=batch_rows)
 
     def grant_reader(self, role: str):
         """Create (if missing) the read-only role ``role`` for dashboards; PostgreSQL only.

@@ -19,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import re
+import uuid
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -276,6 +277,12 @@ class ResultsSession:
         """The rows of a read statement as an Arrow table (list columns as Arrow lists)."""
         raise NotImplementedError
 
+    def fetch_batches(self, name: str, params: Mapping[str, Any] | None = None, *,
+                      batch_rows: int = WRITE_BATCH_ROWS) -> Iterator[pa.RecordBatch]:
+        """The rows of a read statement as Arrow record batches of at most ``batch_rows`` rows, streamed
+        from the sink (never the whole result at once)."""
+        raise NotImplementedError
+
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:
         raise NotImplementedError
@@ -323,6 +330,13 @@ class DuckDBSession(ResultsSession):
     def fetch_arrow(self, name, params=None):
         return self.con.sql(self.sql(name), params=dict(params or {})).to_arrow_table()
 
+    def fetch_batches(self, name, params=None, *, batch_rows=WRITE_BATCH_ROWS):
+        cursor = self.con.cursor()  # a connection of its own: the stream does not hold this one's result
+        try:
+            yield from cursor.sql(self.sql(name), params=dict(params or {})).to_arrow_reader(int(batch_rows))
+        finally:
+            cursor.close()
+
     @contextlib.contextmanager
     def transaction(self):
         self.con.execute("begin transaction")
@@ -369,6 +383,14 @@ class PostgresSession(ResultsSession):
         cur = self.execute(name, params)
         columns = list(zip(*cur.fetchall())) or [()] * len(cur.description)
         return pa.table({d.name: pa.array(list(values)) for d, values in zip(cur.description, columns)})
+
+    def fetch_batches(self, name, params=None, *, batch_rows=WRITE_BATCH_ROWS):
+        # a server-side cursor (in a transaction of its own): the server sends batch_rows rows at a time
+        with self.con.transaction(), self.con.cursor(name=f"counterbid_stream_{uuid.uuid4().hex[:12]}") as cur:
+            cur.execute(self.sql(name), None if params is None else dict(params))
+            while rows := cur.fetchmany(int(batch_rows)):
+                yield pa.RecordBatch.from_arrays([pa.array(list(c)) for c in zip(*rows)],
+                                                 names=[d.name for d in cur.description])
 
     @contextlib.contextmanager
     def transaction(self):

@@ -38,7 +38,7 @@ from counterbid.readers.id_hashes import fnv1a_64
 from .bidder_sum_rows import repeated
 
 __all__ = ["WINDOW_BUCKET_ROWS", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
-           "staged_piece_rows"]
+           "set_aside", "staged_piece_rows"]
 
 #: Today's (piece, bidder) rows looked up and added in one bucket, on average (about 100 bytes a
 #: row with its id text and four labels, a few copies while grouping: well under 0.5 GiB).
@@ -197,18 +197,36 @@ def bucket_today(groups: Iterable[Iterable[PieceRows | StratumPiece]], folder: P
             continue
         width = table.num_columns - 2
         segments |= set(pc.unique(table.column("segment")).drop_null().to_pylist())
-        bucket = bucket_of(fnv1a_64(table.column("bidder_id")), bits)
-        order = np.argsort(bucket, kind="stable")  # within a bucket, rows keep the pieces' order
-        bounds = np.searchsorted(bucket[order], np.arange(2 ** bits + 1))
-        table = table.take(pa.array(order))
-        del bucket, order
-        for b in np.flatnonzero(np.diff(bounds)):
-            place = folder / f"bucket-{int(b):05d}"
-            place.mkdir(parents=True, exist_ok=True)
-            feather.write_feather(table.slice(int(bounds[b]), int(bounds[b + 1] - bounds[b])),
-                                  place / f"group-{g:05d}.arrow", compression="uncompressed")
+        set_aside(table, fnv1a_64(table.column("bidder_id")), folder, group=g, bits=bits)
         del table
     return TodayRows(Path(folder), bits, width or 0, sorted(segments), exponent)
+
+
+def set_aside(table: pa.Table, keys: np.ndarray, folder: Path, *, group: int, bits: int) -> None:
+    """Write the rows of ``table`` into ``folder/bucket-B/group-G.arrow`` by the bucket of their 64-bit ``keys``.
+
+    Parameters
+    ----------
+    table : pyarrow.Table
+    keys : numpy.ndarray of int64
+        One per row: the hash of the row's id text (:func:`counterbid.readers.id_hashes.fnv1a_64`).
+    folder : Path
+    group : int
+        Number of this group of rows (its file name in each bucket's folder).
+    bits : int
+        ``2**bits`` buckets (:func:`counterbid.estimators.keyed_gram.bucket_of`); within a bucket the
+        rows keep their order.
+    """
+    bucket = bucket_of(keys, bits)
+    order = np.argsort(bucket, kind="stable")
+    bounds = np.searchsorted(bucket[order], np.arange(2 ** bits + 1))
+    table = table.take(pa.array(order))
+    del bucket, order
+    for b in np.flatnonzero(np.diff(bounds)):
+        place = Path(folder) / f"bucket-{int(b):05d}"
+        place.mkdir(parents=True, exist_ok=True)
+        feather.write_feather(table.slice(int(bounds[b]), int(bounds[b + 1] - bounds[b])),
+                              place / f"group-{group:05d}.arrow", compression="uncompressed")
 
 
 def bucket_totals(rows: TodayRows, bucket: Path) -> dict[str | None, WindowTotals]:

@@ -10,7 +10,9 @@ experiment's age. It runs one bucket of bidders at a time (:mod:`.window_buckets
 set aside by the hash of the id text, then looked up, added and staged bucket by bucket), so its
 memory is a bucket's, not the day's; the first day of a window (nothing stored before it) builds
 its totals the same way, from an empty window. Anything else is rebuilt from the stored pieces,
-exactly as the full recombination: a rerun of a day the window already holds, an earlier day, a window
+exactly as the full recombination, and also bucket by bucket (:mod:`.window_rebuild`: the stored
+bidder sums streamed from the sink and set aside with today's by bucket, so its memory is a
+bucket's, not the window's): a rerun of a day the window already holds, an earlier day, a window
 that lost or regained a day (burn-in, exclusion, a failed warm-up or drift check), a change of bid
 unit. A day's write drops a stored window that covers it unless it brings the window's update,
 and an update whose base changed since its estimate step is dropped too, so the stored window
@@ -39,7 +41,7 @@ import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 
 from counterbid.estimators import (
-    BidderGram, Experiment, StratumPiece, bidder_totals, extend_gram, gram_of, pieces_from_frames, pieces_to_frames,
+    BidderGram, Experiment, StratumPiece, extend_gram, pieces_from_frames, pieces_to_frames,
 )
 from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.constants import REVENUE, piece_labels
@@ -47,13 +49,14 @@ from counterbid.estimators.days import parse_day
 from counterbid.estimators.errors import InputError
 from counterbid.estimators.window_totals import WindowTotals
 
-from . import window_buckets
+from . import window_buckets, window_rebuild
 from .bidder_sum_rows import repeated
 from .hooks import ResultsHook
 from .results_schema import WINDOW_TABLES, WindowWrite, staged_rows
-from .staged_bidder_sums import distinct_bidders, pieces_with_staged_sums, shard_file
+from .staged_bidder_sums import distinct_bidders, shard_file
 from .staging import write_json, write_parquet
 from .window_buckets import bucket_bits, bucket_today, bucket_totals, staged_piece_rows
+from .window_rebuild import bucket_window, window_bucket_totals
 
 __all__ = ["ToDateInputs", "load_window_write", "stage_window_write", "to_date_inputs"]
 
@@ -181,15 +184,78 @@ def to_date_inputs(hook: ResultsHook, *, experiment: Experiment, used_before: li
         write = _window_write(experiment, "replace", None, days_text, ds, grams, None, run_id, computed_at,
                               totals_rows=rows)
         return _inputs(window, grams, write, "rebuilt")
-    # the rebuild needs the bidder sums too: read that one table and reuse the others read above
-    if today_sums is not None:
-        mine = pieces_with_staged_sums(mine, today_sums)
-    sums = hook.stored_piece_frames(experiment_id=experiment.id, days=used_before, tables=[PIECE_TABLES["bidder_sums"]])
-    totals = _totals_by_key(pieces_of_rows({**small, **sums}) + mine, exponent)
-    grams = {key: gram_of(t) for key, t in totals.items()}
-    write = _window_write(experiment, "replace", None, days_text, ds, grams,
-                          {key: (t.bidder_ids, t.sums) for key, t in totals.items()}, run_id, computed_at)
+    # the rebuild streams the stored bidder sums bucket by bucket; the other tables read above serve it
+    grams, rows = _rebuilt_in(hook, experiment, stored, used_before, _distinct_rows(strata), mine, today_sums,
+                              exponent, work_folder)
+    write = _window_write(experiment, "replace", None, days_text, ds, grams, None, run_id, computed_at,
+                          totals_rows=rows)
     return _inputs(window, grams, write, "rebuilt")
+
+
+def _distinct_rows(strata: pd.DataFrame | None) -> int:
+    """The stored pieces' (piece, bidder) rows, from their recorded distinct bidders."""
+    return 0 if strata is None else int(strata["n_distinct_bidders"].clip(lower=0).sum())
+
+
+def _rebuilt_in(hook: ResultsHook, experiment: Experiment, stored: list[StratumPiece], used_before: list[dt.date],
+                stored_rows: int, mine: list[StratumPiece], today_sums: Path | None, exponent: int,
+                work_folder: Path | None) -> tuple[dict, pa.Table | pads.Dataset]:
+    """:func:`_rebuilt` in ``work_folder`` (the staged totals as a dataset), or in a temporary one (read back)."""
+    args = (hook, experiment, stored, used_before, stored_rows, mine, today_sums, exponent)
+    if work_folder is not None:
+        return _rebuilt(*args, Path(work_folder))
+    with tempfile.TemporaryDirectory(prefix="counterbid-window-") as work:
+        grams, rows = _rebuilt(*args, Path(work))
+        return grams, rows.to_table()
+
+
+def _rebuilt(hook: ResultsHook, experiment: Experiment, stored: list[StratumPiece], used_before: list[dt.date],
+             stored_rows: int, mine: list[StratumPiece], today_sums: Path | None, exponent: int, work: Path
+             ) -> tuple[dict, pads.Dataset]:
+    """The window's forms and totals from the stored pieces' bidder sums and today's, bucket by bucket of bidders.
+
+    The stored rows are streamed from the sink and set aside with today's by bucket
+    (:mod:`.window_rebuild`); each bucket's totals per (segment key, bidder) are added up, their
+    Gram form added to the key's (sums over disjoint sets of bidders) and their rows appended to
+    ``work/bidder_window_totals.parquet`` (the experiment's label order): memory is set by a
+    bucket, not by the window. The same numbers as ``bidder_totals`` and ``gram_of`` over every
+    piece, key by key (the plain formula, kept in the tests).
+    """
+    labels = _labels(experiment)
+    segments = sorted({p.key.segment for p in [*stored, *mine] if p.key.segment is not None})
+    long_rows = (stored_rows + _today_rows(mine, today_sums)) * len(labels)
+    rows = bucket_window(hook.stored_bidder_sum_batches(experiment_id=experiment.id, days=used_before,
+                                                        batch_rows=window_rebuild.STREAM_BATCH_ROWS),
+                         stored, _today_ranked(mine, today_sums), work / "window", labels=labels, segments=segments,
+                         exponent=exponent, bits=bucket_bits(long_rows, window_rebuild.REBUILD_BUCKET_ROWS))
+    grams = {key: _empty_gram(len(labels), exponent) for key in [None, *segments]}
+    target = work / "bidder_window_totals.parquet"
+    writer = pq.ParquetWriter(target, _totals_rows(experiment, None, np.array([], dtype=object),
+                                                   np.zeros((0, len(labels)))).schema)
+    try:
+        for bucket in rows.buckets():
+            for key, (ids, sums) in window_bucket_totals(rows, bucket).items():
+                grams[key] = _added(grams[key], sums)
+                writer.write_table(_totals_rows(experiment, key, ids, sums))
+            shutil.rmtree(bucket)
+    finally:
+        writer.close()
+        shutil.rmtree(rows.folder, ignore_errors=True)
+    return grams, staged_rows(target)
+
+
+def _added(gram: BidderGram, sums: np.ndarray) -> BidderGram:
+    """``gram`` plus the form of a disjoint set of bidders' totals (``gram_of``: ``sums' sums``)."""
+    return BidderGram(gram=gram.gram + sums.T @ sums, n_bidders=gram.n_bidders + int(sums.shape[0]),
+                      bid_exponent=gram.bid_exponent)
+
+
+def _today_ranked(mine: list[StratumPiece], today_sums: Path | None) -> Iterator[Iterable]:
+    """Today's pieces with their bidder sums and their positions among today's, one shard at a time."""
+    for shard in sorted({int(p.shard) for p in mine}):
+        at = [i for i, p in enumerate(mine) if int(p.shard) == shard]
+        group = [mine[i] for i in at]
+        yield zip(at, group if today_sums is None else staged_piece_rows(group, shard_file(today_sums, shard)))
 
 
 def _today_groups(mine: list[StratumPiece], today_sums: Path | None) -> Iterator[Iterable]:
@@ -268,14 +334,6 @@ def _collided(found: pa.Table) -> bool:
 def _inputs(window: list[StratumPiece], grams: dict, write: WindowWrite | None, route: str) -> ToDateInputs:
     """Pooled form (key ``None``) as ``gram``, the segments' as ``segment_grams``."""
     return ToDateInputs(window, grams[None], write, route, {k: g for k, g in grams.items() if k is not None})
-
-
-def _totals_by_key(pieces: list[StratumPiece], exponent: int) -> dict[str | None, WindowTotals]:
-    """Bidder totals of every piece (key ``None``) and of each segment's pieces (key: its label)."""
-    out = {None: bidder_totals(pieces, bid_exponent=exponent)}
-    for label in sorted({p.key.segment for p in pieces if p.key.segment is not None}):
-        out[label] = bidder_totals([p for p in pieces if p.key.segment == label], bid_exponent=exponent)
-    return out
 
 
 def _segment_of(value) -> str | None:
@@ -360,14 +418,15 @@ def _gram_of_rows(rows: pd.DataFrame, n_bidders: int, exponent: int, experiment:
     return BidderGram(gram=gram, n_bidders=n_bidders, bid_exponent=exponent)
 
 
-def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray, sums: np.ndarray) -> pa.Table:
+def _totals_rows(experiment: Experiment, segment: str | None, ids: np.ndarray | pa.Array, sums: np.ndarray) -> pa.Table:
     """One row per bidder, every label's total in the list column ``sums`` (columns of ``sums`` in stored order)."""
     n, width = sums.shape
     values = pa.array(np.ascontiguousarray(sums, dtype=float).reshape(-1), pa.float64())
     offsets = pa.array(np.arange(0, n * width + 1, width, dtype=np.int32), pa.int32())
     return pa.table({"experiment_id": repeated(experiment.id, n), "segment": repeated(segment, n),
                      "bidder_key": pa.nulls(n, pa.int64()),
-                     "bidder_id": pa.array(ids_as_text(np.asarray(ids)), pa.string()),
+                     "bidder_id": ids.cast(pa.string()) if isinstance(ids, (pa.Array, pa.ChunkedArray))
+                     else pa.array(ids_as_text(np.asarray(ids)), pa.string()),
                      "sums": pa.ListArray.from_arrays(offsets, values)})
 
 

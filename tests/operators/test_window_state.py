@@ -144,23 +144,31 @@ def test_a_write_without_the_window_drops_a_window_that_covers_its_day(lake, tmp
 
 def test_a_rebuilt_window_reads_each_stored_piece_table_once(lake, tmp_path):
     """A rerun rebuilds the window from the stored pieces: the strata, arms and covariance rows read for
-    the to-date pieces serve the rebuild too; only the bidder sums are read in addition."""
+    the to-date pieces serve the rebuild too; only the bidder sums are read in addition, streamed once
+    in record batches of their own size (never as one frame)."""
     exp = _spec()
     hook = ResultsHook(database=tmp_path / "results.duckdb", lock_timeout=5)
     stage = tmp_path / "stage"
     for day in DAYS[:3]:
         _run_day(hook, lake, exp, stage, day, f"r-{day}")
-    reads = []
-    plain = hook.stored_piece_frames
+    reads, streamed = [], []
+    plain, stream = hook.stored_piece_frames, hook.stored_bidder_sum_batches
 
     def counted(**kw):
         reads.extend(kw["tables"])
         return plain(**kw)
 
-    hook.stored_piece_frames = counted  # the real hook, its reads listed
+    def batches(**kw):
+        for batch in stream(**kw):
+            streamed.append(batch.num_rows)
+            yield batch
+
+    hook.stored_piece_frames, hook.stored_bidder_sum_batches = counted, batches  # the real hook, its reads listed
     assert _run_day(hook, lake, exp, stage, DAYS[1], "again-2")["bidder_window"] == "rebuilt"
-    assert sorted(reads) == sorted(partition.PIECE_TABLES.values()), reads
-    del hook.stored_piece_frames
+    assert sorted(reads) == sorted(t for t in partition.PIECE_TABLES.values() if t != "stratum_piece_bidder_sums"), reads
+    stored = plain(experiment_id=exp.id, days=[DAYS[0]], tables=["stratum_piece_bidder_sums"])
+    assert sum(streamed) == len(stored["stratum_piece_bidder_sums"]) > 0  # day 1's rows, each once
+    del hook.stored_piece_frames, hook.stored_bidder_sum_batches
     _check_against_full_recombination(hook, exp, DAYS[1], DAYS[:2])
     assert _check_stored_window(hook, exp) == DAYS[:2]
 
