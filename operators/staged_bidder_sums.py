@@ -9,8 +9,10 @@ bidder sums, and the day's bidder forms reach the driver. On a cluster the stagi
 therefore be a path the executors and the Airflow worker share.
 
 The running window (:mod:`counterbid.operators.window_state`) adds today's bidder sums to the
-stored totals; :func:`pieces_with_staged_sums` reads them back from those files, one shard's file
-at a time.
+stored totals, reading them from those files one shard's file at a time
+(:func:`~counterbid.operators.window_buckets.staged_piece_rows`, label by label, into buckets of
+bidders). :func:`pieces_with_staged_sums` gives the pieces with their sums whole, for a caller
+that holds a shard's sums in memory anyway (the Spark benchmark of the window's read-back).
 """
 
 from __future__ import annotations
