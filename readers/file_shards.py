@@ -73,7 +73,7 @@ def _auction_shards(dataset, n_rows: int, n_shards: int) -> np.ndarray | None:
     runs = auction_runs(column(), n_rows)
     if runs is not None:
         codes, ids = runs.codes, runs.ids
-    elif pa.types.is_integer(dataset.schema.field("auction_id").type):
+    elif pa.types.is_integer(kind := dataset.schema.field("auction_id").type) and kind != pa.uint64():  # int64 holds it
         chunks = list(column())
         if sum(c.null_count for c in chunks) or sum(len(c) for c in chunks) != n_rows:
             return None

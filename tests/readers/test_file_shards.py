@@ -67,12 +67,21 @@ def test_the_split_by_auction_writes_duckdbs_shard_files(tmp_path, monkeypatch, 
     assert sum(t.num_rows for _, t in found) == len(bids) and len(found) == n
 
 
-def test_integer_ids_out_of_order_are_split_too(tmp_path):
+@pytest.mark.parametrize("dtype", ["int64", "int32", "uint64"])
+def test_integer_ids_out_of_order_are_split_too(tmp_path, dtype):
     bids = _log(False).sample(frac=1.0, random_state=3)  # auctions scattered over the log
+    if dtype == "uint64":  # beyond int64: only their runs are numbered here, so DuckDB's route splits these
+        bids["auction_id"] = bids["auction_id"].astype(np.uint64) + np.uint64(2**63)
+    else:
+        bids["auction_id"] = bids["auction_id"].astype(dtype)
     path = tmp_path / "shuffled.parquet"
     bids.to_parquet(path, index=False)
-    assert file_shards.split_by_auction(path, tmp_path / "out", 3)
+    assert file_shards.split_by_auction(path, tmp_path / "out", 3) == (dtype != "uint64")
     _same_files(path, 3)
+    in_runs = tmp_path / "in_runs.parquet"
+    bids.sort_values("auction_id", kind="stable").to_parquet(in_runs, index=False)
+    assert file_shards.split_by_auction(in_runs, tmp_path / "out_runs", 3)
+    _same_files(in_runs, 3)
 
 
 @pytest.mark.parametrize("case", ["text_recurs", "null_id", "dictionary", "folder"])
