@@ -66,12 +66,13 @@ ARROW_POOL_ENV = "ARROW_DEFAULT_MEMORY_POOL"
 def use_system_allocator() -> str:
     """Arrow's buffers from the C library's allocator for this process, unless ``$ARROW_DEFAULT_MEMORY_POOL`` says.
 
-    Under pyarrow's default pool (mimalloc) much of the command's CPU went to the kernel, and more
-    so on a busy machine: text ids at 10M bids, the two identity columns read, 4.6-5.4 s of system
-    CPU against 2.3-2.9 s with the C library's allocator; integer ids at 10M bids, the whole command
-    with load average 8-10, 2.9-3.6 s against 1.5-2.0 s; the file-based split of a 10M-bid log,
-    5.6-7.1 s against 1.7-3.5 s (docs/scale.md). One short-lived command owns its process, so it
-    picks the pool; a library function never does. Returns the pool's backend name.
+    Called when the log's auction or bidder ids are text: Arrow dictionary-encodes each such column
+    with one hash table that grows by reallocation, and under pyarrow's default pool (mimalloc)
+    much of that CPU went to the kernel (10M text bids, the two columns read: 4.6-5.4 s system CPU
+    against 2.3-2.9 s with the C library's allocator, and a lower peak; docs/scale.md). Integer
+    ids keep Arrow's default pool, which faults in fewer pages there. One short-lived command
+    owns its process, so it picks the pool; a library function never does. Returns the pool's
+    backend name.
     """
     import pyarrow as pa
 
@@ -105,7 +106,9 @@ def run(args: argparse.Namespace) -> int:
 
             engine = SparkEngine(spark_session(args.spark_master))
         else:
-            if local_path:
+            from counterbid.readers.bid_log import text_identity_columns
+
+            if local_path and text_identity_columns(args.bids):
                 use_system_allocator()  # before the first column is read
             engine = LocalEngine()  # shard by shard: the same path as the pipeline's estimate step
         result = estimate_bid_log(args.bids, experiment, engine=engine, max_bids_per_shard=max_bids,
