@@ -144,7 +144,7 @@ def _integer_bidders(bids: pd.DataFrame) -> pd.DataFrame:
     return bids
 
 
-def _shard_pieces(bids: pd.DataFrame, order: np.ndarray, bounds: np.ndarray, present: list[int],
+def _shard_pieces(bids: pd.DataFrame, shard: np.ndarray, present: list[int],
                   experiment: Experiment, cluster: str, name: str, *, auction_covariance: bool):
     """Every present shard's pieces, single-bidder auctions left out, and whether some shard held nothing else."""
     from .shards import one_shard_pieces
@@ -154,7 +154,7 @@ def _shard_pieces(bids: pd.DataFrame, order: np.ndarray, bounds: np.ndarray, pre
     for k in present:
         where = name if len(present) == 1 else f"{name} (shard {k})"
         # the shard's rows in log order, as the file-based split writes them; the same per-shard body
-        found = one_shard_pieces(k, bids.take(order[bounds[k]:bounds[k + 1]]).reset_index(drop=True), experiment,
+        found = one_shard_pieces(k, bids.take(np.flatnonzero(shard == k)).reset_index(drop=True), experiment,
                                  cluster=cluster, where=where, alone=len(present) == 1,
                                  auction_covariance=auction_covariance)
         pieces += found.pieces
@@ -217,21 +217,19 @@ def pieces_in_memory(path: str | Path, experiment: Experiment, n_shards: int, *,
     name = str(source or path)
     columns = ["experiment_id", *BID_COLUMNS, *experiment.auction_columns]
     bids, shard = _keyed_or_plain(path, columns, n_shards, name, keyed_ids)
-    order = np.argsort(shard, kind="stable")  # rows of shard 0, then 1, ...: each in log order
-    # where each shard's rows start in that order: the counts' running sum (no gather of the shard column)
-    bounds = np.concatenate([[0], np.cumsum(np.bincount(shard, minlength=int(n_shards)))])
-    del shard
-    present = [k for k in range(int(n_shards)) if bounds[k + 1] > bounds[k]]
+    # each shard's rows are found when it is estimated (a pass over 2 bytes per bid), in log order:
+    # no sorted copy of every row number is held meanwhile
+    present = np.flatnonzero(np.bincount(shard, minlength=int(n_shards))).tolist()
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         # Pieces that keep bidder sums are combined by bidder: their auction-clustered covariance
         # (a gather and a bincount per metric) is left out. Only `auto` can still end up clustering
         # by auction -- when some shard's bidders repeat and another's do not -- and then every
         # shard is estimated again with it.
-        found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=False)
+        found = _shard_pieces(bids, shard, present, experiment, cluster, name, auction_covariance=False)
         if cluster == "auto" and len({p.bidder_sums is None for p in found[0]}) > 1:
             del said[:]
-            found = _shard_pieces(bids, order, bounds, present, experiment, cluster, name, auction_covariance=True)
+            found = _shard_pieces(bids, shard, present, experiment, cluster, name, auction_covariance=True)
     pieces, excluded, single_bidders = found
     if not pieces:
         raise no_pieces_error(name, experiment.id, single_bidders=single_bidders, n_excluded_auctions=excluded)

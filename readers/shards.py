@@ -203,12 +203,15 @@ def write_shards(batches, folder: str | Path, n_shards: int) -> list[int]:
 
 
 @contextmanager
-def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[int, Path]]]:
+def staged_bid_log_shards(path: str | Path, shards: int, *, by_auction: bool = True) -> Iterator[list[tuple[int, Path]]]:
     """A bid log split into ``shards`` shards in a temporary folder (removed on exit).
 
     DuckDB computes each row's shard (``sql/bid_log_read_shards.sql``) and streams the rows; they
-    are written shard by shard (:func:`write_shards`), one batch in memory. One shard needs no
-    copy: the log itself is yielded as shard 0.
+    are written shard by shard (:func:`write_shards`), one batch in memory. A single file with
+    integer auction ids, or text ones written auction by auction, is split with the shard computed
+    once per auction instead (:func:`~counterbid.readers.file_shards.split_by_auction`: the same
+    files; ``by_auction=False`` keeps DuckDB's route, the reference in the tests). One shard needs
+    no copy: the log itself is yielded as shard 0.
     """
     if shards <= 1:
         yield [(0, Path(path))]
@@ -220,6 +223,11 @@ def staged_bid_log_shards(path: str | Path, shards: int) -> Iterator[list[tuple[
     path = Path(path)
     files = str(path / "**" / "*.parquet") if path.is_dir() else str(path)
     with tempfile.TemporaryDirectory(prefix="counterbid-shards-") as tmp:
+        from .file_shards import split_by_auction
+
+        if by_auction and split_by_auction(path, Path(tmp) / "by-auction", shards):  # the md5 rule once per auction
+            yield shard_folders(Path(tmp) / "by-auction")
+            return
         con = duckdb.connect(config=SHARD_SCAN_CONFIG)
         try:
             reader = con.sql(load_sql("bid_log_read_shards"), params={"files": files, "hive": path.is_dir(),

@@ -90,7 +90,7 @@ def _estimates(path, monkeypatch, budget: str, **kw):
 
 def _plain(path, cluster):
     """The plain formula: DuckDB's shard files, text bidder ids matched across shards by their text."""
-    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX)) as shards:
+    with staged_bid_log_shards(path, n_shards(bid_log_rows(path), MAX), by_auction=False) as shards:
         found = pieces_by_shard(shards, EXP, cluster=cluster, source=str(path))
     return found, combine_pieces(found.pieces, EXP, cluster=cluster, n_excluded_auctions=found.n_excluded_auctions)
 
