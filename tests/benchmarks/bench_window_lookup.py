@@ -9,9 +9,16 @@ DuckDB memory it leaves held (``duckdb_memory()``) and whether it spilled. ``non
 that reads today's ids and opens the file but runs nothing (its peak RSS is the others' base).
 The lookup runs with the connection's ``memory_limit`` (``uncapped``, as before
 :mod:`counterbid.operators.lookup_memory`) and with the cap that module sets (``capped``), and
-with ``--no-temp`` DuckDB has no temporary directory to spill to (it fails instead).
+with ``--no-temp`` DuckDB has no temporary directory to spill to (it fails instead). ``--split B``
+adds ``buckets-B-hash`` and ``buckets-B-key``: the same rows looked up in ``B`` buckets, as the
+daily update splits a larger day (:mod:`counterbid.operators.window_buckets`), by the id's hash
+(before) or by the top bits of its integer key (now), one capped lookup per bucket on one
+connection (CPU and rows summed). ``--reorder ROWS`` first rewrites the copy's stored totals in
+the order daily inserts in key-range bucket order leave them
+(``sql/bench_reorder_window_totals.sql``), so the key buckets' lookups can skip row groups.
 
 Usage: python tests/benchmarks/bench_window_lookup.py RESULTS.duckdb TODAY.parquet [--experiment bench] [--no-temp]
+       [--split 4] [--reorder 1000000]
 """
 
 from __future__ import annotations
@@ -42,7 +49,29 @@ def _today(parquet: Path, experiment: str):
                      "sums": pa.nulls(n, pa.list_(pa.float64()))})
 
 
-def child(variant: str, results: Path, parquet: Path, experiment: str, no_temp: bool) -> dict:
+def _by_bucket(s, today, n_buckets: int, experiment: str, rule: str) -> int:
+    """Rows found by one lookup per bucket of ``today`` (``rule``: ``key``, the daily update's top bits of
+    the integer key; ``hash``, the 64-bit FNV-1a hash of the id text it used before)."""
+    import pyarrow as pa
+
+    from counterbid.estimators.keyed_gram import bucket_of
+    from counterbid.operators.window_keys import key_buckets, window_keys
+    from counterbid.readers.id_hashes import fnv1a_64
+
+    bits = (n_buckets - 1).bit_length()
+    ids = today.column("bidder_id")
+    bucket = key_buckets(window_keys(ids), bits) if rule == "key" else bucket_of(fnv1a_64(ids), bits)
+    s.con.unregister("incoming")
+    found = 0
+    for b in range(n_buckets):
+        s.con.register("incoming", today.filter(pa.array(bucket == b)))
+        found += s.fetch_arrow("bidder_window_totals_select_incoming", {"experiment_id": experiment}).num_rows
+        s.con.unregister("incoming")
+    s.con.register("incoming", today)
+    return found
+
+
+def child(variant: str, results: Path, parquet: Path, experiment: str, no_temp: bool) -> dict:  # noqa: C901
     from counterbid.operators import hooks
     from counterbid.operators.hooks import ResultsHook
     from counterbid.operators.lookup_memory import lookup_memory_mib
@@ -51,7 +80,11 @@ def child(variant: str, results: Path, parquet: Path, experiment: str, no_temp: 
     today = _today(parquet, experiment)
     hook = ResultsHook(database=results)
     cap = lookup_memory_mib(today.num_rows, today.column("bidder_id").nbytes, limit_mib=hook.memory_limit_mib)
-    memory = cap if variant == "lookup-capped" else hook.memory_limit_mib
+    if variant.startswith("buckets-"):  # the cap of one bucket's rows
+        n = int(variant.split("-")[1])
+        cap = lookup_memory_mib(-(-today.num_rows // n), -(-today.column("bidder_id").nbytes // n),
+                                limit_mib=hook.memory_limit_mib)
+    memory = hook.memory_limit_mib if variant in ("none", "lookup-uncapped", "delete") else cap
     if no_temp:  # the same connection settings, with nowhere to spill to
         import duckdb
 
@@ -62,7 +95,9 @@ def child(variant: str, results: Path, parquet: Path, experiment: str, no_temp: 
     with hook.session(read_only=not variant.startswith("delete"), memory_mib=memory) as s:
         r0, w0 = resource.getrusage(resource.RUSAGE_SELF), time.perf_counter()
         with s.incoming(WINDOW_TABLES[-1], today):
-            if variant.startswith("lookup"):
+            if variant.startswith("buckets-"):
+                out["rows"] = _by_bucket(s, today, int(variant.split("-")[1]), experiment, variant.split("-")[2])
+            elif variant.startswith("lookup"):
                 out["rows"] = s.fetch_arrow("bidder_window_totals_select_incoming", {"experiment_id": experiment}).num_rows
             elif variant == "delete":
                 s.con.execute("begin transaction")
@@ -75,6 +110,16 @@ def child(variant: str, results: Path, parquet: Path, experiment: str, no_temp: 
         r1 = resource.getrusage(resource.RUSAGE_SELF)
     return out | {"statement_cpu": r1.ru_utime - r0.ru_utime + r1.ru_stime - r0.ru_stime,
                   "statement_wall": time.perf_counter() - w0, "duckdb_held_mib": held, "temp_mib": temp}
+
+
+def _reorder(copy: Path, n_buckets: int, rows_per_day: int) -> None:
+    from counterbid.operators.hooks import ResultsHook
+
+    hook = ResultsHook(database=copy)
+    with hook.session() as s:
+        s.execute("bench_reorder_window_totals", {"rows_per_day": int(rows_per_day),
+                                                  "bits": (int(n_buckets) - 1).bit_length()})
+        s.con.execute("checkpoint")
 
 
 def run_child(argv: list[str]) -> dict:
@@ -95,8 +140,15 @@ def main() -> None:
     ap.add_argument("today", type=Path)
     ap.add_argument("--experiment", default="bench")
     ap.add_argument("--no-temp", action="store_true")
+    ap.add_argument("--split", type=int, default=None, help="also look today's rows up in this many buckets (power of 2)")
+    ap.add_argument("--reorder", type=int, default=None, metavar="ROWS_PER_DAY",
+                    help="first rewrite the copy's stored totals as daily inserts in key-range bucket order leave "
+                         "them (runs of this many rows, each in --split buckets)")
     ap.add_argument("--child", default=None)
     args = ap.parse_args()
+    if args.child == "reorder":
+        _reorder(args.results, args.split, args.reorder)
+        return
     if args.child:
         print(json.dumps(child(args.child, args.results, args.today, args.experiment, args.no_temp)))
         return
@@ -112,12 +164,17 @@ def main() -> None:
         print("| variant | today's rows | buckets | memory_limit MiB | rows found/deleted | statement CPU s | "
               "statement wall s | child CPU s | child peak RSS MiB | DuckDB held MiB | spilled MiB | load avg |")
         print("|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
-        for variant in VARIANTS:
+        if args.reorder:  # in a child of its own: a child's peak RSS starts from its parent's at the fork
+            subprocess.run([sys.executable, str(Path(__file__).resolve()), str(copy), str(args.today), "--split",
+                            str(args.split), "--reorder", str(args.reorder), "--child", "reorder"], check=True)
+        split = [f"buckets-{args.split}-{rule}" for rule in ("hash", "key")] if args.split else []
+        for variant in [*VARIANTS, *split]:
             r = run_child([*me, variant])
             if r.get("failed"):
                 print(f"| {variant} | failed (see stderr) |")
                 continue
-            buckets = 2 ** bucket_bits(r["today"], WINDOW_BUCKET_ROWS)
+            buckets = int(variant.split("-")[1]) if variant.startswith("buckets-") else \
+                2 ** bucket_bits(r["today"], WINDOW_BUCKET_ROWS)
             print(f"| {variant} | {r['today']} | {buckets} | {r['memory_limit_mib']} | {r.get('rows', '-')} | "
                   f"{r['statement_cpu']:.2f} | {r['statement_wall']:.2f} | {r['cpu']:.2f} | {r['rss_mib']:.0f} | "
                   f"{r['duckdb_held_mib']:.0f} | {r['temp_mib']:.0f} | {os.getloadavg()[0]:.2f} |", flush=True)
