@@ -31,6 +31,7 @@ from counterbid.readers.memory_shards import memory_budget_mib
 from counterbid.sql import validate_identifier
 
 from .extras import require_extra
+from .lookup_memory import lookup_memory_mib
 from .results_schema import (
     POSTGRES_SCHEMES, RESULTS_TABLES, WINDOW_TABLES, DuckDBSession, PostgresSession, ResultsSession, ResultsTarget,
     WRITE_BATCH_ROWS, WindowWrite, check_readable,
@@ -431,9 +432,11 @@ class ResultsHook(BaseHook):
         ``sum_labels`` order) of the (segment, bidder) pairs of ``today`` the window holds.
         """
         dest = WINDOW_TABLES[-1]
+        # a cap set by today's rows, not by the stored window the lookup scans (see .lookup_memory)
+        memory = lookup_memory_mib(today.num_rows, today.column("bidder_id").nbytes, limit_mib=self.memory_limit_mib)
 
         def run():
-            with self.session(read_only=True) as s:
+            with self.session(read_only=True, memory_mib=memory) as s:
                 check_readable(s)
                 with s.transaction(), s.incoming(dest, today):
                     return s.fetch_arrow("bidder_window_totals_select_incoming", {"experiment_id": experiment_id})

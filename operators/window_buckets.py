@@ -4,9 +4,10 @@ The daily update of the running window (:mod:`counterbid.operators.window_state`
 ``extended``) looks up today's bidders in ``bidder_window_totals``, adds today's sums and stages
 their new totals. Done for the whole day at once, it holds every one of today's ids as text
 several times over. Here today's per-bidder rows are set aside on disk first, one group of pieces
-(one shard) at a time, split by the bucket of the 64-bit FNV-1a hash of the id text
-(:func:`counterbid.readers.id_hashes.fnv1a_64`,
-:func:`counterbid.estimators.keyed_gram.bucket_of`): every row of one bidder lies in one bucket,
+(one shard) at a time, split by the top bits of the window's integer key of the id
+(:func:`.window_keys.window_keys`, :func:`.window_keys.key_buckets`: a bucket is a range of the
+key the stored totals carry, so a bucket's lookup skips the stored row groups of other buckets'
+keys): every row of one bidder lies in one bucket,
 whatever its shard or stratum, so a bucket's totals (:func:`bucket_totals`) are those bidders'
 whole-day totals, and the update runs bucket by bucket with memory set by a bucket. Rows are
 weighted by their stratum on the way (``M_s 2**(e_s - e)``, as
@@ -31,11 +32,10 @@ import pyarrow.parquet as pq
 from counterbid.estimators import StratumPiece
 from counterbid.estimators._ids import ids_as_text
 from counterbid.estimators.errors import InputError
-from counterbid.estimators.keyed_gram import bucket_of
 from counterbid.estimators.window_totals import WindowTotals
-from counterbid.readers.id_hashes import fnv1a_64
 
 from .bidder_sum_rows import repeated
+from .window_keys import key_buckets, window_keys
 
 __all__ = ["WINDOW_BUCKET_ROWS", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
            "set_aside", "staged_piece_rows"]
@@ -197,27 +197,27 @@ def bucket_today(groups: Iterable[Iterable[PieceRows | StratumPiece]], folder: P
             continue
         width = table.num_columns - 2
         segments |= set(pc.unique(table.column("segment")).drop_null().to_pylist())
-        set_aside(table, fnv1a_64(table.column("bidder_id")), folder, group=g, bits=bits)
+        set_aside(table, key_buckets(window_keys(table.column("bidder_id")), bits), folder, group=g, bits=bits)
         del table
     return TodayRows(Path(folder), bits, width or 0, sorted(segments), exponent)
 
 
-def set_aside(table: pa.Table, keys: np.ndarray, folder: Path, *, group: int, bits: int) -> None:
-    """Write the rows of ``table`` into ``folder/bucket-B/group-G.arrow`` by the bucket of their 64-bit ``keys``.
+def set_aside(table: pa.Table, bucket: np.ndarray, folder: Path, *, group: int, bits: int) -> None:
+    """Write the rows of ``table`` into ``folder/bucket-B/group-G.arrow`` by their ``bucket``.
 
     Parameters
     ----------
     table : pyarrow.Table
-    keys : numpy.ndarray of int64
-        One per row: the hash of the row's id text (:func:`counterbid.readers.id_hashes.fnv1a_64`).
+    bucket : numpy.ndarray of int64
+        One per row, in ``0 .. 2**bits - 1``, a function of the row's id text only (so every row
+        of one bidder lands in one bucket): the daily update's key range
+        (:func:`~counterbid.operators.window_keys.key_buckets`), or the rebuild's hash bucket.
     folder : Path
     group : int
         Number of this group of rows (its file name in each bucket's folder).
     bits : int
-        ``2**bits`` buckets (:func:`counterbid.estimators.keyed_gram.bucket_of`); within a bucket the
-        rows keep their order.
+        ``2**bits`` buckets; within a bucket the rows keep their order.
     """
-    bucket = bucket_of(keys, bits)
     order = np.argsort(bucket, kind="stable")
     bounds = np.searchsorted(bucket[order], np.arange(2 ** bits + 1))
     table = table.take(pa.array(order))

@@ -5,9 +5,10 @@ bid unit, a key collision, a dropped window) needs every bidder's totals over ev
 Read whole, the stored ``stratum_piece_bidder_sums`` rows of the earlier days cost memory in
 proportion to the window's days. Here they are streamed from the sink in record batches
 (:meth:`~counterbid.operators.hooks.ResultsHook.stored_bidder_sum_batches`) and set aside on
-disk, together with today's rows, by the bucket of the 64-bit FNV-1a hash of the id text (the rule
-of :mod:`.window_buckets`: every row of one bidder lies in one bucket, whatever its day, shard,
-stratum or segment). Each bucket's totals per (segment key, bidder) are then added up alone, so
+disk, together with today's rows, by the bucket of the 64-bit FNV-1a hash of the id text (every
+row of one bidder lies in one bucket, whatever its day, shard, stratum or segment; the rebuild
+reads no stored key, so it needs no key range, unlike the daily update's buckets in
+:mod:`.window_buckets`, and the hash is cheaper than the md5 key). Each bucket's totals per (segment key, bidder) are then added up alone, so
 memory is set by a bucket, not by the window.
 
 Rows are kept long (one per piece, bidder and label), weighted on the way by their piece
@@ -33,6 +34,7 @@ import pyarrow.feather as feather
 from counterbid.estimators import StratumPiece
 from counterbid.estimators.days import parse_day
 from counterbid.estimators.errors import InputError
+from counterbid.estimators.keyed_gram import bucket_of
 from counterbid.readers.id_hashes import fnv1a_64
 
 from .window_buckets import PieceRows, set_aside
@@ -225,7 +227,7 @@ def bucket_window(stored_batches: Iterable[pa.RecordBatch], stored: Sequence[Str
             return
         table = pa.concat_tables(gathered)
         gathered, held = [], 0
-        set_aside(table, _id_hashes(table.column("bidder_id")), folder, group=group, bits=bits)
+        set_aside(table, bucket_of(_id_hashes(table.column("bidder_id")), bits), folder, group=group, bits=bits)
         group += 1
 
     def rows() -> Iterator[pa.Table]:

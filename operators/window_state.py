@@ -7,7 +7,7 @@ running totals ``U_b`` per bidder with their Gram form and distinct-bidder count
 stored one plus today (the daily run) reads only today's bidders' totals (a join on an integer key of today's ids in
 SQL) and writes them back with today added: its cost follows today's bidders, not the
 experiment's age. It runs one bucket of bidders at a time (:mod:`.window_buckets`: today's rows
-set aside by the hash of the id text, then looked up, added and staged bucket by bucket), so its
+set aside by key range (the top bits of the integer key), then looked up, added and staged bucket by bucket), so its
 memory is a bucket's, not the day's; the first day of a window (nothing stored before it) builds
 its totals the same way, from an empty window. Anything else is rebuilt from the stored pieces,
 exactly as the full recombination, and also bucket by bucket (:mod:`.window_rebuild`: the stored
