@@ -37,7 +37,7 @@ from counterbid.estimators.window_totals import WindowTotals
 from .bidder_sum_rows import repeated
 from .window_keys import key_buckets, window_keys
 
-__all__ = ["WINDOW_BUCKET_ROWS", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
+__all__ = ["WINDOW_BUCKET_ROWS", "BucketedRows", "PieceRows", "TodayRows", "bucket_bits", "bucket_today", "bucket_totals",
            "set_aside", "staged_piece_rows"]
 
 #: Today's (piece, bidder) rows looked up and added in one bucket, on average (about 100 bytes a
@@ -68,7 +68,32 @@ def bucket_bits(n_rows: int, bucket_rows: int) -> int:
 
 
 @dataclass(frozen=True)
-class TodayRows:
+class BucketedRows:
+    """Rows set aside in ``folder`` by :func:`set_aside`: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
+
+    Attributes
+    ----------
+    folder : Path
+    bits : int
+        ``2**bits`` buckets.
+    width : int
+        Revenue labels (sum columns), in the experiment's order.
+    segments : list of str
+        Segment labels of the rows.
+    """
+
+    folder: Path
+    bits: int
+    width: int
+    segments: list[str]
+
+    def buckets(self) -> Iterator[Path]:
+        """The folders of the buckets holding rows, in bucket order."""
+        yield from sorted(self.folder.glob("bucket-*"))
+
+
+@dataclass(frozen=True)
+class TodayRows(BucketedRows):
     """Today's weighted per-bidder rows in ``folder``: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
 
     Attributes
@@ -84,15 +109,7 @@ class TodayRows:
         Unit of the weighted sums.
     """
 
-    folder: Path
-    bits: int
-    width: int
-    segments: list[str]
     bid_exponent: int
-
-    def buckets(self) -> Iterator[Path]:
-        """The folders of the buckets holding rows, in bucket order."""
-        yield from sorted(self.folder.glob("bucket-*"))
 
 
 @dataclass(frozen=True)

@@ -37,7 +37,7 @@ from counterbid.estimators.errors import InputError
 from counterbid.estimators.keyed_gram import bucket_of
 from counterbid.readers.id_hashes import fnv1a_64
 
-from .window_buckets import PieceRows, set_aside
+from .window_buckets import BucketedRows, PieceRows, set_aside
 
 __all__ = ["GATHER_ROWS", "REBUILD_BUCKET_ROWS", "PieceRanks", "WindowRows", "bucket_window", "window_bucket_totals"]
 
@@ -52,7 +52,7 @@ _NO_SEGMENT = -1
 
 
 @dataclass(frozen=True)
-class WindowRows:
+class WindowRows(BucketedRows):
     """The window's weighted long rows in ``folder``: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
 
     Attributes
@@ -65,15 +65,6 @@ class WindowRows:
     segments : list of str
         Segment labels of the window's pieces (``segment`` holds the position, -1 for none).
     """
-
-    folder: Path
-    bits: int
-    width: int
-    segments: list[str]
-
-    def buckets(self) -> Iterator[Path]:
-        """The folders of the buckets holding rows, in bucket order."""
-        yield from sorted(self.folder.glob("bucket-*"))
 
 
 @dataclass(frozen=True)

@@ -35,12 +35,11 @@ from counterbid.estimators import (
     SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_segmented_experiment,
 )
 from counterbid.operators import partition, window_buckets, window_state
-from counterbid.operators.lake_hook import LakeHook
-from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.shard_step import shard_task_pieces
 from counterbid.operators.staged_bidder_sums import staged_shards
-from counterbid.operators.staging import StagedPartition
 from counterbid.operators.window_buckets import bucket_bits, bucket_today, bucket_totals
+
+from .window_days import pooled, shards_estimated
 
 FIRST = dt.date(2026, 8, 3)
 DAYS = [FIRST + dt.timedelta(days=k) for k in range(3)]
@@ -75,21 +74,10 @@ def lake(tmp_path_factory):
     return root
 
 
-def _shards_estimated(lake, stage, exp, day) -> StagedPartition:
-    """One day loaded in four shards, through the schema gate, each shard estimated by its own task."""
-    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage,
-                                    max_bids_per_shard=SHARD_BIDS)
-    assert out["shards"] == 4
-    staged = StagedPartition.at(stage, exp.id, day)
-    partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
-    for k in range(4):
-        partition.estimate_partition_shard(exp, ds=day, staging_root=stage, shard=k)
-    return staged
-
-
 def _run_day(hook, lake, exp, stage, day):
     """Load (four shards), the schema gate, one task per shard, the combining estimate, the write."""
-    staged = _shards_estimated(lake, stage, exp, day)
+    staged, shards = shards_estimated(lake, stage, exp, day, SHARD_BIDS)
+    assert shards == 4
     summary = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=f"r-{day}",
                                            shard_tasks=True)
     sums = staged.folder / f"{partition.PIECE_TABLES['bidder_sums']}.parquet"
@@ -99,20 +87,14 @@ def _run_day(hook, lake, exp, stage, day):
     return summary, staged_sums
 
 
-def _pooled(frame):
-    frame = frame.copy()
-    frame["segment"] = frame["segment"].astype(object).where(frame["segment"].notna(), "(pooled)")
-    return frame
-
-
 def _check_rows(hook, exp, day, days, report):
     """Stored rows of ``day`` (report ``report``) = ``combine_pieces`` over the stored pieces of ``days``."""
     stored = hook.stored_piece_frames(experiment_id=exp.id, days=days, tables=list(partition.PIECE_TABLES.values()))
     want = combine_pieces(window_state.pieces_of_rows(stored), exp, cluster="auto")
     assert want.cluster == "bidder" and want.segments
-    rows = _pooled(hook.fetch_df(report, {"experiment_id": exp.id}))
+    rows = pooled(hook.fetch_df(report, {"experiment_id": exp.id}))
     got = rows[rows["ds"].dt.date == day].set_index(["segment", "arm", "metric"])
-    want = _pooled(want.table).set_index(["segment", "arm", "metric"])
+    want = pooled(want.table).set_index(["segment", "arm", "metric"])
     assert len(got) == len(want)
     np.testing.assert_allclose(got.loc[want.index, NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float),
                                rtol=1e-12, atol=0)
@@ -171,7 +153,7 @@ def test_a_bucketed_daily_update_over_shard_tasks_gives_the_plain_totals_and_row
 
 def test_the_combine_step_hands_each_shards_bidder_rows_on_and_keeps_none(lake, tmp_path):
     exp = _spec()
-    staged = _shards_estimated(lake, tmp_path / "stage", exp, DAYS[0])
+    staged, _ = shards_estimated(lake, tmp_path / "stage", exp, DAYS[0], SHARD_BIDS)
     handed = []
     (tmp_path / "spill").mkdir()
     found = shard_task_pieces(staged, exp, cluster="auto", spill_folder=tmp_path / "spill",
@@ -192,7 +174,7 @@ def test_the_combine_step_hands_each_shards_bidder_rows_on_and_keeps_none(lake, 
 def test_bucket_totals_add_up_to_the_plain_totals(lake, tmp_path, bits):
     """Over every bucket, the totals of each key are ``bidder_totals`` of today's pieces: same bidders, 1e-12."""
     exp = _spec()
-    staged = _shards_estimated(lake, tmp_path / "stage", exp, DAYS[1])
+    staged, _ = shards_estimated(lake, tmp_path / "stage", exp, DAYS[1], SHARD_BIDS)
     pieces = shard_task_pieces(staged, exp, cluster="auto").pieces
     exponent = max(p.bid_exponent for p in pieces) + 1  # a window in a larger unit than today's
     rows = bucket_today(([p for p in pieces if p.shard == k] for k in range(4)), tmp_path / "rows",

@@ -43,11 +43,10 @@ from counterbid.estimators import (
 )
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition, window_rebuild, window_state
-from counterbid.operators.lake_hook import LakeHook
-from counterbid.operators.schema_gate import schema_gate
 from counterbid.operators.shard_step import shard_task_pieces
-from counterbid.operators.staging import StagedPartition
 from counterbid.operators.window_rebuild import PieceRanks, bucket_window, window_bucket_totals
+
+from .window_days import pooled, shards_estimated
 
 pytestmark = pytest.mark.filterwarnings("ignore:.*strata with fewer than 100 bids")
 
@@ -87,29 +86,12 @@ def lake(tmp_path_factory):
     return root
 
 
-def _shards_estimated(lake, stage, exp, day) -> StagedPartition:
-    """One day loaded in shards, through the schema gate, each shard estimated by its own task."""
-    out = partition.stage_partition(LakeHook(), lake_root=lake, experiment=exp, ds=day, staging_root=stage,
-                                    max_bids_per_shard=SHARD_BIDS)
-    staged = StagedPartition.at(stage, exp.id, day)
-    partition.record_checks(staged, schema_gate(LakeHook(), experiment=exp, staged=staged))
-    for k in range(out["shards"]):
-        partition.estimate_partition_shard(exp, ds=day, staging_root=stage, shard=k)
-    return staged
-
-
 def _run_day(hook, lake, exp, stage, day) -> str:
-    _shards_estimated(lake, stage, exp, day)
+    shards_estimated(lake, stage, exp, day, SHARD_BIDS)
     route = partition.estimate_partition(hook, experiment=exp, ds=day, staging_root=stage, run_id=f"r-{day}",
                                          shard_tasks=True)["bidder_window"]
     partition.write_partition(hook, experiment_id=exp.id, ds=day, staging_root=stage)
     return route
-
-
-def _pooled(frame):
-    frame = frame.copy()
-    frame["segment"] = frame["segment"].astype(object).where(frame["segment"].notna(), "(pooled)")
-    return frame
 
 
 def _stored_pieces(hook, exp, days):
@@ -121,9 +103,9 @@ def _check_rows(hook, exp, day, days):
     """Stored to-date rows of ``day`` = ``combine_pieces`` over the stored pieces of ``days`` with their sums."""
     want = combine_pieces(_stored_pieces(hook, exp, days), exp, cluster="auto")
     assert want.cluster == "bidder" and want.segments
-    rows = _pooled(hook.fetch_df("report_to_date_estimates", {"experiment_id": exp.id}))
+    rows = pooled(hook.fetch_df("report_to_date_estimates", {"experiment_id": exp.id}))
     got = rows[rows["ds"].dt.date == day].set_index(["segment", "arm", "metric"])
-    want = _pooled(want.table).set_index(["segment", "arm", "metric"])
+    want = pooled(want.table).set_index(["segment", "arm", "metric"])
     assert len(got) == len(want)
     np.testing.assert_allclose(got.loc[want.index, NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float),
                                rtol=1e-12, atol=0)
@@ -183,7 +165,7 @@ def test_each_rebuild_trigger_gives_the_plain_window_and_rows(sink, lake, tmp_pa
 
 
 def _day_pieces(lake, tmp_path, exp, k):
-    staged = _shards_estimated(lake, tmp_path / f"stage-{k}", exp, DAYS[k])
+    staged, _ = shards_estimated(lake, tmp_path / f"stage-{k}", exp, DAYS[k], SHARD_BIDS)
     return shard_task_pieces(staged, exp, cluster="auto").pieces
 
 
