@@ -146,7 +146,7 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     builder = (SparkSession.builder.master(url)
                .appName("counterbid").config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false")
                .config("spark.driver.maxResultSize", "0"))  # pieces of every shard come back to the driver
-    for key, value in (config or {}).items():
+    for key, value in {**_local_jvm_options(url, config or {}), **(config or {})}.items():
         builder = builder.config(key, value)
     try:
         with _quiet_pyspark():
@@ -159,6 +159,54 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"could not start Spark ({first}); Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
                          "to one") from None
+
+
+#: The JVM's garbage collector of a local session counterbid starts: the throughput collector. In local
+#: mode the driver's JVM runs the tasks; on the engine's job at 30M bids G1 (Java's default) cost
+#: several CPU seconds more in its write barriers and concurrent threads (``docs/scale.md``).
+_LOCAL_GC = "-XX:+UseParallelGC"
+#: Where a session's settings name the driver JVM's options.
+_DRIVER_JAVA_OPTIONS = ("spark.driver.extraJavaOptions", "spark.driver.defaultJavaOptions")
+
+
+def _local_jvm_options(url: str, config: Mapping[str, str]) -> dict[str, str]:
+    """``spark.driver.defaultJavaOptions`` choosing :data:`_LOCAL_GC` for a ``local`` master, else nothing.
+
+    Left out when the driver JVM's options already name a collector (two would stop it from
+    starting) or its default options are set at all: in ``config``, in the ``spark-defaults.conf``
+    Spark's launcher reads (``$SPARK_CONF_DIR``, else ``$SPARK_HOME/conf``) or in the variables
+    every JVM reads (``JAVA_TOOL_OPTIONS``, ``JDK_JAVA_OPTIONS``, ``_JAVA_OPTIONS``).
+    """
+    if not (url == "local" or url.startswith("local[")):
+        return {}
+    given = {**_spark_defaults(), **config}
+    chosen = " ".join([*(str(given.get(key, "")) for key in _DRIVER_JAVA_OPTIONS),
+                       *(os.environ.get(name, "") for name in ("JAVA_TOOL_OPTIONS", "JDK_JAVA_OPTIONS", "_JAVA_OPTIONS"))])
+    if re.search(r"-XX:[+-]Use[A-Za-z0-9]*GC\b", chosen) or given.get("spark.driver.defaultJavaOptions"):
+        return {}
+    return {"spark.driver.defaultJavaOptions": _LOCAL_GC}
+
+
+def _spark_defaults() -> dict[str, str]:
+    """The settings of the ``spark-defaults.conf`` Spark's launcher reads (none when there is no such file)."""
+    folder = os.environ.get("SPARK_CONF_DIR") or (
+        os.path.join(os.environ["SPARK_HOME"], "conf") if os.environ.get("SPARK_HOME") else None)
+    if folder is None:
+        try:
+            import pyspark
+        except ImportError:
+            return {}
+        folder = os.path.join(os.path.dirname(pyspark.__file__), "conf")
+    found = {}
+    try:
+        with open(os.path.join(folder, "spark-defaults.conf")) as f:
+            for line in f:
+                pair = re.match(r"\s*([^\s=:#!][^\s=:]*)\s*[\s=:]?\s*(.*?)\s*$", line)  # key value, key=value
+                if pair:
+                    found[pair.group(1)] = pair.group(2)
+    except OSError:
+        return {}
+    return found
 
 
 def _require_java() -> None:

@@ -464,3 +464,26 @@ def test_the_engine_splits_one_file_for_every_task_thread_and_keeps_its_read_ord
     assert on_spark.shards == local.shards > 1
     _same_frames(local, on_spark, "one file in many splits")
     np.testing.assert_array_equal(on_spark.table["estimate"].to_numpy(float), local.table["estimate"].to_numpy(float))
+
+
+def test_a_local_session_collects_its_garbage_with_the_throughput_collector(spark, tmp_path, monkeypatch):
+    # counterbid's own local sessions choose the JVM's collector unless the settings already name one
+    # (two collectors would stop the JVM from starting); the test session was started that way
+    from counterbid.readers.spark_shards import _LOCAL_GC, _local_jvm_options
+
+    beans = spark.sparkContext._jvm.java.lang.management.ManagementFactory.getGarbageCollectorMXBeans()
+    assert sorted(str(b.getName()) for b in beans) == ["PS MarkSweep", "PS Scavenge"]
+    monkeypatch.setenv("SPARK_CONF_DIR", str(tmp_path))
+    for name in ("JAVA_TOOL_OPTIONS", "JDK_JAVA_OPTIONS", "_JAVA_OPTIONS"):
+        monkeypatch.delenv(name, raising=False)
+    assert _local_jvm_options("local[2]", {}) == {"spark.driver.defaultJavaOptions": _LOCAL_GC}
+    assert _local_jvm_options("local", {"spark.driver.extraJavaOptions": "-Xss4m"}) != {}
+    assert _local_jvm_options("spark://head:7077", {}) == {}
+    assert _local_jvm_options("local[2]", {"spark.driver.extraJavaOptions": "-Xss4m -XX:+UseG1GC"}) == {}
+    monkeypatch.setenv("JAVA_TOOL_OPTIONS", "-XX:+UseSerialGC")
+    assert _local_jvm_options("local[2]", {}) == {}
+    monkeypatch.delenv("JAVA_TOOL_OPTIONS")
+    (tmp_path / "spark-defaults.conf").write_text("# site settings\nspark.driver.extraJavaOptions=-XX:+UseZGC -Xss4m\n")
+    assert _local_jvm_options("local[2]", {}) == {}
+    (tmp_path / "spark-defaults.conf").write_text("spark.driver.defaultJavaOptions   -Dsite=1\n")
+    assert _local_jvm_options("local[2]", {}) == {}
