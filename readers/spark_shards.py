@@ -162,8 +162,8 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
 
 
 #: The JVM's garbage collector of a local session counterbid starts: the throughput collector. In local
-#: mode the driver's JVM runs the tasks; on the engine's job at 30M bids G1 (Java's default) cost
-#: several CPU seconds more in its write barriers and concurrent threads (``docs/scale.md``).
+#: mode the driver's JVM runs the tasks; with G1 (Java's default) the engine took about 8-10 CPU s
+#: more on 10M bids, for a JVM about 100-200 MiB smaller (``docs/scale.md``).
 _LOCAL_GC = "-XX:+UseParallelGC"
 #: Where a session's settings name the driver JVM's options.
 _DRIVER_JAVA_OPTIONS = ("spark.driver.extraJavaOptions", "spark.driver.defaultJavaOptions")
