@@ -466,16 +466,33 @@ def test_the_engine_splits_one_file_for_every_task_thread_and_keeps_its_read_ord
     np.testing.assert_array_equal(on_spark.table["estimate"].to_numpy(float), local.table["estimate"].to_numpy(float))
 
 
-def test_a_local_session_collects_its_garbage_with_the_throughput_collector(spark, tmp_path, monkeypatch):
+#: A fresh interpreter that starts a local session through counterbid and prints its JVM's collectors.
+_COLLECTORS = """
+from counterbid.readers.spark_shards import spark_session
+session = spark_session("local[1]")
+beans = session.sparkContext._jvm.java.lang.management.ManagementFactory.getGarbageCollectorMXBeans()
+print(sorted(str(b.getName()) for b in beans))
+session.stop()
+"""
+
+
+def test_a_local_session_collects_its_garbage_with_the_throughput_collector(java_home, tmp_path, monkeypatch):
     # counterbid's own local sessions choose the JVM's collector unless the settings already name one
-    # (two collectors would stop the JVM from starting); the test session was started that way
+    # (two collectors would stop the JVM from starting); checked in a fresh process, since a JVM that
+    # another session launched in this one (an Airflow task's) would serve the test's sessions too
+    import os
+    import subprocess
+    import sys
+
     from counterbid.readers.spark_shards import _LOCAL_GC, _local_jvm_options
 
-    beans = spark.sparkContext._jvm.java.lang.management.ManagementFactory.getGarbageCollectorMXBeans()
-    assert sorted(str(b.getName()) for b in beans) == ["PS MarkSweep", "PS Scavenge"]
     monkeypatch.setenv("SPARK_CONF_DIR", str(tmp_path))
     for name in ("JAVA_TOOL_OPTIONS", "JDK_JAVA_OPTIONS", "_JAVA_OPTIONS"):
         monkeypatch.delenv(name, raising=False)
+    started = subprocess.run([sys.executable, "-c", _COLLECTORS], capture_output=True, text=True, timeout=300,
+                             env={**os.environ, "JAVA_HOME": java_home})
+    assert started.returncode == 0, started.stderr[-2000:]
+    assert started.stdout.strip().splitlines()[-1] == "['PS MarkSweep', 'PS Scavenge']"
     assert _local_jvm_options("local[2]", {}) == {"spark.driver.defaultJavaOptions": _LOCAL_GC}
     assert _local_jvm_options("local", {"spark.driver.extraJavaOptions": "-Xss4m"}) != {}
     assert _local_jvm_options("spark://head:7077", {}) == {}
