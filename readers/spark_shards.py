@@ -146,7 +146,7 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
     builder = (SparkSession.builder.master(url)
                .appName("counterbid").config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false")
                .config("spark.driver.maxResultSize", "0"))  # pieces of every shard come back to the driver
-    for key, value in (config or {}).items():
+    for key, value in {**_local_jvm_options(url, config or {}), **(config or {})}.items():
         builder = builder.config(key, value)
     try:
         with _quiet_pyspark():
@@ -159,6 +159,54 @@ def spark_session(master: str | None = None, config: Mapping[str, str] | None = 
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"could not start Spark ({first}); Spark needs a Java 17 or 21 runtime: set JAVA_HOME "
                          "to one") from None
+
+
+#: The JVM's garbage collector of a local session counterbid starts: the throughput collector. In local
+#: mode the driver's JVM runs the tasks; with G1 (Java's default) the engine took about 8-10 CPU s
+#: more on 10M bids, for a JVM about 100-200 MiB smaller (``docs/scale.md``).
+_LOCAL_GC = "-XX:+UseParallelGC"
+#: Where a session's settings name the driver JVM's options.
+_DRIVER_JAVA_OPTIONS = ("spark.driver.extraJavaOptions", "spark.driver.defaultJavaOptions")
+
+
+def _local_jvm_options(url: str, config: Mapping[str, str]) -> dict[str, str]:
+    """``spark.driver.defaultJavaOptions`` choosing :data:`_LOCAL_GC` for a ``local`` master, else nothing.
+
+    Left out when the driver JVM's options already name a collector (two would stop it from
+    starting) or its default options are set at all: in ``config``, in the ``spark-defaults.conf``
+    Spark's launcher reads (``$SPARK_CONF_DIR``, else ``$SPARK_HOME/conf``) or in the variables
+    every JVM reads (``JAVA_TOOL_OPTIONS``, ``JDK_JAVA_OPTIONS``, ``_JAVA_OPTIONS``).
+    """
+    if not (url == "local" or url.startswith("local[")):
+        return {}
+    given = {**_spark_defaults(), **config}
+    chosen = " ".join([*(str(given.get(key, "")) for key in _DRIVER_JAVA_OPTIONS),
+                       *(os.environ.get(name, "") for name in ("JAVA_TOOL_OPTIONS", "JDK_JAVA_OPTIONS", "_JAVA_OPTIONS"))])
+    if re.search(r"-XX:[+-]Use[A-Za-z0-9]*GC\b", chosen) or given.get("spark.driver.defaultJavaOptions"):
+        return {}
+    return {"spark.driver.defaultJavaOptions": _LOCAL_GC}
+
+
+def _spark_defaults() -> dict[str, str]:
+    """The settings of the ``spark-defaults.conf`` Spark's launcher reads (none when there is no such file)."""
+    folder = os.environ.get("SPARK_CONF_DIR") or (
+        os.path.join(os.environ["SPARK_HOME"], "conf") if os.environ.get("SPARK_HOME") else None)
+    if folder is None:
+        try:
+            import pyspark
+        except ImportError:
+            return {}
+        folder = os.path.join(os.path.dirname(pyspark.__file__), "conf")
+    found = {}
+    try:
+        with open(os.path.join(folder, "spark-defaults.conf")) as f:
+            for line in f:
+                pair = re.match(r"\s*([^\s=:#!][^\s=:]*)\s*[\s=:]?\s*(.*?)\s*$", line)  # key value, key=value
+                if pair:
+                    found[pair.group(1)] = pair.group(2)
+    except OSError:
+        return {}
+    return found
 
 
 def _require_java() -> None:
@@ -494,6 +542,33 @@ def _partition_key(spark, shards: int, column: str = "shard"):
     return F.element_at(table, F.col(column).cast("int") + 1)
 
 
+#: Input splits per task thread of the session (``spark.sql.files.minPartitionNum``, while the engine's
+#: job runs): Spark's default, one split per 128 MiB, gives a 367 MiB file 3 tasks on 2 threads, the
+#: third alone; smaller splits let the threads finish the read together.
+_SPLITS_PER_THREAD = 4
+#: The session's setting of the smallest number of input splits.
+_MIN_SPLITS = "spark.sql.files.minPartitionNum"
+
+
+@contextmanager
+def _input_splits(spark):
+    """The session set to split the input into :data:`_SPLITS_PER_THREAD` splits per task thread (at least),
+    its own setting back afterwards.
+
+    A hint: Spark still splits no finer than ``spark.sql.files.openCostInBytes`` (4 MiB) and no
+    coarser than ``spark.sql.files.maxPartitionBytes``; a setting the session already has is kept.
+    Spark Connect sessions are left as they are.
+    """
+    if not hasattr(spark, "_jsparkSession") or spark.conf.get(_MIN_SPLITS, None) not in (None, ""):
+        yield
+        return
+    spark.conf.set(_MIN_SPLITS, str(_SPLITS_PER_THREAD * max(1, int(spark.sparkContext.defaultParallelism))))
+    try:
+        yield
+    finally:
+        spark.conf.unset(_MIN_SPLITS)
+
+
 def _answer_schema(with_gram: bool = False) -> pa.Schema:
     """Arrow schema of :data:`_ANSWER` (with ``with_gram``: of :data:`_COLLECTED`), built without a Spark session."""
     fields = [("shard", pa.int64()), ("n_bids", pa.int64()), ("n_excluded", pa.int64()),
@@ -583,7 +658,7 @@ def spark_shard_pieces(spark, bids, experiment: Experiment, *, shards: int, clus
         # grouping in Spark; the shard's task puts its rows in read order by their key (_shard_answer)
         # only the columns the estimate reads travel (as the local reader reads only those)
         parts = sharded.select(*selected, "shard", "bid_order").repartition(int(shards), _partition_key(spark, shards))
-        with _quiet_pyspark():
+        with _quiet_pyspark(), _input_splits(spark):
             out = parts.mapInArrow(one_partition_of_bids, _ANSWER)
             if bidder_gram:  # bucket k's rows (all of its bidders') in partition k: one Gram row each to the driver
                 out = out.repartition(int(shards), _partition_key(spark, shards, "bidder_bucket"))

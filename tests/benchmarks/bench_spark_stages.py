@@ -12,10 +12,15 @@ full      :func:`counterbid.readers.spark_shards.spark_shard_pieces`, the whole 
 Each stage includes the ones above it. CPU seconds are the user + system time of the whole
 process tree (this driver, the JVM, the PySpark daemon and its workers: ``psutil``, live
 processes plus what they reaped) over the stage; on a shared machine wall time waits for cores,
-CPU time does not. Prints one JSON line per stage with the 1-minute load average.
+CPU time does not. Prints one JSON line per stage with the 1-minute load average and the CPU
+split by process: this driver, the JVM, the Python workers (with what their daemon reaped).
+
+With ``--event-log DIR`` Spark also writes its event log there, and after the session stops each
+Spark stage's task sums are printed (``spark_event_stages.py``: task run and CPU time, GC time,
+shuffle bytes, idle task slots), named by the benchmark stage whose job ran it.
 
 Usage: JAVA_HOME=... python tests/benchmarks/bench_spark_stages.py BIDS.parquet SPEC.yaml [--master local[2]]
-       [--stages scan,shard,transfer,full] [--conf KEY=VALUE ...]
+       [--stages scan,shard,transfer,full] [--conf KEY=VALUE ...] [--event-log DIR]
 """
 
 from __future__ import annotations
@@ -41,12 +46,36 @@ def tree_cpu_seconds() -> float:
     return total
 
 
-def timed(name: str, run) -> object:
-    """Run ``run()``; print its wall and tree CPU seconds as one JSON line."""
-    cpu, wall = tree_cpu_seconds(), time.perf_counter()
+def cpu_by_role() -> dict[str, float]:
+    """User + system CPU seconds of ``driver`` (this process), ``jvm`` and ``python_workers`` (the rest of the tree)."""
+    import psutil
+
+    me = psutil.Process()
+    roles = {"driver": 0.0, "jvm": 0.0, "python_workers": 0.0}
+    for proc in [me, *me.children(recursive=True)]:
+        try:
+            t = proc.cpu_times()
+            role = "driver" if proc.pid == me.pid else "jvm" if proc.name() == "java" else "python_workers"
+            own, reaped = t.user + t.system, t.children_user + t.children_system
+        except psutil.NoSuchProcess:
+            continue
+        roles[role] += own
+        # the JVM reaps the PySpark daemon it started, the daemon its workers: reaped time is the workers'
+        roles["python_workers" if role != "driver" else "driver"] += reaped
+    return roles
+
+
+def timed(name: str, run, spark=None) -> object:
+    """Run ``run()`` (as Spark jobs described as ``name``); print its wall and CPU seconds as one JSON line."""
+    if spark is not None:
+        spark.sparkContext.setJobDescription(name)
+    cpu, wall = cpu_by_role(), time.perf_counter()
     out = run()
+    after = cpu_by_role()
+    split = {role: round(after[role] - cpu[role], 2) for role in after}
     print(json.dumps({"stage": name, "wall_s": round(time.perf_counter() - wall, 2),
-                      "cpu_s": round(tree_cpu_seconds() - cpu, 2), "load_1min": round(os.getloadavg()[0], 2)}),
+                      "cpu_s": round(sum(split.values()), 2), **{f"cpu_{k}_s": v for k, v in split.items()},
+                      "load_1min": round(os.getloadavg()[0], 2)}),
           flush=True)
     return out
 
@@ -68,15 +97,21 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--master", default="local[2]")
     p.add_argument("--stages", default="scan,shard,transfer,full")
     p.add_argument("--conf", action="append", default=[], metavar="KEY=VALUE")
+    p.add_argument("--event-log", default=None, metavar="DIR", help="also write Spark's event log here and sum it")
     args = p.parse_args(argv)
     stages = set(args.stages.split(","))
+    conf = dict(kv.split("=", 1) for kv in args.conf)
+    if args.event_log:
+        os.makedirs(args.event_log, exist_ok=True)
+        conf.update({"spark.eventLog.enabled": "true", "spark.eventLog.dir": os.path.abspath(args.event_log),
+                     "spark.eventLog.compress": "false", "spark.eventLog.rolling.enabled": "false"})
 
     from counterbid.estimators import BID_COLUMNS, load_experiment, n_shards
     from counterbid.readers import spark_shards as engine
     from counterbid.readers.shards import max_bids_per_shard
     from counterbid.readers.spark_label_codes import coded_label_columns, listed_words
 
-    spark = engine.spark_session(args.master, dict(kv.split("=", 1) for kv in args.conf))
+    spark = engine.spark_session(args.master, conf)
     spark.range(1).count()
     experiment = load_experiment(args.spec)
     bids = engine._read_parquet(spark, args.bids, source=args.bids, view="counterbid_stage_bids")
@@ -85,19 +120,28 @@ def main(argv: list[str] | None = None) -> int:
     columns = [c for c in ["experiment_id", *BID_COLUMNS, *experiment.auction_columns] if c in bids.columns]
     print(json.dumps({"bids": rows, "shards": shards, "master": args.master}), flush=True)
     if "scan" in stages:
-        timed("scan", lambda: bids.select(*columns, "bid_file", "bid_row").write.format("noop").mode("overwrite").save())
+        timed("scan", lambda: bids.select(*columns, "bid_file", "bid_row").write.format("noop").mode("overwrite").save(),
+              spark)
     sharded = engine._with_shards(spark, bids, shards=shards, source=args.bids)
     selected, _ = coded_label_columns(sharded, columns, listed_words(experiment))
     picked = sharded.select(*selected, "shard", "bid_order")
     if "shard" in stages:
-        timed("shard", lambda: picked.write.format("noop").mode("overwrite").save())
+        timed("shard", lambda: picked.write.format("noop").mode("overwrite").save(), spark)
     if "transfer" in stages:
         parts = picked.repartition(shards, engine._partition_key(spark, shards))
-        timed("transfer", lambda: parts.mapInArrow(_count_rows, "n long").collect())
+        timed("transfer", lambda: parts.mapInArrow(_count_rows, "n long").collect(), spark)
     if "full" in stages:
         timed("full", lambda: engine.spark_shard_pieces(spark, bids, experiment, shards=shards, source=args.bids,
-                                                       expected_bids=rows))
+                                                       expected_bids=rows), spark)
+    app = spark.sparkContext.applicationId
     spark.stop()
+    if args.event_log:
+        from spark_event_stages import app_log, event_lines, stage_tallies
+
+        cores = int(args.master[len("local["):-1]) if args.master.startswith("local[") and args.master[6:-1].isdigit() \
+            else os.cpu_count()
+        for tally in stage_tallies(event_lines(app_log(args.event_log, app))):
+            print(json.dumps(tally.row(cores)), flush=True)
     return 0
 
 

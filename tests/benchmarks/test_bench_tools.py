@@ -162,3 +162,36 @@ def test_the_window_bench_adds_the_shard_tasks_to_the_estimate_step_it_reports(t
     assert (r["shard_cpu"], r["shard_rss_mib"], r["shards"]) == (4.0, 900.0, 2)
     assert (r["combine_cpu"], r["combine_rss_mib"]) == (4.0, 800.0)
     assert r["route"] == "extended" and r["to_date_bids"] == 3_000_000
+
+
+def test_event_log_stages_sum_their_tasks_and_count_the_idle_task_slots(tmp_path):
+    # one job of two stages on 2 task threads: stage 3 has one long and one short task (a straggler
+    # leaves a slot idle), stage 4 a single task; a rolling log's folder reads as its files in order
+    from .spark_event_stages import app_log, event_lines, stage_tallies
+
+    def task(stage, launch, finish, cpu_ns, written=0, read=0):
+        return {"Event": "SparkListenerTaskEnd", "Stage ID": stage,
+                "Task Info": {"Launch Time": launch, "Finish Time": finish},
+                "Task Metrics": {"Executor Run Time": finish - launch, "Executor CPU Time": cpu_ns, "JVM GC Time": 100,
+                                 "Shuffle Write Metrics": {"Shuffle Bytes Written": written, "Shuffle Records Written": 7},
+                                 "Shuffle Read Metrics": {"Local Bytes Read": read, "Remote Bytes Read": 0,
+                                                          "Total Records Read": 0},
+                                 "Input Metrics": {"Records Read": 5}}}
+
+    events = [{"Event": "SparkListenerJobStart", "Job ID": 0, "Stage IDs": [3, 4],
+               "Properties": {"spark.job.description": "full"}},
+              task(3, 1_000, 9_000, 6 * 10**9, written=2**20), task(3, 1_000, 3_000, 10**9, written=2**20),
+              {"Event": "SparkListenerStageCompleted", "Stage Info": {"Stage ID": 3, "Stage Name": "map"}},
+              task(4, 9_500, 10_500, 5 * 10**8, read=2 * 2**20)]
+    folder = tmp_path / "eventlog_v2_local-1"
+    folder.mkdir()
+    lines = [json.dumps(e) + "\n" for e in events]
+    (folder / "events_2_local-1").write_text("".join(lines[3:]))
+    (folder / "events_1_local-1").write_text("".join(lines[:3]))
+    tallies = stage_tallies(event_lines(app_log(str(tmp_path), "local-1")))
+    rows = [t.row(2) for t in tallies]
+    assert [(r["job"], r["stage"], r["name"], r["tasks"]) for r in rows] == [("full", 3, "map", 2), ("full", 4, "", 1)]
+    assert rows[0]["span_s"] == 8.0 and rows[0]["idle_core_s"] == 2 * 8.0 - (8.0 + 2.0)
+    assert rows[0]["task_cpu_s"] == 7.0 and rows[0]["gc_s"] == 0.2 and rows[0]["shuffle_write_mib"] == 2.0
+    assert rows[0]["records_in"] == 10 and rows[0]["records_out"] == 14 and rows[0]["longest_task_s"] == 8.0
+    assert rows[1]["idle_core_s"] == 1.0 and rows[1]["shuffle_read_mib"] == 2.0

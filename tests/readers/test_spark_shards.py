@@ -432,3 +432,75 @@ def test_a_partition_of_several_shards_answers_each_in_arrival_order():
     assert out.to_pylist() == [{"shard": 0, "n": 2}, {"shard": 1, "n": 1}, {"shard": 2, "n": 3}]
     assert seen == [([0, 0], [1, 4]), ([1], [5]), ([2, 2, 2], [0, 2, 3])]
     assert list(_partition_answers(iter([]), answer)) == []  # an empty partition answers nothing
+
+
+def test_the_engine_splits_one_file_for_every_task_thread_and_keeps_its_read_order(spark, tmp_path):
+    # a file of several row groups read while the engine's job runs: at least as many input splits as
+    # _SPLITS_PER_THREAD per task thread (outside it, Spark's default: one or two for this file); the
+    # rows still reach their shards in read order, and the session's own setting is back afterwards
+    from counterbid.readers.spark_shards import _MIN_SPLITS, _SPLITS_PER_THREAD, _input_splits
+
+    bids = _log(2400, rng=11)
+    path = tmp_path / "rows.parquet"
+    bids.to_parquet(path, index=False, row_group_size=1000)
+    threads = spark.sparkContext.defaultParallelism
+    old_cost = spark.conf.get("spark.sql.files.openCostInBytes")
+    spark.conf.set("spark.sql.files.openCostInBytes", "1024")  # lets a small file split as a large one would
+    try:
+        read = _read_parquet(spark, str(path), source=str(path), view="counterbid_test_splits")
+        plain = read.select("auction_id").rdd.getNumPartitions()  # a new frame each time: a frame keeps its rdd
+        with _input_splits(spark):
+            split = read.select("auction_id").rdd.getNumPartitions()
+            local, _, on_spark, _ = _both(spark, path, max_bids_per_shard=len(bids) // 3)
+        assert spark.conf.get(_MIN_SPLITS, None) is None
+        spark.conf.set(_MIN_SPLITS, "1")  # a setting of the session's own is left as it is
+        with _input_splits(spark):
+            assert spark.conf.get(_MIN_SPLITS) == "1"
+    finally:
+        spark.conf.unset(_MIN_SPLITS)
+        spark.conf.set("spark.sql.files.openCostInBytes", old_cost)
+    assert pq.ParquetFile(path).metadata.num_row_groups >= _SPLITS_PER_THREAD * threads
+    assert plain <= threads and split >= _SPLITS_PER_THREAD * threads, (plain, split)
+    assert on_spark.shards == local.shards > 1
+    _same_frames(local, on_spark, "one file in many splits")
+    np.testing.assert_array_equal(on_spark.table["estimate"].to_numpy(float), local.table["estimate"].to_numpy(float))
+
+
+#: A fresh interpreter that starts a local session through counterbid and prints its JVM's collectors.
+_COLLECTORS = """
+from counterbid.readers.spark_shards import spark_session
+session = spark_session("local[1]")
+beans = session.sparkContext._jvm.java.lang.management.ManagementFactory.getGarbageCollectorMXBeans()
+print(sorted(str(b.getName()) for b in beans))
+session.stop()
+"""
+
+
+def test_a_local_session_collects_its_garbage_with_the_throughput_collector(java_home, tmp_path, monkeypatch):
+    # counterbid's own local sessions choose the JVM's collector unless the settings already name one
+    # (two collectors would stop the JVM from starting); checked in a fresh process, since a JVM that
+    # another session launched in this one (an Airflow task's) would serve the test's sessions too
+    import os
+    import subprocess
+    import sys
+
+    from counterbid.readers.spark_shards import _LOCAL_GC, _local_jvm_options
+
+    monkeypatch.setenv("SPARK_CONF_DIR", str(tmp_path))
+    for name in ("JAVA_TOOL_OPTIONS", "JDK_JAVA_OPTIONS", "_JAVA_OPTIONS"):
+        monkeypatch.delenv(name, raising=False)
+    started = subprocess.run([sys.executable, "-c", _COLLECTORS], capture_output=True, text=True, timeout=300,
+                             env={**os.environ, "JAVA_HOME": java_home})
+    assert started.returncode == 0, started.stderr[-2000:]
+    assert started.stdout.strip().splitlines()[-1] == "['PS MarkSweep', 'PS Scavenge']"
+    assert _local_jvm_options("local[2]", {}) == {"spark.driver.defaultJavaOptions": _LOCAL_GC}
+    assert _local_jvm_options("local", {"spark.driver.extraJavaOptions": "-Xss4m"}) != {}
+    assert _local_jvm_options("spark://head:7077", {}) == {}
+    assert _local_jvm_options("local[2]", {"spark.driver.extraJavaOptions": "-Xss4m -XX:+UseG1GC"}) == {}
+    monkeypatch.setenv("JAVA_TOOL_OPTIONS", "-XX:+UseSerialGC")
+    assert _local_jvm_options("local[2]", {}) == {}
+    monkeypatch.delenv("JAVA_TOOL_OPTIONS")
+    (tmp_path / "spark-defaults.conf").write_text("# site settings\nspark.driver.extraJavaOptions=-XX:+UseZGC -Xss4m\n")
+    assert _local_jvm_options("local[2]", {}) == {}
+    (tmp_path / "spark-defaults.conf").write_text("spark.driver.defaultJavaOptions   -Dsite=1\n")
+    assert _local_jvm_options("local[2]", {}) == {}
