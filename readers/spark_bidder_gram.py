@@ -67,7 +67,18 @@ GRAM_COLUMNS = "part_segment string, part_bidders long, part_unit int, part_gram
 
 
 def ids_text(ids: np.ndarray) -> pa.Array:
-    """Bidder ids as Arrow text, integers by their decimal text (as ``ids_as_text``, vectorised)."""
+    """Bidder ids as Arrow text, integers by their decimal text (as ``ids_as_text``, vectorised).
+
+    Parameters
+    ----------
+    ids : numpy.ndarray
+        Integer ids, or objects (text, or text and integers mixed).
+
+    Returns
+    -------
+    pyarrow.Array of string
+        One per id, in order.
+    """
     ids = np.asarray(ids)
     if ids.dtype.kind in "iu":
         return pa.array(ids.astype(np.int64)).cast(pa.string())
@@ -134,6 +145,18 @@ def bidder_buckets(keys: np.ndarray, buckets: int) -> np.ndarray:
 
     Every shard puts a bidder in the same bucket, so a bucket's rows of all shards hold every row
     of its bidders.
+
+    Parameters
+    ----------
+    keys : numpy.ndarray of int64
+        Bidder keys (:func:`bidder_keys`).
+    buckets : int
+        How many buckets (at least 1).
+
+    Returns
+    -------
+    numpy.ndarray of int32
+        The bucket of each key.
     """
     if int(buckets) < 1:
         raise ValueError(f"bidder buckets: need at least one, got {buckets}")
@@ -230,6 +253,19 @@ def partition_gram(batches: Iterable[pa.RecordBatch], out_schema: pa.Schema) -> 
     order. Each form is added in its rows' largest unit ``2**e`` and squared: ``part_gram = sum_b
     U_b U_b'`` (row-major), ``part_bidders = B``, ``part_unit = e``, ``part_segment`` null for the
     pooled form.
+
+    Parameters
+    ----------
+    batches : iterable of pyarrow.RecordBatch
+        The partition's rows (Spark's ``mapInArrow`` input): answer rows and packed bidder rows
+        (:data:`BIDDER_COLUMNS`).
+    out_schema : pyarrow.Schema
+        The output rows' schema: the answer columns and :data:`GRAM_COLUMNS`.
+
+    Returns
+    -------
+    iterator of pyarrow.RecordBatch
+        The answer rows as they came, then one Gram row per form (pooled, and each segment's).
     """
     packed = []
     for batch in batches:
