@@ -94,17 +94,11 @@ class BucketedRows:
 
 @dataclass(frozen=True)
 class TodayRows(BucketedRows):
-    """Today's weighted per-bidder rows in ``folder``: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
+    """Today's weighted per-bidder rows, set aside by bucket (:class:`BucketedRows`; their sums in
+    columns ``sum_0 ..``, one per revenue label, and ``segments`` today's segment labels).
 
     Attributes
     ----------
-    folder : Path
-    bits : int
-        ``2**bits`` buckets.
-    width : int
-        Sum columns (``sum_0 ..``), the experiment's revenue labels in its order.
-    segments : list of str
-        Today's segment labels (each a key of its own besides the pooled one).
     bid_exponent : int
         Unit of the weighted sums.
     """

@@ -53,18 +53,9 @@ _NO_SEGMENT = -1
 
 @dataclass(frozen=True)
 class WindowRows(BucketedRows):
-    """The window's weighted long rows in ``folder``: ``bucket-B/group-G.arrow`` for the buckets that hold rows.
-
-    Attributes
-    ----------
-    folder : Path
-    bits : int
-        ``2**bits`` buckets.
-    width : int
-        The revenue labels (``label`` ``0 .. width - 1``, the experiment's order).
-    segments : list of str
-        Segment labels of the window's pieces (``segment`` holds the position, -1 for none).
-    """
+    """The window's weighted long rows, set aside by bucket (:class:`~.window_buckets.BucketedRows`):
+    one row per piece, bidder and label (``label`` ``0 .. width - 1``), ``segment`` the position of
+    the piece's segment label in ``segments`` (-1 for none)."""
 
 
 @dataclass(frozen=True)
