@@ -32,14 +32,14 @@ import pytest
 import scipy.stats as st
 
 from counterbid.estimators import (
-    SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, simulate_segmented_experiment,
+    SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments,
 )
 from counterbid.operators import partition, window_buckets, window_state
 from counterbid.operators.shard_step import shard_task_pieces
 from counterbid.operators.staged_bidder_sums import staged_shards
 from counterbid.operators.window_buckets import bucket_bits, bucket_today, bucket_totals
 
-from .window_days import pooled, shards_estimated
+from .window_days import pooled, shards_estimated, write_segmented_lake
 
 FIRST = dt.date(2026, 8, 3)
 DAYS = [FIRST + dt.timedelta(days=k) for k in range(3)]
@@ -63,15 +63,8 @@ def _spec():
 
 @pytest.fixture(scope="module")
 def lake(tmp_path_factory):
-    root = tmp_path_factory.mktemp("lake") / "bids"
-    exp = _spec()
-    for k, day in enumerate(DAYS):
-        bids = simulate_segmented_experiment(MARKETS, exp, n_auctions=800, rng=510 + k, column="market",
-                                             bidder_pool=120, first_auction_id=50_000 * k).drop(columns=["ds"])
-        bids["bidder_id"] = "counter-" + bids["bidder_id"].astype(str)
-        (root / f"ds={day}").mkdir(parents=True)
-        bids.to_parquet(root / f"ds={day}" / "kettles.parquet", index=False)
-    return root
+    return write_segmented_lake(tmp_path_factory.mktemp("lake") / "bids", _spec(), MARKETS, DAYS, column="market",
+                                n_auctions=800, rng=510, bidder_pool=120, id_prefix="counter-")
 
 
 def _run_day(hook, lake, exp, stage, day):

@@ -39,14 +39,13 @@ import scipy.stats as st
 
 from counterbid.estimators import (
     SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, pieces_to_frames,
-    simulate_segmented_experiment,
 )
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition, window_rebuild, window_state
 from counterbid.operators.shard_step import shard_task_pieces
 from counterbid.operators.window_rebuild import PieceRanks, bucket_window, window_bucket_totals
 
-from .window_days import pooled, shards_estimated
+from .window_days import pooled, shards_estimated, write_segmented_lake
 
 pytestmark = pytest.mark.filterwarnings("ignore:.*strata with fewer than 100 bids")
 
@@ -73,17 +72,9 @@ def _spec(exclude=()):
 
 @pytest.fixture(scope="module")
 def lake(tmp_path_factory):
-    root = tmp_path_factory.mktemp("lake") / "bids"
-    exp = _spec()
-    for k, day in enumerate(DAYS):
-        bids = simulate_segmented_experiment(HALLS, exp, n_auctions=500, rng=730 + k, column="hall",
-                                             bidder_pool=90, first_auction_id=70_000 * k).drop(columns=["ds"])
-        bids["bidder_id"] = "stand-" + bids["bidder_id"].astype(str)
-        if k == LARGE_DAY:
-            bids[["bid", "value"]] = np.ldexp(bids[["bid", "value"]].to_numpy(), 210)
-        (root / f"ds={day}").mkdir(parents=True)
-        bids.to_parquet(root / f"ds={day}" / "lamps.parquet", index=False)
-    return root
+    return write_segmented_lake(tmp_path_factory.mktemp("lake") / "bids", _spec(), HALLS, DAYS, column="hall",
+                                n_auctions=500, rng=730, bidder_pool=90, id_prefix="stand-",
+                                scaled_days={LARGE_DAY: 210})
 
 
 def _run_day(hook, lake, exp, stage, day) -> str:

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
+
+from counterbid.estimators import simulate_segmented_experiment
 
 from counterbid.operators import partition
 from counterbid.operators.lake_hook import LakeHook
@@ -26,3 +29,21 @@ def pooled(frame: pd.DataFrame) -> pd.DataFrame:
     frame = frame.copy()
     frame["segment"] = frame["segment"].astype(object).where(frame["segment"].notna(), "(pooled)")
     return frame
+
+
+def write_segmented_lake(root, exp, segments, days, *, column: str, n_auctions: int, rng: int, bidder_pool: int,
+                         id_prefix: str, scaled_days: dict[int, int] | None = None):
+    """One Parquet file a day of ``exp``'s segmented bids under ``root/ds=DAY``; text bidder ids of one pool.
+
+    Day ``k`` draws with seed ``rng + k`` and auction ids from ``k * 100_000``; a day in ``scaled_days``
+    has its bids and values multiplied by ``2**scaled_days[k]``.
+    """
+    for k, day in enumerate(days):
+        bids = simulate_segmented_experiment(segments, exp, n_auctions=n_auctions, rng=rng + k, column=column,
+                                             bidder_pool=bidder_pool, first_auction_id=100_000 * k).drop(columns=["ds"])
+        bids["bidder_id"] = id_prefix + bids["bidder_id"].astype(str)
+        if k in (scaled_days or {}):
+            bids[["bid", "value"]] = np.ldexp(bids[["bid", "value"]].to_numpy(), scaled_days[k])
+        (root / f"ds={day}").mkdir(parents=True)
+        bids.to_parquet(root / f"ds={day}" / f"{exp.id}.parquet", index=False)
+    return root
