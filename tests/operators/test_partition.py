@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as dt
 import json
 
@@ -19,7 +18,7 @@ from counterbid.estimators import (
     CheckResult, estimate_arms, expected_revenue_per_auction, parse_day, parse_experiments, worst_failure,
 )
 from counterbid.estimators.errors import InputError
-from counterbid.estimators import combine_pieces, shard_of, stratum_pieces
+from counterbid.estimators import shard_of
 from counterbid.operators import partition
 from counterbid.operators.check_runner import read_check_results
 from counterbid.operators.contract import CONTRACT_CHECKS

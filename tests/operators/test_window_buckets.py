@@ -32,18 +32,17 @@ import pytest
 import scipy.stats as st
 
 from counterbid.estimators import (
-    SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments,
+    SimulatedSegment, bidder_totals, gram_of, parse_experiments,
 )
-from counterbid.operators import partition, window_buckets, window_state
+from counterbid.operators import partition, window_buckets
 from counterbid.operators.shard_step import shard_task_pieces
 from counterbid.operators.staged_bidder_sums import staged_shards
 from counterbid.operators.window_buckets import bucket_bits, bucket_today, bucket_totals
 
-from .window_days import pooled, shards_estimated, write_segmented_lake
+from .window_days import check_rows, check_window, shards_estimated, write_segmented_lake
 
 FIRST = dt.date(2026, 8, 3)
 DAYS = [FIRST + dt.timedelta(days=k) for k in range(3)]
-NUMBERS = ["estimate", "std_error", "ci_low", "ci_high"]
 MARKETS = {
     "dawn": SimulatedSegment(st.gamma(2.5, scale=0.5), {3: 0.6, 4: 0.4}, 0.6),
     "dusk": SimulatedSegment(st.lognorm(0.55, scale=1.2), {2: 0.3, 4: 0.7}, 0.4),
@@ -80,46 +79,6 @@ def _run_day(hook, lake, exp, stage, day):
     return summary, staged_sums
 
 
-def _check_rows(hook, exp, day, days, report):
-    """Stored rows of ``day`` (report ``report``) = ``combine_pieces`` over the stored pieces of ``days``."""
-    stored = hook.stored_piece_frames(experiment_id=exp.id, days=days, tables=list(partition.PIECE_TABLES.values()))
-    want = combine_pieces(window_state.pieces_of_rows(stored), exp, cluster="auto")
-    assert want.cluster == "bidder" and want.segments
-    rows = pooled(hook.fetch_df(report, {"experiment_id": exp.id}))
-    got = rows[rows["ds"].dt.date == day].set_index(["segment", "arm", "metric"])
-    want = pooled(want.table).set_index(["segment", "arm", "metric"])
-    assert len(got) == len(want)
-    np.testing.assert_allclose(got.loc[want.index, NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float),
-                               rtol=1e-12, atol=0)
-
-
-def _check_window(hook, exp, days):
-    """Every stored total and form = the plain totals of the window's stored pieces."""
-    base = hook.bidder_window(experiment_id=exp.id)
-    assert [dt.date.fromisoformat(d) for d in str(base[0]["days_used"].iloc[0]).split(",")] == days
-    order = str(base[0]["sum_labels"].iloc[0]).split(",")
-    window = window_state.pieces_of_rows(hook.stored_piece_frames(experiment_id=exp.id, days=days,
-                                                                  tables=list(partition.PIECE_TABLES.values())))
-    exponent = max(p.bid_exponent for p in window)
-    with hook.connect(read_only=True) as con:
-        stored = con.execute("select segment, bidder_id, sums from main.bidder_window_totals where experiment_id = 'kettles'"
-                             ).fetchall()
-    keys = [None, *sorted({p.key.segment for p in window})]
-    assert {s for s, _, _ in stored} == set(keys)
-    for key, n in zip([None if pd.isna(s) else s for s in base[0]["segment"]], base[0]["n_distinct_bidders"]):
-        plain = bidder_totals([p for p in window if key is None or p.key.segment == key], bid_exponent=exponent)
-        mine = {b: v for s, b, v in stored if s == key}
-        assert int(n) == len(mine) == plain.sums.shape[0]
-        kept = np.array([mine[b] for b in plain.bidder_ids], dtype=float)
-        # a running total adds day by day, the plain one piece by piece: rounding of order 1e-16 times the
-        # terms, so a total that nearly cancels is compared on the scale of the totals, not its own
-        want = plain.sums[:, [window_state._labels(exp).index(x) for x in order]]
-        np.testing.assert_allclose(kept, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())
-        form = base[1][[(None if pd.isna(s) else s) == key for s in base[1]["segment"]]]
-        np.testing.assert_allclose(window_state._gram_of_rows(form, int(n), exponent, exp).gram, gram_of(plain).gram,
-                                   rtol=1e-12, atol=0)
-
-
 def test_a_bucketed_daily_update_over_shard_tasks_gives_the_plain_totals_and_rows(sink, lake, tmp_path, monkeypatch):
     monkeypatch.setattr(window_buckets, "WINDOW_BUCKET_ROWS", BUCKET_ROWS)
     exp = _spec()
@@ -128,9 +87,9 @@ def test_a_bucketed_daily_update_over_shard_tasks_gives_the_plain_totals_and_row
     for k, day in enumerate(DAYS):
         summary, staged_sums = _run_day(sink, lake, exp, stage, day)
         routes.append(summary["bidder_window"])
-        _check_rows(sink, exp, day, [day], "report_daily_estimates")
-        _check_rows(sink, exp, day, DAYS[:k + 1], "report_to_date_estimates")
-        _check_window(sink, exp, DAYS[:k + 1])
+        check_rows(sink, exp, day, [day], "report_daily_estimates")
+        check_rows(sink, exp, day, DAYS[:k + 1], "report_to_date_estimates")
+        check_window(sink, exp, DAYS[:k + 1])
         # the staged rows are those the pieces' frames give, row for row
         stored = sink.stored_piece_frames(experiment_id=exp.id, days=[day], tables=["stratum_piece_bidder_sums"])
         keys = ["n_bidders", "shard", "segment", "bidder_id", "arm"]

@@ -38,20 +38,19 @@ import pytest
 import scipy.stats as st
 
 from counterbid.estimators import (
-    SimulatedSegment, bidder_totals, combine_pieces, gram_of, parse_experiments, pieces_to_frames,
+    SimulatedSegment, bidder_totals, gram_of, parse_experiments, pieces_to_frames,
 )
 from counterbid.estimators.errors import InputError
 from counterbid.operators import partition, window_rebuild, window_state
 from counterbid.operators.shard_step import shard_task_pieces
 from counterbid.operators.window_rebuild import PieceRanks, bucket_window, window_bucket_totals
 
-from .window_days import pooled, shards_estimated, write_segmented_lake
+from .window_days import check_rows, check_window, shards_estimated, write_segmented_lake
 
 pytestmark = pytest.mark.filterwarnings("ignore:.*strata with fewer than 100 bids")
 
 FIRST = dt.date(2026, 9, 7)
 DAYS = [FIRST + dt.timedelta(days=k) for k in range(6)]
-NUMBERS = ["estimate", "std_error", "ci_low", "ci_high"]
 #: Two invented halls of one market; the bidder ids of both come from one pool.
 HALLS = {
     "loft": SimulatedSegment(st.gamma(2.2, scale=0.6), {3: 0.5, 4: 0.5}, 0.55),
@@ -85,49 +84,6 @@ def _run_day(hook, lake, exp, stage, day) -> str:
     return route
 
 
-def _stored_pieces(hook, exp, days):
-    return window_state.pieces_of_rows(hook.stored_piece_frames(experiment_id=exp.id, days=days,
-                                                                tables=list(partition.PIECE_TABLES.values())))
-
-
-def _check_rows(hook, exp, day, days):
-    """Stored to-date rows of ``day`` = ``combine_pieces`` over the stored pieces of ``days`` with their sums."""
-    want = combine_pieces(_stored_pieces(hook, exp, days), exp, cluster="auto")
-    assert want.cluster == "bidder" and want.segments
-    rows = pooled(hook.fetch_df("report_to_date_estimates", {"experiment_id": exp.id}))
-    got = rows[rows["ds"].dt.date == day].set_index(["segment", "arm", "metric"])
-    want = pooled(want.table).set_index(["segment", "arm", "metric"])
-    assert len(got) == len(want)
-    np.testing.assert_allclose(got.loc[want.index, NUMBERS].to_numpy(float), want[NUMBERS].to_numpy(float),
-                               rtol=1e-12, atol=0)
-
-
-def _check_window(hook, exp, days):
-    """Every stored total and form = the plain rebuild (``bidder_totals``, ``gram_of``) of the window's stored pieces."""
-    base = hook.bidder_window(experiment_id=exp.id)
-    assert [dt.date.fromisoformat(d) for d in str(base[0]["days_used"].iloc[0]).split(",")] == days
-    order = str(base[0]["sum_labels"].iloc[0]).split(",")
-    window = _stored_pieces(hook, exp, days)
-    exponent = max(p.bid_exponent for p in window)
-    assert int(base[0]["bid_exponent"].iloc[0]) == exponent
-    with hook.connect(read_only=True) as con:
-        stored = con.execute("select segment, bidder_id, sums from main.bidder_window_totals "
-                             "where experiment_id = 'lamps'").fetchall()
-    keys = [None, *sorted({p.key.segment for p in window})]
-    assert {s for s, _, _ in stored} == set(keys)
-    assert len({(s, b) for s, b, _ in stored}) == len(stored)  # no bidder twice under one key
-    for key, n in zip([None if pd.isna(s) else s for s in base[0]["segment"]], base[0]["n_distinct_bidders"]):
-        plain = bidder_totals([p for p in window if key is None or p.key.segment == key], bid_exponent=exponent)
-        mine = {b: v for s, b, v in stored if s == key}
-        assert int(n) == len(mine) == plain.sums.shape[0]
-        kept = np.array([mine[b] for b in plain.bidder_ids], dtype=float)
-        want = plain.sums[:, [window_state._labels(exp).index(x) for x in order]]
-        np.testing.assert_allclose(kept, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())
-        form = base[1][[(None if pd.isna(s) else s) == key for s in base[1]["segment"]]]
-        np.testing.assert_allclose(window_state._gram_of_rows(form, int(n), exponent, exp).gram, gram_of(plain).gram,
-                                   rtol=1e-12, atol=0)
-
-
 def _small_buckets(monkeypatch):
     monkeypatch.setattr(window_rebuild, "REBUILD_BUCKET_ROWS", 60)
     monkeypatch.setattr(window_rebuild, "GATHER_ROWS", 97)
@@ -142,8 +98,8 @@ def test_each_rebuild_trigger_gives_the_plain_window_and_rows(sink, lake, tmp_pa
 
     def day(k, want_route, window, spec=exp):
         assert _run_day(sink, lake, spec, stage, DAYS[k]) == want_route
-        _check_rows(sink, spec, DAYS[k], [DAYS[j] for j in window])
-        _check_window(sink, spec, [DAYS[j] for j in window])
+        check_rows(sink, spec, DAYS[k], [DAYS[j] for j in window])
+        check_window(sink, spec, [DAYS[j] for j in window])
 
     day(0, "rebuilt", [0])  # nothing stored: today's totals from an empty window
     day(1, "extended", [0, 1])
